@@ -1,0 +1,55 @@
+"""Reading tables from files, with errors that say what is wrong with the file."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+
+from .errors import PanelDataError
+
+__all__ = ["read_table"]
+
+
+def read_table(path, sep: str | None = None, encoding: str = "utf-8") -> pd.DataFrame:
+    """Read a CSV (``.csv``, ``.txt``, ``.tsv``) or Parquet (``.parquet``, ``.pq``) file.
+
+    Raises :class:`PanelDataError` for a missing or empty file, text that is not in the
+    given encoding, a table with a single column (usually the wrong delimiter), and
+    unreadable Parquet.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise PanelDataError(f"file {str(path)!r} does not exist")
+    if path.is_file() and path.stat().st_size == 0:
+        raise PanelDataError(f"file {str(path)!r} is empty")
+    suffix = path.suffix.lower()
+    if suffix in (".parquet", ".pq") or path.is_dir():
+        try:
+            return pd.read_parquet(path)
+        except Exception as exc:  # pyarrow raises several types
+            raise PanelDataError(f"cannot read Parquet {str(path)!r}: {exc}") from None
+    if sep is None:
+        sep = "\t" if suffix == ".tsv" else ","
+    try:
+        df = pd.read_csv(path, sep=sep, encoding=encoding)
+    except UnicodeDecodeError as exc:
+        raise PanelDataError(
+            f"file {str(path)!r} is not valid {encoding} text (byte {exc.start}); save it as "
+            f"UTF-8 or pass the right encoding"
+        ) from None
+    except pd.errors.EmptyDataError:
+        raise PanelDataError(f"file {str(path)!r} has no table in it") from None
+    except pd.errors.ParserError as exc:
+        raise PanelDataError(f"cannot parse {str(path)!r} as delimited text: {exc}") from None
+    if df.shape[1] == 1:
+        only = str(df.columns[0])
+        guess = next((d for d in (";", "\t", "|", ",") if d in only and d != sep), None)
+        hint = f"; the header contains {guess!r}, try that delimiter" if guess else ""
+        raise PanelDataError(
+            f"file {str(path)!r} read as a single column {only[:60]!r} with delimiter "
+            f"{sep!r}{hint}"
+        )
+    if len(df) == 0:
+        raise PanelDataError(f"file {str(path)!r} has a header but no rows")
+    return df

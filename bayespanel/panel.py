@@ -1,0 +1,295 @@
+"""Panel: a validated long table with one row per unit and occasion."""
+
+from __future__ import annotations
+
+import warnings
+from typing import Iterable
+
+import numpy as np
+import pandas as pd
+
+from .errors import PanelDataError
+
+__all__ = ["Panel"]
+
+
+def _plain(v):
+    return v.item() if isinstance(v, np.generic) else v
+
+
+def _first_pair(df: pd.DataFrame, mask, unit: str, time: str) -> str:
+    sel = df.loc[np.asarray(mask)]
+    return f"{unit}={_plain(sel[unit].iloc[0])!r}, {time}={_plain(sel[time].iloc[0])!r}"
+
+
+class Panel:
+    """A long table of units observed on several occasions, checked on the way in.
+
+    Parameters
+    ----------
+    df : pandas.DataFrame
+        One row per unit and occasion.
+    unit, time : str
+        Names of the columns identifying the unit and the occasion.
+
+    Raises
+    ------
+    PanelDataError
+        If ``unit`` or ``time`` is not a column, holds missing values, if a unit-occasion
+        pair appears twice, if there are fewer than two units, or if a numeric column
+        holds infinite values. The message names the column and the first offending
+        unit and occasion.
+
+    Notes
+    -----
+    Missing values in other columns are kept: each model drops the rows it cannot use
+    (listwise deletion over the variables of its formula) and reports how many.
+
+    Examples
+    --------
+    >>> import bayespanel as bp
+    >>> df, truth = bp.datasets.clinic_panel(seed=1)
+    >>> panel = bp.Panel(df, unit="clinic", time="quarter")
+    >>> panel.n_units
+    36
+    """
+
+    def __init__(self, df, unit: str, time: str):
+        if not isinstance(df, pd.DataFrame):
+            if hasattr(df, "npartitions") and hasattr(df, "compute"):
+                raise PanelDataError(
+                    "a Dask DataFrame needs the out-of-core path: use "
+                    "bayespanel.engines.dask_panel or Panel.from_parquet(..., engine='dask')"
+                )
+            raise PanelDataError(f"Panel needs a pandas DataFrame, got {type(df).__name__}")
+        for role, col in (("unit", unit), ("time", time)):
+            if col not in df.columns:
+                raise PanelDataError(
+                    f"{role} column {col!r} is not in the table; columns are: "
+                    f"{', '.join(map(str, df.columns[:20]))}"
+                )
+        if unit == time:
+            raise PanelDataError(f"unit and time must be different columns, both are {unit!r}")
+        if df.columns.duplicated().any():
+            dup = df.columns[df.columns.duplicated()][0]
+            raise PanelDataError(f"column {dup!r} appears more than once in the table")
+        if len(df) == 0:
+            raise PanelDataError("the table has no rows")
+        for role, col in (("unit", unit), ("time", time)):
+            miss = df[col].isna().to_numpy()
+            if miss.any():
+                where = int(np.flatnonzero(miss)[0])
+                raise PanelDataError(
+                    f"{role} column {col!r} has {int(miss.sum())} missing value(s); first at "
+                    f"row {df.index[where]!r}. Every row needs a unit and an occasion."
+                )
+        dup = df.duplicated(subset=[unit, time], keep=False).to_numpy()
+        if dup.any():
+            raise PanelDataError(
+                f"{int(dup.sum())} rows share a unit-occasion pair; the first is "
+                f"{_first_pair(df, dup, unit, time)}. Each unit may appear once per occasion."
+            )
+        for col in df.columns:
+            s = df[col]
+            if col in (unit, time) or not pd.api.types.is_numeric_dtype(s) or pd.api.types.is_bool_dtype(s):
+                continue
+            vals = s.to_numpy(dtype=float, na_value=np.nan)
+            bad = np.isinf(vals)
+            if bad.any():
+                raise PanelDataError(
+                    f"column {col!r} has {int(bad.sum())} infinite value(s); the first at "
+                    f"{_first_pair(df, bad, unit, time)}. Replace them by missing values or "
+                    "fix the source."
+                )
+        try:
+            data = df.sort_values([unit, time], kind="mergesort").copy()
+        except TypeError as exc:
+            raise PanelDataError(
+                f"cannot order the table by {unit!r} and {time!r} (mixed types?): {exc}"
+            ) from None
+        self._data = data
+        self.unit = unit
+        self.time = time
+        counts = data.groupby(unit, sort=True, observed=True).size()
+        if len(counts) < 2:
+            raise PanelDataError(
+                f"the panel has {len(counts)} unit in column {unit!r}; at least 2 are needed"
+            )
+        self._counts = counts
+
+    # ------------------------------------------------------------------ structure
+    @property
+    def data(self) -> pd.DataFrame:
+        """The table, sorted by unit and occasion (a copy of the input)."""
+        return self._data
+
+    @property
+    def n_units(self) -> int:
+        return int(len(self._counts))
+
+    @property
+    def n_rows(self) -> int:
+        return int(len(self._data))
+
+    @property
+    def occasions(self) -> np.ndarray:
+        """All occasions present in the table, sorted."""
+        return np.sort(self._data[self.time].unique())
+
+    @property
+    def occasions_per_unit(self) -> pd.Series:
+        """Number of rows (occasions) per unit."""
+        return self._counts.copy()
+
+    @property
+    def is_balanced(self) -> bool:
+        """True when every unit is observed on every occasion."""
+        return bool((self._counts == len(self.occasions)).all())
+
+    @property
+    def singleton_units(self) -> list:
+        """Units observed on one occasion only (they carry no within-unit information)."""
+        return list(self._counts.index[self._counts == 1])
+
+    @property
+    def gaps(self) -> dict:
+        """Occasions missing between each unit's first and last observed occasion."""
+        occ = self.occasions
+        pos = {v: i for i, v in enumerate(occ)}
+        out = {}
+        for u, times in self._data.groupby(self.unit, sort=True, observed=True)[self.time]:
+            idx = np.array([pos[t] for t in times])
+            span = idx.max() - idx.min() + 1
+            if span > len(idx):
+                missing = sorted(set(range(idx.min(), idx.max() + 1)) - set(idx))
+                out[u] = [occ[m] for m in missing]
+        return out
+
+    def structure(self) -> dict:
+        """A summary of the panel's shape: units, rows, occasions, balance, gaps, singletons."""
+        counts = self._counts
+        gaps = self.gaps
+        return {
+            "unit": self.unit,
+            "time": self.time,
+            "n_units": self.n_units,
+            "n_rows": self.n_rows,
+            "n_occasions": int(len(self.occasions)),
+            "occasions_min": int(counts.min()),
+            "occasions_median": float(counts.median()),
+            "occasions_max": int(counts.max()),
+            "balanced": self.is_balanced,
+            "n_units_with_gaps": len(gaps),
+            "n_singleton_units": len(self.singleton_units),
+        }
+
+    def __repr__(self) -> str:
+        s = self.structure()
+        bal = "balanced" if s["balanced"] else "unbalanced"
+        return (f"Panel({s['n_units']} units of {self.unit!r} x {s['n_occasions']} occasions of "
+                f"{self.time!r}, {s['n_rows']} rows, {bal})")
+
+    # ------------------------------------------------------------------ describe
+    def numeric_columns(self) -> list[str]:
+        return [c for c in self._data.columns
+                if c not in (self.unit, self.time)
+                and (pd.api.types.is_numeric_dtype(self._data[c]))]
+
+    def describe(self, columns: Iterable[str] | None = None) -> pd.DataFrame:
+        """Decompose each numeric variable into its between-unit and within-unit parts.
+
+        Returns one row per variable with: ``n`` (non-missing rows), ``n_missing``,
+        ``mean``, ``sd_overall`` (SD over rows), ``sd_between`` (SD of the unit means, one
+        value per unit), ``sd_within`` (SD of the deviations from the unit means, over
+        rows), ``share_within`` (share of the variance, on the sum-of-squares scale, that
+        lies within units) and ``varies_within`` (False when every unit holds one value).
+
+        SDs use ``ddof=1``. Unit means are taken over each variable's non-missing rows.
+        """
+        if columns is None:
+            columns = self.numeric_columns()
+        else:
+            columns = list(columns)
+            for c in columns:
+                if c not in self._data.columns:
+                    raise PanelDataError(f"column {c!r} is not in the table")
+                if not pd.api.types.is_numeric_dtype(self._data[c]):
+                    raise PanelDataError(
+                        f"column {c!r} is not numeric (dtype {self._data[c].dtype}); describe() "
+                        "summarises numeric columns"
+                    )
+        rows = []
+        units = self._data[self.unit]
+        for c in columns:
+            x = self._data[c].astype(float)
+            ok = x.notna()
+            xv, uv = x[ok], units[ok]
+            n = int(ok.sum())
+            if n == 0:
+                rows.append({"variable": c, "n": 0, "n_missing": int(len(x)), "mean": np.nan,
+                             "sd_overall": np.nan, "sd_between": np.nan, "sd_within": np.nan,
+                             "share_within": np.nan, "varies_within": False})
+                continue
+            means = xv.groupby(uv, observed=True).transform("mean")
+            dev = xv - means
+            unit_means = xv.groupby(uv, observed=True).mean()
+            ss_total = float(((xv - xv.mean()) ** 2).sum())
+            ss_within = float((dev ** 2).sum())
+            scale = max(float(np.abs(xv).max()), 1.0)
+            varies = bool(np.sqrt(ss_within / max(n, 1)) > 1e-10 * scale)
+            rows.append({
+                "variable": c,
+                "n": n,
+                "n_missing": int((~ok).sum()),
+                "mean": float(xv.mean()),
+                "sd_overall": float(xv.std(ddof=1)) if n > 1 else np.nan,
+                "sd_between": float(unit_means.std(ddof=1)) if len(unit_means) > 1 else np.nan,
+                "sd_within": float(np.sqrt(ss_within / (n - 1))) if n > 1 else np.nan,
+                "share_within": ss_within / ss_total if ss_total > 0 else np.nan,
+                "varies_within": varies,
+            })
+        return pd.DataFrame(rows).set_index("variable")
+
+    # ------------------------------------------------------------------ design
+    def design(self, formula: str, occasion_effects: bool = False):
+        """Build the design matrices for ``formula`` on this panel (see :class:`Design`)."""
+        from .design import Design
+
+        return Design.from_panel(self, formula, occasion_effects=occasion_effects)
+
+    @classmethod
+    def from_file(cls, path, unit: str, time: str, **read_kwargs) -> "Panel":
+        """Read a CSV or Parquet file into a Panel, with clear errors for unreadable files."""
+        from .io import read_table
+
+        return cls(read_table(path, **read_kwargs), unit=unit, time=time)
+
+    @classmethod
+    def from_parquet(cls, path, unit: str, time: str, engine: str = "pandas", **kwargs):
+        """Read a Parquet file or folder; ``engine="dask"`` keeps it out of memory."""
+        if engine == "pandas":
+            return cls(pd.read_parquet(path, **kwargs), unit=unit, time=time)
+        if engine == "dask":
+            from .engines.dask import DaskPanel
+
+            return DaskPanel.from_parquet(path, unit=unit, time=time, **kwargs)
+        from .errors import choices_error
+
+        raise choices_error("engine", engine, ["pandas", "dask"])
+
+
+def warn_dropped(n_dropped: int, by_column: dict, n_total: int) -> None:
+    """Report listwise deletion: never silent."""
+    if n_dropped:
+        detail = ", ".join(f"{c}: {k}" for c, k in by_column.items() if k)
+        warnings.warn(
+            f"dropped {n_dropped} of {n_total} rows with missing values (missing per column: "
+            f"{detail}); unit means are taken over the remaining rows",
+            category=_dh_warning(), stacklevel=3,
+        )
+
+
+def _dh_warning():
+    from .errors import DataHandlingWarning
+
+    return DataHandlingWarning
