@@ -1,0 +1,73 @@
+"""Small linear-algebra helpers shared by the reference estimators (arrays only)."""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["independent_columns", "solve_psd", "psd_power", "rank_of"]
+
+#: relative tolerance below which a column counts as a combination of earlier ones
+COLLINEAR_TOL = 1e-9
+
+
+def independent_columns(cp: np.ndarray, scale: np.ndarray | None = None,
+                        tol: float = COLLINEAR_TOL) -> np.ndarray:
+    """Indices of a maximal set of linearly independent columns, kept in order.
+
+    Works on a cross-product matrix ``A = X'X`` only (so it runs on sufficient
+    statistics): column ``j`` is kept when its squared residual after projection on the
+    columns kept before it exceeds ``tol`` times its size. ``scale`` gives that size per
+    column (default ``diag(A)``); pass the uncentred sums of squares of the original
+    columns when ``A`` holds demeaned data, so that rounding left by demeaning a
+    constant column does not count as variation.
+    """
+    A = np.asarray(cp, dtype=float)
+    k = A.shape[0]
+    size = np.diag(A).copy() if scale is None else np.asarray(scale, dtype=float).copy()
+    keep: list[int] = []
+    for j in range(k):
+        if size[j] <= 0 or A[j, j] <= tol * size[j]:
+            continue
+        if keep:
+            S = A[np.ix_(keep, keep)]
+            b = A[keep, j]
+            resid = A[j, j] - b @ np.linalg.solve(S, b)
+        else:
+            resid = A[j, j]
+        if resid > tol * size[j]:
+            keep.append(j)
+    return np.asarray(keep, dtype=np.int64)
+
+
+def rank_of(cp: np.ndarray, scale: np.ndarray | None = None, tol: float = COLLINEAR_TOL) -> int:
+    """Rank of a cross-product matrix, judged as in :func:`independent_columns`."""
+    return int(len(independent_columns(cp, scale, tol)))
+
+
+def solve_psd(A: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Solve ``A x = b`` for symmetric positive-definite ``A`` (Cholesky, lstsq fallback)."""
+    try:
+        c = np.linalg.cholesky(A)
+        return np.linalg.solve(c.T, np.linalg.solve(c, b))
+    except np.linalg.LinAlgError:
+        return np.linalg.lstsq(A, b, rcond=None)[0]
+
+
+def inv_psd(A: np.ndarray) -> np.ndarray:
+    """Inverse of a symmetric positive-definite matrix, symmetrised."""
+    out = solve_psd(A, np.eye(A.shape[0]))
+    return (out + out.T) / 2
+
+
+def psd_power(A: np.ndarray, power: float, tol: float = 1e-12) -> np.ndarray:
+    """``A ** power`` for symmetric positive semi-definite ``A`` (batched over leading axes).
+
+    Eigenvalues at or below ``tol`` times the largest are treated as zero, so a negative
+    power gives the Moore-Penrose generalised power (used by CR2 when a cluster has
+    leverage one).
+    """
+    w, v = np.linalg.eigh(A)
+    top = np.max(np.abs(w), axis=-1, keepdims=True)
+    ok = w > tol * np.maximum(top, np.finfo(float).tiny)
+    wp = np.where(ok, np.where(ok, w, 1.0) ** power, 0.0)
+    return (v * wp[..., None, :]) @ np.swapaxes(v, -1, -2)

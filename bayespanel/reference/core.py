@@ -1,0 +1,357 @@
+"""Closed-form cores of the reference estimators on sufficient statistics.
+
+Every function here takes a :class:`bayespanel.suffstats.SuffStats` (``Z = [X, y]``, ``y``
+last) and nothing else, so the point estimates, the variance components and the
+classical covariances run unchanged wherever only the statistics exist (an out-of-core
+pass, for example). Cluster-robust covariances need rows and live in
+:mod:`bayespanel.reference.covariance`.
+
+Numerics: when the model has an intercept, every regression is solved on data shifted
+to the global means (the intercept column left at one), and the intercept and the
+covariance are mapped back exactly afterwards. This keeps covariates with large means
+(years, incomes) from costing digits in the cross-products.
+
+References
+----------
+.. [1] Swamy, P. A. V. B. and Arora, S. S. (1972). The exact finite sample properties of
+   the estimators of coefficients in the error components regression models.
+   Econometrica 40(2), 261-275. https://doi.org/10.2307/1909405
+.. [2] Baltagi, B. H. and Chang, Y.-J. (1994). Incomplete panels: a comparative study of
+   alternative estimators for the unbalanced one-way error component regression model.
+   Journal of Econometrics 62(2), 67-89. https://doi.org/10.1016/0304-4076(94)90016-7
+.. [3] Harville, D. A. (1977). Maximum likelihood approaches to variance component
+   estimation and to related problems. JASA 72(358), 320-338.
+   https://doi.org/10.1080/01621459.1977.10480998
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import optimize
+
+from ..errors import EstimationError
+from ._linalg import independent_columns, inv_psd, solve_psd
+
+__all__ = [
+    "CoreFit",
+    "pooled_core",
+    "within_core",
+    "between_core",
+    "swamy_arora_core",
+    "likelihood_core",
+    "gls_core",
+    "intercept_column",
+]
+
+
+@dataclass
+class CoreFit:
+    """What a closed-form fit leaves behind (array level, no labels).
+
+    ``cols`` are the indices of the columns of ``X`` that were estimated (the others were
+    constant within units or collinear). ``bread`` is ``(X'X)^{-1}`` of the regression
+    that was solved (demeaned, unit means or quasi-demeaned ``X``), so that the classical
+    covariance is ``sigma2 * bread``. ``theta`` holds the quasi-demeaning share per
+    distinct panel length (``lengths``) for the random-intercept fits.
+    """
+
+    beta: np.ndarray
+    cols: np.ndarray
+    bread: np.ndarray
+    rss: float
+    sigma2: float
+    df_resid: float
+    n_obs: int
+    n_units: int
+    sigma2_unit: float = float("nan")
+    sigma2_obs: float = float("nan")
+    lengths: np.ndarray | None = None
+    theta: np.ndarray | None = None
+    loglik: float = float("nan")
+    extra: dict = field(default_factory=dict)
+
+    @property
+    def vcov(self) -> np.ndarray:
+        """Classical covariance ``sigma2 (X'X)^{-1}``."""
+        return self.sigma2 * self.bread
+
+
+# ---------------------------------------------------------------------- cross-products
+def intercept_column(ss) -> int | None:
+    """Index of a column of ones among the covariates, if there is one."""
+    k = ss.p - 1
+    for j in range(k):
+        if ss.total[j, j] <= 1e-12 * max(ss.n, 1) and abs(ss.mean[j] - 1.0) < 1e-12:
+            return j
+    return None
+
+
+def _shift(ss, icol):
+    """Shift applied before solving: the global means, except for the intercept."""
+    if icol is None:
+        return np.zeros(ss.p)
+    s = np.asarray(ss.mean, dtype=float).copy()
+    s[icol] = 0.0
+    return s
+
+
+def _cp_rows(ss, s):
+    """Uncentred cross-products of the shifted rows, ``sum (z - s)(z - s)'``."""
+    d = ss.mean - s
+    return ss.total + ss.n * np.outer(d, d)
+
+
+def _cp_units(ss, s, weights):
+    """``sum_i w(T_i) (zbar_i - s)(zbar_i - s)'`` from the per-length group statistics."""
+    out = np.zeros((ss.p, ss.p))
+    for d in range(len(ss.lengths)):
+        w = float(weights[d])
+        if w == 0.0:
+            continue
+        m = ss.group_mean[d] - s
+        out += w * (ss.group_cp[d] + ss.group_count[d] * np.outer(m, m))
+    return out
+
+
+def _uncentred_scale(ss):
+    """Sizes of the original columns (uncentred sums of squares), for rank decisions."""
+    return np.diag(ss.total) + ss.n * ss.mean ** 2
+
+
+def _solve(A, cols):
+    """Least squares from cross-products ``A`` of ``[X, y]`` on the columns ``cols``."""
+    y = A.shape[0] - 1
+    Axx = A[np.ix_(cols, cols)]
+    Axy = A[cols, y]
+    beta = solve_psd(Axx, Axy)
+    rss = float(A[y, y] - Axy @ beta)
+    scale = max(float(A[y, y]), np.finfo(float).tiny)
+    rss = max(rss, 0.0) if rss > -1e-9 * scale else rss
+    return beta, rss, inv_psd(Axx)
+
+
+def _unshift(beta, bread, cols, s, icol):
+    """Map estimates on shifted data back to the original columns (exact)."""
+    if icol is None or icol not in cols:
+        return beta, bread
+    pos = int(np.flatnonzero(cols == icol)[0])
+    sx = s[cols].copy()
+    sx[pos] = 0.0
+    L = np.eye(len(cols))
+    L[pos, :] -= sx
+    b = L @ beta
+    b[pos] += s[-1]
+    return b, L @ bread @ L.T
+
+
+def _select(A, cols, scale):
+    k = A.shape[0] - 1
+    if cols is None:
+        sub = independent_columns(A[:k, :k], None if scale is None else scale[:k])
+        return sub
+    return np.asarray(cols, dtype=np.int64)
+
+
+def _need_df(df, what, n, needed):
+    if df <= 0:
+        raise EstimationError(
+            f"the {what} has no residual degrees of freedom ({n} rows for {needed} "
+            "coefficients); it cannot be estimated on these rows"
+        )
+
+
+# ---------------------------------------------------------------------- estimators
+def pooled_core(ss, cols=None) -> CoreFit:
+    """Ordinary least squares on all rows."""
+    icol = intercept_column(ss)
+    s = _shift(ss, icol)
+    A = _cp_rows(ss, s)
+    cols = _select(A, cols, None)
+    beta, rss, bread = _solve(A, cols)
+    beta, bread = _unshift(beta, bread, cols, s, icol)
+    df = ss.n - len(cols)
+    _need_df(df, "pooled regression", ss.n, len(cols))
+    s2 = rss / df
+    return CoreFit(beta, cols, bread, rss, s2, df, ss.n, ss.n_units, sigma2_obs=s2)
+
+
+def within_core(ss, cols=None) -> CoreFit:
+    """Fixed effects: least squares on unit-demeaned data.
+
+    The residual degrees of freedom are ``n - N - k``: the ``N`` unit means absorbed by
+    demeaning count against the data. Units with a single row carry no within
+    information; they are left out of ``n`` and ``N`` (they cancel in the degrees of
+    freedom anyway).
+    """
+    k = ss.p - 1
+    single = int(np.sum(ss.group_count[ss.lengths == 1]))
+    n, N = ss.n - single, ss.n_units - single
+    if N == 0:
+        raise EstimationError("every unit has a single row: there is no within variation")
+    A = ss.within
+    if cols is None:
+        cols = independent_columns(A[:k, :k], _uncentred_scale(ss)[:k])
+    cols = np.asarray(cols, dtype=np.int64)
+    if len(cols) == 0:
+        raise EstimationError("no covariate varies within units: fixed effects have nothing "
+                              "to estimate")
+    beta, rss, bread = _solve(A, cols)
+    df = n - N - len(cols)
+    _need_df(df, "within (fixed-effects) regression", n, N + len(cols))
+    s2 = rss / df
+    return CoreFit(beta, cols, bread, rss, s2, df, n, N, sigma2_obs=s2,
+                   extra={"singletons": single})
+
+
+def between_core(ss, cols=None, weights="units") -> CoreFit:
+    """Least squares on the unit means (one row per unit).
+
+    ``weights="units"`` weights each unit equally; ``"rows"`` weights unit means by their
+    panel lengths (used by the unbalanced Swamy-Arora estimator).
+    """
+    icol = intercept_column(ss)
+    s = _shift(ss, icol)
+    w = np.ones(len(ss.lengths)) if weights == "units" else ss.lengths.astype(float)
+    A = _cp_units(ss, s, w)
+    cols = _select(A, cols, None)
+    beta, rss, bread = _solve(A, cols)
+    beta, bread = _unshift(beta, bread, cols, s, icol)
+    df = ss.n_units - len(cols)
+    _need_df(df, "between regression", ss.n_units, len(cols))
+    s2 = rss / df
+    return CoreFit(beta, cols, bread, rss, s2, df, ss.n, ss.n_units,
+                   extra={"weights": weights})
+
+
+def _gls(ss, theta, cols=None):
+    """GLS on quasi-demeaned rows ``z - theta_i zbar_i`` (theta per panel length)."""
+    icol = intercept_column(ss)
+    s = _shift(ss, icol)
+    w = ss.lengths * (1.0 - np.asarray(theta)) ** 2
+    A = ss.within + _cp_units(ss, s, w)
+    cols = _select(A, cols, None)
+    beta, rss, bread = _solve(A, cols)
+    beta, bread = _unshift(beta, bread, cols, s, icol)
+    return beta, rss, bread, cols
+
+
+def theta_of(lengths, sigma2_unit, sigma2_obs):
+    """Quasi-demeaning share ``1 - sqrt(sigma^2 / (sigma^2 + T tau^2))`` per panel length."""
+    lengths = np.asarray(lengths, dtype=float)
+    if sigma2_obs <= 0:
+        return np.ones_like(lengths)
+    return 1.0 - np.sqrt(sigma2_obs / (sigma2_obs + lengths * sigma2_unit))
+
+
+def gls_core(ss, sigma2_unit, sigma2_obs, cols=None) -> CoreFit:
+    """Random-intercept GLS for given variance components; classical covariance uses the
+    residual variance of the quasi-demeaned regression (``rss / (n - k)``)."""
+    theta = theta_of(ss.lengths, sigma2_unit, sigma2_obs)
+    beta, rss, bread, cols = _gls(ss, theta, cols)
+    df = ss.n - len(cols)
+    _need_df(df, "random-intercept regression", ss.n, len(cols))
+    return CoreFit(beta, cols, bread, rss, rss / df, df, ss.n, ss.n_units,
+                   sigma2_unit=sigma2_unit, sigma2_obs=sigma2_obs,
+                   lengths=ss.lengths.copy(), theta=theta)
+
+
+def swamy_arora_components(ss):
+    """Swamy-Arora variance components, in the unbalanced form of Baltagi and Chang (1994).
+
+    ``sigma_e^2`` is the within residual variance (degrees of freedom ``n - N - r_w``, with
+    ``r_w`` the rank of the covariates that vary within units). ``sigma_u^2`` is
+    ``(e_b' e_b - (N - r_b) sigma_e^2) / (n - tr[(X'PX)^{-1} X'P P X])`` with ``P`` the
+    projection on unit means and ``e_b`` the residuals of the between regression on all
+    rows; truncated at zero. On balanced panels this is ``s_b^2 - sigma_e^2 / T``.
+    """
+    k = ss.p - 1
+    w = within_core(ss)
+    s2e = w.sigma2
+    icol = intercept_column(ss)
+    s = _shift(ss, icol)
+    At = _cp_units(ss, s, ss.lengths.astype(float))           # sum T_i zbar zbar'
+    cols_b = independent_columns(At[:k, :k])
+    _, ssr_t, bread_t = _solve(At, cols_b)
+    df_b = ss.n_units - len(cols_b)
+    _need_df(df_b, "between regression", ss.n_units, len(cols_b))
+    At2 = _cp_units(ss, s, ss.lengths.astype(float) ** 2)     # sum T_i^2 zbar zbar'
+    tr = float(np.trace(bread_t @ At2[np.ix_(cols_b, cols_b)]))
+    s2u = max(0.0, (ssr_t - df_b * s2e) / (ss.n - tr))
+    return s2u, s2e, {"df_within": w.df_resid, "df_between": df_b, "trace": tr,
+                      "ssr_between": ssr_t}
+
+
+def swamy_arora_core(ss, cols=None) -> CoreFit:
+    """Random-intercept GLS with Swamy-Arora variance components (see
+    :func:`swamy_arora_components`)."""
+    s2u, s2e, info = swamy_arora_components(ss)
+    fit = gls_core(ss, s2u, s2e, cols)
+    fit.extra.update(info)
+    return fit
+
+
+# ---------------------------------------------------------------------- ML / REML
+def _profile(ss, gamma, cols, method, s):
+    """-2 x profiled log-likelihood (ML or REML) at ``gamma = tau^2 / sigma^2``."""
+    w = ss.lengths / (1.0 + ss.lengths * gamma)
+    A = ss.within + _cp_units(ss, s, w)
+    beta, Q, bread = _solve(A, cols)
+    Q = max(Q, np.finfo(float).tiny)
+    logdet = float(np.sum(ss.group_count * np.log1p(ss.lengths * gamma)))
+    n, k = ss.n, len(cols)
+    if method == "ml":
+        s2 = Q / n
+        val = n * np.log(2 * np.pi * s2) + n + logdet
+    else:
+        s2 = Q / (n - k)
+        sign, ld = np.linalg.slogdet(A[np.ix_(cols, cols)])
+        val = (n - k) * np.log(2 * np.pi * s2) + (n - k) + logdet + ld
+    return val, beta, bread, s2
+
+
+def likelihood_core(ss, method="reml", cols=None) -> CoreFit:
+    """Random intercept by maximum likelihood (``"ml"``) or restricted ML (``"reml"``).
+
+    The Gaussian marginal likelihood is profiled over the coefficients and ``sigma^2``,
+    leaving one parameter, ``gamma = tau^2 / sigma^2 >= 0``; it is maximised by a grid on
+    ``log gamma`` refined with bounded Brent steps, with ``gamma = 0`` checked as the
+    boundary. Each evaluation costs ``O(D k^3)`` (``D`` distinct panel lengths), whatever
+    the number of rows. The REML criterion follows Harville (1977); its constant is the
+    usual ``(n - k) log 2 pi`` and omits ``log|X'X|``.
+    """
+    if method not in ("ml", "reml"):
+        raise ValueError(f"method must be 'ml' or 'reml', got {method!r}")
+    k = ss.p - 1
+    icol = intercept_column(ss)
+    s = _shift(ss, icol)
+    if cols is None:
+        cols = independent_columns(_cp_rows(ss, s)[:k, :k])
+    cols = np.asarray(cols, dtype=np.int64)
+    if ss.n - len(cols) <= 0:
+        raise EstimationError("too few rows for the number of coefficients")
+
+    def f(eta):
+        return _profile(ss, np.exp(eta), cols, method, s)[0]
+
+    grid = np.linspace(np.log(1e-8), np.log(1e6), 57)
+    vals = np.array([f(e) for e in grid])
+    j = int(np.argmin(vals))
+    lo, hi = grid[max(j - 1, 0)], grid[min(j + 1, len(grid) - 1)]
+    res = optimize.minimize_scalar(f, bounds=(lo, hi), method="bounded",
+                                   options={"xatol": 1e-10})
+    eta = float(res.x) if res.fun <= vals[j] else float(grid[j])
+    best = min(res.fun, vals[j])
+    v0 = _profile(ss, 0.0, cols, method, s)[0]
+    gamma = 0.0 if v0 <= best else float(np.exp(eta))
+    val, beta, bread, s2 = _profile(ss, gamma, cols, method, s)
+    beta, bread = _unshift(beta, bread, cols, s, icol)
+    s2u = gamma * s2
+    theta = theta_of(ss.lengths, s2u, s2)
+    df = ss.n - len(cols)
+    fit = CoreFit(beta, cols, bread, float("nan"), s2, df, ss.n, ss.n_units,
+                  sigma2_unit=s2u, sigma2_obs=s2, lengths=ss.lengths.copy(), theta=theta,
+                  loglik=-0.5 * val, extra={"gamma": gamma, "boundary": gamma == 0.0})
+    fit.rss = float("nan")
+    return fit

@@ -1,0 +1,413 @@
+"""The reference estimators: labelled entry points over the closed-form cores.
+
+``pooled``, ``within``, ``between``, ``random``, ``mundlak`` and ``within_between`` take a
+:class:`~bayespanel.panel.Panel` and a formula (or a ready
+:class:`~bayespanel.design.Design`), build the model's columns with
+``Design.matrices(kind)``, compute the sufficient statistics once, solve in closed form
+(:mod:`bayespanel.reference.core`) and add the requested covariance
+(:mod:`bayespanel.reference.covariance`). :func:`fit_arrays` is the same fit on plain
+arrays, for refits in exact cross-validation; :func:`fit_stats` is the part that needs
+only sufficient statistics (point estimates, variance components, classical covariance).
+
+References
+----------
+.. [1] Baltagi, B. H. (2021). Econometric Analysis of Panel Data, 6th ed. Springer,
+   chapters 2 and 9. https://doi.org/10.1007/978-3-030-53953-5
+.. [2] Mundlak, Y. (1978). On the pooling of time series and cross section data.
+   Econometrica 46(1), 69-85. https://doi.org/10.2307/1913646
+.. [3] Bell, A. and Jones, K. (2015). Explaining fixed effects: random effects modeling of
+   time-series cross-sectional and panel data. Political Science Research and Methods
+   3(1), 133-153. https://doi.org/10.1017/psrm.2014.7
+"""
+
+from __future__ import annotations
+
+import os
+import warnings
+
+import numpy as np
+
+from .. import suffstats
+from ..errors import DataHandlingWarning, SpecificationError, choices_error
+from . import core
+from ._linalg import COLLINEAR_TOL
+from ._results import ReferenceResult
+from .covariance import COV_TYPES, classical, cluster_scores, cr1, cr2
+
+__all__ = ["ESTIMATORS", "METHODS", "pooled", "within", "between", "random", "mundlak",
+           "within_between", "fit_design", "fit_arrays", "fit_stats"]
+
+ESTIMATORS = ("pooled", "within", "between", "random", "mundlak", "within_between")
+METHODS = ("swamy-arora", "ml", "reml")
+_PKG_DIR = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+_RANDOM_FAMILY = ("random", "mundlak", "within_between")
+_KIND = {"pooled": "pooled", "within": "random", "between": "random", "random": "random",
+         "mundlak": "mundlak", "within_between": "within_between"}
+
+_ASSUME = {
+    "pooled": [
+        "One intercept for all units: unit-level differences are left in the error term.",
+        "The covariates are uncorrelated with the whole error, unit part included.",
+        "Classical errors: independent rows with one variance. Cluster-robust errors: "
+        "independent units, any correlation and variance within a unit.",
+    ],
+    "within": [
+        "Each unit has its own intercept, which may be correlated with the covariates; "
+        "only variation within units identifies the coefficients.",
+        "The covariates are strictly exogenous: uncorrelated with the occasion-level error "
+        "on every occasion of the unit.",
+        "Covariates constant within units cannot be estimated and are dropped.",
+        "Classical errors: independent occasions with one variance. Cluster-robust errors: "
+        "any correlation within a unit.",
+    ],
+    "between": [
+        "Uses only the unit means (one row per unit): the unit means of the covariates "
+        "must be uncorrelated with the unit effect.",
+        "Answers a question about differences between units, not changes within them.",
+    ],
+    "random": [
+        "The unit intercepts are random, with one variance, and uncorrelated with every "
+        "covariate on every occasion (check with hausman and mundlak_test).",
+        "Within and between effects of each covariate are equal (one coefficient).",
+        "Classical errors: homoskedastic unit effects and occasion errors.",
+    ],
+    "mundlak": [
+        "The unit effect may be correlated with the covariates, but only through the unit "
+        "means of the time-varying covariates (Mundlak 1978); the rest of it is random.",
+        "The coefficients of the time-varying covariates equal the fixed-effects ones; the "
+        "unit-mean terms are the between-minus-within differences.",
+        "Classical errors: homoskedastic unit effects and occasion errors.",
+    ],
+    "within_between": [
+        "Each time-varying covariate has a within effect (its deviation from the unit "
+        "mean) and a between effect (the unit mean), estimated separately.",
+        "The random intercept is uncorrelated with the unit means and the time-constant "
+        "covariates given the other terms.",
+        "Classical errors: homoskedastic unit effects and occasion errors.",
+    ],
+}
+_METHOD_NOTE = {
+    "swamy-arora": "Variance components by Swamy-Arora (unbalanced form of Baltagi and "
+                   "Chang 1994), truncated at zero.",
+    "ml": "Variance components by maximum likelihood under normal unit effects and errors; "
+          "tests use the normal distribution.",
+    "reml": "Variance components by restricted maximum likelihood under normal unit "
+            "effects and errors; tests use the normal distribution.",
+}
+
+
+# ---------------------------------------------------------------------- option checks
+def _check_options(estimator, method, cov):
+    if estimator not in ESTIMATORS:
+        raise choices_error("estimator", estimator, ESTIMATORS)
+    if cov not in COV_TYPES:
+        raise choices_error("cov", cov, COV_TYPES)
+    if estimator in _RANDOM_FAMILY:
+        method = "swamy-arora" if method is None else method
+        if method not in METHODS:
+            raise choices_error("method", method, METHODS)
+    elif method is not None:
+        raise SpecificationError(
+            f"method={method!r} applies to random, mundlak and within_between only; "
+            f"{estimator} has no variance components to estimate")
+    return method
+
+
+def _design_of(data, formula, occasion_effects):
+    from ..design import Design
+
+    if isinstance(data, Design):
+        if formula is not None and formula != data.spec.formula:
+            raise SpecificationError(
+                f"formula={formula!r} was given with a Design built for "
+                f"{data.spec.formula!r}; pass the panel instead, or no formula")
+        if occasion_effects and not data.spec.occasion_effects:
+            raise SpecificationError(
+                "occasion_effects=True was given with a Design built without them; build "
+                "it with panel.design(formula, occasion_effects=True)")
+        return data
+    if not hasattr(data, "design"):
+        raise SpecificationError(
+            f"data must be a bayespanel Panel or Design, got {type(data).__name__}")
+    if formula is None:
+        raise SpecificationError("formula is required with a Panel (for example 'y ~ x')")
+    return data.design(formula, occasion_effects=bool(occasion_effects))
+
+
+# ---------------------------------------------------------------------- public entries
+def pooled(data, formula=None, *, cov="classical", occasion_effects=False) -> ReferenceResult:
+    """Pooled least squares: one intercept for all units.
+
+    Parameters
+    ----------
+    data : Panel or Design
+    formula : str
+        Wilkinson formula, e.g. ``"y ~ x + z"`` (not needed with a Design).
+    cov : {"classical", "cluster", "cr2"}
+        Classical, cluster-robust by unit (CR1) or bias-reduced cluster-robust (CR2 with
+        Satterthwaite degrees of freedom).
+    occasion_effects : bool
+        Add one indicator per occasion (the first is the reference).
+
+    Returns
+    -------
+    ReferenceResult
+    """
+    return fit_design(_design_of(data, formula, occasion_effects), "pooled", cov=cov)
+
+
+def within(data, formula=None, *, cov="classical", occasion_effects=False) -> ReferenceResult:
+    """Fixed effects (within): least squares on unit-demeaned data.
+
+    The residual degrees of freedom are ``n - N - k`` (the unit means absorbed by
+    demeaning are charged). Covariates constant within units are dropped with a
+    :class:`~bayespanel.errors.DataHandlingWarning` naming them (also in
+    ``result.dropped``), as are units with a single row (counted in the warning). The
+    intercept is absorbed and not reported. CR1 charges ``k + 1`` coefficients in its
+    small-sample factor when the formula has an intercept (the usual convention for
+    fixed effects with clusters that nest the units); CR2 is computed as for the full
+    dummy-variable regression (Pustejovsky and Tipton 2018). Parameters as for
+    :func:`pooled`.
+    """
+    return fit_design(_design_of(data, formula, occasion_effects), "within", cov=cov)
+
+
+def between(data, formula=None, *, cov="classical", occasion_effects=False) -> ReferenceResult:
+    """Between: least squares on the unit means, one row per unit, units weighted equally.
+
+    With one row per unit, ``cov="cluster"`` is the heteroskedasticity-robust HC1 and
+    ``cov="cr2"`` is HC2 with Bell-McCaffrey degrees of freedom.
+    """
+    return fit_design(_design_of(data, formula, occasion_effects), "between", cov=cov)
+
+
+def random(data, formula=None, *, method="swamy-arora", cov="classical",
+           occasion_effects=False) -> ReferenceResult:
+    """Random intercept by feasible GLS.
+
+    Parameters
+    ----------
+    method : {"swamy-arora", "ml", "reml"}
+        Swamy-Arora variance components (the unbalanced-panel form of Baltagi and Chang
+        1994), or maximum / restricted maximum likelihood of the marginal model (profiled
+        over the coefficients and the occasion variance, maximised over the variance
+        ratio).
+    cov : {"classical", "cluster", "cr2"}
+        On the quasi-demeaned regression, treating the variance components as known.
+
+    Notes
+    -----
+    The GLS transformation subtracts ``theta_i`` times the unit mean from every row,
+    ``theta_i = 1 - sqrt(sigma^2 / (sigma^2 + T_i tau^2))``; see
+    :meth:`ReferenceResult.variance_partition`.
+    """
+    return fit_design(_design_of(data, formula, occasion_effects), "random", method=method,
+                      cov=cov)
+
+
+def mundlak(data, formula=None, *, method="swamy-arora", cov="classical",
+            occasion_effects=False) -> ReferenceResult:
+    """Random intercept with the unit means of the time-varying covariates added
+    (correlated random effects, Mundlak 1978). Terms ``x (unit mean)`` carry the
+    between-minus-within contrast; the ``x`` terms equal the fixed-effects estimates.
+    Parameters as for :func:`random`."""
+    return fit_design(_design_of(data, formula, occasion_effects), "mundlak", method=method,
+                      cov=cov)
+
+
+def within_between(data, formula=None, *, method="swamy-arora", cov="classical",
+                   occasion_effects=False) -> ReferenceResult:
+    """Random intercept with each time-varying covariate split into ``x (within)`` (the
+    deviation from its unit mean) and ``x (between)`` (the unit mean); the hybrid model of
+    Bell and Jones (2015). Parameters as for :func:`random`."""
+    return fit_design(_design_of(data, formula, occasion_effects), "within_between",
+                      method=method, cov=cov)
+
+
+def fit_design(design, estimator: str, *, method=None, cov="classical") -> ReferenceResult:
+    """Fit one reference estimator on a :class:`~bayespanel.design.Design`."""
+    method = _check_options(estimator, method, cov)
+    M, labels = design.matrices(_KIND[estimator])
+    res = fit_arrays(estimator, M, design.y, design.unit_codes, labels, method=method,
+                     cov=cov, outcome=design.outcome, units=design.units)
+    res.design = design
+    return res
+
+
+# ---------------------------------------------------------------------- array level
+def fit_arrays(estimator, X, y, unit_codes, labels, *, method=None, cov="classical",
+               outcome=None, units=None) -> ReferenceResult:
+    """Fit in closed form on arrays (no Panel or Design needed).
+
+    Parameters
+    ----------
+    estimator : str
+        One of ``ESTIMATORS``.
+    X : (n, k) array
+        The model's columns on the estimation rows: the original covariates for
+        ``"pooled"``, ``"within"``, ``"between"`` and ``"random"`` (within demeans and
+        between averages them here), ``Design.matrices("mundlak")`` or
+        ``Design.matrices("within_between")`` for those two.
+    y : (n,) array
+    unit_codes : (n,) array
+        Unit of each row (any integers; renumbered internally).
+    labels : list of str
+        Names of the columns of ``X``.
+    units : sequence, optional
+        Labels of the units, indexed by the sorted distinct ``unit_codes``.
+    """
+    method = _check_options(estimator, method, cov)
+    X = np.asarray(X, dtype=float)
+    if X.ndim == 1:
+        X = X[:, None]
+    y = np.asarray(y, dtype=float).ravel()
+    present, codes = np.unique(np.asarray(unit_codes), return_inverse=True)
+    codes = codes.ravel().astype(np.int64)
+    labels = list(labels)
+    if len(labels) != X.shape[1]:
+        raise SpecificationError(f"labels has {len(labels)} names for {X.shape[1]} columns")
+    ss = suffstats.compute(X, y, codes, names=labels + [outcome or "y"])
+    res = fit_stats(estimator, ss, labels, method=method, outcome=outcome)
+    unit_labels = present if units is None else np.asarray(units)[present]
+    res.extra["unit_labels"] = unit_labels
+    if cov != "classical":
+        _add_robust(res, estimator, cov, ss, X, y, codes)
+    return res
+
+
+def fit_stats(estimator, ss, labels, *, method=None, outcome=None) -> ReferenceResult:
+    """Point estimates, variance components and classical covariance from sufficient
+    statistics alone (:class:`bayespanel.suffstats.SuffStats` of ``[X, y]``, with ``X``
+    as in :func:`fit_arrays`)."""
+    method = _check_options(estimator, method, "classical")
+    labels = list(labels)
+    if estimator == "pooled":
+        fit = core.pooled_core(ss)
+    elif estimator == "within":
+        fit = core.within_core(ss)
+    elif estimator == "between":
+        fit = core.between_core(ss)
+    elif method == "swamy-arora":
+        fit = core.swamy_arora_core(ss)
+    else:
+        fit = core.likelihood_core(ss, method)
+    dropped = _report_dropped(estimator, ss, fit, labels)
+    cols = fit.cols
+    kept = [labels[j] for j in cols]
+    df = np.inf if method in ("ml", "reml") else fit.df_resid
+    s2u, s2e = fit.sigma2_unit, fit.sigma2_obs
+    # mean residual of each unit (the intercept left out for fixed effects), kept for
+    # plug-in predictions and the descriptive unit spread of fixed effects
+    ubar = ss.unit_mean[:, -1] - ss.unit_mean[:, cols] @ fit.beta
+    extra = dict(fit.extra)
+    if estimator == "within":
+        multi = ss.unit_count > 1
+        s2u = float(np.var(ubar[multi], ddof=1)) if multi.sum() > 1 else float("nan")
+    elif estimator == "between":
+        extra["sigma_between"] = float(np.sqrt(fit.sigma2))
+        s2e = float("nan")
+    extra.update(unit_resid_mean=ubar, unit_count=ss.unit_count.copy(), cols=cols,
+                 all_labels=labels, rss=fit.rss, sigma2=fit.sigma2, bread=fit.bread)
+    assumptions = list(_ASSUME[estimator])
+    if method:
+        assumptions.append(_METHOD_NOTE[method])
+    return ReferenceResult(
+        estimator=estimator, method=method, cov_type="classical", labels=kept,
+        coef=fit.beta, vcov=classical(fit.bread, fit.sigma2), df=df,
+        residual_df=fit.df_resid, sigma2_unit=s2u, sigma2_obs=s2e, n_obs=fit.n_obs,
+        n_units=fit.n_units, dropped=dropped, assumptions=assumptions,
+        lengths=fit.lengths, theta=fit.theta,
+        group_count=None if fit.lengths is None else ss.group_count.copy(),
+        loglik=fit.loglik, outcome=outcome, extra=extra, refit_info={"method": method},
+    )
+
+
+def _report_dropped(estimator, ss, fit, labels):
+    k = ss.p - 1
+    missing = [j for j in range(k) if j not in set(fit.cols.tolist())]
+    dropped = {}
+    if estimator == "within":
+        scale = np.diag(ss.total) + ss.n * ss.mean ** 2
+        constant = [j for j in missing if ss.within[j, j] <= COLLINEAR_TOL * scale[j]]
+        named = [labels[j] for j in constant if labels[j] != "Intercept"]
+        for j in missing:
+            if labels[j] == "Intercept":
+                continue
+            dropped[labels[j]] = ("constant within units" if j in constant else
+                                  "collinear with other terms after demeaning")
+        if named:
+            warnings.warn(
+                f"fixed effects cannot estimate covariates that are constant within units; "
+                f"dropped: {', '.join(map(repr, named))} (see result.dropped)",
+                DataHandlingWarning, skip_file_prefixes=(_PKG_DIR,))
+        other = [labels[j] for j in missing if j not in constant]
+        if other:
+            warnings.warn(
+                f"dropped {', '.join(map(repr, other))}: collinear with the other terms "
+                "once unit means are removed", DataHandlingWarning,
+                skip_file_prefixes=(_PKG_DIR,))
+        single = fit.extra.get("singletons", 0)
+        if single:
+            warnings.warn(
+                f"{single} unit(s) with a single row carry no within information and were "
+                f"dropped from the within estimation ({fit.n_obs} rows of {fit.n_units} "
+                "units remain)", DataHandlingWarning,
+                skip_file_prefixes=(_PKG_DIR,))
+        return dropped
+    for j in missing:
+        dropped[labels[j]] = "collinear with other terms"
+    # unit means of occasion indicators are constant in balanced panels: expected, quiet
+    loud = [labels[j] for j in missing if not labels[j].startswith("occasion[")]
+    if loud:
+        warnings.warn(
+            f"dropped {', '.join(map(repr, loud))} from the {estimator} fit: collinear with "
+            "the other terms on these rows (see result.dropped)",
+            DataHandlingWarning, skip_file_prefixes=(_PKG_DIR,))
+    return dropped
+
+
+# ---------------------------------------------------------------------- robust covariances
+def regression_rows(res, estimator, ss, X, y, codes):
+    """Rows, residuals and clusters of the regression that was solved.
+
+    Returns ``(Xr, e, clusters, G)``: the demeaned rows (fixed effects, single-row units
+    left out), the unit means (between, one cluster per unit), the quasi-demeaned rows
+    (random-intercept fits) or the rows themselves (pooled).
+    """
+    cols = res.extra["cols"]
+    beta = res._coef
+    if estimator == "pooled":
+        Xr = X[:, cols]
+        return Xr, y - Xr @ beta, codes, ss.n_units
+    if estimator == "between":
+        Xr = ss.unit_mean[:, cols]
+        return Xr, ss.unit_mean[:, -1] - Xr @ beta, np.arange(ss.n_units), ss.n_units
+    means = ss.unit_mean[codes]
+    if estimator == "within":
+        keep = ss.unit_count[codes] > 1
+        Xr = (X[:, cols] - means[:, cols])[keep]
+        yr = (y - means[:, -1])[keep]
+        _, cl = np.unique(codes[keep], return_inverse=True)
+        return Xr, yr - Xr @ beta, cl.ravel(), int(cl.max()) + 1
+    pos = np.searchsorted(ss.lengths, ss.unit_count)
+    th = res.theta_by_length[pos][codes]
+    Xr = X[:, cols] - th[:, None] * means[:, cols]
+    yr = y - th * means[:, -1]
+    return Xr, yr - Xr @ beta, codes, ss.n_units
+
+
+def _add_robust(res, estimator, cov, ss, X, y, codes):
+    Xr, e, cl, G = regression_rows(res, estimator, ss, X, y, codes)
+    bread = res.extra["bread"]
+    if cov == "cluster":
+        k = Xr.shape[1]
+        if estimator == "within" and core.intercept_column(ss) is not None:
+            k += 1
+        V = cr1(bread, cluster_scores(Xr, e, cl, G), Xr.shape[0], k)
+        df = np.full(len(res._coef), G - 1.0)
+    else:
+        V, df = cr2(Xr, e, cl, bread, G)
+    res._vcov = V
+    res._df = np.asarray(df, dtype=float)
+    res.cov_type = cov
+    res.extra["n_clusters"] = G
