@@ -54,6 +54,14 @@ class Panel:
     36
     """
 
+    def __new__(cls, df=None, *args, **kwargs):
+        # A Dask DataFrame takes the out-of-core path (bayespanel.engines.dask.DaskPanel).
+        if hasattr(df, "npartitions") and hasattr(df, "to_delayed"):
+            from .engines.dask import DaskPanel
+
+            return DaskPanel(df, *args, **kwargs)
+        return super().__new__(cls)
+
     def __init__(self, df, unit: str, time: str):
         if not isinstance(df, pd.DataFrame):
             if hasattr(df, "npartitions") and hasattr(df, "compute"):

@@ -1,0 +1,329 @@
+"""Per-partition work of the out-of-core pass, and the merges of its pieces (numpy only).
+
+Everything here runs on one pandas partition at a time (or on the small summaries two
+partitions leave behind), so it is the same code whatever scheduler runs it. The
+mathematics of the sufficient statistics is :mod:`bayespanel.suffstats`; this module
+adds what a partitioned pass needs around it:
+
+* the panel's structure (occasions per unit, duplicates, gaps) as per-unit bit masks over
+  the occasions, merged with OR (a unit-occasion pair seen twice shows up as a row count
+  above the number of distinct occasions);
+* listwise deletion counted per column, and the covariate matrix built per partition
+  (plain columns directly, row-wise transforms through formulaic);
+* optional per-unit within cross-products of ``[X, y]``, for cluster-robust scores,
+  merged across partitions with the same pairwise update as the totals (Chan, Golub and
+  LeVeque 1979);
+* :func:`augment`: the sufficient statistics of designs that add unit means of columns
+  (Mundlak, within-between), derived exactly from those of ``[X, y]``, with no second pass.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from .. import suffstats
+from ..errors import PanelDataError
+
+__all__ = ["StructurePiece", "DesignPiece", "augment", "augment_unit_cp", "select_columns"]
+
+
+def _plain(v):
+    return v.item() if isinstance(v, np.generic) else v
+
+
+# ---------------------------------------------------------------------------- occasions
+def occasions_block(pdf: pd.DataFrame, unit: str, time: str):
+    """Distinct occasions of one partition; refuses missing unit or time values."""
+    for role, col in (("unit", unit), ("time", time)):
+        miss = pdf[col].isna().to_numpy()
+        if miss.any():
+            where = int(np.flatnonzero(miss)[0])
+            raise PanelDataError(
+                f"{role} column {col!r} has missing value(s); first at row "
+                f"{_plain(pdf.index[where])!r}. Every row needs a unit and an occasion.")
+    return np.unique(pdf[time].to_numpy())
+
+
+def union(arrays):
+    arrays = [a for a in arrays if len(a)]
+    if not arrays:
+        return np.zeros(0)
+    try:
+        return np.unique(np.concatenate(arrays))
+    except TypeError as exc:
+        raise PanelDataError(f"cannot order the occasions (mixed types?): {exc}") from None
+
+
+# ---------------------------------------------------------------------------- structure
+@dataclass
+class StructurePiece:
+    """Per-unit row counts and occasion bit masks (``words`` uint64 per unit)."""
+
+    n_rows: int
+    keys: np.ndarray
+    counts: np.ndarray
+    masks: np.ndarray  # (units, words) uint64
+
+
+def _codes(keys):
+    try:
+        ukeys, codes = np.unique(keys, return_inverse=True)
+    except TypeError as exc:
+        raise PanelDataError(f"cannot order the units (mixed types?): {exc}") from None
+    return ukeys, codes.ravel()
+
+
+def structure_block(pdf, unit, time, occasions) -> StructurePiece:
+    words = max(1, -(-len(occasions) // 64))
+    keys = pdf[unit].to_numpy()
+    if len(keys) == 0:
+        return StructurePiece(0, keys, np.zeros(0, np.int64), np.zeros((0, words), np.uint64))
+    ukeys, codes = _codes(keys)
+    pos = np.searchsorted(occasions, pdf[time].to_numpy())
+    counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
+    masks = np.zeros((len(ukeys), words), dtype=np.uint64)
+    for w in range(words):
+        sel = (pos // 64) == w
+        bits = np.left_shift(np.uint64(1), (pos[sel] % 64).astype(np.uint64))
+        np.bitwise_or.at(masks[:, w], codes[sel], bits)
+    return StructurePiece(len(keys), ukeys, counts, masks)
+
+
+def merge_structure(pieces) -> StructurePiece:
+    pieces = [p for p in pieces if p.n_rows]
+    if not pieces:
+        raise PanelDataError("the table has no rows")
+    if len(pieces) == 1:
+        return pieces[0]
+    keys = np.concatenate([p.keys for p in pieces])
+    ukeys, inv = _codes(keys)
+    counts = np.bincount(inv, weights=np.concatenate([p.counts for p in pieces]),
+                         minlength=len(ukeys)).astype(np.int64)
+    allm = np.concatenate([p.masks for p in pieces])
+    masks = np.zeros((len(ukeys), allm.shape[1]), dtype=np.uint64)
+    for w in range(allm.shape[1]):
+        np.bitwise_or.at(masks[:, w], inv, allm[:, w])
+    return StructurePiece(sum(p.n_rows for p in pieces), ukeys, counts, masks)
+
+
+def observed_occasions(masks: np.ndarray) -> np.ndarray:
+    """Number of distinct occasions per unit (popcount of the masks)."""
+    return np.bitwise_count(masks).sum(axis=1).astype(np.int64)
+
+
+def occasion_positions(mask_row: np.ndarray) -> np.ndarray:
+    """Positions (into the sorted occasions) of the bits set in one unit's mask."""
+    bits = np.unpackbits(mask_row.astype("<u8").view(np.uint8), bitorder="little")
+    return np.flatnonzero(bits)
+
+
+# ---------------------------------------------------------------------------- describe
+@dataclass
+class DescribePiece:
+    n_missing: np.ndarray
+    parts: list
+    maxabs: np.ndarray
+
+
+def describe_block(pdf, unit, columns) -> DescribePiece:
+    keys = pdf[unit].to_numpy()
+    parts, n_missing, maxabs = [], [], []
+    for c in columns:
+        x = pdf[c].to_numpy(dtype=float, na_value=np.nan)
+        ok = ~np.isnan(x)
+        _check_inf(x[ok], pdf.loc[ok], c, unit)
+        n_missing.append(int((~ok).sum()))
+        parts.append(suffstats.partial(x[ok, None], keys[ok]))
+        maxabs.append(float(np.abs(x[ok]).max()) if ok.any() else 0.0)
+    return DescribePiece(np.asarray(n_missing, np.int64), parts, np.asarray(maxabs))
+
+
+def merge_describe(pieces) -> DescribePiece:
+    out = pieces[0]
+    for p in pieces[1:]:
+        out = DescribePiece(out.n_missing + p.n_missing,
+                            [suffstats.merge(a, b) for a, b in zip(out.parts, p.parts)],
+                            np.maximum(out.maxabs, p.maxabs))
+    return out
+
+
+def _check_inf(x, sub, column, unit, time=None):
+    bad = np.isinf(x)
+    if bad.any():
+        r = int(np.flatnonzero(bad)[0])
+        where = f"{unit}={_plain(sub[unit].iloc[r])!r}"
+        if time is not None:
+            where += f", {time}={_plain(sub[time].iloc[r])!r}"
+        raise PanelDataError(
+            f"column {column!r} has {int(bad.sum())} infinite value(s) in this partition; the "
+            f"first at {where}. Replace them by missing values or fix the source.")
+
+
+# ---------------------------------------------------------------------------- design pass
+@dataclass(frozen=True)
+class BlockSpec:
+    """What every partition needs to build its rows of ``[X, y]`` (picklable)."""
+
+    unit: str
+    time: str
+    outcome: str
+    used: tuple            # columns whose missing values drop a row
+    terms: tuple           # covariate names, in order
+    plain: tuple | None    # per term: column name or None for the intercept (fast path)
+    rhs: str               # formula right-hand side (slow path through formulaic)
+    occasions: tuple = ()  # occasions given an indicator (occasion effects)
+    unit_cp: bool = False  # collect per-unit within cross-products
+
+
+@dataclass
+class DesignPiece:
+    """What one partition (or a merge of several) leaves behind."""
+
+    n_input: int
+    missing: np.ndarray     # per used column
+    n_dropped: int
+    maxabs: np.ndarray      # per column of [X, y]
+    part: suffstats.Partial
+    unit_cp: np.ndarray | None = field(default=None)  # (units, p, p) within cross-products
+
+
+def _build_X(sub: pd.DataFrame, spec: BlockSpec) -> np.ndarray:
+    n = len(sub)
+    if spec.plain is not None:
+        cols = [np.ones(n) if c is None else sub[c].to_numpy(dtype=float) for c in spec.plain]
+        X = np.column_stack(cols) if cols else np.zeros((n, 0))
+    else:
+        from formulaic import Formula
+
+        from ..formula import safe_context
+
+        mm = Formula(spec.rhs).get_model_matrix(
+            sub.reset_index(drop=True), context=safe_context(), ensure_full_rank=False,
+            na_action="raise")
+        got = [str(c) for c in mm.columns]
+        if got != list(spec.terms[:len(got)]) or len(got) + len(spec.occasions) != len(spec.terms):
+            raise PanelDataError(f"the formula gave columns {got} on one partition, expected "
+                                 f"{list(spec.terms)}")
+        X = np.asarray(mm, dtype=float)
+    if spec.occasions:
+        tv = sub[spec.time].to_numpy()
+        X = np.column_stack([X] + [(tv == o).astype(float) for o in spec.occasions])
+    return X
+
+
+def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
+    """Rows of one partition: listwise deletion, ``[X, y]``, its :class:`Partial`."""
+    n_input = len(pdf)
+    used = list(spec.used)
+    miss = pdf[used].isna().to_numpy() if used else np.zeros((n_input, 0), bool)
+    missing = miss.sum(axis=0).astype(np.int64)
+    keep = ~miss.any(axis=1)
+    sub = pdf.loc[keep]
+    for c in used:
+        if c != spec.time and pd.api.types.is_numeric_dtype(sub[c]):
+            _check_inf(sub[c].to_numpy(dtype=float), sub, c, spec.unit, spec.time)
+    X = _build_X(sub, spec)
+    y = sub[spec.outcome].to_numpy(dtype=float)
+    if X.size and not np.all(np.isfinite(X)):
+        bad = int(np.flatnonzero(~np.isfinite(X).all(axis=0))[0])
+        r = int(np.flatnonzero(~np.isfinite(X[:, bad]))[0])
+        raise PanelDataError(
+            f"term {spec.terms[bad]!r} is not finite at {spec.unit}="
+            f"{_plain(sub[spec.unit].iloc[r])!r}, {spec.time}={_plain(sub[spec.time].iloc[r])!r}"
+            " (a transform such as log of a non-positive value?)")
+    Z = np.column_stack([X, y])
+    keys = sub[spec.unit].to_numpy()
+    part = suffstats.partial(Z, keys)
+    maxabs = np.abs(Z).max(axis=0) if len(Z) else np.zeros(Z.shape[1])
+    ucp = None
+    if spec.unit_cp:
+        ucp = _unit_cp(Z, keys, part)
+    return DesignPiece(n_input, missing, int((~keep).sum()), maxabs, part, ucp)
+
+
+def _unit_cp(Z, keys, part) -> np.ndarray:
+    """Per-unit within cross-products ``sum_t (z_t - zbar_i)(z_t - zbar_i)'`` (units, p, p)."""
+    p = Z.shape[1]
+    out = np.zeros((len(part.keys), p, p))
+    if len(Z) == 0:
+        return out
+    codes = np.searchsorted(part.keys, keys)
+    D = (Z - part.ref) - part.offsets[codes]
+    for a in range(p):
+        for b in range(a, p):
+            v = np.bincount(codes, weights=D[:, a] * D[:, b], minlength=len(part.keys))
+            out[:, a, b] = v
+            out[:, b, a] = v
+    return out
+
+
+def _merge_unit_cp(a: DesignPiece, b: DesignPiece, merged: suffstats.Partial):
+    """Per-unit cross-products of two pieces: fragments of a unit combine with the
+    between-fragment term ``sum_f n_f (m_f - m)(m_f - m)'`` (Chan, Golub and LeVeque 1979)."""
+    pa, pb = a.part, b.part
+    if pa.n == 0:
+        return b.unit_cp
+    if pb.n == 0:
+        return a.unit_cp
+    cps = np.concatenate([a.unit_cp, b.unit_cp])
+    counts = np.concatenate([pa.counts, pb.counts])
+    offsets = np.concatenate([pa.offsets, pb.offsets + (pb.ref - pa.ref)])
+    inv = np.searchsorted(merged.keys, np.concatenate([pa.keys, pb.keys]))
+    out = np.zeros((len(merged.keys),) + cps.shape[1:])
+    np.add.at(out, inv, cps)
+    dev = offsets - (merged.offsets + (merged.ref - pa.ref))[inv]
+    np.add.at(out, inv, counts[:, None, None] * dev[:, :, None] * dev[:, None, :])
+    return out
+
+
+def merge_design(pieces) -> DesignPiece:
+    """Merge the pieces of several partitions (units may be split between them)."""
+    out = pieces[0]
+    for p in pieces[1:]:
+        part = suffstats.merge(out.part, p.part)
+        ucp = _merge_unit_cp(out, p, part) if out.unit_cp is not None else None
+        out = DesignPiece(out.n_input + p.n_input, out.missing + p.missing,
+                          out.n_dropped + p.n_dropped, np.maximum(out.maxabs, p.maxabs),
+                          part, ucp)
+    return out
+
+
+# ---------------------------------------------------------------------------- derived designs
+def augment(stats: suffstats.SuffStats, A: np.ndarray, B: np.ndarray, names=None):
+    """Sufficient statistics of rows ``A z_it + B zbar_i`` from those of ``z_it``.
+
+    A design whose columns are linear in a row and in its unit mean (the Mundlak unit
+    means, the within and between parts of the hybrid model) needs no second pass:
+    deviations from the unit mean are ``A (z_it - zbar_i)``, so the within block is
+    ``A W A'``; the unit means are ``(A + B) zbar_i``; and the total cross-products are
+    the within block plus the ``T_i``-weighted cross-products of the unit means about
+    the global mean (the analysis-of-variance decomposition). Exact in exact arithmetic.
+    """
+    C = A + B
+    within = A @ stats.within @ A.T
+    mean = C @ stats.mean
+    dev = (stats.unit_mean - stats.mean) @ C.T
+    total = within + (dev * stats.unit_count[:, None]).T @ dev
+    part = suffstats.Partial(int(stats.n), mean, np.zeros_like(mean), total, within,
+                             stats.unit_keys, stats.unit_count, dev)
+    return suffstats.finalize(part, names=names)
+
+
+def augment_unit_cp(unit_cp: np.ndarray, A: np.ndarray) -> np.ndarray:
+    """Per-unit within cross-products of ``A z_it + B zbar_i``: ``A W_i A'``."""
+    return np.einsum("ij,gjk,lk->gil", A, unit_cp, A)
+
+
+def select_columns(stats: suffstats.SuffStats, cols, names=None):
+    """Sufficient statistics of a subset of the columns (``y`` must be among ``cols``)."""
+    c = np.asarray(cols, dtype=np.int64)
+    ix = np.ix_(c, c)
+    return suffstats.SuffStats(
+        n=stats.n, n_units=stats.n_units, mean=stats.mean[c], total=stats.total[ix],
+        within=stats.within[ix], unit_count=stats.unit_count, unit_mean=stats.unit_mean[:, c],
+        lengths=stats.lengths, group_count=stats.group_count,
+        group_mean=stats.group_mean[:, c], group_cp=stats.group_cp[:, c][:, :, c],
+        unit_keys=stats.unit_keys, names=names)
