@@ -1,6 +1,7 @@
 """Command line: ``python -m bayespanel VERB ...`` (also installed as ``bayespanel``).
 
-Exit codes: 0 success, 2 bad input (the message names the problem), 1 failure.
+Verbs: ``demo``, ``describe FILE``, ``fit [FILE]`` and ``report DIR``. Exit codes: 0
+success, 2 bad input (the message names the problem), 1 failure. See docs/cli.md.
 """
 
 from __future__ import annotations
@@ -8,12 +9,18 @@ from __future__ import annotations
 import argparse
 import sys
 import warnings
+from pathlib import Path
 
 import pandas as pd
 
-from .errors import BayespanelError
+from .errors import BayespanelError, SpecificationError
 
 EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT = 0, 1, 2
+
+_MODELS_HELP = ("comma-separated Bayesian models: pooled, random_intercept, within_between, "
+                "correlated_effects, fixed_effects, or 'none' (default: all five)")
+_REF_HELP = ("comma-separated reference fits: pooled, within, between, random, mundlak, "
+             "within_between, or 'none' (default: all six)")
 
 
 def _print_describe(panel) -> None:
@@ -28,19 +35,43 @@ def _print_describe(panel) -> None:
         print(panel.describe())
 
 
-def cmd_demo(args) -> int:
-    from .datasets import clinic_panel
-    from .panel import Panel
-
-    df, truth = clinic_panel(seed=args.seed)
-    panel = Panel(df, unit=truth["unit"], time=truth["time"])
-    print("Demo scenario: simulated clinics, quarterly patient-satisfaction scores.")
-    print(f"Formula: {truth['formula']}")
-    _print_describe(panel)
-    print("True values used to simulate:", truth)
-    return EXIT_OK
+def _names(text):
+    if text is None:
+        return None
+    text = text.strip()
+    if text.lower() == "none":
+        return ()
+    return tuple(x.strip() for x in text.split(",") if x.strip())
 
 
+def parse_prior(text: str):
+    """``KEY=FAMILY`` or ``KEY=FAMILY:param=value,param=value`` -> (key, spec)."""
+    if "=" not in text:
+        raise SpecificationError(
+            f"--prior {text!r} must look like KEY=FAMILY or KEY=FAMILY:param=value, e.g. "
+            "sigma_unit=gamma2 or 'coef=normal:sigma=10'")
+    key, spec = text.split("=", 1)
+    key, spec = key.strip(), spec.strip()
+    if ":" not in spec:
+        return key, spec
+    family, params = spec.split(":", 1)
+    out = {"family": family.strip()}
+    for part in params.split(","):
+        if not part.strip():
+            continue
+        if "=" not in part:
+            raise SpecificationError(f"--prior {text!r}: parameter {part.strip()!r} needs a "
+                                     "value, as in sigma=10")
+        k, v = part.split("=", 1)
+        try:
+            out[k.strip()] = float(v)
+        except ValueError:
+            raise SpecificationError(f"--prior {text!r}: {k.strip()}={v.strip()!r} is not a "
+                                     "number") from None
+    return key, out
+
+
+# ---------------------------------------------------------------------- verbs
 def cmd_describe(args) -> int:
     from .panel import Panel
 
@@ -49,18 +80,160 @@ def cmd_describe(args) -> int:
     return EXIT_OK
 
 
+def _settings_from_args(args):
+    from .runner import Settings, load_settings
+
+    priors = dict(parse_prior(p) for p in (args.prior or []))
+    over = {
+        "data": str(Path(args.file).resolve()) if args.file else None,
+        "unit": args.unit, "time": args.time, "formula": args.formula,
+        "models": _names(args.models), "reference": _names(args.reference),
+        "draws": args.draws, "tune": args.tune, "chains": args.chains, "seed": args.seed,
+        "sampler": args.sampler, "cov": args.cov, "re_method": args.method,
+        "level": args.level, "rope": args.rope, "interval": args.interval,
+        "occasion_effects": True if args.occasion_effects else None, "title": args.title,
+        "ppc_draws": args.ppc_draws,
+    }
+    if args.config:
+        s = load_settings(args.config, **over)
+        if priors:
+            from dataclasses import replace
+            s = replace(s, priors={**s.priors, **priors})
+        return s.check()
+    missing = [f"--{k}" for k in ("unit", "time", "formula") if over[k] is None]
+    if not args.file:
+        missing.insert(0, "FILE")
+    if missing:
+        raise SpecificationError(f"fit needs {', '.join(missing)} (or --config ANALYSIS.toml)")
+    over["priors"] = priors
+    return Settings(**{k: v for k, v in over.items() if v is not None}).check()
+
+
+def cmd_fit(args) -> int:
+    from .runner import run
+
+    settings = _settings_from_args(args)
+    out = Path(args.out)
+    results = run(settings, out=out, quiet=args.quiet, progress_bars=args.progress_bars)
+    _print_summary(results)
+    print(f"report: {(out / 'report.html').resolve()}")
+    return EXIT_OK
+
+
+def cmd_report(args) -> int:
+    from .report import load_results, write_report
+
+    folder = Path(args.folder)
+    results = load_results(folder)
+    target = Path(args.out) if args.out else folder
+    write_report(results, target)
+    print(f"report: {(target / 'report.html').resolve()}")
+    return EXIT_OK
+
+
+def _fmt(v):
+    return "–" if v is None else f"{v:.3f}"
+
+
+def _print_summary(results, truth=None) -> None:
+    """Estimates per model (truth beside them for simulated data) and the comparison."""
+    by = (results.get("truth") or {}).get("by_model", {})
+    for m in results["models"]:
+        print(f"\n{m['title']} (Bayesian; posterior mean and "
+              f"{100 * results['settings']['interval']:g}% interval)")
+        known = by.get(m["name"], {})
+        for c in m["coefficients"]:
+            tv = known.get(c["term"])
+            extra = f"   true {tv:.3f}" if tv is not None else ""
+            print(f"  {c['term']:<28} {_fmt(c['mean']):>9}  [{_fmt(c['lower'])}, "
+                  f"{_fmt(c['upper'])}]{extra}")
+        for q in m.get("scale", []):
+            tv = (results.get("truth") or {}).get(q["name"]) if known else None
+            extra = f"   true {tv:.3f}" if tv is not None else ""
+            print(f"  {q['name']:<28} {_fmt(q['mean']):>9}  [{_fmt(q['lower'])}, "
+                  f"{_fmt(q['upper'])}]{extra}")
+        for w in m["diagnostics"]["warnings"]:
+            print(f"  warning: {w}")
+    comp = results.get("comparison")
+    if comp and comp.get("rows"):
+        print(f"\nLOO comparison ({comp['level']} level; ELPD difference to the best, SE):")
+        for r in comp["rows"]:
+            note = f"  ({r['note']})" if r.get("note") else ""
+            print(f"  {r['title']:<40} {_fmt(r.get('elpd_diff')):>9}  {_fmt(r.get('se_diff'))}"
+                  f"{note}")
+
+
+def cmd_demo(args) -> int:
+    from .datasets import clinic_panel
+    from .panel import Panel
+    from .runner import Settings, run
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        df, truth = clinic_panel(seed=args.seed)
+    panel = Panel(df, unit=truth["unit"], time=truth["time"])
+    print("Demo scenario: simulated clinics, quarterly patient-satisfaction scores.")
+    print(f"Formula: {truth['formula']}")
+    _print_describe(panel)
+    print(f"True values: within effects {truth['within']}, between effects {truth['between']}, "
+          f"time-constant {truth['constant']}, sigma_unit {truth['sigma_unit']}, "
+          f"sigma_obs {truth['sigma_obs']}, ICC {truth['icc']:.3f}")
+    out = Path(args.out)
+    csv = out / "clinic_panel.csv"
+    out.mkdir(parents=True, exist_ok=True)
+    df.to_csv(csv, index=False)
+    settings = Settings(data=str(csv.resolve()), unit=truth["unit"], time=truth["time"],
+                        formula=truth["formula"], draws=args.draws, tune=args.tune,
+                        chains=args.chains, seed=args.seed, title="Demo: simulated clinic panel",
+                        level=args.level)
+    results = run(settings, out=out, truth=truth, quiet=args.quiet)
+    _print_summary(results)
+    print(f"\nreport: {(out / 'report.html').resolve()}")
+    print(f"rerun exactly: bayespanel fit --config {out / 'analysis.toml'} --out NEW_FOLDER")
+    return EXIT_OK
+
+
+# ---------------------------------------------------------------------- parser
+def _sampling_args(p, draws, tune, chains):
+    g = p.add_argument_group("sampling")
+    g.add_argument("--draws", type=int, default=draws,
+                   help=f"posterior draws per chain (default {draws})")
+    g.add_argument("--tune", type=int, default=tune,
+                   help=f"tuning steps per chain, discarded (default {tune})")
+    g.add_argument("--chains", type=int, default=chains, help=f"chains (default {chains})")
+    g.add_argument("--seed", type=int, default=None,
+                   help="seed of every random draw; the same seed repeats the run (default 1)")
+    return g
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="bayespanel",
         description="Bayesian and reference fits of panel-data models (pooled, fixed effects, "
-                    "random intercept, within-between, Mundlak) with LOO comparison.",
+                    "random intercept, within-between, Mundlak) with LOO comparison. "
+                    "Exit codes: 0 success, 2 bad input, 1 failure.",
     )
+    parser.add_argument("--debug", action="store_true",
+                        help="show the full traceback when a run fails")
     sub = parser.add_subparsers(dest="verb", required=True, metavar="VERB")
-    p = sub.add_parser("demo", help="run the whole job on the built-in simulated clinic panel",
-                       description="Run on the built-in simulated clinic panel, whose true "
-                                   "values are known, and print them beside the estimates.")
-    p.add_argument("--seed", type=int, default=2026, help="seed of the simulated panel (default 2026)")
+
+    p = sub.add_parser(
+        "demo", help="run the whole job on the built-in simulated clinic panel",
+        description="Simulate the clinic panel (true values known), fit the reference and "
+                    "Bayesian models, compare them by LOO, write the report and print the "
+                    "estimates beside the true values.")
+    p.add_argument("--seed", type=int, default=2026,
+                   help="seed of the simulated panel and of the sampler (default 2026)")
+    p.add_argument("--out", default="bayespanel-demo",
+                   help="output folder (default ./bayespanel-demo)")
+    p.add_argument("--draws", type=int, default=1000, help="draws per chain (default 1000)")
+    p.add_argument("--tune", type=int, default=1000, help="tuning steps per chain (default 1000)")
+    p.add_argument("--chains", type=int, default=4, help="chains (default 4)")
+    p.add_argument("--level", default="occasion", choices=["occasion", "unit"],
+                   help="LOO level of the comparison (default occasion)")
+    p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.set_defaults(func=cmd_demo)
+
     p = sub.add_parser("describe", help="check a table and decompose each variable within/between",
                        description="Read a CSV or Parquet file, check it as a panel and print, "
                                    "per variable, the overall, between and within SDs.")
@@ -68,6 +241,66 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--unit", required=True, help="column identifying the units")
     p.add_argument("--time", required=True, help="column identifying the occasions")
     p.set_defaults(func=cmd_describe)
+
+    p = sub.add_parser(
+        "fit", help="fit models to a CSV or Parquet file and write results and a report",
+        description="Fit reference and Bayesian panel models on the same rows, compare them "
+                    "by LOO and write results.json, posteriors/*.nc, tables/ and report.html "
+                    "into --out. Settings come from the options, from --config (an analysis "
+                    "file, TOML) or both; options override the file. The folder gets "
+                    "analysis.toml, which repeats the run exactly.",
+        epilog="example: bayespanel fit clinics.csv --unit clinic --time quarter "
+               "--formula 'satisfaction ~ staffing + caseload + rural' "
+               "--models random_intercept,within_between --out run1")
+    p.add_argument("file", nargs="?", help="CSV or Parquet file (or give it in --config)")
+    p.add_argument("--config", metavar="TOML", help="analysis file with the settings")
+    p.add_argument("--out", required=True, metavar="DIR", help="output folder (created)")
+    g = p.add_argument_group("data and model")
+    g.add_argument("--unit", help="column identifying the units")
+    g.add_argument("--time", help="column identifying the occasions")
+    g.add_argument("--formula", help="Wilkinson formula, e.g. 'y ~ x + z' (unit effects come "
+                   "from the model, not the formula)")
+    g.add_argument("--models", help=_MODELS_HELP)
+    g.add_argument("--occasion-effects", action="store_true",
+                   help="add one indicator per occasion to every model")
+    g.add_argument("--prior", action="append", metavar="KEY=SPEC",
+                   help="prior override, repeatable: KEY is a term label, 'coef' (all slopes), "
+                        "'sigma_obs' or 'sigma_unit'; SPEC is a family (normal, student_t, "
+                        "flat, half_normal, half_student_t, exponential, gamma2, half_flat) "
+                        "optionally with parameters, e.g. sigma_unit=gamma2 or "
+                        "'coef=normal:sigma=10'")
+    g = _sampling_args(p, None, None, None)
+    g.add_argument("--sampler", choices=["auto", "pymc", "nutpie"], default=None,
+                   help="NUTS implementation (default auto: picked by model size)")
+    g.add_argument("--ppc-draws", type=int, default=None,
+                   help="posterior draws used for predictive checks (default 200)")
+    g.add_argument("--progress-bars", action="store_true", help="show the sampler's progress bars")
+    g = p.add_argument_group("reference fits and comparison")
+    g.add_argument("--reference", help=_REF_HELP)
+    g.add_argument("--cov", choices=["classical", "cluster", "cr2"], default=None,
+                   help="covariance of the reference fits (default cluster: CR1 by unit)")
+    g.add_argument("--method", choices=["swamy-arora", "ml", "reml"], default=None,
+                   help="variance components of the random-intercept reference fits "
+                        "(default swamy-arora)")
+    g.add_argument("--level", choices=["occasion", "unit"], default=None,
+                   help="LOO level: occasion = new occasions of known units, unit = new "
+                        "units (default occasion)")
+    g.add_argument("--rope", type=float, default=None,
+                   help="half-width of the region of practical equivalence for the "
+                        "between-minus-within contrasts (outcome units per covariate unit)")
+    g.add_argument("--interval", type=float, default=None,
+                   help="probability of every reported interval (default 0.95)")
+    g.add_argument("--title", help="title of the report")
+    g.add_argument("--quiet", action="store_true", help="no progress lines")
+    p.set_defaults(func=cmd_fit)
+
+    p = sub.add_parser(
+        "report", help="rebuild report.html and tables from a saved results folder",
+        description="Read results.json from a folder written by fit (or demo) and write "
+                    "report.html and tables/ again, without refitting.")
+    p.add_argument("folder", help="output folder of an earlier fit")
+    p.add_argument("--out", metavar="DIR", help="write there instead of into FOLDER")
+    p.set_defaults(func=cmd_report)
     return parser
 
 
@@ -83,6 +316,12 @@ def main(argv=None) -> int:
         return EXIT_BAD_INPUT
     except KeyboardInterrupt:
         print("bayespanel: interrupted", file=sys.stderr)
+        return EXIT_FAILURE
+    except Exception as exc:  # a failure, not bad input: say what and how to see more
+        if args.debug:
+            raise
+        print(f"bayespanel: failed: {type(exc).__name__}: {exc} (rerun with --debug for the "
+              "traceback)", file=sys.stderr)
         return EXIT_FAILURE
 
 

@@ -1,0 +1,445 @@
+"""``report.html``: one self-contained page built from the contents of ``results.json``.
+
+The page is a pure function of the results dictionary (figures included), so
+``bayespanel report DIR`` rebuilds exactly the file that ``bayespanel fit`` wrote.
+Every string that can come from a user (column names, labels, file names, the title)
+passes through :func:`esc`; markup we build ourselves is marked :class:`Safe`, so nothing
+is escaped twice and nothing is forgotten. Figures are ``<img>`` elements with ``data:``
+URIs, which browsers never run scripts from.
+"""
+
+from __future__ import annotations
+
+import html as _html
+import math
+from importlib import resources
+
+from . import figures, tables
+from .text import CAUTION, LEVEL_TEXT
+
+__all__ = ["Safe", "esc", "fmt", "render", "SECTIONS"]
+
+SECTIONS = [
+    ("overview", "At a glance"),
+    ("data", "The data"),
+    ("models", "The models and what they assume"),
+    ("coefficients", "Coefficients side by side"),
+    ("partition", "Variance between and within units"),
+    ("contrasts", "Within versus between"),
+    ("comparison", "Predictive comparison"),
+    ("diagnostics", "Sampling diagnostics"),
+    ("checks", "Posterior predictive checks"),
+    ("caution", "Reading the results"),
+    ("rerun", "Rerunning this analysis"),
+]
+
+
+class Safe(str):
+    """Markup built by this module (already escaped)."""
+
+
+def esc(value) -> Safe:
+    """Escape any value for HTML text and attribute context."""
+    if isinstance(value, Safe):
+        return value
+    return Safe(_html.escape("" if value is None else str(value), quote=True))
+
+
+def join(parts, sep="") -> Safe:
+    return Safe(esc(sep).join(esc(p) for p in parts))
+
+
+def tag(name: str, *body, cls: str | None = None, **attrs) -> Safe:
+    a = f' class="{esc(cls)}"' if cls else ""
+    for k, v in attrs.items():
+        a += f' {k.rstrip("_").replace("_", "-")}="{esc(v)}"'
+    return Safe(f"<{name}{a}>{join(body)}</{name}>")
+
+
+def fmt(x, digits: int = 3) -> str:
+    """Numbers for tables: fixed decimals in the usual range, significant digits outside."""
+    if x is None:
+        return "–"
+    if isinstance(x, bool):
+        return "yes" if x else "no"
+    if isinstance(x, int):
+        return f"{x:,}"
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return str(x)
+    if not math.isfinite(v):
+        return "–"
+    if v != 0 and (abs(v) >= 1e5 or abs(v) < 10 ** -digits):
+        return f"{v:.{digits}g}"
+    return f"{v:.{digits}f}"
+
+
+def fmt_p(p) -> str:
+    if p is None:
+        return "–"
+    return "< 0.001" if p < 0.001 else f"{p:.3f}"
+
+
+def table(columns, rows, caption=None, numeric=None) -> Safe:
+    """A table; ``columns`` are headings, ``rows`` lists of cells (values or Safe markup).
+
+    The first column is the row name. ``numeric`` lists the column indices set right.
+    """
+    numeric = set(range(1, len(columns))) if numeric is None else set(numeric)
+    head = join(tag("th", c, cls="num" if i in numeric else None) for i, c in enumerate(columns))
+    body = []
+    for r in rows:
+        if isinstance(r, Safe):
+            body.append(r)
+            continue
+        cells = []
+        for i, c in enumerate(r):
+            cls = "rowname" if i == 0 else ("num" if i in numeric else None)
+            cells.append(tag("td", c if isinstance(c, Safe) else fmt(c) if i else esc(c), cls=cls))
+        body.append(tag("tr", *cells))
+    cap = tag("caption", caption) if caption else ""
+    return tag("div", tag("table", cap, tag("thead", tag("tr", head)), tag("tbody", *body),
+                          cls="bp-grid"), cls="bp-scroll")
+
+
+def note(kind: str, text, lead: str | None = None) -> Safe:
+    return tag("div", tag("b", lead) if lead else "", text, cls=f"bp-note {kind}")
+
+
+def figure(uri: str | None, alt: str, caption: str, fig_id: str) -> Safe:
+    if not uri:
+        return Safe("")
+    return tag("figure", Safe(f'<img src="{esc(uri)}" alt="{esc(alt)}">'),
+               tag("figcaption", caption), cls="bp-fig", id=fig_id, data_figure=fig_id)
+
+
+def pairs(items) -> Safe:
+    return tag("dl", *[Safe(tag("dt", k) + tag("dd", v)) for k, v in items], cls="bp-pairs")
+
+
+def _interval(lo, hi) -> str:
+    return f"[{fmt(lo)}, {fmt(hi)}]"
+
+
+def _pct(prob) -> str:
+    return f"{100 * float(prob):g}%"
+
+
+# ---------------------------------------------------------------------- sections
+def _overview(r) -> Safe:
+    d = r["data"]
+    s = d["structure"]
+    facts = [
+        (s["n_units"], f"units ({d['unit']})"),
+        (s["n_occasions"], f"occasions ({d['time']})"),
+        (d["sample"]["n_rows"], "rows used"),
+        (len(r["models"]), "Bayesian models"),
+        (len(r["reference"]), "reference fits"),
+    ]
+    box = tag("div", *[tag("div", tag("b", fmt(v)), tag("small", k), cls="bp-fact")
+                       for v, k in facts], cls="bp-keyfacts")
+    parts = [box, tag("p", "Outcome ", tag("code", d["outcome"]), ", formula ",
+                      tag("code", d["formula"]), ".")]
+    comp = r.get("comparison") or {}
+    best = [row for row in comp.get("rows", []) if row.get("elpd_diff") == 0]
+    if best:
+        parts.append(note("info", f"Best predictive accuracy ({comp['level']} level): "
+                          f"{best[0]['title']}.", "LOO."))
+    n_warn = sum(len(m["diagnostics"].get("warnings", [])) for m in r["models"])
+    if n_warn:
+        parts.append(note("caution", f"{n_warn} sampling warning(s); see the diagnostics "
+                          "section before relying on the estimates.", "Check."))
+    elif r["models"]:
+        parts.append(note("fine", "No sampling warnings: R-hat, ESS, divergences and "
+                          "energy are within the usual thresholds.", "Sampling."))
+    for w in r.get("warnings", []):
+        parts.append(note("caution", w, "Note."))
+    return join(parts)
+
+
+def _data(r) -> Safe:
+    d = r["data"]
+    s = d["structure"]
+    smp = d["sample"]
+    src = d.get("source") or {}
+    items = [("source", src.get("file") or "in-memory table"),
+             ("unit / occasion", f"{d['unit']} / {d['time']}"),
+             ("rows in the table", fmt(s["n_rows"])),
+             ("balance", "balanced" if s["balanced"] else
+              f"unbalanced: {s['occasions_min']} to {s['occasions_max']} occasions per unit "
+              f"(median {fmt(s['occasions_median'], 1)})"),
+             ("units with gaps", fmt(s["n_units_with_gaps"])),
+             ("units seen once", fmt(s["n_singleton_units"])),
+             ("estimation sample", f"{fmt(smp['n_rows'])} rows of {fmt(smp['n_units'])} units")]
+    out = [pairs(items)]
+    if smp.get("n_dropped"):
+        det = ", ".join(f"{k}: {v}" for k, v in smp.get("dropped_by_column", {}).items())
+        out.append(note("caution", f"{smp['n_dropped']} rows with missing values were left "
+                        f"out of every model ({det}); unit means use the remaining rows.",
+                        "Missing values."))
+    rows = [[v["variable"], v["n"], v["mean"], v["sd_overall"], v["sd_between"], v["sd_within"],
+             v["share_within"], Safe(esc("yes" if v["varies_within"] else "no"))]
+            for v in d["variables"]]
+    out.append(table(["variable", "n", "mean", "SD overall", "SD between", "SD within",
+                      "share within", "varies within"], rows,
+                     caption="Each variable's spread split into differences between units "
+                             "(SD of the unit means) and changes within units."))
+    return join(out)
+
+
+def _models(r) -> Safe:
+    cards = [tag("div", tag("h3", tag("span", "Bayesian", cls="bp-tag bayes"), m["title"]),
+                 tag("p", m["assumptions"]), cls="bp-card") for m in r["models"]]
+    out = [tag("p", "Bayesian models are sampled with the priors listed below; reference "
+               "fits are closed-form frequentist estimates on exactly the same rows.",
+               cls="bp-lead")]
+    if cards:
+        out.append(tag("div", *cards, cls="bp-models"))
+    if r["reference"]:
+        rows = [[f["title"], Safe(esc(f["assumptions"])), Safe(esc(
+            f["cov"] + (f", {f['method']}" if f.get("method") else ""))),
+            f["n_obs"], f["n_units"]] for f in r["reference"]]
+        out.append(tag("h3", "Reference fits"))
+        out.append(table(["fit", "what it assumes", "covariance, variance components", "rows",
+                          "units"], rows, numeric=[3, 4]))
+    pri = [[m["title"], Safe(esc("; ".join(f"{k}: {v}" for k, v in m["priors"].items())))]
+           for m in r["models"] if m.get("priors")]
+    if pri:
+        out.append(tag("h3", "Priors (on the scale of the data)"))
+        out.append(table(["model", "priors"], pri, numeric=[]))
+    return join(out)
+
+
+def _coefficients(r) -> Safe:
+    prob = r["settings"]["interval"]
+    cols, terms = tables.coefficient_grid(r)
+    truth = (r.get("truth") or {}).get("by_model", {})
+    heads = ["term · model", "estimate", "SD / SE", f"{_pct(prob)} interval"]
+    if truth:
+        heads.append("true value")
+    body = []
+    for term in terms:
+        present = [c for c in cols if term in c["cells"]]
+        if not present:
+            continue
+        body.append(Safe(tag("tr", tag("td", term, colspan=str(len(heads))), cls="bp-group")))
+        for c in present:
+            cell = c["cells"][term]
+            kind = tag("span", "B" if c["kind"] == "bayesian" else "R",
+                       cls=f"bp-tag {'bayes' if c['kind'] == 'bayesian' else 'ref'}")
+            line = [Safe(kind + esc(c["title"])), cell["estimate"],
+                    cell.get("sd", cell.get("se")), Safe(esc(_interval(cell["lower"], cell["upper"])))]
+            if truth:
+                line.append(truth.get(c["key"], {}).get(term))
+            body.append(line)
+    out = [tag("p", f"Posterior means and SDs with {_pct(prob)} equal-tailed intervals "
+               f"(B, Bayesian) beside estimates and standard errors with {_pct(prob)} "
+               "confidence intervals (R, reference), grouped by term. Each term is one "
+               "estimand: a within part is not comparable with a pooled coefficient."
+               + (" The simulated demo's true values are in the last column, where the "
+                  "model's parametrisation has one." if truth else ""), cls="bp-lead"),
+           table(heads, body)]
+    out.append(figure(figures.coefficient_figure(r), "coefficient intervals by model",
+                      f"Estimates and {_pct(prob)} intervals; Bayesian models in lagoon "
+                      "(circles), reference fits in clay (squares)"
+                      + ("; true values as black diamonds." if truth else "."),
+                      "fig-coefficients"))
+    return join(out)
+
+
+def _partition(r) -> Safe:
+    prob = r["settings"]["interval"]
+    out = [tag("p", "How much of the outcome's variance lies between units. The ICC is "
+               "sigma_unit^2 / (sigma_unit^2 + sigma_obs^2): the share of residual variance "
+               "due to stable unit differences.", cls="bp-lead")]
+    any_vp = False
+    for m in r["models"]:
+        vp = m.get("variance_partition")
+        if not vp:
+            continue
+        any_vp = True
+        rows = [[q["quantity"], q["mean"], q["median"], q["sd"], Safe(esc(_interval(q["lower"], q["upper"])))]
+                for q in vp["summary"]]
+        out.append(tag("h3", m["title"]))
+        out.append(table(["quantity", "mean", "median", "SD", f"{_pct(prob)} interval"], rows))
+        if vp.get("theta"):
+            trs = [[f"T = {t['length']}", t["mean"], Safe(esc(_interval(t["lower"], t["upper"])))]
+                   for t in vp["theta"]]
+            out.append(table(["panel length", "quasi-demeaning share", f"{_pct(prob)} interval"],
+                             trs, caption="Share of each unit's mean removed by the random-"
+                             "intercept fit (0: pooled, 1: fixed effects)."))
+        if vp.get("explained"):
+            ers = [[e["part"], e.get("total"), e.get("within"), e.get("between")]
+                   for e in vp["explained"]]
+            out.append(table(["source", "share of total", "share within", "share between"], ers,
+                             caption="Variance explained at each level (Rights and Sterba 2019), "
+                                     "posterior means."))
+    refs = [f for f in r["reference"] if f.get("icc") is not None]
+    if refs:
+        out.append(tag("h3", "Reference fits"))
+        out.append(table(["fit", "sigma_unit", "sigma_obs", "ICC"],
+                         [[f["title"], f.get("sigma_unit"), f.get("sigma_obs"), f.get("icc")]
+                          for f in refs]))
+    if not any_vp and not refs:
+        out.append(note("info", "No model with a unit variance component was fitted."))
+    out.append(figure(figures.icc_figure(r), "posterior of the ICC",
+                      "Posterior density of the ICC per Bayesian model; dashed lines mark "
+                      "the reference fits' point estimates" +
+                      ("; the solid black line marks the true value." if r.get("truth") else "."),
+                      "fig-icc"))
+    return join(out)
+
+
+def _contrasts(r) -> Safe:
+    prob = r["settings"]["interval"]
+    out = [tag("p", "The contextual effect, between minus within, for each time-varying "
+               "covariate. Zero means the random-intercept assumption holds for it.",
+               cls="bp-lead")]
+    rows = []
+    for m in r["models"]:
+        for c in m.get("contrasts") or []:
+            rope = c.get("rope")
+            rows.append([f"{c['covariate']} · {m['title']}", c["mean"], c["sd"],
+                         Safe(esc(_interval(c["lower"], c["upper"]))), c["p_positive"],
+                         c["p_negative"], c.get("p_rope"),
+                         Safe(esc(fmt(rope) if rope is not None else "–"))])
+    if rows:
+        out.append(table(["covariate · model", "mean", "SD", f"{_pct(prob)} interval",
+                          "P(> 0)", "P(< 0)", "P(in ROPE)", "ROPE half-width"], rows))
+    tests = r.get("tests") or []
+    if tests:
+        trs = [[t["title"], t.get("statistic"), t.get("df"),
+                Safe(esc(fmt_p(t.get("p_value")))), t.get("conclusion", "")] for t in tests]
+        out.append(table(["reference test", "statistic", "df", "p-value", "reading"], trs,
+                         numeric=[1, 2, 3]))
+    if not rows and not tests:
+        out.append(note("info", "No model with separate within and between effects was "
+                        "fitted (add within_between or correlated_effects)."))
+    return join(out)
+
+
+def _comparison(r) -> Safe:
+    comp = r.get("comparison")
+    if not comp or not comp.get("rows"):
+        return note("info", "No LOO comparison was run.")
+    level = comp["level"]
+    out = [note("info", f"Level: {LEVEL_TEXT.get(level, level)}.", "What is compared."),
+           tag("p", "ELPD is the expected log predictive density (higher is better); "
+               "differences are to the best model with the SE of the paired difference. "
+               "Reference fits enter through exact cross-validation with plug-in densities.",
+               cls="bp-lead")]
+    rows = [[row["title"], Safe(esc(row.get("method") or "")), row.get("elpd"), row.get("se"),
+             row.get("elpd_diff"), row.get("se_diff"), row.get("p_loo"), row.get("weight"),
+             row.get("n_high_pareto_k"), Safe(esc(row.get("note") or ""))]
+            for row in comp["rows"]]
+    out.append(table(["model", "method", "ELPD", "SE", "difference", "SE of difference",
+                      "p_loo", "weight", "high Pareto k", "note"], rows))
+    out.append(figure(figures.loo_figure(r), "ELPD difference by model",
+                      "ELPD difference to the best model with two SEs of the difference.",
+                      "fig-loo"))
+    return join(out)
+
+
+def _status(ok: bool, warn_text="check") -> Safe:
+    return tag("span", "fine" if ok else warn_text, cls=f"bp-status {'ok' if ok else 'warn'}")
+
+
+def _diagnostics(r) -> Safe:
+    if not r["models"]:
+        return note("info", "No Bayesian model was fitted.")
+    rows = []
+    for m in r["models"]:
+        d = m["diagnostics"]
+        loo = m.get("loo") or {}
+        rows.append([m["title"], d.get("divergences"), d.get("max_rhat"), d.get("min_ess_bulk"),
+                     d.get("min_ess_tail"), d.get("min_bfmi"), loo.get("max_k"),
+                     loo.get("n_high_k"), _status(not d.get("warnings") and not loo.get("n_high_k"))])
+    out = [tag("p", "Thresholds (common practice): R-hat at most 1.01, bulk and tail ESS at "
+               "least 100 per chain, no divergent transitions, energy BFMI at least 0.3, "
+               "Pareto k at most 0.7.", cls="bp-lead"),
+           table(["model", "divergences", "max R-hat", "min bulk ESS", "min tail ESS",
+                  "min BFMI", "max Pareto k", "units with k > 0.7", "status"], rows)]
+    for m in r["models"]:
+        for w in m["diagnostics"].get("warnings", []):
+            out.append(note("problem", w, f"{m['title']}:"))
+        loo = m.get("loo") or {}
+        if loo.get("warning"):
+            out.append(note("caution", loo["warning"], f"{m['title']}:"))
+    return join(out)
+
+
+def _checks(r) -> Safe:
+    uri = figures.ppc_figure(r)
+    if not uri:
+        return note("info", "No posterior predictive draws were made.")
+    rows = []
+    for m in r["models"]:
+        for s in m.get("ppc") or []:
+            rows.append([f"{s['label']} · {m['title']}", s["observed"], s["replicated_mean"],
+                         s["p_value"]])
+    out = [tag("p", "Replicated panels drawn from each posterior (same units, new "
+               "occasion noise) against the observed one, on statistics a panel model must "
+               "get right. A tail probability near 0 or 1 marks a feature the model misses.",
+               cls="bp-lead"),
+           table(["statistic · model", "observed", "replicated (mean)", "P(replicated ≥ observed)"],
+                 rows),
+           figure(uri, "posterior predictive checks",
+                  "Histograms of replicated statistics; the clay line is the observed value.",
+                  "fig-ppc")]
+    return join(out)
+
+
+def _rerun(r) -> Safe:
+    st = r["settings"]
+    soft = r["software"]
+    out = [tag("p", "The output folder holds analysis.toml with every setting used. To "
+               "repeat the run exactly:", cls="bp-lead"),
+           tag("pre", "bayespanel fit --config analysis.toml --out NEW_FOLDER", cls="bp-code"),
+           tag("h3", "Settings"),
+           tag("pre", st.get("toml", ""), cls="bp-code"),
+           tag("h3", "Software"),
+           pairs([(k, v) for k, v in [("python", soft.get("python")),
+                                      ("platform", soft.get("platform"))]
+                  + sorted(soft.get("packages", {}).items())])]
+    src = r["data"].get("source") or {}
+    if src.get("sha256"):
+        out.append(tag("p", "Data file SHA-256: ", tag("code", src["sha256"])))
+    return join(out)
+
+
+_BUILDERS = {
+    "overview": _overview, "data": _data, "models": _models, "coefficients": _coefficients,
+    "partition": _partition, "contrasts": _contrasts, "comparison": _comparison,
+    "diagnostics": _diagnostics, "checks": _checks,
+    "caution": lambda r: note("caution", CAUTION, "Associations, not effects."),
+    "rerun": _rerun,
+}
+
+
+def _css() -> str:
+    return resources.files("bayespanel").joinpath("report/report.css").read_text("utf-8")
+
+
+def render(results: dict) -> str:
+    """The whole report page as a string (deterministic for given results)."""
+    title = results.get("title") or "Panel analysis"
+    rail = tag("nav", tag("div", "bayes", tag("span", "panel"), cls="bp-mark"),
+               tag("ol", *[tag("li", tag("a", h, href=f"#{k}")) for k, h in SECTIONS]),
+               cls="bp-rail")
+    sections = [tag("section", tag("h2", h), _BUILDERS[k](results), cls="bp-part", id=k,
+                    data_section=k) for k, h in SECTIONS]
+    head = tag("header", tag("h1", title),
+               tag("div", f"Written by bayespanel {results['software']['packages'].get('bayespanel', '')}"
+                   f" on {results['created']} · results schema {results['schema_version']}",
+                   cls="bp-sub"), cls="bp-masthead")
+    foot = tag("footer", "Every number on this page is in results.json in the same folder; "
+               "tables are also saved as Markdown, LaTeX and CSV.", cls="bp-foot")
+    main = tag("main", head, *sections, foot, cls="bp-main")
+    page = ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+            "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
+            "<meta http-equiv=\"Content-Security-Policy\" content=\"default-src 'none'; "
+            "img-src data:; style-src 'unsafe-inline'\">"
+            f"<title>{esc(title)}</title><style>{_css()}</style></head>"
+            f"<body>{tag('div', rail, main, cls='bp-shell')}</body></html>\n")
+    return page

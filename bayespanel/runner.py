@@ -1,0 +1,729 @@
+"""The whole job, shared by the command line and the Python API.
+
+settings -> panel -> reference fits -> Bayesian fits -> variance partition, contrasts,
+LOO -> comparison -> ``results.json``, posteriors, tables and ``report.html``.
+
+>>> import bayespanel as bp
+>>> from bayespanel.runner import Settings, run
+>>> df, truth = bp.datasets.clinic_panel(seed=1)
+>>> s = Settings(unit="clinic", time="quarter", formula=truth["formula"],
+...              models=("random_intercept",), draws=300, tune=300, chains=2)
+>>> results = run(s, df=df, out="clinic-run")                  # doctest: +SKIP
+
+:class:`Settings` is a frozen record of every choice; it is written to the output folder
+as ``analysis.toml`` so ``bayespanel fit --config analysis.toml`` repeats the run
+exactly (same data file, checked by its SHA-256, same seeds).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import platform
+import re
+import sys
+import time
+import tomllib
+import warnings
+from dataclasses import asdict, dataclass, field, fields, replace
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+
+from .errors import BayespanelError, SpecificationError, choices_error
+from .report.text import BAYES_MODELS, COUNTERPART, REFERENCE_FITS
+
+__all__ = ["Settings", "run", "load_settings", "MODEL_NAMES", "REFERENCE_NAMES", "LEVELS",
+           "BUILDER_OF", "software_versions"]
+
+#: command-line model names -> builder class names in :mod:`bayespanel.models`
+BUILDER_OF = {"pooled": "Pooled", "random_intercept": "RandomIntercept",
+              "within_between": "WithinBetween", "correlated_effects": "CorrelatedEffects",
+              "fixed_effects": "FixedEffects"}
+MODEL_NAMES = tuple(BUILDER_OF)
+REFERENCE_NAMES = ("pooled", "within", "between", "random", "mundlak", "within_between")
+LEVELS = ("occasion", "unit")
+SAMPLERS = ("auto", "pymc", "nutpie")
+COVS = ("classical", "cluster", "cr2")
+RE_METHODS = ("swamy-arora", "ml", "reml")
+_PACKAGES = ("bayespanel", "numpy", "scipy", "pandas", "xarray", "pymc", "pytensor", "arviz",
+             "arviz-base", "arviz-stats", "formulaic", "matplotlib", "h5netcdf", "nutpie")
+_KIND_OF = {"pooled": "pooled", "random_intercept": "random", "within_between": "within_between",
+            "correlated_effects": "mundlak", "fixed_effects": "within"}
+
+
+@dataclass(frozen=True)
+class Settings:
+    """Every choice of a run (see docs/cli.md for the analysis-file form).
+
+    Parameters
+    ----------
+    unit, time, formula : str
+        Panel columns and the Wilkinson formula.
+    data : str, optional
+        CSV or Parquet file (``None`` when a DataFrame is passed to :func:`run`).
+    models : tuple of str
+        Bayesian models by command-line name: ``pooled``, ``random_intercept``,
+        ``within_between``, ``correlated_effects``, ``fixed_effects``.
+    reference : tuple of str
+        Reference fits: ``pooled``, ``within``, ``between``, ``random``, ``mundlak``,
+        ``within_between``.
+    priors : dict
+        Prior overrides by term label or ``coef``, ``sigma_obs``, ``sigma_unit`` (see
+        docs/priors.md); applied to every model where the key exists.
+    draws, tune, chains, seed, sampler : sampling controls (the seed fixes every draw).
+    cov, re_method : reference covariance (default CR1 by unit) and variance-component
+        method of the random-intercept reference fits.
+    level : {"occasion", "unit"}
+        The LOO level of the comparison.
+    rope : float, optional
+        Half-width of the region of practical equivalence for the contrasts.
+    interval : float
+        Probability of every interval reported.
+    occasion_effects : bool
+        One indicator per occasion in every model.
+    ppc_draws : int
+        Posterior draws used for the predictive checks.
+    title : str, optional
+    """
+
+    unit: str
+    time: str
+    formula: str
+    data: str | None = None
+    models: tuple = MODEL_NAMES
+    reference: tuple = REFERENCE_NAMES
+    priors: dict = field(default_factory=dict)
+    draws: int = 1000
+    tune: int = 1000
+    chains: int = 4
+    seed: int = 1
+    sampler: str = "auto"
+    cov: str = "cluster"
+    re_method: str = "swamy-arora"
+    level: str = "occasion"
+    rope: float | None = None
+    interval: float = 0.95
+    occasion_effects: bool = False
+    ppc_draws: int = 200
+    title: str | None = None
+    data_sha256: str | None = None
+
+    def __post_init__(self):
+        for name in ("models", "reference"):
+            v = getattr(self, name)
+            if isinstance(v, str):
+                v = tuple(x.strip() for x in v.split(",") if x.strip())
+            object.__setattr__(self, name, tuple(v))
+        object.__setattr__(self, "priors", dict(self.priors or {}))
+
+    # ------------------------------------------------------------------ checks
+    def check(self) -> "Settings":
+        """Check every option before any work; messages name the option and the choices."""
+        for name in ("unit", "time", "formula"):
+            v = getattr(self, name)
+            if not isinstance(v, str) or not v.strip():
+                raise SpecificationError(f"{name} is required (got {v!r})")
+        for m in self.models:
+            if m not in MODEL_NAMES:
+                raise choices_error("models", m, MODEL_NAMES)
+        for r in self.reference:
+            if r not in REFERENCE_NAMES:
+                raise choices_error("reference", r, REFERENCE_NAMES)
+        if len(set(self.models)) != len(self.models):
+            raise SpecificationError(f"models={list(self.models)!r} names a model twice")
+        if not self.models and not self.reference:
+            raise SpecificationError("nothing to fit: models and reference are both empty")
+        for name, lo in (("draws", 1), ("tune", 0), ("chains", 1), ("ppc_draws", 1)):
+            v = getattr(self, name)
+            if isinstance(v, bool) or not isinstance(v, int) or v < lo:
+                raise SpecificationError(f"{name}={v!r} must be an integer >= {lo}")
+        if isinstance(self.seed, bool) or not isinstance(self.seed, int) or self.seed < 0:
+            raise SpecificationError(f"seed={self.seed!r} must be a non-negative integer")
+        if self.sampler not in SAMPLERS:
+            raise choices_error("sampler", self.sampler, SAMPLERS)
+        if self.cov not in COVS:
+            raise choices_error("cov", self.cov, COVS)
+        if self.re_method not in RE_METHODS:
+            raise choices_error("re_method", self.re_method, RE_METHODS)
+        if self.level not in LEVELS:
+            raise choices_error("level", self.level, LEVELS)
+        if not isinstance(self.interval, (int, float)) or not 0 < self.interval < 1:
+            raise SpecificationError(f"interval={self.interval!r} must be a number in (0, 1)")
+        if self.rope is not None and (isinstance(self.rope, bool) or not isinstance(
+                self.rope, (int, float)) or self.rope <= 0):
+            raise SpecificationError(f"rope={self.rope!r} must be a positive number")
+        if not isinstance(self.occasion_effects, bool):
+            raise SpecificationError(f"occasion_effects={self.occasion_effects!r} must be "
+                                     "true or false")
+        for k, v in self.priors.items():
+            if not isinstance(v, (str, dict)):
+                raise SpecificationError(
+                    f"priors[{k!r}]={v!r}: give a family name such as 'gamma2' or a table "
+                    "like {family = 'normal', sigma = 10}")
+        return self
+
+    # ------------------------------------------------------------------ files
+    def to_dict(self) -> dict:
+        d = asdict(self)
+        d["models"], d["reference"] = list(self.models), list(self.reference)
+        return d
+
+    def to_toml(self) -> str:
+        """The analysis file that repeats this run (``bayespanel fit --config FILE``)."""
+        lines = ["# bayespanel analysis file: `bayespanel fit --config THIS_FILE --out DIR`",
+                 "# repeats the run exactly (same data, checked by SHA-256, same seeds)."]
+        if self.title is not None:
+            lines.append(f"title = {_toml_value(self.title)}")
+        lines += ["", "[data]"]
+        for k in ("data", "unit", "time", "data_sha256"):
+            v = getattr(self, k)
+            if v is not None:
+                lines.append(f"{'file' if k == 'data' else 'sha256' if k == 'data_sha256' else k}"
+                             f" = {_toml_value(v)}")
+        lines += ["", "[model]", f"formula = {_toml_value(self.formula)}",
+                  f"models = {_toml_value(list(self.models))}",
+                  f"occasion_effects = {_toml_value(self.occasion_effects)}",
+                  "", "[priors]"]
+        lines += [f"{_toml_key(k)} = {_toml_value(v)}" for k, v in self.priors.items()]
+        lines += ["", "[sampling]"] + [f"{k} = {_toml_value(getattr(self, k))}" for k in
+                                       ("draws", "tune", "chains", "seed", "sampler", "ppc_draws")]
+        lines += ["", "[reference]", f"fits = {_toml_value(list(self.reference))}",
+                  f"cov = {_toml_value(self.cov)}", f"method = {_toml_value(self.re_method)}",
+                  "", "[comparison]", f"level = {_toml_value(self.level)}"]
+        if self.rope is not None:
+            lines.append(f"rope = {_toml_value(self.rope)}")
+        lines += ["", "[report]", f"interval = {_toml_value(self.interval)}"]
+        return "\n".join(lines) + "\n"
+
+
+_TOML_LAYOUT = {  # section -> {key in file: Settings field}
+    "": {"title": "title"},
+    "data": {"file": "data", "unit": "unit", "time": "time", "sha256": "data_sha256"},
+    "model": {"formula": "formula", "models": "models", "occasion_effects": "occasion_effects"},
+    "sampling": {k: k for k in ("draws", "tune", "chains", "seed", "sampler", "ppc_draws")},
+    "reference": {"fits": "reference", "cov": "cov", "method": "re_method"},
+    "comparison": {"level": "level", "rope": "rope"},
+    "report": {"interval": "interval", "title": "title"},
+}
+
+
+def _toml_key(k: str) -> str:
+    return k if re.fullmatch(r"[A-Za-z0-9_-]+", k) else json.dumps(k)
+
+
+def _toml_value(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (int, float)):
+        return repr(v)
+    if isinstance(v, str):
+        return json.dumps(v, ensure_ascii=False)
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    if isinstance(v, dict):
+        return "{" + ", ".join(f"{_toml_key(k)} = {_toml_value(x)}" for k, x in v.items()) + "}"
+    raise SpecificationError(f"cannot write {v!r} to an analysis file")
+
+
+def load_settings(path, **overrides) -> Settings:
+    """Read an analysis file (TOML); ``overrides`` (not None) replace its values.
+
+    A relative data path is taken relative to the analysis file's folder. Unknown
+    sections or keys are errors naming them, so a typo never passes silently.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise SpecificationError(f"analysis file {str(path)!r} does not exist")
+    try:
+        doc = tomllib.loads(path.read_text("utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise SpecificationError(f"analysis file {str(path)!r} is not valid TOML: {exc}") from None
+    values = {}
+    for key, val in doc.items():
+        if isinstance(val, dict):
+            if key == "priors":
+                values["priors"] = dict(val)
+                continue
+            if key not in _TOML_LAYOUT or key == "":
+                raise SpecificationError(
+                    f"analysis file {str(path)!r}: unknown section [{key}]; sections are "
+                    + ", ".join(f"[{s}]" for s in list(_TOML_LAYOUT)[1:] + ["priors"]))
+            for k, v in val.items():
+                if k not in _TOML_LAYOUT[key]:
+                    raise SpecificationError(
+                        f"analysis file {str(path)!r}: unknown key {k!r} in [{key}]; valid "
+                        f"keys are {', '.join(_TOML_LAYOUT[key])}")
+                values[_TOML_LAYOUT[key][k]] = v
+        elif key in _TOML_LAYOUT[""]:
+            values[_TOML_LAYOUT[""][key]] = val
+        else:
+            raise SpecificationError(f"analysis file {str(path)!r}: unknown top-level key {key!r}")
+    if values.get("data") is not None and not Path(values["data"]).is_absolute():
+        values["data"] = str((path.parent / values["data"]).resolve())
+    values.update({k: v for k, v in overrides.items() if v is not None})
+    missing = [f for f in ("unit", "time", "formula") if f not in values]
+    if missing:
+        raise SpecificationError(f"analysis file {str(path)!r} does not give "
+                                 f"{', '.join(missing)} (in [data] and [model])")
+    names = {f.name for f in fields(Settings)}
+    return Settings(**{k: v for k, v in values.items() if k in names}).check()
+
+
+# ---------------------------------------------------------------------- helpers
+def software_versions() -> dict:
+    from importlib import metadata
+
+    pk = {}
+    for name in _PACKAGES:
+        try:
+            pk[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            continue
+    return {"python": platform.python_version(), "platform": platform.platform(),
+            "packages": pk}
+
+
+def _sha256(path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+class _Progress:
+    """Stage lines with elapsed time, to a stream (stderr on the command line)."""
+
+    def __init__(self, stream=None, quiet=False):
+        self.stream = stream if stream is not None else sys.stderr
+        self.quiet = quiet
+        self.t0 = time.perf_counter()
+
+    def __call__(self, msg: str):
+        if not self.quiet:
+            print(f"[{time.perf_counter() - self.t0:6.1f} s] {msg}", file=self.stream, flush=True)
+
+
+def _records(df, index_name=None):
+    out = []
+    for idx, row in df.iterrows():
+        rec = {index_name or (df.index.name or "name"): idx}
+        rec.update({str(k): v for k, v in row.items()})
+        out.append(rec)
+    return out
+
+
+def _floats(d: dict) -> dict:
+    out = {}
+    for k, v in d.items():
+        if isinstance(v, (np.floating, float)):
+            out[k] = float(v) if np.isfinite(v) else None
+        elif isinstance(v, np.integer):
+            out[k] = int(v)
+        else:
+            out[k] = v
+    return out
+
+
+# ---------------------------------------------------------------------- stages
+def _data_stage(settings, df, say):
+    from .formula import screen
+    from .io import read_table
+    from .panel import Panel
+
+    source = {"file": None, "sha256": None}
+    if df is None:
+        if not settings.data:
+            raise SpecificationError("no data: give a CSV or Parquet file (data = ...)")
+        source = {"file": str(settings.data), "sha256": _sha256(settings.data)
+                  if Path(settings.data).is_file() else None}
+        if settings.data_sha256 and source["sha256"] and settings.data_sha256 != source["sha256"]:
+            warnings.warn(f"the data file {settings.data!r} has changed since the analysis "
+                          "file was written (SHA-256 differs); results will differ", UserWarning)
+        df = read_table(settings.data)
+    say(f"read {len(df)} rows x {df.shape[1]} columns")
+    panel = Panel(df, unit=settings.unit, time=settings.time)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        design = panel.design(settings.formula, occasion_effects=settings.occasion_effects)
+    notes = [str(w.message) for w in caught]
+    used = [c for c in screen(settings.formula, panel.data.columns).columns
+            if c not in (panel.unit, panel.time) and c in panel.numeric_columns()]
+    desc = panel.describe(columns=used)
+    data = {
+        "source": {**source, "n_rows_read": int(len(df))},
+        "unit": panel.unit, "time": panel.time, "formula": settings.formula,
+        "outcome": design.outcome,
+        "structure": _floats(panel.structure()),
+        "variables": [_floats(r) for r in _records(desc, "variable")],
+        "sample": {"n_rows": design.n, "n_units": design.n_units, "n_dropped": design.n_dropped,
+                   "dropped_by_column": dict(design.dropped_by_column)},
+        "terms": [{"term": t, "varies_within": bool(design.varies_within[t])}
+                  for t in design.terms],
+    }
+    return panel, design, data, notes
+
+
+def _reference_stage(settings, design, say):
+    from . import reference as ref
+
+    fits, out = {}, []
+    prob = settings.interval
+    for name in settings.reference:
+        kw = {"method": settings.re_method} if name in ("random", "mundlak", "within_between") else {}
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            res = ref.fit_design(design, name, cov=settings.cov, **kw)
+        fits[name] = res
+        tab = res.table(prob)
+        entry = {
+            "name": name, "title": REFERENCE_FITS[name][0],
+            "assumptions": " ".join(res.assumptions) or REFERENCE_FITS[name][1],
+            "estimator": name, "method": res.method, "cov": res.cov_type,
+            "coefficients": [{"term": t, "estimate": float(r["estimate"]), "se": float(r["se"]),
+                              "df": float(r["df"]) if np.isfinite(r["df"]) else None,
+                              "p_value": float(r["p"]), "lower": float(r["lower"]),
+                              "upper": float(r["upper"])} for t, r in tab.iterrows()],
+            "sigma_unit": res.sigma_unit, "sigma_obs": res.sigma_obs,
+            "icc": res.icc if name in ("random", "mundlak", "within_between") else None,
+            "n_obs": res.n_obs, "n_units": res.n_units,
+            "not_estimated": {str(k): str(v) for k, v in res.dropped.items()},
+        }
+        out.append(_floats(entry))
+    say(f"reference fits: {', '.join(settings.reference) or 'none'}")
+    return fits, out
+
+
+def _tests_stage(design, say):
+    """Classical Hausman and cluster-robust Mundlak tests (when a within part exists)."""
+    from . import reference as ref
+
+    if not design.time_varying:
+        return []
+    tests = []
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        fe = ref.fit_design(design, "within", cov="classical")
+        re_ = ref.fit_design(design, "random", cov="classical", method="swamy-arora")
+        for key, title, t in (("hausman", "Hausman (classical), fixed vs random effects",
+                               ref.hausman(fe, re_)),
+                              ("mundlak", "Mundlak unit-mean terms (cluster-robust Wald)",
+                               ref.mundlak_test(design, cov="cluster"))):
+            reject = np.isfinite(t.p_value) and t.p_value < 0.05
+            tests.append(_floats({
+                "name": key, "title": title, "statistic": t.statistic, "df": t.df,
+                "p_value": t.p_value, "null": t.null,
+                "conclusion": ("within and between effects differ (p < 0.05): the random-"
+                               "intercept assumption is doubtful" if reject else
+                               "no evidence at the 5% level that within and between "
+                               "effects differ"),
+                "message": t.message}))
+    say("specification tests: Hausman, Mundlak")
+    return tests
+
+
+def _model_priors(settings, model_cls, labels):
+    has_unit = model_cls.unit_effects == "random"
+    valid = set(labels) | {"coef", "sigma_obs"} | ({"sigma_unit"} if has_unit else set())
+    return {k: v for k, v in settings.priors.items() if k in valid} or None
+
+
+def _check_prior_keys(settings, label_sets):
+    known = set().union(*label_sets.values()) if label_sets else set()
+    known |= {"coef", "sigma_obs", "sigma_unit"}
+    for k in settings.priors:
+        if k not in known:
+            raise SpecificationError(
+                f"priors has an unknown key {k!r}; valid keys for these models are "
+                + ", ".join(map(repr, sorted(known))))
+
+
+def _thin_for(n_total, target):
+    return max(1, int(np.ceil(n_total / max(target, 1))))
+
+
+def _ppc(post, design, n_draws, seed):
+    """Panel statistics of replicated outcomes (same units, new occasion noise)."""
+    thin = _thin_for(post.n_chains * post.n_draws, n_draws)
+    yrep = np.asarray(post.posterior_predictive(level="occasion", thin=thin, seed=seed).values)
+    yrep = yrep.reshape(-1, yrep.shape[-1])
+    codes, T, starts = design.unit_codes, design.T, design.starts
+
+    def stats(y):
+        y = np.atleast_2d(y)
+        means = np.add.reduceat(y, starts, axis=1) / T
+        dev = y - means[:, codes]
+        return {"mean": y.mean(axis=1), "sd_between": means.std(axis=1, ddof=1),
+                "sd_within": np.sqrt((dev ** 2).sum(axis=1) / (y.shape[1] - 1)),
+                "max_unit_mean": means.max(axis=1), "min_unit_mean": means.min(axis=1)}
+
+    obs, rep = stats(design.y), stats(yrep)
+    labels = {"mean": "mean", "sd_between": "SD between units", "sd_within": "SD within units",
+              "min_unit_mean": "lowest unit mean", "max_unit_mean": "highest unit mean"}
+    return [{"statistic": k, "label": labels[k], "observed": float(obs[k][0]),
+             "replicated_mean": float(rep[k].mean()), "p_value": float((rep[k] >= obs[k][0]).mean()),
+             "replicated": [float(v) for v in rep[k]]} for k in labels]
+
+
+def _partition(post, design, kind, coef_d, sigma_d, tau_d, ref):
+    """The variance partition of one posterior (bayespanel.partition, issue 6)."""
+    ref = ref if ref is not None and getattr(ref, "design", None) is not None else None
+    if hasattr(post, "variance_partition"):
+        return post.variance_partition(reference=ref)
+    from . import partition as part
+
+    M, _, codes = post.rows
+    return part.variance_partition(M, codes, kind, post.labels, coef_d, sigma_d, tau_d,
+                                   reference=ref)
+
+
+def _contrasts(post, design, kind, coef_d, settings, ref):
+    """Between-minus-within contrasts of one posterior (bayespanel.contrasts, issue 6)."""
+    if hasattr(post, "contrasts"):
+        return post.contrasts(rope=settings.rope, prob=settings.interval, reference=ref)
+    from . import contrasts as ctr
+
+    return ctr.within_between_contrasts(kind, post.labels, coef_d, design.time_varying,
+                                        rope=settings.rope, prob=settings.interval,
+                                        reference=ref)
+
+
+def _bayes_one(name, settings, panel, labels, ref_fits, out_dir, say, progress_bars):
+    from . import models
+
+    cls = getattr(models, BUILDER_OF[name])
+    prob = settings.interval
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # dropped rows were reported by the data stage
+        m = cls(panel, settings.formula, priors=_model_priors(settings, cls, labels),
+                occasion_effects=settings.occasion_effects)
+    say(f"sampling {name}: {settings.chains} chains x {settings.draws} draws "
+        f"(+{settings.tune} tuning)")
+    t0 = time.perf_counter()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # problems are collected from diagnostics() below
+        post = m.sample(draws=settings.draws, tune=settings.tune, chains=settings.chains,
+                        seed=settings.seed, sampler=settings.sampler, progress=progress_bars)
+    seconds = time.perf_counter() - t0
+    diag = post.diagnostics(warn=False)
+    summ = post.summary(prob)
+    lo, hi = summ.columns[2], summ.columns[3]
+    coefs = [_floats({"term": t, "mean": r["mean"], "sd": r["sd"], "lower": r[lo], "upper": r[hi],
+                      "rhat": r["rhat"], "ess_bulk": r["ess_bulk"], "ess_tail": r["ess_tail"]})
+             for t, r in summ.loc[post.labels].iterrows()]
+    design = m.design
+    kind = _KIND_OF[name]
+    coef_d = post._flat("coef")
+    sigma_d = post._flat("sigma_obs")
+    tau_d = (post._flat("sigma_unit") if m.unit_effects == "random"
+             else (np.zeros_like(sigma_d) if m.unit_effects == "none" else None))
+    ref_for = ref_fits.get(COUNTERPART[name])
+    vp = None
+    if m.unit_effects == "random":
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            pr = _partition(post, design, kind, coef_d, sigma_d, tau_d, ref_for)
+        tab = pr.table(prob)
+        keep = ["unit SD", "occasion SD", "ICC"]
+        vp = {"summary": [_floats({"quantity": q, **{c: tab.at[q, c] for c in
+                                                     ("mean", "median", "sd", "lower", "upper")},
+                                   "reference": tab.at[q, "reference"] if "reference" in tab else None})
+                          for q in keep],
+              "theta": [_floats({"length": int(q.split("=")[1].rstrip(")")),
+                                 "mean": tab.at[q, "mean"], "lower": tab.at[q, "lower"],
+                                 "upper": tab.at[q, "upper"]})
+                        for q in tab.index if q.startswith("theta (T=")],
+              "explained": [_floats({"part": p, "total": tab.at[f"total: {p}", "mean"],
+                                     "within": tab.at[f"within: {p}", "mean"]
+                                     if f"within: {p}" in tab.index else None,
+                                     "between": tab.at[f"between: {p}", "mean"]
+                                     if f"between: {p}" in tab.index else None})
+                            for p in ("within part", "between part", "unit intercepts",
+                                      "occasion residual")],
+              "icc_draws": [float(v) for v in pr.draws["ICC"].to_numpy()[
+                  ::_thin_for(len(pr.draws), 1000)]]}
+    contrasts = []
+    if kind in ("within_between", "mundlak"):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            cr = _contrasts(post, design, kind, coef_d, settings, ref_for)
+        ct = cr.table(prob)
+        for cov_name, r in ct.iterrows():
+            contrasts.append(_floats({
+                "covariate": cov_name, "mean": r["mean"], "sd": r["sd"], "lower": r["lower"],
+                "upper": r["upper"], "p_positive": r["P(> 0)"], "p_negative": r["P(< 0)"],
+                "rope": r.get("rope"), "p_rope": r.get("P(in rope)"),
+                "reference_estimate": r.get("reference estimate"),
+                "reference_lower": r.get("reference lower"),
+                "reference_upper": r.get("reference upper")}))
+    ppc = _ppc(post, design, settings.ppc_draws, settings.seed)
+    rel = None
+    if out_dir is not None:
+        rel = f"posteriors/{name}.nc"
+        (Path(out_dir) / "posteriors").mkdir(parents=True, exist_ok=True)
+        post.save(Path(out_dir) / rel)
+    entry = {
+        "name": name, "builder": BUILDER_OF[name], "title": BAYES_MODELS[name][0],
+        "assumptions": BAYES_MODELS[name][1], "reference_counterpart": COUNTERPART[name],
+        "posterior_file": rel,
+        "sampling": _floats({"draws": settings.draws, "tune": settings.tune,
+                             "chains": settings.chains, "seed": settings.seed,
+                             "sampler": str(post.sampling.get("sampler", settings.sampler)),
+                             "seconds": seconds}),
+        "priors": {k: str(v) for k, v in m.priors.items()},
+        "coefficients": coefs,
+        "scale": [_floats({"name": q, "mean": summ.at[q, "mean"], "sd": summ.at[q, "sd"],
+                           "lower": summ.at[q, lo], "upper": summ.at[q, hi],
+                           "rhat": summ.at[q, "rhat"], "ess_bulk": summ.at[q, "ess_bulk"]})
+                  for q in ("sigma_unit", "sigma_obs", "icc") if q in summ.index],
+        "variance_partition": vp,
+        "contrasts": contrasts,
+        "diagnostics": _floats({"divergences": diag["divergences"], "draws": diag["draws"],
+                                "max_rhat": diag["max_rhat"], "min_ess_bulk": diag["min_ess_bulk"],
+                                "min_ess_tail": diag["min_ess_tail"],
+                                "min_bfmi": float(np.nanmin(diag["bfmi"])) if diag["bfmi"] else None,
+                                "warnings": list(diag["problems"])}),
+        "loo": None,
+        "ppc": ppc,
+    }
+    say(f"  {name}: {seconds:.1f} s, max R-hat {diag['max_rhat']:.3f}, "
+        f"{diag['divergences']} divergences")
+    return post, entry
+
+
+def _comparison_stage(settings, posts, ref_fits, entries, say):
+    """LOO at the chosen level for every Bayesian model and reference fit."""
+    try:
+        from .compare import compare
+    except ModuleNotFoundError as exc:  # the comparison stage lands with issue 6
+        if exc.name != "bayespanel.compare":
+            raise
+        say("LOO comparison skipped: bayespanel.compare is not installed")
+        return None
+    fits = {}
+    titles = {}
+    for name, post in posts.items():
+        fits[name] = post
+        titles[name] = BAYES_MODELS[name][0]
+    for name, res in ref_fits.items():
+        if name == "between":
+            continue  # one row per unit: no occasion-level predictive density
+        fits[f"ref:{name}"] = res
+        titles[f"ref:{name}"] = REFERENCE_FITS[name][0] + " (ref.)"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        table = compare(fits, level=settings.level)
+    rows = []
+    for key, r in table.iterrows():
+        rec = _floats({str(k): v for k, v in r.items()})
+        rec["model"] = str(key)
+        rec["title"] = titles.get(str(key), str(key))
+        rec["kind"] = "reference" if str(key).startswith("ref:") else "bayesian"
+        rows.append(rec)
+    by_name = {e["name"]: e for e in entries}
+    for name, post in posts.items():
+        row = next((r for r in rows if r["model"] == name), None)
+        if row is None or name not in by_name:
+            continue
+        by_name[name]["loo"] = _floats({
+            "level": settings.level, "elpd": row.get("elpd"), "se": row.get("se"),
+            "p_loo": row.get("p_loo"), "n_high_k": row.get("n_high_pareto_k"),
+            "max_k": row.get("max_pareto_k"), "warning": row.get("note") or None})
+    say(f"LOO comparison at the {settings.level} level: {len(rows)} fits")
+    return {"level": settings.level, "rows": rows}
+
+
+def _truth_by_model(truth, entries, ref_entries):
+    """The true value of each term under each model's parametrisation (demo only)."""
+    w, b, c = truth["within"], truth["between"], truth.get("constant", {})
+    equal = {k: w[k] for k in w if np.isclose(w[k], b[k])}
+    param = {
+        "within_between": {"Intercept": truth["intercept"], **{f"{k} (within)": v for k, v in w.items()},
+                           **{f"{k} (between)": v for k, v in b.items()}, **c},
+        "mundlak": {"Intercept": truth["intercept"], **w,
+                    **{f"{k} (unit mean)": b[k] - w[k] for k in w}, **c},
+        "within": dict(w),
+        "between": {"Intercept": truth["intercept"], **b, **c},
+        "random": dict(equal), "pooled": dict(equal),
+    }
+    out = {}
+    for e in entries:
+        out[e["name"]] = param[_KIND_OF[e["name"]]]
+    for e in ref_entries:
+        out[f"ref:{e['name']}"] = param[e["name"]]
+    return {"icc": truth["icc"], "sigma_unit": truth["sigma_unit"],
+            "sigma_obs": truth["sigma_obs"], "by_model": out}
+
+
+# ---------------------------------------------------------------------- the job
+def run(settings: Settings, df=None, out=None, truth=None, progress=None, quiet=False,
+        progress_bars=False) -> dict:
+    """Run the whole job and, when ``out`` is given, write every output there.
+
+    Parameters
+    ----------
+    settings : Settings
+    df : pandas.DataFrame, optional
+        The table (otherwise read from ``settings.data``).
+    out : path, optional
+        Output folder: ``results.json``, ``analysis.toml``, ``posteriors/*.nc``,
+        ``tables/*.{md,tex,csv}`` and ``report.html``.
+    truth : dict, optional
+        Known true values (simulated data), shown beside the estimates.
+    progress : callable, optional
+        Receives one line per stage; default prints to stderr with elapsed time.
+    progress_bars : bool
+        Show the sampler's own progress bars.
+
+    Returns
+    -------
+    dict
+        The contents of ``results.json`` (see docs/results-schema.md).
+    """
+    from .report import write_report
+    from .report.results_json import SCHEMA_NAME, SCHEMA_VERSION, validate, write_atomic, write_json
+
+    settings = settings.check()
+    say = progress or _Progress(quiet=quiet)
+    panel, design, data, notes = _data_stage(settings, df, say)
+    if settings.data and data["source"]["sha256"]:
+        settings = replace(settings, data=str(Path(settings.data).resolve()),
+                           data_sha256=data["source"]["sha256"])
+    out_dir = Path(out) if out is not None else None
+    if out_dir is not None:
+        out_dir.mkdir(parents=True, exist_ok=True)
+        write_atomic(out_dir / "analysis.toml", settings.to_toml())
+    ref_fits, ref_entries = _reference_stage(settings, design, say)
+    tests = _tests_stage(design, say)
+    labels = {}
+    for name in settings.models:
+        try:
+            labels[name] = design.matrices(_KIND_OF[name])[1]
+        except BayespanelError:
+            labels[name] = []
+    _check_prior_keys(settings, labels)
+    posts, entries = {}, []
+    for name in settings.models:
+        post, entry = _bayes_one(name, settings, panel, labels[name], ref_fits, out_dir, say,
+                                 progress_bars)
+        posts[name] = post
+        entries.append(entry)
+    comparison = _comparison_stage(settings, posts, ref_fits, entries, say)
+    results = {
+        "schema": SCHEMA_NAME, "schema_version": SCHEMA_VERSION,
+        "created": datetime.now(timezone.utc).replace(microsecond=0).isoformat(),
+        "title": settings.title or f"Panel analysis of {data['outcome']}",
+        "settings": {**settings.to_dict(), "toml": settings.to_toml()},
+        "software": software_versions(),
+        "data": data, "models": entries, "reference": ref_entries, "tests": tests,
+        "comparison": comparison, "warnings": notes,
+        "truth": _truth_by_model(truth, entries, ref_entries) if truth else None,
+    }
+    validate(results)
+    if out_dir is not None:
+        write_json(out_dir / "results.json", results)
+        write_report(results, out_dir)
+        say(f"wrote {out_dir / 'report.html'}")
+    return results
