@@ -11,11 +11,12 @@ COLLINEAR_TOL = 1e-9
 
 
 def independent_columns(cp: np.ndarray, scale: np.ndarray | None = None,
-                        tol: float = COLLINEAR_TOL) -> np.ndarray:
+                        tol: float = COLLINEAR_TOL, priority=None) -> np.ndarray:
     """Indices of a maximal set of linearly independent columns, kept in order.
 
     Works on a cross-product matrix ``A = X'X`` only (so it runs on sufficient
-    statistics): column ``j`` is kept when its squared residual after projection on the
+    statistics): columns are examined in order (those listed in ``priority`` first) and
+    column ``j`` is kept when its squared residual after projection on the
     columns kept before it exceeds ``tol`` times its size. ``scale`` gives that size per
     column (default ``diag(A)``); pass the uncentred sums of squares of the original
     columns when ``A`` holds demeaned data, so that rounding left by demeaning a
@@ -25,7 +26,8 @@ def independent_columns(cp: np.ndarray, scale: np.ndarray | None = None,
     k = A.shape[0]
     size = np.diag(A).copy() if scale is None else np.asarray(scale, dtype=float).copy()
     keep: list[int] = []
-    for j in range(k):
+    first = [int(j) for j in (priority or ())]
+    for j in first + [j for j in range(k) if j not in set(first)]:
         if size[j] <= 0 or A[j, j] <= tol * size[j]:
             continue
         if keep:
@@ -36,7 +38,7 @@ def independent_columns(cp: np.ndarray, scale: np.ndarray | None = None,
             resid = A[j, j]
         if resid > tol * size[j]:
             keep.append(j)
-    return np.asarray(keep, dtype=np.int64)
+    return np.asarray(sorted(keep), dtype=np.int64)
 
 
 def rank_of(cp: np.ndarray, scale: np.ndarray | None = None, tol: float = COLLINEAR_TOL) -> int:

@@ -146,11 +146,11 @@ def _unshift(beta, bread, cols, s, icol):
     return b, L @ bread @ L.T
 
 
-def _select(A, cols, scale):
+def _select(A, cols, scale, priority=None):
     k = A.shape[0] - 1
     if cols is None:
-        sub = independent_columns(A[:k, :k], None if scale is None else scale[:k])
-        return sub
+        return independent_columns(A[:k, :k], None if scale is None else scale[:k],
+                                   priority=priority)
     return np.asarray(cols, dtype=np.int64)
 
 
@@ -163,12 +163,12 @@ def _need_df(df, what, n, needed):
 
 
 # ---------------------------------------------------------------------- estimators
-def pooled_core(ss, cols=None) -> CoreFit:
+def pooled_core(ss, cols=None, priority=None) -> CoreFit:
     """Ordinary least squares on all rows."""
     icol = intercept_column(ss)
     s = _shift(ss, icol)
     A = _cp_rows(ss, s)
-    cols = _select(A, cols, None)
+    cols = _select(A, cols, None, priority)
     beta, rss, bread = _solve(A, cols)
     beta, bread = _unshift(beta, bread, cols, s, icol)
     df = ss.n - len(cols)
@@ -177,7 +177,7 @@ def pooled_core(ss, cols=None) -> CoreFit:
     return CoreFit(beta, cols, bread, rss, s2, df, ss.n, ss.n_units, sigma2_obs=s2)
 
 
-def within_core(ss, cols=None) -> CoreFit:
+def within_core(ss, cols=None, priority=None, allow_empty=False) -> CoreFit:
     """Fixed effects: least squares on unit-demeaned data.
 
     The residual degrees of freedom are ``n - N - k``: the ``N`` unit means absorbed by
@@ -192,12 +192,15 @@ def within_core(ss, cols=None) -> CoreFit:
         raise EstimationError("every unit has a single row: there is no within variation")
     A = ss.within
     if cols is None:
-        cols = independent_columns(A[:k, :k], _uncentred_scale(ss)[:k])
+        cols = independent_columns(A[:k, :k], _uncentred_scale(ss)[:k], priority=priority)
     cols = np.asarray(cols, dtype=np.int64)
     if len(cols) == 0:
-        raise EstimationError("no covariate varies within units: fixed effects have nothing "
-                              "to estimate")
-    beta, rss, bread = _solve(A, cols)
+        if not allow_empty:
+            raise EstimationError("no covariate varies within units: fixed effects have "
+                                  "nothing to estimate")
+        beta, rss, bread = np.zeros(0), float(A[-1, -1]), np.zeros((0, 0))
+    else:
+        beta, rss, bread = _solve(A, cols)
     df = n - N - len(cols)
     _need_df(df, "within (fixed-effects) regression", n, N + len(cols))
     s2 = rss / df
@@ -205,7 +208,7 @@ def within_core(ss, cols=None) -> CoreFit:
                    extra={"singletons": single})
 
 
-def between_core(ss, cols=None, weights="units") -> CoreFit:
+def between_core(ss, cols=None, weights="units", priority=None) -> CoreFit:
     """Least squares on the unit means (one row per unit).
 
     ``weights="units"`` weights each unit equally; ``"rows"`` weights unit means by their
@@ -215,7 +218,7 @@ def between_core(ss, cols=None, weights="units") -> CoreFit:
     s = _shift(ss, icol)
     w = np.ones(len(ss.lengths)) if weights == "units" else ss.lengths.astype(float)
     A = _cp_units(ss, s, w)
-    cols = _select(A, cols, None)
+    cols = _select(A, cols, None, priority)
     beta, rss, bread = _solve(A, cols)
     beta, bread = _unshift(beta, bread, cols, s, icol)
     df = ss.n_units - len(cols)
@@ -225,13 +228,13 @@ def between_core(ss, cols=None, weights="units") -> CoreFit:
                    extra={"weights": weights})
 
 
-def _gls(ss, theta, cols=None):
+def _gls(ss, theta, cols=None, priority=None):
     """GLS on quasi-demeaned rows ``z - theta_i zbar_i`` (theta per panel length)."""
     icol = intercept_column(ss)
     s = _shift(ss, icol)
     w = ss.lengths * (1.0 - np.asarray(theta)) ** 2
     A = ss.within + _cp_units(ss, s, w)
-    cols = _select(A, cols, None)
+    cols = _select(A, cols, None, priority)
     beta, rss, bread = _solve(A, cols)
     beta, bread = _unshift(beta, bread, cols, s, icol)
     return beta, rss, bread, cols
@@ -245,11 +248,11 @@ def theta_of(lengths, sigma2_unit, sigma2_obs):
     return 1.0 - np.sqrt(sigma2_obs / (sigma2_obs + lengths * sigma2_unit))
 
 
-def gls_core(ss, sigma2_unit, sigma2_obs, cols=None) -> CoreFit:
+def gls_core(ss, sigma2_unit, sigma2_obs, cols=None, priority=None) -> CoreFit:
     """Random-intercept GLS for given variance components; classical covariance uses the
     residual variance of the quasi-demeaned regression (``rss / (n - k)``)."""
     theta = theta_of(ss.lengths, sigma2_unit, sigma2_obs)
-    beta, rss, bread, cols = _gls(ss, theta, cols)
+    beta, rss, bread, cols = _gls(ss, theta, cols, priority)
     df = ss.n - len(cols)
     _need_df(df, "random-intercept regression", ss.n, len(cols))
     return CoreFit(beta, cols, bread, rss, rss / df, df, ss.n, ss.n_units,
@@ -257,7 +260,7 @@ def gls_core(ss, sigma2_unit, sigma2_obs, cols=None) -> CoreFit:
                    lengths=ss.lengths.copy(), theta=theta)
 
 
-def swamy_arora_components(ss):
+def swamy_arora_components(ss, priority=None):
     """Swamy-Arora variance components, in the unbalanced form of Baltagi and Chang (1994).
 
     ``sigma_e^2`` is the within residual variance (degrees of freedom ``n - N - r_w``, with
@@ -267,15 +270,20 @@ def swamy_arora_components(ss):
     rows; truncated at zero. On balanced panels this is ``s_b^2 - sigma_e^2 / T``.
     """
     k = ss.p - 1
-    w = within_core(ss)
+    w = within_core(ss, priority=priority, allow_empty=True)
     s2e = w.sigma2
     icol = intercept_column(ss)
     s = _shift(ss, icol)
     At = _cp_units(ss, s, ss.lengths.astype(float))           # sum T_i zbar zbar'
-    cols_b = independent_columns(At[:k, :k])
+    cols_b = independent_columns(At[:k, :k], priority=priority)
     _, ssr_t, bread_t = _solve(At, cols_b)
     df_b = ss.n_units - len(cols_b)
-    _need_df(df_b, "between regression", ss.n_units, len(cols_b))
+    if df_b <= 0:
+        raise EstimationError(
+            f"Swamy-Arora variance components need more units than between-regression "
+            f"coefficients: {ss.n_units} units for {len(cols_b)} coefficients leave no "
+            "degrees of freedom for the unit variance; use method='reml' or 'ml', or fewer "
+            "unit-level covariates")
     At2 = _cp_units(ss, s, ss.lengths.astype(float) ** 2)     # sum T_i^2 zbar zbar'
     tr = float(np.trace(bread_t @ At2[np.ix_(cols_b, cols_b)]))
     s2u = max(0.0, (ssr_t - df_b * s2e) / (ss.n - tr))
@@ -283,11 +291,11 @@ def swamy_arora_components(ss):
                       "ssr_between": ssr_t}
 
 
-def swamy_arora_core(ss, cols=None) -> CoreFit:
+def swamy_arora_core(ss, cols=None, priority=None) -> CoreFit:
     """Random-intercept GLS with Swamy-Arora variance components (see
     :func:`swamy_arora_components`)."""
-    s2u, s2e, info = swamy_arora_components(ss)
-    fit = gls_core(ss, s2u, s2e, cols)
+    s2u, s2e, info = swamy_arora_components(ss, priority)
+    fit = gls_core(ss, s2u, s2e, cols, priority)
     fit.extra.update(info)
     return fit
 
@@ -311,7 +319,7 @@ def _profile(ss, gamma, cols, method, s):
     return val, beta, bread, s2
 
 
-def likelihood_core(ss, method="reml", cols=None) -> CoreFit:
+def likelihood_core(ss, method="reml", cols=None, priority=None) -> CoreFit:
     """Random intercept by maximum likelihood (``"ml"``) or restricted ML (``"reml"``).
 
     The Gaussian marginal likelihood is profiled over the coefficients and ``sigma^2``,
@@ -327,7 +335,7 @@ def likelihood_core(ss, method="reml", cols=None) -> CoreFit:
     icol = intercept_column(ss)
     s = _shift(ss, icol)
     if cols is None:
-        cols = independent_columns(_cp_rows(ss, s)[:k, :k])
+        cols = independent_columns(_cp_rows(ss, s)[:k, :k], priority=priority)
     cols = np.asarray(cols, dtype=np.int64)
     if ss.n - len(cols) <= 0:
         raise EstimationError("too few rows for the number of coefficients")

@@ -281,16 +281,17 @@ def fit_stats(estimator, ss, labels, *, method=None, outcome=None) -> ReferenceR
     as in :func:`fit_arrays`)."""
     method = _check_options(estimator, method, "classical")
     labels = list(labels)
+    pr = _priority(labels)
     if estimator == "pooled":
-        fit = core.pooled_core(ss)
+        fit = core.pooled_core(ss, priority=pr)
     elif estimator == "within":
-        fit = core.within_core(ss)
+        fit = core.within_core(ss, priority=pr)
     elif estimator == "between":
-        fit = core.between_core(ss)
+        fit = core.between_core(ss, priority=pr)
     elif method == "swamy-arora":
-        fit = core.swamy_arora_core(ss)
+        fit = core.swamy_arora_core(ss, priority=pr)
     else:
-        fit = core.likelihood_core(ss, method)
+        fit = core.likelihood_core(ss, method, priority=pr)
     dropped = _report_dropped(estimator, ss, fit, labels)
     cols = fit.cols
     kept = [labels[j] for j in cols]
@@ -320,6 +321,14 @@ def fit_stats(estimator, ss, labels, *, method=None, outcome=None) -> ReferenceR
         group_count=None if fit.lengths is None else ss.group_count.copy(),
         loglik=fit.loglik, outcome=outcome, extra=extra, refit_info={"method": method},
     )
+
+
+def _priority(labels):
+    """Columns kept first when some are collinear: the intercept, then the occasion
+    indicators (effects absorb a trend such as experience, not the other way round)."""
+    first = [j for j, t in enumerate(labels) if t == "Intercept"]
+    occ = [j for j, t in enumerate(labels) if t.startswith("occasion[") and t.endswith("]")]
+    return first + occ
 
 
 def _report_dropped(estimator, ss, fit, labels):
