@@ -215,3 +215,46 @@ def quad_terms(stats: SuffStats, b: np.ndarray):
     S = (np.einsum("si,dij,sj->sd", v, stats.group_cp, v)
          + stats.group_count[None, :] * (v @ stats.group_mean.T) ** 2)
     return W, S
+
+
+def partial_inplace(Z: np.ndarray, keys: np.ndarray) -> Partial:
+    """:func:`partial` computed in place: ``Z`` (float64, C-ordered) is overwritten.
+
+    The same moments with no working copy of the block beyond ``Z`` itself (``partial``
+    makes three), for passes that build ``Z`` themselves (the out-of-core engines). Rows
+    sorted by unit (the common layout of panel files) skip the sort of the keys. The
+    reference point is the mean of the first rows (any point near the data will do), and
+    the total cross-products use the exact decomposition ``total = within + sum_i T_i
+    (zbar_i - zbar)(zbar_i - zbar)'``, both sums of squares about block means (Chan,
+    Golub and LeVeque 1979).
+    """
+    if Z.dtype != np.float64 or Z.ndim != 2 or not Z.flags.c_contiguous:
+        raise ValueError("partial_inplace needs a C-ordered 2-d float64 array")
+    n, p = Z.shape
+    keys = np.asarray(keys)
+    if n == 0:
+        return partial(Z, keys)
+    sorted_rows = keys.dtype != object and bool(np.all(keys[1:] >= keys[:-1]))
+    if sorted_rows:
+        starts = np.flatnonzero(np.concatenate([[True], keys[1:] != keys[:-1]]))
+        ukeys = keys[starts]
+        counts = np.diff(np.append(starts, n)).astype(np.int64)
+        codes = np.repeat(np.arange(len(starts)), counts)
+    else:
+        ukeys, codes = np.unique(keys, return_inverse=True)
+        codes = codes.ravel()
+        counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
+    ref = Z[:4096].mean(axis=0)
+    Z -= ref
+    if sorted_rows:
+        offsets = np.add.reduceat(Z, starts, axis=0) / counts[:, None]
+    else:
+        offsets = _group_sums(codes, Z, len(ukeys)) / counts[:, None]
+    shift = (counts @ offsets) / n
+    step = 1 << 16  # subtract the unit means in cache-sized slices
+    for a in range(0, n, step):
+        Z[a:a + step] -= offsets[codes[a:a + step]]
+    within_m2 = Z.T @ Z
+    dev = offsets - shift
+    m2 = within_m2 + (dev * counts[:, None]).T @ dev
+    return Partial(int(n), ref, shift, m2, within_m2, ukeys, counts, offsets)

@@ -190,11 +190,13 @@ class DesignPiece:
     unit_cp: np.ndarray | None = field(default=None)  # (units, p, p) within cross-products
 
 
-def _build_X(sub: pd.DataFrame, spec: BlockSpec) -> np.ndarray:
-    n = len(sub)
+def _build_Z(sub: pd.DataFrame, spec: BlockSpec) -> np.ndarray:
+    """``[X, y]`` of the kept rows as one C-ordered float64 array."""
+    n, k = len(sub), len(spec.terms)
+    Z = np.empty((n, k + 1))
     if spec.plain is not None:
-        cols = [np.ones(n) if c is None else sub[c].to_numpy(dtype=float) for c in spec.plain]
-        X = np.column_stack(cols) if cols else np.zeros((n, 0))
+        for j, c in enumerate(spec.plain):
+            Z[:, j] = 1.0 if c is None else sub[c].to_numpy(dtype=float)
     else:
         from formulaic import Formula
 
@@ -204,14 +206,17 @@ def _build_X(sub: pd.DataFrame, spec: BlockSpec) -> np.ndarray:
             sub.reset_index(drop=True), context=safe_context(), ensure_full_rank=False,
             na_action="raise")
         got = [str(c) for c in mm.columns]
-        if got != list(spec.terms[:len(got)]) or len(got) + len(spec.occasions) != len(spec.terms):
+        if got != list(spec.terms[:len(got)]) or len(got) + len(spec.occasions) != k:
             raise PanelDataError(f"the formula gave columns {got} on one partition, expected "
                                  f"{list(spec.terms)}")
-        X = np.asarray(mm, dtype=float)
+        Z[:, :len(got)] = np.asarray(mm, dtype=float)
     if spec.occasions:
         tv = sub[spec.time].to_numpy()
-        X = np.column_stack([X] + [(tv == o).astype(float) for o in spec.occasions])
-    return X
+        k0 = k - len(spec.occasions)
+        for j, o in enumerate(spec.occasions):
+            Z[:, k0 + j] = tv == o
+    Z[:, k] = sub[spec.outcome].to_numpy(dtype=float)
+    return Z
 
 
 def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
@@ -221,26 +226,23 @@ def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
     miss = pdf[used].isna().to_numpy() if used else np.zeros((n_input, 0), bool)
     missing = miss.sum(axis=0).astype(np.int64)
     keep = ~miss.any(axis=1)
-    sub = pdf.loc[keep]
+    sub = pdf if keep.all() else pdf.loc[keep]
     for c in used:
         if c != spec.time and pd.api.types.is_numeric_dtype(sub[c]):
             _check_inf(sub[c].to_numpy(dtype=float), sub, c, spec.unit, spec.time)
-    X = _build_X(sub, spec)
-    y = sub[spec.outcome].to_numpy(dtype=float)
-    if X.size and not np.all(np.isfinite(X)):
-        bad = int(np.flatnonzero(~np.isfinite(X).all(axis=0))[0])
-        r = int(np.flatnonzero(~np.isfinite(X[:, bad]))[0])
+    Z = _build_Z(sub, spec)
+    if Z.size and not np.all(np.isfinite(Z[:, :-1])):
+        bad = int(np.flatnonzero(~np.isfinite(Z[:, :-1]).all(axis=0))[0])
+        r = int(np.flatnonzero(~np.isfinite(Z[:, bad]))[0])
         raise PanelDataError(
             f"term {spec.terms[bad]!r} is not finite at {spec.unit}="
             f"{_plain(sub[spec.unit].iloc[r])!r}, {spec.time}={_plain(sub[spec.time].iloc[r])!r}"
             " (a transform such as log of a non-positive value?)")
-    Z = np.column_stack([X, y])
     keys = sub[spec.unit].to_numpy()
-    part = suffstats.partial(Z, keys)
     maxabs = np.abs(Z).max(axis=0) if len(Z) else np.zeros(Z.shape[1])
-    ucp = None
-    if spec.unit_cp:
-        ucp = _unit_cp(Z, keys, part)
+    Zrows = Z.copy() if spec.unit_cp else None
+    part = suffstats.partial_inplace(Z, keys)
+    ucp = None if Zrows is None else _unit_cp(Zrows, keys, part)
     return DesignPiece(n_input, missing, int((~keep).sum()), maxabs, part, ucp)
 
 

@@ -39,7 +39,7 @@ import numpy as np
 import pandas as pd
 
 from .. import suffstats
-from ..design import KINDS, DesignSpec
+from ..design import KINDS, Design, DesignSpec, _label_between, _label_mean, _label_within
 from ..errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
                       SpecificationError, choices_error)
 from ..formula import safe_context, screen
@@ -67,7 +67,7 @@ def local_client(n_workers: int = 2, processes: bool = True):
         from distributed import Client, LocalCluster
 
         cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1,
-                               processes=processes, dashboard_address=None)
+                               processes=processes, dashboard_address=":0")
         _LOCAL[key] = Client(cluster)
     return _LOCAL[key]
 
@@ -397,18 +397,6 @@ def _describe_row(c, part, n_missing, maxabs) -> dict:
 
 
 # ---------------------------------------------------------------------------- DaskDesign
-def _label_within(t):
-    return f"{t} (within)"
-
-
-def _label_between(t):
-    return f"{t} (between)"
-
-
-def _label_mean(t):
-    return f"{t} (unit mean)"
-
-
 class DaskDesign:
     """A formula on a :class:`DaskPanel`: the design pass and everything derived from it.
 
@@ -564,17 +552,10 @@ class DaskDesign:
     def T(self) -> np.ndarray:
         return self._stats.unit_count.copy()
 
-    @property
-    def has_intercept(self) -> bool:
-        return "Intercept" in self.terms
-
-    @property
-    def time_varying(self) -> list[str]:
-        return [t for t in self.terms if self.varies_within[t]]
-
-    @property
-    def time_constant(self) -> list[str]:
-        return [t for t in self.terms if not self.varies_within[t] and t != "Intercept"]
+    # the questions Design answers from terms and varies_within alone
+    has_intercept = Design.has_intercept
+    time_varying = Design.time_varying
+    time_constant = Design.time_constant
 
     def unit_means(self) -> np.ndarray:
         """Unit means of the columns of X (N x k), over the estimation sample."""
@@ -586,6 +567,37 @@ class DaskDesign:
     def __repr__(self) -> str:
         return (f"DaskDesign({self.outcome!r} ~ {len(self.terms)} terms, {self.n} rows, "
                 f"{self.n_units} units, {self.n_dropped} rows dropped)")
+
+    #: reference fits and models check this to take the sufficient-statistics route
+    out_of_core = True
+
+    def fit_reference(self, estimator: str, *, method=None, cov: str = "classical"):
+        """A reference fit (:mod:`bayespanel.reference`) on this design's statistics; see
+        :func:`bayespanel.engines._reference.fit` for what ``cov`` supports here."""
+        from ._reference import fit
+
+        return fit(self, estimator, method=method, cov=cov)
+
+    def model_suffstats(self, kind: str) -> suffstats.SuffStats:
+        """Statistics a Bayesian builder of ``kind`` reads: as :meth:`suffstats`, except
+        ``"within"`` keeps only the time-varying columns (what ``FixedEffects`` uses)."""
+        if kind != "within":
+            return self.suffstats(kind)
+        tv = [i for i, t in enumerate(self.terms) if self.varies_within[t]]
+        if not tv:
+            self._transform("within")  # raises the in-memory message
+        names = [self.terms[i] for i in tv] + [self.outcome]
+        return blk.select_columns(self._stats, tv + [self.k], names)
+
+    def build(self, builder, priors=None, **kwargs):
+        """A Gaussian model (``bayespanel.models`` builder class, e.g. ``RandomIntercept``)
+        on this design's statistics, as the builder would make from an in-memory Panel
+        (same labels, units and specification). Uses ``builder.from_suffstats``."""
+        kind = builder.kind
+        stats = self.model_suffstats(kind)
+        return builder.from_suffstats(stats, list(stats.names[:-1]), outcome=self.outcome,
+                                      units=self.units, priors=priors,
+                                      design_spec=self.spec.to_dict(), **kwargs)
 
     def matrices(self, kind):
         raise EstimationError(

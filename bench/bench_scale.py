@@ -1,0 +1,179 @@
+"""Scale benchmark: the one pass on Dask over a Parquet panel on disk, then the fits.
+
+Generates a simulated random-intercept panel (default 20,000,000 rows: 2,000,000 units x
+10 occasions, 5 covariates) as Parquet files in a temporary folder (not in the
+repository), then times, on a local Dask cluster:
+
+* the passes: occasions, structure (duplicates, balance), describe, and the design pass
+  that yields the sufficient statistics;
+* the reference fits on the statistics (within, between, pooled, random Swamy-Arora and
+  ML);
+* the Bayesian random-intercept fit (build + NUTS) from the statistics.
+
+It prints rows per second per core of the design pass, peak memory (this process and each
+worker) and the time split. ``--compare`` also times the design pass with thread and
+process workers on the same files. Run ``python bench/bench_scale.py --rows 2000000`` for a
+quick look.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import resource
+import shutil
+import sys
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+
+def generate(path: Path, rows: int, occasions: int, k: int, files: int, group_rows: int,
+             seed: int = 1):
+    """Write the panel as ``files`` Parquet files (units complete within a file)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    units = rows // occasions
+    path.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(seed)
+    beta = np.linspace(0.5, -0.5, k)
+    per = -(-units // files)
+    for f in range(files):
+        u0, u1 = f * per, min(units, (f + 1) * per)
+        if u0 >= u1:
+            break
+        nu = u1 - u0
+        unit = np.repeat(np.arange(u0, u1, dtype=np.int64), occasions)
+        time_ = np.tile(np.arange(2000, 2000 + occasions, dtype=np.int64), nu)
+        X = rng.normal(size=(nu * occasions, k)) + np.repeat(rng.normal(size=(nu, k)), occasions, 0)
+        y = 1.0 + X @ beta + np.repeat(rng.normal(0, 1.5, nu), occasions) + rng.normal(size=len(unit))
+        cols = {"unit": unit, "time": time_, "y": y}
+        cols.update({f"x{j + 1}": X[:, j] for j in range(k)})
+        pq.write_table(pa.table(cols), path / f"part-{f:04d}.parquet", row_group_size=group_rows)
+    return units
+
+
+def maxrss_mb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+
+
+def _worker_rss():
+    import resource as r
+
+    return r.getrusage(r.RUSAGE_SELF).ru_maxrss / 1024.0
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--rows", type=int, default=20_000_000)
+    ap.add_argument("--occasions", type=int, default=10)
+    ap.add_argument("--covariates", type=int, default=5)
+    ap.add_argument("--files", type=int, default=0, help="Parquet files (default rows / 1M)")
+    ap.add_argument("--partition-rows", type=int, default=250_000,
+                    help="rows per Parquet row group, read as one partition each")
+    ap.add_argument("--workers", type=int, default=2)
+    ap.add_argument("--threads", action="store_true", help="thread workers, not processes")
+    ap.add_argument("--compare", action="store_true", help="also time threads vs processes")
+    ap.add_argument("--draws", type=int, default=1000)
+    ap.add_argument("--path", default="/tmp/bayespanel_scale")
+    ap.add_argument("--keep", action="store_true", help="keep the Parquet files")
+    args = ap.parse_args(argv)
+
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+    import bayespanel as bp
+    from bayespanel.engines.dask import close_local_client, local_client
+
+    path = Path(args.path) / f"rows{args.rows}-g{args.partition_rows}"
+    files = args.files or max(2, args.rows // 1_000_000)
+    t0 = time.perf_counter()
+    if not path.exists():
+        generate(path, args.rows, args.occasions, args.covariates, files, args.partition_rows)
+    t_gen = time.perf_counter() - t0
+    size = sum(f.stat().st_size for f in path.glob("*.parquet")) / 2 ** 20
+    k = args.covariates
+    formula = "y ~ " + " + ".join(f"x{j + 1}" for j in range(k))
+    print(f"panel: {args.rows:,} rows, {args.rows // args.occasions:,} units x {args.occasions} "
+          f"occasions, {k} covariates; {files} Parquet files, {size:.0f} MB on disk "
+          f"(written in {t_gen:.1f} s)")
+    numeric_mb = args.rows * (k + 1) * 8 / 2 ** 20
+    print(f"numeric columns used ([X, y]): {numeric_mb:.0f} MB in memory if loaded")
+
+    client = local_client(args.workers, processes=not args.threads)
+    kind = "threads" if args.threads else "processes"
+    print(f"cluster: {args.workers} workers ({kind}, 1 thread each)")
+    timings = {}
+
+    def timed(name, fn):
+        t = time.perf_counter()
+        out = fn()
+        timings[name] = time.perf_counter() - t
+        return out
+
+    panel = bp.Panel.from_parquet(path, unit="unit", time="time", engine="dask", client=client,
+                                  split_row_groups=True)
+    print(f"partitions: {panel.npartitions}")
+    timed("pass: occasions", lambda: panel.occasions)
+    st = timed("pass: structure", panel.structure)
+    print(f"structure: {st['n_units']:,} units, {st['n_rows']:,} rows, balanced={st['balanced']}")
+    desc = timed("pass: describe", panel.describe)
+    design = timed("pass: design (sufficient statistics)", lambda: panel.design(formula))
+    refs = {}
+    for est, meth in [("within", None), ("between", None), ("pooled", None),
+                      ("random", "swamy-arora"), ("random", "ml")]:
+        name = est if meth is None else f"{est} ({meth})"
+        refs[name] = timed(f"reference: {name}",
+                           lambda: design.fit_reference(est, method=meth))
+    model = timed("bayes: build RandomIntercept from statistics",
+                  lambda: design.build(bp.models.RandomIntercept))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        post = timed("bayes: sample (2 chains)", lambda: model.sample(
+            draws=args.draws, tune=args.draws, chains=2, seed=1, progress=False, cores=2))
+
+    print()
+    print(desc.round(3).to_string())
+    print()
+    re_ = refs["random (swamy-arora)"]
+    print("random intercept (Swamy-Arora):", re_.coef.round(4).to_dict(),
+          f"sigma_unit={re_.sigma_unit:.4f} sigma_obs={re_.sigma_obs:.4f}")
+    summ = post.summary()
+    print("posterior means:", summ["mean"].round(4).to_dict())
+    print()
+    print("time split (s):")
+    for name, t in timings.items():
+        print(f"  {name:<48s} {t:9.2f}")
+    cores = args.workers
+    t_pass = timings["pass: design (sufficient statistics)"]
+    t_all_passes = sum(t for n, t in timings.items() if n.startswith("pass:"))
+    t_fit = timings["bayes: build RandomIntercept from statistics"] + timings["bayes: sample (2 chains)"]
+    print(f"design pass: {args.rows / t_pass:,.0f} rows/s, {args.rows / t_pass / cores:,.0f} "
+          f"rows/s per core ({cores} cores; target 1,000,000)")
+    print(f"all passes: {t_all_passes:.1f} s; Bayesian random-intercept fit after the pass: "
+          f"{t_fit:.1f} s (target < 30 s)")
+    workers = client.run(_worker_rss)
+    print(f"peak memory: this process {maxrss_mb():.0f} MB; workers "
+          + ", ".join(f"{v:.0f} MB" for v in workers.values())
+          + f" (numeric columns if loaded: {numeric_mb:.0f} MB)")
+
+    if args.compare:
+        other = local_client(args.workers, processes=args.threads)
+        p2 = bp.Panel.from_parquet(path, unit="unit", time="time", engine="dask", client=other,
+                                   split_row_groups=True)
+        p2.structure()
+        t = time.perf_counter()
+        p2.design(formula)
+        t_other = time.perf_counter() - t
+        okind = "processes" if args.threads else "threads"
+        print(f"design pass with {okind}: {t_other:.2f} s vs {kind}: {t_pass:.2f} s "
+              f"(ratio {t_other / t_pass:.2f})")
+    close_local_client()
+    if not args.keep:
+        shutil.rmtree(path, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    os.environ.setdefault("OMP_NUM_THREADS", "1")
+    main()
