@@ -1,0 +1,573 @@
+"""Model builders: from a panel and a formula to a PyMC model of the Gaussian family.
+
+``Pooled``, ``RandomIntercept``, ``WithinBetween``, ``CorrelatedEffects`` (Mundlak) and
+``FixedEffects`` share one machine, :class:`GaussianModel`; they differ in the columns
+of the design (``Design.matrices(kind)``) and in what the unit intercepts are:
+
+==================  ================  ===============================================
+builder             design kind       unit intercepts
+==================  ================  ===============================================
+Pooled              pooled            none (``tau = 0``)
+RandomIntercept     random            ``u_i ~ N(0, sigma_unit^2)``
+WithinBetween       within_between    ``u_i ~ N(0, sigma_unit^2)``
+CorrelatedEffects   mundlak           ``u_i ~ N(0, sigma_unit^2)``
+FixedEffects        within            flat prior (integrated out: within likelihood)
+==================  ================  ===============================================
+
+With ``likelihood="marginal"`` (default) the intercepts are integrated out exactly and the
+likelihood reads only the sufficient statistics (:mod:`bayespanel.models.gaussian`), held
+in the graph as ``pm.Data`` so :meth:`GaussianModel.set_suffstats` swaps a new data set in
+without rebuilding or recompiling. ``likelihood="latent"`` builds the same model with one
+non-centred latent intercept per unit and a row-level likelihood (Papaspiliopoulos,
+Roberts and Sköld 2007), for checking and for users who want the intercepts in the graph.
+
+Inside the graph every column is standardised (:class:`~bayespanel.models.gaussian.Scaling`);
+deterministic nodes ``coef``, ``sigma_obs``, ``sigma_unit`` and ``icc`` carry the
+parameters on the original scale, and the priors are stated on that scale
+(:mod:`bayespanel.models.priors`).
+
+References
+----------
+.. [1] Mundlak, Y. (1978). On the pooling of time series and cross section data.
+   Econometrica 46, 69-85. doi:10.2307/1913646
+.. [2] Papaspiliopoulos, O., Roberts, G. O. and Sköld, M. (2007). A general framework for the
+   parametrization of hierarchical models. Statistical Science 22, 59-73.
+   doi:10.1214/088342307000000014
+"""
+
+from __future__ import annotations
+
+import json
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .. import suffstats as _ss
+from ..errors import EstimationError, SpecificationError, choices_error
+from . import gaussian
+from .priors import Prior, resolve_priors, standardised_params
+
+__all__ = ["ModelSpec", "GaussianModel", "Pooled", "RandomIntercept", "WithinBetween",
+           "CorrelatedEffects", "FixedEffects", "BUILDERS"]
+
+LIKELIHOODS = ("marginal", "latent")
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    """How a model was specified (not the data): saved with every posterior as JSON.
+
+    Attributes
+    ----------
+    model : str
+        Builder name, e.g. ``"RandomIntercept"``.
+    kind : str
+        Design kind (``Design.matrices(kind)``).
+    unit_effects : {"random", "fixed", "none"}
+    likelihood : {"marginal", "latent"}
+    outcome : str
+    labels : tuple of str
+        Coefficient labels in order.
+    priors : tuple of (name, dict)
+        Every prior, fully specified on the data scale.
+    design : tuple of (key, value) or None
+        The :class:`~bayespanel.design.DesignSpec` fields, when built from a panel.
+    """
+
+    model: str
+    kind: str
+    unit_effects: str
+    likelihood: str
+    outcome: str
+    labels: tuple
+    priors: tuple
+    design: tuple | None = None
+
+    @property
+    def prior_dict(self) -> dict:
+        return {k: Prior.from_dict(v) for k, v in self.priors}
+
+    def to_dict(self) -> dict:
+        return {"model": self.model, "kind": self.kind, "unit_effects": self.unit_effects,
+                "likelihood": self.likelihood, "outcome": self.outcome,
+                "labels": list(self.labels), "priors": {k: dict(v) for k, v in self.priors},
+                "design": dict(self.design) if self.design is not None else None}
+
+    def to_json(self) -> str:
+        return json.dumps(self.to_dict())
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "ModelSpec":
+        return cls(model=d["model"], kind=d["kind"], unit_effects=d["unit_effects"],
+                   likelihood=d["likelihood"], outcome=d["outcome"], labels=tuple(d["labels"]),
+                   priors=tuple((k, tuple(sorted(v.items()))) for k, v in d["priors"].items()),
+                   design=tuple(d["design"].items()) if d.get("design") else None)
+
+    @classmethod
+    def from_json(cls, text: str) -> "ModelSpec":
+        return cls.from_dict(json.loads(text))
+
+
+def _column_sd(stats, kind):
+    """SD of each column of ``[X, y]`` as it enters the likelihood (divisor ``n - 1``)."""
+    dof = max(stats.n - 1, 1)
+    sd = np.sqrt(np.clip(np.diag(stats.total), 0.0, None) / dof)
+    if kind == "within":
+        sd[:-1] = np.sqrt(np.clip(np.diag(stats.within)[:-1], 0.0, None) / dof)
+    return sd
+
+
+class GaussianModel:
+    """A Gaussian panel model built as a :class:`pymc.Model` (see the module docstring).
+
+    Parameters
+    ----------
+    panel : bayespanel.Panel
+    formula : str
+        Wilkinson formula such as ``"y ~ x + z"``; unit intercepts come from the model.
+    priors : dict, optional
+        Per term label, ``"coef"`` (all slopes), ``"sigma_obs"``, ``"sigma_unit"``; values
+        are :class:`~bayespanel.models.Prior`, a family/preset name (``"gamma2"``) or a dict.
+        See :func:`~bayespanel.models.priors.resolve_priors` and docs/priors.md.
+    likelihood : {"marginal", "latent"}
+    occasion_effects : bool
+        Add one indicator per occasion (the first is the reference).
+
+    Attributes
+    ----------
+    pymc_model : pymc.Model
+    labels : list of str
+    priors : dict of Prior (data scale, fully specified)
+    stats : SuffStats
+    spec : ModelSpec
+    """
+
+    kind = "random"
+    unit_effects = "random"
+    likelihoods = LIKELIHOODS
+
+    def __new__(cls, *args, **kwargs):
+        # issue 5 hook: family= (other than "gaussian") and random_slopes= build a
+        # latent-effect model (bayespanel.models.latent) instead
+        from .latent import latent_model, wants_latent
+
+        if wants_latent(kwargs):
+            return latent_model(cls, *args, **kwargs)
+        return super().__new__(cls)
+
+    def __init__(self, panel, formula, priors=None, likelihood="marginal",
+                 occasion_effects=False, family="gaussian"):
+        self._check_likelihood(likelihood)
+        if not isinstance(occasion_effects, (bool, np.bool_)):
+            raise SpecificationError(
+                f"occasion_effects={occasion_effects!r} must be True or False")
+        design = panel.design(formula, occasion_effects=bool(occasion_effects))
+        M, labels = self._matrix(design)
+        stats = _ss.compute(M, design.y, design.unit_codes, names=list(labels) + [design.outcome])
+        self.design = design
+        self._setup(stats, labels, outcome=design.outcome, units=design.units, priors=priors,
+                    likelihood=likelihood, rows=(M, design.y, design.unit_codes),
+                    design_spec=design.spec.to_dict())
+
+    # ------------------------------------------------------------------ constructors
+    @classmethod
+    def from_suffstats(cls, stats, labels, *, outcome="y", units=None, priors=None,
+                       likelihood="marginal", rows=None, design_spec=None):
+        """Build the model from precomputed sufficient statistics (no rows needed).
+
+        Parameters
+        ----------
+        stats : SuffStats
+            Statistics of ``[M, y]`` for this model's design kind (``p = len(labels) + 1``).
+        labels : list of str
+            Column labels of ``M`` (e.g. from ``Design.matrices(kind)``).
+        outcome : str
+        units : sequence, optional
+            Unit labels (default ``0..N-1``).
+        rows : tuple (M, y, unit_codes), optional
+            The rows, needed only for ``likelihood="latent"``, predictive draws and LOO.
+        design_spec : dict, optional
+            Saved with the model specification.
+        """
+        obj = cls.__new__(cls)
+        obj._check_likelihood(likelihood)
+        obj.design = None
+        obj._setup(stats, list(labels), outcome=outcome, units=units, priors=priors,
+                   likelihood=likelihood, rows=rows, design_spec=design_spec)
+        return obj
+
+    def _check_likelihood(self, likelihood):
+        if likelihood not in self.likelihoods:
+            hint = "" if likelihood not in LIKELIHOODS else (
+                f"; {type(self).__name__} has no unit intercepts to make latent")
+            raise SpecificationError(choices_error("likelihood", likelihood, self.likelihoods)
+                                     .args[0] + hint)
+
+    def _matrix(self, design):
+        return design.matrices(self.kind)
+
+    def _setup(self, stats, labels, *, outcome, units, priors, likelihood, rows, design_spec):
+        labels = [str(x) for x in labels]
+        if stats.k != len(labels):
+            raise SpecificationError(
+                f"labels has {len(labels)} names but the statistics have {stats.k} covariate "
+                "columns")
+        if likelihood == "latent" and rows is None:
+            raise SpecificationError(
+                "likelihood='latent' needs the rows (M, y, unit_codes); build from a panel or "
+                "pass rows=")
+        self.labels = labels
+        self.outcome = str(outcome)
+        self.likelihood = likelihood
+        self.units = pd.Index(units if units is not None else np.arange(stats.n_units))
+        if len(self.units) != stats.n_units:
+            raise SpecificationError(
+                f"units has {len(self.units)} labels but the statistics have {stats.n_units} units")
+        self.intercept = (labels.index("Intercept")
+                          if "Intercept" in labels and self.kind != "within" else None)
+        self.stats = stats
+        self.rows = rows
+        self.scaling = self._scaling(stats)
+        sd = _column_sd(stats, self.kind)
+        self.priors = resolve_priors(priors, labels, intercept=self.intercept, sd_y=sd[-1],
+                                     mean_y=float(stats.mean[-1]), sd_x=sd[:-1],
+                                     has_unit_sd=self.unit_effects == "random")
+        self.spec = ModelSpec(
+            model=type(self).__name__, kind=self.kind, unit_effects=self.unit_effects,
+            likelihood=likelihood, outcome=self.outcome, labels=tuple(labels),
+            priors=tuple((k, tuple(sorted(p.to_dict().items())))
+                         for k, p in self.priors.items()),
+            design=tuple(design_spec.items()) if design_spec else None)
+        self._nutpie = None
+        self.pymc_model = self._build()
+
+    def _scaling(self, stats) -> gaussian.Scaling:
+        sd = _column_sd(stats, self.kind)
+        bad = [j for j in range(stats.p) if not sd[j] > 0 and j != self.intercept]
+        if bad:
+            names = (self.labels + [self.outcome])
+            raise EstimationError(
+                "no variation to estimate from in column(s) "
+                + ", ".join(repr(names[j]) for j in bad)
+                + (" within units" if self.kind == "within" else ""))
+        center = np.zeros(stats.p)
+        if self.intercept is not None:
+            center = np.asarray(stats.mean, dtype=float).copy()
+            center[self.intercept] = 0.0
+        scale = sd.copy()
+        if self.intercept is not None:
+            scale[self.intercept] = 1.0
+        return gaussian.Scaling(tuple(center), tuple(scale), self.intercept)
+
+    # ------------------------------------------------------------------ graph
+    def _prior_values(self, scaling) -> dict:
+        """Standardised prior parameters, keyed by their pm.Data names."""
+        out = {}
+        sy, cy = scaling.scale_y, scaling.center_y
+        for fam, idx in self._coef_groups().items():
+            cols = {}
+            for j in idx:
+                lab = self.labels[j]
+                if j == self.intercept:
+                    par = standardised_params(self.priors[lab], loc_shift=cy, factor=1.0 / sy)
+                else:
+                    par = standardised_params(self.priors[lab], loc_shift=0.0,
+                                              factor=scaling.s[j] / sy)
+                for name, val in par.items():
+                    cols.setdefault(name, []).append(val)
+            for name, vals in cols.items():
+                out[f"prior_coef_{fam}_{name}"] = np.asarray(vals, dtype=float)
+        for comp in self._sd_names():
+            par = standardised_params(self.priors[comp], loc_shift=0.0, factor=1.0 / sy)
+            for name, val in par.items():
+                out[f"prior_{comp}_{name}"] = np.asarray(val, dtype=float)
+        return out
+
+    def _sd_names(self):
+        return ["sigma_obs"] + (["sigma_unit"] if self.unit_effects == "random" else [])
+
+    def _coef_groups(self) -> dict:
+        groups = {}
+        for j, lab in enumerate(self.labels):
+            groups.setdefault(self.priors[lab].family, []).append(j)
+        return groups
+
+    def _data_values(self) -> dict:
+        """Every pm.Data value of the marginal graph for the current statistics."""
+        vals = {}
+        if self.likelihood == "marginal":
+            std = self.scaling.standardise(self.stats)
+            vals.update({f"stats_{k}": v for k, v in std.items()})
+            vals["stats_n"] = np.asarray(float(self.stats.n))
+            vals["stats_n_units"] = np.asarray(float(self.stats.n_units))
+        A, a0 = self.scaling.coef_map()
+        vals["coef_map"] = A
+        vals["coef_offset"] = a0
+        vals["scale_y"] = np.asarray(self.scaling.scale_y)
+        vals.update(self._prior_values(self.scaling))
+        return vals
+
+    def _build(self):
+        import pymc as pm
+        import pytensor.tensor as pt
+
+        coords = {"term": self.labels}
+        groups = self._coef_groups()
+        if len(groups) > 1:
+            for fam, idx in groups.items():
+                coords[f"term_{fam}"] = [self.labels[j] for j in idx]
+        if self.likelihood == "latent" or self.unit_effects != "none":
+            coords["unit"] = list(self.units)
+        vals = self._data_values()
+        with pm.Model(coords=coords) as model:
+            d = {name: pm.Data(name, val) for name, val in vals.items()}
+            parts, order = [], []
+            for fam, idx in groups.items():
+                name = "coef_std" if len(groups) == 1 else f"coef_std_{fam}"
+                dims = "term" if len(groups) == 1 else f"term_{fam}"
+                par = {k[len(f"prior_coef_{fam}_"):]: v for k, v in d.items()
+                       if k.startswith(f"prior_coef_{fam}_")}
+                parts.append(_coef_rv(pm, name, fam, par, dims))
+                order.extend(idx)
+            b_std = parts[0] if len(parts) == 1 else pt.concatenate(parts)[np.argsort(order)]
+            sig = {}
+            for comp in self._sd_names():
+                par = {k[len(f"prior_{comp}_"):]: v for k, v in d.items()
+                       if k.startswith(f"prior_{comp}_")}
+                sig[comp] = _sd_rv(pm, f"{comp}_std", self.priors[comp].family, par)
+            sigma = sig["sigma_obs"]
+            tau = sig.get("sigma_unit")
+            if self.likelihood == "marginal":
+                self._marginal_potential(pm, pt, d, b_std, sigma, tau)
+            else:
+                self._latent_likelihood(pm, b_std, sigma, tau, d["scale_y"])
+            pm.Deterministic("coef", d["coef_map"] @ b_std + d["coef_offset"], dims="term")
+            pm.Deterministic("sigma_obs", d["scale_y"] * sigma)
+            if tau is not None:
+                pm.Deterministic("sigma_unit", d["scale_y"] * tau)
+                pm.Deterministic("icc", tau ** 2 / (tau ** 2 + sigma ** 2))
+        return model
+
+    def _marginal_potential(self, pm, pt, d, b_std, sigma, tau):
+        v = gaussian.residual_vector(b_std, xp=pt)
+        if self.unit_effects == "fixed":
+            ll = gaussian.within_loglik(v, d["stats_within"], d["stats_n"], d["stats_n_units"],
+                                        sigma, xp=pt)
+        else:
+            ll = gaussian.marginal_loglik(
+                v, d["stats_within"], d["stats_group_cp"], d["stats_group_mean"],
+                d["stats_group_count"], d["stats_lengths"], sigma,
+                tau if tau is not None else 0.0, xp=pt)
+        pm.Potential("loglik", ll)
+
+    def _latent_likelihood(self, pm, b_std, sigma, tau, scale_y):
+        M, y, codes = self.rows
+        Ms, ys = self.scaling.standardise_rows(np.asarray(M, float), np.asarray(y, float))
+        Xd = pm.Data("rows_X", Ms)
+        yd = pm.Data("rows_y", ys)
+        cd = pm.Data("rows_unit", np.asarray(codes, dtype=np.int64))
+        if self.unit_effects == "random":
+            z = pm.Normal("unit_std", 0.0, 1.0, dims="unit")
+            u = tau * z
+        else:
+            u = pm.Flat("unit_std", dims="unit")
+        pm.Deterministic("unit_effect", scale_y * u, dims="unit")
+        pm.Normal("y_std", mu=Xd @ b_std + u[cd], sigma=sigma, observed=yd)
+
+    # ------------------------------------------------------------------ data swap
+    def set_suffstats(self, stats, rows=None):
+        """Swap in new sufficient statistics without rebuilding or recompiling the graph.
+
+        The priors stay as resolved at build time (fixed on the data scale); the internal
+        standardisation follows the new statistics. Shapes must match: same columns,
+        and for ``likelihood="latent"`` the new ``rows`` with the same units.
+
+        Parameters
+        ----------
+        stats : SuffStats
+        rows : tuple (M, y, unit_codes), optional
+            The new rows (required for the latent likelihood); without them the model
+            forgets its rows (predictive draws and LOO then need a panel).
+        """
+        if stats.p != self.stats.p:
+            raise SpecificationError(
+                f"the new statistics have {stats.k} covariate columns; this model has "
+                f"{self.stats.k} ({', '.join(self.labels)})")
+        if self.likelihood == "latent":
+            if rows is None or stats.n_units != self.stats.n_units:
+                raise SpecificationError(
+                    "a latent-intercept model needs rows= with the same units to swap data")
+        if stats.n_units != self.stats.n_units:
+            self.units = pd.Index(np.arange(stats.n_units))
+        self.stats = stats
+        self.rows = rows
+        self.scaling = self._scaling(stats)
+        vals = self._data_values()
+        if self.likelihood == "latent":
+            M, y, codes = rows
+            Ms, ys = self.scaling.standardise_rows(np.asarray(M, float), np.asarray(y, float))
+            vals.update(rows_X=Ms, rows_y=ys, rows_unit=np.asarray(codes, dtype=np.int64))
+        import pymc as pm
+
+        with self.pymc_model:
+            pm.set_data(vals)
+        return self
+
+    # ------------------------------------------------------------------ sampling
+    def sample(self, draws=1000, tune=1000, chains=4, seed=1, sampler="auto", progress=True,
+               cores=None, target_accept=0.8):
+        """Draw from the posterior with NUTS; returns a :class:`~bayespanel.posterior.Posterior`.
+
+        Parameters
+        ----------
+        draws, tune, chains : int
+        seed : int or None
+            The same seed gives identical draws (with the same sampler). ``None`` draws a
+            seed from the operating system and records it in the posterior.
+        sampler : {"auto", "pymc", "nutpie"}
+            ``"auto"`` picks by model size: see
+            :func:`bayespanel.models.sampling.choose_sampler` (measured in
+            bench/bench_models.py).
+        progress : bool
+        cores : int, optional
+            Chains run in parallel on up to this many cores (default ``min(chains, CPUs)``).
+        target_accept : float
+
+        Notes
+        -----
+        Hoffman and Gelman (2014), The No-U-Turn sampler, JMLR 15, 1593-1623. Diagnostics
+        are checked after sampling and reported with :class:`~bayespanel.SamplingWarning`.
+        """
+        from ..posterior import Posterior
+        from .sampling import run
+
+        dt, info = run(self, draws=draws, tune=tune, chains=chains, seed=seed, sampler=sampler,
+                       progress=progress, cores=cores, target_accept=target_accept)
+        post = Posterior.from_model(self, dt, info)
+        post.diagnostics(warn=True)
+        return post
+
+    def sample_prior_predictive(self, draws=500, seed=1):
+        """Draws from the prior and, when the rows are known, of the outcome.
+
+        Returns
+        -------
+        xarray.DataTree
+            Group ``prior`` (``coef``, ``sigma_obs``, ``sigma_unit``, ``icc`` on the data
+            scale) and, with rows, ``prior_predictive`` with ``y`` on every estimation row:
+            ``y = M b + u_i + e`` with ``u_i ~ N(0, sigma_unit^2)`` (none for ``Pooled``;
+            :class:`FixedEffects` has no proper prior for the intercepts, so its outcome
+            draws hold the unit means of the data fixed).
+        """
+        import pymc as pm
+        import xarray as xr
+
+        from .sampling import check_int
+        from ..posterior import simulate_outcome
+
+        check_int("draws", draws, 1)
+        names = ["coef", "sigma_obs"] + (["sigma_unit", "icc"] if self.unit_effects == "random"
+                                         else [])
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message=".*Potential.*")
+            dt = pm.sample_prior_predictive(draws=draws, model=self.pymc_model,
+                                            random_seed=seed, var_names=names)
+        prior = dt["prior"].to_dataset()[names]
+        groups = {"prior": xr.DataTree(prior)}
+        if self.rows is not None:
+            rng = np.random.default_rng(seed)
+            b = prior["coef"].values.reshape(-1, len(self.labels))
+            sig = prior["sigma_obs"].values.ravel()
+            tau = prior["sigma_unit"].values.ravel() if "sigma_unit" in prior else None
+            M, y, codes = self.rows
+            fixed = None
+            if self.unit_effects == "fixed":
+                fixed = _ss_unit_mean_residual(self.stats, b)
+            yrep = simulate_outcome(M, codes, b, sig, tau, rng, unit_shift=fixed)
+            groups["prior_predictive"] = xr.DataTree(xr.Dataset(
+                {"y": (("chain", "draw", "row"), yrep[None])}))
+        return xr.DataTree.from_dict(groups)
+
+    def __repr__(self):
+        return (f"{type(self).__name__}({self.outcome} ~ {', '.join(self.labels)}; "
+                f"{self.stats.n} rows, {self.stats.n_units} units, {self.likelihood})")
+
+
+def _ss_unit_mean_residual(stats, b):
+    """Per draw and unit, ``ybar_i - xbar_i'b`` (the fixed-effects intercept at its centre)."""
+    v = gaussian.residual_vector(np.atleast_2d(b))
+    return v @ stats.unit_mean.T
+
+
+def _coef_rv(pm, name, family, par, dims):
+    if family == "normal":
+        return pm.Normal(name, mu=par["mu"], sigma=par["sigma"], dims=dims)
+    if family == "student_t":
+        return pm.StudentT(name, nu=par["nu"], mu=par["mu"], sigma=par["sigma"], dims=dims)
+    return pm.Flat(name, dims=dims)
+
+
+def _sd_rv(pm, name, family, par):
+    if family == "half_normal":
+        return pm.HalfNormal(name, sigma=par["scale"])
+    if family == "half_student_t":
+        return pm.HalfStudentT(name, nu=par["nu"], sigma=par["scale"])
+    if family == "exponential":
+        return pm.Exponential(name, scale=par["scale"])
+    if family == "gamma2":
+        return pm.Gamma(name, alpha=2.0, beta=1.0 / par["scale"])
+    return pm.HalfFlat(name)
+
+
+class Pooled(GaussianModel):
+    """Pooled linear regression, ``y_it = x_it'b + e_it`` (no unit intercepts)."""
+
+    kind = "pooled"
+    unit_effects = "none"
+    likelihoods = ("marginal",)
+
+
+class RandomIntercept(GaussianModel):
+    """Random-intercept model, ``y_it = x_it'b + u_i + e_it``, ``u_i ~ N(0, sigma_unit^2)``."""
+
+    kind = "random"
+
+
+class WithinBetween(GaussianModel):
+    """Within-between (hybrid) model: each time-varying ``x`` enters as its within part
+    ``x_it - xbar_i`` (``"x (within)"``) and its unit mean ``xbar_i`` (``"x (between)"``),
+    with random intercepts (Neuhaus and Kalbfleisch 1998, Biometrics 54, 638-645)."""
+
+    kind = "within_between"
+
+
+class CorrelatedEffects(GaussianModel):
+    """Correlated random effects (Mundlak 1978): the original columns plus the unit mean of
+    each time-varying covariate (``"x (unit mean)"``), with random intercepts. The
+    coefficient of ``x`` equals the within effect; that of its unit mean is the contextual
+    effect."""
+
+    kind = "mundlak"
+
+
+class FixedEffects(GaussianModel):
+    """Fixed effects: unit intercepts with flat priors, integrated out to the within
+    likelihood ``p(y | b, sigma) ∝ sigma^-(n-N) exp(-sum_i W_i / 2 sigma^2)``.
+
+    Only time-varying covariates are estimable; they enter on the original scale so that
+    the unit intercepts ``ybar_i - xbar_i'b`` can be recovered after sampling.
+    """
+
+    kind = "within"
+    unit_effects = "fixed"
+
+    def _matrix(self, design):
+        _, labels = design.matrices("within")
+        cols = [design.terms.index(t) for t in labels]
+        return design.X[:, cols], labels
+
+
+BUILDERS = {cls.__name__: cls for cls in
+            (Pooled, RandomIntercept, WithinBetween, CorrelatedEffects, FixedEffects)}

@@ -1,0 +1,557 @@
+"""Posterior: labelled summaries, diagnostics, unit effects and predictive draws.
+
+A :class:`Posterior` wraps the ``xarray.DataTree`` returned by the sampler together with
+what was needed to build the model: its :class:`~bayespanel.models.builders.ModelSpec`,
+the sufficient statistics and (when known) the estimation rows. Everything computed from
+the draws calls the one implementation of the mathematics in
+:mod:`bayespanel.models.gaussian`.
+
+Summaries answer with the same names as the reference fits: ``coef`` (posterior means),
+``sd`` (posterior SDs), ``interval(prob)`` (equal-tailed credible intervals), ``table()``
+(columns ``coef``, ``sd``, ``lower``, ``upper``), ``sigma_unit`` and ``sigma_obs``.
+
+Saved posteriors are NetCDF files (through xarray, engine h5netcdf) with the model
+specification as JSON attributes; nothing is pickled.
+
+References
+----------
+.. [1] Vehtari, A., Gelman, A., Simpson, D., Carpenter, B. and Bürkner, P.-C. (2021).
+   Rank-normalization, folding, and localization: an improved R-hat for assessing
+   convergence of MCMC. Bayesian Analysis 16, 667-718. doi:10.1214/20-BA1221
+.. [2] Betancourt, M. (2016). Diagnosing suboptimal cotangent disintegrations in
+   Hamiltonian Monte Carlo. arXiv:1604.00695
+"""
+
+from __future__ import annotations
+
+import json
+import re
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from .errors import SamplingWarning, SpecificationError
+from .models import gaussian
+from .models.builders import ModelSpec
+from .suffstats import SuffStats
+
+__all__ = ["Posterior", "PointwiseInputs", "simulate_outcome", "THRESHOLDS"]
+
+#: diagnostic thresholds (Vehtari et al. 2021 for R-hat and ESS; Betancourt 2016 for BFMI)
+THRESHOLDS = {"rhat": 1.01, "ess_per_chain": 100, "bfmi": 0.3}
+_STATS_FIELDS = ("mean", "total", "within", "unit_count", "unit_mean", "lengths",
+                 "group_count", "group_mean", "group_cp")
+_FORMAT_VERSION = 1
+
+
+def simulate_outcome(M, unit_codes, b, sigma, tau, rng, unit_shift=None, unit_draws=None):
+    """Outcome draws ``y = M b + u_i + e`` for every draw of ``(b, sigma, tau)``.
+
+    Parameters
+    ----------
+    M : array (n, k); unit_codes : array (n,)
+    b : array (S, k); sigma : array (S,); tau : array (S,) or None
+    rng : numpy Generator
+    unit_shift : array (S, N), optional
+        Fixed unit intercepts per draw, used instead of drawing new ones.
+    unit_draws : array (S, N), optional
+        Unit intercepts already drawn (e.g. from their conditional posterior).
+
+    Returns
+    -------
+    array (S, n)
+    """
+    mu = np.atleast_2d(b) @ np.asarray(M, float).T
+    codes = np.asarray(unit_codes)
+    n_units = int(codes.max()) + 1
+    if unit_draws is not None:
+        mu += unit_draws[:, codes]
+    elif unit_shift is not None:
+        mu += unit_shift[:, codes]
+    elif tau is not None:
+        mu += (tau[:, None] * rng.standard_normal((mu.shape[0], n_units)))[:, codes]
+    return mu + sigma[:, None] * rng.standard_normal(mu.shape)
+
+
+@dataclass
+class PointwiseInputs:
+    """Everything pointwise log-likelihoods need (unit and occasion level, for LOO).
+
+    Draws are flattened over ``(chain, draw)`` in C order.
+    """
+
+    unit_effects: str
+    coef: np.ndarray
+    sigma_obs: np.ndarray
+    sigma_unit: np.ndarray | None
+    M: np.ndarray | None
+    y: np.ndarray | None
+    unit_codes: np.ndarray | None
+    units: pd.Index
+    stats: SuffStats
+    chains: int
+    draws: int
+
+    def _need_rows(self):
+        if self.M is None:
+            raise SpecificationError(
+                "the estimation rows are not available (model built from statistics only); "
+                "pointwise log-likelihoods need them")
+
+    def unit_loglik(self) -> np.ndarray:
+        """``log p(y_i | theta)`` per draw and unit, shape (S, N)."""
+        self._need_rows()
+        if self.unit_effects == "fixed":
+            raise SpecificationError(
+                "fixed effects have no unit-level predictive density: a new unit's intercept "
+                "is not identified; use level='occasion'")
+        tau = self.sigma_unit if self.sigma_unit is not None else np.zeros_like(self.sigma_obs)
+        return gaussian.unit_loglik_rows(self.M, self.y, self.unit_codes, self.coef,
+                                         self.sigma_obs, tau)
+
+    def occasion_loglik(self) -> np.ndarray:
+        """``log p(y_it | y_i,-t, theta)`` per draw and row, shape (S, n)."""
+        self._need_rows()
+        if self.unit_effects == "fixed":
+            tau = None
+        elif self.sigma_unit is None:
+            tau = np.zeros_like(self.sigma_obs)
+        else:
+            tau = self.sigma_unit
+        return gaussian.occasion_loglik_rows(self.M, self.y, self.unit_codes, self.coef,
+                                             self.sigma_obs, tau)
+
+
+def _percent(q) -> str:
+    return f"{100 * q:.10g}%"
+
+
+def _check_prob(prob):
+    if not (isinstance(prob, (float, int)) and 0 < prob < 1):
+        raise SpecificationError(f"prob={prob!r} must be a number strictly between 0 and 1")
+    return float(prob)
+
+
+class Posterior:
+    """Posterior draws of a Gaussian panel model, with labelled summaries.
+
+    Build with :meth:`bayespanel.models.GaussianModel.sample` or :meth:`Posterior.load`.
+
+    Attributes
+    ----------
+    idata : xarray.DataTree
+        The sampler's output (groups ``posterior``, ``sample_stats``).
+    spec : ModelSpec
+    stats : SuffStats
+    units : pandas.Index
+    rows : tuple (M, y, unit_codes) or None
+    sampling : dict
+        Sampler, seed, sizes and timings.
+    """
+
+    def __init__(self, idata, spec: ModelSpec, stats: SuffStats, units, rows=None,
+                 sampling=None, scaling=None):
+        self.idata = idata
+        self.spec = spec
+        self.stats = stats
+        self.units = pd.Index(units)
+        self.rows = rows
+        self.sampling = dict(sampling or {})
+        self.scaling = scaling
+        self._cache = {}
+
+    @classmethod
+    def from_model(cls, model, idata, info) -> "Posterior":
+        return cls(idata, model.spec, model.stats, model.units, rows=model.rows, sampling=info,
+                   scaling=model.scaling)
+
+    def __repr__(self):
+        post = self.idata["posterior"]
+        return (f"Posterior({self.spec.model}, {post.sizes['chain']} chains x "
+                f"{post.sizes['draw']} draws, sampler {self.sampling.get('sampler')!r})")
+
+    # ------------------------------------------------------------------ draws
+    @property
+    def n_chains(self) -> int:
+        return int(self.idata["posterior"].sizes["chain"])
+
+    @property
+    def n_draws(self) -> int:
+        return int(self.idata["posterior"].sizes["draw"])
+
+    @property
+    def labels(self) -> list:
+        return list(self.spec.labels)
+
+    @property
+    def parameter_names(self) -> list:
+        """Rows of :meth:`summary`: coefficients, then the variance components."""
+        extra = ["sigma_unit", "sigma_obs", "icc"] if self.spec.unit_effects == "random" \
+            else ["sigma_obs"]
+        return self.labels + extra
+
+    def draws(self, name) -> np.ndarray:
+        """Draws of a posterior variable or of one coefficient label, as numpy.
+
+        ``name`` is a variable of the posterior group (``"coef"``, ``"sigma_obs"``, ...) or
+        a coefficient label such as ``"x (within)"``; the result has shape
+        ``(chain, draw, ...)``.
+        """
+        post = self.idata["posterior"]
+        if name in post.data_vars:
+            return np.asarray(post[name].values)
+        if name in self.labels:
+            j = self.labels.index(name)
+            return np.asarray(post["coef"].values[:, :, j])
+        raise SpecificationError(
+            f"no draws named {name!r}; choose a variable ({', '.join(post.data_vars)}) or a "
+            f"term ({', '.join(self.labels)})")
+
+    def _flat(self, name, thin=1):
+        return self.draws(name)[:, ::thin].reshape((-1,) + self.draws(name).shape[2:])
+
+    # ------------------------------------------------------------------ summaries
+    def _summarise(self, named: dict, prob: float) -> pd.DataFrame:
+        import arviz_stats as azs
+
+        lo, hi = (1 - prob) / 2, 1 - (1 - prob) / 2
+        rows = {}
+        for label, arr in named.items():
+            flat = arr.reshape(-1)
+            multi = arr.shape[0] > 1
+            rows[label] = {
+                "mean": float(flat.mean()),
+                "sd": float(flat.std(ddof=1)),
+                _percent(lo): float(np.quantile(flat, lo)),
+                _percent(hi): float(np.quantile(flat, hi)),
+                "rhat": float(azs.rhat(arr)) if multi else np.nan,
+                "ess_bulk": float(azs.ess(arr, method="bulk")),
+                "ess_tail": float(azs.ess(arr, method="tail", prob=(0.05, 0.95))),
+            }
+        return pd.DataFrame.from_dict(rows, orient="index")
+
+    def _named_draws(self) -> dict:
+        out = {lab: self.draws(lab) for lab in self.labels}
+        for name in self.parameter_names[len(self.labels):]:
+            out[name] = self.draws(name)
+        return out
+
+    def summary(self, prob: float = 0.95) -> pd.DataFrame:
+        """Posterior mean, SD, equal-tailed interval, R-hat and ESS of every parameter.
+
+        Rows are the coefficient labels (``"x"``, ``"x (within)"``, ``"x (between)"``,
+        ``"x (unit mean)"``, ``"occasion[2003]"``) and then ``sigma_unit``, ``sigma_obs``
+        and ``icc`` (``sigma_unit^2 / (sigma_unit^2 + sigma_obs^2)``). Interval columns are
+        labelled by their quantile, e.g. ``2.5%`` and ``97.5%`` for ``prob=0.95``. R-hat
+        is the rank-normalised split R-hat and ESS the bulk and tail effective sample
+        sizes of Vehtari et al. (2021), from arviz_stats.
+        """
+        prob = _check_prob(prob)
+        key = ("summary", prob)
+        if key not in self._cache:
+            self._cache[key] = self._summarise(self._named_draws(), prob)
+        return self._cache[key].copy()
+
+    @property
+    def coef(self) -> pd.Series:
+        """Posterior means of the coefficients."""
+        return pd.Series(self.draws("coef").mean(axis=(0, 1)), index=self.labels, name="coef")
+
+    @property
+    def sd(self) -> pd.Series:
+        """Posterior SDs of the coefficients."""
+        flat = self._flat("coef")
+        return pd.Series(flat.std(axis=0, ddof=1), index=self.labels, name="sd")
+
+    @property
+    def sigma_obs(self) -> float:
+        return float(self.draws("sigma_obs").mean())
+
+    @property
+    def sigma_unit(self) -> float:
+        """Posterior mean of the unit SD (0 for Pooled, nan for FixedEffects)."""
+        if self.spec.unit_effects == "random":
+            return float(self.draws("sigma_unit").mean())
+        return 0.0 if self.spec.unit_effects == "none" else float("nan")
+
+    def interval(self, prob: float = 0.95) -> pd.DataFrame:
+        """Equal-tailed credible intervals of the coefficients (columns lower, upper)."""
+        prob = _check_prob(prob)
+        flat = self._flat("coef")
+        q = np.quantile(flat, [(1 - prob) / 2, 1 - (1 - prob) / 2], axis=0)
+        return pd.DataFrame({"lower": q[0], "upper": q[1]}, index=self.labels)
+
+    def table(self, prob: float = 0.95) -> pd.DataFrame:
+        """Coefficients and variance components with columns coef, sd, lower, upper."""
+        s = self.summary(prob)
+        lo, hi = _percent((1 - prob) / 2), _percent(1 - (1 - prob) / 2)
+        out = s[["mean", "sd", lo, hi]].copy()
+        out.columns = ["coef", "sd", "lower", "upper"]
+        return out
+
+    def contextual_effects(self, prob: float = 0.95) -> pd.DataFrame:
+        """The contextual effect (between minus within) of each time-varying covariate.
+
+        WithinBetween: draws of ``b_between - b_within``; CorrelatedEffects: the
+        coefficient of the unit mean itself (Mundlak 1978). Rows are covariate names.
+        """
+        named = {}
+        labels = self.labels
+        if self.spec.kind == "within_between":
+            for lab in labels:
+                m = re.fullmatch(r"(.*) \(between\)", lab)
+                if m and f"{m.group(1)} (within)" in labels:
+                    named[m.group(1)] = self.draws(lab) - self.draws(f"{m.group(1)} (within)")
+        elif self.spec.kind == "mundlak":
+            for lab in labels:
+                m = re.fullmatch(r"(.*) \(unit mean\)", lab)
+                if m:
+                    named[m.group(1)] = self.draws(lab)
+        else:
+            raise SpecificationError(
+                f"{self.spec.model} does not separate within and between effects; contextual "
+                "effects come from WithinBetween or CorrelatedEffects")
+        return self._summarise(named, _check_prob(prob))
+
+    # ------------------------------------------------------------------ diagnostics
+    def diagnostics(self, warn: bool = True) -> dict:
+        """Divergences, largest R-hat, smallest bulk/tail ESS and BFMI per chain.
+
+        Thresholds (:data:`THRESHOLDS`): R-hat above 1.01 and ESS below 100 per chain
+        (Vehtari et al. 2021), any divergence, BFMI below 0.3 (Betancourt 2016, a rule of
+        thumb). Each crossed threshold is reported with a :class:`SamplingWarning` naming
+        the parameter when ``warn`` is true; the returned dict lists them in ``problems``.
+        """
+        import arviz_stats as azs
+
+        s = self.summary()
+        ss = self.idata["sample_stats"]
+        div = int(np.asarray(ss["diverging"].values).sum()) if "diverging" in ss else 0
+        bfmi = (np.atleast_1d(azs.bfmi(np.asarray(ss["energy"].values)))
+                if "energy" in ss else np.full(self.n_chains, np.nan))
+        min_ess = THRESHOLDS["ess_per_chain"] * self.n_chains
+        out = {
+            "divergences": div,
+            "draws": self.n_chains * self.n_draws,
+            "max_rhat": float(s["rhat"].max()),
+            "max_rhat_parameter": s["rhat"].idxmax() if s["rhat"].notna().any() else None,
+            "min_ess_bulk": float(s["ess_bulk"].min()),
+            "min_ess_tail": float(s["ess_tail"].min()),
+            "min_ess_parameter": s[["ess_bulk", "ess_tail"]].min(axis=1).idxmin(),
+            "bfmi": [float(x) for x in bfmi],
+            "ess_threshold": min_ess,
+        }
+        problems = []
+        if div:
+            problems.append(f"{div} divergent transition(s) in {out['draws']} draws; the "
+                            "posterior may be biased (raise target_accept or rethink priors)")
+        bad_r = s.index[s["rhat"] > THRESHOLDS["rhat"]]
+        if len(bad_r):
+            problems.append(f"R-hat above {THRESHOLDS['rhat']} for "
+                            + ", ".join(f"{k} ({s.at[k, 'rhat']:.3f})" for k in bad_r))
+        ess = s[["ess_bulk", "ess_tail"]].min(axis=1)
+        bad_e = ess.index[ess < min_ess]
+        if len(bad_e):
+            problems.append(f"ESS below {min_ess} ({THRESHOLDS['ess_per_chain']} per chain) for "
+                            + ", ".join(f"{k} ({ess[k]:.0f})" for k in bad_e))
+        low = [i for i, x in enumerate(bfmi) if x < THRESHOLDS["bfmi"]]
+        if low:
+            problems.append("BFMI below 0.3 in chain(s) "
+                            + ", ".join(f"{i} ({bfmi[i]:.2f})" for i in low))
+        out["problems"] = problems
+        if warn:
+            for msg in problems:
+                warnings.warn(f"{self.spec.model}: {msg}", SamplingWarning, stacklevel=2)
+        return out
+
+    # ------------------------------------------------------------------ unit effects
+    def _unit_index(self, units):
+        if units is None:
+            return np.arange(len(self.units))
+        units = [units] if np.ndim(units) == 0 else list(units)
+        idx = []
+        lookup = {u: i for i, u in enumerate(self.units)}
+        for u in units:
+            if u not in lookup:
+                raise SpecificationError(f"unit {u!r} is not in the estimation sample")
+            idx.append(lookup[u])
+        return np.asarray(idx, dtype=np.int64)
+
+    def _thin(self, thin):
+        if isinstance(thin, bool) or not isinstance(thin, (int, np.integer)) or thin < 1:
+            raise SpecificationError(f"thin={thin!r} must be a positive integer")
+        return int(thin)
+
+    def unit_effects(self, thin: int = 1, units=None, seed: int = 0) -> xr.DataArray:
+        """Draws of the unit intercepts from their exact conditional posterior.
+
+        For every kept draw of ``(b, sigma, tau)``, ``u_i`` is drawn from
+        ``N(tau^2 T_i rbar_i / (sigma^2 + T_i tau^2), tau^2 sigma^2 / (sigma^2 + T_i tau^2))``
+        (fixed effects: ``N(rbar_i, sigma^2 / T_i)``), which composed with the posterior of
+        ``(b, sigma, tau)`` is their exact joint posterior. Nothing is stored at sampling
+        time; memory is ``chains x draws / thin x len(units)`` numbers.
+
+        Parameters
+        ----------
+        thin : int
+            Keep every ``thin``-th draw of each chain.
+        units : label or list of labels, optional
+            Only these units (default all).
+        seed : int
+            Seed of the normal draws (same seed, same values).
+
+        Returns
+        -------
+        xarray.DataArray
+            Dimensions ``(chain, draw, unit)`` on the outcome scale.
+        """
+        if self.spec.unit_effects == "none":
+            raise SpecificationError("Pooled has no unit intercepts; use RandomIntercept, "
+                                     "WithinBetween, CorrelatedEffects or FixedEffects")
+        thin = self._thin(thin)
+        idx = self._unit_index(units)
+        mean, sd = self._unit_conditional(thin, idx)
+        rng = np.random.default_rng(seed)
+        u = mean + sd * rng.standard_normal(mean.shape)
+        coef = self.idata["posterior"]["coef"]
+        chains, draws = coef.sizes["chain"], len(range(0, coef.sizes["draw"], thin))
+        return xr.DataArray(
+            u.reshape(chains, draws, len(idx)), dims=("chain", "draw", "unit"),
+            coords={"chain": coef["chain"].values, "draw": coef["draw"].values[::thin],
+                    "unit": self.units[idx]}, name="unit_effect")
+
+    def _unit_conditional(self, thin, idx):
+        b = self._flat("coef", thin)
+        sigma = self._flat("sigma_obs", thin)[:, None]
+        rbar = gaussian.residual_vector(b) @ self.stats.unit_mean[idx].T
+        T = self.stats.unit_count[idx].astype(float)
+        tau = self._flat("sigma_unit", thin)[:, None] if self.spec.unit_effects == "random" \
+            else None
+        return gaussian.unit_effect_conditional(rbar, T[None, :], sigma, tau)
+
+    # ------------------------------------------------------------------ predictive
+    def posterior_predictive(self, level: str = "occasion", thin: int = 1,
+                             seed: int = 0) -> xr.DataArray:
+        """Replicated outcomes on the estimation rows, one set per kept draw.
+
+        Parameters
+        ----------
+        level : {"occasion", "unit"}
+            ``"occasion"``: new occasions of the same units, ``y = x'b + u_i + e`` with
+            ``u_i`` from its conditional posterior (:meth:`unit_effects`). ``"unit"``: new
+            units with the same covariates, ``u_i ~ N(0, sigma_unit^2)`` (not defined for
+            fixed effects).
+        thin : int
+        seed : int
+
+        Returns
+        -------
+        xarray.DataArray
+            Dimensions ``(chain, draw, row)``.
+        """
+        if level not in ("occasion", "unit"):
+            from .errors import choices_error
+            raise choices_error("level", level, ("occasion", "unit"))
+        if self.rows is None:
+            raise SpecificationError(
+                "the estimation rows are not available (model built from statistics only, or "
+                "saved with rows=False); predictive draws need them")
+        if level == "unit" and self.spec.unit_effects == "fixed":
+            raise SpecificationError("fixed effects cannot predict new units (their intercept "
+                                     "is not identified); use level='occasion'")
+        thin = self._thin(thin)
+        rng = np.random.default_rng(seed)
+        M, y, codes = self.rows
+        b, sigma = self._flat("coef", thin), self._flat("sigma_obs", thin)
+        tau = self._flat("sigma_unit", thin) if self.spec.unit_effects == "random" else None
+        unit_draws = None
+        if level == "occasion" and self.spec.unit_effects != "none":
+            mean, sd = self._unit_conditional(thin, np.arange(len(self.units)))
+            unit_draws = mean + sd * rng.standard_normal(mean.shape)
+        yrep = simulate_outcome(M, codes, b, sigma, tau, rng, unit_draws=unit_draws)
+        coef = self.idata["posterior"]["coef"]
+        return xr.DataArray(yrep.reshape(self.n_chains, -1, len(y)),
+                            dims=("chain", "draw", "row"),
+                            coords={"chain": coef["chain"].values,
+                                    "draw": coef["draw"].values[::thin]}, name="y")
+
+    def pointwise_inputs(self, thin: int = 1) -> PointwiseInputs:
+        """Draws and data for pointwise log-likelihoods at the unit and occasion level."""
+        thin = self._thin(thin)
+        M, y, codes = self.rows if self.rows is not None else (None, None, None)
+        return PointwiseInputs(
+            unit_effects=self.spec.unit_effects, coef=self._flat("coef", thin),
+            sigma_obs=self._flat("sigma_obs", thin),
+            sigma_unit=(self._flat("sigma_unit", thin) if self.spec.unit_effects == "random"
+                        else None),
+            M=M, y=y, unit_codes=codes, units=self.units, stats=self.stats,
+            chains=self.n_chains, draws=len(range(0, self.n_draws, thin)))
+
+    # ------------------------------------------------------------------ save / load
+    def save(self, path, rows: bool = True) -> None:
+        """Write the posterior, its model specification and statistics to a NetCDF file.
+
+        Groups: the sampler's (``posterior``, ``sample_stats``, ...), ``bayespanel_stats``
+        (sufficient statistics and unit labels) and, with ``rows=True``, ``bayespanel_rows``
+        (the estimation rows, for predictive draws and LOO). The specification, sampling
+        record and scaling are JSON strings in the root attributes. No pickle.
+        """
+        groups = {name: node.to_dataset() for name, node in self.idata.children.items()}
+        st = self.stats
+        p = st.p
+        units = self.units
+        unit_kind = "int" if pd.api.types.is_integer_dtype(units) else "str"
+        unit_vals = units.to_numpy(dtype=np.int64) if unit_kind == "int" \
+            else units.astype(str).to_numpy(dtype=str)
+        groups["bayespanel_stats"] = xr.Dataset(
+            {"mean": (("col",), st.mean), "total": (("col", "col2"), st.total),
+             "within": (("col", "col2"), st.within),
+             "unit_count": (("unit",), st.unit_count), "unit_mean": (("unit", "col"), st.unit_mean),
+             "lengths": (("length",), st.lengths), "group_count": (("length",), st.group_count),
+             "group_mean": (("length", "col"), st.group_mean),
+             "group_cp": (("length", "col", "col2"), st.group_cp)},
+            coords={"unit": unit_vals, "col": np.arange(p), "col2": np.arange(p)},
+            attrs={"n": int(st.n), "n_units": int(st.n_units), "unit_kind": unit_kind})
+        if rows and self.rows is not None:
+            M, y, codes = self.rows
+            groups["bayespanel_rows"] = xr.Dataset(
+                {"M": (("row", "term"), np.asarray(M, float)), "y": (("row",), np.asarray(y, float)),
+                 "unit_code": (("row",), np.asarray(codes, np.int64))})
+        tree = xr.DataTree.from_dict({"/": xr.Dataset(attrs={
+            "bayespanel_format": _FORMAT_VERSION,
+            "bayespanel_spec": self.spec.to_json(),
+            "bayespanel_sampling": json.dumps(self.sampling),
+            "bayespanel_scaling": json.dumps(self.scaling.to_dict() if self.scaling else None),
+        }), **groups})
+        tree.to_netcdf(path, engine="h5netcdf")
+
+    @classmethod
+    def load(cls, path) -> "Posterior":
+        """Read a posterior written by :meth:`save`; its summaries are reproduced exactly."""
+        with xr.open_datatree(path, engine="h5netcdf") as tree:
+            tree = tree.load()
+        attrs = tree.attrs
+        if "bayespanel_spec" not in attrs:
+            raise SpecificationError(f"{path!s} was not written by Posterior.save")
+        spec = ModelSpec.from_json(attrs["bayespanel_spec"])
+        sampling = json.loads(attrs["bayespanel_sampling"])
+        sc = json.loads(attrs["bayespanel_scaling"])
+        scaling = gaussian.Scaling.from_dict(sc) if sc else None
+        sd = tree["bayespanel_stats"].to_dataset()
+        stats = SuffStats(n=int(sd.attrs["n"]), n_units=int(sd.attrs["n_units"]),
+                          **{f: np.asarray(sd[f].values) for f in _STATS_FIELDS})
+        units = pd.Index(sd["unit"].values)
+        if sd.attrs.get("unit_kind") == "str":
+            units = pd.Index(units.astype(str), dtype=object)
+        rows = None
+        if "bayespanel_rows" in tree.children:
+            rd = tree["bayespanel_rows"].to_dataset()
+            rows = (np.asarray(rd["M"].values), np.asarray(rd["y"].values),
+                    np.asarray(rd["unit_code"].values))
+        keep = {k: v.to_dataset() for k, v in tree.children.items()
+                if not k.startswith("bayespanel_")}
+        idata = xr.DataTree.from_dict(keep)
+        return cls(idata, spec, stats, units, rows=rows, sampling=sampling, scaling=scaling)
