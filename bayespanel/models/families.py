@@ -396,33 +396,31 @@ def _interval_table(draws: pd.DataFrame, prob: float) -> pd.DataFrame:
 def icc_latent(post, prob: float = 0.9) -> pd.DataFrame:
     """ICC on the latent scale, with its interval, for a latent-family posterior.
 
-    ``post`` is a :class:`bayespanel.models.latent.LatentPosterior` (or any posterior
-    exposing ``family``, ``draws(name)`` and ``latent_intercept_draws()``). The row label
-    states the residual variance used.
+    ``post`` is a :class:`bayespanel.models.latent.LatentPosterior`, whose ``icc`` draws
+    were computed with :func:`icc_latent_draws` after sampling. The row label states the
+    residual variance used.
     """
     fam = get_family(post.family)
-    tau = post.draws("sigma_unit")
-    params = {k: post.draws(k) for k in fam.params}
-    icc = icc_latent_draws(fam, tau, params, intercept=post.latent_intercept_draws())
     basis = {"logit": "latent scale, residual variance pi^2/3",
              "log": "latent scale, log-normal approximation",
              "identity": "outcome scale"}[fam.link]
-    return _interval_table(pd.DataFrame({f"ICC ({basis})": icc}), prob)
+    return _interval_table(pd.DataFrame({f"ICC ({basis})": post.flat_draws("icc")}), prob)
 
 
-def average_marginal_effects(post, prob: float = 0.9) -> pd.DataFrame:
+def average_marginal_effects(post, prob: float = 0.9, max_draws: int = 400) -> pd.DataFrame:
     """Average marginal effects of each within, between and other term on the outcome scale.
 
-    Population-averaged over the unit-effect distribution (see :func:`ame_draws`). For a
-    within-between design the effects are the ``(within)`` and ``(between)`` terms; for a
-    correlated-effects (Mundlak) design the within effect of ``x`` is ``b_x`` and its
-    between effect ``b_x + b_{x (unit mean)}``.
+    Population-averaged over the unit-intercept distribution (see :func:`ame_draws`); with
+    random slopes the slope entering is the average one, ``b``. For a within-between design
+    the effects are the ``(within)`` and ``(between)`` terms; for a correlated-effects
+    (Mundlak) design the within effect of ``x`` is ``b_x`` and its between effect
+    ``b_x + b_{x (unit mean)}``. Uses at most ``max_draws`` evenly spaced draws.
     """
     names, weights = post.effect_weights()
-    eta = post.linear_predictor(include_units=False)
-    fam = get_family(post.family)
-    ame = ame_draws(fam, eta, post.draws("sigma_unit"), weights, post.coef_draws(),
-                    trials=post.trials, log_exposure=post.log_exposure)
+    eta = post.linear_predictor(include_units=False, max_draws=max_draws)
+    ame = ame_draws(post.family, eta, post.flat_draws("sigma_unit", max_draws), weights,
+                    post.coef_draws(max_draws), trials=post.trials,
+                    log_exposure=post.log_exposure)
     return _interval_table(pd.DataFrame(ame, columns=names), prob).rename_axis(
         "average marginal effect (outcome scale)")
 
@@ -470,11 +468,9 @@ def ppc_summary(post, draws: int = 400, seed: int = 0, prob: float = 0.9) -> pd.
     """
     fam = get_family(post.family)
     rng = np.random.default_rng(seed)
-    eta = post.linear_predictor(include_units=True)
-    S = eta.shape[0]
-    pick = rng.choice(S, size=min(draws, S), replace=False)
-    params = {k: post.draws(k)[pick, None] for k in fam.params}
-    yrep = simulate(fam, rng, eta[pick], params, trials=post.trials, log_exposure=post.log_exposure)
+    eta = post.linear_predictor(include_units=True, max_draws=draws, seed=seed)
+    params = {k: post.flat_draws(k, draws)[:, None] for k in fam.params}
+    yrep = simulate(fam, rng, eta, params, trials=post.trials, log_exposure=post.log_exposure)
     obs = _ppc_statistics(fam, post.y, post.unit_codes, post.trials)
     rep = _ppc_statistics(fam, yrep, post.unit_codes, post.trials)
     lo, hi = (1 - prob) / 2, 1 - (1 - prob) / 2
