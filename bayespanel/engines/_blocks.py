@@ -93,9 +93,10 @@ def structure_block(pdf, unit, time, occasions) -> StructurePiece:
 
 
 def merge_structure(pieces) -> StructurePiece:
-    pieces = [p for p in pieces if p.n_rows]
-    if not pieces:
-        raise PanelDataError("the table has no rows")
+    full = [p for p in pieces if p.n_rows]
+    if not full:
+        return pieces[0]
+    pieces = full
     if len(pieces) == 1:
         return pieces[0]
     keys = np.concatenate([p.keys for p in pieces])

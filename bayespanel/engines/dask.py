@@ -233,6 +233,8 @@ class DaskPanel:
             occ = self.occasions
             piece = self.run([self.unit, self.time], blk.structure_block, blk.merge_structure,
                              self.unit, self.time, occ)
+            if piece.n_rows == 0:
+                raise PanelDataError("the table has no rows")
             distinct = blk.observed_occasions(piece.masks)
             dup = np.flatnonzero(piece.counts > distinct)
             if len(dup):
