@@ -1,0 +1,296 @@
+"""One table for deciding between specifications: predictive accuracy and coefficients.
+
+:func:`compare` puts Bayesian posteriors and frequentist reference fits of the same rows
+into one LOO table at one level. The Bayesian ELPD is PSIS-LOO on the unit or occasion
+terms (:func:`bayespanel.loo.loo`); a reference fit's ELPD is exact cross-validation with
+closed-form refits and plug-in predictive densities at the same level
+(:func:`bayespanel.loo.reference_cv`). Differences to the best model and their standard
+errors come from the paired pointwise values, ``se_diff = sqrt(n var(d_i))`` (Vehtari,
+Gelman and Gabry 2017, section 5.2); stacking weights (Yao et al. 2018) are computed for the
+Bayesian models only, since the reference fits have no predictive distribution beyond a
+point estimate.
+
+:func:`coef_table` aligns every model's estimates and intervals by term.
+
+References
+----------
+.. [1] Vehtari, A., Gelman, A. and Gabry, J. (2017). Practical Bayesian model evaluation
+   using leave-one-out cross-validation and WAIC. Statistics and Computing 27, 1413-1432.
+   doi:10.1007/s11222-016-9696-4
+.. [2] Yao, Y., Vehtari, A., Simpson, D. and Gelman, A. (2018). Using stacking to average
+   Bayesian predictive distributions. Bayesian Analysis 13(3), 917-1007.
+   doi:10.1214/17-BA1091
+.. [3] Sivula, T., Magnusson, M., Matamoros, A. A. and Vehtari, A. (2025). Uncertainty in
+   Bayesian leave-one-out cross-validation based model comparison. arXiv:2008.10296
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from .errors import BayespanelError, SpecificationError
+from .loo import LEVELS, LOOResult, loo, reference_cv
+from .loo._draws import check_level
+
+__all__ = ["compare", "coef_table", "COMPARE_COLUMNS"]
+
+COMPARE_COLUMNS = ["elpd", "se", "elpd_diff", "se_diff", "p_loo", "weight", "method",
+                   "level", "n_points", "n_high_pareto_k", "note"]
+
+
+def _is_posterior(obj) -> bool:
+    return hasattr(obj, "idata") and hasattr(obj, "spec")
+
+
+def _is_reference(obj) -> bool:
+    return hasattr(obj, "estimator") and hasattr(obj, "refit")
+
+
+def _rows_of(name, obj):
+    """``(y, unit_codes)`` of a model's estimation rows, to check all share them."""
+    if _is_posterior(obj):
+        if obj.rows is None:
+            raise SpecificationError(f"model {name!r}: the posterior has no estimation rows")
+        _, y, codes = obj.rows
+        return np.asarray(y, float), np.asarray(codes)
+    if _is_reference(obj):
+        if obj.design is None:
+            raise SpecificationError(f"model {name!r}: the reference fit has no design; fit "
+                                     "it from a Panel")
+        return obj.design.y, obj.design.unit_codes
+    return None
+
+
+def _evaluate(name, obj, level, reference_folds, loo_kwargs, seed):
+    """``(LOOResult or None, kind, note)``."""
+    if isinstance(obj, LOOResult):
+        if obj.level != level:
+            raise SpecificationError(
+                f"model {name!r}: the LOO result is at the {obj.level} level, not {level!r}")
+        return obj, "bayes" if obj.method.startswith(("PSIS", "grouped")) else "reference", ""
+    if _is_posterior(obj):
+        try:
+            return loo(obj, level, **loo_kwargs), "bayes", ""
+        except BayespanelError as exc:
+            return None, "bayes", str(exc)
+    if _is_reference(obj):
+        try:
+            return reference_cv(obj, level, folds=reference_folds, seed=seed), "reference", ""
+        except BayespanelError as exc:
+            return None, "reference", str(exc)
+    raise SpecificationError(
+        f"model {name!r} is a {type(obj).__name__}; give a Posterior, a ReferenceResult or a "
+        "LOOResult")
+
+
+def _stacking(results: dict, common) -> dict:
+    """Stacking weights of the Bayesian models on the common points (arviz-stats)."""
+    if len(results) == 1:
+        return {next(iter(results)): 1.0}
+    import warnings
+
+    import arviz_stats
+    import xarray as xr
+    from arviz_stats.utils import ELPDDataLOO
+
+    ics = {}
+    for name, r in results.items():
+        e = _restrict(r, common)
+        ics[name] = ELPDDataLOO(elpd=float(e.sum()), se=float(np.sqrt(len(e) * np.var(e, ddof=1))),
+                                p=0.0, n_samples=r.n_draws or 1, n_data_points=len(e),
+                                scale="log", warning=False, good_k=0.7,
+                                elpd_i=xr.DataArray(e, dims=["point"]))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        table = arviz_stats.compare(ics, method="stacking", round_to="none")
+    return {name: float(table.loc[name, "weight"]) for name in results}
+
+
+def _restrict(r: LOOResult, common) -> np.ndarray:
+    pw = r.pointwise.set_index("position")
+    return pw.loc[common, "elpd"].to_numpy(dtype=float)
+
+
+def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed: int = 0,
+            loo_kwargs=None) -> pd.DataFrame:
+    """Compare Bayesian posteriors and reference fits by LOO at one level.
+
+    Parameters
+    ----------
+    models : dict of str -> Posterior, ReferenceResult or LOOResult
+        All fitted on the same estimation rows (checked).
+    level : {"unit", "occasion"}
+        ``"unit"`` ranks the models by how well they predict a new unit; ``"occasion"`` by
+        how well they predict a new occasion of a unit already seen. See
+        docs/comparison.md.
+    reference_folds : int, optional
+        Reference fits use exact leave-one-out by default (one closed-form refit per
+        point); an integer ``K`` uses grouped K-fold instead (for large panels).
+    seed : int
+        Seed of the reference K-fold folds.
+    loo_kwargs : dict, optional
+        Passed to :func:`bayespanel.loo.loo` for the posteriors (e.g.
+        ``{"refit_high_k": True}``).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Indexed by model name, best first, with columns ``elpd``, ``se``, ``elpd_diff``
+        (model minus best), ``se_diff`` (from the paired pointwise differences),
+        ``p_loo`` (Bayesian only), ``weight`` (stacking, Bayesian only), ``method``
+        (``"PSIS-LOO"``, ``"exact CV"``, ...), ``level``, ``n_points``,
+        ``n_high_pareto_k`` and ``note``. Models for which the level is undefined (fixed
+        effects at the unit level) come last with ``nan`` values and the reason in
+        ``note``. Only plain floats, ints and strings, so ``to_json`` works.
+
+    Notes
+    -----
+    When some model cannot predict some points (fixed effects and units with a single
+    row, at the occasion level), every model is scored on the points all can predict,
+    and the note says how many were left out.
+    """
+    check_level(level)
+    if not isinstance(models, dict) or not models:
+        raise SpecificationError("models must be a non-empty dict of name -> fitted model")
+    ref_rows = None
+    for name, obj in models.items():
+        rows = _rows_of(name, obj)
+        if rows is None:
+            continue
+        if ref_rows is None:
+            ref_rows = (name, rows)
+        elif (len(rows[0]) != len(ref_rows[1][0]) or not np.array_equal(rows[1], ref_rows[1][1])
+              or not np.allclose(rows[0], ref_rows[1][0], rtol=0, atol=0)):
+            raise SpecificationError(
+                f"model {name!r} is not fitted on the same rows as {ref_rows[0]!r} "
+                f"({len(rows[0])} vs {len(ref_rows[1][0])} rows); LOO values can only be "
+                "compared on the same rows")
+    evaluated = {name: _evaluate(name, obj, level, reference_folds, dict(loo_kwargs or {}),
+                                 seed) for name, obj in models.items()}
+    defined = {n: r for n, (r, _, _) in evaluated.items() if r is not None}
+    if not defined:
+        raise SpecificationError(f"no model has a predictive density at the {level} level")
+    common = None
+    for r in defined.values():
+        pos = set(r.pointwise["position"].tolist())
+        common = pos if common is None else common & pos
+    common = sorted(common)
+    n_all = max(len(r.pointwise) for r in defined.values())
+    values = {n: _restrict(r, common) for n, r in defined.items()}
+    rows = {}
+    for name, (r, kind, note) in evaluated.items():
+        if r is None:
+            rows[name] = dict(elpd=np.nan, se=np.nan, p_loo=np.nan, method="undefined",
+                              n_points=0, n_high_pareto_k=0, note=note, kind=kind)
+            continue
+        e = values[name]
+        notes = list(r.notes)
+        p = np.nan
+        if kind == "bayes" and "p_loo" in r.pointwise:
+            p = float(r.pointwise.set_index("position").loc[common, "p_loo"].sum())
+        if len(common) < len(r.pointwise):
+            notes.append(f"scored on the {len(common)} of {len(r.pointwise)} points every "
+                         "model can predict")
+        rows[name] = dict(elpd=float(e.sum()),
+                          se=float(np.sqrt(len(e) * np.var(e, ddof=1))) if len(e) > 1 else np.nan,
+                          p_loo=p, method=r.method, n_points=len(e),
+                          n_high_pareto_k=int(r.n_high_pareto_k), note="; ".join(notes),
+                          kind=kind)
+    order = sorted(defined, key=lambda n: -rows[n]["elpd"])
+    best = order[0]
+    for name in order:
+        d = values[name] - values[best]
+        rows[name]["elpd_diff"] = float(d.sum())
+        rows[name]["se_diff"] = float(np.sqrt(len(d) * np.var(d, ddof=1))) if len(d) > 1 else np.nan
+    bayes = {n: defined[n] for n in order if rows[n]["kind"] == "bayes"}
+    weights = _stacking(bayes, common) if bayes else {}
+    for name in rows:
+        rows[name].setdefault("elpd_diff", np.nan)
+        rows[name].setdefault("se_diff", np.nan)
+        rows[name]["weight"] = weights.get(name, np.nan)
+        rows[name]["level"] = level
+    names = order + [n for n in models if n not in defined]
+    out = pd.DataFrame([rows[n] for n in names], index=pd.Index(names, name="model"))
+    out = out[COMPARE_COLUMNS]
+    for c in ("elpd", "se", "elpd_diff", "se_diff", "p_loo", "weight"):
+        out[c] = out[c].astype(float)
+    for c in ("n_points", "n_high_pareto_k"):
+        out[c] = out[c].astype(int)
+    out.attrs.update(level=level, n_points=len(common), n_points_all=n_all)
+    return out
+
+
+# ---------------------------------------------------------------------------- coefficients
+def _coef_frame(name, obj, prob):
+    if _is_posterior(obj):
+        t = obj.table(prob)
+        out = pd.DataFrame({"estimate": t["coef"], "sd/se": t["sd"], "lower": t["lower"],
+                            "upper": t["upper"]})
+        if "icc" in out.index:
+            out = out.rename(index={"icc": "ICC"})
+        return out, "posterior mean, SD, equal-tailed interval"
+    if _is_reference(obj):
+        t = obj.table(prob)
+        out = pd.DataFrame({"estimate": t["estimate"], "sd/se": t["se"], "lower": t["lower"],
+                            "upper": t["upper"]})
+        extra = pd.DataFrame({"estimate": [obj.sigma_unit, obj.sigma_obs, obj.icc]},
+                             index=["sigma_unit", "sigma_obs", "ICC"])
+        extra = extra[np.isfinite(extra["estimate"])]
+        if obj.estimator == "within":
+            extra = extra.drop(index=[i for i in ("sigma_unit", "ICC") if i in extra.index])
+        return pd.concat([out, extra]), f"estimate, {obj.cov_type} SE, confidence interval"
+    raise SpecificationError(f"model {name!r} is a {type(obj).__name__}; give a Posterior or "
+                             "a ReferenceResult")
+
+
+def coef_table(models: dict, prob: float = 0.95, shape: str = "wide") -> pd.DataFrame:
+    """Every model's estimates and intervals side by side, aligned by term.
+
+    Parameters
+    ----------
+    models : dict of str -> Posterior or ReferenceResult
+    prob : float
+        Probability of the intervals (credible for posteriors, confidence for reference
+        fits).
+    shape : {"wide", "long"}
+        ``"wide"``: one row per term, columns ``(model, statistic)`` with statistics
+        ``estimate``, ``sd/se``, ``lower``, ``upper``. ``"long"``: one row per model and
+        term (JSON-friendly).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Terms in order of first appearance; the variance components (``sigma_unit``,
+        ``sigma_obs``, ``ICC``) last. A term a model does not estimate is ``nan``. Labels
+        are the models' own: the within effect of ``x`` is ``x`` in fixed effects and
+        Mundlak models and ``x (within)`` in the within-between model.
+    """
+    if shape not in ("wide", "long"):
+        from .errors import choices_error
+        raise choices_error("shape", shape, ("wide", "long"))
+    if not 0 < prob < 1:
+        raise SpecificationError(f"prob={prob!r} is not valid; choose a number in (0, 1)")
+    if not isinstance(models, dict) or not models:
+        raise SpecificationError("models must be a non-empty dict of name -> fitted model")
+    frames, what = {}, {}
+    for name, obj in models.items():
+        frames[name], what[name] = _coef_frame(name, obj, prob)
+    tail = ["sigma_unit", "sigma_obs", "ICC"]
+    terms = []
+    for f in frames.values():
+        terms += [t for t in f.index if t not in terms and t not in tail]
+    terms += [t for t in tail if any(t in f.index for f in frames.values())]
+    if shape == "long":
+        recs = []
+        for name, f in frames.items():
+            for t in f.index:
+                r = f.loc[t]
+                recs.append({"model": name, "term": t, **{c: float(r[c]) for c in f.columns},
+                             "statistics": what[name]})
+        out = pd.DataFrame(recs)
+    else:
+        out = pd.concat({name: f.reindex(terms) for name, f in frames.items()}, axis=1)
+        out.index.name = "term"
+    out.attrs.update(prob=prob, statistics=what)
+    return out

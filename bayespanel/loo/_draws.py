@@ -1,0 +1,188 @@
+"""What LOO needs from a fit: the rows, the draws and a way to refit (private)."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from ..errors import SpecificationError, choices_error
+
+LEVELS = ("unit", "occasion")
+
+
+def check_level(level):
+    if level not in LEVELS:
+        raise choices_error("level", level, LEVELS)
+    return level
+
+
+@dataclass
+class FitDraws:
+    """Rows and posterior draws of one Gaussian panel model.
+
+    ``coef`` is ``(C, D, k)``, ``sigma`` and ``tau`` ``(C, D)`` (``tau`` is zeros for the
+    pooled model and ``None`` for fixed effects). ``M`` holds the model's columns on the
+    estimation rows (rows sorted by unit), ``codes`` the unit of each row (0..N-1).
+    """
+
+    kind: str
+    unit_effects: str
+    labels: list
+    M: np.ndarray
+    y: np.ndarray
+    codes: np.ndarray
+    units: pd.Index
+    time: np.ndarray | None
+    rows: pd.Index
+    coef: np.ndarray
+    sigma: np.ndarray
+    tau: np.ndarray | None
+    posterior: object = None
+    model: object = None
+    design: object = None
+    sample_kwargs: dict = field(default_factory=dict)
+
+    @property
+    def n_chains(self) -> int:
+        return int(self.coef.shape[0])
+
+    @property
+    def n_draws(self) -> int:
+        return int(self.coef.shape[1])
+
+    @property
+    def n(self) -> int:
+        return int(len(self.y))
+
+    @property
+    def n_units(self) -> int:
+        return int(len(self.units))
+
+    @property
+    def T(self) -> np.ndarray:
+        return np.bincount(self.codes, minlength=self.n_units)
+
+    def flat(self):
+        """``(coef (S, k), sigma (S,), tau (S,) or None)`` with chains stacked."""
+        S = self.n_chains * self.n_draws
+        tau = None if self.tau is None else self.tau.reshape(S)
+        return self.coef.reshape(S, -1), self.sigma.reshape(S), tau
+
+    def point_index(self, level) -> pd.DataFrame:
+        """Labels of the pointwise terms: one row per unit, or per estimation row.
+
+        ``position`` is the point's index (unit code, or estimation-row number), which
+        aligns the points of different fits on the same rows.
+        At the occasion level ``occasion`` numbers a unit's rows 1..T_i in time order
+        (``time`` holds the occasion labels when the design is known).
+        """
+        if level == "unit":
+            return pd.DataFrame({"position": np.arange(self.n_units),
+                                 "unit": np.asarray(self.units), "occasions": self.T})
+        starts = np.concatenate([[0], np.cumsum(self.T)[:-1]])
+        out = pd.DataFrame({"position": np.arange(self.n),
+                            "unit": np.asarray(self.units)[self.codes],
+                            "occasion": np.arange(self.n) - starts[self.codes] + 1,
+                            "row": np.asarray(self.rows)})
+        if self.time is not None:
+            out["time"] = self.time
+        return out
+
+
+def _values(ds, name):
+    return np.asarray(ds[name].values, dtype=float)
+
+
+def from_draws(*, kind, unit_effects, labels, M, y, codes, coef, sigma, tau=None, units=None,
+               time=None, rows=None, posterior=None, model=None, design=None,
+               sample_kwargs=None) -> FitDraws:
+    """Assemble :class:`FitDraws` from arrays (``coef`` may be ``(S, k)`` or ``(C, D, k)``)."""
+    coef = np.asarray(coef, dtype=float)
+    if coef.ndim == 2:
+        coef = coef[None]
+    C, D, k = coef.shape
+    sigma = np.asarray(sigma, dtype=float).reshape(C, D)
+    if unit_effects == "none":
+        tau = np.zeros((C, D))
+    elif unit_effects == "fixed":
+        tau = None
+    else:
+        if tau is None:
+            raise SpecificationError("a random-intercept model needs draws of sigma_unit")
+        tau = np.asarray(tau, dtype=float).reshape(C, D)
+    codes = np.asarray(codes, dtype=np.int64)
+    if np.any(np.diff(codes) < 0):
+        raise SpecificationError("rows must be sorted by unit for the pointwise terms")
+    N = int(codes.max()) + 1
+    M = np.asarray(M, dtype=float)
+    if M.shape[1] != k:
+        raise SpecificationError(f"M has {M.shape[1]} columns for {k} coefficients")
+    return FitDraws(
+        kind=kind, unit_effects=unit_effects, labels=list(labels), M=M,
+        y=np.asarray(y, dtype=float), codes=codes,
+        units=pd.Index(units if units is not None else np.arange(N)),
+        time=np.asarray(time) if time is not None else None,
+        rows=pd.Index(rows if rows is not None else np.arange(len(codes))),
+        coef=coef, sigma=sigma, tau=tau, posterior=posterior, model=model, design=design,
+        sample_kwargs=dict(sample_kwargs or {}))
+
+
+def from_posterior(post) -> FitDraws:
+    """Read a :class:`~bayespanel.posterior.Posterior` into :class:`FitDraws`."""
+    if isinstance(post, FitDraws):
+        return post
+    idata = getattr(post, "idata", None)
+    spec = getattr(post, "spec", None)
+    if idata is None or spec is None or "posterior" not in idata.children:
+        raise SpecificationError(
+            f"expected a bayespanel Posterior with posterior draws, got {type(post).__name__}")
+    if post.rows is None:
+        raise SpecificationError(
+            "LOO needs the estimation rows; this posterior was built from sufficient "
+            "statistics only (build the model from a Panel, or pass rows= to from_suffstats)")
+    ds = idata["posterior"].to_dataset()
+    M, y, codes = post.rows
+    sampling = dict(getattr(post, "sampling", {}) or {})
+    sample_kwargs = {k: sampling[k] for k in ("draws", "tune", "chains", "seed",
+                                              "target_accept") if k in sampling}
+    tau = _values(ds, "sigma_unit") if "sigma_unit" in ds else None
+    design = getattr(post, "design", None)
+    return from_draws(
+        kind=spec.kind, unit_effects=spec.unit_effects, labels=list(spec.labels), M=M, y=y,
+        codes=codes, coef=_values(ds, "coef"), sigma=_values(ds, "sigma_obs"), tau=tau,
+        units=post.units, time=getattr(design, "time", None),
+        rows=getattr(design, "rows", None), posterior=ds,
+        model=getattr(post, "model", None) or _Rebuild(post), design=design,
+        sample_kwargs=sample_kwargs)
+
+
+class _Rebuild:
+    """Placeholder for the model of a posterior: rebuilt (once) from its specification
+    when a refit is needed. The priors in the specification are fully stated on the data
+    scale, so the rebuilt model is the same model."""
+
+    def __init__(self, post):
+        self.post = post
+
+    def build(self):
+        from ..models.builders import BUILDERS
+
+        post, spec = self.post, self.post.spec
+        cls = BUILDERS[spec.model]
+        return cls.from_suffstats(
+            post.stats, list(spec.labels), outcome=spec.outcome, units=post.units,
+            priors=spec.prior_dict, likelihood=spec.likelihood, rows=post.rows,
+            design_spec=dict(spec.design) if spec.design else None)
+
+
+def model_of(fd):
+    """The (compiled once) model behind ``fd``, rebuilding it from the spec if needed."""
+    if isinstance(fd.model, _Rebuild):
+        fd.model = fd.model.build()
+    if fd.model is None or not hasattr(fd.model, "set_suffstats"):
+        raise SpecificationError(
+            "exact refits need the model the posterior was sampled from; this fit carries "
+            "none")
+    return fd.model

@@ -1,0 +1,107 @@
+"""One result shape for every LOO estimate (PSIS, exact refits, K-fold, sub-sampling,
+exact cross-validation of reference fits)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+__all__ = ["LOOResult"]
+
+
+def _clean(v):
+    if isinstance(v, (bool, np.bool_)):
+        return bool(v)
+    if isinstance(v, (int, np.integer)):
+        return int(v)
+    if isinstance(v, (float, np.floating)):
+        return None if not np.isfinite(v) else float(v)
+    return v
+
+
+class LOOResult:
+    """Expected log predictive density of one fit at one level.
+
+    Attributes
+    ----------
+    level : {"unit", "occasion"}
+    method : str
+        ``"PSIS-LOO"``, ``"PSIS-LOO + exact refits"``, ``"grouped K-fold (K=..)"``,
+        ``"PSIS-LOO, sub-sampled (m of n)"`` or ``"exact CV"`` / ``"exact K-fold CV"``.
+    elpd, se : float
+        ELPD and its standard error ``sqrt(n var(elpd_i))`` (Vehtari, Gelman and Gabry 2017).
+    p_loo : float
+        Effective number of parameters, ``lpd - elpd`` (``nan`` where undefined).
+    pointwise : pandas.DataFrame
+        One row per point (unit or estimation row) with the labels (``unit``, and
+        ``time`` and ``row`` at the occasion level), ``elpd`` and, for PSIS, ``pareto_k``
+        and ``refit`` (whether the point was replaced by an exact refit). Points of a
+        sub-sampled estimate that were not evaluated hold ``nan``.
+    good_k : float or None
+        Pareto-k threshold ``min(1 - 1/log10(S), 0.7)`` (Vehtari et al. 2024).
+    notes : list of str
+        Anything the reader must know (points left out, high k, refits, approximations).
+    """
+
+    def __init__(self, *, level, method, elpd, se, p_loo, pointwise, good_k=None, notes=(),
+                 n_draws=None, elpd_data=None, subsampling_se=None):
+        self.level = level
+        self.method = method
+        self.elpd = float(elpd)
+        self.se = float(se)
+        self.p_loo = float(p_loo) if p_loo is not None else float("nan")
+        self.pointwise = pointwise
+        self.good_k = None if good_k is None else float(good_k)
+        self.notes = list(notes)
+        self.n_draws = n_draws
+        self.elpd_data = elpd_data
+        self.subsampling_se = subsampling_se
+
+    @property
+    def elpd_i(self) -> np.ndarray:
+        return self.pointwise["elpd"].to_numpy(dtype=float)
+
+    @property
+    def n_points(self) -> int:
+        return int(len(self.pointwise))
+
+    @property
+    def pareto_k(self):
+        return self.pointwise["pareto_k"].to_numpy() if "pareto_k" in self.pointwise else None
+
+    @property
+    def high_k(self) -> pd.DataFrame:
+        """Points whose Pareto k exceeds ``good_k`` (and were not replaced by refits)."""
+        if self.good_k is None or "pareto_k" not in self.pointwise:
+            return self.pointwise.iloc[:0]
+        pw = self.pointwise
+        bad = pw["pareto_k"] > self.good_k
+        if "refit" in pw:
+            bad &= ~pw["refit"].astype(bool)
+        return pw[bad]
+
+    @property
+    def n_high_pareto_k(self) -> int:
+        return int(len(self.high_k))
+
+    def to_dict(self, pointwise: bool = False) -> dict:
+        """JSON-ready form (nan becomes None)."""
+        out = {"level": self.level, "method": self.method, "elpd": _clean(self.elpd),
+               "se": _clean(self.se), "p_loo": _clean(self.p_loo), "n_points": self.n_points,
+               "good_k": _clean(self.good_k), "n_high_pareto_k": self.n_high_pareto_k,
+               "notes": list(self.notes)}
+        if self.subsampling_se is not None:
+            out["subsampling_se"] = _clean(self.subsampling_se)
+        if pointwise:
+            out["pointwise"] = [{k: _clean(v) for k, v in r.items()}
+                                for r in self.pointwise.to_dict(orient="records")]
+        return out
+
+    def __repr__(self) -> str:
+        lines = [f"{self.method} at the {self.level} level ({self.n_points} points"
+                 + (f", {self.n_draws} draws)" if self.n_draws else ")"),
+                 f"  elpd {self.elpd:.2f} (se {self.se:.2f}), p_loo {self.p_loo:.2f}"]
+        if self.good_k is not None:
+            lines.append(f"  Pareto k > {self.good_k:.2f}: {self.n_high_pareto_k} point(s)")
+        lines += [f"  note: {n}" for n in self.notes]
+        return "\n".join(lines)

@@ -1,0 +1,357 @@
+"""Variance partition: unit and occasion SDs, ICC, quasi-demeaning shares and explained
+variance at each level.
+
+The explained-variance measures follow the integrative framework of Rights and Sterba
+(2019) for a random-intercept model. Every row's linear predictor is split into a
+*within part* (the unit-demeaned time-varying covariates times their within
+coefficients) and a *between part* (the unit means of the time-varying covariates and the
+time-constant covariates, times their between coefficients). With ``Phi_w`` and
+``Phi_b`` the covariance matrices, over the estimation rows, of the within and between
+columns, the model-implied outcome variance is
+
+    total = g_w' Phi_w g_w + g_b' Phi_b g_b + tau^2 + sigma^2,
+
+the within-unit variance is ``g_w' Phi_w g_w + sigma^2`` and the between-unit variance
+``g_b' Phi_b g_b + tau^2``. The within and between parts are uncorrelated over the rows
+(the within columns sum to zero in every unit), so the shares of each of the three add to
+one exactly, per posterior draw. Covariances use the divisor ``n`` (all rows weighted
+alike), so the parts equal the sample variances of the fitted components.
+
+A model without explicit within and between columns is mapped onto the same split:
+random-intercept and pooled coefficients act on both parts (``g_w = g_b``), Mundlak's
+``x (unit mean)`` adds to the between part (``g_b = b + b_mean``), and fixed effects have
+only a within part (their unit intercepts are not given a variance).
+
+References
+----------
+.. [1] Rights, J. D. and Sterba, S. K. (2019). Quantifying explained variance in multilevel
+   models: An integrative framework for defining R-squared measures. Psychological
+   Methods 24(3), 309-338. doi:10.1037/met0000184
+.. [2] Baltagi, B. H. (2021). *Econometric Analysis of Panel Data*, 6th ed., section 2.3
+   (the GLS quasi-demeaning share). Springer. doi:10.1007/978-3-030-53953-5
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from .design import group_means
+from .errors import SpecificationError, choices_error
+
+__all__ = ["PartitionResult", "coefficient_parts", "partition_draws", "variance_partition",
+           "reference_partition", "summarise_draws", "design_columns", "PARTITION_KINDS"]
+
+PARTITION_KINDS = ("pooled", "random", "within", "mundlak", "within_between")
+_SHARES = (
+    ("total: within part", "f1", "total"), ("total: between part", "f2", "total"),
+    ("total: unit intercepts", "m", "total"), ("total: occasion residual", "e", "total"),
+    ("within: within part", "f1", "within"), ("within: occasion residual", "e", "within"),
+    ("between: between part", "f2", "between"), ("between: unit intercepts", "m", "between"),
+)
+
+
+# ---------------------------------------------------------------------------- array core
+_VARY_TOL = 1e-10
+
+
+def _unit_means(A, codes):
+    """Unit means (N x k) of the columns of ``A`` for rows sorted by unit."""
+    T = np.bincount(codes)
+    starts = np.concatenate([[0], np.cumsum(T)[:-1]]).astype(np.int64)
+    return group_means(A, starts, T.astype(float))
+
+
+def design_columns(M, codes, labels, kind):
+    """The original covariates ``X``, their names and the time-varying ones, rebuilt from a
+    model's columns (``Design.matrices(kind)``), so that a posterior without its Design
+    can still be split into within and between parts.
+
+    Returns
+    -------
+    X : array (n, k0); terms : list of str; time_varying : list of str
+    """
+    if kind not in PARTITION_KINDS:
+        raise choices_error("kind", kind, PARTITION_KINDS)
+    M = np.asarray(M, dtype=float)
+    codes = np.asarray(codes, dtype=np.int64)
+    labels = list(labels)
+    pos = {lab: j for j, lab in enumerate(labels)}
+    if kind == "within_between":
+        terms, cols, tv = [], [], []
+        for lab in labels:
+            if lab.endswith(" (between)"):
+                continue
+            if lab.endswith(" (within)"):
+                t = lab[: -len(" (within)")]
+                cols.append(M[:, pos[lab]] + M[:, pos[f"{t} (between)"]])
+                tv.append(t)
+            else:
+                t = lab
+                cols.append(M[:, pos[lab]])
+            terms.append(t)
+        return np.column_stack(cols), terms, tv
+    if kind == "mundlak":
+        keep = [lab for lab in labels if not lab.endswith(" (unit mean)")]
+        tv = [lab[: -len(" (unit mean)")] for lab in labels if lab.endswith(" (unit mean)")]
+        return M[:, [pos[t] for t in keep]], keep, tv
+    W = M - _unit_means(M, codes)[codes]
+    scale = np.maximum(np.abs(M).max(axis=0), 1.0)
+    varies = np.sqrt((W ** 2).mean(axis=0)) > _VARY_TOL * scale
+    tv = [lab for lab, v in zip(labels, varies) if v and lab != "Intercept"]
+    return M, labels, tv
+
+
+def coefficient_parts(terms, time_varying, kind, labels, coef):
+    """Within and between coefficients of every draw, on the Rights-Sterba split.
+
+    Parameters
+    ----------
+    terms : list of str
+        The original covariates (``Design.terms``).
+    time_varying : list of str
+        Those that vary within units (``Design.time_varying``).
+    kind : {"pooled", "random", "within", "mundlak", "within_between"}
+        How the model's columns were built (:meth:`Design.matrices`).
+    labels : list of str
+        The model's coefficient labels.
+    coef : array (S, k)
+        Coefficient draws (or one estimate, ``S = 1``), columns in ``labels`` order.
+
+    Returns
+    -------
+    g_w : array (S, p_w)
+        Coefficients of the within columns (the time-varying terms, unit-demeaned).
+    g_b : array (S, p_b) or None
+        Coefficients of the between columns (unit means of the time-varying terms, then
+        the time-constant terms); ``None`` for fixed effects.
+    """
+    if kind not in PARTITION_KINDS:
+        raise choices_error("kind", kind, PARTITION_KINDS)
+    coef = np.atleast_2d(np.asarray(coef, dtype=float))
+    pos = {lab: j for j, lab in enumerate(labels)}
+
+    def col(name):
+        if name not in pos:
+            raise SpecificationError(
+                f"the {kind} model has no coefficient {name!r}; its terms are "
+                f"{', '.join(map(repr, labels))}")
+        return coef[:, pos[name]]
+
+    tv = list(time_varying)
+    tc = [t for t in terms if t not in tv and t != "Intercept"]
+    zero = np.zeros(coef.shape[0])
+    if kind == "within_between":
+        g_w = [col(f"{t} (within)") for t in tv]
+        g_b = [col(f"{t} (between)") for t in tv] + [col(t) for t in tc]
+    elif kind == "mundlak":
+        g_w = [col(t) for t in tv]
+        g_b = [col(t) + col(f"{t} (unit mean)") for t in tv] + [col(t) for t in tc]
+    elif kind == "within":
+        g_w = [col(t) if t in pos else zero for t in tv]
+        g_b = None
+    else:
+        g_w = [col(t) for t in tv]
+        g_b = [col(t) for t in tv] + [col(t) for t in tc]
+    g_w = np.column_stack(g_w) if g_w else np.zeros((coef.shape[0], 0))
+    if g_b is not None:
+        g_b = np.column_stack(g_b) if g_b else np.zeros((coef.shape[0], 0))
+    return g_w, g_b
+
+
+def _row_cov(A):
+    """Covariance over rows with divisor n (every row weighted alike)."""
+    if A.shape[1] == 0:
+        return np.zeros((0, 0))
+    C = A - A.mean(axis=0)
+    return C.T @ C / A.shape[0]
+
+
+def _quad(g, Phi):
+    if g.shape[1] == 0:
+        return np.zeros(g.shape[0])
+    return np.einsum("si,ij,sj->s", g, Phi, g)
+
+
+def partition_draws(X, codes, terms, time_varying, kind, labels, coef, sigma, tau=None) -> dict:
+    """Every quantity of the partition, per draw.
+
+    Parameters
+    ----------
+    X : array (n, k0)
+        The original covariates on the estimation rows (``Design.X``), sorted by unit.
+    codes : array (n,)
+        Unit of each row, 0..N-1.
+    terms, time_varying, kind, labels, coef
+        See :func:`coefficient_parts`.
+    sigma : array (S,)
+        Occasion-level (residual) SD draws.
+    tau : array (S,) or None
+        Unit-level SD draws; ``0`` for the pooled model, ``None`` for fixed effects.
+
+    Returns
+    -------
+    dict of str -> array (S,)
+        ``"unit SD"``, ``"occasion SD"``, ``"ICC"``, ``"theta (T=...)"`` for each distinct
+        panel length, the variance parts ``"variance: ..."`` and the Rights-Sterba
+        shares ``"total: ..."``, ``"within: ..."``, ``"between: ..."`` (Rights and Sterba
+        2019). Quantities a model does not define are ``nan``.
+    """
+    sigma = np.atleast_1d(np.asarray(sigma, dtype=float))
+    S = sigma.shape[0]
+    nan = np.full(S, np.nan)
+    g_w, g_b = coefficient_parts(terms, time_varying, kind, labels, coef)
+    X = np.asarray(X, dtype=float)
+    codes = np.asarray(codes, dtype=np.int64)
+    tv = [terms.index(t) for t in time_varying]
+    tc = [j for j, t in enumerate(terms) if t not in time_varying and t != "Intercept"]
+    means = _unit_means(X[:, tv], codes)[codes]
+    Wc = X[:, tv] - means
+    Bc = np.column_stack([means, X[:, tc]])
+    T_all = np.bincount(codes)
+    v = {"f1": _quad(g_w, _row_cov(Wc)), "e": sigma ** 2}
+    if g_b is None or tau is None:
+        v["f2"], v["m"] = nan, nan
+        t2 = nan
+    else:
+        t2 = np.broadcast_to(np.asarray(tau, dtype=float) ** 2, (S,)).astype(float)
+        v["f2"], v["m"] = _quad(g_b, _row_cov(Bc)), t2
+    denom = {"total": v["f1"] + v["f2"] + v["m"] + v["e"], "within": v["f1"] + v["e"],
+             "between": v["f2"] + v["m"]}
+    out = {"unit SD": np.sqrt(t2) if tau is not None else nan, "occasion SD": sigma}
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out["ICC"] = t2 / (t2 + sigma ** 2)
+        for T in np.unique(T_all):
+            out[f"theta (T={int(T)})"] = 1.0 - np.sqrt(sigma ** 2 / (sigma ** 2 + T * t2))
+        out["variance: within part"] = v["f1"]
+        out["variance: between part"] = v["f2"]
+        out["variance: unit intercepts"] = v["m"]
+        out["variance: occasion residual"] = v["e"]
+        for name, part, level in _SHARES:
+            out[name] = v[part] / denom[level]
+    return out
+
+
+def summarise_draws(draws: dict, prob: float = 0.95) -> pd.DataFrame:
+    """Mean, median, SD and the central (equal-tailed) interval of each quantity."""
+    if not 0 < prob < 1:
+        raise SpecificationError(f"prob={prob!r} is not valid; choose a number in (0, 1)")
+    lo, hi = (1 - prob) / 2, (1 + prob) / 2
+    rows = {}
+    for name, x in draws.items():
+        x = np.asarray(x, dtype=float).ravel()
+        if not np.all(np.isfinite(x)):
+            rows[name] = [np.nan] * 5
+            continue
+        rows[name] = [x.mean(), np.median(x), x.std(ddof=1) if x.size > 1 else 0.0,
+                      np.quantile(x, lo), np.quantile(x, hi)]
+    out = pd.DataFrame.from_dict(rows, orient="index",
+                                 columns=["mean", "median", "sd", "lower", "upper"])
+    out.index.name = "quantity"
+    out.attrs["prob"] = prob
+    return out
+
+
+# ---------------------------------------------------------------------------- labelled skin
+class PartitionResult:
+    """The variance partition of one fit: per-draw values and their summary.
+
+    Attributes
+    ----------
+    draws : pandas.DataFrame
+        One row per posterior draw (chains stacked), one column per quantity.
+    reference : pandas.Series or None
+        The same quantities, plug-in, from a frequentist reference fit.
+    kind : str
+    """
+
+    def __init__(self, draws: dict, kind: str, reference: dict | None = None,
+                 reference_name: str | None = None):
+        self.draws = pd.DataFrame(draws)
+        self.kind = kind
+        self.reference = None if reference is None else pd.Series(
+            {k: float(np.asarray(v).ravel()[0]) for k, v in reference.items()}, name="reference")
+        self.reference_name = reference_name
+
+    def table(self, prob: float = 0.95) -> pd.DataFrame:
+        """Summary per quantity (mean, median, SD, interval) with the reference beside it."""
+        out = summarise_draws({c: self.draws[c].to_numpy() for c in self.draws}, prob)
+        if self.reference is not None:
+            out["reference"] = self.reference.reindex(out.index).to_numpy()
+            out.attrs["reference"] = self.reference_name
+        out.attrs["kind"] = self.kind
+        return out
+
+    def to_dict(self, prob: float = 0.95) -> dict:
+        """JSON-ready summary (nan becomes None)."""
+        t = self.table(prob)
+        recs = {q: {c: (None if not np.isfinite(v) else float(v)) for c, v in row.items()}
+                for q, row in t.iterrows()}
+        return {"kind": self.kind, "prob": prob, "reference": self.reference_name,
+                "quantities": recs}
+
+    def __repr__(self) -> str:
+        return f"<PartitionResult {self.kind}, {len(self.draws)} draws>\n{self.table()}"
+
+
+_REF_KIND = {"pooled": "pooled", "within": "within", "random": "random",
+             "mundlak": "mundlak", "within_between": "within_between"}
+
+
+def reference_partition(ref) -> dict:
+    """Plug-in partition of a frequentist reference fit (``ReferenceResult``)."""
+    kind = _REF_KIND.get(ref.estimator)
+    if kind is None:
+        raise SpecificationError(
+            f"a {ref.estimator!r} reference fit has no variance partition; use a pooled, "
+            "within, random, mundlak or within_between fit")
+    if ref.design is None:
+        raise SpecificationError("the reference fit carries no design to partition")
+    coef = ref.coef
+    labels = list(coef.index)
+    tau = None if kind == "within" else np.array([0.0 if kind == "pooled" else ref.sigma_unit])
+    d = ref.design
+    return partition_draws(d.X, d.unit_codes, d.terms, d.time_varying, kind, labels,
+                           coef.to_numpy()[None, :], np.array([ref.sigma_obs]), tau)
+
+
+def variance_partition(M, codes, kind, labels, coef, sigma, tau=None, reference=None,
+                       reference_name=None) -> PartitionResult:
+    """The variance partition of a posterior, beside an optional reference fit.
+
+    Parameters
+    ----------
+    M : array (n, k)
+        The model's columns on the estimation rows (``Design.matrices(kind)``, or the
+        original time-varying columns for fixed effects), sorted by unit.
+    codes : array (n,)
+    kind, labels, coef, sigma, tau
+        See :func:`partition_draws`; ``coef`` is ``(S, k)`` with chains stacked.
+    reference : ReferenceResult, optional
+        A frequentist fit of the same design whose plug-in values go beside the
+        posterior summary.
+
+    Returns
+    -------
+    PartitionResult
+
+    References
+    ----------
+    Rights and Sterba (2019), see the module docstring.
+    """
+    X, terms, tv = design_columns(M, codes, labels, kind)
+    draws = partition_draws(X, codes, terms, tv, kind, labels, coef, sigma, tau)
+    ref = None
+    if reference is not None:
+        _check_same_rows(np.asarray(M).shape[0], np.asarray(codes), reference)
+        ref = reference_partition(reference)
+        reference_name = reference_name or reference.estimator
+    return PartitionResult(draws, kind, ref, reference_name)
+
+
+def _check_same_rows(n, codes, ref):
+    d = getattr(ref, "design", None)
+    if d is None or d.n != n or not np.array_equal(d.unit_codes, codes):
+        raise SpecificationError(
+            "reference: the reference fit is not on the same estimation rows as the "
+            "posterior; fit both on the same panel and formula")
