@@ -176,3 +176,23 @@ def test_cr2_on_random_intercept_gls_equals_brute_force_on_quasi_demeaned_rows(g
     np.testing.assert_allclose(res.df_resid.to_numpy(), nub, rtol=1e-6)
     # few clusters: CR2 df well below G - 1 = 9 for at least one term
     assert res.df_resid.min() < 9
+
+
+def test_cr2_from_per_unit_blocks_equals_rows(grunfeld):
+    """Per-unit blocks X_g'X_g and X_g'e_g suffice (the out-of-core shape); checked
+    against the brute-force definitions on the demeaned Grunfeld rows."""
+    from bayespanel.reference.covariance import cr2_from_blocks
+
+    panel = bp.Panel(grunfeld, unit="firm", time="year")
+    res = bp.reference.within(panel, "invest ~ value + capital", cov="cr2")
+    d = res.design
+    Xw = d.within()[:, 1:]
+    e = d.y_within() - Xw @ res.coef.to_numpy()
+    G = d.n_units
+    S = np.stack([Xw[d.unit_codes == g].T @ Xw[d.unit_codes == g] for g in range(G)])
+    s = np.stack([Xw[d.unit_codes == g].T @ e[d.unit_codes == g] for g in range(G)])
+    V, nu = cr2_from_blocks(S, s, np.linalg.inv(Xw.T @ Xw))
+    Vb, nub = brute_cr2(Xw, e, d.unit_codes)
+    np.testing.assert_allclose(V, Vb, rtol=1e-8)
+    np.testing.assert_allclose(nu, nub, rtol=1e-8)
+    np.testing.assert_allclose(res.vcov.to_numpy(), V, rtol=1e-8)

@@ -12,7 +12,6 @@ Data: statsmodels.datasets.grunfeld (see conftest.py).
 import warnings
 
 import numpy as np
-import pandas as pd
 import pytest
 
 import bayespanel as bp

@@ -8,7 +8,6 @@ Data: the Grunfeld panel from statsmodels' datasets.
 """
 
 import numpy as np
-import pandas as pd
 import pytest
 from scipy import stats
 

@@ -201,7 +201,9 @@ class ReferenceResult:
             when only point estimates and variance components are needed.
         """
         if self.design is None:
-            raise ValueError("this result has no design; refit with fit_arrays on the subset")
+            from ..errors import SpecificationError
+            raise SpecificationError("this result has no design (it came from fit_arrays); "
+                                     "call fit_arrays on the subset of rows instead")
         from .estimators import fit_design
 
         mask = np.asarray(rows)

@@ -40,7 +40,7 @@ import numpy as np
 
 from ._linalg import psd_power
 
-__all__ = ["COV_TYPES", "classical", "cluster_scores", "cr1", "cr2"]
+__all__ = ["COV_TYPES", "classical", "cluster_scores", "cr1", "cr2", "cr2_from_blocks"]
 
 COV_TYPES = ("classical", "cluster", "cr2")
 
@@ -119,11 +119,30 @@ def cr2(X, e, clusters, bread, G: int | None = None, df: bool = True):
     X = np.asarray(X, dtype=float)
     clusters = np.asarray(clusters, dtype=np.int64)
     G = int(clusters.max()) + 1 if G is None else int(G)
-    k = X.shape[1]
-    M = _sym(np.asarray(bread, dtype=float))
-    Mh = psd_power(M, 0.5)
     S = _cluster_cp(X, clusters, G)
     s = cluster_scores(X, e, clusters, G)
+    return cr2_from_blocks(S, s, bread, df=df)
+
+
+def cr2_from_blocks(S, s, bread, df: bool = True):
+    """CR2 and Satterthwaite degrees of freedom from per-cluster blocks only.
+
+    Parameters
+    ----------
+    S : (G, k, k) array
+        ``X_g'X_g`` for each cluster (of the rows of the regression that was solved).
+    s : (G, k) array
+        ``X_g'e_g`` for each cluster.
+    bread : (k, k) array
+        ``(X'X)^{-1}``.
+
+    Nothing else of the rows is needed, so an out-of-core pass that keeps per-unit
+    cross-products can compute CR2 as well as CR1. See :func:`cr2`.
+    """
+    S = np.asarray(S, dtype=float)
+    s = np.asarray(s, dtype=float)
+    M = _sym(np.asarray(bread, dtype=float))
+    Mh = psd_power(M, 0.5)
     Q = Mh @ S @ Mh                                      # G x k x k, eigenvalues in [0, 1]
     lam, vec = np.linalg.eigh(_sym_batch(Q))
     lam = np.clip(lam, 0.0, 1.0)

@@ -28,7 +28,7 @@ import warnings
 import numpy as np
 
 from .. import suffstats
-from ..errors import DataHandlingWarning, SpecificationError, choices_error
+from ..errors import DataHandlingWarning, EstimationError, SpecificationError, choices_error
 from . import core
 from ._linalg import COLLINEAR_TOL
 from ._results import ReferenceResult
@@ -285,7 +285,16 @@ def fit_stats(estimator, ss, labels, *, method=None, outcome=None) -> ReferenceR
     if estimator == "pooled":
         fit = core.pooled_core(ss, priority=pr)
     elif estimator == "within":
-        fit = core.within_core(ss, priority=pr)
+        try:
+            fit = core.within_core(ss, priority=pr)
+        except EstimationError as exc:
+            size = np.diag(ss.total) + ss.n * ss.mean ** 2
+            const = [t for j, t in enumerate(labels) if t != "Intercept"
+                     and ss.within[j, j] <= COLLINEAR_TOL * size[j]]
+            if const:
+                raise EstimationError(f"{exc} (constant within units: "
+                                      f"{', '.join(map(repr, const))})") from None
+            raise
     elif estimator == "between":
         fit = core.between_core(ss, priority=pr)
     elif method == "swamy-arora":
