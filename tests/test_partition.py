@@ -118,6 +118,15 @@ def test_mundlak_and_within_between_partitions_coincide_on_wage_panel(wage):
         assert sum(b[n] for n in names) == pytest.approx(1.0, abs=1e-12)
 
 
+def test_fixed_effects_partition_has_the_within_level_only(simulated):
+    s = simulated
+    out = partition_draws(s["X"], s["codes"], s["terms"], ["x"], "within", ["x"],
+                          np.array([[0.8], [0.7]]), np.array([0.9, 1.0]), None)
+    assert np.isnan(out["ICC"]).all() and np.isnan(out["total: within part"]).all()
+    assert out["variance: within part"][0] == pytest.approx(np.var(s["within"]), rel=1e-10)
+    np.testing.assert_allclose(out["within: within part"] + out["within: occasion residual"], 1)
+
+
 def test_design_columns_rebuild_the_original_covariates(wage):
     d = wage.design(WAGE)
     for kind in ("within_between", "mundlak", "random"):
@@ -131,7 +140,7 @@ def test_design_columns_rebuild_the_original_covariates(wage):
 
 @pytest.fixture(scope="module")
 def demo_posts(demo):
-    from bayespanel.models import FixedEffects, WithinBetween
+    from bayespanel.models import WithinBetween
 
     df, truth = demo
     with warnings.catch_warnings():
@@ -139,13 +148,12 @@ def demo_posts(demo):
         panel = bp.Panel(df, unit=truth["unit"], time=truth["time"])
         kw = dict(draws=300, tune=300, chains=2, seed=3, progress=False, cores=1)
         wb = WithinBetween(panel, truth["formula"]).sample(**kw)
-        fe = FixedEffects(panel, truth["formula"]).sample(**kw)
         ref = bp.reference.within_between(panel, truth["formula"], method="reml")
-    return wb, fe, ref, truth, df
+    return wb, ref, truth, df
 
 
 def test_posterior_partition_per_draw_and_beside_reference(demo_posts):
-    wb, fe, ref, truth, _ = demo_posts
+    wb, ref, truth, _ = demo_posts
     part = wb.variance_partition(reference=ref)
     draws = part.draws
     assert len(draws) == 600
@@ -158,12 +166,7 @@ def test_posterior_partition_per_draw_and_beside_reference(demo_posts):
     assert tab.loc["ICC", "reference"] == pytest.approx(ref.icc)
     np.testing.assert_allclose(draws["occasion SD"], wb.draws("sigma_obs").ravel())
     assert part.to_dict()["quantities"]["ICC"]["reference"] == pytest.approx(ref.icc)
-    # fixed effects: the within level only
-    ft = fe.variance_partition().table()
-    assert np.isnan(ft.loc["ICC", "mean"]) and np.isnan(ft.loc["total: within part", "mean"])
-    assert ft.loc["within: within part", "mean"] + ft.loc["within: occasion residual",
-                                                          "mean"] == pytest.approx(1.0)
-    df = demo_posts[4]
+    df = demo_posts[3]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         other = bp.reference.within_between(
