@@ -217,16 +217,33 @@ def quad_terms(stats: SuffStats, b: np.ndarray):
     return W, S
 
 
+def _sorted_groups(keys):
+    """``(ukeys, counts, starts)`` when ``keys`` are sorted, else ``None``."""
+    if keys.dtype == object or not bool(np.all(keys[1:] >= keys[:-1])):
+        return None
+    starts = np.flatnonzero(np.concatenate([[True], keys[1:] != keys[:-1]]))
+    counts = np.diff(np.append(starts, len(keys))).astype(np.int64)
+    return keys[starts], counts, starts
+
+
+def _finish(n, ref, counts, offsets, within_m2, ukeys) -> Partial:
+    """Block moments from the unit offsets and the within cross-products, with the exact
+    decomposition ``total = within + sum_i T_i (zbar_i - zbar)(zbar_i - zbar)'``."""
+    shift = (counts @ offsets) / n
+    dev = offsets - shift
+    m2 = within_m2 + (dev * counts[:, None]).T @ dev
+    return Partial(int(n), ref, shift, m2, within_m2, ukeys, counts, offsets)
+
+
 def partial_inplace(Z: np.ndarray, keys: np.ndarray) -> Partial:
     """:func:`partial` computed in place: ``Z`` (float64, C-ordered) is overwritten.
 
     The same moments with no working copy of the block beyond ``Z`` itself (``partial``
     makes three), for passes that build ``Z`` themselves (the out-of-core engines). Rows
     sorted by unit (the common layout of panel files) skip the sort of the keys. The
-    reference point is the mean of the first rows (any point near the data will do), and
-    the total cross-products use the exact decomposition ``total = within + sum_i T_i
-    (zbar_i - zbar)(zbar_i - zbar)'``, both sums of squares about block means (Chan,
-    Golub and LeVeque 1979).
+    reference point is the mean of the first rows (any point near the data will do);
+    rows are centred on it, then on their unit means, before any product is taken
+    (Chan, Golub and LeVeque 1979).
     """
     if Z.dtype != np.float64 or Z.ndim != 2 or not Z.flags.c_contiguous:
         raise ValueError("partial_inplace needs a C-ordered 2-d float64 array")
@@ -234,11 +251,9 @@ def partial_inplace(Z: np.ndarray, keys: np.ndarray) -> Partial:
     keys = np.asarray(keys)
     if n == 0:
         return partial(Z, keys)
-    sorted_rows = keys.dtype != object and bool(np.all(keys[1:] >= keys[:-1]))
-    if sorted_rows:
-        starts = np.flatnonzero(np.concatenate([[True], keys[1:] != keys[:-1]]))
-        ukeys = keys[starts]
-        counts = np.diff(np.append(starts, n)).astype(np.int64)
+    groups = _sorted_groups(keys)
+    if groups is not None:
+        ukeys, counts, starts = groups
         codes = np.repeat(np.arange(len(starts)), counts)
     else:
         ukeys, codes = np.unique(keys, return_inverse=True)
@@ -246,15 +261,69 @@ def partial_inplace(Z: np.ndarray, keys: np.ndarray) -> Partial:
         counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
     ref = Z[:4096].mean(axis=0)
     Z -= ref
-    if sorted_rows:
+    if groups is not None:
         offsets = np.add.reduceat(Z, starts, axis=0) / counts[:, None]
     else:
         offsets = _group_sums(codes, Z, len(ukeys)) / counts[:, None]
-    shift = (counts @ offsets) / n
     step = 1 << 16  # subtract the unit means in cache-sized slices
     for a in range(0, n, step):
         Z[a:a + step] -= offsets[codes[a:a + step]]
-    within_m2 = Z.T @ Z
-    dev = offsets - shift
-    m2 = within_m2 + (dev * counts[:, None]).T @ dev
-    return Partial(int(n), ref, shift, m2, within_m2, ukeys, counts, offsets)
+    return _finish(n, ref, counts, offsets, Z.T @ Z, ukeys)
+
+
+def compute_chunked(X, y, unit_codes, names=None, chunk_rows: int = 1 << 14) -> SuffStats:
+    """:func:`compute` with bounded working memory: ``O(chunk_rows * p + N * p)``.
+
+    Two sweeps over row slices of ``X`` and ``y`` (which are only read): the first sums
+    the rows of each unit about a reference point, the second accumulates the
+    cross-products of the rows about their unit means. :func:`compute` stacks ``[X, y]``
+    and makes three working copies of it; this makes none, so the statistics stage adds
+    almost nothing to the memory the design already holds. Same results to rounding.
+    """
+    X = np.asarray(X, dtype=float)
+    if X.ndim == 1:
+        X = X[:, None]
+    y = np.asarray(y, dtype=float).ravel()
+    keys = np.asarray(unit_codes)
+    n, k = X.shape
+    if len(y) != n or len(keys) != n:
+        raise ValueError("X, y and unit_codes must have the same number of rows")
+    if n == 0:
+        return finalize(partial(np.zeros((0, k + 1)), keys), names=names)
+    groups = _sorted_groups(keys)
+    if groups is not None:
+        ukeys, counts, starts = groups
+        codes = np.repeat(np.arange(len(starts), dtype=np.int64), counts)
+    else:
+        ukeys, codes = np.unique(keys, return_inverse=True)
+        codes = codes.ravel()
+        counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
+    N, p = len(ukeys), k + 1
+
+    def block(a, b):
+        Z = np.empty((b - a, p))
+        Z[:, :k] = X[a:b]
+        Z[:, k] = y[a:b]
+        return Z
+
+    ref = block(0, min(n, 4096)).mean(axis=0)
+    sums = np.zeros((N, p))
+    for a in range(0, n, chunk_rows):
+        b = min(a + chunk_rows, n)
+        Z = block(a, b)
+        Z -= ref
+        c = codes[a:b]
+        if groups is not None:
+            local = np.flatnonzero(np.concatenate([[True], c[1:] != c[:-1]]))
+            sums[c[local]] += np.add.reduceat(Z, local, axis=0)
+        else:
+            np.add.at(sums, c, Z)
+    offsets = sums / counts[:, None]
+    within = np.zeros((p, p))
+    for a in range(0, n, chunk_rows):
+        b = min(a + chunk_rows, n)
+        Z = block(a, b)
+        Z -= ref
+        Z -= offsets[codes[a:b]]
+        within += Z.T @ Z
+    return finalize(_finish(n, ref, counts, offsets, within, ukeys), names=names)
