@@ -206,6 +206,49 @@ def _sampling_args(p, draws, tune, chains):
     return g
 
 
+def cmd_design_check(args) -> int:
+    from .design_check import run_command
+
+    return run_command(args)
+
+
+def _add_design_check_verb(sub):
+    """``design-check``: coverage, bias, width and power on the file's own panel structure."""
+    p = sub.add_parser(
+        "design-check", help="simulate replicate outcomes on a panel's structure and report "
+                             "coverage, bias, width and power per parameter",
+        description="Keep the file's panel structure (units, occasions, covariate values), "
+                    "simulate outcomes from given or fitted values, refit the Bayesian model "
+                    "and its reference on each replicate, and print coverage of the 90% and "
+                    "95% intervals, bias, median width, power for a between-minus-within "
+                    "difference and how often the reference unit variance is zero.",
+        epilog="example: bayespanel design-check clinics.csv --unit clinic --time quarter "
+               "--formula 'satisfaction ~ staffing + caseload' --model within_between "
+               "--difference staffing=2 --replicates 100 --out check1")
+    p.add_argument("file", help="CSV or Parquet file, one row per unit and occasion")
+    p.add_argument("--unit", required=True, help="column identifying the units")
+    p.add_argument("--time", required=True, help="column identifying the occasions")
+    p.add_argument("--formula", required=True, help="Wilkinson formula, e.g. 'y ~ x + z'")
+    p.add_argument("--model", default="random_intercept",
+                   help="pooled, random_intercept, within_between, correlated_effects or "
+                        "fixed_effects (default random_intercept)")
+    p.add_argument("--replicates", type=int, default=100, help="replicates (default 100)")
+    p.add_argument("--coef", action="append", metavar="TERM=VALUE",
+                   help="true coefficient, repeatable; without --coef the values come from "
+                        "the REML reference fit on the file's outcome")
+    p.add_argument("--sigma-unit", type=float, help="true unit-level SD")
+    p.add_argument("--sigma-obs", type=float, help="true occasion-level SD")
+    p.add_argument("--difference", action="append", metavar="X=SIZE",
+                   help="between-minus-within difference to detect, repeatable")
+    p.add_argument("--reference-only", action="store_true",
+                   help="skip the Bayesian refits (reference and known-variance GLS only)")
+    p.add_argument("--workers", type=int, default=2, help="threads (default 2)")
+    p.add_argument("--out", metavar="DIR", help="write design_check.csv and design_check.png")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    _sampling_args(p, 500, 500, 2)
+    p.set_defaults(func=cmd_design_check)
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="bayespanel",
@@ -293,6 +336,8 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--title", help="title of the report")
     g.add_argument("--quiet", action="store_true", help="no progress lines")
     p.set_defaults(func=cmd_fit)
+
+    _add_design_check_verb(sub)
 
     p = sub.add_parser(
         "report", help="rebuild report.html and tables from a saved results folder",

@@ -779,3 +779,64 @@ class _progress:
         if self.show:
             self._p.stop()
         return False
+
+
+# ---------------------------------------------------------------------------- command line
+_CLI_MODELS = {"pooled": "Pooled", "random_intercept": "RandomIntercept",
+               "within_between": "WithinBetween", "correlated_effects": "CorrelatedEffects",
+               "fixed_effects": "FixedEffects"}
+
+
+def _pairs(items, option):
+    out = {}
+    for text in items or []:
+        if "=" not in text:
+            raise SpecificationError(f"{option} {text!r} must look like NAME=NUMBER")
+        k, v = text.rsplit("=", 1)
+        try:
+            out[k.strip()] = float(v)
+        except ValueError:
+            raise SpecificationError(f"{option} {text!r}: {v.strip()!r} is not a number") from None
+    return out
+
+
+def run_command(args) -> int:
+    """The ``design-check`` verb of the command line (see ``bayespanel design-check -h``)."""
+    from pathlib import Path
+
+    from .panel import Panel
+
+    if args.model not in _CLI_MODELS:
+        raise choices_error("--model", args.model, list(_CLI_MODELS))
+    coef = _pairs(args.coef, "--coef")
+    if coef:
+        missing = [o for o, v in (("--sigma-obs", args.sigma_obs),) if v is None]
+        if missing:
+            raise SpecificationError("with --coef, give --sigma-obs (and --sigma-unit)")
+        truth = {"coef": coef, "sigma_unit": args.sigma_unit, "sigma_obs": args.sigma_obs}
+    elif args.sigma_unit is not None or args.sigma_obs is not None:
+        raise SpecificationError("--sigma-unit and --sigma-obs need --coef for every term")
+    else:
+        truth = "reference"
+    panel = Panel.from_file(args.file, unit=args.unit, time=args.time)
+    res = design_check(panel, _CLI_MODELS[args.model], args.formula, truth=truth,
+                       replicates=args.replicates, difference=_pairs(args.difference,
+                                                                     "--difference") or None,
+                       draws=args.draws, tune=args.tune, chains=args.chains,
+                       bayes=not args.reference_only,
+                       seed=1 if args.seed is None else args.seed, workers=args.workers,
+                       progress=not args.quiet)
+    print(res.summary())
+    with pd.option_context("display.width", 160, "display.max_columns", 20,
+                           "display.float_format", "{:.3f}".format):
+        print(res.table().drop(columns=[c for c in res.table().columns
+                                        if c.startswith("mcse")]))
+    if args.out:
+        out = Path(args.out)
+        out.mkdir(parents=True, exist_ok=True)
+        res.table().to_csv(out / "design_check.csv")
+        fig = res.figure()
+        fig.savefig(out / "design_check.png", dpi=120)
+        print(f"table: {(out / 'design_check.csv').resolve()}")
+        print(f"figure: {(out / 'design_check.png').resolve()}")
+    return 0

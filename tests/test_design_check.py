@@ -231,3 +231,25 @@ def test_bad_input_names_the_fault(short_panel):
     with pytest.raises(SpecificationError, match="sigma_obs"):
         design_check(short_panel, "RandomIntercept", FORMULA, bayes=False,
                      truth={**TRUTH, "sigma_obs": -1.0})
+
+
+def test_command_line_verb(tmp_path, grunfeld, capsys):
+    # the verb runs on a file; the truth from --coef is used as given (Grunfeld panel,
+    # statsmodels.datasets, written to CSV)
+    from bayespanel.cli import main
+
+    path = tmp_path / "grunfeld.csv"
+    grunfeld.to_csv(path, index=False)
+    rc = main([
+        "design-check", str(path), "--unit", "firm", "--time", "year", "--formula", FORMULA,
+        "--coef", "Intercept=-40", "--coef", "value=0.11", "--coef", "capital=0.3",
+        "--sigma-unit", "60", "--sigma-obs", "50", "--replicates", "40", "--reference-only",
+        "--quiet", "--out", str(tmp_path / "out")])
+    assert rc == 0
+    text = capsys.readouterr().out
+    assert "Design check of RandomIntercept on 10 units, 200 rows" in text
+    tab = pd.read_csv(tmp_path / "out" / "design_check.csv", index_col=[0, 1])
+    assert tab.loc[(ORACLE, "value"), "truth"] == pytest.approx(0.11)
+    assert (tmp_path / "out" / "design_check.png").stat().st_size > 1000
+    assert main(["design-check", str(path), "--unit", "firm", "--time", "year", "--formula",
+                 FORMULA, "--model", "hybrid"]) == 2
