@@ -160,7 +160,7 @@ def check_outcome(family, y, *, outcome="y", trials=None, exposure=None, where=N
         if bad.any():
             r = np.argmax(bad)
             raise PanelDataError(
-                f"family='bernoulli' needs outcome {outcome!r} coded 0/1; found {y[r]!r}"
+                f"family='bernoulli' needs outcome {outcome!r} coded 0/1; found {y[r]:g}"
                 + _row_name(where, r) + "; for counts of successes use family='binomial'")
     if fam.discrete and fam.name != "bernoulli":
         bad = (y < 0) | (y != np.round(y))
@@ -168,7 +168,7 @@ def check_outcome(family, y, *, outcome="y", trials=None, exposure=None, where=N
             r = np.argmax(bad)
             raise PanelDataError(
                 f"family={fam.name!r} needs outcome {outcome!r} to be a non-negative whole "
-                f"number; found {y[r]!r}" + _row_name(where, r))
+                f"number; found {y[r]:g}" + _row_name(where, r))
     if fam.uses_trials:
         n = np.asarray(trials, dtype=float)
         if n.shape != y.shape:
@@ -176,12 +176,12 @@ def check_outcome(family, y, *, outcome="y", trials=None, exposure=None, where=N
         bad = ~np.isfinite(n) | (n < 1) | (n != np.round(n))
         if bad.any():
             r = np.argmax(bad)
-            raise PanelDataError(f"trials must be whole numbers of at least 1; found {n[r]!r}"
+            raise PanelDataError(f"trials must be whole numbers of at least 1; found {n[r]:g}"
                                  + _row_name(where, r))
         bad = y > n
         if bad.any():
             r = np.argmax(bad)
-            raise PanelDataError(f"outcome {outcome!r} = {y[r]!r} exceeds its trials {n[r]!r}"
+            raise PanelDataError(f"outcome {outcome!r} = {y[r]:g} exceeds its trials {n[r]:g}"
                                  + _row_name(where, r))
     if exposure is not None:
         e = np.asarray(exposure, dtype=float)
@@ -190,7 +190,7 @@ def check_outcome(family, y, *, outcome="y", trials=None, exposure=None, where=N
         bad = ~np.isfinite(e) | (e <= 0)
         if bad.any():
             r = np.argmax(bad)
-            raise PanelDataError(f"exposure must be positive; found {e[r]!r}" + _row_name(where, r))
+            raise PanelDataError(f"exposure must be positive; found {e[r]:g}" + _row_name(where, r))
     if fam.name in ("bernoulli", "binomial") and np.ptp(y / (np.asarray(trials, float) if fam.uses_trials else 1.0)) == 0:
         raise PanelDataError(f"outcome {outcome!r} takes one value on every row; a logit model "
                              "cannot be fitted")

@@ -138,10 +138,14 @@ def _column_values(panel, design, value, option):
     return arr, "array"
 
 
+def _py(v):
+    return v.item() if isinstance(v, np.generic) else v
+
+
 def _where(design):
     def f(r):
-        return (f"{design.spec.unit}={design.units[design.unit_codes[r]]!r}, "
-                f"{design.spec.time}={design.time[r]!r}")
+        return (f"{design.spec.unit}={_py(design.units[design.unit_codes[r]])!r}, "
+                f"{design.spec.time}={_py(design.time[r])!r}")
     return f
 
 
@@ -404,19 +408,23 @@ class LatentModel:
                 data = _StatsData(pm, st)
                 pm.Potential("loglik", slopes.slope_marginal_loglik(data, b_std, sigma, L, xp=pt))
                 return model
-            Zd = pm.Data("rows_Z", Zs)
             cd = pm.Data("rows_unit", np.asarray(self.codes, dtype=np.int64))
-            if ls.centred:
-                if q == 1:
-                    g = pm.Normal("unit_effect_std", 0.0, sds[0], dims="unit")[:, None]
+            if q == 1:  # random intercept: a vector of effects, gathered once per row
+                if ls.centred:
+                    u = pm.Normal("unit_effect_std", 0.0, sds[0], dims="unit")
                 else:
+                    u = sds[0] * pm.Normal("unit_effect_raw", 0.0, 1.0, dims="unit")
+                g = u[:, None]
+                eta = Xd @ b_std + u[cd]
+            else:
+                Zd = pm.Data("rows_Z", Zs)
+                if ls.centred:
                     g = pm.MvNormal("unit_effect_std", mu=np.zeros(q), chol=L,
                                     dims=("unit", "effect"))
-            else:
-                h = pm.Normal("unit_effect_raw", 0.0, 1.0, dims=("unit", "effect"))
-                g = h @ L.T
+                else:
+                    g = pm.Normal("unit_effect_raw", 0.0, 1.0, dims=("unit", "effect")) @ L.T
+                eta = Xd @ b_std + (Zd * g[cd]).sum(axis=1)
             pm.Deterministic("unit_effect", g * D, dims=("unit", "effect"))
-            eta = Xd @ b_std + (Zd * g[cd]).sum(axis=1)
             self._likelihood(pm, pt, eta, ys, sigma)
         return model
 

@@ -48,7 +48,7 @@ from .families import eta_derivatives, get_family, logpdf
 __all__ = ["LEVELS", "gh_rule", "unit_loglik_aghq", "occasion_loglik_latent", "pointwise_loglik"]
 
 LEVELS = ("unit", "occasion")
-_DEFAULT_NODES = {1: 15, 2: 7, 3: 5}
+_DEFAULT_NODES = {1: 15, 2: 11, 3: 7}
 
 
 def gh_rule(q: int, n_nodes: int):
@@ -98,7 +98,7 @@ def unit_loglik_aghq(family, y, eta, Z, L, unit_codes, params=None, *, trials=No
         The family's parameters (``sigma_obs``, ``nu``, ``shape``).
     trials, log_exposure : arrays (n,) or None
     n_nodes : int, optional
-        Nodes per dimension (default 15, 7, 5 for q = 1, 2, 3).
+        Nodes per dimension (default 15, 11, 7 for q = 1, 2, 3).
     max_iter, tol : Newton settings for the mode.
 
     Returns
