@@ -70,17 +70,27 @@ def test_log_density_and_gradient_match_memory(paths, builder):
         assert np.max(np.abs(da - db)) <= 1e-9 * max(np.max(np.abs(db)), 1.0)
 
 
+KW = dict(draws=250, tune=250, chains=2, seed=7, progress=False)
+
+
+@pytest.fixture(scope="module")
+def memory_posterior(paths):
+    _, mem, _ = paths
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return bp.models.RandomIntercept(mem, FORMULA).sample(**KW)
+
+
 @pytest.mark.slow
-def test_random_intercept_posterior_matches_memory_and_statsmodels(paths):
+def test_random_intercept_posterior_matches_memory_and_statsmodels(paths, memory_posterior):
     # Source: statsmodels MixedLM (ML) on the wage panel (linearmodels.datasets).
     import statsmodels.formula.api as smf
 
     design, mem, df = paths
-    kw = dict(draws=250, tune=250, chains=2, seed=7, progress=False)
+    pb = memory_posterior
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        pa = design.build(bp.models.RandomIntercept).sample(**kw)
-        pb = bp.models.RandomIntercept(mem, FORMULA).sample(**kw)
+        pa = design.build(bp.models.RandomIntercept).sample(**KW)
     sa, sb = pa.summary(), pb.summary()
     names = list(pa.coef.index) + ["sigma_unit", "sigma_obs"]
     mcse = np.sqrt(sa.loc[names, "sd"] ** 2 / sa.loc[names, "ess_bulk"]
@@ -92,3 +102,30 @@ def test_random_intercept_posterior_matches_memory_and_statsmodels(paths):
     coef = list(pa.coef.index)
     assert (np.abs(sa.loc[coef, "mean"].to_numpy() - ref.params[coef].to_numpy())
             < 0.25 * sa.loc[coef, "sd"].to_numpy()).all()
+
+
+@pytest.mark.slow
+def test_subsampled_unit_loo_from_statistics(paths, memory_posterior):
+    # Source: wage panel (linearmodels.datasets). Identity: the unit-level terms from
+    # per-unit statistics equal those from the rows (design.md section 4); the check of
+    # the issue: sub-sampled LOO (Magnusson et al. 2019) agrees with full PSIS-LOO
+    # (arviz-stats) within its reported standard error.
+    from bayespanel.models import gaussian
+
+    design, mem, _ = paths
+    post = memory_posterior
+    ds = post.idata["posterior"].to_dataset()
+    b = ds["coef"].values.reshape(-1, 5)[:50]
+    sig = ds["sigma_obs"].values.ravel()[:50]
+    tau = ds["sigma_unit"].values.ravel()[:50]
+    M, y, codes = post.rows
+    rows = gaussian.unit_loglik_rows(M, y, codes, b, sig, tau)
+    stats = design.unit_loglik("random", b, sig, tau)
+    assert np.max(np.abs(stats - rows)) < 1e-10 * np.max(np.abs(rows))
+    ours = design.loo_subsample(post, 150, seed=1)
+    theirs = bp.loo.loo_subsample(post, "unit", 150, seed=1)
+    assert abs(ours.elpd - theirs.elpd) < 1e-9 * abs(theirs.elpd)
+    assert abs(ours.se - theirs.se) < 1e-8 * theirs.se
+    full = bp.loo.loo(post, level="unit")
+    assert abs(ours.elpd - full.elpd) < ours.se
+    assert abs(ours.elpd - full.elpd) < 3 * ours.subsampling_se

@@ -601,6 +601,22 @@ class DaskDesign:
                                       units=self.units, priors=priors,
                                       design_spec=self.spec.to_dict(), **kwargs)
 
+    def unit_loglik(self, kind, b, sigma, tau, units=None):
+        """Per-unit marginal log density (draws x units) from the per-unit statistics;
+        see :func:`bayespanel.engines._pointwise.unit_loglik_stats`."""
+        from ._pointwise import unit_loglik_stats
+
+        ss = self.model_suffstats(kind)
+        return unit_loglik_stats(self.unit_cross_products(kind), ss.unit_mean, ss.unit_count,
+                                 b, sigma, tau, units=units)
+
+    def loo_subsample(self, post, observations: int = 400, *, seed: int = 0, reff=None):
+        """Sub-sampled unit-level LOO of a posterior fitted on this design (Magnusson et
+        al. 2019); see :func:`bayespanel.engines._pointwise.loo_subsample_units`."""
+        from ._pointwise import loo_subsample_units
+
+        return loo_subsample_units(post, self, observations, seed=seed, reff=reff)
+
     def matrices(self, kind):
         raise EstimationError(
             "the Dask path keeps no rows in memory, so it has no design matrices; use "
