@@ -24,7 +24,7 @@ FORMULA = "y ~ x + z + w"
 
 @st.composite
 def panels(draw):
-    N = draw(st.integers(3, 10))
+    N = draw(st.integers(6, 10))  # Swamy-Arora needs between df
     T = draw(st.lists(st.integers(2, 5), min_size=N, max_size=N))
     seed = draw(st.integers(0, 2**31 - 1))
     rng = np.random.default_rng(seed)
