@@ -324,3 +324,15 @@ def test_bad_input_gets_clear_errors(wage, wage_dask):
     dsk = wage_dask.design("lwage ~ exper + union")
     with pytest.raises(SpecificationError, match="'sandwich'"):
         dsk.fit_reference("within", cov="sandwich")
+
+
+def test_public_reference_functions_take_a_dask_panel(wage, wage_dask):
+    # Source: wage panel (linearmodels.datasets); bp.reference.* route a DaskPanel's
+    # design to the statistics-only fit.
+    _, mem = wage
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DataHandlingWarning)
+        a = bp.reference.within(wage_dask, WAGE, cov="cluster")
+        b = bp.reference.within(mem, WAGE, cov="cluster")
+    assert rel(a.coef, b.coef) < 1e-10 and rel(a.se, b.se) < 1e-10
+    assert rel(bp.reference.mundlak(wage_dask, WAGE).coef, bp.reference.mundlak(mem, WAGE).coef) < 1e-10

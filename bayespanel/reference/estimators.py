@@ -226,6 +226,8 @@ def within_between(data, formula=None, *, method="swamy-arora", cov="classical",
 
 def fit_design(design, estimator: str, *, method=None, cov="classical") -> ReferenceResult:
     """Fit one reference estimator on a :class:`~bayespanel.design.Design`."""
+    if getattr(design, "out_of_core", False):  # a DaskDesign: statistics only
+        return design.fit_reference(estimator, method=method, cov=cov)
     method = _check_options(estimator, method, cov)
     M, labels = design.matrices(_KIND[estimator])
     res = fit_arrays(estimator, M, design.y, design.unit_codes, labels, method=method,
