@@ -87,7 +87,7 @@ def _summary(elpd_i, lpd_i=None):
 
 
 # ---------------------------------------------------------------------------- refits
-def refit_draws(fd, train, **sample_kwargs):
+def refit_draws(fd, train, *, what="the held-out points", **sample_kwargs):
     """Sample the same model on the training rows only; returns ``(coef, sigma, tau)`` flat.
 
     The compiled graph is reused: the model's sufficient statistics are swapped with
@@ -112,6 +112,8 @@ def refit_draws(fd, train, **sample_kwargs):
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", SamplingWarning)
             post = model.sample(**kw)
+    except EstimationError as exc:
+        raise EstimationError(f"the refit without {what} cannot proceed: {exc}") from exc
     finally:
         model.set_suffstats(old_stats, rows=old_rows)
         model.units = old_units
@@ -138,12 +140,12 @@ def _exact_points(fd, level, points, sample_kwargs):
     label = fd.point_index(level)
     for j in points:
         test = (fd.codes == j) if level == "unit" else (np.arange(fd.n) == j)
-        b, sigma, tau, msgs = refit_draws(fd, ~test, **sample_kwargs)
+        who = _describe_points(label.iloc[[j]], level)
+        b, sigma, tau, msgs = refit_draws(fd, ~test, what=who, **sample_kwargs)
         ll = holdout_loglik(fd.M, fd.y, fd.codes, test, b, sigma, tau, level)
         values.append(float(_lpd(ll)[0]))
         if msgs:
-            problems.append(f"refit without {_describe_points(label.iloc[[j]], level)}: "
-                            + "; ".join(msgs))
+            problems.append(f"refit without {who}: " + "; ".join(msgs))
     for p in problems:
         warnings.warn(p, SamplingWarning, stacklevel=3)
     return np.array(values)
@@ -291,7 +293,10 @@ def kfold(post, level="occasion", K=10, *, seed=0, refit_kwargs=None):
     problems = []
     for k in range(int(K)):
         test = fold == k
-        b, sigma, tau, msgs = refit_draws(fd, ~test, **(refit_kwargs or {}))
+        held = labels.loc[point_fold == k]
+        b, sigma, tau, msgs = refit_draws(
+            fd, ~test, what=f"fold {k + 1} of {K} ({_describe_points(held, level, 4)})",
+            **(refit_kwargs or {}))
         elpd_i[point_fold == k] = _lpd(holdout_loglik(fd.M, fd.y, fd.codes, test, b, sigma,
                                                       tau, level))
         problems += [f"fold {k + 1} of {K}: {m}" for m in msgs]
