@@ -57,7 +57,7 @@ def test_compare_occasion_level_table(fits):
     # paired SE of the difference, by hand (Vehtari, Gelman and Gabry 2017, 5.2)
     best = tab.index[0]
     check = [n for n in ("RE (Bayes)", "FE") if n != best][:1] + [best]
-    lo = {n: (bp.loo.loo(models[n], "occasion") if hasattr(models[n], "idata") else
+    lo = {n: (models[n].loo("occasion") if hasattr(models[n], "idata") else
               bp.loo.reference_cv(models[n], "occasion")).elpd_i for n in check}
     for name in check[:-1]:
         d = lo[name] - lo[best]
@@ -147,3 +147,9 @@ def test_psis_unit_loo_agrees_with_exact_refits():
         exact = bp.loo.kfold(post, "unit", K=6)
     assert exact.n_points == 6 and exact.method == "grouped K-fold (K=6)"
     assert abs(psis.elpd - exact.elpd) < psis.se
+    # the exact refit used for high Pareto k is the same computation as a one-unit fold
+    from bayespanel.loo.psis import _exact_points
+
+    j = int(exact.pointwise["position"].iloc[0])
+    one = _exact_points(bp.loo.from_posterior(post), "unit", [j], {})
+    assert one[0] == pytest.approx(exact.pointwise["elpd"].iloc[0], rel=1e-12)
