@@ -4,8 +4,8 @@ Generates a simulated random-intercept panel (default 20,000,000 rows: 2,000,000
 10 occasions, 5 covariates) as Parquet files in a temporary folder (not in the
 repository), then times, on a local Dask cluster:
 
-* the passes: occasions, structure (duplicates, balance), describe, and the design pass
-  that yields the sufficient statistics;
+* the design pass, which yields the sufficient statistics and the panel's structure
+  (duplicates, balance) in one read of the data, and the describe pass;
 * the reference fits on the statistics (within, between, pooled, random Swamy-Arora and
   ML);
 * the Bayesian random-intercept fit (build + NUTS) from the statistics.
@@ -66,6 +66,13 @@ def _worker_rss():
     return r.getrusage(r.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
+def _worker_cpu():
+    import resource as r
+
+    u = r.getrusage(r.RUSAGE_SELF)
+    return u.ru_utime + u.ru_stime
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows", type=int, default=20_000_000)
@@ -115,11 +122,12 @@ def main(argv=None):
     panel = bp.Panel.from_parquet(path, unit="unit", time="time", engine="dask", client=client,
                                   split_row_groups=True)
     print(f"partitions: {panel.npartitions}")
-    timed("pass: occasions", lambda: panel.occasions)
-    st = timed("pass: structure", panel.structure)
+    cpu0 = sum(client.run(_worker_cpu).values())
+    design = timed("pass: design (statistics + structure)", lambda: panel.design(formula))
+    cpu_pass = sum(client.run(_worker_cpu).values()) - cpu0
+    st = panel.structure()
     print(f"structure: {st['n_units']:,} units, {st['n_rows']:,} rows, balanced={st['balanced']}")
     desc = timed("pass: describe", panel.describe)
-    design = timed("pass: design (sufficient statistics)", lambda: panel.design(formula))
     refs = {}
     for est, meth in [("within", None), ("between", None), ("pooled", None),
                       ("random", "swamy-arora"), ("random", "ml")]:
@@ -146,11 +154,16 @@ def main(argv=None):
     for name, t in timings.items():
         print(f"  {name:<48s} {t:9.2f}")
     cores = args.workers
-    t_pass = timings["pass: design (sufficient statistics)"]
+    t_pass = timings["pass: design (statistics + structure)"]
     t_all_passes = sum(t for n, t in timings.items() if n.startswith("pass:"))
     t_fit = timings["bayes: build RandomIntercept from statistics"] + timings["bayes: sample (2 chains)"]
     print(f"design pass: {args.rows / t_pass:,.0f} rows/s, {args.rows / t_pass / cores:,.0f} "
           f"rows/s per core ({cores} cores; target 1,000,000)")
+    print(f"design pass CPU time in the workers: {cpu_pass:.1f} s, i.e. "
+          f"{args.rows / cpu_pass:,.0f} rows per CPU-second (what one free core would do)")
+    load = os.getloadavg()
+    print(f"load average during the run (1, 5, 15 min): {load[0]:.1f}, {load[1]:.1f}, "
+          f"{load[2]:.1f} on {os.cpu_count()} CPUs")
     print(f"all passes: {t_all_passes:.1f} s; Bayesian random-intercept fit after the pass: "
           f"{t_fit:.1f} s (target < 30 s)")
     workers = client.run(_worker_rss)
@@ -162,7 +175,6 @@ def main(argv=None):
         other = local_client(args.workers, processes=args.threads)
         p2 = bp.Panel.from_parquet(path, unit="unit", time="time", engine="dask", client=other,
                                    split_row_groups=True)
-        p2.structure()
         t = time.perf_counter()
         p2.design(formula)
         t_other = time.perf_counter() - t

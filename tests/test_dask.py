@@ -336,3 +336,22 @@ def test_public_reference_functions_take_a_dask_panel(wage, wage_dask):
         b = bp.reference.within(mem, WAGE, cov="cluster")
     assert rel(a.coef, b.coef) < 1e-10 and rel(a.se, b.se) < 1e-10
     assert rel(bp.reference.mundlak(wage_dask, WAGE).coef, bp.reference.mundlak(mem, WAGE).coef) < 1e-10
+
+
+def test_a_design_on_a_fresh_panel_reads_each_partition_once(wage):
+    # Source: wage panel (linearmodels.datasets); the structure checks ride on the design
+    # pass, so nothing is read twice.
+    df, mem = wage
+    reads = []
+
+    def load(frame):
+        reads.append(len(frame))
+        return frame
+
+    pieces = [df.iloc[list(p)] for p in spanning(df)]
+    ddf = dd.from_map(load, pieces, meta=df.iloc[:0], enforce_metadata=False)
+    dp = DaskPanel(ddf, "nr", "year", client="synchronous")
+    design = dp.design(WAGE)
+    assert sorted(reads) == sorted(len(p) for p in pieces)
+    assert dp.structure() == mem.structure() and design.n == len(df)
+    assert len(reads) == len(pieces)

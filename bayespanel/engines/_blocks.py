@@ -34,9 +34,8 @@ def _plain(v):
     return v.item() if isinstance(v, np.generic) else v
 
 
-# ---------------------------------------------------------------------------- occasions
-def occasions_block(pdf: pd.DataFrame, unit: str, time: str):
-    """Distinct occasions of one partition; refuses missing unit or time values."""
+# ---------------------------------------------------------------------------- structure
+def _check_ids(pdf, unit, time):
     for role, col in (("unit", unit), ("time", time)):
         miss = pdf[col].isna().to_numpy()
         if miss.any():
@@ -44,28 +43,24 @@ def occasions_block(pdf: pd.DataFrame, unit: str, time: str):
             raise PanelDataError(
                 f"{role} column {col!r} has missing value(s); first at row "
                 f"{_plain(pdf.index[where])!r}. Every row needs a unit and an occasion.")
-    return np.unique(pdf[time].to_numpy())
 
 
-def union(arrays):
-    arrays = [a for a in arrays if len(a)]
-    if not arrays:
-        return np.zeros(0)
+def _sorted_unique(values, what):
     try:
-        return np.unique(np.concatenate(arrays))
+        return np.unique(values)
     except TypeError as exc:
-        raise PanelDataError(f"cannot order the occasions (mixed types?): {exc}") from None
+        raise PanelDataError(f"cannot order the {what} (mixed types?): {exc}") from None
 
 
-# ---------------------------------------------------------------------------- structure
 @dataclass
 class StructurePiece:
-    """Per-unit row counts and occasion bit masks (``words`` uint64 per unit)."""
+    """Per-unit row counts and bit masks over ``occasions`` (``words`` uint64 per unit)."""
 
     n_rows: int
     keys: np.ndarray
     counts: np.ndarray
-    masks: np.ndarray  # (units, words) uint64
+    occasions: np.ndarray
+    masks: np.ndarray  # (units, words) uint64; bit j <-> occasions[j]
 
 
 def _codes(keys):
@@ -76,38 +71,59 @@ def _codes(keys):
     return ukeys, codes.ravel()
 
 
-def structure_block(pdf, unit, time, occasions) -> StructurePiece:
-    words = max(1, -(-len(occasions) // 64))
+def _words(n_occasions):
+    return max(1, -(-n_occasions // 64))
+
+
+def structure_block(pdf, unit, time) -> StructurePiece:
+    """Units, row counts and occasion masks of one partition (refuses missing ids)."""
+    _check_ids(pdf, unit, time)
     keys = pdf[unit].to_numpy()
+    tvals = pdf[time].to_numpy()
+    occ = _sorted_unique(tvals, "occasions")
+    masks = np.zeros((0, _words(len(occ))), dtype=np.uint64)
     if len(keys) == 0:
-        return StructurePiece(0, keys, np.zeros(0, np.int64), np.zeros((0, words), np.uint64))
+        return StructurePiece(0, keys, np.zeros(0, np.int64), occ, masks)
     ukeys, codes = _codes(keys)
-    pos = np.searchsorted(occasions, pdf[time].to_numpy())
+    pos = np.searchsorted(occ, tvals)
     counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
-    masks = np.zeros((len(ukeys), words), dtype=np.uint64)
-    for w in range(words):
+    masks = np.zeros((len(ukeys), _words(len(occ))), dtype=np.uint64)
+    for w in range(masks.shape[1]):
         sel = (pos // 64) == w
         bits = np.left_shift(np.uint64(1), (pos[sel] % 64).astype(np.uint64))
         np.bitwise_or.at(masks[:, w], codes[sel], bits)
-    return StructurePiece(len(keys), ukeys, counts, masks)
+    return StructurePiece(len(keys), ukeys, counts, occ, masks)
+
+
+def _remap(piece: StructurePiece, occasions: np.ndarray) -> np.ndarray:
+    """The piece's masks re-expressed over a larger sorted set of occasions."""
+    if len(piece.occasions) == len(occasions):
+        return piece.masks
+    pos = np.searchsorted(occasions, piece.occasions)
+    out = np.zeros((len(piece.keys), _words(len(occasions))), dtype=np.uint64)
+    one = np.uint64(1)
+    for j, g in enumerate(pos):
+        bit = (piece.masks[:, j // 64] >> np.uint64(j % 64)) & one
+        out[:, g // 64] |= bit << np.uint64(g % 64)
+    return out
 
 
 def merge_structure(pieces) -> StructurePiece:
     full = [p for p in pieces if p.n_rows]
     if not full:
         return pieces[0]
-    pieces = full
-    if len(pieces) == 1:
-        return pieces[0]
-    keys = np.concatenate([p.keys for p in pieces])
+    if len(full) == 1:
+        return full[0]
+    occ = _sorted_unique(np.concatenate([p.occasions for p in full]), "occasions")
+    keys = np.concatenate([p.keys for p in full])
     ukeys, inv = _codes(keys)
-    counts = np.bincount(inv, weights=np.concatenate([p.counts for p in pieces]),
+    counts = np.bincount(inv, weights=np.concatenate([p.counts for p in full]),
                          minlength=len(ukeys)).astype(np.int64)
-    allm = np.concatenate([p.masks for p in pieces])
+    allm = np.concatenate([_remap(p, occ) for p in full])
     masks = np.zeros((len(ukeys), allm.shape[1]), dtype=np.uint64)
     for w in range(allm.shape[1]):
         np.bitwise_or.at(masks[:, w], inv, allm[:, w])
-    return StructurePiece(sum(p.n_rows for p in pieces), ukeys, counts, masks)
+    return StructurePiece(sum(p.n_rows for p in full), ukeys, counts, occ, masks)
 
 
 def observed_occasions(masks: np.ndarray) -> np.ndarray:
@@ -127,9 +143,12 @@ class DescribePiece:
     n_missing: np.ndarray
     parts: list
     maxabs: np.ndarray
+    structure: StructurePiece | None = None
 
 
-def describe_block(pdf, unit, columns) -> DescribePiece:
+def describe_block(pdf, unit, columns, time=None) -> DescribePiece:
+    """Per-column moments of one partition (and its structure when ``time`` is given)."""
+    st = None if time is None else structure_block(pdf, unit, time)
     keys = pdf[unit].to_numpy()
     parts, n_missing, maxabs = [], [], []
     for c in columns:
@@ -139,7 +158,12 @@ def describe_block(pdf, unit, columns) -> DescribePiece:
         n_missing.append(int((~ok).sum()))
         parts.append(suffstats.partial(x[ok, None], keys[ok]))
         maxabs.append(float(np.abs(x[ok]).max()) if ok.any() else 0.0)
-    return DescribePiece(np.asarray(n_missing, np.int64), parts, np.asarray(maxabs))
+    return DescribePiece(np.asarray(n_missing, np.int64), parts, np.asarray(maxabs), st)
+
+
+def _merge_optional(pieces):
+    sts = [p.structure for p in pieces]
+    return None if sts[0] is None else merge_structure(sts)
 
 
 def merge_describe(pieces) -> DescribePiece:
@@ -148,6 +172,7 @@ def merge_describe(pieces) -> DescribePiece:
         out = DescribePiece(out.n_missing + p.n_missing,
                             [suffstats.merge(a, b) for a, b in zip(out.parts, p.parts)],
                             np.maximum(out.maxabs, p.maxabs))
+    out.structure = _merge_optional(pieces)
     return out
 
 
@@ -177,6 +202,7 @@ class BlockSpec:
     rhs: str               # formula right-hand side (slow path through formulaic)
     occasions: tuple = ()  # occasions given an indicator (occasion effects)
     unit_cp: bool = False  # collect per-unit within cross-products
+    structure: bool = False  # also summarise the panel's structure (all rows)
 
 
 @dataclass
@@ -189,6 +215,7 @@ class DesignPiece:
     maxabs: np.ndarray      # per column of [X, y]
     part: suffstats.Partial
     unit_cp: np.ndarray | None = field(default=None)  # (units, p, p) within cross-products
+    structure: StructurePiece | None = None
 
 
 def _build_Z(sub: pd.DataFrame, spec: BlockSpec) -> np.ndarray:
@@ -221,7 +248,9 @@ def _build_Z(sub: pd.DataFrame, spec: BlockSpec) -> np.ndarray:
 
 
 def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
-    """Rows of one partition: listwise deletion, ``[X, y]``, its :class:`Partial`."""
+    """Rows of one partition: listwise deletion, ``[X, y]``, its :class:`Partial` (and the
+    partition's structure, over all its rows, when ``spec.structure``)."""
+    st = structure_block(pdf, spec.unit, spec.time) if spec.structure else None
     n_input = len(pdf)
     used = list(spec.used)
     miss = pdf[used].isna().to_numpy() if used else np.zeros((n_input, 0), bool)
@@ -244,7 +273,7 @@ def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
     Zrows = Z.copy() if spec.unit_cp else None
     part = suffstats.partial_inplace(Z, keys)
     ucp = None if Zrows is None else _unit_cp(Zrows, keys, part)
-    return DesignPiece(n_input, missing, int((~keep).sum()), maxabs, part, ucp)
+    return DesignPiece(n_input, missing, int((~keep).sum()), maxabs, part, ucp, st)
 
 
 def _unit_cp(Z, keys, part) -> np.ndarray:
@@ -291,6 +320,7 @@ def merge_design(pieces) -> DesignPiece:
         out = DesignPiece(out.n_input + p.n_input, out.missing + p.missing,
                           out.n_dropped + p.n_dropped, np.maximum(out.maxabs, p.maxabs),
                           part, ucp)
+    out.structure = _merge_optional(pieces)
     return out
 
 

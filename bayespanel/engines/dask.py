@@ -7,12 +7,16 @@ merges the pieces with the pairwise update of Chan, Golub and LeVeque (1979); un
 be split across partitions in any way. Everything after the pass (reference fits,
 Bayesian fits) is the in-memory code, unchanged.
 
-Passes (each reads only the columns it needs):
+Passes (each reads only the columns it needs; the first one also summarises the panel's
+structure, so a design on a fresh panel is one pass over the data):
 
-1. occasions: the distinct values of the time column (and missing unit/time checks);
-2. structure: per-unit row counts and occasion bit masks (duplicates, balance, gaps);
-3. design: listwise deletion, ``[X, y]`` and its sufficient statistics for one formula
-   (optionally the per-unit within cross-products used for cluster-robust scores).
+* structure: per-unit row counts and occasion bit masks (missing unit or time values,
+  duplicated unit-occasion pairs, balance, gaps); runs alone only when asked for first,
+  or before a design with ``occasion_effects=True`` (the indicators need the occasions);
+* describe: between/within moments of each numeric column;
+* design: listwise deletion, ``[X, y]`` and its sufficient statistics for one formula
+  (optionally the per-unit within cross-products used for cluster-robust covariances
+  and unit-level LOO terms).
 
 Formulas on this path are restricted to what can be built row by row: plain numeric
 columns, interactions (``x:z``, ``x*z``), numeric transforms (``np.log(x)``, ``sqrt``,
@@ -174,7 +178,6 @@ class DaskPanel:
         self.unit = unit
         self.time = time
         self.client = _resolve_client(client)
-        self._occasions = None
         self._structure = None
 
     @classmethod
@@ -222,29 +225,29 @@ class DaskPanel:
     # ------------------------------------------------------------------ structure
     @property
     def occasions(self) -> np.ndarray:
-        """All occasions present in the table, sorted (first pass, cached)."""
-        if self._occasions is None:
-            self._occasions = self.run([self.unit, self.time], blk.occasions_block, blk.union,
-                                       self.unit, self.time)
-        return self._occasions
+        """All occasions present in the table, sorted."""
+        return self._struct().occasions
 
     def _struct(self) -> blk.StructurePiece:
+        """The structure pass (unit and time columns), unless a pass already did it."""
         if self._structure is None:
-            occ = self.occasions
-            piece = self.run([self.unit, self.time], blk.structure_block, blk.merge_structure,
-                             self.unit, self.time, occ)
-            if piece.n_rows == 0:
-                raise PanelDataError("the table has no rows")
-            distinct = blk.observed_occasions(piece.masks)
-            dup = np.flatnonzero(piece.counts > distinct)
-            if len(dup):
-                self._raise_duplicates(piece, dup, distinct)
-            if len(piece.keys) < 2:
-                raise PanelDataError(
-                    f"the panel has {len(piece.keys)} unit in column {self.unit!r}; at least "
-                    "2 are needed")
-            self._structure = piece
+            self._adopt(self.run([self.unit, self.time], blk.structure_block,
+                                 blk.merge_structure, self.unit, self.time))
         return self._structure
+
+    def _adopt(self, piece: blk.StructurePiece) -> None:
+        """Check a merged structure piece (rows, duplicates, units) and keep it."""
+        if piece.n_rows == 0:
+            raise PanelDataError("the table has no rows")
+        distinct = blk.observed_occasions(piece.masks)
+        dup = np.flatnonzero(piece.counts > distinct)
+        if len(dup):
+            self._raise_duplicates(piece, dup, distinct)
+        if len(piece.keys) < 2:
+            raise PanelDataError(
+                f"the panel has {len(piece.keys)} unit in column {self.unit!r}; at least "
+                "2 are needed")
+        self._structure = piece
 
     def _raise_duplicates(self, piece, dup, distinct):
         u = piece.keys[dup[0]]
@@ -333,7 +336,6 @@ class DaskPanel:
     def describe(self, columns=None) -> pd.DataFrame:
         """Between/within decomposition of each numeric variable, as
         :meth:`Panel.describe` (same columns, same definitions), in one pass."""
-        self._struct()
         dt = self._df.dtypes
         if columns is None:
             columns = self.numeric_columns()
@@ -346,8 +348,12 @@ class DaskPanel:
                     raise PanelDataError(
                         f"column {c!r} is not numeric (dtype {dt[c]}); describe() summarises "
                         "numeric columns")
-        piece = self.run([self.unit] + columns, blk.describe_block, blk.merge_describe,
-                         self.unit, columns)
+        need = self._structure is None  # the structure comes with this pass
+        cols = [self.unit] + ([self.time] if need else []) + columns
+        piece = self.run(list(dict.fromkeys(cols)), blk.describe_block, blk.merge_describe,
+                         self.unit, columns, self.time if need else None)
+        if need:
+            self._adopt(piece.structure)
         rows = []
         for c, part, n_miss, mx in zip(columns, piece.parts, piece.n_missing, piece.maxabs):
             rows.append(_describe_row(c, part, int(n_miss), float(mx)))
@@ -421,7 +427,6 @@ class DaskDesign:
         self.spec = DesignSpec(formula=formula, unit=panel.unit, time=panel.time,
                                occasion_effects=bool(occasion_effects))
         self._block_spec = self._prepare(formula, bool(occasion_effects))
-        panel._struct()  # structure checks first (duplicates, missing unit/time)
         self._run(cluster)
 
     # ------------------------------------------------------------------ formula
@@ -479,9 +484,12 @@ class DaskDesign:
         from dataclasses import replace
 
         p = self.panel
-        spec = replace(self._block_spec, unit_cp=bool(cluster))
+        need = p._structure is None  # the structure comes with this pass
+        spec = replace(self._block_spec, unit_cp=bool(cluster), structure=need)
         cols = list(dict.fromkeys([p.unit, p.time] + list(spec.used)))
         piece = p.run(cols, blk.design_block, blk.merge_design, spec)
+        if need:
+            p._adopt(piece.structure)
         used = list(spec.used)
         for c, m in zip(used, piece.missing):
             if m == piece.n_input:
