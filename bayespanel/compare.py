@@ -225,7 +225,8 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
 def _coef_frame(name, obj, prob):
     if _is_posterior(obj):
         t = obj.table(prob)
-        out = pd.DataFrame({"estimate": t["coef"], "sd/se": t["sd"], "lower": t["lower"],
+        est = t["estimate"] if "estimate" in t else t["coef"]
+        out = pd.DataFrame({"estimate": est, "sd/se": t["sd"], "lower": t["lower"],
                             "upper": t["upper"]})
         if "icc" in out.index:
             out = out.rename(index={"icc": "ICC"})

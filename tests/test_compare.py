@@ -119,7 +119,7 @@ def test_coef_table_aligns_terms(fits):
     assert list(tab.index[-3:]) == ["sigma_unit", "sigma_obs", "ICC"]
     for name, m in models.items():
         own = m.table(0.9)
-        est = own["coef"] if "coef" in own else own["estimate"]
+        est = own["estimate"] if "estimate" in own else own["coef"]
         for term in est.index:
             if term in tab.index:
                 assert tab.loc[term, (name, "estimate")] == pytest.approx(est[term])
