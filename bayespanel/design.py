@@ -306,10 +306,13 @@ def _check_columns(X, y, terms, outcome):
                 f"covariate {t!r} is constant ({X[0, j]!r}) on every row used; it cannot be "
                 "told apart from the intercept"
             )
+    _check_magnitudes(X, y, terms, outcome)
     if X.shape[1] == 0:
         return
-    scale = np.sqrt((X ** 2).mean(axis=0))
-    scale[scale == 0] = 1.0
+    # scale by the largest absolute value first, so squares neither overflow nor underflow
+    big = np.abs(X).max(axis=0)
+    big[big == 0] = 1.0
+    scale = big * np.sqrt(((X / big) ** 2).mean(axis=0))
     Xs = X / scale
     if X.shape[0] < X.shape[1]:
         raise PanelDataError(f"{X.shape[0]} rows cannot identify {X.shape[1]} terms")
@@ -323,10 +326,83 @@ def _check_columns(X, y, terms, outcome):
             f"covariates are exactly collinear: {', '.join(map(repr, bad))} can be written as a "
             "combination of the other terms; drop or recode them"
         )
-    cond = d[0] / d[-1]
-    if cond > 1e6:
+    collinearity_warning(X, terms, stacklevel=5)
+
+
+#: magnitudes outside this range are refused: squares and cross-products of such values
+#: overflow or lose precision in double precision (about 1e308 .. 1e-308)
+MAGNITUDE_LIMITS = (1e-100, 1e100)
+
+
+def _check_magnitudes(X, y, terms, outcome):
+    """Refuse columns whose values are too large or too small for double precision.
+
+    The models standardise every column internally, so any scale inside
+    :data:`MAGNITUDE_LIMITS` gives the same answer after back-transformation; beyond it
+    the one-pass cross-products overflow (or vanish), so the column must be rescaled.
+    """
+    lo, hi = MAGNITUDE_LIMITS
+    for name, col in [(outcome, y)] + [(t, X[:, j]) for j, t in enumerate(terms)]:
+        size = float(np.abs(col).max()) if len(col) else 0.0
+        if size > hi or 0 < size < lo:
+            what = "the outcome" if col is y else "term"
+            raise PanelDataError(
+                f"{what} {name!r} has values of magnitude {size:.3g}, outside "
+                f"{lo:g}..{hi:g}: its squares and cross-products {'overflow' if size > hi else 'underflow'} "
+                "in double precision; rescale the column (e.g. change its units)"
+            )
+
+
+#: warn when the condition number of the centred, standardised covariates exceeds this;
+#: common practice after Belsley, Kuh and Welsch (1980), for whom condition indices above
+#: 30 signal moderate to strong dependencies among the columns
+COLLINEARITY_WARN = 30.0
+
+
+def condition_number(C) -> tuple[float, np.ndarray]:
+    """Condition number of a design from its cross-product matrix ``C`` (k x k).
+
+    ``C`` is scaled to unit diagonal (a correlation matrix when the columns are centred)
+    and the result is ``sqrt(lambda_max / lambda_min)``, the condition number of the
+    column-scaled design itself. Also returns the eigenvector of ``lambda_min``: its large
+    entries are the columns that take part in the near dependency.
+    """
+    C = np.asarray(C, dtype=float)
+    d = np.sqrt(np.maximum(np.diag(C), np.finfo(float).tiny))
+    w, v = np.linalg.eigh(C / np.outer(d, d))
+    return float(np.sqrt(w[-1] / max(w[0], np.finfo(float).tiny))), v[:, 0]
+
+
+def collinearity_warning(X_or_C, terms, *, cross_products=False, stacklevel=4) -> float | None:
+    """Warn (``DataHandlingWarning``) when the covariates are nearly collinear.
+
+    The condition number is that of the covariates after centring and scaling each to
+    unit variance, the scale on which the models work internally (the intercept is
+    left out, so a covariate far from zero such as a calendar year does not count as
+    collinear with it); without an intercept the columns are only scaled. Pass the rows
+    ``X`` or, with ``cross_products=True``, the cross-products of all ``terms`` (centred
+    about the means when ``terms`` has an intercept, raw otherwise).
+    Returns the condition number (None with fewer than two covariates).
+    """
+    keep = [j for j, t in enumerate(terms) if t != "Intercept"]
+    if len(keep) < 2:
+        return None
+    if cross_products:
+        C = np.asarray(X_or_C, dtype=float)[np.ix_(keep, keep)]
+    else:
+        Z = np.asarray(X_or_C, dtype=float)[:, keep]
+        if len(keep) < len(terms):
+            Z = Z - Z.mean(axis=0)
+        Z = Z / np.maximum(np.abs(Z).max(axis=0), np.finfo(float).tiny)
+        C = Z.T @ Z
+    cond, vec = condition_number(C)
+    if cond > COLLINEARITY_WARN:
+        order = np.argsort(-np.abs(vec))
+        involved = [terms[keep[i]] for i in order if abs(vec[i]) > 0.3][:4]
         warnings.warn(
-            f"the design is nearly collinear (condition number {cond:.3g} after scaling the "
-            "columns); estimates of the affected terms will be unstable",
-            DataHandlingWarning, stacklevel=4,
+            f"the design is nearly collinear (condition number {cond:.3g} of the centred, "
+            f"standardised covariates, above {COLLINEARITY_WARN:g}); terms involved: "
+            f"{', '.join(map(repr, involved))}; their separate estimates will be unstable",
+            DataHandlingWarning, stacklevel=stacklevel,
         )
+    return cond

@@ -705,8 +705,7 @@ class DaskDesign:
 def _check_stats(stats, terms, outcome, maxabs):
     """The in-memory design's checks (constant outcome or covariate, collinearity), from
     the cross-products."""
-    from scipy.linalg import eigh
-
+    from ..design import collinearity_warning
     from ..reference._linalg import independent_columns
 
     if stats.total[-1, -1] == 0:
@@ -731,10 +730,6 @@ def _check_stats(stats, terms, outcome, maxabs):
         raise PanelDataError(
             f"covariates are exactly collinear: {', '.join(map(repr, bad))} can be written as a "
             "combination of the other terms; drop or recode them")
-    w = eigh(R, eigvals_only=True)
-    cond = float(np.sqrt(w[-1] / max(w[0], np.finfo(float).tiny)))
-    if cond > 1e6:
-        warnings.warn(
-            f"the design is nearly collinear (condition number {cond:.3g} after scaling the "
-            "columns); estimates of the affected terms will be unstable",
-            DataHandlingWarning, stacklevel=5)
+    # the same measure and threshold as the in-memory design (design.collinearity_warning)
+    collinearity_warning(stats.total[:k, :k] if "Intercept" in terms else G, terms,
+                         cross_products=True, stacklevel=5)
