@@ -64,10 +64,18 @@ def _rows_of(name, obj):
 
 def _evaluate(name, obj, level, reference_folds, loo_kwargs, seed):
     """``(LOOResult or None, kind, note)``."""
+    if loo_kwargs.get("subsample") is not None:
+        raise SpecificationError(
+            "loo_kwargs: compare needs every pointwise value for the paired differences; "
+            "sub-sampled LOO cannot be compared here (use reference_folds and K-fold instead)")
     if isinstance(obj, LOOResult):
         if obj.level != level:
             raise SpecificationError(
                 f"model {name!r}: the LOO result is at the {obj.level} level, not {level!r}")
+        if not np.all(np.isfinite(obj.elpd_i)):
+            raise SpecificationError(
+                f"model {name!r}: the LOO result lacks pointwise values (sub-sampled?); "
+                "compare needs every point for the paired differences")
         return obj, "bayes" if obj.method.startswith(("PSIS", "grouped")) else "reference", ""
     if _is_posterior(obj):
         try:
