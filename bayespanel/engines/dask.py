@@ -36,6 +36,7 @@ References
 from __future__ import annotations
 
 import atexit
+import importlib
 import re
 import warnings
 
@@ -72,7 +73,10 @@ def local_client(n_workers: int = 2, processes: bool = True):
 
         cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1,
                                processes=processes, dashboard_address=":0")
-        _LOCAL[key] = Client(cluster)
+        client = Client(cluster)
+        if processes:  # import the package in each worker now, not in the first pass
+            client.run(importlib.import_module, "bayespanel.engines._blocks")
+        _LOCAL[key] = client
     return _LOCAL[key]
 
 
@@ -628,7 +632,9 @@ class DaskDesign:
     def matrices(self, kind):
         raise EstimationError(
             "the Dask path keeps no rows in memory, so it has no design matrices; use "
-            "design.suffstats(kind) (reference fits and Gaussian models need nothing else)")
+            "design.suffstats(kind) for the statistics, design.fit_reference(...) or "
+            "bp.reference.<estimator>(dask_panel, formula) for reference fits, and "
+            "design.build(bp.models.RandomIntercept) for a Bayesian model")
 
     # ------------------------------------------------------------------ statistics
     def _transform(self, kind):
