@@ -1,7 +1,9 @@
 """Command line: ``python -m bayespanel VERB ...`` (also installed as ``bayespanel``).
 
 Verbs: ``demo``, ``describe FILE``, ``fit [FILE]`` and ``report DIR``. Exit codes: 0
-success, 2 bad input (the message names the problem), 1 failure. See docs/cli.md.
+success, 2 bad input (the message names the problem), 1 failure (or interrupted), 3
+sampling problems under ``--strict`` (outputs are written). See docs/cli.md and
+docs/guarantees.md.
 """
 
 from __future__ import annotations
@@ -15,7 +17,9 @@ import pandas as pd
 
 from .errors import BayespanelError, SpecificationError
 
-EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT = 0, 1, 2
+EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT, EXIT_SAMPLING = 0, 1, 2, 3
+_STRICT_HELP = ("exit with code 3 when sampling had problems (divergences, high R-hat, low "
+                "ESS, low BFMI, high Pareto k); the outputs are written either way")
 
 _MODELS_HELP = ("comma-separated Bayesian models: pooled, random_intercept, within_between, "
                 "correlated_effects, fixed_effects, or 'none' (default: all five)")
@@ -92,7 +96,7 @@ def _settings_from_args(args):
         "sampler": args.sampler, "cov": args.cov, "re_method": args.method,
         "level": args.level, "rope": args.rope, "interval": args.interval,
         "occasion_effects": True if args.occasion_effects else None, "title": args.title,
-        "ppc_draws": args.ppc_draws,
+        "ppc_draws": args.ppc_draws, "reference_folds": args.reference_folds,
     }
     if args.config:
         s = load_settings(args.config, **over)
@@ -117,6 +121,31 @@ def cmd_fit(args) -> int:
     results = run(settings, out=out, quiet=args.quiet, progress_bars=args.progress_bars)
     _print_summary(results)
     print(f"report: {(out / 'report.html').resolve()}")
+    return _strict_exit(results, args.strict)
+
+
+def sampling_problems(results) -> list[str]:
+    """Every sampling problem recorded in a results dict, one line each."""
+    out = []
+    for m in results["models"]:
+        out += [f"{m['name']}: {w}" for w in m["diagnostics"]["warnings"]]
+        loo = m.get("loo") or {}
+        if loo.get("n_high_k"):
+            out.append(f"{m['name']}: {loo['n_high_k']} Pareto k value(s) above the threshold "
+                       f"in LOO at the {loo.get('level')} level; the ELPD estimate is unreliable")
+    return out
+
+
+def _strict_exit(results, strict) -> int:
+    problems = sampling_problems(results)
+    if problems:
+        print(f"\nsampling problems ({len(problems)}): the estimates above may be unreliable")
+        for line in problems:
+            print(f"  {line}")
+    if problems and strict:
+        print(f"bayespanel: --strict: {len(problems)} sampling problem(s); exit code "
+              f"{EXIT_SAMPLING}", file=sys.stderr)
+        return EXIT_SAMPLING
     return EXIT_OK
 
 
@@ -190,7 +219,7 @@ def cmd_demo(args) -> int:
     _print_summary(results)
     print(f"\nreport: {(out / 'report.html').resolve()}")
     print(f"rerun exactly: bayespanel fit --config {out / 'analysis.toml'} --out NEW_FOLDER")
-    return EXIT_OK
+    return _strict_exit(results, args.strict)
 
 
 # ---------------------------------------------------------------------- parser
@@ -254,7 +283,8 @@ def build_parser() -> argparse.ArgumentParser:
         prog="bayespanel",
         description="Bayesian and reference fits of panel-data models (pooled, fixed effects, "
                     "random intercept, within-between, Mundlak) with LOO comparison. "
-                    "Exit codes: 0 success, 2 bad input, 1 failure.",
+                    "Exit codes: 0 success, 2 bad input, 1 failure or interrupted, 3 "
+                    "sampling problems under --strict.",
     )
     parser.add_argument("--debug", action="store_true",
                         help="show the full traceback when a run fails")
@@ -275,6 +305,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--level", default="occasion", choices=["occasion", "unit"],
                    help="LOO level of the comparison (default occasion)")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
+    p.add_argument("--strict", action="store_true", help=_STRICT_HELP)
     p.set_defaults(func=cmd_demo)
 
     p = sub.add_parser("describe", help="check a table and decompose each variable within/between",
@@ -328,6 +359,9 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--level", choices=["occasion", "unit"], default=None,
                    help="LOO level: occasion = new occasions of known units, unit = new "
                         "units (default occasion)")
+    g.add_argument("--reference-folds", type=int, default=None, metavar="K",
+                   help="reference fits in the LOO table: 0 = exact leave-one-out refits, "
+                        "K >= 2 = grouped K-fold (default: exact up to 1000 points, else 10)")
     g.add_argument("--rope", type=float, default=None,
                    help="half-width of the region of practical equivalence for the "
                         "between-minus-within contrasts (outcome units per covariate unit)")
@@ -335,6 +369,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="probability of every reported interval (default 0.95)")
     g.add_argument("--title", help="title of the report")
     g.add_argument("--quiet", action="store_true", help="no progress lines")
+    g.add_argument("--strict", action="store_true", help=_STRICT_HELP)
     p.set_defaults(func=cmd_fit)
 
     _add_design_check_verb(sub)

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import platform
 import re
 import sys
@@ -32,6 +33,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import BayespanelError, SpecificationError, choices_error
+from .models.sampling import MIN_DRAWS
 from .report.text import BAYES_MODELS, COUNTERPART, REFERENCE_FITS
 
 __all__ = ["Settings", "run", "load_settings", "MODEL_NAMES", "REFERENCE_NAMES", "LEVELS",
@@ -49,6 +51,7 @@ COVS = ("classical", "cluster", "cr2")
 RE_METHODS = ("swamy-arora", "ml", "reml")
 _PACKAGES = ("bayespanel", "numpy", "scipy", "pandas", "xarray", "pymc", "pytensor", "arviz",
              "arviz-base", "arviz-stats", "formulaic", "matplotlib", "h5netcdf", "nutpie")
+AUTO_EXACT = 1000
 _KIND_OF = {"pooled": "pooled", "random_intercept": "random", "within_between": "within_between",
             "correlated_effects": "mundlak", "fixed_effects": "within"}
 
@@ -85,6 +88,10 @@ class Settings:
         One indicator per occasion in every model.
     ppc_draws : int
         Posterior draws used for the predictive checks.
+    reference_folds : int, optional
+        How reference fits enter the LOO table: ``None`` exact leave-one-out refits when
+        there are at most ``AUTO_EXACT`` points at the chosen level, grouped 10-fold
+        beyond; ``0`` always exact; ``K >= 2`` grouped K-fold.
     title : str, optional
     """
 
@@ -107,6 +114,7 @@ class Settings:
     interval: float = 0.95
     occasion_effects: bool = False
     ppc_draws: int = 200
+    reference_folds: int | None = None
     title: str | None = None
     data_sha256: str | None = None
 
@@ -135,7 +143,7 @@ class Settings:
             raise SpecificationError(f"models={list(self.models)!r} names a model twice")
         if not self.models and not self.reference:
             raise SpecificationError("nothing to fit: models and reference are both empty")
-        for name, lo in (("draws", 1), ("tune", 0), ("chains", 1), ("ppc_draws", 1)):
+        for name, lo in (("draws", MIN_DRAWS), ("tune", 0), ("chains", 1), ("ppc_draws", 1)):
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, int) or v < lo:
                 raise SpecificationError(f"{name}={v!r} must be an integer >= {lo}")
@@ -151,6 +159,11 @@ class Settings:
             raise choices_error("level", self.level, LEVELS)
         if not isinstance(self.interval, (int, float)) or not 0 < self.interval < 1:
             raise SpecificationError(f"interval={self.interval!r} must be a number in (0, 1)")
+        if self.reference_folds is not None and (
+                isinstance(self.reference_folds, bool) or not isinstance(self.reference_folds, int)
+                or self.reference_folds == 1 or self.reference_folds < 0):
+            raise SpecificationError(f"reference_folds={self.reference_folds!r} must be 0 "
+                                     "(exact leave-one-out) or an integer K >= 2")
         if self.rope is not None and (isinstance(self.rope, bool) or not isinstance(
                 self.rope, (int, float)) or self.rope <= 0):
             raise SpecificationError(f"rope={self.rope!r} must be a positive number")
@@ -192,6 +205,8 @@ class Settings:
         lines += ["", "[reference]", f"fits = {_toml_value(list(self.reference))}",
                   f"cov = {_toml_value(self.cov)}", f"method = {_toml_value(self.re_method)}",
                   "", "[comparison]", f"level = {_toml_value(self.level)}"]
+        if self.reference_folds is not None:
+            lines.append(f"reference_folds = {_toml_value(self.reference_folds)}")
         if self.rope is not None:
             lines.append(f"rope = {_toml_value(self.rope)}")
         lines += ["", "[report]", f"interval = {_toml_value(self.interval)}"]
@@ -204,7 +219,7 @@ _TOML_LAYOUT = {  # section -> {key in file: Settings field}
     "model": {"formula": "formula", "models": "models", "occasion_effects": "occasion_effects"},
     "sampling": {k: k for k in ("draws", "tune", "chains", "seed", "sampler", "ppc_draws")},
     "reference": {"fits": "reference", "cov": "cov", "method": "re_method"},
-    "comparison": {"level": "level", "rope": "rope"},
+    "comparison": {"level": "level", "rope": "rope", "reference_folds": "reference_folds"},
     "report": {"interval": "interval", "title": "title"},
 }
 
@@ -380,7 +395,7 @@ def _reference_stage(settings, design, say):
         tab = res.table(prob)
         entry = {
             "name": name, "title": REFERENCE_FITS[name][0],
-            "assumptions": " ".join(res.assumptions) or REFERENCE_FITS[name][1],
+            "assumptions": _assumptions(res, settings.cov) or REFERENCE_FITS[name][1],
             "estimator": name, "method": res.method, "cov": res.cov_type,
             "coefficients": [{"term": t, "estimate": float(r["estimate"]), "se": float(r["se"]),
                               "df": float(r["df"]) if np.isfinite(r["df"]) else None,
@@ -440,6 +455,20 @@ def _check_prior_keys(settings, label_sets):
                 + ", ".join(map(repr, sorted(known))))
 
 
+def _prior_text(p) -> str:
+    kw = getattr(p, "kwargs", None)
+    if kw is None:
+        return str(p)
+    return f"{p.family}(" + ", ".join(f"{k}={v:.4g}" for k, v in kw.items()) + ")"
+
+
+def _assumptions(res, cov) -> str:
+    """The reference fit's assumptions, without the sentence on a covariance not used."""
+    keep = [a for a in res.assumptions
+            if not (cov != "classical" and a.startswith("Classical errors"))]
+    return " ".join(keep)
+
+
 def _thin_for(n_total, target):
     return max(1, int(np.ceil(n_total / max(target, 1))))
 
@@ -482,7 +511,8 @@ def _partition(post, design, kind, coef_d, sigma_d, tau_d, ref):
 def _contrasts(post, design, kind, coef_d, settings, ref):
     """Between-minus-within contrasts of one posterior (bayespanel.contrasts, issue 6)."""
     if hasattr(post, "contrasts"):
-        return post.contrasts(rope=settings.rope, prob=settings.interval, reference=ref)
+        return post.contrasts(rope=settings.rope, prob=settings.interval, reference=ref,
+                              tests=False)
     from . import contrasts as ctr
 
     return ctr.within_between_contrasts(kind, post.labels, coef_d, design.time_varying,
@@ -563,7 +593,7 @@ def _bayes_one(name, settings, panel, labels, ref_fits, out_dir, say, progress_b
     if out_dir is not None:
         rel = f"posteriors/{name}.nc"
         (Path(out_dir) / "posteriors").mkdir(parents=True, exist_ok=True)
-        post.save(Path(out_dir) / rel)
+        post.save(_staged(Path(out_dir) / rel))  # moved into place when the run completes
     entry = {
         "name": name, "builder": BUILDER_OF[name], "title": BAYES_MODELS[name][0],
         "assumptions": BAYES_MODELS[name][1], "reference_counterpart": COUNTERPART[name],
@@ -572,7 +602,7 @@ def _bayes_one(name, settings, panel, labels, ref_fits, out_dir, say, progress_b
                              "chains": settings.chains, "seed": settings.seed,
                              "sampler": str(post.sampling.get("sampler", settings.sampler)),
                              "seconds": seconds}),
-        "priors": {k: str(v) for k, v in m.priors.items()},
+        "priors": {k: _prior_text(v) for k, v in m.priors.items()},
         "coefficients": coefs,
         "scale": [_floats({"name": q, "mean": summ.at[q, "mean"], "sd": summ.at[q, "sd"],
                            "lower": summ.at[q, lo], "upper": summ.at[q, hi],
@@ -593,28 +623,58 @@ def _bayes_one(name, settings, panel, labels, ref_fits, out_dir, say, progress_b
     return post, entry
 
 
-def _comparison_stage(settings, posts, ref_fits, entries, say):
-    """LOO at the chosen level for every Bayesian model and reference fit."""
+def _reference_folds(settings, design):
+    """Exact LOO for the reference fits up to AUTO_EXACT points, grouped K-fold beyond."""
+    if settings.reference_folds is not None:
+        return settings.reference_folds or None
+    points = design.n if settings.level == "occasion" else design.n_units
+    return None if points <= AUTO_EXACT else 10
+
+
+def _loo_entry(post, level):
+    """PSIS-LOO of one posterior, or None when the level is undefined for the model."""
     try:
-        from .compare import compare
-    except ModuleNotFoundError as exc:  # the comparison stage lands with issue 6
-        if exc.name != "bayespanel.compare":
-            raise
-        say("LOO comparison skipped: bayespanel.compare is not installed")
-        return None
-    fits = {}
-    titles = {}
+        lr = post.loo(level)
+    except BayespanelError as exc:
+        return None, {"level": level, "elpd": None, "se": None, "p_loo": None,
+                      "n_high_k": None, "max_k": None, "warning": str(exc)}
+    pw = lr.pointwise
+    entry = {"level": level, "elpd": lr.elpd, "se": lr.se, "p_loo": lr.p_loo,
+             "n_high_k": None, "max_k": None, "warning": "; ".join(lr.notes) or None}
+    if "pareto_k" in pw:
+        k = pw["pareto_k"].to_numpy(dtype=float)
+        good = lr.good_k if lr.good_k is not None else 0.7
+        high = pw.loc[k > good]
+        entry["max_k"] = float(np.nanmax(k)) if np.isfinite(k).any() else None
+        entry["n_high_k"] = int(len(high))
+        if len(high) and not entry["warning"]:
+            who = ", ".join(map(str, high["unit"].astype(str).unique()[:10]))
+            entry["warning"] = (f"{len(high)} point(s) with Pareto k above {good:.2f} "
+                                f"(units {who}); their LOO values are unreliable")
+    return lr, _floats(entry)
+
+
+def _comparison_stage(settings, design, posts, ref_fits, entries, say):
+    """LOO at the chosen level for every Bayesian model and reference fit."""
+    from .compare import compare
+
+    fits, titles = {}, {}
+    by_name = {e["name"]: e for e in entries}
     for name, post in posts.items():
-        fits[name] = post
+        lr, by_name[name]["loo"] = _loo_entry(post, settings.level)
+        fits[name] = lr if lr is not None else post
         titles[name] = BAYES_MODELS[name][0]
     for name, res in ref_fits.items():
         if name == "between":
-            continue  # one row per unit: no occasion-level predictive density
+            continue  # one row per unit: it has no predictive density for rows
         fits[f"ref:{name}"] = res
         titles[f"ref:{name}"] = REFERENCE_FITS[name][0] + " (ref.)"
+    folds = _reference_folds(settings, design)
+    say(f"LOO at the {settings.level} level; reference fits by "
+        + ("exact leave-one-out refits" if folds is None else f"grouped {folds}-fold CV"))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        table = compare(fits, level=settings.level)
+        table = compare(fits, level=settings.level, reference_folds=folds, seed=settings.seed)
     rows = []
     for key, r in table.iterrows():
         rec = _floats({str(k): v for k, v in r.items()})
@@ -622,17 +682,8 @@ def _comparison_stage(settings, posts, ref_fits, entries, say):
         rec["title"] = titles.get(str(key), str(key))
         rec["kind"] = "reference" if str(key).startswith("ref:") else "bayesian"
         rows.append(rec)
-    by_name = {e["name"]: e for e in entries}
-    for name, post in posts.items():
-        row = next((r for r in rows if r["model"] == name), None)
-        if row is None or name not in by_name:
-            continue
-        by_name[name]["loo"] = _floats({
-            "level": settings.level, "elpd": row.get("elpd"), "se": row.get("se"),
-            "p_loo": row.get("p_loo"), "n_high_k": row.get("n_high_pareto_k"),
-            "max_k": row.get("max_pareto_k"), "warning": row.get("note") or None})
-    say(f"LOO comparison at the {settings.level} level: {len(rows)} fits")
-    return {"level": settings.level, "rows": rows}
+    say(f"LOO comparison done: {len(rows)} fits")
+    return {"level": settings.level, "reference_folds": folds, "rows": rows}
 
 
 def _truth_by_model(truth, entries, ref_entries):
@@ -683,7 +734,7 @@ def run(settings: Settings, df=None, out=None, truth=None, progress=None, quiet=
         The contents of ``results.json`` (see docs/results-schema.md).
     """
     from .report import write_report
-    from .report.results_json import SCHEMA_NAME, SCHEMA_VERSION, validate, write_atomic, write_json
+    from .report.results_json import write_atomic, write_json
 
     settings = settings.check()
     say = progress or _Progress(quiet=quiet)
@@ -694,7 +745,38 @@ def run(settings: Settings, df=None, out=None, truth=None, progress=None, quiet=
     out_dir = Path(out) if out is not None else None
     if out_dir is not None:
         out_dir.mkdir(parents=True, exist_ok=True)
+    try:
+        results = _fit_stages(settings, panel, design, data, notes, out_dir, truth, say,
+                              progress_bars)
+    except BaseException:
+        # an interrupted or failed run leaves the folder's earlier outputs as they were
+        if out_dir is not None:
+            for name in settings.models:
+                _staged(out_dir / f"posteriors/{name}.nc").unlink(missing_ok=True)
+        raise
+    if out_dir is not None:
+        # every file is written atomically (temporary file, then rename); results.json,
+        # last, marks a complete run
+        for m in results["models"]:
+            if m["posterior_file"]:
+                target = out_dir / m["posterior_file"]
+                os.replace(_staged(target), target)
         write_atomic(out_dir / "analysis.toml", settings.to_toml())
+        write_report(results, out_dir)
+        write_json(out_dir / "results.json", results)
+        say(f"wrote {out_dir / 'report.html'}")
+    return results
+
+
+def _staged(path: Path) -> Path:
+    """Where an output is written before the run completes (hidden, beside the target)."""
+    return path.with_name(f".{path.name}.partial")
+
+
+def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progress_bars):
+    """Reference fits, tests, Bayesian fits and the comparison -> the results dict."""
+    from .report.results_json import SCHEMA_NAME, SCHEMA_VERSION, validate
+
     ref_fits, ref_entries = _reference_stage(settings, design, say)
     tests = _tests_stage(design, say)
     labels = {}
@@ -704,13 +786,16 @@ def run(settings: Settings, df=None, out=None, truth=None, progress=None, quiet=
         except BayespanelError:
             labels[name] = []
     _check_prior_keys(settings, labels)
+    if "fixed_effects" in settings.models and design.time_constant:
+        notes = notes + [f"fixed_effects leaves out {', '.join(map(repr, design.time_constant))}"
+                         ": constant within units, absorbed by the unit intercepts"]
     posts, entries = {}, []
     for name in settings.models:
         post, entry = _bayes_one(name, settings, panel, labels[name], ref_fits, out_dir, say,
                                  progress_bars)
         posts[name] = post
         entries.append(entry)
-    comparison = _comparison_stage(settings, posts, ref_fits, entries, say)
+    comparison = _comparison_stage(settings, design, posts, ref_fits, entries, say)
     results = {
         "schema": SCHEMA_NAME, "schema_version": SCHEMA_VERSION,
         "created": datetime.now(timezone.utc).replace(microsecond=0).isoformat(),
@@ -722,8 +807,4 @@ def run(settings: Settings, df=None, out=None, truth=None, progress=None, quiet=
         "truth": _truth_by_model(truth, entries, ref_entries) if truth else None,
     }
     validate(results)
-    if out_dir is not None:
-        write_json(out_dir / "results.json", results)
-        write_report(results, out_dir)
-        say(f"wrote {out_dir / 'report.html'}")
     return results

@@ -169,7 +169,7 @@ def loo_figure(results: dict):
             kind = r.get("kind", "bayesian")
             col = _colour(kind, nb if kind == "bayesian" else nr)
             nb, nr = (nb + 1, nr) if kind == "bayesian" else (nb, nr + 1)
-            d = -float(r["elpd_diff"])
+            d = float(r["elpd_diff"])
             se = float(r.get("se_diff") or 0.0)
             ax.plot([d - 2 * se, d + 2 * se], [y, y], color=col, lw=2.2, solid_capstyle="round")
             ax.plot(d, y, "o" if kind == "bayesian" else "s", color=col, ms=6, mec="white")
@@ -178,7 +178,8 @@ def loo_figure(results: dict):
         ax.set_yticklabels([r["title"] for r in reversed(rows)])
         ax.set_ylim(-0.7, len(rows) - 0.3)
         ax.grid(axis="y", visible=False)
-        ax.set_xlabel(f"ELPD difference to the best ({comp.get('level')} level; 0 = best)")
+        ax.set_xlabel(f"ELPD difference to the best ({comp.get('level')} level; 0 = best, "
+                      "left = worse)")
         fig.tight_layout()
         return _uri(fig)
 

@@ -70,6 +70,8 @@ def fmt(x, digits: int = 3) -> str:
         return str(x)
     if not math.isfinite(v):
         return "–"
+    if abs(v) < 1e-9:  # rounding noise of an exact identity (e.g. Mundlak = within-between)
+        v = 0.0
     if v != 0 and (abs(v) >= 1e5 or abs(v) < 10 ** -digits):
         return f"{v:.{digits}g}"
     return f"{v:.{digits}f}"
@@ -294,19 +296,24 @@ def _partition(r) -> Safe:
 def _contrasts(r) -> Safe:
     prob = r["settings"]["interval"]
     out = [tag("p", "The contextual effect, between minus within, for each time-varying "
-               "covariate. Zero means the random-intercept assumption holds for it.",
+               "covariate, with the probability of each sign and of a practically null "
+               "difference (inside the ROPE, when one is set). The random-intercept model "
+               "assumes it is zero; the reference tests below ask the same question.",
                cls="bp-lead")]
     rows = []
     for m in r["models"]:
         for c in m.get("contrasts") or []:
             rope = c.get("rope")
+            refc = ("–" if c.get("reference_estimate") is None else
+                    f"{fmt(c['reference_estimate'])} {_interval(c.get('reference_lower'), c.get('reference_upper'))}")
             rows.append([f"{c['covariate']} · {m['title']}", c["mean"], c["sd"],
                          Safe(esc(_interval(c["lower"], c["upper"]))), c["p_positive"],
                          c["p_negative"], c.get("p_rope"),
-                         Safe(esc(fmt(rope) if rope is not None else "–"))])
+                         Safe(esc(fmt(rope) if rope is not None else "–")), Safe(esc(refc))])
     if rows:
         out.append(table(["covariate · model", "mean", "SD", f"{_pct(prob)} interval",
-                          "P(> 0)", "P(< 0)", "P(in ROPE)", "ROPE half-width"], rows))
+                          "P(> 0)", "P(< 0)", "P(in ROPE)", "ROPE half-width",
+                          "reference fit"], rows))
     tests = r.get("tests") or []
     if tests:
         trs = [[t["title"], t.get("statistic"), t.get("df"),
@@ -327,11 +334,19 @@ def _comparison(r) -> Safe:
     out = [note("info", f"Level: {LEVEL_TEXT.get(level, level)}.", "What is compared."),
            tag("p", "ELPD is the expected log predictive density (higher is better); "
                "differences are to the best model with the SE of the paired difference. "
-               "Reference fits enter through exact cross-validation with plug-in densities.",
+               "Bayesian models use PSIS-LOO; reference fits enter through "
+               + ("exact leave-one-out refits" if comp.get("reference_folds") is None else
+                  f"grouped {comp['reference_folds']}-fold cross-validation")
+               + " with plug-in predictive densities, scored on the same points.",
                cls="bp-lead")]
-    rows = [[row["title"], Safe(esc(row.get("method") or "")), row.get("elpd"), row.get("se"),
-             row.get("elpd_diff"), row.get("se_diff"), row.get("p_loo"), row.get("weight"),
-             row.get("n_high_pareto_k"), Safe(esc(row.get("note") or ""))]
+    def _note(text):
+        text = text or ""
+        return "" if text.startswith("exact CV with closed-form refits") else text
+
+    rows = [[row["title"], tag("span", row.get("method") or "", cls="bp-nowrap"), row.get("elpd"),
+             row.get("se"), row.get("elpd_diff"), row.get("se_diff"), row.get("p_loo"),
+             row.get("weight"), row.get("n_high_pareto_k"),
+             tag("small", _note(row.get("note")))]
             for row in comp["rows"]]
     out.append(table(["model", "method", "ELPD", "SE", "difference", "SE of difference",
                       "p_loo", "weight", "high Pareto k", "note"], rows))
@@ -352,8 +367,9 @@ def _diagnostics(r) -> Safe:
     for m in r["models"]:
         d = m["diagnostics"]
         loo = m.get("loo") or {}
-        rows.append([m["title"], d.get("divergences"), d.get("max_rhat"), d.get("min_ess_bulk"),
-                     d.get("min_ess_tail"), d.get("min_bfmi"), loo.get("max_k"),
+        ess = [Safe(esc(fmt(None if v is None else int(round(v)))))
+               for v in (d.get("min_ess_bulk"), d.get("min_ess_tail"))]
+        rows.append([m["title"], d.get("divergences"), d.get("max_rhat"), *ess, d.get("min_bfmi"), loo.get("max_k"),
                      loo.get("n_high_k"), _status(not d.get("warnings") and not loo.get("n_high_k"))])
     out = [tag("p", "Thresholds (common practice): R-hat at most 1.01, bulk and tail ESS at "
                "least 100 per chain, no divergent transitions, energy BFMI at least 0.3, "

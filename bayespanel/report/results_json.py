@@ -76,12 +76,23 @@ def write_atomic(path, data: bytes | str) -> Path:
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
+        os.chmod(tmp, _file_mode(path))  # mkstemp makes 0600; keep the usual permissions
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
             os.unlink(tmp)
         raise
     return path
+
+
+def _file_mode(path: Path) -> int:
+    """The replaced file's permissions, or those a new file gets under the umask."""
+    try:
+        return path.stat().st_mode & 0o777
+    except FileNotFoundError:
+        umask = os.umask(0)
+        os.umask(umask)
+        return 0o666 & ~umask
 
 
 def write_json(path, results: dict) -> Path:
