@@ -304,11 +304,12 @@ def _merge_unit_cp(a: DesignPiece, b: DesignPiece, merged: suffstats.Partial):
     counts = np.concatenate([pa.counts, pb.counts])
     offsets = np.concatenate([pa.offsets, pb.offsets + (pb.ref - pa.ref)])
     inv = np.searchsorted(merged.keys, np.concatenate([pa.keys, pb.keys]))
-    out = np.zeros((len(merged.keys),) + cps.shape[1:])
-    np.add.at(out, inv, cps)
     dev = offsets - (merged.offsets + (merged.ref - pa.ref))[inv]
-    np.add.at(out, inv, counts[:, None, None] * dev[:, :, None] * dev[:, None, :])
-    return out
+    cps += counts[:, None, None] * dev[:, :, None] * dev[:, None, :]
+    order = np.argsort(inv, kind="stable")   # every merged unit has >= 1 fragment
+    inv = inv[order]
+    starts = np.flatnonzero(np.concatenate([[True], inv[1:] != inv[:-1]]))
+    return np.add.reduceat(cps[order], starts, axis=0)
 
 
 def merge_design(pieces) -> DesignPiece:
