@@ -152,6 +152,10 @@ def _exact_points(fd, level, points, sample_kwargs):
 
 
 # ---------------------------------------------------------------------------- public
+#: largest draws x points matrix (bytes) :func:`loo` builds before asking for sub-sampling
+MAX_POINTWISE_BYTES = 2 ** 31
+
+
 def loo(post, level="occasion", *, refit_high_k=False, max_refits=10, refit_kwargs=None,
         reff=None, subsample=None, seed=0):
     """Leave-one-out ELPD at the unit or occasion level (PSIS-LOO).
@@ -198,6 +202,13 @@ def loo(post, level="occasion", *, refit_high_k=False, max_refits=10, refit_kwar
     reason = undefined_reason(fd.unit_effects, level, fd.T)
     if reason:
         raise EstimationError(reason)
+    points = fd.n_units if level == "unit" else fd.n
+    size = 8 * fd.n_chains * fd.n_draws * points
+    if size > MAX_POINTWISE_BYTES:
+        raise SpecificationError(
+            f"the pointwise matrix would take {size / 2 ** 30:.1f} GiB ({fd.n_chains * fd.n_draws} "
+            f"draws x {points} points); use subsample= (e.g. subsample=1000) for the "
+            "sub-sampling estimator of Magnusson et al. (2019)")
     ll = pointwise_loglik(fd, level)
     labels = fd.point_index(level)
     notes = []
