@@ -241,3 +241,36 @@ def test_reference_cv_equals_reference_module_holdout(design, estimator):
         th = [bp.reference.exact_holdout(ref, design.unit_codes == i, level="unit").iloc[0]
               for i in range(design.n_units)]
         np.testing.assert_allclose(cvu.elpd_i, th, rtol=1e-10)
+
+
+def test_folds_spread_units_and_reference_kfold_equals_statsmodels_loop(design):
+    import statsmodels.api as sm
+
+    from bayespanel.loo.psis import _folds
+
+    fd = _fd(design, np.zeros((1, 3)), np.ones(1), np.ones(1))
+    fold = _folds(fd, "occasion", 6, seed=2)
+    for i in range(design.n_units):   # each firm's 20 years spread over the 6 folds
+        counts = np.bincount(fold[design.unit_codes == i], minlength=6)
+        assert counts.max() - counts.min() <= 1
+    unit_fold = _folds(fd, "unit", 5, seed=2)
+    assert all(len(set(unit_fold[design.unit_codes == i])) == 1 for i in range(design.n_units))
+    ref = bp.reference.pooled(design)
+    cv = reference_cv(ref, "occasion", folds=6, seed=2)
+    assert cv.method == "exact K-fold CV (K=6)"
+    total = 0.0
+    for k in range(6):   # hand-written grouped K-fold with statsmodels OLS
+        te = fold == k
+        fit = sm.OLS(design.y[~te], design.X[~te]).fit()
+        total += stats.norm(design.X[te] @ fit.params, np.sqrt(fit.scale)).logpdf(
+            design.y[te]).sum()
+    assert cv.elpd == pytest.approx(total, rel=1e-10)
+
+
+def test_loo_refuses_a_pointwise_matrix_too_large(design, fake_draws, monkeypatch):
+    import bayespanel.loo.psis as psis
+
+    b, sigma, tau = fake_draws
+    monkeypatch.setattr(psis, "MAX_POINTWISE_BYTES", 1000)
+    with pytest.raises(SpecificationError, match="subsample="):
+        bp.loo.loo(_fd(design, b, sigma, tau), "occasion")
