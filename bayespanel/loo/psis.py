@@ -88,7 +88,10 @@ def _summary(elpd_i, lpd_i=None):
 
 # ---------------------------------------------------------------------------- refits
 def refit_draws(fd, train, *, what="the held-out points", **sample_kwargs):
-    """Sample the same model on the training rows only; returns ``(coef, sigma, tau)`` flat.
+    """Sample the same model on the training rows only.
+
+    Returns ``(coef (S, k), sigma (S,), tau (S,) or None, messages)`` with chains stacked;
+    ``messages`` are the refit's sampling warnings (R-hat, ESS, divergences).
 
     The compiled graph is reused: the model's sufficient statistics are swapped with
     :meth:`~bayespanel.models.GaussianModel.set_suffstats` and restored afterwards, so a
@@ -97,7 +100,7 @@ def refit_draws(fd, train, *, what="the held-out points", **sample_kwargs):
     """
     model = model_of(fd)
     train = np.asarray(train, dtype=bool)
-    present, codes = np.unique(fd.codes[train], return_inverse=True)
+    _, codes = np.unique(fd.codes[train], return_inverse=True)
     stats = _ss.compute(fd.M[train], fd.y[train], codes.ravel().astype(np.int64),
                         names=list(fd.labels) + ["y"])
     old_stats, old_rows, old_units = model.stats, model.rows, model.units
