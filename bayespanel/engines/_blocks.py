@@ -156,7 +156,7 @@ def describe_block(pdf, unit, columns, time=None) -> DescribePiece:
         ok = ~np.isnan(x)
         _check_inf(x[ok], pdf.loc[ok], c, unit)
         n_missing.append(int((~ok).sum()))
-        parts.append(suffstats.partial(x[ok, None], keys[ok]))
+        parts.append(suffstats.partial_inplace(x[ok][:, None].copy(), keys[ok]))
         maxabs.append(float(np.abs(x[ok]).max()) if ok.any() else 0.0)
     return DescribePiece(np.asarray(n_missing, np.int64), parts, np.asarray(maxabs), st)
 
