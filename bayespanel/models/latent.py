@@ -509,6 +509,7 @@ class _StatsData:
 
     def __init__(self, pm, st):
         self.n = float(st.n)
+        self.q = st.q
         for k in ("ZZ", "ZX", "Zy", "XX", "Xy"):
             setattr(self, k, pm.Data(f"slope_{k}", getattr(st, k)))
         self.yy = pm.Data("slope_yy", np.asarray(st.yy))

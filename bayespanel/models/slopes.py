@@ -96,7 +96,7 @@ def _mT(A, xp):
     return xp.swapaxes(A, -1, -2)
 
 
-def woodbury_pieces(ZZ, Zr, s2, L, xp=np):
+def woodbury_pieces(ZZ, Zr, s2, L, xp=np, q=None):
     """``(logdet_i, quad_i)`` with ``logdet_i = 2 sum log diag C_i`` and
     ``quad_i = |C_i^-1 L' Z_i'r_i|^2``, where ``C_i C_i' = I + L' Z_i'Z_i L / s2``.
 
@@ -108,30 +108,42 @@ def woodbury_pieces(ZZ, Zr, s2, L, xp=np):
     s2 : array broadcastable to (..., N)
         ``sigma^2``.
     L : array (..., q, q)
-        Lower Cholesky factor of ``Sigma``.
+        Lower Cholesky factor of ``Sigma`` (entries above the diagonal are not read).
     xp : module
         ``numpy`` or ``pytensor.tensor``.
+    q : int, optional
+        Number of unit effects (needed when ``ZZ`` is a tensor of unknown static shape).
     """
-    q = ZZ.shape[-1] if xp is np else int(ZZ.type.shape[-1])
-    Lb = L[..., None, :, :]
-    M = xp.matmul(xp.matmul(_mT(Lb, xp), ZZ), Lb) / s2[..., None, None]
-    v = xp.matmul(Zr[..., None, :], Lb)[..., 0, :]  # (..., N, q): L' z_r per unit
+    q = int(q) if q is not None else int(np.shape(ZZ)[-1])
+    # entries of M = I + L' ZZ L / s2 and v = L' Zr, written elementwise on arrays of units
+    # (batched small matrix products are slow to differentiate in pytensor)
+    l_ = [[L[..., c, a][..., None] for a in range(q)] for c in range(q)]  # l_[c][a] = L_ca
+    zz = [[ZZ[..., c, d] for d in range(q)] for c in range(q)]
+    M = [[None] * q for _ in range(q)]
+    for a in range(q):
+        for b in range(a + 1):
+            acc = 0.0
+            for c in range(a, q):           # L is lower triangular: L_ca = 0 for c < a
+                for d in range(b, q):
+                    acc = acc + l_[c][a] * l_[d][b] * zz[c][d]
+            M[a][b] = acc / s2
+    v = [sum(l_[c][a] * Zr[..., c] for c in range(a, q)) for a in range(q)]
     C = [[None] * q for _ in range(q)]
     logdet, w = 0.0, [None] * q
     for j in range(q):
-        d = M[..., j, j] + 1.0
+        d = M[j][j] + 1.0
         for m in range(j):
             d = d - C[j][m] ** 2
         C[j][j] = xp.sqrt(d)
         logdet = logdet + xp.log(d)
         for i in range(j + 1, q):
-            e = M[..., i, j]
+            e = M[i][j]
             for m in range(j):
                 e = e - C[i][m] * C[j][m]
             C[i][j] = e / C[j][j]
     quad = 0.0
     for i in range(q):
-        e = v[..., i]
+        e = v[i]
         for m in range(i):
             e = e - C[i][m] * w[m]
         w[i] = e / C[i][i]
@@ -148,7 +160,7 @@ def slope_marginal_loglik(stats, b, sigma, L, xp=np):
     s2 = sigma ** 2
     Zr = stats.Zy - (stats.ZX * b).sum(axis=-1)
     rr = stats.yy - 2.0 * (b * stats.Xy).sum() + (b * xp.dot(stats.XX, b)).sum()
-    logdet, quad = woodbury_pieces(stats.ZZ, Zr, s2, L, xp=xp)
+    logdet, quad = woodbury_pieces(stats.ZZ, Zr, s2, L, xp=xp, q=stats.q)
     return -0.5 * (stats.n * (LOG_2PI + xp.log(s2)) + logdet.sum() + rr / s2
                    - quad.sum() / s2 ** 2)
 
@@ -186,13 +198,29 @@ def unit_loglik_slopes(X, Z, y, unit_codes, b, sigma, L):
     return out
 
 
-def _precision_parts(ZZ, Zr, s2, L):
-    """``P_i = L M_i^-1 L'`` and ``P_i Z_i'r_i`` for every draw and unit."""
-    q = ZZ.shape[-1]
+def _M_matrix(ZZ, s2, L):
+    """``M_i = I + L' Z_i'Z_i L / s2`` for every draw and unit, ``(S, N, q, q)``."""
     Lb = L[:, None]
-    M = np.eye(q) + _mT(Lb, np) @ ZZ[None] @ Lb / s2[..., None, None]
-    P = Lb @ np.linalg.solve(M, np.broadcast_to(_mT(Lb, np), M.shape))
-    return P, (P @ Zr[..., None])[..., 0]
+    return np.eye(ZZ.shape[-1]) + _mT(Lb, np) @ ZZ[None] @ Lb / s2[..., None, None]
+
+
+def _draw_blocks(X, Z, y, unit_codes, b, sigma, L, per_draw):
+    """Shared set-up of the row-based functions: yields ``(slice, r, Zr, s2, L_slice)``
+    per chunk of draws, and the unit structure."""
+    X, Z, y = np.asarray(X, float), np.asarray(Z, float), np.asarray(y, float)
+    codes = np.asarray(unit_codes)
+    b, sigma = np.atleast_2d(b), np.atleast_1d(sigma)
+    q = Z.shape[1]
+    L = np.asarray(L, float).reshape(-1, q, q)
+    T, starts = _starts(codes)
+    ZZ = np.add.reduceat(Z[:, :, None] * Z[:, None, :], starts, axis=0)
+
+    def blocks():
+        for sl in _chunks(b.shape[0], per_draw(len(y), len(T), q)):
+            r = y[None, :] - b[sl] @ X.T
+            Zr = np.add.reduceat(r[:, :, None] * Z[None, :, :], starts, axis=1)
+            yield sl, r, Zr, sigma[sl, None] ** 2, L[sl]
+    return Z, codes, ZZ, b.shape[0], len(T), blocks()
 
 
 def occasion_loglik_slopes(X, Z, y, unit_codes, b, sigma, L):
@@ -205,21 +233,15 @@ def occasion_loglik_slopes(X, Z, y, unit_codes, b, sigma, L):
     -------
     array (S, n)
     """
-    X, Z, y = np.asarray(X, float), np.asarray(Z, float), np.asarray(y, float)
-    codes = np.asarray(unit_codes)
-    b, sigma = np.atleast_2d(b), np.atleast_1d(sigma)
-    q = Z.shape[1]
-    L = np.asarray(L, float).reshape(-1, q, q)
-    T, starts = _starts(codes)
-    st = slope_stats(X, Z, y, codes)
-    out = np.empty((b.shape[0], len(y)))
-    for sl in _chunks(b.shape[0], len(y) * (q * q + 2)):
-        r = y[None, :] - b[sl] @ X.T
-        Zr = np.add.reduceat(r[:, :, None] * Z[None, :, :], starts, axis=1)
-        s2 = sigma[sl, None] ** 2
-        P, PZr = _precision_parts(st.ZZ, Zr, s2, L[sl])
-        Prow = P[:, codes]                                    # (S, n, q, q)
-        zPz = np.einsum("ni,snij,nj->sn", Z, Prow, Z)
+    Z, codes, ZZ, S, N, blocks = _draw_blocks(X, Z, y, unit_codes, b, sigma, L,
+                                              lambda n, N, q: n * (q * q + 2))
+    out = np.empty((S, len(codes)))
+    for sl, r, Zr, s2, Ls in blocks:
+        Lb = Ls[:, None]
+        M = _M_matrix(ZZ, s2, Ls)
+        P = Lb @ np.linalg.solve(M, np.broadcast_to(_mT(Lb, np), M.shape))  # L M^-1 L'
+        PZr = (P @ Zr[..., None])[..., 0]
+        zPz = np.einsum("ni,snij,nj->sn", Z, P[:, codes], Z)
         zPZr = np.einsum("ni,sni->sn", Z, PZr[:, codes])
         d = (1.0 - zPz / s2) / s2
         vr = (r - zPZr / s2) / s2
@@ -234,21 +256,13 @@ def unit_effect_draws_slopes(X, Z, y, unit_codes, b, sigma, L, rng):
     update written with ``M_i``). Returns an array ``(S, N, q)``; the conditional means
     are returned too, ``(S, N, q)``.
     """
-    X, Z, y = np.asarray(X, float), np.asarray(Z, float), np.asarray(y, float)
-    codes = np.asarray(unit_codes)
-    b, sigma = np.atleast_2d(b), np.atleast_1d(sigma)
+    Z, codes, ZZ, S, N, blocks = _draw_blocks(X, Z, y, unit_codes, b, sigma, L,
+                                              lambda n, N, q: n + N * q * q)
     q = Z.shape[1]
-    L = np.asarray(L, float).reshape(-1, q, q)
-    T, starts = _starts(codes)
-    ZZ = np.add.reduceat(Z[:, :, None] * Z[:, None, :], starts, axis=0)
-    S, N = b.shape[0], len(T)
     draws, means = np.empty((S, N, q)), np.empty((S, N, q))
-    for sl in _chunks(S, len(y) + N * q * q):
-        r = y[None, :] - b[sl] @ X.T
-        Zr = np.add.reduceat(r[:, :, None] * Z[None, :, :], starts, axis=1)
-        s2 = sigma[sl, None] ** 2
-        Lb = L[sl][:, None]
-        M = np.eye(q) + _mT(Lb, np) @ ZZ[None] @ Lb / s2[..., None, None]
+    for sl, _, Zr, s2, Ls in blocks:
+        Lb = Ls[:, None]
+        M = _M_matrix(ZZ, s2, Ls)
         C = np.linalg.cholesky(M)
         v = (_mT(Lb, np) @ Zr[..., None])[..., 0] / s2[..., None]
         h_mean = np.linalg.solve(M, v[..., None])[..., 0]
