@@ -38,6 +38,10 @@ class DesignSpec:
         return asdict(self)
 
 
+def _plain(v):
+    return v.item() if isinstance(v, np.generic) else v
+
+
 def group_means(M: np.ndarray, starts: np.ndarray, counts: np.ndarray) -> np.ndarray:
     """Means of the rows of ``M`` over contiguous groups starting at ``starts``."""
     M = np.asarray(M, dtype=float)
@@ -167,9 +171,10 @@ class Design:
         if kind == "within":
             return self.within()[:, tv], [self.terms[i] for i in tv]
         means = self.between_rows()
+        tb = self._with_between_part(tv)
         if kind == "mundlak":
-            M = np.column_stack([self.X, means[:, tv]])
-            return M, list(self.terms) + [_label_mean(self.terms[i]) for i in tv]
+            M = np.column_stack([self.X, means[:, tb]])
+            return M, list(self.terms) + [_label_mean(self.terms[i]) for i in tb]
         # within_between: intercept, within and between parts, time-constant columns
         cols, labels = [], []
         W = self.within()
@@ -178,12 +183,55 @@ class Design:
                 cols.append(self.X[:, i]); labels.append(t)
         for i in tv:
             cols.append(W[:, i]); labels.append(_label_within(self.terms[i]))
-        for i in tv:
+        for i in tb:
             cols.append(means[:, i]); labels.append(_label_between(self.terms[i]))
         for i, t in enumerate(self.terms):
             if t != "Intercept" and i not in tv:
                 cols.append(self.X[:, i]); labels.append(t)
         return np.column_stack(cols), labels
+
+    def _with_between_part(self, tv):
+        """Time-varying columns whose unit means enter the mundlak and within_between kinds.
+
+        With an intercept, a column whose unit means are all equal (an occasion indicator
+        in a balanced panel, a trend observed on the same occasions everywhere) has no
+        between part to estimate: its unit mean is a multiple of the intercept, so it
+        enters through its within part only. In unbalanced panels the unit means of the
+        occasion indicators vary and are kept, which makes the correlated random-effects
+        within estimates equal the two-way fixed-effects ones (Wooldridge 2019, Journal
+        of Econometrics 211, 137-150, doi:10.1016/j.jeconom.2018.12.010); those of them
+        that are linear combinations of the other unit-level columns (few distinct
+        patterns of missing occasions) are left out too, which leaves the within
+        estimates unchanged.
+        """
+        if not self.has_intercept:
+            return list(tv)
+        um = self.unit_means()
+        keep = []
+        for i in tv:
+            scale = max(float(np.abs(um[:, i]).max()), 1.0)
+            if np.ptp(um[:, i]) > _VARY_TOL * scale:
+                keep.append(i)
+        occ = [i for i in keep if self.terms[i].startswith("occasion[")]
+        if not occ:
+            return keep
+        base = [i for i in range(self.k) if i not in occ and (i not in tv or i in keep)]
+        cols = [um[:, i] for i in base]
+
+        def rank(columns):
+            A = np.column_stack(columns)
+            A = A - A.mean(axis=0) * (np.ptp(A, axis=0) > 0)
+            A = A / np.maximum(np.sqrt((A ** 2).mean(axis=0)), 1e-300)
+            return int(np.linalg.matrix_rank(A, tol=1e-8 * max(A.shape)))
+
+        r = rank(cols)
+        for i in occ:
+            if rank(cols + [um[:, i]]) > r:
+                cols.append(um[:, i])
+                r += 1
+            else:
+                keep.remove(i)
+        return keep
 
     def subset_units(self, keep) -> "Design":
         """A design on a subset of units (boolean mask or codes), e.g. for refits."""
@@ -229,8 +277,14 @@ class Design:
             in_c = re.search(r"C\(\s*`?" + re.escape(c) + r"`?\s*[,)]", screened.rhs)
             if c == screened.outcome or not in_c:
                 sample = s.dropna().astype(str).head(3).tolist()
+                text = s.dropna()
+                bad = text[pd.to_numeric(text, errors="coerce").isna()]
+                first = "" if bad.empty else (
+                    f"; {_plain(bad.iloc[0])!r} at {panel.unit}="
+                    f"{_plain(data.at[bad.index[0], panel.unit])!r}, {panel.time}="
+                    f"{_plain(data.at[bad.index[0], panel.time])!r} is not a number")
                 raise PanelDataError(
-                    f"column {c!r} is not numeric (dtype {s.dtype}, values like {sample}); "
+                    f"column {c!r} is not numeric (dtype {s.dtype}, values like {sample}{first}); "
                     + ("the outcome must be numeric" if c == screened.outcome else
                        f"convert it to numbers, or write C({c}) to use it as categories")
                 )
@@ -261,7 +315,7 @@ class Design:
         try:
             mm = Formula(screened.rhs).get_model_matrix(
                 sub.reset_index(drop=True), context=safe_context(), ensure_full_rank=True,
-                na_action="raise",
+                na_action="ignore",  # incomplete rows are gone; NaN from a transform is named below
             )
         except FormulaError:
             raise
@@ -299,11 +353,12 @@ def _check_columns(X, y, terms, outcome):
     from scipy.linalg import qr
 
     if np.ptp(y) == 0:
-        raise PanelDataError(f"the outcome {outcome!r} is constant ({y[0]!r}) on every row used")
+        raise PanelDataError(
+            f"the outcome {outcome!r} is constant ({float(y[0])!r}) on every row used")
     for j, t in enumerate(terms):
         if t != "Intercept" and np.ptp(X[:, j]) == 0:
             raise PanelDataError(
-                f"covariate {t!r} is constant ({X[0, j]!r}) on every row used; it cannot be "
+                f"covariate {t!r} is constant ({float(X[0, j])!r}) on every row used; it cannot be "
                 "told apart from the intercept"
             )
     _check_magnitudes(X, y, terms, outcome)
@@ -346,10 +401,11 @@ def _check_magnitudes(X, y, terms, outcome):
         size = float(np.abs(col).max()) if len(col) else 0.0
         if size > hi or 0 < size < lo:
             what = "the outcome" if col is y else "term"
+            fault = "overflow" if size > hi else "underflow"
             raise PanelDataError(
-                f"{what} {name!r} has values of magnitude {size:.3g}, outside "
-                f"{lo:g}..{hi:g}: its squares and cross-products {'overflow' if size > hi else 'underflow'} "
-                "in double precision; rescale the column (e.g. change its units)"
+                f"{what} {name!r} has values of magnitude {size:.3g}, outside {lo:g}..{hi:g}: "
+                f"its squares and cross-products {fault} in double precision; rescale the "
+                "column (e.g. change its units)"
             )
 
 

@@ -91,6 +91,14 @@ class Panel:
                     f"{role} column {col!r} has {int(miss.sum())} missing value(s); first at "
                     f"row {df.index[where]!r}. Every row needs a unit and an occasion."
                 )
+        for role, col in (("unit", unit), ("time", time)):
+            kind = pd.api.types.infer_dtype(df[col], skipna=True)
+            if kind.startswith("mixed") and kind != "mixed-integer-float":
+                types = sorted({type(v).__name__ for v in df[col]})
+                raise PanelDataError(
+                    f"{role} column {col!r} mixes value types ({', '.join(types)}), so equal-"
+                    "looking labels such as 3 and '3' would count as different; convert the "
+                    "column to one type")
         dup = df.duplicated(subset=[unit, time], keep=False).to_numpy()
         if dup.any():
             raise PanelDataError(

@@ -45,7 +45,7 @@ import numpy as np
 import pandas as pd
 
 from .. import suffstats as _ss
-from ..errors import EstimationError, SpecificationError, choices_error
+from ..errors import DataHandlingWarning, EstimationError, SpecificationError, choices_error
 from . import gaussian
 from .priors import Prior, resolve_priors, standardised_params
 
@@ -227,6 +227,11 @@ class GaussianModel:
                 f"units has {len(self.units)} labels but the statistics have {stats.n_units} units")
         self.intercept = (labels.index("Intercept")
                           if "Intercept" in labels and self.kind != "within" else None)
+        if self.unit_effects == "random" and np.all(np.asarray(stats.lengths) == 1):
+            raise EstimationError(
+                f"every unit has a single row, so in {type(self).__name__} the unit "
+                "intercepts and the residuals cannot be told apart (sigma_unit and sigma_obs "
+                "are not identified); use Pooled, or a panel with repeated occasions")
         self.stats = stats
         self.rows = rows
         self.scaling = self._scaling(stats)
@@ -565,6 +570,11 @@ class FixedEffects(GaussianModel):
 
     def _matrix(self, design):
         _, labels = design.matrices("within")
+        if design.time_constant:
+            warnings.warn(
+                f"FixedEffects leaves out {', '.join(map(repr, design.time_constant))}: "
+                "constant within units, absorbed by the unit intercepts (not estimable)",
+                DataHandlingWarning, stacklevel=3)
         cols = [design.terms.index(t) for t in labels]
         return design.X[:, cols], labels
 

@@ -32,11 +32,14 @@ import numpy as np
 
 from ..errors import SpecificationError, choices_error
 
-__all__ = ["SAMPLERS", "NUTPIE_ROWS", "choose_sampler", "run", "nutpie_available", "check_int"]
+__all__ = ["SAMPLERS", "NUTPIE_ROWS", "MIN_DRAWS", "choose_sampler", "run", "nutpie_available",
+           "check_int"]
 
 SAMPLERS = ("auto", "pymc", "nutpie")
 #: latent-intercept models with at least this many rows go to nutpie under "auto"
 NUTPIE_ROWS = 2_000
+#: fewest draws per chain accepted: split R-hat needs two halves of at least two draws
+MIN_DRAWS = 4
 
 
 def nutpie_available() -> bool:
@@ -72,6 +75,10 @@ def run(model, *, draws, tune, chains, seed, sampler, progress, cores, target_ac
     ``info`` records the sampler, seed, sizes and the compile and sampling times.
     """
     draws = check_int("draws", draws, 1)
+    if draws < MIN_DRAWS:
+        raise SpecificationError(
+            f"draws={draws} is too few: split R-hat and ESS need at least {MIN_DRAWS} draws "
+            "per chain (and results need hundreds)")
     tune = check_int("tune", tune, 0)
     chains = check_int("chains", chains, 1)
     if sampler not in SAMPLERS:
@@ -95,9 +102,21 @@ def run(model, *, draws, tune, chains, seed, sampler, progress, cores, target_ac
     else:
         dt = _run_nutpie(model, draws, tune, chains, seed, progress, cores, target_accept, info)
     info["total_seconds"] = time.perf_counter() - t0
+    _check_complete(dt, chains, draws)
     for group in [g for g in dt.children if g.startswith("warmup")]:
         del dt[group]
     return dt, info
+
+
+def _check_complete(dt, chains, draws):
+    """Refuse a truncated trace: PyMC and nutpie catch KeyboardInterrupt and return the
+    draws made so far, which must never pass for the run that was asked for."""
+    sizes = dict(dt["posterior"].sizes) if "posterior" in dt.children else {}
+    got = (int(sizes.get("chain", 0)), int(sizes.get("draw", 0)))
+    if got != (chains, draws):
+        raise KeyboardInterrupt(
+            f"sampling was interrupted after {got[0]} chain(s) x {got[1]} draws of the "
+            f"{chains} x {draws} asked for; the partial draws were discarded")
 
 
 def _run_pymc(model, draws, tune, chains, seed, progress, cores, target_accept, info):
