@@ -140,7 +140,7 @@ def refit_draws(fd, train, *, what="the held-out points", **sample_kwargs):
 #: from this many refits on, refits default to nutpie, which compiles once per model and
 #: then only swaps data, while PyMC's sampler compiles again on every call (see
 #: bayespanel.models.sampling). Measured here on the demo model: one nutpie compile cost
-#: about nine PyMC sample calls, a refit after it under a second.
+#: seven to nine PyMC sample calls, a refit after it well under a second.
 MANY_REFITS = 10
 
 
