@@ -82,7 +82,7 @@ def main(argv=None):
     ap.add_argument("--partition-rows", type=int, default=250_000,
                     help="rows per Parquet row group, read as one partition each")
     ap.add_argument("--workers", type=int, default=2)
-    ap.add_argument("--threads", action="store_true", help="thread workers, not processes")
+    ap.add_argument("--processes", action="store_true", help="process workers, not threads")
     ap.add_argument("--compare", action="store_true", help="also time threads vs processes")
     ap.add_argument("--draws", type=int, default=1000)
     ap.add_argument("--path", default="/tmp/bayespanel_scale")
@@ -109,9 +109,9 @@ def main(argv=None):
     print(f"numeric columns used ([X, y]): {numeric_mb:.0f} MB in memory if loaded")
 
     t = time.perf_counter()
-    client = local_client(args.workers, processes=not args.threads)
+    client = local_client(args.workers, processes=args.processes)
     t_start = time.perf_counter() - t
-    kind = "threads" if args.threads else "processes"
+    kind = "processes" if args.processes else "threads"
     print(f"cluster: {args.workers} workers ({kind}, 1 thread each), started and the package "
           f"imported in {t_start:.1f} s")
     timings = {}
@@ -175,13 +175,13 @@ def main(argv=None):
           + f" (numeric columns if loaded: {numeric_mb:.0f} MB)")
 
     if args.compare:
-        other = local_client(args.workers, processes=args.threads)  # warmed on start
+        other = local_client(args.workers, processes=not args.processes)  # warmed on start
         p2 = bp.Panel.from_parquet(path, unit="unit", time="time", engine="dask", client=other,
                                    split_row_groups=True)
         t = time.perf_counter()
         p2.design(formula)
         t_other = time.perf_counter() - t
-        okind = "processes" if args.threads else "threads"
+        okind = "threads" if args.processes else "processes"
         print(f"design pass with {okind}: {t_other:.2f} s vs {kind}: {t_pass:.2f} s "
               f"(ratio {t_other / t_pass:.2f})")
     close_local_client()
