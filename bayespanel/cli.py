@@ -177,7 +177,9 @@ def _print_summary(results, truth=None) -> None:
             print(f"  {c['term']:<28} {_fmt(c['mean']):>9}  [{_fmt(c['lower'])}, "
                   f"{_fmt(c['upper'])}]{extra}")
         for q in m.get("scale", []):
-            tv = (results.get("truth") or {}).get(q["name"]) if known else None
+            # the pooled model's residual SD mixes both levels: no true value to show
+            tv = ((results.get("truth") or {}).get(q["name"])
+                  if known and m["name"] != "pooled" else None)
             extra = f"   true {tv:.3f}" if tv is not None else ""
             print(f"  {q['name']:<28} {_fmt(q['mean']):>9}  [{_fmt(q['lower'])}, "
                   f"{_fmt(q['upper'])}]{extra}")
@@ -187,7 +189,9 @@ def _print_summary(results, truth=None) -> None:
     if comp and comp.get("rows"):
         print(f"\nLOO comparison ({comp['level']} level; ELPD difference to the best, SE):")
         for r in comp["rows"]:
-            note = f"  ({r['note']})" if r.get("note") else ""
+            text = r.get("note") or ""
+            note = f"  ({text})" if text and not text.startswith("exact CV with closed-form") \
+                else ""
             print(f"  {r['title']:<40} {_fmt(r.get('elpd_diff')):>9}  {_fmt(r.get('se_diff'))}"
                   f"{note}")
 
@@ -218,7 +222,7 @@ def cmd_demo(args) -> int:
     results = run(settings, out=out, truth=truth, quiet=args.quiet)
     _print_summary(results)
     print(f"\nreport: {(out / 'report.html').resolve()}")
-    print(f"rerun exactly: bayespanel fit --config {out / 'analysis.toml'} --out NEW_FOLDER")
+    print(f"rerun exactly: python -m bayespanel fit --config {out / 'analysis.toml'} --out NEW_FOLDER")
     return _strict_exit(results, args.strict)
 
 
