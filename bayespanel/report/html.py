@@ -146,8 +146,11 @@ def _overview(r) -> Safe:
     comp = r.get("comparison") or {}
     best = [row for row in comp.get("rows", []) if row.get("elpd_diff") == 0]
     if best:
+        close = [row["title"] for row in comp["rows"] if row.get("elpd_diff") not in (None, 0)
+                 and row.get("se_diff") and -row["elpd_diff"] < 2 * row["se_diff"]]
+        tie = (f" Within two SEs of it, so not told apart: {', '.join(close)}." if close else "")
         parts.append(note("info", f"Best predictive accuracy ({comp['level']} level): "
-                          f"{best[0]['title']}.", "LOO."))
+                          f"{best[0]['title']}.{tie}", "LOO."))
     n_warn = sum(len(m["diagnostics"].get("warnings", [])) for m in r["models"])
     if n_warn:
         parts.append(note("caution", f"{n_warn} sampling warning(s); see the diagnostics "
@@ -403,6 +406,13 @@ def _checks(r) -> Safe:
            figure(uri, "posterior predictive checks",
                   "Histograms of replicated statistics; the clay line is the observed value.",
                   "fig-ppc")]
+    for m in r["models"]:
+        miss = [s["label"] for s in m.get("ppc") or [] if not 0.025 <= s["p_value"] <= 0.975]
+        if miss:
+            out.append(note("caution", f"the observed {', '.join(miss)} fall(s) in the tail of "
+                            "the replicated values (tail probability below 0.025 or above "
+                            "0.975): the model does not reproduce this feature of the data.",
+                            f"{m['title']}:"))
     return join(out)
 
 
