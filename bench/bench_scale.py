@@ -61,16 +61,19 @@ def maxrss_mb() -> float:
 
 
 def _worker_rss():
+    import os as o
     import resource as r
 
-    return r.getrusage(r.RUSAGE_SELF).ru_maxrss / 1024.0
+    return o.getpid(), r.getrusage(r.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
 def _worker_cpu():
     import resource as r
 
+    import os as o
+
     u = r.getrusage(r.RUSAGE_SELF)
-    return u.ru_utime + u.ru_stime
+    return o.getpid(), u.ru_utime + u.ru_stime
 
 
 def main(argv=None):
@@ -125,9 +128,13 @@ def main(argv=None):
     panel = bp.Panel.from_parquet(path, unit="unit", time="time", engine="dask", client=client,
                                   split_row_groups=True)
     print(f"partitions: {panel.npartitions}")
-    cpu0 = sum(client.run(_worker_cpu).values())
+    def cpu():  # thread workers share one process: count each process once
+        return sum(dict(client.run(_worker_cpu).values()).values())
+
+    rss_before = maxrss_mb()
+    cpu0 = cpu()
     design = timed("pass: design (statistics + structure)", lambda: panel.design(formula))
-    cpu_pass = sum(client.run(_worker_cpu).values()) - cpu0
+    cpu_pass = cpu() - cpu0
     st = panel.structure()
     print(f"structure: {st['n_units']:,} units, {st['n_rows']:,} rows, balanced={st['balanced']}")
     desc = timed("pass: describe", panel.describe)
@@ -162,17 +169,18 @@ def main(argv=None):
     t_fit = timings["bayes: build RandomIntercept from statistics"] + timings["bayes: sample (2 chains)"]
     print(f"design pass: {args.rows / t_pass:,.0f} rows/s, {args.rows / t_pass / cores:,.0f} "
           f"rows/s per core ({cores} cores; target 1,000,000)")
-    print(f"design pass CPU time in the workers: {cpu_pass:.1f} s, i.e. "
-          f"{args.rows / cpu_pass:,.0f} rows per CPU-second (what one free core would do)")
+    print(f"design pass CPU time of the worker process(es): {cpu_pass:.1f} s, i.e. "
+          f"{args.rows / cpu_pass:,.0f} rows per CPU-second")
     load = os.getloadavg()
     print(f"load average during the run (1, 5, 15 min): {load[0]:.1f}, {load[1]:.1f}, "
           f"{load[2]:.1f} on {os.cpu_count()} CPUs")
     print(f"all passes: {t_all_passes:.1f} s; Bayesian random-intercept fit after the pass: "
           f"{t_fit:.1f} s (target < 30 s)")
-    workers = client.run(_worker_rss)
-    print(f"peak memory: this process {maxrss_mb():.0f} MB; workers "
+    workers = dict(client.run(_worker_rss).values())
+    print(f"peak memory (max RSS): this process {maxrss_mb():.0f} MB ({rss_before:.0f} MB "
+          "before the first pass: interpreter, PyMC, cluster); worker process(es) "
           + ", ".join(f"{v:.0f} MB" for v in workers.values())
-          + f" (numeric columns if loaded: {numeric_mb:.0f} MB)")
+          + f"; numeric columns if loaded: {numeric_mb:.0f} MB")
 
     if args.compare:
         other = local_client(args.workers, processes=not args.processes)  # warmed on start
