@@ -8,7 +8,7 @@ the draws calls the one implementation of the mathematics in
 
 Summaries answer with the same names as the reference fits: ``coef`` (posterior means),
 ``sd`` (posterior SDs), ``interval(prob)`` (equal-tailed credible intervals), ``table()``
-(columns ``coef``, ``sd``, ``lower``, ``upper``), ``sigma_unit`` and ``sigma_obs``.
+(columns ``estimate``, ``sd``, ``lower``, ``upper``), ``sigma_unit`` and ``sigma_obs``.
 
 Saved posteriors are NetCDF files (through xarray, engine h5netcdf) with the model
 specification as JSON attributes; nothing is pickled.
@@ -258,7 +258,8 @@ class Posterior:
     @property
     def coef(self) -> pd.Series:
         """Posterior means of the coefficients."""
-        return pd.Series(self.draws("coef").mean(axis=(0, 1)), index=self.labels, name="coef")
+        return pd.Series(self.draws("coef").mean(axis=(0, 1)), index=self.labels,
+                         name="estimate")
 
     @property
     def sd(self) -> pd.Series:
@@ -285,11 +286,12 @@ class Posterior:
         return pd.DataFrame({"lower": q[0], "upper": q[1]}, index=self.labels)
 
     def table(self, prob: float = 0.95) -> pd.DataFrame:
-        """Coefficients and variance components with columns coef, sd, lower, upper."""
+        """Coefficients and variance components with the reference fits' column names:
+        ``estimate`` (posterior mean), ``sd``, ``lower``, ``upper`` (equal-tailed interval)."""
         s = self.summary(prob)
         lo, hi = _percent((1 - prob) / 2), _percent(1 - (1 - prob) / 2)
         out = s[["mean", "sd", lo, hi]].copy()
-        out.columns = ["coef", "sd", "lower", "upper"]
+        out.columns = ["estimate", "sd", "lower", "upper"]
         return out
 
     def contextual_effects(self, prob: float = 0.95) -> pd.DataFrame:
@@ -401,7 +403,8 @@ class Posterior:
         units : label or list of labels, optional
             Only these units (default all).
         seed : int
-            Seed of the normal draws (same seed, same values).
+            Seed of the normal draws (same seed, same values, whatever the selection of
+            units or the thinning).
 
         Returns
         -------
@@ -414,14 +417,30 @@ class Posterior:
         thin = self._thin(thin)
         idx = self._unit_index(units)
         mean, sd = self._unit_conditional(thin, idx)
-        rng = np.random.default_rng(seed)
-        u = mean + sd * rng.standard_normal(mean.shape)
+        u = mean + sd * self._unit_normals(seed, idx, thin)
         coef = self.idata["posterior"]["coef"]
         chains, draws = coef.sizes["chain"], len(range(0, coef.sizes["draw"], thin))
         return xr.DataArray(
             u.reshape(chains, draws, len(idx)), dims=("chain", "draw", "unit"),
             coords={"chain": coef["chain"].values, "draw": coef["draw"].values[::thin],
                     "unit": self.units[idx]}, name="unit_effect")
+
+    def _unit_normals(self, seed, idx, thin, block=1024):
+        """Standard normals for the kept draws of units ``idx``.
+
+        Each block of ``block`` units has its own stream (seeded by ``(seed, block)``) over
+        all draws, so any selection of units or thinning sees the same numbers as the
+        full set: ``unit_effects(units=[a, b])`` equals those columns of ``unit_effects()``.
+        """
+        S = self.n_chains * self.n_draws
+        keep = (np.arange(S).reshape(self.n_chains, self.n_draws)[:, ::thin]).ravel()
+        out = np.empty((len(keep), len(idx)))
+        blocks = idx // block
+        for bk in np.unique(blocks):
+            z = np.random.default_rng([int(seed), int(bk)]).standard_normal((S, block))
+            sel = blocks == bk
+            out[:, sel] = z[np.ix_(keep, idx[sel] - bk * block)]
+        return out
 
     def _unit_conditional(self, thin, idx):
         b = self._flat("coef", thin)
@@ -469,8 +488,9 @@ class Posterior:
         tau = self._flat("sigma_unit", thin) if self.spec.unit_effects == "random" else None
         unit_draws = None
         if level == "occasion" and self.spec.unit_effects != "none":
-            mean, sd = self._unit_conditional(thin, np.arange(len(self.units)))
-            unit_draws = mean + sd * rng.standard_normal(mean.shape)
+            every = np.arange(len(self.units))
+            mean, sd = self._unit_conditional(thin, every)
+            unit_draws = mean + sd * self._unit_normals(seed, every, thin)
         yrep = simulate_outcome(M, codes, b, sigma, tau, rng, unit_draws=unit_draws)
         coef = self.idata["posterior"]["coef"]
         return xr.DataArray(yrep.reshape(self.n_chains, -1, len(y)),
@@ -489,6 +509,41 @@ class Posterior:
                         else None),
             M=M, y=y, unit_codes=codes, units=self.units, stats=self.stats,
             chains=self.n_chains, draws=len(range(0, self.n_draws, thin)))
+
+    # ------------------------------------------------------------------ comparison
+    # (thin entries; the work is in bayespanel.loo, .partition and .contrasts)
+    def loo(self, level: str = "occasion", **kwargs):
+        """LOO at the unit or occasion level; see :func:`bayespanel.loo.loo`."""
+        from .loo import loo
+
+        return loo(self, level, **kwargs)
+
+    def variance_partition(self, reference=None):
+        """Unit/occasion SDs, ICC, quasi-demeaning shares and Rights-Sterba (2019) shares
+        per draw; see :func:`bayespanel.partition.variance_partition`."""
+        from .partition import variance_partition
+
+        if self.rows is None:
+            raise SpecificationError("the variance partition needs the estimation rows")
+        tau = self._flat("sigma_unit") if self.spec.unit_effects == "random" else (
+            None if self.spec.unit_effects == "fixed" else 0.0 * self._flat("sigma_obs"))
+        return variance_partition(self.rows[0], self.rows[2], self.spec.kind, self.labels,
+                                  self._flat("coef"), self._flat("sigma_obs"), tau,
+                                  reference=reference)
+
+    def contrasts(self, rope=None, prob: float = 0.95, reference=None, tests: bool = True):
+        """Between-minus-within effects with sign and ROPE probabilities, beside the
+        Hausman and cluster-robust Mundlak tests; see
+        :func:`bayespanel.contrasts.within_between_contrasts`."""
+        from .contrasts import within_between_contrasts
+        from .partition import design_columns
+
+        if self.rows is None:
+            raise SpecificationError("the contrasts need the estimation rows")
+        _, _, tv = design_columns(self.rows[0], self.rows[2], self.labels, self.spec.kind)
+        return within_between_contrasts(self.spec.kind, self.labels, self._flat("coef"), tv,
+                                        rope=rope, prob=prob, reference=reference,
+                                        rows=self.rows if tests else None)
 
     # ------------------------------------------------------------------ save / load
     def save(self, path, rows: bool = True) -> None:
@@ -534,6 +589,10 @@ class Posterior:
         with xr.open_datatree(path, engine="h5netcdf") as tree:
             tree = tree.load()
         attrs = tree.attrs
+        if "bayespanel_latent" in attrs and cls is Posterior:  # issue 5 hook: latent families
+            from .models.latent import LatentPosterior
+
+            return LatentPosterior.load(path)
         if "bayespanel_spec" not in attrs:
             raise SpecificationError(f"{path!s} was not written by Posterior.save")
         spec = ModelSpec.from_json(attrs["bayespanel_spec"])

@@ -250,7 +250,10 @@ class GaussianModel:
 
     def _scaling(self, stats) -> gaussian.Scaling:
         sd = _column_sd(stats, self.kind)
-        bad = [j for j in range(stats.p) if not sd[j] > 0 and j != self.intercept]
+        dof = max(stats.n - 1, 1)
+        size = np.sqrt(np.diag(stats.total) / dof + np.asarray(stats.mean) ** 2)
+        bad = [j for j in range(stats.p) if not sd[j] > 1e-9 * max(size[j], 1e-300)
+               and j != self.intercept]
         if bad:
             names = (self.labels + [self.outcome])
             raise EstimationError(

@@ -47,6 +47,14 @@ COEF_PRESETS = {"normal": {"mu": 0.0, "sigma": 2.5}, "student_t": {"nu": 3.0, "m
                 "flat": {}}
 SD_NAMES = ("sigma_obs", "sigma_unit")
 ALL_KEY = "coef"
+#: key of the prior shared by every occasion effect (labels ``occasion[...]``, with their
+#: ``(within)``, ``(between)`` and ``(unit mean)`` parts)
+OCCASION_KEY = "occasion"
+
+
+def is_occasion_label(label: str) -> bool:
+    """True for the label of an occasion indicator or of one of its parts."""
+    return str(label).startswith("occasion[")
 
 
 @dataclass(frozen=True)
@@ -178,8 +186,9 @@ def resolve_priors(user, labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd) 
     ----------
     user : dict or None
         Keys: a term label (``"x"``, ``"x (within)"``, ``"Intercept"``), ``"coef"`` (every
-        slope not named), ``"sigma_obs"`` and, for models with unit intercepts,
-        ``"sigma_unit"``. Values: :class:`Prior`, a family or preset name, or a dict.
+        slope not named), ``"occasion"`` (every occasion effect not named, with
+        ``occasion_effects=True``; it overrides ``"coef"`` for them), ``"sigma_obs"`` and,
+        for models with unit intercepts, ``"sigma_unit"``. Values: :class:`Prior`, a family or preset name, or a dict.
     labels : list of str
     intercept : int or None
         Position of the intercept among ``labels``.
@@ -202,7 +211,9 @@ def resolve_priors(user, labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd) 
     if not isinstance(user, dict):
         raise SpecificationError(f"priors must be a dict keyed by term or component, got "
                                  f"{type(user).__name__}")
-    valid = labels + [ALL_KEY] + (["sigma_obs", "sigma_unit"] if has_unit_sd else ["sigma_obs"])
+    occ = [lab for lab in labels if is_occasion_label(lab)]
+    valid = (labels + [ALL_KEY] + ([OCCASION_KEY] if occ else [])
+             + (["sigma_obs", "sigma_unit"] if has_unit_sd else ["sigma_obs"]))
     for key in user:
         if key not in valid:
             extra = (" (this model has no unit intercepts, so no 'sigma_unit')"
@@ -210,7 +221,7 @@ def resolve_priors(user, labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd) 
             raise SpecificationError(
                 f"priors has an unknown key {key!r}{extra}; valid keys are "
                 + ", ".join(map(repr, valid)))
-    order = [ALL_KEY] + [k for k in user if k != ALL_KEY]
+    order = [ALL_KEY, OCCASION_KEY] + [k for k in user if k not in (ALL_KEY, OCCASION_KEY)]
     for key in order:
         if key not in user:
             continue
@@ -225,8 +236,12 @@ def resolve_priors(user, labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd) 
         if sd_prior:
             out[key] = _fill(prior, sd_prior=True, base_sd=sd_y)
             continue
-        targets = ([lab for j, lab in enumerate(labels) if j != intercept and lab not in user]
-                   if key == ALL_KEY else [key])
+        if key == ALL_KEY:
+            targets = [lab for j, lab in enumerate(labels) if j != intercept and lab not in user]
+        elif key == OCCASION_KEY:
+            targets = [lab for lab in occ if lab not in user]
+        else:
+            targets = [key]
         for lab in targets:
             j = labels.index(lab)
             if j == intercept:
