@@ -197,7 +197,7 @@ def _apply_difference(b, labels, kind, difference):
     for x, size in dict(difference).items():
         if kind == "within_between":
             wl, bl = f"{x} (within)", f"{x} (between)"
-            if wl not in labels:
+            if wl not in labels or bl not in labels:
                 raise SpecificationError(_no_contrast(x, labels))
             b[labels.index(bl)] = b[labels.index(wl)] + float(size)
         else:
@@ -219,7 +219,8 @@ def _contrasts(labels, kind):
     out = []
     k = len(labels)
     for j, lab in enumerate(labels):
-        if kind == "within_between" and lab.endswith(" (within)"):
+        if (kind == "within_between" and lab.endswith(" (within)")
+                and f"{lab[:-9]} (between)" in labels):
             x = lab[:-9]
             w = np.zeros(k)
             w[j], w[labels.index(f"{x} (between)")] = -1.0, 1.0
