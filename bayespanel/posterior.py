@@ -585,9 +585,18 @@ class Posterior:
 
     @classmethod
     def load(cls, path) -> "Posterior":
-        """Read a posterior written by :meth:`save`; its summaries are reproduced exactly."""
-        with xr.open_datatree(path, engine="h5netcdf") as tree:
-            tree = tree.load()
+        """Read a posterior written by :meth:`save`; its summaries are reproduced exactly.
+
+        Only NetCDF (HDF5) is read, through xarray; nothing is unpickled. Any other file is
+        a :class:`SpecificationError` naming it.
+        """
+        try:
+            with xr.open_datatree(path, engine="h5netcdf") as tree:
+                tree = tree.load()
+        except (OSError, ValueError) as exc:
+            raise SpecificationError(
+                f"{str(path)!r} is not a posterior file written by Posterior.save (NetCDF): "
+                f"{exc}") from None
         attrs = tree.attrs
         if "bayespanel_latent" in attrs and cls is Posterior:  # issue 5 hook: latent families
             from .models.latent import LatentPosterior

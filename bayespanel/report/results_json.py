@@ -140,7 +140,7 @@ def load_results(path) -> dict:
         raise SpecificationError(f"no results file at {str(path)!r}; run `bayespanel fit` first")
     try:
         data = json.loads(path.read_text("utf-8"))
-    except json.JSONDecodeError as exc:
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise SpecificationError(f"{str(path)!r} is not valid JSON: {exc}") from None
     validate(data)
     return data
