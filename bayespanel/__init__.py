@@ -3,7 +3,15 @@
 >>> import bayespanel as bp
 >>> df, truth = bp.datasets.clinic_panel(seed=1)
 >>> panel = bp.Panel(df, unit="clinic", time="quarter")
+>>> ri = bp.RandomIntercept(panel, truth["formula"])          # doctest: +SKIP
+>>> post = ri.sample(draws=1000, chains=4, seed=1)            # doctest: +SKIP
+>>> bp.compare({"random": post, "fe": bp.reference.within(panel, truth["formula"])})  # doctest: +SKIP
+
+The heavy stages (PyMC models, LOO, reports, Dask) load on first use, so that checking
+and describing a table stays quick.
 """
+
+from importlib import import_module
 
 from . import datasets, errors, suffstats
 from .design import Design, DesignSpec
@@ -19,24 +27,47 @@ from .panel import Panel
 
 __version__ = "0.1.0"
 
+# name -> (module, attribute or None for the module itself)
+_LAZY = {
+    "reference": ("reference", None),
+    "models": ("models", None),
+    "posterior": ("posterior", None),
+    "loo": ("loo", None),
+    "partition": ("partition", None),
+    "contrasts": ("contrasts", None),
+    "report": ("report", None),
+    "runner": ("runner", None),
+    "engines": ("engines", None),
+    "sensitivity": ("sensitivity", None),
+    "Pooled": ("models", "Pooled"),
+    "RandomIntercept": ("models", "RandomIntercept"),
+    "WithinBetween": ("models", "WithinBetween"),
+    "CorrelatedEffects": ("models", "CorrelatedEffects"),
+    "FixedEffects": ("models", "FixedEffects"),
+    "Prior": ("models", "Prior"),
+    "Posterior": ("posterior", "Posterior"),
+    "compare": ("compare", "compare"),
+    "coef_table": ("compare", "coef_table"),
+    "design_check": ("design_check", "design_check"),
+}
+
 __all__ = [
     "Panel", "Design", "DesignSpec", "datasets", "errors", "suffstats",
     "BayespanelError", "PanelDataError", "FormulaError", "SpecificationError",
-    "EstimationError", "SamplingWarning",
+    "EstimationError", "SamplingWarning", *sorted(_LAZY),
 ]
 
 
-def _optional_imports():
-    """Attach later stages when present (kept apart so the foundation imports alone)."""
-    import importlib
-
-    g = globals()
-    for mod in ("reference", "models", "posterior", "loo", "report"):
-        try:
-            g[mod] = importlib.import_module(f".{mod}", __name__)
-        except ModuleNotFoundError as exc:  # pragma: no cover - only while stages are missing
-            if exc.name != f"{__name__}.{mod}":
-                raise
+def __getattr__(name):
+    if name in _LAZY:
+        mod, attr = _LAZY[name]
+        value = import_module(f".{mod}", __name__)
+        if attr is not None:
+            value = getattr(value, attr)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'bayespanel' has no attribute {name!r}")
 
 
-_optional_imports()
+def __dir__():
+    return sorted(set(globals()) | set(_LAZY))
