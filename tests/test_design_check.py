@@ -163,16 +163,12 @@ def ri_model(short_panel):
     return bp.models.RandomIntercept(short_panel, FORMULA)
 
 
-@pytest.fixture(scope="module")
-def bayes_check(ri_model):
+@pytest.mark.slow  # one nutpie compilation, so all Bayesian checks live in this one test
+def test_bayesian_refits_swap_statistics_restore_and_reproduce(ri_model, short_panel):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return design_check(None, ri_model, truth=TRUTH, replicates=12, draws=300, tune=300,
-                            progress=False, seed=2)
-
-
-@pytest.mark.slow  # one nutpie compilation (shared by the three tests)
-def test_bayesian_refits_swap_statistics_and_restore(bayes_check, ri_model, short_panel):
+        bayes_check = design_check(None, ri_model, truth=TRUTH, replicates=12, draws=300,
+                                   tune=300, progress=False, seed=2)
     rec = bayes_check.records
     assert set(rec["method"]) == {BAYES, REFERENCE, ORACLE}
     b = rec[(rec["method"] == BAYES) & (rec["prob"] == 0.95)]
@@ -193,19 +189,14 @@ def test_bayesian_refits_swap_statistics_and_restore(bayes_check, ri_model, shor
     np.testing.assert_allclose(ri_model.stats.mean[-1], design.y.mean())
     assert bayes_check.replicate_info["divergences"].notna().all()
     assert bayes_check.replicate_info["rhat_max"].notna().all()
-
-
-@pytest.mark.slow  # one nutpie compilation (shared by the three tests)
-def test_same_seed_same_replicates_and_draws(bayes_check, ri_model):
+    # same seed, one thread instead of two: the same replicates and the same draws
+    # (no recompilation: the compiled model is kept on the model)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         again = design_check(None, ri_model, truth=TRUTH, replicates=12, draws=300, tune=300,
                              progress=False, seed=2, workers=1)
     pd.testing.assert_frame_equal(bayes_check.records, again.records)
-
-
-@pytest.mark.slow  # one nutpie compilation (shared by the three tests)
-def test_table_figure_and_report_section(bayes_check):
+    # report section: table and figure
     tab, fig = design_check_section(bayes_check)
     assert "coverage 95%" in tab.columns and "median width 90%" in tab.columns
     assert tab.attrs["summary"].startswith("Design check of RandomIntercept on 10 units")
