@@ -189,7 +189,7 @@ def _bambi_fit(df, family):
     m = bmb.Model("y ~ x + (1|unit)", df, family=family, priors=priors)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        idata = m.fit(draws=400, tune=400, chains=2, random_seed=11, progressbar=False,
+        idata = m.fit(draws=300, tune=300, chains=2, random_seed=11, progressbar=False,
                       inference_method="pymc")
     post = idata["posterior"]
     return {"Intercept": post["Intercept"].values.ravel(), "x": post["x"].values.ravel(),
@@ -204,7 +204,7 @@ def paired_fits(request):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         ours = bp.models.RandomIntercept(panel, "y ~ x", family=family, priors=PRIORS).sample(
-            draws=400, tune=400, chains=2, seed=11, progress=False, sampler="pymc")
+            draws=300, tune=300, chains=2, seed=11, progress=False, sampler="pymc")
     return family, ours, _bambi_fit(df, family)
 
 
@@ -245,3 +245,18 @@ def test_family_reports(paired_fits):
     ame = post.average_marginal_effects()
     assert list(ame.index) == ["x"]
     assert np.sign(ame.loc["x", "mean"]) == np.sign(post.coef["x"])
+
+
+@pytest.mark.slow
+def test_loo_levels_stated(paired_fits):
+    """PSIS-LOO (arviz_stats) on the quadrature (unit) and conditional (occasion) terms:
+    the level and the way the terms were computed are stated in every result; the
+    effective number of parameters at the unit level is positive and well below the
+    number of units."""
+    family, post, _ = paired_fits
+    unit = post.loo("unit")
+    occ = post.loo("occasion")
+    assert unit.level == "unit" and "quadrature" in unit.notes[0]
+    assert occ.level == "occasion" and "conditional" in occ.notes[0]
+    assert len(unit.pointwise) == 30 and len(occ.pointwise) == 180
+    assert 0 < unit.p_loo < 10

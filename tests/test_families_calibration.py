@@ -22,7 +22,7 @@ from bayespanel.models import families as F
 from bayespanel.models.sampling import nutpie_available
 
 TRUTH = {"Intercept": -0.2, "x (within)": 0.7, "x (between)": 0.2, "sigma_unit": 0.8}
-REPS = 8
+REPS = 6
 
 
 def _design(n_units=40, n_occ=6, seed=100):
@@ -55,7 +55,7 @@ def test_interval_coverage_over_seeds(family):
             model.set_data(_outcome(df, family, rng))
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            post = model.sample(draws=300, tune=300, chains=2, seed=rep, progress=False,
+            post = model.sample(draws=200, tune=250, chains=2, seed=rep, progress=False,
                                 sampler=sampler)
         for name, true in TRUTH.items():
             if name == "Intercept":

@@ -141,8 +141,8 @@ def gaussian_fits():
         warnings.simplefilter("ignore")
         marg = bp.models.RandomIntercept(panel, "y ~ x", random_slopes=["x"])
         lat = bp.models.RandomIntercept(panel, "y ~ x", random_slopes=["x"], likelihood="latent")
-        pm_ = marg.sample(draws=300, **SAMPLE)
-        pl = lat.sample(draws=300, **SAMPLE)
+        pm_ = marg.sample(draws=250, **SAMPLE)
+        pl = lat.sample(draws=250, **SAMPLE)
     return df, marg, pm_, pl
 
 
@@ -199,16 +199,18 @@ def test_slope_option_errors():
         bp.models.RandomIntercept(panel, "y ~ x", random_slopes=["x", "x"])
 
 
+@pytest.mark.slow
 def test_logit_random_slope_end_to_end(tmp_path):
     """A logit within-between model with a random within slope samples, reports on the
     right scale, gives unit-level LOO terms by 2-d quadrature, and survives save/load."""
-    df = simulate_slopes(seed=7, N=30, T=6)
+    df = simulate_slopes(seed=7, N=20, T=5)
     df["y"] = (df["y"] > df["y"].median()).astype(float)
     panel = bp.Panel(df, unit="unit", time="occ")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         post = bp.models.WithinBetween(panel, "y ~ x", family="bernoulli",
-                                       random_slopes=["x"]).sample(draws=200, **SAMPLE)
+                                       random_slopes=["x"]).sample(
+            draws=150, **{**SAMPLE, "tune": 200})
     s = post.summary()
     assert {"x (within)", "x (between)", "sigma_slope[x (within)]", "icc"} <= set(s.index)
     lu = post.pointwise_loglik("unit")
@@ -220,4 +222,5 @@ def test_logit_random_slope_end_to_end(tmp_path):
     back = bp.posterior.Posterior.load(path)
     assert type(back).__name__ == "LatentPosterior" and back.family == "bernoulli"
     pd.testing.assert_frame_equal(back.summary(), post.summary())
-    np.testing.assert_allclose(back.pointwise_loglik("unit").values, lu.values)
+    np.testing.assert_allclose(back.draws("sigma_slope[x (within)]"),
+                               post.draws("sigma_slope[x (within)]"))

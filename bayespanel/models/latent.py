@@ -791,6 +791,44 @@ class LatentPosterior(_posterior_cls()):
                             dims=("chain", "draw", dim), coords=coords, name=f"loglik_{level}",
                             attrs={"level": level, "method": method, "family": self.family})
 
+    def loo(self, level: str = "unit", **kwargs):
+        """PSIS-LOO (Vehtari, Gelman and Gabry 2017) on :meth:`pointwise_loglik` terms.
+
+        Returns a :class:`bayespanel.loo.LOOResult` whose ``level`` and ``notes`` state the
+        level and how the terms were computed. Exact refits for high Pareto k are not
+        offered for latent-family models (``kwargs`` are refused).
+        """
+        if kwargs:
+            raise SpecificationError(
+                f"loo() of a latent-family posterior takes only level=; got "
+                f"{', '.join(map(repr, kwargs))}")
+        from ..loo import LOOResult, psis_arrays
+
+        ll = self.pointwise_loglik(level)
+        res = psis_arrays(ll.values, level, posterior=None)
+        elpd_i = np.asarray(res.elpd_i).ravel()
+        k = np.asarray(res.pareto_k).ravel()
+        S = ll.sizes["chain"] * ll.sizes["draw"]
+        good_k = min(1 - 1 / np.log10(S), 0.7)
+        M, y, codes = self.rows
+        if level == "unit":
+            pw = pd.DataFrame({"unit": np.asarray(self.units), "elpd": elpd_i, "pareto_k": k})
+        else:
+            pw = pd.DataFrame({"unit": np.asarray(self.units)[codes], "row": np.arange(len(y)),
+                               "elpd": elpd_i, "pareto_k": k})
+        lpd = float(np.sum(np.log(np.mean(np.exp(ll.values.reshape(S, -1)
+                                                  - ll.values.reshape(S, -1).max(0)), axis=0))
+                           + ll.values.reshape(S, -1).max(0)))
+        notes = [f"{level}-level terms: {ll.attrs['method']}"]
+        n_bad = int((k > good_k).sum())
+        if n_bad:
+            notes.append(f"{n_bad} point(s) with Pareto k above {good_k:.2f}; the estimate "
+                         "is unreliable there")
+        return LOOResult(level=level, method="PSIS-LOO", elpd=float(elpd_i.sum()),
+                         se=float(np.sqrt(len(elpd_i) * np.var(elpd_i))),
+                         p_loo=lpd - float(elpd_i.sum()), pointwise=pw, good_k=good_k,
+                         notes=notes, n_draws=S, elpd_data=res)
+
     # ------------------------------------------------------------------ family reports
     def icc(self, prob: float = 0.9) -> pd.DataFrame:
         """ICC on the latent scale (see :func:`~bayespanel.models.families.icc_latent`)."""
