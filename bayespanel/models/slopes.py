@@ -51,7 +51,6 @@ __all__ = [
     "unit_loglik_slopes",
     "occasion_loglik_slopes",
     "unit_effect_draws_slopes",
-    "chol_from_sd_corr",
 ]
 
 
@@ -271,8 +270,3 @@ def unit_effect_draws_slopes(X, Z, y, unit_codes, b, sigma, L, rng):
         draws[sl] = (Lb @ h[..., None])[..., 0]
         means[sl] = (Lb @ h_mean[..., None])[..., 0]
     return draws, means
-
-
-def chol_from_sd_corr(sd, corr_chol, xp=np):
-    """``L = diag(sd) R`` where ``R R'`` is the correlation matrix (R lower Cholesky)."""
-    return sd[..., :, None] * corr_chol
