@@ -17,6 +17,7 @@ checked against a statsmodels OLS on the rows that remain.
 from __future__ import annotations
 
 import json
+import re
 import subprocess
 import sys
 import warnings
@@ -337,8 +338,6 @@ def test_command_line_exits_two(case, base, tmp_path, capsys):
     rc, stdout, stderr = _cli(argv, capsys)
     assert rc == 2, stderr
     assert stderr.startswith("bayespanel: error: "), stderr
-    import re
-
     assert re.search(case.cli_match or case.match, stderr), stderr
     assert "Traceback" not in stderr + stdout
     assert not (out / "results.json").exists()  # no numbers

@@ -12,6 +12,8 @@ from __future__ import annotations
 
 import json
 import os
+from contextlib import redirect_stderr, redirect_stdout
+from io import StringIO
 import subprocess
 import sys
 import warnings
@@ -72,9 +74,6 @@ def flawed_run(grunfeld_csv, tmp_path_factory):
         mp.setattr(sampling, "_run_pymc", flawed)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            from contextlib import redirect_stderr, redirect_stdout
-            from io import StringIO
-
             stdout, stderr = StringIO(), StringIO()
             with redirect_stdout(stdout), redirect_stderr(stderr):
                 rc = main(_argv(grunfeld_csv, out, "--strict"))
