@@ -5,7 +5,10 @@ squares: Frisch-Waugh-Lovell and the invariance of slopes to location shifts of 
 covariates): row order, unit relabelling and occasion relabelling change no estimate;
 adding a constant to a covariate changes only the intercept. Estimates are checked with
 the reference module's closed-form fits when it is present and with least squares on the
-sufficient statistics (numpy) always.
+sufficient statistics (numpy) always; the latter is checked against statsmodels OLS.
+
+Reference: statsmodels OLS (pooled least squares on the same rows); identities as above
+(Frisch-Waugh-Lovell, Davidson and MacKinnon 2004, section 2.4).
 """
 
 import warnings
@@ -60,6 +63,10 @@ def fits(df):
         d = bp.Panel(df, unit="unit", time="occ").design(FORMULA)
     stats = ss.from_design(d, "random")
     out = {"within": within_ols(stats), "pooled": pooled_ols(stats)}
+    import statsmodels.api as sm  # reference library: statsmodels OLS on the same rows
+
+    ols = sm.OLS(d.y, d.X).fit().params
+    np.testing.assert_allclose(np.hstack(out["pooled"]), ols, rtol=1e-7, atol=1e-9)
     ref = getattr(bp, "reference", None)
     if ref is not None and hasattr(ref, "within"):
         with warnings.catch_warnings():
