@@ -171,7 +171,8 @@ def main():
     latent_limit = 120.0 if args.quick else args.latent_timeout
     d, t, c = args.draws, args.tune, args.chains
     print(f"# bench_models: {c} chains x {d} draws ({t} tuning), {os.cpu_count()} CPUs, "
-          f"T = {T_OCC}, 5 covariates")
+          f"T = {T_OCC}, 5 covariates; load average at start "
+          + " ".join(f"{x:.1f}" for x in os.getloadavg()))
     head = (f"{'model':<22}{'rows':>10} {'design':>8} {'stats':>7} {'compile':>8} {'sample':>8} "
             f"{'fit':>8} {'minESS':>7} {'ESS/s':>9} {'peakMB':>8} {'div':>5}")
     print(head)
@@ -192,6 +193,9 @@ def main():
         if all(results[("latent", s, rows)].get("timeout") or "error" in results[("latent", s, rows)]
                for s in ("default", "pymc")):
             latent_ok = False
+
+    print("# load average at end " + " ".join(f"{x:.1f}" for x in os.getloadavg())
+          + " (other work on the machine inflates every time above)")
 
     def ok(r):
         return r and "ess" in r
@@ -221,7 +225,14 @@ def main():
         if ours:
             best = max(r["ess"] / r["sample"] for r in ours)
             print(f"ESS/s at {rows:,} rows (largest size the latent graph finished): marginal "
-                  f"{best:.1f}, latent {best_lat:.1f}, ratio {best / best_lat:.0f}x")
+                  f"{best:.1f}, latent {best_lat:.1f}, ratio {best / best_lat:.0f}x (best "
+                  "sampler of each)")
+            mp = results.get(("marginal", "pymc", rows))
+            if ok(mp):
+                r = mp["ess"] / mp["sample"]
+                print(f"  marginal with PyMC's NUTS (the default): {r:.1f} ESS/s, ratio "
+                      f"{r / best_lat:.0f}x; ratio of whole-fit times latent/marginal "
+                      f"{min(x['total_fit'] for x in lat) / mp['total_fit']:.1f}x")
     big = results.get(("marginal", "pymc", sizes[-1]))
     if ok(big):
         print(f"whole fit at {sizes[-1]:,} rows (statistics + compile + sampling, pymc): "
