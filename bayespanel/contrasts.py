@@ -36,8 +36,8 @@ import pandas as pd
 
 from .errors import SpecificationError
 
-__all__ = ["ContrastResult", "contrast_draws", "contrast_matrix", "within_between_contrasts",
-           "specification_tests"]
+__all__ = ["ContrastResult", "contrast_draws", "contrast_matrix", "contrast_covariates",
+           "within_between_contrasts", "specification_tests"]
 
 CONTRAST_KINDS = ("within_between", "mundlak")
 
@@ -75,6 +75,20 @@ def contrast_matrix(kind: str, labels, time_varying):
                     f"{', '.join(map(repr, labels))}")
             L[r, pos[name]] = s
     return L
+
+
+def contrast_covariates(kind: str, labels) -> list:
+    """The time-varying covariates whose contrast the model's labels carry, in label order:
+    ``x`` for every ``"x (between)"`` with a matching ``"x (within)"`` (within-between) or
+    every ``"x (unit mean)"`` (Mundlak). Other kinds are refused as in
+    :func:`contrast_matrix`."""
+    if kind not in CONTRAST_KINDS:
+        contrast_matrix(kind, labels, [])  # raises, saying which model to fit instead
+    tag = " (between)" if kind == "within_between" else " (unit mean)"
+    out = [lab[:-len(tag)] for lab in labels if lab.endswith(tag)]
+    if kind == "within_between":
+        out = [t for t in out if f"{t} (within)" in labels]
+    return out
 
 
 def contrast_draws(kind, labels, time_varying, coef) -> np.ndarray:

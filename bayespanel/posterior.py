@@ -25,7 +25,6 @@ References
 from __future__ import annotations
 
 import json
-import re
 import warnings
 from dataclasses import dataclass
 
@@ -300,22 +299,17 @@ class Posterior:
         WithinBetween: draws of ``b_between - b_within``; CorrelatedEffects: the
         coefficient of the unit mean itself (Mundlak 1978). Rows are covariate names.
         """
-        named = {}
-        labels = self.labels
-        if self.spec.kind == "within_between":
-            for lab in labels:
-                m = re.fullmatch(r"(.*) \(between\)", lab)
-                if m and f"{m.group(1)} (within)" in labels:
-                    named[m.group(1)] = self.draws(lab) - self.draws(f"{m.group(1)} (within)")
-        elif self.spec.kind == "mundlak":
-            for lab in labels:
-                m = re.fullmatch(r"(.*) \(unit mean\)", lab)
-                if m:
-                    named[m.group(1)] = self.draws(lab)
-        else:
+        from .contrasts import contrast_covariates, contrast_draws
+
+        if self.spec.kind not in ("within_between", "mundlak"):
             raise SpecificationError(
                 f"{self.spec.model} does not separate within and between effects; contextual "
                 "effects come from WithinBetween or CorrelatedEffects")
+        terms = contrast_covariates(self.spec.kind, self.labels)
+        coef = self.draws("coef")
+        D = contrast_draws(self.spec.kind, self.labels, terms, coef.reshape(-1, coef.shape[-1]))
+        D = D.reshape(coef.shape[0], coef.shape[1], len(terms))
+        named = {t: D[..., j] for j, t in enumerate(terms)}
         return self._summarise(named, _check_prob(prob))
 
     # ------------------------------------------------------------------ diagnostics

@@ -115,7 +115,5 @@ def holdout_loglik(M, y, codes, test, b, sigma, tau, level):
         R = np.asarray((onehot @ (yr[:, None] - Mr @ b[sl].T))).T
         r = yt[None, :] - b[sl] @ Mt.T
         ta = None if tau is None else np.atleast_1d(tau)[sl, None]
-        shift, sd = gaussian.occasion_conditional(R[:, ct], m[ct][None, :], sigma[sl, None], ta)
-        e = (r - shift) / sd
-        out[sl] = -0.5 * (gaussian.LOG_2PI + e ** 2) - np.log(sd)
+        out[sl] = gaussian.occasion_logpdf(r, R[:, ct], m[ct][None, :], sigma[sl, None], ta)
     return out

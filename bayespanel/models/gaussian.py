@@ -46,6 +46,9 @@ __all__ = [
     "unit_effect_conditional",
     "occasion_conditional",
     "Scaling",
+    "normal_logpdf",
+    "occasion_logpdf",
+    "unit_logdensity",
     "unit_loglik_rows",
     "occasion_loglik_rows",
 ]
@@ -254,6 +257,24 @@ class Scaling:
 
 
 # ---------------------------------------------------------------------------- pointwise (rows)
+def normal_logpdf(r, sd):
+    """``log N(r; 0, sd^2)`` elementwise (arrays broadcast)."""
+    return -0.5 * (LOG_2PI + (r / sd) ** 2) - np.log(sd)
+
+
+def occasion_logpdf(r, R, m, sigma, tau=None):
+    """Log density of one occasion's residual ``r`` given the unit's ``m`` other
+    (training) occasions with residual sum ``R``: :func:`occasion_conditional` applied.
+
+    ``tau=None`` is fixed effects (``nan`` where ``m = 0``), ``tau = 0`` the pooled
+    regression. Arrays broadcast. This is the one implementation of the occasion-level
+    predictive density: the Bayesian LOO terms, the hold-out scores of refits and the
+    reference fits' plug-in densities (:mod:`bayespanel.reference.predictive`) all call it.
+    """
+    shift, sd = occasion_conditional(R, m, sigma, tau)
+    return normal_logpdf(r - shift, sd)
+
+
 def _residuals(M, y, b):
     return y[None, :] - b @ M.T
 
@@ -266,6 +287,54 @@ def _chunks(n_draws, n_cols, budget=2 ** 24):
     step = max(1, int(budget // max(n_cols, 1)))
     for a in range(0, n_draws, step):
         yield slice(a, min(a + step, n_draws))
+
+
+def _groups(codes, n_units=None):
+    """``(order, starts, T)``: a stable sort of the rows by unit, where each unit's rows
+    start in the sorted order, and the units' row counts (``n_units`` units, each with at
+    least one row)."""
+    codes = np.asarray(codes, dtype=np.int64)
+    N = int(codes.max()) + 1 if n_units is None else int(n_units)
+    T = np.bincount(codes, minlength=N)
+    if np.any(T == 0):
+        raise ValueError("every unit code 0..N-1 needs at least one row")
+    order = None if np.all(np.diff(codes) >= 0) else np.argsort(codes, kind="stable")
+    starts = np.concatenate([[0], np.cumsum(T)[:-1]]).astype(np.int64)
+    return order, starts, T.astype(float)
+
+
+def unit_logdensity(r, unit_codes, sigma, tau, n_units=None):
+    """Marginal log density of each unit's rows from their residuals ``r = y - x'b``.
+
+    Parameters
+    ----------
+    r : array (n,) or (S, n)
+        Residuals per row (and draw).
+    unit_codes : array (n,) of int
+        Unit of each row (any order).
+    sigma, tau : float or array (S,)
+        ``tau = 0`` for the pooled regression.
+
+    Returns
+    -------
+    array (N,) or (S, N)
+        :func:`marginal_logdensity` of each unit. This is the one implementation of the
+        unit-level density: :func:`unit_loglik_rows` and the reference fits' plug-in
+        densities call it.
+    """
+    r = np.asarray(r, dtype=float)
+    one = r.ndim == 1
+    r = np.atleast_2d(r)
+    order, starts, T = _groups(unit_codes, n_units)
+    if order is not None:
+        r = r[:, order]
+    rsum = _unit_sums(r, starts)
+    rbar = rsum / T
+    W = _unit_sums(r ** 2, starts) - T * rbar ** 2
+    sig = np.reshape(sigma, (-1, 1)) if np.ndim(sigma) else sigma
+    ta = np.reshape(tau, (-1, 1)) if np.ndim(tau) else tau
+    out = marginal_logdensity(T, np.maximum(W, 0.0), rbar ** 2, sig, ta)
+    return out[0] if one else out
 
 
 def unit_loglik_rows(M, y, unit_codes, b, sigma, tau):
@@ -286,28 +355,22 @@ def unit_loglik_rows(M, y, unit_codes, b, sigma, tau):
     Returns
     -------
     array (S, N)
-        :func:`marginal_logdensity` of each unit, computed in chunks of draws.
+        :func:`unit_logdensity` of each unit, computed in chunks of draws.
     """
     M, y, b = np.asarray(M, float), np.asarray(y, float), np.atleast_2d(b)
-    T = np.bincount(unit_codes).astype(float)
-    starts = np.concatenate([[0], np.cumsum(T)[:-1]]).astype(np.int64)
-    out = np.empty((b.shape[0], len(T)))
+    N = int(np.max(unit_codes)) + 1
+    out = np.empty((b.shape[0], N))
     for sl in _chunks(b.shape[0], len(y)):
-        r = _residuals(M, y, b[sl])
-        rsum = _unit_sums(r, starts)
-        rbar = rsum / T
-        W = _unit_sums(r ** 2, starts) - T * rbar ** 2
-        out[sl] = marginal_logdensity(T, np.maximum(W, 0.0), rbar ** 2,
-                                      sigma[sl, None], tau[sl, None])
+        out[sl] = unit_logdensity(_residuals(M, y, b[sl]), unit_codes, sigma[sl], tau[sl], N)
     return out
 
 
 def occasion_loglik_rows(M, y, unit_codes, b, sigma, tau=None):
     """Log density of each row given the other rows of its unit, for every draw.
 
-    ``log N(r_it; shift, sd)`` with the shift and SD of :func:`occasion_conditional`
-    (Bürkner, Gabry and Vehtari 2021). ``tau=None`` is the fixed-effects version (nan for
-    units with a single row); ``tau = 0`` the pooled regression.
+    :func:`occasion_logpdf` with ``m = T_i - 1`` and ``R`` the sum of the unit's other
+    residuals (Bürkner, Gabry and Vehtari 2021). ``tau=None`` is the fixed-effects version
+    (nan for units with a single row); ``tau = 0`` the pooled regression.
 
     Returns
     -------
@@ -323,7 +386,5 @@ def occasion_loglik_rows(M, y, unit_codes, b, sigma, tau=None):
         r = _residuals(M, y, b[sl])
         R = _unit_sums(r, starts)[:, codes] - r
         ta = None if tau is None else tau[sl, None]
-        shift, sd = occasion_conditional(R, m[None, :], sigma[sl, None], ta)
-        e = (r - shift) / sd
-        out[sl] = -0.5 * (LOG_2PI + e ** 2) - np.log(sd)
+        out[sl] = occasion_logpdf(r, R, m[None, :], sigma[sl, None], ta)
     return out

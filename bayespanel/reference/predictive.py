@@ -13,8 +13,11 @@ rows with the plug-in predictive density at the level the question needs.
   ``sigma^2 I + tau^2 J`` for the random intercept; pooled is the product of normals;
   fixed effects have no such density.
 
-The formulas are those of ``design.md`` section 4; the arrays functions here are the
-single place they are written for the reference side.
+The formulas are those of ``design.md`` section 4, written once in
+:mod:`bayespanel.models.gaussian` (:func:`~bayespanel.models.gaussian.occasion_logpdf`,
+:func:`~bayespanel.models.gaussian.unit_logdensity`); the functions here take the reference
+fits' variances and call them, so the Bayesian LOO terms and the plug-in densities are the
+same code.
 
 References
 ----------
@@ -29,48 +32,30 @@ import numpy as np
 import pandas as pd
 
 from ..errors import EstimationError, SpecificationError, choices_error
+from ..models import gaussian
 
 __all__ = ["occasion_logpdf", "fixed_occasion_logpdf", "unit_logpdf", "log_predictive",
            "exact_holdout"]
 
-_LOG2PI = float(np.log(2 * np.pi))
-
-
-def _norm_logpdf(r, var):
-    return -0.5 * (_LOG2PI + np.log(var) + r ** 2 / var)
-
-
 def occasion_logpdf(resid, R, m, sigma2, tau2):
     """Random intercept: ``log p(y_it | other m rows of the unit)``; ``resid = y - x'b``,
-    ``R`` the sum of the unit's other residuals (arrays broadcast)."""
-    m = np.asarray(m, dtype=float)
-    denom = sigma2 + m * tau2
-    mean = tau2 * np.asarray(R, dtype=float) / denom
-    var = sigma2 + tau2 * sigma2 / denom
-    return _norm_logpdf(np.asarray(resid) - mean, var)
+    ``R`` the sum of the unit's other residuals (arrays broadcast).
+    :func:`bayespanel.models.gaussian.occasion_logpdf` on variances."""
+    return gaussian.occasion_logpdf(np.asarray(resid, dtype=float), np.asarray(R, dtype=float),
+                                    np.asarray(m, dtype=float), np.sqrt(sigma2), np.sqrt(tau2))
 
 
 def fixed_occasion_logpdf(resid, R, m, sigma2):
     """Fixed effects: ``N(R/m, sigma^2 (1 + 1/m))`` for the residual; ``nan`` when m = 0."""
-    m = np.asarray(m, dtype=float)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        out = _norm_logpdf(np.asarray(resid) - np.asarray(R) / m, sigma2 * (1 + 1 / m))
-    return np.where(m > 0, out, np.nan)
+    return gaussian.occasion_logpdf(np.asarray(resid, dtype=float), np.asarray(R, dtype=float),
+                                    np.asarray(m, dtype=float), np.sqrt(sigma2), None)
 
 
 def unit_logpdf(resid, codes, sigma2, tau2, n_units=None):
-    """Random intercept: ``log p(y_i)`` per unit from the residuals of its rows."""
-    codes = np.asarray(codes, dtype=np.int64)
-    G = int(codes.max()) + 1 if n_units is None else n_units
-    T = np.bincount(codes, minlength=G).astype(float)
-    s = np.bincount(codes, weights=resid, minlength=G)
-    ss = np.bincount(codes, weights=resid ** 2, minlength=G)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        rbar = s / T
-    W = ss - T * rbar ** 2
-    lam = sigma2 + T * tau2
-    return -0.5 * (T * _LOG2PI + (T - 1) * np.log(sigma2) + np.log(lam) + W / sigma2
-                   + T * rbar ** 2 / lam)
+    """Random intercept: ``log p(y_i)`` per unit from the residuals of its rows
+    (:func:`bayespanel.models.gaussian.unit_logdensity` on variances)."""
+    return gaussian.unit_logdensity(np.asarray(resid, dtype=float), codes, np.sqrt(sigma2),
+                                    np.sqrt(tau2), n_units)
 
 
 def _model_matrix(all_labels, terms, X, Xbar):
@@ -167,14 +152,11 @@ def log_predictive(result, X, y, units, level="occasion", unit_means=None):
         R = np.where(known, (extra["unit_count"] * extra["unit_resid_mean"])[
             np.maximum(pos, 0)], 0.0)[codes]
         if est == "pooled":
-            return _norm_logpdf(resid, s2)
+            return gaussian.normal_logpdf(resid, np.sqrt(s2))
         if est == "within":
             return fixed_occasion_logpdf(resid, R, m, s2)
         return occasion_logpdf(resid, R, m, s2, t2)
-    if est == "pooled":
-        vals = np.bincount(codes, weights=_norm_logpdf(resid, s2), minlength=len(ulab))
-    else:
-        vals = unit_logpdf(resid, codes, s2, t2, len(ulab))
+    vals = unit_logpdf(resid, codes, s2, 0.0 if est == "pooled" else t2, len(ulab))
     return pd.Series(vals, index=pd.Index(ulab, name="unit"), name=f"log p ({level})")
 
 
