@@ -10,8 +10,11 @@ repository), then times, on a local Dask cluster:
   ML);
 * the Bayesian random-intercept fit (build + NUTS) from the statistics.
 
-It prints rows per second per core of the design pass, peak memory (this process and each
-worker) and the time split. ``--compare`` also times the design pass with thread and
+It prints rows per second per core of the design pass, the time split and memory: the
+peak resident memory of each pass above its start (sampled every few milliseconds over
+this process and its worker processes) and the peak of the whole run, each also as a
+ratio to the size of the numeric columns the design uses (``[X, y]`` as float64), the
+baseline of the same run. ``--compare`` also times the design pass with thread and
 process workers on the same files. Run ``python bench/bench_scale.py --rows 2000000`` for a
 quick look.
 """
@@ -54,6 +57,69 @@ def generate(path: Path, rows: int, occasions: int, k: int, files: int, group_ro
         cols.update({f"x{j + 1}": X[:, j] for j in range(k)})
         pq.write_table(pa.table(cols), path / f"part-{f:04d}.parquet", row_group_size=group_rows)
     return units
+
+
+def _release_freed_memory():
+    """Return freed heap pages to the system (glibc), so that each pass starts from the
+    memory it needs rather than from the high-water mark of the one before."""
+    import ctypes
+    import gc
+
+    gc.collect()
+    try:
+        import pyarrow as pa
+
+        pa.default_memory_pool().release_unused()
+    except (ImportError, AttributeError):
+        pass
+    try:
+        ctypes.CDLL("libc.so.6").malloc_trim(0)
+    except (OSError, AttributeError):  # not glibc: the figures then include freed pages
+        pass
+
+
+class PeakRSS:
+    """Peak resident memory (MB) of this process and its children while a block runs,
+    sampled every ``interval`` seconds by a thread; ``.start`` and ``.peak`` in MB."""
+
+    def __init__(self, interval: float = 0.005):
+        import psutil
+
+        self.proc = psutil.Process()
+        self.interval = interval
+
+    def _rss(self) -> float:
+        total = self.proc.memory_info().rss
+        for c in self.proc.children(recursive=True):
+            try:
+                total += c.memory_info().rss
+            except Exception:  # a child that ended meanwhile
+                pass
+        return total / 2 ** 20
+
+    def __enter__(self):
+        import threading
+
+        _release_freed_memory()
+        self.start = self.peak = self._rss()
+        self._stop = threading.Event()
+
+        def watch():
+            while not self._stop.wait(self.interval):
+                self.peak = max(self.peak, self._rss())
+
+        self._thread = threading.Thread(target=watch, daemon=True)
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc):
+        self._stop.set()
+        self._thread.join()
+        self.peak = max(self.peak, self._rss())
+
+    @property
+    def above(self) -> float:
+        return self.peak - self.start
 
 
 def maxrss_mb() -> float:
@@ -119,10 +185,15 @@ def main(argv=None):
           f"imported in {t_start:.1f} s")
     timings = {}
 
+    peaks = {}
+
     def timed(name, fn):
-        t = time.perf_counter()
-        out = fn()
-        timings[name] = time.perf_counter() - t
+        with PeakRSS() as mem:
+            t = time.perf_counter()
+            out = fn()
+            timings[name] = time.perf_counter() - t
+        if name.startswith("pass:"):
+            peaks[name] = mem
         return out
 
     panel = bp.Panel.from_parquet(path, unit="unit", time="time", engine="dask", client=client,
@@ -181,6 +252,12 @@ def main(argv=None):
           "before the first pass: interpreter, PyMC, cluster); worker process(es) "
           + ", ".join(f"{v:.0f} MB" for v in workers.values())
           + f"; numeric columns if loaded: {numeric_mb:.0f} MB")
+    print(f"memory as a ratio to the numeric columns ({numeric_mb:.0f} MB):")
+    for name, mem in peaks.items():
+        print(f"  {name:<40s} peak {mem.above:7.0f} MB above its start ({mem.start:.0f} MB)"
+              f" = {mem.above / numeric_mb:.2f}x")
+    print(f"  {'max RSS of the run':<40s} {maxrss_mb():7.0f} MB = "
+          f"{maxrss_mb() / numeric_mb:.2f}x")
 
     if args.compare:
         other = local_client(args.workers, processes=not args.processes)  # warmed on start

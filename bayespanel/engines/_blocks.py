@@ -26,6 +26,7 @@ import pandas as pd
 
 from .. import suffstats
 from ..errors import PanelDataError
+from . import _merge
 
 __all__ = ["StructurePiece", "DesignPiece", "augment", "augment_unit_cp", "select_columns"]
 
@@ -109,12 +110,27 @@ def _remap(piece: StructurePiece, occasions: np.ndarray) -> np.ndarray:
 
 
 def merge_structure(pieces) -> StructurePiece:
+    """Merge structure pieces: counts add and masks OR per unit (units may be split
+    between pieces; pieces of files sorted by unit are concatenated, see _merge.chain)."""
     full = [p for p in pieces if p.n_rows]
     if not full:
         return pieces[0]
     if len(full) == 1:
         return full[0]
-    occ = _sorted_unique(np.concatenate([p.occasions for p in full]), "occasions")
+    same = all(len(p.occasions) == len(full[0].occasions)
+               and np.array_equal(p.occasions, full[0].occasions) for p in full[1:])
+    occ = full[0].occasions if same else _sorted_unique(
+        np.concatenate([p.occasions for p in full]), "occasions")
+    n_rows = sum(p.n_rows for p in full)
+    plan = _merge.chain([p.keys for p in full])
+    if plan is not None:
+        remapped = [_remap(p, occ) for p in full]
+        masks = plan.concat(remapped)
+        counts = plan.concat([p.counts for p in full])
+        for j, r in plan.joined():
+            counts[r] += full[j].counts[0]
+            masks[r] |= remapped[j][0]
+        return StructurePiece(n_rows, plan.concat([p.keys for p in full]), counts, occ, masks)
     keys = np.concatenate([p.keys for p in full])
     ukeys, inv = _codes(keys)
     counts = np.bincount(inv, weights=np.concatenate([p.counts for p in full]),
@@ -123,7 +139,7 @@ def merge_structure(pieces) -> StructurePiece:
     masks = np.zeros((len(ukeys), allm.shape[1]), dtype=np.uint64)
     for w in range(allm.shape[1]):
         np.bitwise_or.at(masks[:, w], inv, allm[:, w])
-    return StructurePiece(sum(p.n_rows for p in full), ukeys, counts, occ, masks)
+    return StructurePiece(n_rows, ukeys, counts, occ, masks)
 
 
 def observed_occasions(masks: np.ndarray) -> np.ndarray:
@@ -167,13 +183,11 @@ def _merge_optional(pieces):
 
 
 def merge_describe(pieces) -> DescribePiece:
-    out = pieces[0]
-    for p in pieces[1:]:
-        out = DescribePiece(out.n_missing + p.n_missing,
-                            [suffstats.merge(a, b) for a, b in zip(out.parts, p.parts)],
-                            np.maximum(out.maxabs, p.maxabs))
-    out.structure = _merge_optional(pieces)
-    return out
+    """Merge describe pieces column by column (one merge of all pieces per column)."""
+    parts = [_merge.merge_parts([p.parts[c] for p in pieces])[0]
+             for c in range(len(pieces[0].parts))]
+    return DescribePiece(sum(p.n_missing for p in pieces), parts,
+                         np.max([p.maxabs for p in pieces], axis=0), _merge_optional(pieces))
 
 
 def _check_inf(x, sub, column, unit, time=None):
@@ -292,37 +306,14 @@ def _unit_cp(Z, keys, part) -> np.ndarray:
     return out
 
 
-def _merge_unit_cp(a: DesignPiece, b: DesignPiece, merged: suffstats.Partial):
-    """Per-unit cross-products of two pieces: fragments of a unit combine with the
-    between-fragment term ``sum_f n_f (m_f - m)(m_f - m)'`` (Chan, Golub and LeVeque 1979)."""
-    pa, pb = a.part, b.part
-    if pa.n == 0:
-        return b.unit_cp
-    if pb.n == 0:
-        return a.unit_cp
-    cps = np.concatenate([a.unit_cp, b.unit_cp])
-    counts = np.concatenate([pa.counts, pb.counts])
-    offsets = np.concatenate([pa.offsets, pb.offsets + (pb.ref - pa.ref)])
-    inv = np.searchsorted(merged.keys, np.concatenate([pa.keys, pb.keys]))
-    dev = offsets - (merged.offsets + (merged.ref - pa.ref))[inv]
-    cps += counts[:, None, None] * dev[:, :, None] * dev[:, None, :]
-    order = np.argsort(inv, kind="stable")   # every merged unit has >= 1 fragment
-    inv = inv[order]
-    starts = np.flatnonzero(np.concatenate([[True], inv[1:] != inv[:-1]]))
-    return np.add.reduceat(cps[order], starts, axis=0)
-
-
 def merge_design(pieces) -> DesignPiece:
     """Merge the pieces of several partitions (units may be split between them)."""
-    out = pieces[0]
-    for p in pieces[1:]:
-        part = suffstats.merge(out.part, p.part)
-        ucp = _merge_unit_cp(out, p, part) if out.unit_cp is not None else None
-        out = DesignPiece(out.n_input + p.n_input, out.missing + p.missing,
-                          out.n_dropped + p.n_dropped, np.maximum(out.maxabs, p.maxabs),
-                          part, ucp)
-    out.structure = _merge_optional(pieces)
-    return out
+    cps = [p.unit_cp for p in pieces] if pieces[0].unit_cp is not None else None
+    part, ucp = _merge.merge_parts([p.part for p in pieces], cps)
+    return DesignPiece(sum(p.n_input for p in pieces), sum(p.missing for p in pieces),
+                       sum(p.n_dropped for p in pieces),
+                       np.max([p.maxabs for p in pieces], axis=0), part, ucp,
+                       _merge_optional(pieces))
 
 
 # ---------------------------------------------------------------------------- derived designs
@@ -343,7 +334,7 @@ def augment(stats: suffstats.SuffStats, A: np.ndarray, B: np.ndarray, names=None
     total = within + (dev * stats.unit_count[:, None]).T @ dev
     part = suffstats.Partial(int(stats.n), mean, np.zeros_like(mean), total, within,
                              stats.unit_keys, stats.unit_count, dev)
-    return suffstats.finalize(part, names=names)
+    return _merge.finalize_inplace(part, names=names)  # dev is ours: becomes unit_mean
 
 
 def augment_unit_cp(unit_cp: np.ndarray, A: np.ndarray) -> np.ndarray:

@@ -49,6 +49,7 @@ from ..errors import (DataHandlingWarning, EstimationError, FormulaError, PanelD
                       SpecificationError, choices_error)
 from ..formula import safe_context, screen
 from . import _blocks as blk
+from . import _merge
 
 __all__ = ["DaskPanel", "DaskDesign", "SCHEDULERS", "local_client", "close_local_client"]
 
@@ -395,7 +396,7 @@ def _describe_row(c, part, n_missing, maxabs) -> dict:
         return {"variable": c, "n": 0, "n_missing": n_missing, "mean": np.nan,
                 "sd_overall": np.nan, "sd_between": np.nan, "sd_within": np.nan,
                 "share_within": np.nan, "varies_within": False}
-    st = suffstats.finalize(part)
+    st = _merge.finalize_inplace(part)
     n = st.n
     ss_total, ss_within = float(st.total[0, 0]), float(st.within[0, 0])
     scale = max(maxabs, 1.0)
@@ -511,7 +512,7 @@ class DaskDesign:
                 DataHandlingWarning, stacklevel=4)
         if piece.part.n == 0:
             raise PanelDataError("no complete rows remain after dropping missing values")
-        stats = suffstats.finalize(piece.part, names=list(spec.terms) + [spec.outcome])
+        stats = _merge.finalize_inplace(piece.part, names=list(spec.terms) + [spec.outcome])
         if stats.n_units < 2:
             raise PanelDataError(
                 f"only {stats.n_units} unit of {p.unit!r} has complete rows; at least 2 are "
