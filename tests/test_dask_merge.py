@@ -95,6 +95,9 @@ def test_design_pass_matches_memory_on_every_layout(wage, name, count_general):
             assert rel(getattr(sa, f), getattr(sb, f)) < 1e-10, (kind, f)
     assert rel(a.unit_cross_products(), unit_cp_direct(b)) < 1e-10
     assert dp.structure() == mem.structure()
+    da, db = dp.describe(), mem.describe()  # a fresh pass, columns merged in one group
+    num = [c for c in da.columns if c != "varies_within"]
+    assert rel(da[num].to_numpy(float), db[num].to_numpy(float)) < 1e-10
 
 
 @pytest.mark.parametrize("name", ["units split", "interleaved units (unsorted)"])
@@ -167,3 +170,29 @@ def test_finalize_inplace_equals_finalize_with_many_lengths():
     np.testing.assert_array_equal(a.group_count, b.group_count)
     for f in FIELDS:
         assert rel(getattr(b, f), getattr(a, f)) < 1e-12, f
+
+
+def test_sorted_files_with_dropped_rows_match_memory(wage, count_general):
+    # Source: wage panel (linearmodels.datasets) with values removed: the structure counts
+    # all rows, the statistics the kept ones, both merged by concatenation.
+    import warnings
+
+    from bayespanel.errors import DataHandlingWarning
+
+    df, _, _ = wage
+    df = df.copy()
+    rng = np.random.default_rng(12)
+    df.loc[rng.choice(len(df), 50, replace=False), "exper"] = np.nan
+    df.loc[df["nr"] == df["nr"].iloc[0], "union"] = np.nan  # a unit with no complete row
+    pieces, _ = layouts(df, "nr")["units split"]
+    dp = DaskPanel(as_dask(df, pieces), "nr", "year", client="synchronous")
+    mem = bp.Panel(df, "nr", "year")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DataHandlingWarning)
+        a, b = dp.design(WAGE), mem.design(WAGE)
+    assert not count_general
+    assert a.n_dropped == b.n_dropped and list(a.units) == list(b.units)
+    for f in FIELDS:
+        assert rel(getattr(a.suffstats(), f), getattr(suffstats.from_design(b), f)) < 1e-10
+    assert dp.structure() == mem.structure()
+    assert dp.occasions_per_unit.to_dict() == mem.occasions_per_unit.to_dict()

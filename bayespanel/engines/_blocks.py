@@ -109,9 +109,13 @@ def _remap(piece: StructurePiece, occasions: np.ndarray) -> np.ndarray:
     return out
 
 
-def merge_structure(pieces) -> StructurePiece:
+def merge_structure(pieces, shared=None) -> StructurePiece:
     """Merge structure pieces: counts add and masks OR per unit (units may be split
-    between pieces; pieces of files sorted by unit are concatenated, see _merge.chain)."""
+    between pieces; pieces of files sorted by unit are concatenated, see _merge.chain).
+
+    ``shared``: the merged ``(keys, counts)`` of design pieces whose structure shares its
+    keys and counts with their statistics (no row dropped); used as they are.
+    """
     full = [p for p in pieces if p.n_rows]
     if not full:
         return pieces[0]
@@ -126,11 +130,13 @@ def merge_structure(pieces) -> StructurePiece:
     if plan is not None:
         remapped = [_remap(p, occ) for p in full]
         masks = plan.concat(remapped)
-        counts = plan.concat([p.counts for p in full])
+        keys, counts = shared or (plan.concat([p.keys for p in full]),
+                                  plan.concat([p.counts for p in full]))
         for j, r in plan.joined():
-            counts[r] += full[j].counts[0]
+            if shared is None:
+                counts[r] += full[j].counts[0]
             masks[r] |= remapped[j][0]
-        return StructurePiece(n_rows, plan.concat([p.keys for p in full]), counts, occ, masks)
+        return StructurePiece(n_rows, keys, counts, occ, masks)
     keys = np.concatenate([p.keys for p in full])
     ukeys, inv = _codes(keys)
     counts = np.bincount(inv, weights=np.concatenate([p.counts for p in full]),
@@ -156,25 +162,58 @@ def occasion_positions(mask_row: np.ndarray) -> np.ndarray:
 # ---------------------------------------------------------------------------- describe
 @dataclass
 class DescribePiece:
+    """Per-column moments of a block of rows: ``groups`` of ``(columns, Partial)``, where
+    the columns of one group were observed on the same rows, so they share one set of
+    unit keys and counts (columns without missing values form one group)."""
+
     n_missing: np.ndarray
-    parts: list
+    groups: list
     maxabs: np.ndarray
     structure: StructurePiece | None = None
+
+    def column(self, j: int) -> suffstats.Partial:
+        """The moments of column ``j`` alone (its unit means copied out of its group)."""
+        for cols, part in self.groups:
+            if j in cols:
+                i = cols.index(j)
+                if len(cols) == 1:
+                    return part
+                c = [i]
+                return suffstats.Partial(part.n, part.ref[c], part.shift[c],
+                                         part.m2[np.ix_(c, c)], part.within_m2[np.ix_(c, c)],
+                                         part.keys, part.counts, part.offsets[:, c])
+        raise KeyError(j)
+
+    def layout(self) -> tuple:
+        return tuple(cols for cols, _ in self.groups)
+
+    def singletons(self) -> list:
+        return [((j,), self.column(j)) for j in range(len(self.n_missing))]
 
 
 def describe_block(pdf, unit, columns, time=None) -> DescribePiece:
     """Per-column moments of one partition (and its structure when ``time`` is given)."""
     st = None if time is None else structure_block(pdf, unit, time)
     keys = pdf[unit].to_numpy()
-    parts, n_missing, maxabs = [], [], []
-    for c in columns:
-        x = pdf[c].to_numpy(dtype=float, na_value=np.nan)
+    n_missing, maxabs, complete, groups = [], [], [], []
+    X = np.empty((len(pdf), len(columns)))
+    for j, c in enumerate(columns):
+        x = X[:, j]
+        x[:] = pdf[c].to_numpy(dtype=float, na_value=np.nan)
         ok = ~np.isnan(x)
-        _check_inf(x[ok], pdf.loc[ok], c, unit)
+        if np.isinf(x).any():
+            _check_inf(x[ok], pdf.loc[ok], c, unit)
         n_missing.append(int((~ok).sum()))
-        parts.append(suffstats.partial_inplace(x[ok][:, None].copy(), keys[ok]))
         maxabs.append(float(np.abs(x[ok]).max()) if ok.any() else 0.0)
-    return DescribePiece(np.asarray(n_missing, np.int64), parts, np.asarray(maxabs), st)
+        if ok.all():
+            complete.append(j)
+        else:
+            groups.append(((j,), suffstats.partial_inplace(x[ok][:, None].copy(), keys[ok])))
+    if complete:
+        Z = np.ascontiguousarray(X[:, complete]) if len(complete) < len(columns) else X
+        groups.append((tuple(complete), suffstats.partial_inplace(Z, keys)))
+    groups.sort(key=lambda g: g[0])
+    return DescribePiece(np.asarray(n_missing, np.int64), groups, np.asarray(maxabs), st)
 
 
 def _merge_optional(pieces):
@@ -183,10 +222,17 @@ def _merge_optional(pieces):
 
 
 def merge_describe(pieces) -> DescribePiece:
-    """Merge describe pieces column by column (one merge of all pieces per column)."""
-    parts = [_merge.merge_parts([p.parts[c] for p in pieces])[0]
-             for c in range(len(pieces[0].parts))]
-    return DescribePiece(sum(p.n_missing for p in pieces), parts,
+    """Merge describe pieces group by group when their columns group alike in every
+    piece (the usual case: no missing values), else column by column."""
+    layout = pieces[0].layout()
+    if all(p.layout() == layout for p in pieces[1:]):
+        per_piece = [p.groups for p in pieces]
+    else:
+        layout = tuple((j,) for j in range(len(pieces[0].n_missing)))
+        per_piece = [p.singletons() for p in pieces]
+    groups = [(cols, _merge.merge_parts([g[i][1] for g in per_piece])[0])
+              for i, cols in enumerate(layout)]
+    return DescribePiece(sum(p.n_missing for p in pieces), groups,
                          np.max([p.maxabs for p in pieces], axis=0), _merge_optional(pieces))
 
 
@@ -286,6 +332,8 @@ def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
     maxabs = np.abs(Z).max(axis=0) if len(Z) else np.zeros(Z.shape[1])
     Zrows = Z.copy() if spec.unit_cp else None
     part = suffstats.partial_inplace(Z, keys)
+    if st is not None and keep.all() and len(st.keys) == len(part.keys):
+        st.keys, st.counts = part.keys, part.counts  # the same units and counts: share them
     ucp = None if Zrows is None else _unit_cp(Zrows, keys, part)
     return DesignPiece(n_input, missing, int((~keep).sum()), maxabs, part, ucp, st)
 
@@ -310,10 +358,24 @@ def merge_design(pieces) -> DesignPiece:
     """Merge the pieces of several partitions (units may be split between them)."""
     cps = [p.unit_cp for p in pieces] if pieces[0].unit_cp is not None else None
     part, ucp = _merge.merge_parts([p.part for p in pieces], cps)
+    st = None
+    if pieces[0].structure is not None:
+        sts = [p.structure for p in pieces]
+        same = all(_shares_units(p) for p in pieces) and _merge.chain(
+            [p.part.keys for p in pieces if p.part.n]) is not None
+        st = merge_structure(sts, shared=(part.keys, part.counts) if same else None)
     return DesignPiece(sum(p.n_input for p in pieces), sum(p.missing for p in pieces),
                        sum(p.n_dropped for p in pieces),
-                       np.max([p.maxabs for p in pieces], axis=0), part, ucp,
-                       _merge_optional(pieces))
+                       np.max([p.maxabs for p in pieces], axis=0), part, ucp, st)
+
+
+def _shares_units(piece: DesignPiece) -> bool:
+    """Whether the piece's structure holds the very key and count arrays of its
+    statistics (every row kept), or both are empty."""
+    st, part = piece.structure, piece.part
+    if part.n == 0:
+        return st.n_rows == 0
+    return st.keys is part.keys and st.counts is part.counts
 
 
 # ---------------------------------------------------------------------------- derived designs

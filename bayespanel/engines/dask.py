@@ -362,8 +362,8 @@ class DaskPanel:
         if need:
             self._adopt(piece.structure)
         rows = []
-        for c, part, n_miss, mx in zip(columns, piece.parts, piece.n_missing, piece.maxabs):
-            rows.append(_describe_row(c, part, int(n_miss), float(mx)))
+        for j, (c, n_miss, mx) in enumerate(zip(columns, piece.n_missing, piece.maxabs)):
+            rows.append(_describe_row(c, piece.column(j), int(n_miss), float(mx)))
         return pd.DataFrame(rows).set_index("variable")
 
     # ------------------------------------------------------------------ design
@@ -396,13 +396,12 @@ def _describe_row(c, part, n_missing, maxabs) -> dict:
         return {"variable": c, "n": 0, "n_missing": n_missing, "mean": np.nan,
                 "sd_overall": np.nan, "sd_between": np.nan, "sd_within": np.nan,
                 "share_within": np.nan, "varies_within": False}
-    st = _merge.finalize_inplace(part)
-    n = st.n
-    ss_total, ss_within = float(st.total[0, 0]), float(st.within[0, 0])
+    n = int(part.n)
+    ss_total, ss_within = float(part.m2[0, 0]), float(part.within_m2[0, 0])
     scale = max(maxabs, 1.0)
-    um = st.unit_mean[:, 0]
+    um = part.offsets[:, 0] + part.ref[0]
     return {
-        "variable": c, "n": n, "n_missing": n_missing, "mean": float(st.mean[0]),
+        "variable": c, "n": n, "n_missing": n_missing, "mean": float(part.mean[0]),
         "sd_overall": float(np.sqrt(ss_total / (n - 1))) if n > 1 else np.nan,
         "sd_between": float(um.std(ddof=1)) if len(um) > 1 else np.nan,
         "sd_within": float(np.sqrt(ss_within / (n - 1))) if n > 1 else np.nan,
