@@ -29,9 +29,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .errors import BayespanelError, SpecificationError
-from .loo import LEVELS, LOOResult, loo, reference_cv
-from .loo._draws import check_level
+from .errors import EstimationError, SpecificationError
+from .loo import LOOResult, loo, reference_cv
+from .loo._draws import check_level, outcome_measure
 
 __all__ = ["compare", "coef_table", "COMPARE_COLUMNS"]
 
@@ -47,19 +47,85 @@ def _is_reference(obj) -> bool:
     return hasattr(obj, "estimator") and hasattr(obj, "refit")
 
 
-def _rows_of(name, obj):
-    """``(y, unit_codes)`` of a model's estimation rows, to check all share them."""
+def _family_of(obj):
+    """The outcome family a model scores (``None`` when unknown)."""
+    if isinstance(obj, LOOResult):
+        return obj.family
+    lspec = getattr(obj, "lspec", None)
+    return lspec.family if lspec is not None else "gaussian"
+
+
+def _outcome_of(name, obj):
+    """What a model was fitted to, for the checks that all models answer one question:
+    ``y``, unit codes and (when known) occasion labels of the estimation rows, the
+    outcome's name, the family and the binomial trials. ``None`` for a LOOResult."""
+    if isinstance(obj, LOOResult):
+        return None
     if _is_posterior(obj):
         if obj.rows is None:
             raise SpecificationError(f"model {name!r}: the posterior has no estimation rows")
         _, y, codes = obj.rows
-        return np.asarray(y, float), np.asarray(codes)
-    if _is_reference(obj):
+        time, outcome = getattr(obj, "time", None), obj.spec.outcome
+    elif _is_reference(obj):
         if obj.design is None:
             raise SpecificationError(f"model {name!r}: the reference fit has no design; fit "
                                      "it from a Panel")
-        return obj.design.y, obj.design.unit_codes
-    return None
+        d = obj.design
+        y, codes, time, outcome = d.y, d.unit_codes, d.time, d.outcome
+    else:
+        return None
+    family = _family_of(obj)
+    trials = getattr(obj, "trials", None)
+    if family == "bernoulli":
+        trials = np.ones(len(y))
+    return {"y": np.asarray(y, float), "codes": np.asarray(codes), "outcome": outcome,
+            "time": None if time is None else np.asarray(time), "family": family,
+            "trials": None if trials is None else np.asarray(trials, float)}
+
+
+def _check_same_question(models):
+    """Refuse to rank models fitted on different rows or outcomes, or whose pointwise
+    terms are log probabilities (discrete families) against log densities (continuous)."""
+    first = None
+    for name, obj in models.items():
+        o = _outcome_of(name, obj)
+        if o is None:
+            continue
+        if first is None:
+            first = (name, o)
+            continue
+        n0, f = first
+        if (len(o["y"]) != len(f["y"]) or not np.array_equal(o["codes"], f["codes"])
+                or (o["time"] is not None and f["time"] is not None
+                    and not np.array_equal(o["time"].astype(str), f["time"].astype(str)))):
+            raise SpecificationError(
+                f"model {name!r} is not fitted on the same rows as {n0!r} "
+                f"({len(o['y'])} vs {len(f['y'])} rows); LOO values can only be "
+                "compared on the same rows")
+        if not np.array_equal(o["y"], f["y"]):
+            bad = int(np.flatnonzero(o["y"] != f["y"])[0])
+            raise SpecificationError(
+                f"model {name!r} ({o['outcome']!r}) does not model the same outcome as "
+                f"{n0!r} ({f['outcome']!r}): the values differ first at estimation row {bad}; "
+                "LOO values of different outcomes cannot be ranked")
+        if (o["trials"] is not None and f["trials"] is not None
+                and not np.array_equal(o["trials"], f["trials"])):
+            raise SpecificationError(
+                f"model {name!r} and {n0!r} count successes out of different numbers of "
+                "trials, so they predict different outcomes and cannot be ranked")
+    measures = {}
+    for name, obj in models.items():
+        fam = _family_of(obj)
+        if fam is not None:
+            measures.setdefault(outcome_measure(fam), []).append(f"{name!r} ({fam})")
+    if len(measures) > 1:
+        raise SpecificationError(
+            "these models score the outcome on different scales: "
+            + ", ".join(measures["mass"]) + " give log probabilities of a discrete outcome, "
+            + ", ".join(measures["density"]) + " log densities of a continuous one; their "
+            "ELPDs are not comparable at any level (see docs/comparison.md). Compare models "
+            "of one kind: the count or binary families among themselves, or the Gaussian "
+            "and Student-t models among themselves")
 
 
 def _evaluate(name, obj, level, reference_folds, loo_kwargs, seed):
@@ -80,12 +146,12 @@ def _evaluate(name, obj, level, reference_folds, loo_kwargs, seed):
     if _is_posterior(obj):
         try:
             return loo(obj, level, **loo_kwargs), "bayes", ""
-        except BayespanelError as exc:
+        except EstimationError as exc:  # the level is undefined for this model
             return None, "bayes", str(exc)
     if _is_reference(obj):
         try:
             return reference_cv(obj, level, folds=reference_folds, seed=seed), "reference", ""
-        except BayespanelError as exc:
+        except EstimationError as exc:
             return None, "reference", str(exc)
     raise SpecificationError(
         f"model {name!r} is a {type(obj).__name__}; give a Posterior, a ReferenceResult or a "
@@ -127,7 +193,11 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
     Parameters
     ----------
     models : dict of str -> Posterior, ReferenceResult or LOOResult
-        All fitted on the same estimation rows (checked).
+        All fitted on the same estimation rows and outcome (checked). Latent-effect
+        posteriors (``family=``, ``random_slopes=``) enter through the same PSIS-LOO on
+        their own terms (quadrature at the unit level, the factorised conditional at the
+        occasion level); a discrete family (log probabilities) is refused beside a
+        continuous model (log densities) at either level.
     level : {"unit", "occasion"}
         ``"unit"`` ranks the models by how well they predict a new unit; ``"occasion"`` by
         how well they predict a new occasion of a unit already seen. See
@@ -152,6 +222,13 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
         effects at the unit level) come last with ``nan`` values and the reason in
         ``note``. Only plain floats, ints and strings, so ``to_json`` works.
 
+    Raises
+    ------
+    SpecificationError
+        When the models differ in their rows, their outcome (values, or binomial trials) or
+        the scale of their terms (probabilities of a discrete outcome against densities of
+        a continuous one); see docs/comparison.md.
+
     Notes
     -----
     When some model cannot predict some points (fixed effects and units with a single
@@ -161,19 +238,7 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
     check_level(level)
     if not isinstance(models, dict) or not models:
         raise SpecificationError("models must be a non-empty dict of name -> fitted model")
-    ref_rows = None
-    for name, obj in models.items():
-        rows = _rows_of(name, obj)
-        if rows is None:
-            continue
-        if ref_rows is None:
-            ref_rows = (name, rows)
-        elif (len(rows[0]) != len(ref_rows[1][0]) or not np.array_equal(rows[1], ref_rows[1][1])
-              or not np.allclose(rows[0], ref_rows[1][0], rtol=0, atol=0)):
-            raise SpecificationError(
-                f"model {name!r} is not fitted on the same rows as {ref_rows[0]!r} "
-                f"({len(rows[0])} vs {len(ref_rows[1][0])} rows); LOO values can only be "
-                "compared on the same rows")
+    _check_same_question(models)
     evaluated = {name: _evaluate(name, obj, level, reference_folds, dict(loo_kwargs or {}),
                                  seed) for name, obj in models.items()}
     defined = {n: r for n, (r, _, _) in evaluated.items() if r is not None}

@@ -147,12 +147,18 @@ class Posterior:
     stats : SuffStats
     units : pandas.Index
     rows : tuple (M, y, unit_codes) or None
+    time : numpy.ndarray or None
+        The occasion label (the design's ``time`` value) of every estimation row, when the
+        model was built from a Panel; kept by :meth:`save` / :meth:`load`. LOO tables and
+        Pareto-k warnings name occasions by it.
+    row_labels : numpy.ndarray or None
+        The index labels of the estimation rows in the Panel's data (``Design.rows``).
     sampling : dict
         Sampler, seed, sizes and timings.
     """
 
     def __init__(self, idata, spec: ModelSpec, stats: SuffStats, units, rows=None,
-                 sampling=None, scaling=None):
+                 sampling=None, scaling=None, time=None, row_labels=None):
         self.idata = idata
         self.spec = spec
         self.stats = stats
@@ -160,12 +166,25 @@ class Posterior:
         self.rows = rows
         self.sampling = dict(sampling or {})
         self.scaling = scaling
+        n = None if rows is None else len(rows[1])
+        for name, v in (("time", time), ("row_labels", row_labels)):
+            if v is not None and n is not None and len(v) != n:
+                raise SpecificationError(f"{name} has {len(v)} values for {n} estimation rows")
+        self.time = None if time is None else np.asarray(time)
+        self.row_labels = None if row_labels is None else np.asarray(row_labels)
         self._cache = {}
+
+    @staticmethod
+    def _row_info(model) -> dict:
+        """``time`` and ``row_labels`` of a model built from a Panel (else ``None``)."""
+        d = getattr(model, "design", None)
+        return {"time": getattr(d, "time", None),
+                "row_labels": None if d is None else np.asarray(d.rows)}
 
     @classmethod
     def from_model(cls, model, idata, info) -> "Posterior":
         return cls(idata, model.spec, model.stats, model.units, rows=model.rows, sampling=info,
-                   scaling=model.scaling)
+                   scaling=model.scaling, **cls._row_info(model))
 
     def __repr__(self):
         post = self.idata["posterior"]
@@ -566,9 +585,14 @@ class Posterior:
             attrs={"n": int(st.n), "n_units": int(st.n_units), "unit_kind": unit_kind})
         if rows and self.rows is not None:
             M, y, codes = self.rows
-            groups["bayespanel_rows"] = xr.Dataset(
-                {"M": (("row", "term"), np.asarray(M, float)), "y": (("row",), np.asarray(y, float)),
-                 "unit_code": (("row",), np.asarray(codes, np.int64))})
+            data = {"M": (("row", "term"), np.asarray(M, float)),
+                    "y": (("row",), np.asarray(y, float)),
+                    "unit_code": (("row",), np.asarray(codes, np.int64))}
+            for name, v in (("time", self.time), ("row_label", self.row_labels)):
+                if v is not None:
+                    arr, kind = _encode_labels(v)
+                    data[name] = (("row",), arr, {"bayespanel_kind": kind})
+            groups["bayespanel_rows"] = xr.Dataset(data)
         tree = xr.DataTree.from_dict({"/": xr.Dataset(attrs={
             "bayespanel_format": _FORMAT_VERSION,
             "bayespanel_spec": self.spec.to_json(),
@@ -608,12 +632,41 @@ class Posterior:
         units = pd.Index(sd["unit"].values)
         if sd.attrs.get("unit_kind") == "str":
             units = pd.Index(units.astype(str), dtype=object)
-        rows = None
+        rows, labels = None, {}
         if "bayespanel_rows" in tree.children:
             rd = tree["bayespanel_rows"].to_dataset()
             rows = (np.asarray(rd["M"].values), np.asarray(rd["y"].values),
                     np.asarray(rd["unit_code"].values))
+            for name, key in (("time", "time"), ("row_label", "row_labels")):
+                if name in rd:
+                    labels[key] = _decode_labels(rd[name])
         keep = {k: v.to_dataset() for k, v in tree.children.items()
                 if not k.startswith("bayespanel_")}
         idata = xr.DataTree.from_dict(keep)
-        return cls(idata, spec, stats, units, rows=rows, sampling=sampling, scaling=scaling)
+        return cls(idata, spec, stats, units, rows=rows, sampling=sampling, scaling=scaling,
+                   **labels)
+
+
+def _encode_labels(values):
+    """``(array, kind)`` for writing row labels to NetCDF: numbers, booleans and datetimes
+    as they are, anything else (strings, periods, mixed objects) as text."""
+    v = np.asarray(values)
+    if v.dtype.kind == "b":
+        return v, "bool"
+    if v.dtype.kind in "iu":
+        return v.astype(np.int64), "int"
+    if v.dtype.kind == "f":
+        return v, "float"
+    if v.dtype.kind == "M":
+        return v.astype("datetime64[ns]"), "datetime"
+    return np.array([str(x) for x in v], dtype=str), "str"
+
+
+def _decode_labels(da):
+    kind = da.attrs.get("bayespanel_kind", "str")
+    v = np.asarray(da.values)
+    if kind == "str":
+        return v.astype(str).astype(object)
+    if kind == "datetime":
+        return v.astype("datetime64[ns]")
+    return v

@@ -20,11 +20,17 @@ def check_level(level):
 
 @dataclass
 class FitDraws:
-    """Rows and posterior draws of one Gaussian panel model.
+    """Rows and posterior draws of one panel model.
 
     ``coef`` is ``(C, D, k)``, ``sigma`` and ``tau`` ``(C, D)`` (``tau`` is zeros for the
     pooled model and ``None`` for fixed effects). ``M`` holds the model's columns on the
     estimation rows (rows sorted by unit), ``codes`` the unit of each row (0..N-1).
+    ``unit_name`` and ``time_name`` are the Panel's columns (for messages), ``time`` the
+    occasion label of every row. ``latent`` is the
+    :class:`~bayespanel.models.latent.LatentPosterior` of a latent-effect model (another
+    family, or random slopes), whose pointwise terms come from its own
+    :meth:`~bayespanel.models.latent.LatentPosterior.pointwise_loglik`; ``family`` names
+    its outcome family (``"gaussian"`` for the marginal models).
     """
 
     kind: str
@@ -43,6 +49,10 @@ class FitDraws:
     model: object = None
     design: object = None
     sample_kwargs: dict = field(default_factory=dict)
+    unit_name: str | None = None
+    time_name: str | None = None
+    family: str = "gaussian"
+    latent: object = None
 
     @property
     def n_chains(self) -> int:
@@ -63,6 +73,17 @@ class FitDraws:
     @property
     def T(self) -> np.ndarray:
         return np.bincount(self.codes, minlength=self.n_units)
+
+    @property
+    def names(self) -> tuple:
+        """``(unit column, time column)`` of the Panel the fit came from (or ``None``s)."""
+        return self.unit_name, self.time_name
+
+    @property
+    def measure(self) -> str:
+        """``"mass"`` when the terms are log probabilities of a discrete outcome,
+        ``"density"`` when they are log densities of a continuous one."""
+        return outcome_measure(self.family)
 
     def flat(self):
         """``(coef (S, k), sigma (S,), tau (S,) or None)`` with chains stacked."""
@@ -91,13 +112,22 @@ class FitDraws:
         return out
 
 
+def outcome_measure(family) -> str:
+    """``"mass"`` for the discrete families (Bernoulli, binomial, Poisson, negative
+    binomial), ``"density"`` for the continuous ones (Gaussian, Student-t)."""
+    from ..models.families import get_family
+
+    return "mass" if get_family(family).discrete else "density"
+
+
 def _values(ds, name):
     return np.asarray(ds[name].values, dtype=float)
 
 
 def from_draws(*, kind, unit_effects, labels, M, y, codes, coef, sigma, tau=None, units=None,
                time=None, rows=None, posterior=None, model=None, design=None,
-               sample_kwargs=None) -> FitDraws:
+               sample_kwargs=None, unit_name=None, time_name=None, family="gaussian",
+               latent=None) -> FitDraws:
     """Assemble :class:`FitDraws` from arrays (``coef`` may be ``(S, k)`` or ``(C, D, k)``)."""
     coef = np.asarray(coef, dtype=float)
     if coef.ndim == 2:
@@ -126,7 +156,8 @@ def from_draws(*, kind, unit_effects, labels, M, y, codes, coef, sigma, tau=None
         time=np.asarray(time) if time is not None else None,
         rows=pd.Index(rows if rows is not None else np.arange(len(codes))),
         coef=coef, sigma=sigma, tau=tau, posterior=posterior, model=model, design=design,
-        sample_kwargs=dict(sample_kwargs or {}))
+        sample_kwargs=dict(sample_kwargs or {}), unit_name=unit_name, time_name=time_name,
+        family=family, latent=latent)
 
 
 def from_posterior(post) -> FitDraws:
@@ -149,13 +180,24 @@ def from_posterior(post) -> FitDraws:
                                               "target_accept") if k in sampling}
     tau = _values(ds, "sigma_unit") if "sigma_unit" in ds else None
     design = getattr(post, "design", None)
+    names = dict(spec.design) if spec.design else {}
+    time = getattr(post, "time", None)
+    if time is None:
+        time = getattr(design, "time", None)
+    rows = getattr(post, "row_labels", None)
+    if rows is None and design is not None:
+        rows = design.rows
+    latent = post if getattr(post, "lspec", None) is not None else None
+    coef = _values(ds, "coef")
+    sigma = _values(ds, "sigma_obs") if "sigma_obs" in ds else np.full(coef.shape[:2], np.nan)
     return from_draws(
         kind=spec.kind, unit_effects=spec.unit_effects, labels=list(spec.labels), M=M, y=y,
-        codes=codes, coef=_values(ds, "coef"), sigma=_values(ds, "sigma_obs"), tau=tau,
-        units=post.units, time=getattr(design, "time", None),
-        rows=getattr(design, "rows", None), posterior=ds,
-        model=getattr(post, "model", None) or _Rebuild(post), design=design,
-        sample_kwargs=sample_kwargs)
+        codes=codes, coef=coef, sigma=sigma, tau=tau, units=post.units, time=time, rows=rows,
+        posterior=ds, model=None if latent is not None else (
+            getattr(post, "model", None) or _Rebuild(post)),
+        design=design, sample_kwargs=sample_kwargs, unit_name=names.get("unit"),
+        time_name=names.get("time"),
+        family=latent.family if latent is not None else "gaussian", latent=latent)
 
 
 class _Rebuild:

@@ -25,7 +25,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import sparse
 
-from ..errors import EstimationError
+from ..errors import EstimationError, SpecificationError
 from ..models import gaussian
 from ._draws import check_level
 
@@ -62,11 +62,24 @@ def pointwise_loglik(fd, level, units=None):
     -------
     ndarray
         ``nan`` where a term is undefined (fixed effects, single-row units, occasion level).
+
+    Notes
+    -----
+    For a latent-effect posterior (``fd.latent``) the terms are its own
+    (:meth:`~bayespanel.models.latent.LatentPosterior.pointwise_loglik`): unit effects
+    integrated out by adaptive Gauss-Hermite quadrature at the unit level, the density of
+    the row given each draw of the unit effects at the occasion level.
     """
     check_level(level)
     reason = undefined_reason(fd.unit_effects, level)
     if reason:
         raise EstimationError(reason)
+    if fd.latent is not None:
+        if units is not None:
+            raise SpecificationError(
+                "pointwise terms of a subset of units are not available for latent-effect "
+                "models (family= or random_slopes=); use the full terms")
+        return np.asarray(fd.latent.pointwise_loglik(level).values, dtype=float)
     b, sigma, tau = fd.flat()
     M, y, codes = fd.M, fd.y, fd.codes
     if units is not None:

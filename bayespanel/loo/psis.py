@@ -69,14 +69,59 @@ def _lpd(ll):
     return logsumexp(flat, axis=0) - np.log(flat.shape[0])
 
 
-def _describe_points(pw, level, limit=_MAX_NAMED):
+def _label(v):
+    """A unit or occasion label as a reader knows it (numpy scalars and datetimes plain)."""
+    if isinstance(v, np.datetime64) or isinstance(v, pd.Timestamp):
+        t = pd.Timestamp(v)
+        return repr(str(t.date()) if t == t.normalize() else str(t))
+    v = v.item() if isinstance(v, np.generic) else v
+    return repr(v)
+
+
+def _describe_points(pw, level, limit=_MAX_NAMED, names=(None, None)):
+    """Name points by unit (and occasion): ``clinic='c03', quarter=2`` when the Panel's
+    column names are known, the occasion's time label when the design is known and its
+    position within the unit (``occasion 2``) otherwise."""
+    unit_name, time_name = names
+    units = [f"{unit_name}={_label(u)}" if unit_name else str(u) for u in pw["unit"]]
     if level == "unit":
-        names = [str(u) for u in pw["unit"]]
+        out = units
     else:
-        when = pw["time"] if "time" in pw else [f"occasion {o}" for o in pw["occasion"]]
-        names = [f"{u} at {t}" for u, t in zip(pw["unit"], when)]
-    more = len(names) - limit
-    return ", ".join(names[:limit]) + (f" and {more} more" if more > 0 else "")
+        if "time" in pw:
+            when = [f"{time_name}={_label(t)}" if time_name else f"time {_label(t)}"
+                    for t in pw["time"]]
+        else:
+            when = [f"occasion {o}" for o in pw["occasion"]]
+        out = [f"{u}, {t}" for u, t in zip(units, when)]
+    more = len(out) - limit
+    sep = "; " if level == "occasion" or unit_name else ", "
+    return sep.join(out[:limit]) + (f" and {more} more" if more > 0 else "")
+
+
+def _refuse_latent(fd, what):
+    if fd.latent is not None:
+        raise SpecificationError(
+            f"{what} is not available for latent-effect models (family={fd.family!r}"
+            + (", random slopes" if fd.latent.slope_labels else "") + "): their refits "
+            "would re-sample every unit effect; use plain PSIS-LOO (post.loo(level)) and read "
+            "the Pareto k values")
+
+
+def _term_notes(fd, level):
+    """How the pointwise terms were computed, for a latent-effect posterior."""
+    if fd.latent is None:
+        return []
+    method = fd.latent.pointwise_loglik_method(level)
+    notes = [f"{level}-level terms: {method}"]
+    if level == "occasion" and "conditional on" in method:
+        notes.append(
+            "factorised, conditional LOO: each row's term is log p(y_it | theta, u_i) given "
+            "the draw of its unit effect, not the closed-form conditional "
+            "p(y_it | y_i,-t, theta) of the Gaussian marginal models; PSIS reweights the "
+            "draws of theta and u_i together, so both estimate the density of a held-out "
+            "occasion given all other rows, but here the weights also carry the unit "
+            "effect and Pareto k runs higher for units with few occasions")
+    return notes
 
 
 def _summary(elpd_i, lpd_i=None):
@@ -160,7 +205,7 @@ def _exact_points(fd, level, points, sample_kwargs):
     label = fd.point_index(level)
     for j in points:
         test = (fd.codes == j) if level == "unit" else (np.arange(fd.n) == j)
-        who = _describe_points(label.iloc[[j]], level)
+        who = _describe_points(label.iloc[[j]], level, names=fd.names)
         b, sigma, tau, msgs = refit_draws(fd, ~test, what=who, **sample_kwargs)
         ll = holdout_loglik(fd.M, fd.y, fd.codes, test, b, sigma, tau, level)
         values.append(float(_lpd(ll)[0]))
@@ -183,6 +228,10 @@ def loo(post, level="occasion", *, refit_high_k=False, max_refits=10, refit_kwar
     Parameters
     ----------
     post : Posterior
+        A Gaussian posterior, or a latent-effect one (``family=``, ``random_slopes=``),
+        whose terms are its own
+        (:meth:`~bayespanel.models.latent.LatentPosterior.pointwise_loglik`) and whose
+        occasion-level result notes that they are the factorised, conditional terms.
     level : {"unit", "occasion"}
         ``"unit"``: leave one unit out; the question is how well the model predicts a
         *new unit* (the term is the marginal density of the unit's rows).
@@ -214,12 +263,14 @@ def loo(post, level="occasion", *, refit_high_k=False, max_refits=10, refit_kwar
     -----
     SamplingWarning
         When Pareto k exceeds ``min(1 - 1/log10(S), 0.7)`` (Vehtari et al. 2024), naming the
-        units (or unit-occasions) behind it.
+        units (or units and occasions, by the design's time labels) behind it.
     """
     check_level(level)
     if subsample is not None:
         return loo_subsample(post, level, subsample, seed=seed, reff=reff)
     fd = from_posterior(post)
+    if refit_high_k:
+        _refuse_latent(fd, "refit_high_k=True (exact refits)")
     reason = undefined_reason(fd.unit_effects, level, fd.T)
     if reason:
         raise EstimationError(reason)
@@ -232,7 +283,7 @@ def loo(post, level="occasion", *, refit_high_k=False, max_refits=10, refit_kwar
             "sub-sampling estimator of Magnusson et al. (2019)")
     ll = pointwise_loglik(fd, level)
     labels = fd.point_index(level)
-    notes = []
+    notes = _term_notes(fd, level)
     ok = np.all(np.isfinite(ll), axis=(0, 1))
     if not ok.all():
         dropped = labels.loc[~ok, "unit"].unique()
@@ -263,9 +314,9 @@ def loo(post, level="occasion", *, refit_high_k=False, max_refits=10, refit_kwar
         pw.loc[high, "p_loo"] = lpd_i[high] - exact
         method = "PSIS-LOO + exact refits"
         notes.append(f"{len(high)} point(s) with Pareto k > {good_k:.2f} replaced by exact "
-                     f"refits: {_describe_points(pw.iloc[high], level)}")
+                     f"refits: {_describe_points(pw.iloc[high], level, names=fd.names)}")
     elif len(high):
-        who = _describe_points(pw.iloc[high], level)
+        who = _describe_points(pw.iloc[high], level, names=fd.names)
         msg = (f"Pareto k above {good_k:.2f} for {len(high)} of {len(pw)} points at the "
                f"{level} level ({who}); the PSIS estimate may be biased for them. Use "
                "refit_high_k=True for exact refits, or bp.loo.kfold")
@@ -274,7 +325,7 @@ def loo(post, level="occasion", *, refit_high_k=False, max_refits=10, refit_kwar
     elpd, se, p = _summary(pw["elpd"].to_numpy(), lpd_i)
     return LOOResult(level=level, method=method, elpd=elpd, se=se, p_loo=p, pointwise=pw,
                      good_k=good_k, notes=notes, n_draws=fd.n_chains * fd.n_draws,
-                     elpd_data=res)
+                     elpd_data=res, family=fd.family)
 
 
 def _folds(fd, level, K, seed):
@@ -314,6 +365,7 @@ def kfold(post, level="occasion", K=10, *, seed=0, refit_kwargs=None):
     if not isinstance(K, (int, np.integer)) or K < 2:
         raise SpecificationError(f"K={K!r} must be an integer of at least 2")
     fd = from_posterior(post)
+    _refuse_latent(fd, "K-fold cross-validation")
     reason = undefined_reason(fd.unit_effects, level, fd.T)
     if reason:
         raise EstimationError(reason)
@@ -328,7 +380,8 @@ def kfold(post, level="occasion", K=10, *, seed=0, refit_kwargs=None):
         test = fold == k
         held = labels.loc[point_fold == k]
         b, sigma, tau, msgs = refit_draws(
-            fd, ~test, what=f"fold {k + 1} of {K} ({_describe_points(held, level, 4)})",
+            fd, ~test,
+            what=f"fold {k + 1} of {K} ({_describe_points(held, level, 4, fd.names)})",
             **refit_kwargs)
         elpd_i[point_fold == k] = _lpd(holdout_loglik(fd.M, fd.y, fd.codes, test, b, sigma,
                                                       tau, level))
@@ -349,7 +402,7 @@ def kfold(post, level="occasion", K=10, *, seed=0, refit_kwargs=None):
     pw = pw.loc[ok].reset_index(drop=True)
     elpd, se, p = _summary(pw["elpd"].to_numpy(), lpd_i[ok])
     return LOOResult(level=level, method=f"grouped K-fold (K={K})", elpd=elpd, se=se,
-                     p_loo=p, pointwise=pw, notes=notes, n_draws=None)
+                     p_loo=p, pointwise=pw, notes=notes, n_draws=None, family=fd.family)
 
 
 # ---------------------------------------------------------------------------- sub-sampling
@@ -392,6 +445,7 @@ def loo_subsample(post, level="occasion", observations=400, *, seed=0, reff=None
 
     check_level(level)
     fd = from_posterior(post)
+    _refuse_latent(fd, "sub-sampled LOO (subsample=)")
     reason = undefined_reason(fd.unit_effects, level, fd.T)
     if reason:
         raise EstimationError(reason)
@@ -428,7 +482,7 @@ def loo_subsample(post, level="occasion", observations=400, *, seed=0, reff=None
              "estimator with the point-estimate approximation (Magnusson et al. 2019)"]
     high = k_s > good_k
     if high.any():
-        who = _describe_points(labels.iloc[idx[high]], level)
+        who = _describe_points(labels.iloc[idx[high]], level, names=fd.names)
         warnings.warn(f"Pareto k above {good_k:.2f} for {int(high.sum())} sampled points at "
                       f"the {level} level ({who})", SamplingWarning, stacklevel=2)
         notes.append(f"{int(high.sum())} sampled point(s) with Pareto k > {good_k:.2f}: {who}")
@@ -436,6 +490,7 @@ def loo_subsample(post, level="occasion", observations=400, *, seed=0, reff=None
         notes.append(f"{len(labels) - len(valid)} undefined point(s) left out")
     out = LOOResult(level=level, method=f"PSIS-LOO, sub-sampled ({len(idx)} of {N})",
                     elpd=est, se=se, p_loo=p_loo, pointwise=pw, good_k=good_k, notes=notes,
-                    n_draws=fd.n_chains * fd.n_draws, elpd_data=res, subsampling_se=sub_se)
+                    n_draws=fd.n_chains * fd.n_draws, elpd_data=res, subsampling_se=sub_se,
+                    family=fd.family)
     out.subsample_indices = idx
     return out

@@ -95,7 +95,9 @@ def reference_cv(ref, level="occasion", folds=None, seed=0) -> LOOResult:
     n, N = d.n, d.n_units
     proxy = from_draws(kind=ref.estimator, unit_effects=ue, labels=labels, M=M, y=d.y,
                        codes=d.unit_codes, coef=np.zeros((1, M.shape[1])), sigma=np.ones(1),
-                       tau=np.ones(1), units=d.units, time=d.time, rows=d.rows)
+                       tau=np.ones(1), units=d.units, time=d.time, rows=d.rows,
+                       unit_name=getattr(getattr(d, "spec", None), "unit", None),
+                       time_name=getattr(getattr(d, "spec", None), "time", None))
     labels_df = proxy.point_index(level)
     elpd_i = np.full(len(labels_df), np.nan)
     if folds is None:
@@ -132,4 +134,4 @@ def reference_cv(ref, level="occasion", folds=None, seed=0) -> LOOResult:
     e = pw["elpd"].to_numpy()
     se = float(np.sqrt(len(e) * np.var(e, ddof=1))) if len(e) > 1 else float("nan")
     return LOOResult(level=level, method=method, elpd=float(e.sum()), se=se, p_loo=None,
-                     pointwise=pw, notes=notes)
+                     pointwise=pw, notes=notes, family="gaussian")

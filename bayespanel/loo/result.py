@@ -33,18 +33,25 @@ class LOOResult:
     p_loo : float
         Effective number of parameters, ``lpd - elpd`` (``nan`` where undefined).
     pointwise : pandas.DataFrame
-        One row per point (unit or estimation row) with the labels (``unit``, and
-        ``time`` and ``row`` at the occasion level), ``elpd`` and, for PSIS, ``pareto_k``
+        One row per point (unit or estimation row) with the labels (``position``,
+        ``unit``; at the occasion level ``occasion``, the row's number 1..T_i within its
+        unit, ``row``, the Panel's index label, and ``time``, the occasion's time label,
+        whenever the design is known, also after save/load), ``elpd`` and, for PSIS, ``pareto_k``
         and ``refit`` (whether the point was replaced by an exact refit). Points of a
         sub-sampled estimate that were not evaluated hold ``nan``.
     good_k : float or None
         Pareto-k threshold ``min(1 - 1/log10(S), 0.7)`` (Vehtari et al. 2024).
     notes : list of str
         Anything the reader must know (points left out, high k, refits, approximations).
+    family : str or None
+        The outcome family whose terms were scored (``"gaussian"`` for the marginal and
+        reference models, ``"poisson"``, ``"bernoulli"``, ... for latent-effect models);
+        :func:`bayespanel.compare.compare` refuses to rank log probabilities of a discrete
+        outcome against log densities of a continuous one. ``None`` when unknown.
     """
 
     def __init__(self, *, level, method, elpd, se, p_loo, pointwise, good_k=None, notes=(),
-                 n_draws=None, elpd_data=None, subsampling_se=None):
+                 n_draws=None, elpd_data=None, subsampling_se=None, family=None):
         self.level = level
         self.method = method
         self.elpd = float(elpd)
@@ -56,6 +63,7 @@ class LOOResult:
         self.n_draws = n_draws
         self.elpd_data = elpd_data
         self.subsampling_se = subsampling_se
+        self.family = family
 
     @property
     def elpd_i(self) -> np.ndarray:
@@ -90,6 +98,8 @@ class LOOResult:
                "se": _clean(self.se), "p_loo": _clean(self.p_loo), "n_points": self.n_points,
                "good_k": _clean(self.good_k), "n_high_pareto_k": self.n_high_pareto_k,
                "notes": list(self.notes)}
+        if self.family is not None:
+            out["family"] = self.family
         if self.subsampling_se is not None:
             out["subsampling_se"] = _clean(self.subsampling_se)
         if pointwise:

@@ -533,8 +533,10 @@ class LatentPosterior(_posterior_cls()):
     """
 
     def __init__(self, idata, spec, stats, units, rows=None, sampling=None, scaling=None,
-                 lspec: LatentSpec | None = None, Z=None, trials=None, log_exposure=None):
-        super().__init__(idata, spec, stats, units, rows=rows, sampling=sampling, scaling=scaling)
+                 lspec: LatentSpec | None = None, Z=None, trials=None, log_exposure=None,
+                 time=None, row_labels=None):
+        super().__init__(idata, spec, stats, units, rows=rows, sampling=sampling, scaling=scaling,
+                         time=time, row_labels=row_labels)
         self.lspec = lspec
         self.Z = Z
         self.trials = trials
@@ -544,7 +546,7 @@ class LatentPosterior(_posterior_cls()):
     def from_model(cls, model, idata, info) -> "LatentPosterior":
         post = cls(idata, model.spec, model.stats, model.units, rows=model.rows, sampling=info,
                    scaling=model.scaling, lspec=model.lspec, Z=model.Z, trials=model.trials,
-                   log_exposure=model.log_exposure)
+                   log_exposure=model.log_exposure, **cls._row_info(model))
         post.design = model.design
         post._add_icc()
         return post
@@ -772,17 +774,14 @@ class LatentPosterior(_posterior_cls()):
         if self.family == "gaussian":
             fn = slopes.unit_loglik_slopes if level == "unit" else slopes.occasion_loglik_slopes
             out = fn(M, self.Z, y, codes, b, params["sigma_obs"], L)
-            method = ("Woodbury marginal (exact)" if level == "unit"
-                      else "Gaussian leave-one-occasion-out conditional (exact)")
         elif level == "unit":
             out = quad.unit_loglik_aghq(self.family, y, b @ M.T, self.Z, L, codes, params,
                                         trials=self.trials, log_exposure=self.log_exposure)
-            method = "adaptive Gauss-Hermite quadrature over the unit effects"
         else:
             g = self._unit_effect_flat()[keep]
             out = quad.occasion_loglik_latent(self.family, y, b @ M.T, self.Z, g, codes, params,
                                               trials=self.trials, log_exposure=self.log_exposure)
-            method = "conditional on the sampled unit effects"
+        method = self.pointwise_loglik_method(level)
         dim = "unit" if level == "unit" else "row"
         post = self.idata["posterior"]
         coords = {"chain": post["chain"].values, "draw": post["draw"].values[::thin]}
@@ -791,43 +790,32 @@ class LatentPosterior(_posterior_cls()):
                             dims=("chain", "draw", dim), coords=coords, name=f"loglik_{level}",
                             attrs={"level": level, "method": method, "family": self.family})
 
-    def loo(self, level: str = "unit", **kwargs):
-        """PSIS-LOO (Vehtari, Gelman and Gabry 2017) on :meth:`pointwise_loglik` terms.
+    def pointwise_loglik_method(self, level: str) -> str:
+        """How :meth:`pointwise_loglik` computes the terms of ``level`` (for notes)."""
+        from . import quadrature as quad
 
-        Returns a :class:`bayespanel.loo.LOOResult` whose ``level`` and ``notes`` state the
-        level and how the terms were computed. Exact refits for high Pareto k are not
-        offered for latent-family models (``kwargs`` are refused).
-        """
-        if kwargs:
-            raise SpecificationError(
-                f"loo() of a latent-family posterior takes only level=; got "
-                f"{', '.join(map(repr, kwargs))}")
-        from ..loo import LOOResult, psis_arrays
-
-        ll = self.pointwise_loglik(level)
-        res = psis_arrays(ll.values, level, posterior=None)
-        elpd_i = np.asarray(res.elpd_i).ravel()
-        k = np.asarray(res.pareto_k).ravel()
-        S = ll.sizes["chain"] * ll.sizes["draw"]
-        good_k = min(1 - 1 / np.log10(S), 0.7)
-        M, y, codes = self.rows
+        if level not in quad.LEVELS:
+            raise choices_error("level", level, quad.LEVELS)
+        if self.family == "gaussian":
+            return ("Woodbury marginal (exact)" if level == "unit"
+                    else "Gaussian leave-one-occasion-out conditional (exact)")
         if level == "unit":
-            pw = pd.DataFrame({"unit": np.asarray(self.units), "elpd": elpd_i, "pareto_k": k})
-        else:
-            pw = pd.DataFrame({"unit": np.asarray(self.units)[codes], "row": np.arange(len(y)),
-                               "elpd": elpd_i, "pareto_k": k})
-        lpd = float(np.sum(np.log(np.mean(np.exp(ll.values.reshape(S, -1)
-                                                  - ll.values.reshape(S, -1).max(0)), axis=0))
-                           + ll.values.reshape(S, -1).max(0)))
-        notes = [f"{level}-level terms: {ll.attrs['method']}"]
-        n_bad = int((k > good_k).sum())
-        if n_bad:
-            notes.append(f"{n_bad} point(s) with Pareto k above {good_k:.2f}; the estimate "
-                         "is unreliable there")
-        return LOOResult(level=level, method="PSIS-LOO", elpd=float(elpd_i.sum()),
-                         se=float(np.sqrt(len(elpd_i) * np.var(elpd_i))),
-                         p_loo=lpd - float(elpd_i.sum()), pointwise=pw, good_k=good_k,
-                         notes=notes, n_draws=S, elpd_data=res)
+            return ("log p(y_i | theta), the unit effects integrated out by adaptive "
+                    "Gauss-Hermite quadrature")
+        return "log p(y_it | theta, u_i), conditional on the sampled unit effects"
+
+    def loo(self, level: str = "unit", **kwargs):
+        """PSIS-LOO (Vehtari, Gelman and Gabry 2017) on :meth:`pointwise_loglik` terms,
+        through :func:`bayespanel.loo.loo` (the same code as the Gaussian models).
+
+        Returns a :class:`bayespanel.loo.LOOResult` whose ``level``, ``notes`` and
+        ``family`` state the level, how the terms were computed and the outcome family;
+        the pointwise table names units and occasions as for the Gaussian models. Exact
+        refits, K-fold and sub-sampling are not offered for latent-effect models.
+        """
+        from ..loo import loo
+
+        return loo(self, level, **kwargs)
 
     # ------------------------------------------------------------------ family reports
     def icc(self, prob: float = 0.9) -> pd.DataFrame:
