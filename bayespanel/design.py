@@ -16,10 +16,11 @@ from dataclasses import asdict, dataclass
 import numpy as np
 import pandas as pd
 
+from . import suffstats as _ss
 from .errors import DataHandlingWarning, EstimationError, FormulaError, PanelDataError, choices_error
 from .formula import safe_context, screen
 
-__all__ = ["Design", "DesignSpec", "KINDS", "group_means"]
+__all__ = ["Design", "DesignSpec", "KINDS", "group_means", "kind_transform", "check_stats"]
 
 KINDS = ("pooled", "random", "within", "between", "mundlak", "within_between")
 _VARY_TOL = 1e-10
@@ -50,6 +51,44 @@ def group_means(M: np.ndarray, starts: np.ndarray, counts: np.ndarray) -> np.nda
     return np.add.reduceat(M, starts, axis=0) / counts[:, None]
 
 
+def _maxabs(X: np.ndarray) -> np.ndarray:
+    """Largest absolute value of each column (no n x k temporary)."""
+    if X.shape[0] == 0:
+        return np.zeros(X.shape[1:])
+    return np.maximum(np.abs(X.max(axis=0)), np.abs(X.min(axis=0)))
+
+
+def kind_transform(terms, tv, tb, kind):
+    """The columns of a design kind as linear maps of a row and of its unit mean.
+
+    With ``z = [X, y]`` (``p = k + 1``), every column of ``"within"``, ``"mundlak"`` and
+    ``"within_between"`` is ``a' z_it + b' zbar_i``; returns ``(A, B, labels)`` with one
+    row of ``A`` and ``B`` per column and a last row that keeps ``y``. ``tv`` are the
+    indices of the time-varying terms, ``tb`` those whose unit means enter (``"mundlak"``,
+    ``"within_between"``; see ``Design._with_between_part``). Labels as in
+    DEVELOPERS.md: ``x (within)``, ``x (between)``, ``x (unit mean)``.
+    """
+    k = len(terms)
+    eye = np.eye(k + 1)
+    zero = np.zeros(k + 1)
+    if kind == "within":
+        rows = [(eye[i], -eye[i], terms[i]) for i in tv]
+    elif kind == "mundlak":
+        rows = ([(eye[j], zero, terms[j]) for j in range(k)]
+                + [(zero, eye[i], _label_mean(terms[i])) for i in tb])
+    elif kind == "within_between":
+        rows = [(eye[i], zero, t) for i, t in enumerate(terms) if t == "Intercept"]
+        rows += [(eye[i], -eye[i], _label_within(terms[i])) for i in tv]
+        rows += [(zero, eye[i], _label_between(terms[i])) for i in tb]
+        rows += [(eye[i], zero, t) for i, t in enumerate(terms)
+                 if t != "Intercept" and i not in tv]
+    else:
+        raise ValueError(f"kind {kind!r} uses the columns of X as they are")
+    A = np.vstack([r[0] for r in rows] + [eye[k]])
+    B = np.vstack([r[1] for r in rows] + [zero])
+    return A, B, [r[2] for r in rows]
+
+
 def _label_within(t: str) -> str:
     return f"{t} (within)"
 
@@ -70,7 +109,7 @@ class Design:
     """
 
     def __init__(self, *, y, X, terms, unit_codes, units, time, rows, outcome, spec,
-                 n_dropped=0, dropped_by_column=None, n_input_rows=None):
+                 n_dropped=0, dropped_by_column=None, n_input_rows=None, stats=None):
         self.y = np.ascontiguousarray(y, dtype=float)
         self.X = np.ascontiguousarray(X, dtype=float)
         self.terms = list(terms)
@@ -83,15 +122,21 @@ class Design:
         self.n_dropped = int(n_dropped)
         self.dropped_by_column = dict(dropped_by_column or {})
         self.n_input_rows = int(n_input_rows if n_input_rows is not None else len(self.y))
-        if np.any(np.diff(self.unit_codes) < 0):
+        if np.any(self.unit_codes[1:] < self.unit_codes[:-1]):
             raise ValueError("Design rows must be sorted by unit")
         self.T = np.bincount(self.unit_codes, minlength=len(self.units)).astype(np.int64)
         if np.any(self.T == 0):
             raise ValueError("every unit in a Design needs at least one row")
         self.starts = np.concatenate([[0], np.cumsum(self.T)[:-1]]).astype(np.int64)
         self._means = None
-        within_sd = np.sqrt(((self.X - self.between_rows()) ** 2).mean(axis=0))
-        scale = np.maximum(np.abs(self.X).max(axis=0), 1.0)
+        if stats is None:
+            stats = _ss.compute_chunked(self.X, self.y, self.unit_codes,
+                                              names=self.terms + [self.outcome])
+        self._stats = stats
+        self._cache = {}
+        # within variation from the within block of the statistics of [X, y]
+        within_sd = np.sqrt(np.maximum(np.diag(stats.within)[:-1], 0.0) / max(self.n, 1))
+        scale = np.maximum(_maxabs(self.X), 1.0)
         self.varies_within = pd.Series(within_sd > _VARY_TOL * scale, index=self.terms)
 
     # ------------------------------------------------------------------ sizes
@@ -138,6 +183,13 @@ class Design:
         """X minus its unit means (n x k)."""
         return self.X - self.between_rows()
 
+    def unit_labels(self) -> tuple:
+        """The unit labels as a tuple (made once; the models built on this design share
+        it as their ``unit`` coordinate)."""
+        if "unit_labels" not in self._cache:
+            self._cache["unit_labels"] = tuple(self.units)
+        return self._cache["unit_labels"]
+
     def y_unit_means(self) -> np.ndarray:
         return group_means(self.y, self.starts, self.T)
 
@@ -155,40 +207,86 @@ class Design:
         -------
         (M, labels) : (ndarray, list of str)
             ``M`` has one row per estimation row, except for ``"between"`` (one per unit).
+            A new array on every call (``n x columns`` float64): code that needs only
+            statistics uses :meth:`suffstats` instead.
         """
         if kind not in KINDS:
             raise choices_error("kind", kind, KINDS)
-        tv = [i for i, t in enumerate(self.terms) if self.varies_within[t]]
         if kind in ("pooled", "random"):
             return self.X.copy(), list(self.terms)
         if kind == "between":
             return self.unit_means().copy(), list(self.terms)
-        if kind in ("within", "mundlak", "within_between") and not tv:
+        A, B, labels = self._transform(kind)
+        M = np.empty((self.n, len(labels)))
+        means = self.unit_means()
+        for j in range(len(labels)):
+            col = np.zeros(self.n)
+            for i in np.flatnonzero(A[j, :self.k]):
+                col = col + A[j, i] * self.X[:, i]
+            for i in np.flatnonzero(B[j, :self.k]):
+                col = col + B[j, i] * means[self.unit_codes, i]
+            M[:, j] = col
+        return M, labels
+
+    def labels(self, kind: str) -> list[str]:
+        """Column labels of ``kind``, as ``matrices(kind)[1]``, without building the rows."""
+        if kind not in KINDS:
+            raise choices_error("kind", kind, KINDS)
+        if kind in ("pooled", "random", "between"):
+            return list(self.terms)
+        return self._transform(kind)[2]
+
+    def _transform(self, kind):
+        """``(A, B, labels)``: the rows of ``kind`` are ``A z_it + B zbar_i`` with
+        ``z = [X, y]`` (the last row of ``A`` and ``B`` keeps ``y``)."""
+        tv = [i for i, t in enumerate(self.terms) if self.varies_within[t]]
+        if not tv:
             raise EstimationError(
                 f"no covariate in {self.spec.formula!r} varies within units, so a "
                 f"{kind.replace('_', '-')} model has no within part to estimate"
             )
-        if kind == "within":
-            return self.within()[:, tv], [self.terms[i] for i in tv]
-        means = self.between_rows()
-        tb = self._with_between_part(tv)
-        if kind == "mundlak":
-            M = np.column_stack([self.X, means[:, tb]])
-            return M, list(self.terms) + [_label_mean(self.terms[i]) for i in tb]
-        # within_between: intercept, within and between parts, time-constant columns
-        cols, labels = [], []
-        W = self.within()
-        for i, t in enumerate(self.terms):
-            if t == "Intercept":
-                cols.append(self.X[:, i]); labels.append(t)
-        for i in tv:
-            cols.append(W[:, i]); labels.append(_label_within(self.terms[i]))
-        for i in tb:
-            cols.append(means[:, i]); labels.append(_label_between(self.terms[i]))
-        for i, t in enumerate(self.terms):
-            if t != "Intercept" and i not in tv:
-                cols.append(self.X[:, i]); labels.append(t)
-        return np.column_stack(cols), labels
+        tb = tv if kind == "within" else self._with_between_part(tv)
+        return kind_transform(self.terms, tv, tb, kind)
+
+    def suffstats(self, kind: str = "random") -> _ss.SuffStats:
+        """Sufficient statistics of ``[M, y]`` with ``M`` the columns of ``kind``.
+
+        ``"pooled"``, ``"random"``, ``"within"`` and ``"between"`` (whose estimators use the
+        original columns): the statistics of ``[X, y]``, computed once with the design.
+        ``"mundlak"`` and ``"within_between"``: derived exactly from them
+        (:func:`bayespanel.engines._blocks.augment`) and kept: reference fits and models of
+        that kind share them (each holds ``N x columns`` unit means). The same accessor as the
+        out-of-core design's, so reference fits and models read one interface.
+        """
+        if kind not in KINDS:
+            raise choices_error("kind", kind, KINDS)
+        if kind in ("pooled", "random", "within", "between"):
+            return self._stats
+        if kind not in self._cache:
+            from .engines._blocks import augment
+
+            A, B, labels = self._transform(kind)
+            self._cache[kind] = augment(self._stats, A, B, names=labels + [self.outcome])
+        return self._cache[kind]
+
+    def model_suffstats(self, kind: str) -> _ss.SuffStats:
+        """Statistics a Bayesian builder of ``kind`` reads: as :meth:`suffstats`, except
+        ``"within"`` keeps only the time-varying columns (what ``FixedEffects`` uses)."""
+        if kind != "within":
+            return self.suffstats(kind)
+        from .engines._blocks import select_columns
+
+        tv = [i for i, t in enumerate(self.terms) if self.varies_within[t]]
+        if not tv:
+            self._transform("within")  # raises the message of a design with no within part
+        names = [self.terms[i] for i in tv] + [self.outcome]
+        return select_columns(self._stats, tv + [self.k], names)
+
+    def build(self, builder, priors=None, **kwargs):
+        """A Gaussian model (``bayespanel.models`` builder class, e.g. ``RandomIntercept``)
+        on this design: the builder's ``from_design``; the statistics come from the
+        design and the rows are made only if the model needs them."""
+        return builder.from_design(self, priors=priors, **kwargs)
 
     def _with_between_part(self, tv):
         """Time-varying columns whose unit means enter the mundlak and within_between kinds.
@@ -206,7 +304,7 @@ class Design:
         """
         if not self.has_intercept:
             return list(tv)
-        um = self.unit_means()
+        um = self._stats.unit_mean[:, :self.k]
         keep = []
         for i in tv:
             scale = max(float(np.abs(um[:, i]).max()), 1.0)
@@ -255,11 +353,20 @@ class Design:
     # ------------------------------------------------------------------ builders
     @classmethod
     def from_panel(cls, panel, formula: str, occasion_effects: bool = False) -> "Design":
-        """Screen the formula, drop incomplete rows (reported), and build the matrices."""
+        """Screen the formula, drop incomplete rows (reported), and build the matrices.
+
+        Reads only the columns the formula uses, in the panel's (unit, occasion) order.
+        Plain numeric terms and the intercept are written column by column into one
+        float64 array; transforms, interactions and ``C()`` go through formulaic. The
+        statistics of ``[X, y]`` are computed once, in row slices
+        (:func:`bayespanel.suffstats.compute_chunked`): the checks for constant and
+        collinear columns, the within variation and every consumer that needs no rows
+        read them (:meth:`suffstats`).
+        """
         from formulaic import Formula
 
-        data = panel.data
-        screened = screen(formula, data.columns)
+        frame = panel._df
+        screened = screen(formula, panel.columns)
         used = [c for c in screened.columns if c not in (panel.unit, panel.time)]
         if screened.outcome in (panel.unit, panel.time):
             raise FormulaError(
@@ -271,87 +378,184 @@ class Design:
         if panel.time in screened.columns:
             used.append(panel.time)  # a trend or C(time) is allowed
         for c in used:
-            s = data[c]
-            if pd.api.types.is_numeric_dtype(s) or pd.api.types.is_bool_dtype(s):
+            if _numeric(frame[c]) or pd.api.types.is_bool_dtype(frame[c]):
                 continue
             in_c = re.search(r"C\(\s*`?" + re.escape(c) + r"`?\s*[,)]", screened.rhs)
             if c == screened.outcome or not in_c:
-                sample = s.dropna().astype(str).head(3).tolist()
-                text = s.dropna()
-                bad = text[pd.to_numeric(text, errors="coerce").isna()]
-                first = "" if bad.empty else (
-                    f"; {_plain(bad.iloc[0])!r} at {panel.unit}="
-                    f"{_plain(data.at[bad.index[0], panel.unit])!r}, {panel.time}="
-                    f"{_plain(data.at[bad.index[0], panel.time])!r} is not a number")
-                raise PanelDataError(
-                    f"column {c!r} is not numeric (dtype {s.dtype}, values like {sample}{first}); "
-                    + ("the outcome must be numeric" if c == screened.outcome else
-                       f"convert it to numbers, or write C({c}) to use it as categories")
-                )
+                _refuse_text(panel, c, screened.outcome)
         used = list(dict.fromkeys(used))
-        sub = data[list(dict.fromkeys([panel.unit, panel.time] + used))]
-        miss = sub[used].isna()
-        dropped_by_column = {c: int(miss[c].sum()) for c in used if miss[c].any()}
-        keep = ~miss.any(axis=1).to_numpy()
+        order = panel._order
+        miss = {}
+        for c in used:
+            m = frame[c].isna().to_numpy()
+            miss[c] = m if order is None else m[order]
+        dropped_by_column = {c: int(m.sum()) for c, m in miss.items() if m.any()}
+        keep = np.ones(len(frame), dtype=bool)
+        for c in dropped_by_column:
+            keep &= ~miss[c]
         n_dropped = int((~keep).sum())
         for c in used:
             if miss[c].all():
                 raise PanelDataError(f"column {c!r} is missing on every row")
+        del miss
         if n_dropped:
             detail = ", ".join(f"{c}: {k}" for c, k in dropped_by_column.items())
             warnings.warn(
-                f"dropped {n_dropped} of {len(sub)} rows with missing values ({detail}); "
+                f"dropped {n_dropped} of {len(frame)} rows with missing values ({detail}); "
                 "unit means are taken over the remaining rows",
                 DataHandlingWarning, stacklevel=3,
             )
-        sub = sub.loc[keep]
-        if len(sub) == 0:
+        if not keep.any():
             raise PanelDataError("no complete rows remain after dropping missing values")
-        units_codes, units = pd.factorize(sub[panel.unit], sort=True)
+        # positions in the input of the estimation rows, in (unit, occasion) order
+        if order is None:
+            idx = None if not n_dropped else np.flatnonzero(keep)
+        else:
+            idx = order if not n_dropped else order[keep]
+        del keep
+
+        def take(values):
+            return values if idx is None else values[idx]
+
+        unit_col = frame[panel.unit] if idx is None else frame[panel.unit].take(idx)
+        units_codes, units = _unit_codes(unit_col)
+        del unit_col
         if len(units) < 2:
             raise PanelDataError(
                 f"only {len(units)} unit of {panel.unit!r} has complete rows; at least 2 are needed"
             )
-        try:
-            mm = Formula(screened.rhs).get_model_matrix(
-                sub.reset_index(drop=True), context=safe_context(), ensure_full_rank=True,
-                na_action="ignore",  # incomplete rows are gone; NaN from a transform is named below
-            )
-        except FormulaError:
-            raise
-        except Exception as exc:
-            raise FormulaError(f"cannot build the design for {formula!r}: {exc}") from None
-        X = np.asarray(mm, dtype=float)
-        terms = [str(c) for c in mm.columns]
+        time = take(frame[panel.time].to_numpy())
+        n = len(units_codes)
+        plain = _plain_terms(screened.rhs, frame, used)
+        extra = []
         if occasion_effects:
-            occ = np.sort(sub[panel.time].unique())
-            tv = sub[panel.time].to_numpy()
-            dummies = [(tv == o).astype(float) for o in occ[1:]]
-            if dummies:
-                X = np.column_stack([X] + dummies)
-                terms += [f"occasion[{o}]" for o in occ[1:]]
-        y = sub[screened.outcome].to_numpy(dtype=float)
-        if not np.all(np.isfinite(X)):
-            bad = np.flatnonzero(~np.isfinite(X).all(axis=0))[0]
-            r = int(np.flatnonzero(~np.isfinite(X[:, bad]))[0])
-            raise PanelDataError(
-                f"term {terms[bad]!r} is not finite at {panel.unit}={sub[panel.unit].iloc[r]!r}, "
-                f"{panel.time}={sub[panel.time].iloc[r]!r} (a transform such as log of a "
-                "non-positive value?)"
-            )
-        _check_columns(X, y, terms, screened.outcome)
+            extra = list(np.sort(pd.unique(time))[1:])
+        if plain is not None:
+            terms = ["Intercept" if c is None else c for c in plain]
+            X = np.empty((n, len(terms) + len(extra)))
+            for j, c in enumerate(plain):
+                if c is None:
+                    X[:, j] = 1.0
+                else:
+                    X[:, j] = take(frame[c].to_numpy(dtype=float, na_value=np.nan))
+        else:
+            cols = list(dict.fromkeys([panel.unit, panel.time] + used))
+            sub = frame[cols] if idx is None else frame[cols].take(idx)
+            try:
+                mm = Formula(screened.rhs).get_model_matrix(
+                    sub.reset_index(drop=True), context=safe_context(), ensure_full_rank=True,
+                    na_action="ignore",  # incomplete rows are gone; NaN from a transform is named below
+                )
+            except FormulaError:
+                raise
+            except Exception as exc:
+                raise FormulaError(f"cannot build the design for {formula!r}: {exc}") from None
+            del sub
+            terms = [str(c) for c in mm.columns]
+            X = np.empty((n, len(terms) + len(extra)))
+            X[:, :len(terms)] = np.asarray(mm, dtype=float)
+            del mm
+        k0 = len(terms)
+        for j, o in enumerate(extra):
+            X[:, k0 + j] = time == o
+        terms += [f"occasion[{o}]" for o in extra]
+        y = take(frame[screened.outcome].to_numpy(dtype=float, na_value=np.nan))
+        for j in range(X.shape[1]):
+            bad = ~np.isfinite(X[:, j])
+            if bad.any():
+                r = int(np.flatnonzero(bad)[0])
+                pos = r if idx is None else int(idx[r])
+                raise PanelDataError(
+                    f"term {terms[j]!r} is not finite at {panel.unit}="
+                    f"{frame[panel.unit].iloc[pos]!r}, {panel.time}={frame[panel.time].iloc[pos]!r}"
+                    " (a transform such as log of a non-positive value?)"
+                )
+        stats = _check_columns(X, y, terms, screened.outcome, units_codes)
         spec = DesignSpec(formula=formula, unit=panel.unit, time=panel.time,
                           occasion_effects=bool(occasion_effects))
+        rows = frame.index if idx is None else frame.index.take(idx)
         return cls(y=y, X=X, terms=terms, unit_codes=units_codes, units=units,
-                   time=sub[panel.time].to_numpy(), rows=sub.index, outcome=screened.outcome,
+                   time=time, rows=rows, outcome=screened.outcome,
                    spec=spec, n_dropped=n_dropped, dropped_by_column=dropped_by_column,
-                   n_input_rows=len(data))
+                   n_input_rows=len(frame), stats=stats)
 
 
-def _check_columns(X, y, terms, outcome):
-    """Refuse a constant outcome, constant covariates and exactly collinear columns."""
-    from scipy.linalg import qr
+def _numeric(s) -> bool:
+    return pd.api.types.is_numeric_dtype(s) and not pd.api.types.is_bool_dtype(s)
 
+
+def _refuse_text(panel, c, outcome):
+    """The error for a column that is not numeric (named, with its first bad value)."""
+    s = panel.sorted_column(c)
+    sample = s.dropna().astype(str).head(3).tolist()
+    text = s.dropna()
+    bad = text[pd.to_numeric(text, errors="coerce").isna()]
+    first = ""
+    if not bad.empty:
+        ids = panel.sorted_columns([panel.unit, panel.time])
+        first = (f"; {_plain(bad.iloc[0])!r} at {panel.unit}="
+                 f"{_plain(ids.at[bad.index[0], panel.unit])!r}, {panel.time}="
+                 f"{_plain(ids.at[bad.index[0], panel.time])!r} is not a number")
+    raise PanelDataError(
+        f"column {c!r} is not numeric (dtype {s.dtype}, values like {sample}{first}); "
+        + ("the outcome must be numeric" if c == outcome else
+           f"convert it to numbers, or write C({c}) to use it as categories")
+    )
+
+
+def _unit_codes(units: pd.Series):
+    """Codes ``0..N-1`` and the unit labels of rows sorted by unit.
+
+    Equal labels are adjacent, so a code is the number of label changes before the row;
+    the labels of the runs go through ``pd.factorize`` (N values, not n) so that they
+    keep the type it gives. Falls back to factorising every row if the runs are not in
+    factorize's order.
+    """
+    vals = units.cat.codes.to_numpy() if isinstance(units.dtype, pd.CategoricalDtype) \
+        else units.to_numpy()
+    n = len(vals)
+    change = vals[1:] != vals[:-1]
+    codes = np.empty(n, dtype=np.int64)
+    codes[0] = 0
+    np.cumsum(change, out=codes[1:])
+    starts = np.flatnonzero(np.concatenate([[True], change]))
+    del change
+    run_codes, labels = pd.factorize(units.iloc[starts], sort=True)
+    if not np.array_equal(run_codes, np.arange(len(starts))):
+        return pd.factorize(units, sort=True)
+    return codes, labels
+
+
+def _plain_terms(rhs: str, frame: pd.DataFrame, used) -> list | None:
+    """The terms of ``rhs`` as column names (None for the intercept), in formulaic's order,
+    when every term is the intercept or a numeric column as it is; else None (the model
+    matrix then comes from formulaic)."""
+    from formulaic import Formula
+    from formulaic.parser.types import Factor
+
+    try:
+        terms = list(Formula(rhs))
+    except Exception:
+        return None  # formulaic reports the problem when it builds the matrix
+    out = []
+    for term in terms:
+        if len(term.factors) != 1:
+            return None
+        f = term.factors[0]
+        if f.eval_method == Factor.EvalMethod.LITERAL and f.expr == "1":
+            out.append(None)
+        elif (f.eval_method == Factor.EvalMethod.LOOKUP and f.expr in used
+              and _numeric(frame[f.expr])):
+            out.append(f.expr)
+        else:
+            return None
+    return out
+
+
+def _check_columns(X, y, terms, outcome, unit_codes):
+    """Refuse a constant outcome, constant covariates and exactly collinear columns; warn
+    about nearly collinear ones. Returns the statistics of ``[X, y]`` (computed in row
+    slices) on which the collinearity checks are made."""
     if np.ptp(y) == 0:
         raise PanelDataError(
             f"the outcome {outcome!r} is constant ({float(y[0])!r}) on every row used")
@@ -362,26 +566,59 @@ def _check_columns(X, y, terms, outcome):
                 "told apart from the intercept"
             )
     _check_magnitudes(X, y, terms, outcome)
-    if X.shape[1] == 0:
+    stats = _ss.compute_chunked(X, y, unit_codes, names=list(terms) + [outcome])
+    check_stats(stats, terms, outcome, np.append(_maxabs(X), np.abs(y).max()), stacklevel=6)
+    return stats
+
+
+def check_stats(stats, terms, outcome, maxabs, stacklevel=5):
+    """The checks of a design on the statistics of ``[X, y]`` alone: constant outcome or
+    covariate, exact collinearity (refused, naming the terms) and near collinearity
+    (:func:`collinearity_warning`). One rule for the in-memory and out-of-core designs.
+
+    Collinearity is judged on the cross-products of the covariates, centred about their
+    means when there is an intercept (so the intercept is projected out exactly and a
+    column far from zero, such as a calendar year, is not taken for a multiple of it),
+    raw otherwise; scaled to unit diagonal, a column is refused when its squared residual
+    on the columns before it is below :data:`EXACT_COLLINEAR_TOL` of its size
+    (:func:`bayespanel.reference._linalg.independent_columns`).
+    """
+    from .reference._linalg import independent_columns
+
+    if stats.total[-1, -1] == 0:
+        raise PanelDataError(f"the outcome {outcome!r} is constant ({stats.mean[-1]!r}) on "
+                             "every row used")
+    for j, t in enumerate(terms):
+        if t != "Intercept" and stats.total[j, j] <= stats.n * (1e-14 * maxabs[j]) ** 2:
+            raise PanelDataError(
+                f"covariate {t!r} is constant ({stats.mean[j]!r}) on every row used; it cannot "
+                "be told apart from the intercept")
+    k = len(terms)
+    if k == 0:
         return
-    # scale by the largest absolute value first, so squares neither overflow nor underflow
-    big = np.abs(X).max(axis=0)
-    big[big == 0] = 1.0
-    scale = big * np.sqrt(((X / big) ** 2).mean(axis=0))
-    Xs = X / scale
-    if X.shape[0] < X.shape[1]:
-        raise PanelDataError(f"{X.shape[0]} rows cannot identify {X.shape[1]} terms")
-    _, R, piv = qr(Xs, mode="economic", pivoting=True)
-    d = np.abs(np.diag(R))
-    tol = d[0] * max(Xs.shape) * np.finfo(float).eps * 1e3
-    rank = int((d > tol).sum())
-    if rank < X.shape[1]:
-        bad = [terms[i] for i in piv[rank:]]
-        raise PanelDataError(
-            f"covariates are exactly collinear: {', '.join(map(repr, bad))} can be written as a "
-            "combination of the other terms; drop or recode them"
-        )
-    collinearity_warning(X, terms, stacklevel=5)
+    if stats.n < k:
+        raise PanelDataError(f"{stats.n} rows cannot identify {k} terms")
+    raw = stats.total[:k, :k] + stats.n * np.outer(stats.mean[:k], stats.mean[:k])
+    cols = [j for j, t in enumerate(terms) if t != "Intercept"]
+    C = stats.total[np.ix_(cols, cols)] if len(cols) < k else raw
+    if len(cols):
+        scale = np.sqrt(np.maximum(np.diag(C), np.finfo(float).tiny))
+        keep = set(np.asarray(cols)[independent_columns(C / np.outer(scale, scale),
+                                                        tol=EXACT_COLLINEAR_TOL)].tolist())
+        if len(keep) < len(cols):
+            bad = [terms[j] for j in cols if j not in keep]
+            raise PanelDataError(
+                f"covariates are exactly collinear: {', '.join(map(repr, bad))} can be written "
+                "as a combination of the other terms; drop or recode them")
+    collinearity_warning(stats.total[:k, :k] if len(cols) < k else raw, terms,
+                         cross_products=True, stacklevel=stacklevel)
+
+
+#: squared residual, relative to the column's size, below which a column of a design
+#: counts as an exact combination of the columns before it (cross-products in double
+#: precision resolve about 1e-15 of this scale; near collinearity above it is warned
+#: about by the condition number instead)
+EXACT_COLLINEAR_TOL = 1e-12
 
 
 #: magnitudes outside this range are refused: squares and cross-products of such values
@@ -398,7 +635,7 @@ def _check_magnitudes(X, y, terms, outcome):
     """
     lo, hi = MAGNITUDE_LIMITS
     for name, col in [(outcome, y)] + [(t, X[:, j]) for j, t in enumerate(terms)]:
-        size = float(np.abs(col).max()) if len(col) else 0.0
+        size = float(_maxabs(col.reshape(-1, 1))[0]) if len(col) else 0.0
         if size > hi or 0 < size < lo:
             what = "the outcome" if col is y else "term"
             fault = "overflow" if size > hi else "underflow"

@@ -22,6 +22,26 @@ def _first_pair(df: pd.DataFrame, mask, unit: str, time: str) -> str:
     return f"{unit}={_plain(sel[unit].iloc[0])!r}, {time}={_plain(sel[time].iloc[0])!r}"
 
 
+def _sort_order(df: pd.DataFrame, unit: str, time: str) -> np.ndarray | None:
+    """Positions that sort ``df`` by unit, then occasion (stable); None if it is sorted.
+
+    The order is pandas' own stable sort of the two key columns, so it is the order
+    ``df.sort_values([unit, time], kind="mergesort")`` gives; only the two keys are read.
+    """
+    keys = df[[unit, time]].reset_index(drop=True)
+    try:
+        order = keys.sort_values([unit, time], kind="mergesort").index.to_numpy()
+    except TypeError as exc:
+        raise PanelDataError(
+            f"cannot order the table by {unit!r} and {time!r} (mixed types?): {exc}"
+        ) from None
+    step = 1 << 16  # compare with 0, 1, 2, ... in slices (no n-sized temporaries)
+    for a in range(0, len(order), step):
+        if not np.array_equal(order[a:a + step], np.arange(a, min(a + step, len(order)))):
+            return order.astype(np.int64, copy=False)
+    return None
+
+
 class Panel:
     """A long table of units observed on several occasions, checked on the way in.
 
@@ -107,7 +127,9 @@ class Panel:
             )
         for col in df.columns:
             s = df[col]
-            if col in (unit, time) or not pd.api.types.is_numeric_dtype(s) or pd.api.types.is_bool_dtype(s):
+            # only float (and complex) columns can hold an infinity; integers need no copy
+            if col in (unit, time) or not (pd.api.types.is_float_dtype(s)
+                                           or pd.api.types.is_complex_dtype(s)):
                 continue
             vals = s.to_numpy(dtype=float, na_value=np.nan)
             bad = np.isinf(vals)
@@ -117,16 +139,14 @@ class Panel:
                     f"{_first_pair(df, bad, unit, time)}. Replace them by missing values or "
                     "fix the source."
                 )
-        try:
-            data = df.sort_values([unit, time], kind="mergesort").copy()
-        except TypeError as exc:
-            raise PanelDataError(
-                f"cannot order the table by {unit!r} and {time!r} (mixed types?): {exc}"
-            ) from None
-        self._data = data
+        # the input is kept as it is (a shallow copy: pandas' copy-on-write keeps later
+        # edits of the caller's frame out of it) with the order that sorts it by unit and
+        # occasion (None when it is sorted already); nothing copies the whole table
+        self._order = _sort_order(df, unit, time)
+        self._df = df.copy(deep=False)
         self.unit = unit
         self.time = time
-        counts = data.groupby(unit, sort=True, observed=True).size()
+        counts = df.groupby(unit, sort=True, observed=True).size()
         if len(counts) < 2:
             raise PanelDataError(
                 f"the panel has {len(counts)} unit in column {unit!r}; at least 2 are needed"
@@ -136,8 +156,36 @@ class Panel:
     # ------------------------------------------------------------------ structure
     @property
     def data(self) -> pd.DataFrame:
-        """The table, sorted by unit and occasion (a copy of the input)."""
-        return self._data
+        """The table, sorted by unit and occasion.
+
+        Built on each call from the input and the sort order (a shallow copy when the input
+        was sorted already, a sorted copy of every column otherwise); the panel itself
+        keeps no sorted copy. Code that needs a few columns uses :meth:`sorted_columns`.
+        """
+        return self.sorted_columns(list(self._df.columns))
+
+    @property
+    def columns(self) -> pd.Index:
+        """The columns of the table."""
+        return self._df.columns
+
+    @property
+    def order(self) -> np.ndarray | None:
+        """Positions of the input rows in (unit, occasion) order; None when the input is
+        sorted already."""
+        return None if self._order is None else self._order.copy()
+
+    def sorted_columns(self, columns) -> pd.DataFrame:
+        """Some columns of the table, sorted by unit and occasion (index labels kept)."""
+        sub = self._df[list(columns)] if list(columns) != list(self._df.columns) else self._df
+        if self._order is None:
+            return sub.copy(deep=False)
+        return sub.take(self._order)
+
+    def sorted_column(self, column) -> pd.Series:
+        """One column of the table, sorted by unit and occasion (index labels kept)."""
+        s = self._df[column]
+        return s.copy(deep=False) if self._order is None else s.take(self._order)
 
     @property
     def n_units(self) -> int:
@@ -145,12 +193,12 @@ class Panel:
 
     @property
     def n_rows(self) -> int:
-        return int(len(self._data))
+        return int(len(self._df))
 
     @property
     def occasions(self) -> np.ndarray:
         """All occasions present in the table, sorted."""
-        return np.sort(self._data[self.time].unique())
+        return np.sort(self._df[self.time].unique())
 
     @property
     def occasions_per_unit(self) -> pd.Series:
@@ -173,7 +221,7 @@ class Panel:
         occ = self.occasions
         pos = {v: i for i, v in enumerate(occ)}
         out = {}
-        for u, times in self._data.groupby(self.unit, sort=True, observed=True)[self.time]:
+        for u, times in self._df.groupby(self.unit, sort=True, observed=True)[self.time]:
             idx = np.array([pos[t] for t in times])
             span = idx.max() - idx.min() + 1
             if span > len(idx):
@@ -207,9 +255,9 @@ class Panel:
 
     # ------------------------------------------------------------------ describe
     def numeric_columns(self) -> list[str]:
-        return [c for c in self._data.columns
+        return [c for c in self._df.columns
                 if c not in (self.unit, self.time)
-                and (pd.api.types.is_numeric_dtype(self._data[c]))]
+                and (pd.api.types.is_numeric_dtype(self._df[c]))]
 
     def describe(self, columns: Iterable[str] | None = None) -> pd.DataFrame:
         """Decompose each numeric variable into its between-unit and within-unit parts.
@@ -227,17 +275,17 @@ class Panel:
         else:
             columns = list(columns)
             for c in columns:
-                if c not in self._data.columns:
+                if c not in self._df.columns:
                     raise PanelDataError(f"column {c!r} is not in the table")
-                if not pd.api.types.is_numeric_dtype(self._data[c]):
+                if not pd.api.types.is_numeric_dtype(self._df[c]):
                     raise PanelDataError(
-                        f"column {c!r} is not numeric (dtype {self._data[c].dtype}); describe() "
+                        f"column {c!r} is not numeric (dtype {self._df[c].dtype}); describe() "
                         "summarises numeric columns"
                     )
         rows = []
-        units = self._data[self.unit]
+        units = self.sorted_column(self.unit)
         for c in columns:
-            x = self._data[c].astype(float)
+            x = self.sorted_column(c).astype(float)
             ok = x.notna()
             xv, uv = x[ok], units[ok]
             n = int(ok.sum())

@@ -162,24 +162,39 @@ def merge(a: Partial, b: Partial) -> Partial:
     return Partial(n, a.ref, shift, m2, within, ukeys, new_counts, new_offsets)
 
 
+#: units per slice when unit-level arrays are swept (bounds the temporaries to
+#: ``_UNIT_STEP x p`` whatever the number of units)
+_UNIT_STEP = 1 << 13
+
+
 def finalize(part: Partial, names=None) -> SuffStats:
-    """Turn merged block moments into :class:`SuffStats` (groups by panel length)."""
+    """Turn merged block moments into :class:`SuffStats` (groups by panel length).
+
+    The group statistics are swept over slices of units, so the only ``N x p`` array
+    made here is the result's ``unit_mean``.
+    """
     counts = part.counts
     lengths, ginv = np.unique(counts, return_inverse=True)
     ginv = ginv.ravel()
-    D, p = len(lengths), part.p
+    D, p, N = len(lengths), part.p, len(counts)
     gcount = np.bincount(ginv, minlength=D).astype(np.int64)
-    centred = part.offsets - part.shift
-    gmean_c = _group_sums(ginv, centred, D) / gcount[:, None]
+    # group means of the unit offsets, then cross-products of the offsets about them
+    gmean_o = np.empty((D, p))
+    for j in range(p):
+        gmean_o[:, j] = np.bincount(ginv, weights=part.offsets[:, j], minlength=D)
+    gmean_o /= gcount[:, None]
     gcp = np.zeros((D, p, p))
-    dev = centred - gmean_c[ginv]
-    for d in range(D):
-        sel = ginv == d
-        gcp[d] = dev[sel].T @ dev[sel]
+    for a in range(0, N, _UNIT_STEP):
+        g = ginv[a:a + _UNIT_STEP]
+        dev = part.offsets[a:a + _UNIT_STEP] - gmean_o[g]
+        for d in np.unique(g):
+            sel = dev[g == d]
+            gcp[d] += sel.T @ sel
     return SuffStats(
-        n=int(part.n), n_units=int(len(counts)), mean=part.mean, total=part.m2.copy(),
+        n=int(part.n), n_units=int(N), mean=part.mean, total=part.m2.copy(),
         within=part.within_m2.copy(), unit_count=counts.copy(), unit_mean=part.offsets + part.ref,
-        lengths=lengths.astype(np.int64), group_count=gcount, group_mean=gmean_c + part.mean,
+        lengths=lengths.astype(np.int64), group_count=gcount,
+        group_mean=(gmean_o - part.shift) + part.mean,
         group_cp=gcp, unit_keys=part.keys.copy(), names=list(names) if names is not None else None,
     )
 
@@ -196,11 +211,21 @@ def compute(X, y, unit_codes, names=None) -> SuffStats:
 
 
 def from_design(design, kind: str = "random") -> SuffStats:
-    """Sufficient statistics of a :class:`~bayespanel.design.Design` for one model kind."""
-    M, labels = design.matrices(kind)
+    """Sufficient statistics of ``[M, y]`` for ``M, _ = design.matrices(kind)``.
+
+    Read from the statistics the :class:`~bayespanel.design.Design` computed once
+    (``design.suffstats(kind)``); for ``"within"`` (demeaned time-varying columns) they
+    are derived from those exactly, as for the Mundlak and within-between kinds. No
+    ``n x k`` matrix is built.
+    """
     if kind == "between":
         raise ValueError("the between kind has one row per unit; use kind='random'")
-    return compute(M, design.y, design.unit_codes, names=list(labels) + [design.outcome])
+    if kind != "within":
+        return design.suffstats(kind)
+    from .engines._blocks import augment
+
+    A, B, labels = design._transform(kind)
+    return augment(design.suffstats("random"), A, B, names=list(labels) + [design.outcome])
 
 
 def quad_terms(stats: SuffStats, b: np.ndarray):
@@ -230,8 +255,10 @@ def _finish(n, ref, counts, offsets, within_m2, ukeys) -> Partial:
     """Block moments from the unit offsets and the within cross-products, with the exact
     decomposition ``total = within + sum_i T_i (zbar_i - zbar)(zbar_i - zbar)'``."""
     shift = (counts @ offsets) / n
-    dev = offsets - shift
-    m2 = within_m2 + (dev * counts[:, None]).T @ dev
+    m2 = within_m2.copy()
+    for a in range(0, len(counts), _UNIT_STEP):  # unit slices: no N x p temporaries
+        dev = offsets[a:a + _UNIT_STEP] - shift
+        m2 += (dev * counts[a:a + _UNIT_STEP, None]).T @ dev
     return Partial(int(n), ref, shift, m2, within_m2, ukeys, counts, offsets)
 
 
@@ -293,11 +320,16 @@ def compute_chunked(X, y, unit_codes, names=None, chunk_rows: int = 1 << 14) -> 
     groups = _sorted_groups(keys)
     if groups is not None:
         ukeys, counts, starts = groups
-        codes = np.repeat(np.arange(len(starts), dtype=np.int64), counts)
+
+        def codes_of(a, b):  # unit of each row of a slice, from the run starts
+            return np.searchsorted(starts, np.arange(a, b), side="right") - 1
     else:
         ukeys, codes = np.unique(keys, return_inverse=True)
         codes = codes.ravel()
         counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
+
+        def codes_of(a, b):
+            return codes[a:b]
     N, p = len(ukeys), k + 1
 
     def block(a, b):
@@ -312,18 +344,19 @@ def compute_chunked(X, y, unit_codes, names=None, chunk_rows: int = 1 << 14) -> 
         b = min(a + chunk_rows, n)
         Z = block(a, b)
         Z -= ref
-        c = codes[a:b]
+        c = codes_of(a, b)
         if groups is not None:
             local = np.flatnonzero(np.concatenate([[True], c[1:] != c[:-1]]))
             sums[c[local]] += np.add.reduceat(Z, local, axis=0)
         else:
             np.add.at(sums, c, Z)
-    offsets = sums / counts[:, None]
+    sums /= counts[:, None]
+    offsets = sums
     within = np.zeros((p, p))
     for a in range(0, n, chunk_rows):
         b = min(a + chunk_rows, n)
         Z = block(a, b)
         Z -= ref
-        Z -= offsets[codes[a:b]]
+        Z -= offsets[codes_of(a, b)]
         within += Z.T @ Z
     return finalize(_finish(n, ref, counts, offsets, within, ukeys), names=names)

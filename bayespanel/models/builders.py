@@ -38,13 +38,13 @@ References
 from __future__ import annotations
 
 import json
+import os
 import warnings
 from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
 
-from .. import suffstats as _ss
 from ..errors import DataHandlingWarning, EstimationError, SpecificationError, choices_error
 from . import gaussian
 from .priors import Prior, resolve_priors, standardised_params
@@ -53,6 +53,7 @@ __all__ = ["ModelSpec", "GaussianModel", "Pooled", "RandomIntercept", "WithinBet
            "CorrelatedEffects", "FixedEffects", "BUILDERS"]
 
 LIKELIHOODS = ("marginal", "latent")
+_PKG_DIR = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
 
 @dataclass(frozen=True)
@@ -164,14 +165,52 @@ class GaussianModel:
             raise SpecificationError(
                 f"occasion_effects={occasion_effects!r} must be True or False")
         design = panel.design(formula, occasion_effects=bool(occasion_effects))
-        M, labels = self._matrix(design)
-        stats = _ss.compute(M, design.y, design.unit_codes, names=list(labels) + [design.outcome])
-        self.design = design
-        self._setup(stats, labels, outcome=design.outcome, units=design.units, priors=priors,
-                    likelihood=likelihood, rows=(M, design.y, design.unit_codes),
-                    design_spec=design.spec.to_dict())
+        self._init_design(design, priors, likelihood)
 
     # ------------------------------------------------------------------ constructors
+    @classmethod
+    def from_design(cls, design, priors=None, likelihood="marginal"):
+        """Build the model on a ready :class:`~bayespanel.design.Design` (``design.build``).
+
+        The likelihood reads the design's sufficient statistics
+        (``Design.model_suffstats(kind)``); the rows ``(M, y, unit_codes)`` are made
+        from the design only when something needs them (``likelihood="latent"``,
+        predictive draws, LOO), so building a marginal model holds no ``n x k`` matrix.
+        """
+        obj = cls.__new__(cls)
+        obj._check_likelihood(likelihood)
+        obj._init_design(design, priors, likelihood)
+        return obj
+
+    def _init_design(self, design, priors, likelihood):
+        stats = self._design_stats(design)
+        labels = list(stats.names[:-1])
+        self.design = design
+        self._setup(stats, labels, outcome=design.outcome, units=design.units, priors=priors,
+                    likelihood=likelihood, rows=None, design_spec=design.spec.to_dict(),
+                    rows_from=lambda: self._rows_of(design))
+
+    def _design_stats(self, design):
+        return design.model_suffstats(self.kind)
+
+    def _rows_of(self, design):
+        M, _ = self._matrix(design)
+        return M, design.y, design.unit_codes
+
+    @property
+    def rows(self):
+        """``(M, y, unit_codes)`` on the estimation rows, or None; made from the design
+        on first use when the model was built on one."""
+        if getattr(self, "_rows", None) is None and getattr(self, "_rows_from", None):
+            self._rows = self._rows_from()
+            self._rows_from = None
+        return getattr(self, "_rows", None)
+
+    @rows.setter
+    def rows(self, value):
+        self._rows = value
+        self._rows_from = None
+
     @classmethod
     def from_suffstats(cls, stats, labels, *, outcome="y", units=None, priors=None,
                        likelihood="marginal", rows=None, design_spec=None):
@@ -208,13 +247,14 @@ class GaussianModel:
     def _matrix(self, design):
         return design.matrices(self.kind)
 
-    def _setup(self, stats, labels, *, outcome, units, priors, likelihood, rows, design_spec):
+    def _setup(self, stats, labels, *, outcome, units, priors, likelihood, rows, design_spec,
+               rows_from=None):
         labels = [str(x) for x in labels]
         if stats.k != len(labels):
             raise SpecificationError(
                 f"labels has {len(labels)} names but the statistics have {stats.k} covariate "
                 "columns")
-        if likelihood == "latent" and rows is None:
+        if likelihood == "latent" and rows is None and rows_from is None:
             raise SpecificationError(
                 "likelihood='latent' needs the rows (M, y, unit_codes); build from a panel or "
                 "pass rows=")
@@ -234,6 +274,7 @@ class GaussianModel:
                 "are not identified); use Pooled, or a panel with repeated occasions")
         self.stats = stats
         self.rows = rows
+        self._rows_from = rows_from
         self.scaling = self._scaling(stats)
         sd = _column_sd(stats, self.kind)
         self.priors = resolve_priors(priors, labels, intercept=self.intercept, sd_y=sd[-1],
@@ -327,7 +368,7 @@ class GaussianModel:
             for fam, idx in groups.items():
                 coords[f"term_{fam}"] = [self.labels[j] for j in idx]
         if self.likelihood == "latent" or self.unit_effects != "none":
-            coords["unit"] = list(self.units)
+            coords["unit"] = self._unit_coord()
         vals = self._data_values()
         with pm.Model(coords=coords) as model:
             d = {name: pm.Data(name, val) for name, val in vals.items()}
@@ -357,6 +398,15 @@ class GaussianModel:
                 pm.Deterministic("sigma_unit", d["scale_y"] * tau)
                 pm.Deterministic("icc", tau ** 2 / (tau ** 2 + sigma ** 2))
         return model
+
+    def _unit_coord(self):
+        """The unit labels for the graph's ``unit`` dimension. PyMC keeps them as a tuple of
+        Python objects (about 40 bytes a unit); models built on one design share the
+        design's tuple instead of holding one each."""
+        d = getattr(self, "design", None)
+        if d is not None and hasattr(d, "unit_labels") and self.units.equals(d.units):
+            return d.unit_labels()
+        return list(self.units)
 
     def _marginal_potential(self, pm, pt, d, b_std, sigma, tau):
         v = gaussian.residual_vector(b_std, xp=pt)
@@ -571,13 +621,16 @@ class FixedEffects(GaussianModel):
     kind = "within"
     unit_effects = "fixed"
 
-    def _matrix(self, design):
-        _, labels = design.matrices("within")
+    def _design_stats(self, design):
         if design.time_constant:
             warnings.warn(
                 f"FixedEffects leaves out {', '.join(map(repr, design.time_constant))}: "
                 "constant within units, absorbed by the unit intercepts (not estimable)",
-                DataHandlingWarning, stacklevel=3)
+                DataHandlingWarning, skip_file_prefixes=(_PKG_DIR,))
+        return design.model_suffstats("within")
+
+    def _matrix(self, design):
+        labels = design.labels("within")
         cols = [design.terms.index(t) for t in labels]
         return design.X[:, cols], labels
 

@@ -229,11 +229,91 @@ def fit_design(design, estimator: str, *, method=None, cov="classical") -> Refer
     if getattr(design, "out_of_core", False):  # a DaskDesign: statistics only
         return design.fit_reference(estimator, method=method, cov=cov)
     method = _check_options(estimator, method, cov)
-    M, labels = design.matrices(_KIND[estimator])
-    res = fit_arrays(estimator, M, design.y, design.unit_codes, labels, method=method,
-                     cov=cov, outcome=design.outcome, units=design.units)
+    kind = _KIND[estimator]
+    if cov == "cr2" or not hasattr(design, "suffstats"):
+        # CR2 needs the rows of the regression (per-cluster k x k blocks of them)
+        M, labels = design.matrices(kind)
+        res = fit_arrays(estimator, M, design.y, design.unit_codes, labels, method=method,
+                         cov=cov, outcome=design.outcome, units=design.units)
+        res.design = design
+        return res
+    # statistics only; the cluster-robust scores in one more pass over row slices
+    ss = design.suffstats(kind)
+    res = fit_stats(estimator, ss, list(ss.names[:-1]), method=method, outcome=design.outcome)
+    res.extra["unit_labels"] = np.asarray(design.units)
     res.design = design
+    if cov == "cluster":
+        scores, n_rows, keep = design_scores(res, estimator, design, kind)
+        k = len(res._coef)
+        if estimator == "within" and core.intercept_column(ss) is not None:
+            k += 1
+        G = int(keep.sum())
+        res._vcov = cr1(res.extra["bread"], scores, n_rows, k)
+        res._df = np.full(len(res._coef), G - 1.0)
+        res.cov_type = cov
+        res.extra["n_clusters"] = G
     return res
+
+
+def design_scores(res, estimator, design, kind, chunk_rows: int = 1 << 12):
+    """Per-unit scores ``s_g = sum_t x*_gt e_gt`` of the regression behind ``res``, from
+    the design's rows in slices (no ``n x k`` matrix).
+
+    The rows of ``kind`` are ``m_it = A z_it + B zbar_i`` (``z = [X, y]``;
+    ``Design._transform``), and the regression solved on them subtracts ``c_i`` times the
+    unit mean (1 for fixed effects, ``theta_i`` for the random-intercept GLS, 0 for
+    pooled). With ``d_it = z_it - zbar_i``, ``m_it - c_i mbar_i = A d_it + (1 - c_i)
+    mbar_i`` and, because ``sum_t d_it = 0``,
+
+        s_i = sum_t (A d_it)_cols (d_it' A'v) + T_i (1 - c_i)^2 mbar_i,cols (mbar_i'v)
+
+    with ``v = [-b, 1]``: one slice-wise sum over the rows and a unit-level term. The
+    between estimator needs no rows (one row per unit). Returns ``(scores, n_rows,
+    keep)``: scores of the units that are clusters (``keep``; fixed effects leave out
+    single-row units) and the number of rows of the regression.
+    """
+    ss = design.suffstats(kind)
+    base = design.suffstats("random")
+    cols = np.asarray(res.extra["cols"], dtype=np.int64)
+    v = np.zeros(ss.p)
+    v[cols] = -res._coef
+    v[-1] = 1.0
+    mbar = ss.unit_mean
+    T = ss.unit_count.astype(float)
+    rbar = mbar @ v
+    if estimator == "between":
+        keep = np.ones(ss.n_units, bool)
+        return mbar[:, cols] * rbar[:, None], ss.n_units, keep
+    if kind in ("mundlak", "within_between"):
+        A = design._transform(kind)[0]
+    else:
+        A = np.eye(base.p)
+    Ac, Av = A[cols], A.T @ v
+    zbar = base.unit_mean
+    codes = design.unit_codes
+    scores = np.zeros((ss.n_units, len(cols)))
+    k = design.k
+    for a in range(0, design.n, chunk_rows):
+        b = min(a + chunk_rows, design.n)
+        c = codes[a:b]
+        D = np.empty((b - a, k + 1))
+        D[:, :k] = design.X[a:b]
+        D[:, k] = design.y[a:b]
+        D -= zbar[c]
+        P = (D @ Ac.T) * (D @ Av)[:, None]
+        local = np.flatnonzero(np.concatenate([[True], c[1:] != c[:-1]]))
+        scores[c[local]] += np.add.reduceat(P, local, axis=0)
+    if estimator == "within":
+        keep = ss.unit_count > 1
+        return scores[keep], int(ss.unit_count[keep].sum()), keep
+    if estimator == "pooled":
+        cw = np.zeros(ss.n_units)
+    else:
+        cw = res.theta_by_length[np.searchsorted(ss.lengths, ss.unit_count)]
+    wr = T * (1.0 - cw) ** 2 * rbar
+    for j, c in enumerate(cols):  # column by column: no N x k temporaries
+        scores[:, j] += mbar[:, c] * wr
+    return scores, ss.n, np.ones(ss.n_units, bool)
 
 
 # ---------------------------------------------------------------------- array level
@@ -310,7 +390,10 @@ def fit_stats(estimator, ss, labels, *, method=None, outcome=None) -> ReferenceR
     s2u, s2e = fit.sigma2_unit, fit.sigma2_obs
     # mean residual of each unit (the intercept left out for fixed effects), kept for
     # plug-in predictions and the descriptive unit spread of fixed effects
-    ubar = ss.unit_mean[:, -1] - ss.unit_mean[:, cols] @ fit.beta
+    v = np.zeros(ss.p)
+    v[cols] = -fit.beta
+    v[-1] = 1.0
+    ubar = ss.unit_mean @ v  # no N x k copy of the unit means
     extra = dict(fit.extra)
     if estimator == "within":
         multi = ss.unit_count > 1
@@ -318,7 +401,7 @@ def fit_stats(estimator, ss, labels, *, method=None, outcome=None) -> ReferenceR
     elif estimator == "between":
         extra["sigma_between"] = float(np.sqrt(fit.sigma2))
         s2e = float("nan")
-    extra.update(unit_resid_mean=ubar, unit_count=ss.unit_count.copy(), cols=cols,
+    extra.update(unit_resid_mean=ubar, unit_count=ss.unit_count, cols=cols,
                  all_labels=labels, rss=fit.rss, sigma2=fit.sigma2, bread=fit.bread)
     assumptions = list(_ASSUME[estimator])
     if method:
