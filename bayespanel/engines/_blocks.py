@@ -307,13 +307,12 @@ def _build_Z(sub: pd.DataFrame, spec: BlockSpec) -> np.ndarray:
     return Z
 
 
-def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
-    """Rows of one partition: listwise deletion, ``[X, y]``, its :class:`Partial` (and the
-    partition's structure, over all its rows, when ``spec.structure``)."""
-    st = structure_block(pdf, spec.unit, spec.time) if spec.structure else None
-    n_input = len(pdf)
+def complete_rows(pdf: pd.DataFrame, spec: BlockSpec):
+    """Listwise deletion and ``[X, y]`` of one partition: ``(sub, keep, missing, Z)`` with
+    the kept rows ``sub``, the mask ``keep``, missing values per used column, and ``Z``
+    (one C-ordered float64 array); refuses infinite or non-finite covariates."""
     used = list(spec.used)
-    miss = pdf[used].isna().to_numpy() if used else np.zeros((n_input, 0), bool)
+    miss = pdf[used].isna().to_numpy() if used else np.zeros((len(pdf), 0), bool)
     missing = miss.sum(axis=0).astype(np.int64)
     keep = ~miss.any(axis=1)
     sub = pdf if keep.all() else pdf.loc[keep]
@@ -328,6 +327,14 @@ def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
             f"term {spec.terms[bad]!r} is not finite at {spec.unit}="
             f"{_plain(sub[spec.unit].iloc[r])!r}, {spec.time}={_plain(sub[spec.time].iloc[r])!r}"
             " (a transform such as log of a non-positive value?)")
+    return sub, keep, missing, Z
+
+
+def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
+    """Rows of one partition: listwise deletion, ``[X, y]``, its :class:`Partial` (and the
+    partition's structure, over all its rows, when ``spec.structure``)."""
+    st = structure_block(pdf, spec.unit, spec.time) if spec.structure else None
+    sub, keep, missing, Z = complete_rows(pdf, spec)
     keys = sub[spec.unit].to_numpy()
     maxabs = np.abs(Z).max(axis=0) if len(Z) else np.zeros(Z.shape[1])
     Zrows = Z.copy() if spec.unit_cp else None
@@ -335,7 +342,7 @@ def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
     if st is not None and keep.all() and len(st.keys) == len(part.keys):
         st.keys, st.counts = part.keys, part.counts  # the same units and counts: share them
     ucp = None if Zrows is None else _unit_cp(Zrows, keys, part)
-    return DesignPiece(n_input, missing, int((~keep).sum()), maxabs, part, ucp, st)
+    return DesignPiece(len(pdf), missing, int((~keep).sum()), maxabs, part, ucp, st)
 
 
 def _unit_cp(Z, keys, part) -> np.ndarray:

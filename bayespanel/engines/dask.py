@@ -215,12 +215,31 @@ class DaskPanel:
     def _pieces(self, columns):
         return self._df[list(columns)].to_delayed()
 
-    def run(self, columns, block, merge, *args):
+    def _distributed(self):
+        """The distributed client the passes run on, or ``None`` (Dask's local schedulers)."""
+        if isinstance(self.client, str):
+            return local_client() if self.client == "local" else None
+        return self.client
+
+    def _share(self, obj):
+        """``obj`` as one argument shared by every partition's task: scattered once to the
+        workers of a distributed client (thread workers share it in memory), else one key
+        of the graph."""
+        client = self._distributed()
+        if client is None:
+            from dask import delayed
+
+            return delayed(obj, name=f"bayespanel-shared-{id(obj):x}", traverse=False)
+        return client.scatter(obj, broadcast=True, hash=False)
+
+    def run(self, columns, block, merge, *args, shared=None):
         """Apply ``block(partition, *args)`` to every partition of ``columns`` and reduce
-        the pieces with ``merge`` on this panel's scheduler; returns the merged piece."""
+        the pieces with ``merge`` on this panel's scheduler; returns the merged piece.
+        ``shared`` (large, read-only) is passed last to every call, sent to the workers once."""
         from dask import delayed
 
-        parts = [delayed(block, pure=True)(d, *args) for d in self._pieces(columns)]
+        extra = () if shared is None else (self._share(shared),)
+        parts = [delayed(block, pure=True)(d, *args, *extra) for d in self._pieces(columns)]
         root = _tree(parts, merge)
         if isinstance(self.client, str):
             sched = {"local": None, "threads": "threads", "synchronous": "sync"}[self.client]
@@ -516,8 +535,10 @@ class DaskDesign:
             raise PanelDataError(
                 f"only {stats.n_units} unit of {p.unit!r} has complete rows; at least 2 are "
                 "needed")
-        stats, maxabs, ucp = self._drop_absent_occasions(stats, piece.maxabs, piece.unit_cp)
+        stats, maxabs, ucp, kept = self._drop_absent_occasions(stats, piece.maxabs,
+                                                               piece.unit_cp)
         self._stats = stats
+        self.kept_columns = kept
         self._maxabs = maxabs
         self._unit_cp = ucp
         self.terms = list(stats.names[:-1])
@@ -532,7 +553,7 @@ class DaskDesign:
         of them the reference."""
         occ = self._block_spec.occasions
         if not occ:
-            return stats, maxabs, ucp
+            return stats, maxabs, ucp, None
         k0 = len(self.formula_terms) - len(occ)
         share = stats.mean[k0:k0 + len(occ)]
         present = share * stats.n > 0.5
@@ -542,10 +563,10 @@ class DaskDesign:
             keep_occ = keep_occ[1:]
         cols = list(range(k0)) + [k0 + j for j in keep_occ] + [stats.p - 1]
         if len(cols) == stats.p:
-            return stats, maxabs, ucp
+            return stats, maxabs, ucp, None
         names = [stats.names[c] for c in cols]
         ucp = None if ucp is None else ucp[:, cols][:, :, cols]
-        return blk.select_columns(stats, cols, names), maxabs[cols], ucp
+        return blk.select_columns(stats, cols, names), maxabs[cols], ucp, tuple(cols)
 
     # ------------------------------------------------------------------ sizes
     @property
@@ -624,12 +645,57 @@ class DaskDesign:
         return unit_loglik_stats(self.unit_cross_products(kind), ss.unit_mean, ss.unit_count,
                                  b, sigma, tau, units=units)
 
-    def loo_subsample(self, post, observations: int = 400, *, seed: int = 0, reff=None):
-        """Sub-sampled unit-level LOO of a posterior fitted on this design (Magnusson et
-        al. 2019); see :func:`bayespanel.engines._pointwise.loo_subsample_units`."""
-        from ._pointwise import loo_subsample_units
+    def loo_subsample(self, post, observations: int = 400, *, level: str = "unit",
+                      seed: int = 0, reff=None):
+        """Sub-sampled LOO of a posterior fitted on this design (Magnusson et al. 2019).
 
-        return loo_subsample_units(post, self, observations, seed=seed, reff=reff)
+        ``level="unit"``: terms from the per-unit statistics, no pass over the rows
+        (:func:`bayespanel.engines._pointwise.loo_subsample_units`). ``level="occasion"``:
+        one more pass over the partitions
+        (:func:`bayespanel.engines._pointwise.loo_subsample_occasions`). Same seed, same
+        sampled points and the same numbers as :func:`bayespanel.loo.loo_subsample` in
+        memory.
+        """
+        from ..loo import LEVELS
+        from ._pointwise import loo_subsample_occasions, loo_subsample_units
+
+        if level not in LEVELS:
+            raise choices_error("level", level, LEVELS)
+        fn = loo_subsample_units if level == "unit" else loo_subsample_occasions
+        return fn(post, self, observations, seed=seed, reff=reff)
+
+    def design_suffstats(self) -> suffstats.SuffStats:
+        """The statistics of the design's own columns ``[X, y]`` (terms as in ``terms``)."""
+        return self._stats
+
+    def row_map(self, kind: str):
+        """``(A, B)`` with the rows of ``[M, y]`` of ``kind`` equal to ``A z + B zbar_i``
+        for a design row ``z = [x, y]`` and its unit mean ``zbar_i`` (``M`` as in
+        ``Design.matrices(kind)``; ``"within"``: the demeaned time-varying columns)."""
+        if kind not in KINDS:
+            raise choices_error("kind", kind, KINDS)
+        p = self.k + 1
+        if kind in ("mundlak", "within_between"):
+            A, B, _ = self._transform(kind)
+            return A, B
+        if kind == "within":
+            tv = [i for i, t in enumerate(self.terms) if self.varies_within[t]]
+            A = np.eye(p)[tv + [self.k]]
+            B = -A.copy()
+            B[-1] = 0.0
+            return A, B
+        return np.eye(p), np.zeros((p, p))
+
+    def run_rows(self, block, merge, shared):
+        """One more pass over the rows of this design: ``block(partition, spec, shared)``
+        on every partition (listwise deletion as in the design pass:
+        :func:`bayespanel.engines._blocks.complete_rows`), reduced with ``merge``."""
+        from dataclasses import replace
+
+        p = self.panel
+        spec = replace(self._block_spec, unit_cp=False, structure=False)
+        cols = list(dict.fromkeys([p.unit, p.time] + list(spec.used)))
+        return p.run(cols, block, merge, spec, shared=shared)
 
     def matrices(self, kind):
         raise EstimationError(
