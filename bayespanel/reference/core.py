@@ -146,6 +146,22 @@ def _unshift(beta, bread, cols, s, icol):
     return b, L @ bread @ L.T
 
 
+def _between_scale(ss, A):
+    """Sizes for rank decisions on unit-mean cross-products ``A``: each column's total
+    variation over the rows (``diag(total)``), its own entry of ``A`` where it has none
+    (the intercept). A column whose unit means do not vary (an occasion indicator in a
+    balanced panel, the within part of a hybrid model) then counts as absent from the
+    between regression, instead of entering with the rounding left in its unit means."""
+    size = np.diag(ss.total)[:-1].copy()
+    k = A.shape[0] - 1
+    flat = ~(size > 0)
+    size[flat] = np.diag(A)[:k][flat]
+    icol = intercept_column(ss)
+    if icol is not None:
+        size[icol] = A[icol, icol]
+    return np.append(size, A[k, k])
+
+
 def _select(A, cols, scale, priority=None):
     k = A.shape[0] - 1
     if cols is None:
@@ -218,7 +234,7 @@ def between_core(ss, cols=None, weights="units", priority=None) -> CoreFit:
     s = _shift(ss, icol)
     w = np.ones(len(ss.lengths)) if weights == "units" else ss.lengths.astype(float)
     A = _cp_units(ss, s, w)
-    cols = _select(A, cols, None, priority)
+    cols = _select(A, cols, _between_scale(ss, A), priority)
     beta, rss, bread = _solve(A, cols)
     beta, bread = _unshift(beta, bread, cols, s, icol)
     df = ss.n_units - len(cols)
@@ -275,7 +291,7 @@ def swamy_arora_components(ss, priority=None):
     icol = intercept_column(ss)
     s = _shift(ss, icol)
     At = _cp_units(ss, s, ss.lengths.astype(float))           # sum T_i zbar zbar'
-    cols_b = independent_columns(At[:k, :k], priority=priority)
+    cols_b = independent_columns(At[:k, :k], _between_scale(ss, At)[:k], priority=priority)
     _, ssr_t, bread_t = _solve(At, cols_b)
     df_b = ss.n_units - len(cols_b)
     if df_b <= 0:
