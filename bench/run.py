@@ -22,6 +22,7 @@ BENCHES = [
     ("bench_slopes.py", [], ["--rows", "10000", "--draws", "200"]),
     ("bench_design_check.py", [], ["--replicates", "20", "--fresh", "2", "--draws", "200"]),
     ("bench_scale.py", [], ["--rows", "1000000"]),
+    ("bench_memory.py", [], ["--reps", "15,60"]),
 ]
 
 
