@@ -131,7 +131,7 @@ class Design:
         self._means = None
         if stats is None:
             stats = _ss.compute_chunked(self.X, self.y, self.unit_codes,
-                                              names=self.terms + [self.outcome])
+                                        names=self.terms + [self.outcome])
         self._stats = stats
         self._cache = {}
         # within variation from the within block of the statistics of [X, y]
