@@ -185,7 +185,7 @@ def test_factorised_and_closed_form_occasion_loo_agree():
     """Both occasion-level estimators target p(y_it | y_-it): for a Gaussian random
     intercept sampled with latent intercepts, PSIS on log N(y_it; x'b + u_i, sigma^2)
     (scipy.stats.norm, arviz_stats.loo) agrees with our PSIS on the closed-form conditional
-    (Bürkner, Gabry and Vehtari 2021) within two SEs of the paired difference."""
+    (Bürkner, Gabry and Vehtari 2021) to a tenth of the ELPD's SE."""
     import arviz_stats
     import xarray as xr
 
@@ -205,7 +205,13 @@ def test_factorised_and_closed_form_occasion_loo_agree():
             "log_likelihood": xr.DataTree(xr.Dataset({"y": (("chain", "draw", "row"), ll)}))})
         factorised = arviz_stats.loo(dt, var_name="y", pointwise=True)
     d = np.asarray(factorised.elpd_i) - closed.elpd_i
-    assert abs(d.sum()) < 2 * np.sqrt(len(d) * np.var(d, ddof=1))
+    # Both carry Monte Carlo and PSIS error, so the yardstick is the ELPD's own SE: the two
+    # agree to a tenth of it (measured: 0.6 of 10.9 on 242 rows), while the in-sample
+    # optimism that the reweighting removes from the factorised terms (their p_loo, about
+    # 34 here, against 3.4 for the closed form) is fifty times larger than the gap.
+    assert abs(d.sum()) < 0.1 * closed.se
+    assert abs(d.sum()) < 0.05 * float(factorised.p)
+    assert np.abs(d).max() < 0.25
 
 
 # ---------------------------------------------------------------------------- occasion labels
