@@ -185,6 +185,34 @@ def test_occasion_effects_match_memory(wage, wage_dask):
     assert rel(a.suffstats().total, suffstats.from_design(b).total) < 1e-10
 
 
+@pytest.mark.parametrize("kind", ["mundlak", "within_between"])
+def test_occasion_effects_between_parts_match_memory(grunfeld_panels, kind):
+    # Source: Grunfeld panel (statsmodels.datasets), balanced, so the unit means of the
+    # occasion indicators are all equal and enter neither path (Design._with_between_part);
+    # reference: the in-memory design on the same rows, and linearmodels RandomEffects
+    # with year indicators for sigma_unit (Swamy-Arora's variance components of the Mundlak
+    # and hybrid models equal the random-effects ones: the unit means add nothing to the
+    # span of the between regression, and the within regression is the same).
+    from linearmodels.panel import RandomEffects
+
+    df, panels = grunfeld_panels
+    mem = bp.Panel(df, "firm", "year").design(GRUNFELD, occasion_effects=True)
+    dsk = panels["one-unit-each"].design(GRUNFELD, occasion_effects=True)
+    assert dsk.labels(kind) == mem.labels(kind) == mem.matrices(kind)[1]
+    assert not any(t.startswith("occasion[") and ("mean" in t or "between" in t)
+                   for t in dsk.labels(kind))
+    a = bp.reference.fit_design(dsk, kind, method="swamy-arora")
+    b = bp.reference.fit_design(mem, kind, method="swamy-arora")
+    assert rel(a.coef, b.coef) < 1e-10 and rel(a.sigma_unit, b.sigma_unit) < 1e-10
+    d = df.set_index(["firm", "year"])
+    exog = pd.get_dummies(d.index.get_level_values("year"), prefix="y", drop_first=True,
+                          dtype=float).set_index(d.index)
+    exog.insert(0, "const", 1.0)
+    exog[["value", "capital"]] = d[["value", "capital"]]
+    re = RandomEffects(d["invest"], exog).fit()
+    assert abs(a.sigma_unit - float(np.sqrt(re.variance_decomposition["Effects"]))) < 1e-6 * a.sigma_unit
+
+
 def test_row_wise_transforms(wage, wage_dask):
     # Source: wage panel (linearmodels.datasets); log, powers and interactions per row.
     _, mem = wage

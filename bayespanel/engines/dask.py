@@ -44,7 +44,7 @@ import numpy as np
 import pandas as pd
 
 from .. import suffstats
-from ..design import KINDS, Design, DesignSpec, _label_between, _label_mean, _label_within
+from ..design import KINDS, Design, DesignSpec, check_stats
 from ..errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
                       SpecificationError, choices_error)
 from ..formula import safe_context, screen
@@ -542,7 +542,7 @@ class DaskDesign:
         self._maxabs = maxabs
         self._unit_cp = ucp
         self.terms = list(stats.names[:-1])
-        _check_stats(stats, self.terms, self.outcome, maxabs)
+        check_stats(stats, self.terms, self.outcome, maxabs, stacklevel=6)
         within_sd = np.sqrt(np.maximum(np.diag(stats.within)[:-1], 0.0) / stats.n)
         scale = np.maximum(maxabs[:-1], 1.0)
         self.varies_within = pd.Series(within_sd > _VARY_TOL * scale, index=self.terms)
@@ -614,17 +614,6 @@ class DaskDesign:
         from ._reference import fit
 
         return fit(self, estimator, method=method, cov=cov)
-
-    def model_suffstats(self, kind: str) -> suffstats.SuffStats:
-        """Statistics a Bayesian builder of ``kind`` reads: as :meth:`suffstats`, except
-        ``"within"`` keeps only the time-varying columns (what ``FixedEffects`` uses)."""
-        if kind != "within":
-            return self.suffstats(kind)
-        tv = [i for i, t in enumerate(self.terms) if self.varies_within[t]]
-        if not tv:
-            self._transform("within")  # raises the in-memory message
-        names = [self.terms[i] for i in tv] + [self.outcome]
-        return blk.select_columns(self._stats, tv + [self.k], names)
 
     def build(self, builder, priors=None, **kwargs):
         """A Gaussian model (``bayespanel.models`` builder class, e.g. ``RandomIntercept``)
@@ -705,63 +694,14 @@ class DaskDesign:
             "design.build(bp.models.RandomIntercept) for a Bayesian model")
 
     # ------------------------------------------------------------------ statistics
-    def _transform(self, kind):
-        """``(A, B, labels)`` with the kind's rows ``A z_it + B zbar_i`` (``z = [X, y]``)."""
-        k = self.k
-        p = k + 1
-        tv = [i for i, t in enumerate(self.terms) if self.varies_within[t]]
-        if kind in ("within", "mundlak", "within_between") and not tv:
-            raise EstimationError(
-                f"no covariate in {self.spec.formula!r} varies within units, so a "
-                f"{kind.replace('_', '-')} model has no within part to estimate")
-        if kind == "mundlak":
-            labels = list(self.terms) + [_label_mean(self.terms[i]) for i in tv]
-            rows_a = [np.eye(p)[j] for j in range(k)] + [np.zeros(p)] * len(tv)
-            rows_b = [np.zeros(p)] * k + [np.eye(p)[i] for i in tv]
-        else:  # within_between
-            labels, rows_a, rows_b = [], [], []
-            for i, t in enumerate(self.terms):
-                if t == "Intercept":
-                    labels.append(t); rows_a.append(np.eye(p)[i]); rows_b.append(np.zeros(p))
-            for i in tv:
-                labels.append(_label_within(self.terms[i]))
-                rows_a.append(np.eye(p)[i]); rows_b.append(-np.eye(p)[i])
-            for i in tv:
-                labels.append(_label_between(self.terms[i]))
-                rows_a.append(np.zeros(p)); rows_b.append(np.eye(p)[i])
-            for i, t in enumerate(self.terms):
-                if t != "Intercept" and i not in tv:
-                    labels.append(t); rows_a.append(np.eye(p)[i]); rows_b.append(np.zeros(p))
-        A = np.vstack(rows_a + [np.eye(p)[k]])
-        B = np.vstack(rows_b + [np.zeros(p)])
-        return A, B, labels
-
-    def labels(self, kind: str) -> list[str]:
-        """Column labels of ``kind``, as ``Design.matrices(kind)[1]``."""
-        if kind not in KINDS:
-            raise choices_error("kind", kind, KINDS)
-        if kind in ("pooled", "random", "between"):
-            return list(self.terms)
-        if kind == "within":
-            return list(self.time_varying)
-        return self._transform(kind)[2]
-
-    def suffstats(self, kind: str = "random") -> suffstats.SuffStats:
-        """Sufficient statistics of ``[M, y]`` with ``M`` the columns of ``kind``.
-
-        ``"pooled"``, ``"random"`` (and ``"within"``/``"between"``, whose estimators use
-        the original columns): the statistics of the pass. ``"mundlak"`` and
-        ``"within_between"``: derived exactly (no second pass). Equal to
-        ``suffstats.from_design(panel.design(formula), kind)`` on the same rows.
-        """
-        if kind not in KINDS:
-            raise choices_error("kind", kind, KINDS)
-        if kind in ("pooled", "random", "within", "between"):
-            return self._stats
-        if kind not in self._cache:
-            A, B, labels = self._transform(kind)
-            self._cache[kind] = blk.augment(self._stats, A, B, names=labels + [self.outcome])
-        return self._cache[kind]
+    # The columns of each kind, their labels and statistics: the in-memory design's own
+    # code (which reads only terms, varies_within, has_intercept, spec and the statistics
+    # of [X, y]), so both paths choose the same between parts (Design._with_between_part)
+    _transform = Design._transform
+    _with_between_part = Design._with_between_part
+    labels = Design.labels
+    suffstats = Design.suffstats
+    model_suffstats = Design.model_suffstats
 
     def unit_cross_products(self, kind: str = "random") -> np.ndarray:
         """Per-unit within cross-products of ``[M, y]`` (N x p x p), in unit order.
@@ -776,34 +716,3 @@ class DaskDesign:
         return blk.augment_unit_cp(self._unit_cp, A)
 
 
-def _check_stats(stats, terms, outcome, maxabs):
-    """The in-memory design's checks (constant outcome or covariate, collinearity), from
-    the cross-products."""
-    from ..design import collinearity_warning
-    from ..reference._linalg import independent_columns
-
-    if stats.total[-1, -1] == 0:
-        raise PanelDataError(f"the outcome {outcome!r} is constant ({stats.mean[-1]!r}) on "
-                             "every row used")
-    for j, t in enumerate(terms):
-        if t != "Intercept" and stats.total[j, j] <= stats.n * (1e-14 * maxabs[j]) ** 2:
-            raise PanelDataError(
-                f"covariate {t!r} is constant ({stats.mean[j]!r}) on every row used; it cannot "
-                "be told apart from the intercept")
-    k = len(terms)
-    if k == 0:
-        return
-    if stats.n < k:
-        raise PanelDataError(f"{stats.n} rows cannot identify {k} terms")
-    G = stats.total[:k, :k] + stats.n * np.outer(stats.mean[:k], stats.mean[:k])
-    scale = np.sqrt(np.maximum(np.diag(G), np.finfo(float).tiny))
-    R = G / np.outer(scale, scale)
-    keep = independent_columns(R)
-    if len(keep) < k:
-        bad = [terms[i] for i in range(k) if i not in set(keep.tolist())]
-        raise PanelDataError(
-            f"covariates are exactly collinear: {', '.join(map(repr, bad))} can be written as a "
-            "combination of the other terms; drop or recode them")
-    # the same measure and threshold as the in-memory design (design.collinearity_warning)
-    collinearity_warning(stats.total[:k, :k] if "Intercept" in terms else G, terms,
-                         cross_products=True, stacklevel=5)
