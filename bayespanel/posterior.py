@@ -163,16 +163,32 @@ class Posterior:
         self.spec = spec
         self.stats = stats
         self.units = pd.Index(units)
-        self.rows = rows
+        if callable(rows):  # made on first use (predictive draws, LOO, partitions)
+            self._rows, self._rows_from = None, rows
+        else:
+            self.rows = rows
         self.sampling = dict(sampling or {})
         self.scaling = scaling
-        n = None if rows is None else len(rows[1])
+        n = None if rows is None else int(stats.n)
         for name, v in (("time", time), ("row_labels", row_labels)):
             if v is not None and n is not None and len(v) != n:
                 raise SpecificationError(f"{name} has {len(v)} values for {n} estimation rows")
         self.time = None if time is None else np.asarray(time)
         self.row_labels = None if row_labels is None else np.asarray(row_labels)
         self._cache = {}
+
+    @property
+    def rows(self):
+        """``(M, y, unit_codes)`` on the estimation rows, or None. A posterior of a model
+        built on a Design makes them from it on first use, so sampling holds no copy of
+        the rows until a method needs them."""
+        if self._rows is None and self._rows_from is not None:
+            self._rows, self._rows_from = self._rows_from(), None
+        return self._rows
+
+    @rows.setter
+    def rows(self, value):
+        self._rows, self._rows_from = value, None
 
     @staticmethod
     def _row_info(model) -> dict:
@@ -183,7 +199,9 @@ class Posterior:
 
     @classmethod
     def from_model(cls, model, idata, info) -> "Posterior":
-        return cls(idata, model.spec, model.stats, model.units, rows=model.rows, sampling=info,
+        pending = getattr(model, "_rows", None) is None and getattr(model, "_rows_from", None)
+        rows = (lambda: model.rows) if pending else model.rows
+        return cls(idata, model.spec, model.stats, model.units, rows=rows, sampling=info,
                    scaling=model.scaling, **cls._row_info(model))
 
     def __repr__(self):

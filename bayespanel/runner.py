@@ -364,7 +364,7 @@ def _data_stage(settings, df, say):
         warnings.simplefilter("always")
         design = panel.design(settings.formula, occasion_effects=settings.occasion_effects)
     notes = [str(w.message) for w in caught]
-    used = [c for c in screen(settings.formula, panel.data.columns).columns
+    used = [c for c in screen(settings.formula, panel.columns).columns
             if c not in (panel.unit, panel.time) and c in panel.numeric_columns()]
     desc = panel.describe(columns=used)
     data = {
@@ -782,7 +782,7 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
     labels = {}
     for name in settings.models:
         try:
-            labels[name] = design.matrices(_KIND_OF[name])[1]
+            labels[name] = design.labels(_KIND_OF[name])
         except BayespanelError:
             labels[name] = []
     _check_prior_keys(settings, labels)

@@ -172,3 +172,24 @@ def test_builders_on_a_design_read_its_statistics_and_make_rows_on_demand(wage_p
             assert np.max(np.abs(a - b)) <= 1e-9 * max(np.max(np.abs(b)), 1.0), (B.__name__, f)
     m1, m2 = d.build(bp.models.RandomIntercept), d.build(bp.models.WithinBetween)
     assert m1.pymc_model.coords["unit"] is m2.pymc_model.coords["unit"]
+
+
+def test_posterior_makes_its_rows_from_the_design_only_when_asked(grunfeld):
+    # Source: Grunfeld panel (statsmodels.datasets); reference: the design's own matrices
+    # and the occasion-level LOO of a posterior whose rows were given up front.
+    d = bp.Panel(grunfeld, "firm", "year").design("invest ~ value + capital")
+    for B, kind in ((bp.models.RandomIntercept, "random"),
+                    (bp.models.CorrelatedEffects, "mundlak")):
+        post = d.build(B).sample(draws=60, tune=60, chains=1, seed=3, progress=False)
+        assert post._rows is None  # sampling made no copy of the rows
+        M, y, codes = post.rows
+        np.testing.assert_array_equal(M, d.matrices(kind)[0])
+        np.testing.assert_array_equal(y, d.y)
+        if kind == "random":
+            assert M is d.X  # the random kind shares the design's columns
+        eager = bp.Posterior(post.idata, post.spec, post.stats, post.units,
+                             rows=(M.copy(), y, codes), scaling=post.scaling, time=d.time)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            a, b = post.loo("occasion"), eager.loo("occasion")
+        assert a.elpd == b.elpd and a.se == b.se

@@ -194,7 +194,9 @@ class GaussianModel:
         return design.model_suffstats(self.kind)
 
     def _rows_of(self, design):
-        M, _ = self._matrix(design)
+        # the pooled and random kinds use the design's columns as they are: share them
+        # (nothing writes to a model's rows) instead of a copy per model and posterior
+        M = design.X if self.kind in ("pooled", "random") else self._matrix(design)[0]
         return M, design.y, design.unit_codes
 
     @property

@@ -122,16 +122,17 @@ def _column_values(panel, design, value, option):
     if value is None:
         return None, None
     if isinstance(value, str):
-        if value not in panel.data.columns:
+        if value not in panel.columns:
             raise SpecificationError(f"{option}={value!r} is not a column of the panel")
-        s = panel.data.loc[design.rows, value]
+        s = panel.sorted_column(value).loc[design.rows]
         if s.isna().any():
             r = int(np.argmax(s.isna().to_numpy()))
             raise PanelDataError(f"column {value!r} ({option}) is missing at {_where(design)(r)}")
         return s.to_numpy(dtype=float), value
     arr = np.asarray(value, dtype=float)
     if arr.shape == (design.n_input_rows,) and design.n_dropped:
-        arr = pd.Series(arr, index=panel.data.index).loc[design.rows].to_numpy()
+        index = panel.sorted_column(panel.unit).index  # the table's rows in panel order
+        arr = pd.Series(arr, index=index).loc[design.rows].to_numpy()
     if arr.shape != (design.n,):
         raise SpecificationError(f"{option} has {arr.size} values; the estimation sample has "
                                  f"{design.n} rows")
