@@ -452,6 +452,7 @@ def loo_subsample_occasions(post, design, observations: int = 400, *, seed: int 
         notes.append(f"{n_rows - N} undefined point(s) left out")
     out = LOOResult(level="occasion", method=f"PSIS-LOO, sub-sampled ({len(idx)} of {N})",
                     elpd=est, se=se, p_loo=p_loo, pointwise=pw, good_k=good_k, notes=notes,
-                    n_draws=C * D, elpd_data=res, subsampling_se=sub_se, family="gaussian")
+                    n_draws=C * D, elpd_data=res, subsampling_se=sub_se, family="gaussian",
+                    n_points=N)
     out.subsample_indices = idx
     return out

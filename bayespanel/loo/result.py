@@ -48,10 +48,16 @@ class LOOResult:
         reference models, ``"poisson"``, ``"bernoulli"``, ... for latent-effect models);
         :func:`bayespanel.compare.compare` refuses to rank log probabilities of a discrete
         outcome against log densities of a continuous one. ``None`` when unknown.
+    n_points : int, optional
+        Number of points the estimate is about, when ``pointwise`` holds only some of them
+        (the out-of-core occasion-level sub-sample keeps the sampled rows only); by
+        default ``len(pointwise)``.
     """
 
     def __init__(self, *, level, method, elpd, se, p_loo, pointwise, good_k=None, notes=(),
-                 n_draws=None, elpd_data=None, subsampling_se=None, family=None):
+                 n_draws=None, elpd_data=None, subsampling_se=None, family=None,
+                 n_points=None):
+        self._n_points = None if n_points is None else int(n_points)
         self.level = level
         self.method = method
         self.elpd = float(elpd)
@@ -71,7 +77,7 @@ class LOOResult:
 
     @property
     def n_points(self) -> int:
-        return int(len(self.pointwise))
+        return self._n_points if self._n_points is not None else int(len(self.pointwise))
 
     @property
     def pareto_k(self):
