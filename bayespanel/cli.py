@@ -26,8 +26,12 @@ _MODELS_HELP = ("comma-separated Bayesian models: pooled, random_intercept, with
 _REF_HELP = ("comma-separated reference fits: pooled, within, between, random, mundlak, "
              "within_between, or 'none' (default: all six)")
 
+_OOC_HELP = ("read a Parquet file or folder in partitions on Dask and work from one-pass "
+             "statistics, without loading the table (docs/cli.md says what is left out); "
+             "the scheduler comes from BAYESPANEL_DASK_SCHEDULER")
 
-def _print_describe(panel) -> None:
+
+def _print_describe(panel, desc=None) -> None:
     s = panel.structure()
     print(f"{s['n_units']} units ({panel.unit}) observed on {s['n_occasions']} occasions "
           f"({panel.time}); {s['n_rows']} rows; "
@@ -36,7 +40,7 @@ def _print_describe(panel) -> None:
           f"{s['n_singleton_units']} units seen once.")
     with pd.option_context("display.width", 120, "display.max_columns", 20,
                            "display.float_format", "{:.3f}".format):
-        print(panel.describe())
+        print(panel.describe() if desc is None else desc)
 
 
 def _names(text):
@@ -79,8 +83,23 @@ def parse_prior(text: str):
 def cmd_describe(args) -> int:
     from .panel import Panel
 
+    if args.out_of_core:
+        return _describe_out_of_core(args)
     panel = Panel.from_file(args.file, unit=args.unit, time=args.time)
     _print_describe(panel)
+    return EXIT_OK
+
+
+def _describe_out_of_core(args) -> int:
+    """One pass over Parquet files on Dask (describe + structure); nothing is loaded."""
+    from .runner import _Progress, open_out_of_core
+
+    say = _Progress(quiet=args.quiet)
+    panel = open_out_of_core(args.file, args.unit, args.time, say)
+    say(f"pass: describe and structure ({panel.npartitions} partitions)")
+    desc = panel.describe()  # the structure comes with this pass
+    say(f"  {panel.n_rows} rows of {panel.n_units} units")
+    _print_describe(panel, desc)
     return EXIT_OK
 
 
@@ -318,6 +337,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("file", help="CSV or Parquet file, one row per unit and occasion")
     p.add_argument("--unit", required=True, help="column identifying the units")
     p.add_argument("--time", required=True, help="column identifying the occasions")
+    p.add_argument("--out-of-core", action="store_true", help=_OOC_HELP)
+    p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.set_defaults(func=cmd_describe)
 
     p = sub.add_parser(

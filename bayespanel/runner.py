@@ -342,6 +342,42 @@ def _floats(d: dict) -> dict:
     return out
 
 
+# ---------------------------------------------------------------------- out of core
+#: environment variable choosing where the out-of-core passes run (docs/cli.md)
+SCHEDULER_ENV = "BAYESPANEL_DASK_SCHEDULER"
+
+
+def open_out_of_core(path, unit, time_col, say):
+    """A :class:`~bayespanel.engines.dask.DaskPanel` on a Parquet file or folder.
+
+    CSV is refused (it cannot be split into partitions by row groups and read by
+    column); the scheduler is ``$BAYESPANEL_DASK_SCHEDULER`` (``local``, the default: a
+    local cluster of two thread workers; ``threads``; ``synchronous``).
+    """
+    from .engines.dask import SCHEDULERS
+    from .errors import PanelDataError
+    from .panel import Panel
+
+    p = Path(path)
+    if not p.exists():
+        raise PanelDataError(f"file {str(p)!r} does not exist")
+    if not (p.is_dir() or p.suffix.lower() in (".parquet", ".pq")):
+        raise SpecificationError(
+            f"out_of_core: {str(p)!r} is not Parquet; the out-of-core route reads a Parquet "
+            "file or a folder of Parquet files (write the CSV to Parquet first, or drop "
+            "--out-of-core to read it into memory)")
+    client = os.environ.get(SCHEDULER_ENV, "local").strip() or "local"
+    if client not in SCHEDULERS:
+        raise choices_error(SCHEDULER_ENV, client, SCHEDULERS)
+    # dask's Parquet reader trips pandas' own deprecation notices on every partition;
+    # they are about dask's code, not the user's data
+    warnings.filterwarnings("ignore", module=r"dask\.")
+    panel = Panel.from_parquet(str(p), unit=unit, time=time_col, engine="dask", client=client)
+    say(f"opened {p.name} out of core: {panel.npartitions} partitions, "
+        f"{len(panel.columns)} columns, scheduler {client}")
+    return panel
+
+
 # ---------------------------------------------------------------------- stages
 def _data_stage(settings, df, say):
     from .formula import screen
