@@ -116,6 +116,8 @@ def _settings_from_args(args):
         "level": args.level, "rope": args.rope, "interval": args.interval,
         "occasion_effects": True if args.occasion_effects else None, "title": args.title,
         "ppc_draws": args.ppc_draws, "reference_folds": args.reference_folds,
+        "out_of_core": True if args.out_of_core else None,
+        "loo_observations": args.loo_observations,
     }
     if args.config:
         s = load_settings(args.config, **over)
@@ -362,6 +364,7 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--models", help=_MODELS_HELP)
     g.add_argument("--occasion-effects", action="store_true",
                    help="add one indicator per occasion to every model")
+    g.add_argument("--out-of-core", action="store_true", help=_OOC_HELP)
     g.add_argument("--prior", action="append", metavar="KEY=SPEC",
                    help="prior override, repeatable: KEY is a term label, 'coef' (all slopes), "
                         "'sigma_obs' or 'sigma_unit'; SPEC is a family (normal, student_t, "
@@ -387,6 +390,9 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--reference-folds", type=int, default=None, metavar="K",
                    help="reference fits in the LOO table: 0 = exact leave-one-out refits, "
                         "K >= 2 = grouped K-fold (default: exact up to 1000 points, else 10)")
+    g.add_argument("--loo-observations", type=int, default=None, metavar="M",
+                   help="out of core: points scored in full by the sub-sampled LOO "
+                        "(default 400)")
     g.add_argument("--rope", type=float, default=None,
                    help="half-width of the region of practical equivalence for the "
                         "between-minus-within contrasts (outcome units per covariate unit)")

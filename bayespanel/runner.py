@@ -52,6 +52,7 @@ RE_METHODS = ("swamy-arora", "ml", "reml")
 _PACKAGES = ("bayespanel", "numpy", "scipy", "pandas", "xarray", "pymc", "pytensor", "arviz",
              "arviz-base", "arviz-stats", "formulaic", "matplotlib", "h5netcdf", "nutpie")
 AUTO_EXACT = 1000
+LOO_OBSERVATIONS = 400
 _KIND_OF = {"pooled": "pooled", "random_intercept": "random", "within_between": "within_between",
             "correlated_effects": "mundlak", "fixed_effects": "within"}
 
@@ -93,6 +94,11 @@ class Settings:
         there are at most ``AUTO_EXACT`` points at the chosen level, grouped 10-fold
         beyond; ``0`` always exact; ``K >= 2`` grouped K-fold.
     title : str, optional
+    out_of_core : bool
+        Read the Parquet file or folder on Dask and work from one-pass statistics
+        (docs/cli.md lists what is left out and why).
+    loo_observations : int, optional
+        Out of core: points sampled by the sub-sampled LOO (default ``LOO_OBSERVATIONS``).
     """
 
     unit: str
@@ -117,6 +123,8 @@ class Settings:
     reference_folds: int | None = None
     title: str | None = None
     data_sha256: str | None = None
+    out_of_core: bool = False
+    loo_observations: int | None = None
 
     def __post_init__(self):
         for name in ("models", "reference"):
@@ -167,6 +175,18 @@ class Settings:
         if self.rope is not None and (isinstance(self.rope, bool) or not isinstance(
                 self.rope, (int, float)) or self.rope <= 0):
             raise SpecificationError(f"rope={self.rope!r} must be a positive number")
+        if not isinstance(self.out_of_core, bool):
+            raise SpecificationError(f"out_of_core={self.out_of_core!r} must be true or false")
+        if self.loo_observations is not None and (
+                isinstance(self.loo_observations, bool)
+                or not isinstance(self.loo_observations, int) or self.loo_observations < 2):
+            raise SpecificationError(f"loo_observations={self.loo_observations!r} must be an "
+                                     "integer >= 2")
+        if self.out_of_core and self.reference_folds is not None:
+            raise SpecificationError(
+                "reference_folds: the reference fits' cross-validation refits need the rows, "
+                "which the out-of-core route does not load; drop reference_folds or "
+                "out_of_core")
         if not isinstance(self.occasion_effects, bool):
             raise SpecificationError(f"occasion_effects={self.occasion_effects!r} must be "
                                      "true or false")
@@ -195,6 +215,8 @@ class Settings:
             if v is not None:
                 lines.append(f"{'file' if k == 'data' else 'sha256' if k == 'data_sha256' else k}"
                              f" = {_toml_value(v)}")
+        if self.out_of_core:
+            lines.append("out_of_core = true")
         lines += ["", "[model]", f"formula = {_toml_value(self.formula)}",
                   f"models = {_toml_value(list(self.models))}",
                   f"occasion_effects = {_toml_value(self.occasion_effects)}",
@@ -209,17 +231,21 @@ class Settings:
             lines.append(f"reference_folds = {_toml_value(self.reference_folds)}")
         if self.rope is not None:
             lines.append(f"rope = {_toml_value(self.rope)}")
+        if self.loo_observations is not None:
+            lines.append(f"loo_observations = {_toml_value(self.loo_observations)}")
         lines += ["", "[report]", f"interval = {_toml_value(self.interval)}"]
         return "\n".join(lines) + "\n"
 
 
 _TOML_LAYOUT = {  # section -> {key in file: Settings field}
     "": {"title": "title"},
-    "data": {"file": "data", "unit": "unit", "time": "time", "sha256": "data_sha256"},
+    "data": {"file": "data", "unit": "unit", "time": "time", "sha256": "data_sha256",
+             "out_of_core": "out_of_core"},
     "model": {"formula": "formula", "models": "models", "occasion_effects": "occasion_effects"},
     "sampling": {k: k for k in ("draws", "tune", "chains", "seed", "sampler", "ppc_draws")},
     "reference": {"fits": "reference", "cov": "cov", "method": "re_method"},
-    "comparison": {"level": "level", "rope": "rope", "reference_folds": "reference_folds"},
+    "comparison": {"level": "level", "rope": "rope", "reference_folds": "reference_folds",
+                   "loo_observations": "loo_observations"},
     "report": {"interval": "interval", "title": "title"},
 }
 
@@ -379,32 +405,62 @@ def open_out_of_core(path, unit, time_col, say):
 
 
 # ---------------------------------------------------------------------- stages
+def _source(settings, what):
+    """The data file's record (path, SHA-256 of a single file); warns if it changed."""
+    if not settings.data:
+        raise SpecificationError(f"no data: {what} (data = ...)")
+    source = {"file": str(settings.data), "sha256": _sha256(settings.data)
+              if Path(settings.data).is_file() else None}
+    if settings.data_sha256 and source["sha256"] and settings.data_sha256 != source["sha256"]:
+        warnings.warn(f"the data file {settings.data!r} has changed since the analysis "
+                      "file was written (SHA-256 differs); results will differ", UserWarning)
+    return source
+
+
 def _data_stage(settings, df, say):
-    from .formula import screen
     from .io import read_table
     from .panel import Panel
 
     source = {"file": None, "sha256": None}
     if df is None:
-        if not settings.data:
-            raise SpecificationError("no data: give a CSV or Parquet file (data = ...)")
-        source = {"file": str(settings.data), "sha256": _sha256(settings.data)
-                  if Path(settings.data).is_file() else None}
-        if settings.data_sha256 and source["sha256"] and settings.data_sha256 != source["sha256"]:
-            warnings.warn(f"the data file {settings.data!r} has changed since the analysis "
-                          "file was written (SHA-256 differs); results will differ", UserWarning)
+        source = _source(settings, "give a CSV or Parquet file")
         df = read_table(settings.data)
     say(f"read {len(df)} rows x {df.shape[1]} columns")
     panel = Panel(df, unit=settings.unit, time=settings.time)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         design = panel.design(settings.formula, occasion_effects=settings.occasion_effects)
-    notes = [str(w.message) for w in caught]
+    return panel, design, _data_record(settings, panel, design, source, len(df), say), \
+        [str(w.message) for w in caught]
+
+
+def _data_stage_large(settings, say):
+    """The out-of-core data stage: the design pass (statistics, structure and per-unit
+    cross-products) and the describe pass over the Parquet partitions."""
+    source = _source(settings, "out_of_core needs a Parquet file or folder")
+    panel = open_out_of_core(settings.data, settings.unit, settings.time, say)
+    say(f"pass: design (statistics, structure, per-unit cross-products; "
+        f"{panel.npartitions} partitions)")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        design = panel.design(settings.formula, occasion_effects=settings.occasion_effects,
+                              cluster=True)
+    say(f"  {design.n_input_rows} rows read, {design.n} used, {design.n_units} units")
+    data = _data_record(settings, panel, design, source, design.n_input_rows, say)
+    return panel, design, data, [str(w.message) for w in caught]
+
+
+def _data_record(settings, panel, design, source, n_read, say):
+    """The ``data`` part of results.json (the describe pass, on the formula's columns)."""
+    from .formula import screen
+
     used = [c for c in screen(settings.formula, panel.columns).columns
             if c not in (panel.unit, panel.time) and c in panel.numeric_columns()]
+    if getattr(design, "out_of_core", False):
+        say(f"pass: describe ({len(used)} columns)")
     desc = panel.describe(columns=used)
-    data = {
-        "source": {**source, "n_rows_read": int(len(df))},
+    return {
+        "source": {**source, "n_rows_read": int(n_read)},
         "unit": panel.unit, "time": panel.time, "formula": settings.formula,
         "outcome": design.outcome,
         "structure": _floats(panel.structure()),
@@ -414,7 +470,6 @@ def _data_stage(settings, df, say):
         "terms": [{"term": t, "varies_within": bool(design.varies_within[t])}
                   for t in design.terms],
     }
-    return panel, design, data, notes
 
 
 def _reference_stage(settings, design, say):
@@ -428,6 +483,7 @@ def _reference_stage(settings, design, say):
             warnings.simplefilter("ignore")
             res = ref.fit_design(design, name, cov=settings.cov, **kw)
         fits[name] = res
+        say(f"reference fit {name} ({res.cov_type})")
         tab = res.table(prob)
         entry = {
             "name": name, "title": REFERENCE_FITS[name][0],
@@ -461,7 +517,9 @@ def _tests_stage(design, say):
         for key, title, t in (("hausman", "Hausman (classical), fixed vs random effects",
                                ref.hausman(fe, re_)),
                               ("mundlak", "Mundlak unit-mean terms (cluster-robust Wald)",
-                               ref.mundlak_test(design, cov="cluster"))):
+                               ref.mundlak_test(ref.fit_design(design, "mundlak",
+                                                               method="swamy-arora",
+                                                               cov="cluster")))):
             reject = np.isfinite(t.p_value) and t.p_value < 0.05
             tests.append(_floats({
                 "name": key, "title": title, "statistic": t.statistic, "df": t.df,
@@ -534,6 +592,8 @@ def _ppc(post, design, n_draws, seed):
 
 def _partition(post, design, kind, coef_d, sigma_d, tau_d, ref):
     """The variance partition of one posterior (bayespanel.partition, issue 6)."""
+    if getattr(design, "out_of_core", False):
+        return _partition_stats(design, kind, post.labels, coef_d, sigma_d, tau_d, ref)
     ref = ref if ref is not None and getattr(ref, "design", None) is not None else None
     if hasattr(post, "variance_partition"):
         return post.variance_partition(reference=ref)
@@ -544,9 +604,52 @@ def _partition(post, design, kind, coef_d, sigma_d, tau_d, ref):
                                    reference=ref)
 
 
+def _partition_stats(design, kind, labels, coef_d, sigma_d, tau_d, ref):
+    """The partition of :func:`bayespanel.partition.partition_draws` from the design's
+    statistics of ``[X, y]`` (out of core: no rows). The row covariances it needs are
+    ``within / n`` for the demeaned time-varying columns and ``(total - within) / n`` for
+    the unit means and time-constant columns (the analysis-of-variance decomposition);
+    the reference fit's plug-in partition is the same function at its estimates."""
+    from . import partition as part
+
+    st = design.design_suffstats()
+    terms, tv = list(design.terms), list(design.time_varying)
+    i_w = [terms.index(t) for t in tv]
+    i_b = i_w + [j for j, t in enumerate(terms) if t not in tv and t != "Intercept"]
+    phi_w = st.within[np.ix_(i_w, i_w)] / st.n
+    phi_b = (st.total - st.within)[np.ix_(i_b, i_b)] / st.n
+
+    def draws(coef, sigma, tau):
+        g_w, g_b = part.coefficient_parts(terms, tv, kind, labels, coef)
+        sigma = np.asarray(sigma, dtype=float)
+        nan = np.full(sigma.shape, np.nan)
+        t2 = nan if g_b is None or tau is None else np.asarray(tau, dtype=float) ** 2
+        v = {"f1": part._quad(g_w, phi_w), "e": sigma ** 2, "m": t2,
+             "f2": nan if g_b is None or tau is None else part._quad(g_b, phi_b)}
+        level = {"total": v["f1"] + v["f2"] + v["m"] + v["e"], "within": v["f1"] + v["e"],
+                 "between": v["f2"] + v["m"]}
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out = {"unit SD": np.sqrt(t2), "occasion SD": sigma, "ICC": t2 / (t2 + v["e"])}
+            out.update({f"theta (T={int(T)})": 1.0 - np.sqrt(v["e"] / (v["e"] + T * t2))
+                        for T in st.lengths})
+            out.update({f"variance: {q}": v[key] for q, key in (
+                ("within part", "f1"), ("between part", "f2"), ("unit intercepts", "m"),
+                ("occasion residual", "e"))})
+            out.update({q: v[key] / level[lev] for q, key, lev in part._SHARES})
+        return out
+
+    plug = None
+    if ref is not None and ref.estimator in part.PARTITION_KINDS:
+        tau = None if ref.estimator == "within" else [
+            0.0 if ref.estimator == "pooled" else ref.sigma_unit]
+        plug = draws(ref.coef.to_numpy()[None, :], [ref.sigma_obs], tau)
+    return part.PartitionResult(draws(coef_d, sigma_d, tau_d), kind, plug,
+                                None if plug is None else ref.estimator)
+
+
 def _contrasts(post, design, kind, coef_d, settings, ref):
     """Between-minus-within contrasts of one posterior (bayespanel.contrasts, issue 6)."""
-    if hasattr(post, "contrasts"):
+    if hasattr(post, "contrasts") and not getattr(design, "out_of_core", False):
         return post.contrasts(rope=settings.rope, prob=settings.interval, reference=ref,
                               tests=False)
     from . import contrasts as ctr
@@ -556,15 +659,21 @@ def _contrasts(post, design, kind, coef_d, settings, ref):
                                         reference=ref)
 
 
-def _bayes_one(name, settings, panel, labels, ref_fits, out_dir, say, progress_bars):
+def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, progress_bars):
     from . import models
 
     cls = getattr(models, BUILDER_OF[name])
     prob = settings.interval
+    large = getattr(design, "out_of_core", False)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # dropped rows were reported by the data stage
-        m = cls(panel, settings.formula, priors=_model_priors(settings, cls, labels),
-                occasion_effects=settings.occasion_effects)
+        priors = _model_priors(settings, cls, labels)
+        if large:  # the Gaussian model from the design pass's statistics
+            m = design.build(cls, priors=priors)
+        else:
+            m = cls(panel, settings.formula, priors=priors,
+                    occasion_effects=settings.occasion_effects)
+            design = m.design
     say(f"sampling {name}: {settings.chains} chains x {settings.draws} draws "
         f"(+{settings.tune} tuning)")
     t0 = time.perf_counter()
@@ -579,7 +688,6 @@ def _bayes_one(name, settings, panel, labels, ref_fits, out_dir, say, progress_b
     coefs = [_floats({"term": t, "mean": r["mean"], "sd": r["sd"], "lower": r[lo], "upper": r[hi],
                       "rhat": r["rhat"], "ess_bulk": r["ess_bulk"], "ess_tail": r["ess_tail"]})
              for t, r in summ.loc[post.labels].iterrows()]
-    design = m.design
     kind = _KIND_OF[name]
     coef_d = post._flat("coef")
     sigma_d = post._flat("sigma_obs")
@@ -624,7 +732,7 @@ def _bayes_one(name, settings, panel, labels, ref_fits, out_dir, say, progress_b
                 "reference_estimate": r.get("reference estimate"),
                 "reference_lower": r.get("reference lower"),
                 "reference_upper": r.get("reference upper")}))
-    ppc = _ppc(post, design, settings.ppc_draws, settings.seed)
+    ppc = [] if large else _ppc(post, design, settings.ppc_draws, settings.seed)
     rel = None
     if out_dir is not None:
         rel = f"posteriors/{name}.nc"
@@ -667,16 +775,30 @@ def _reference_folds(settings, design):
     return None if points <= AUTO_EXACT else 10
 
 
-def _loo_entry(post, level):
-    """PSIS-LOO of one posterior, or None when the level is undefined for the model."""
+def _loo_observations(settings, design):
+    """Points of the out-of-core sub-sampled LOO: the setting (default LOO_OBSERVATIONS),
+    at most every point of the level."""
+    points = design.n if settings.level == "occasion" else design.n_units
+    return min(settings.loo_observations or LOO_OBSERVATIONS, points)
+
+
+def _loo_entry(post, level, design=None, settings=None):
+    """PSIS-LOO of one posterior (out of core: sub-sampled, Magnusson et al. 2019), or
+    None when the level is undefined for the model."""
+    large = getattr(design, "out_of_core", False)
     try:
-        lr = post.loo(level)
+        lr = (design.loo_subsample(post, _loo_observations(settings, design), level=level,
+                                   seed=settings.seed) if large else post.loo(level))
     except BayespanelError as exc:
         return None, {"level": level, "elpd": None, "se": None, "p_loo": None,
                       "n_high_k": None, "max_k": None, "warning": str(exc)}
     pw = lr.pointwise
     entry = {"level": level, "elpd": lr.elpd, "se": lr.se, "p_loo": lr.p_loo,
              "n_high_k": None, "max_k": None, "warning": "; ".join(lr.notes) or None}
+    if large:
+        entry.update(method=lr.method, n_points=lr.n_points,
+                     observations=_loo_observations(settings, design),
+                     subsampling_se=lr.subsampling_se)
     if "pareto_k" in pw:
         k = pw["pareto_k"].to_numpy(dtype=float)
         good = lr.good_k if lr.good_k is not None else 0.7
@@ -690,10 +812,50 @@ def _loo_entry(post, level):
     return lr, _floats(entry)
 
 
+def _comparison_large(settings, design, posts, entries, say):
+    """Out of core: the Bayesian models' sub-sampled LOO side by side. ELPD differences
+    are differences of the estimates; their SE is ``sqrt(n var(d_j))`` over the sampled
+    points ``j`` both models scored (the same seeded sample), as for full LOO."""
+    by_name = {e["name"]: e for e in entries}
+    results = {}
+    for name, post in posts.items():
+        say(f"LOO of {name}: sub-sampled at the {settings.level} level "
+            f"({_loo_observations(settings, design)} points"
+            + ("; one more pass over the rows)" if settings.level == "occasion" else ")"))
+        lr, by_name[name]["loo"] = _loo_entry(post, settings.level, design, settings)
+        results[name] = lr
+    scored = {n: r for n, r in results.items() if r is not None}
+    order = sorted(scored, key=lambda n: -scored[n].elpd)
+    sampled = {n: r.pointwise.loc[np.isfinite(r.pointwise["elpd"].to_numpy(dtype=float))]
+               .set_index("position")["elpd"] for n, r in scored.items()}
+    rows = []
+    for name in order + [n for n in results if n not in scored]:
+        r = scored.get(name)
+        rec = {"model": name, "title": BAYES_MODELS[name][0], "kind": "bayesian",
+               "elpd": None, "se": None, "elpd_diff": None, "se_diff": None,
+               "method": "undefined", "level": settings.level,
+               "note": by_name[name]["loo"]["warning"]}
+        if r is not None:
+            best = order[0]
+            d = (sampled[name] - sampled[best]).dropna()
+            rec.update(elpd=r.elpd, se=r.se, p_loo=r.p_loo, method=r.method,
+                       elpd_diff=r.elpd - scored[best].elpd,
+                       se_diff=float(np.sqrt(r.n_points * np.var(d, ddof=1)))
+                       if len(d) > 1 and name != best else (0.0 if name == best else None),
+                       note=f"{len(d)} sampled points shared with the best model"
+                       if name != best else None)
+        rows.append(_floats(rec))
+    say(f"LOO comparison done: {len(rows)} Bayesian fits (reference fits are not scored "
+        "out of core)")
+    return {"level": settings.level, "reference_folds": None, "rows": rows}
+
+
 def _comparison_stage(settings, design, posts, ref_fits, entries, say):
     """LOO at the chosen level for every Bayesian model and reference fit."""
     from .compare import compare
 
+    if getattr(design, "out_of_core", False):
+        return _comparison_large(settings, design, posts, entries, say)
     fits, titles = {}, {}
     by_name = {e["name"]: e for e in entries}
     for name, post in posts.items():
@@ -774,7 +936,10 @@ def run(settings: Settings, df=None, out=None, truth=None, progress=None, quiet=
 
     settings = settings.check()
     say = progress or _Progress(quiet=quiet)
-    panel, design, data, notes = _data_stage(settings, df, say)
+    if settings.out_of_core and df is not None:
+        raise SpecificationError("out_of_core reads settings.data on Dask; pass no DataFrame")
+    panel, design, data, notes = (_data_stage_large(settings, say) if settings.out_of_core
+                                  else _data_stage(settings, df, say))
     if settings.data and data["source"]["sha256"]:
         settings = replace(settings, data=str(Path(settings.data).resolve()),
                            data_sha256=data["source"]["sha256"])
@@ -809,6 +974,31 @@ def _staged(path: Path) -> Path:
     return path.with_name(f".{path.name}.partial")
 
 
+def _left_out(settings, panel, design) -> dict:
+    """What the out-of-core route leaves out and why (results.json and the report)."""
+    why_rows = "needs the rows, which the out-of-core route does not load"
+    items = [
+        {"item": "posterior predictive checks",
+         "reason": f"drawing replicated panels {why_rows}"},
+        {"item": "figures of predictive checks", "reason": "no predictive draws"},
+        {"item": "reference fits in the LOO comparison",
+         "reason": "their exact or K-fold cross-validation refits the estimator without "
+                   f"each point, and each refit {why_rows}; the comparison holds the "
+                   "Bayesian models"},
+        {"item": "full PSIS-LOO", "reason": "replaced by the sub-sampling estimator "
+                 "(Magnusson et al. 2019): the approximation at the posterior means for every "
+                 "point, full PSIS on a seeded simple random sample of "
+                 f"{_loo_observations(settings, design)} points"},
+        {"item": "exact refits of high Pareto-k points", "reason": f"each refit {why_rows}"},
+        {"item": "design check (simulated replicates)", "reason": f"it {why_rows}"},
+        {"item": "saved estimation rows in posteriors/*.nc",
+         "reason": "the files hold the sufficient statistics only"},
+    ]
+    return {"scheduler": panel.client if isinstance(panel.client, str) else "distributed",
+            "partitions": panel.npartitions, "rows_read": design.n_input_rows,
+            "loo_observations": _loo_observations(settings, design), "left_out": items}
+
+
 def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progress_bars):
     """Reference fits, tests, Bayesian fits and the comparison -> the results dict."""
     from .report.results_json import SCHEMA_NAME, SCHEMA_VERSION, validate
@@ -827,8 +1017,8 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
                          ": constant within units, absorbed by the unit intercepts"]
     posts, entries = {}, []
     for name in settings.models:
-        post, entry = _bayes_one(name, settings, panel, labels[name], ref_fits, out_dir, say,
-                                 progress_bars)
+        post, entry = _bayes_one(name, settings, panel, design, labels[name], ref_fits,
+                                 out_dir, say, progress_bars)
         posts[name] = post
         entries.append(entry)
     comparison = _comparison_stage(settings, design, posts, ref_fits, entries, say)
@@ -842,5 +1032,7 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
         "comparison": comparison, "warnings": notes,
         "truth": _truth_by_model(truth, entries, ref_entries) if truth else None,
     }
+    if getattr(design, "out_of_core", False):
+        results["out_of_core"] = _left_out(settings, panel, design)
     validate(results)
     return results

@@ -64,3 +64,121 @@ def test_out_of_core_refuses_csv(wage_files, capsys):
                  "--out-of-core"]) == 2
     err = capsys.readouterr().err
     assert "is not Parquet" in err and "--out-of-core" in err
+
+
+def _fit(data, out, *extra):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        rc = main(["fit", str(data), "--unit", "nr", "--time", "year", "--formula", FORMULA,
+                   "--models", "random_intercept,within_between", "--draws", "300", "--tune",
+                   "300", "--chains", "2", "--seed", "3", "--out", str(out), "--quiet", *extra])
+    assert rc == 0
+    return json.loads((out / "results.json").read_text("utf-8"))
+
+
+@pytest.fixture(scope="module")
+def runs(wage_files, tmp_path_factory):
+    import os
+
+    os.environ["BAYESPANEL_DASK_SCHEDULER"] = "synchronous"  # module scope: no monkeypatch
+    try:
+        large = _fit(wage_files / "parts", tmp_path_factory.mktemp("large"), "--out-of-core")
+    finally:
+        del os.environ["BAYESPANEL_DASK_SCHEDULER"]
+    memory = _fit(wage_files / "wage.parquet", tmp_path_factory.mktemp("memory"))
+    return memory, large
+
+
+def _by(entries, key="term"):
+    return {e[key]: e for e in entries}
+
+
+def test_reference_fits_and_tests_equal_the_in_memory_run(runs, wage_panel):
+    from linearmodels.panel import PanelOLS
+
+    memory, large = runs
+    for fm, fl in zip(memory["reference"], large["reference"]):
+        assert fm["name"] == fl["name"]
+        cm, cl = _by(fm["coefficients"]), _by(fl["coefficients"])
+        assert cm.keys() == cl.keys()
+        for t in cm:  # reference: the in-memory fit on the same file
+            for q in ("estimate", "se", "lower", "upper"):
+                assert cl[t][q] == pytest.approx(cm[t][q], rel=1e-10, abs=1e-12), (fm["name"], t, q)
+        for q in ("sigma_unit", "sigma_obs", "icc"):
+            if fm[q] is not None:
+                assert fl[q] == pytest.approx(fm[q], rel=1e-10)
+    # outside check: linearmodels PanelOLS with entity effects, clustered by unit
+    d = wage_panel.set_index(["nr", "year"])
+    fe = PanelOLS(d["lwage"], d[["exper", "expersq", "union", "married"]],
+                  entity_effects=True).fit(cov_type="clustered", cluster_entity=True)
+    within = _by(_by(large["reference"], "name")["within"]["coefficients"])
+    for t in ("exper", "expersq", "union", "married"):
+        assert within[t]["estimate"] == pytest.approx(fe.params[t], rel=1e-8)
+    for tm, tl in zip(memory["tests"], large["tests"]):
+        assert tl["name"] == tm["name"]
+        assert tl["statistic"] == pytest.approx(tm["statistic"], rel=1e-8)
+
+
+def test_posterior_means_agree_within_monte_carlo_error(runs):
+    memory, large = runs
+    for mm, ml in zip(memory["models"], large["models"]):
+        assert mm["name"] == ml["name"]
+        rows = [(_by(mm["coefficients"]), _by(ml["coefficients"])),
+                (_by(mm["scale"], "name"), _by(ml["scale"], "name"))]
+        for cm, cl in rows:
+            for t in cm:
+                # Monte Carlo SE of each mean: sd / sqrt(ESS); 4 joint SEs
+                mcse = np.hypot(cm[t]["sd"] / np.sqrt(cm[t]["ess_bulk"]),
+                                cl[t]["sd"] / np.sqrt(cl[t]["ess_bulk"]))
+                assert abs(cl[t]["mean"] - cm[t]["mean"]) < 4 * mcse, (mm["name"], t)
+        # the plug-in variance partition of the reference fit: from the statistics out of
+        # core, from the rows in memory (two independent computations)
+        vm, vl = _by(mm["variance_partition"]["summary"], "quantity"), \
+            _by(ml["variance_partition"]["summary"], "quantity")
+        for q in ("unit SD", "occasion SD", "ICC"):
+            assert vl[q]["reference"] == pytest.approx(vm[q]["reference"], rel=1e-10)
+        em = _by(mm["variance_partition"]["explained"], "part")
+        el = _by(ml["variance_partition"]["explained"], "part")
+        for part in em:
+            for lev in ("total", "within", "between"):
+                if em[part][lev] is not None:
+                    assert el[part][lev] == pytest.approx(em[part][lev], abs=0.02)
+    cm = _by(_by(memory["models"], "name")["within_between"]["contrasts"], "covariate")
+    cl = _by(_by(large["models"], "name")["within_between"]["contrasts"], "covariate")
+    for c in cm:
+        assert cl[c]["reference_estimate"] == pytest.approx(cm[c]["reference_estimate"],
+                                                            rel=1e-10)
+
+
+def test_out_of_core_results_validate_and_say_what_is_left_out(runs, wage_files):
+    import jsonschema  # outside check: the jsonschema library's Draft 2020-12 validator
+
+    import bayespanel as bp
+    from bayespanel.runner import load_settings
+
+    memory, large = runs
+    schema = bp.report.results_json.schema()
+    for r in runs:
+        jsonschema.Draft202012Validator(schema).validate(r)
+    assert "out_of_core" not in memory
+    ooc = large["out_of_core"]
+    assert ooc["partitions"] == 5 and ooc["rows_read"] == 4360
+    assert ooc["loo_observations"] == 400
+    items = {x["item"] for x in ooc["left_out"]}
+    assert "posterior predictive checks" in items
+    assert "reference fits in the LOO comparison" in items
+    assert all(m["ppc"] == [] for m in large["models"])
+    # the comparison holds the Bayesian models, scored by the sub-sampling estimator
+    rows = large["comparison"]["rows"]
+    assert {r["kind"] for r in rows} == {"bayesian"} and len(rows) == 2
+    for m in large["models"]:
+        loo = m["loo"]
+        assert loo["observations"] == 400 and loo["n_points"] == 4360
+        assert "sub-sampled" in loo["method"]
+        full = _by(memory["models"], "name")[m["name"]]["loo"]  # full PSIS-LOO in memory
+        assert abs(loo["elpd"] - full["elpd"]) < 4 * np.hypot(loo["subsampling_se"] or 0, 5.0)
+    # the analysis file reruns the out-of-core route
+    toml = large["settings"]["toml"]
+    path = wage_files / "large.toml"
+    path.write_text(toml, "utf-8")
+    assert load_settings(path).out_of_core is True

@@ -160,6 +160,14 @@ def _overview(r) -> Safe:
                           "energy are within the usual thresholds.", "Sampling."))
     for w in r.get("warnings", []):
         parts.append(note("caution", w, "Note."))
+    ooc = r.get("out_of_core")
+    if ooc:  # the one place the report says what the out-of-core route left out
+        parts.append(note("info", join([
+            f"Read in {ooc['partitions']} partitions ({ooc['rows_read']} rows, scheduler "
+            f"{ooc['scheduler']}); every number here comes from one-pass statistics. "
+            "Left out: ",
+            join([join([tag("b", x["item"]), f" ({x['reason']})"]) for x in ooc["left_out"]],
+                 "; "), "."]), "Out of core."))
     return join(parts)
 
 
