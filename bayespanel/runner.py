@@ -327,6 +327,18 @@ def software_versions() -> dict:
 
 
 def _sha256(path) -> str:
+    """SHA-256 of a file; of a folder (a Parquet dataset), the SHA-256 of its files'
+    relative paths and digests in path order (hidden files left out), so a rerun notices
+    a file changed, added, removed or renamed."""
+    path = Path(path)
+    if path.is_dir():
+        h = hashlib.sha256()
+        files = sorted(f for f in path.rglob("*") if f.is_file() and not any(
+            part.startswith(".") for part in f.relative_to(path).parts))
+        for f in files:
+            h.update(f.relative_to(path).as_posix().encode() + b"\0")
+            h.update(bytes.fromhex(_sha256(f)))
+        return h.hexdigest()
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         for block in iter(lambda: fh.read(1 << 20), b""):
@@ -406,11 +418,11 @@ def open_out_of_core(path, unit, time_col, say):
 
 # ---------------------------------------------------------------------- stages
 def _source(settings, what):
-    """The data file's record (path, SHA-256 of a single file); warns if it changed."""
+    """The data file's record (path, SHA-256 of the file or folder); warns if it changed."""
     if not settings.data:
         raise SpecificationError(f"no data: {what} (data = ...)")
     source = {"file": str(settings.data), "sha256": _sha256(settings.data)
-              if Path(settings.data).is_file() else None}
+              if Path(settings.data).exists() else None}
     if settings.data_sha256 and source["sha256"] and settings.data_sha256 != source["sha256"]:
         warnings.warn(f"the data file {settings.data!r} has changed since the analysis "
                       "file was written (SHA-256 differs); results will differ", UserWarning)

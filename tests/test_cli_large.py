@@ -182,3 +182,29 @@ def test_out_of_core_results_validate_and_say_what_is_left_out(runs, wage_files)
     path = wage_files / "large.toml"
     path.write_text(toml, "utf-8")
     assert load_settings(path).out_of_core is True
+
+
+def test_a_parquet_folder_is_fingerprinted_for_reruns(tmp_path, wage_panel):
+    # Reference: hashlib's SHA-256 of each file, combined in path order as documented in
+    # docs/results-schema.md; a changed file must change the fingerprint and make the
+    # rerun of the analysis file warn.
+    import hashlib
+
+    from bayespanel.runner import Settings, _source
+
+    folder = tmp_path / "parts"
+    folder.mkdir()
+    for i, idx in enumerate(np.array_split(np.arange(len(wage_panel)), 3)):
+        wage_panel.iloc[idx].to_parquet(folder / f"part{i}.parquet", index=False)
+    (folder / ".hidden").write_text("not data")
+    expected = hashlib.sha256()
+    for f in sorted(folder.glob("part*.parquet")):
+        expected.update(f.name.encode() + b"\0" + hashlib.sha256(f.read_bytes()).digest())
+    settings = Settings(unit="nr", time="year", formula=FORMULA, data=str(folder))
+    digest = _source(settings, "test")["sha256"]
+    assert digest == expected.hexdigest()
+    wage_panel.iloc[:10].to_parquet(folder / "part1.parquet", index=False)
+    rerun = Settings(unit="nr", time="year", formula=FORMULA, data=str(folder),
+                     data_sha256=digest)
+    with pytest.warns(UserWarning, match="has changed since the analysis file"):
+        assert _source(rerun, "test")["sha256"] != digest
