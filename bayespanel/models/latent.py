@@ -805,9 +805,10 @@ class LatentPosterior(_posterior_cls()):
                     "Gauss-Hermite quadrature")
         return "log p(y_it | theta, u_i), conditional on the sampled unit effects"
 
-    def loo(self, level: str = "unit", **kwargs):
+    def loo(self, level: str = "occasion", **kwargs):
         """PSIS-LOO (Vehtari, Gelman and Gabry 2017) on :meth:`pointwise_loglik` terms,
-        through :func:`bayespanel.loo.loo` (the same code as the Gaussian models).
+        through :func:`bayespanel.loo.loo` (the same code and the same default level,
+        ``"occasion"``, as the Gaussian posteriors).
 
         Returns a :class:`bayespanel.loo.LOOResult` whose ``level``, ``notes`` and
         ``family`` state the level, how the terms were computed and the outcome family;
