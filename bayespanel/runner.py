@@ -495,7 +495,6 @@ def _reference_stage(settings, design, say):
             warnings.simplefilter("ignore")
             res = ref.fit_design(design, name, cov=settings.cov, **kw)
         fits[name] = res
-        say(f"reference fit {name} ({res.cov_type})")
         tab = res.table(prob)
         entry = {
             "name": name, "title": REFERENCE_FITS[name][0],
@@ -511,7 +510,7 @@ def _reference_stage(settings, design, say):
             "not_estimated": {str(k): str(v) for k, v in res.dropped.items()},
         }
         out.append(_floats(entry))
-    say(f"reference fits: {', '.join(settings.reference) or 'none'}")
+    say(f"reference fits ({settings.cov} covariance): {', '.join(settings.reference) or 'none'}")
     return fits, out
 
 
