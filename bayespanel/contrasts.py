@@ -232,8 +232,11 @@ def specification_tests(M, y, codes, labels, kind) -> dict:
     idx = [terms.index(t) for t in tv]
     fe = fit_arrays("within", X[:, idx], y, codes, tv)
     re = fit_arrays("random", X, y, codes, terms)
-    Mm = np.column_stack([X, _unit_means(X[:, idx], codes)[codes]])
-    mres = fit_arrays("mundlak", Mm, y, codes, terms + [f"{t} (unit mean)" for t in tv],
+    # unit means of the covariates the model gives a between part (not those whose unit
+    # means are all equal, such as occasion indicators in a balanced panel)
+    tb = [t for t in contrast_covariates(kind, labels) if t in tv]
+    Mm = np.column_stack([X, _unit_means(X[:, [terms.index(t) for t in tb]], codes)[codes]])
+    mres = fit_arrays("mundlak", Mm, y, codes, terms + [f"{t} (unit mean)" for t in tb],
                       method="swamy-arora", cov="cluster")
     return {"Hausman (classical)": hausman(fe, re),
             "Mundlak (cluster-robust)": mundlak_test(mres)}

@@ -46,6 +46,7 @@ from scipy import stats as _st
 
 from . import suffstats as _ss
 from .errors import EstimationError, SamplingWarning, SpecificationError, choices_error
+from .occasions import true_occasion_coef
 
 __all__ = ["design_check", "DesignCheckResult", "design_check_section", "REFERENCE_METHODS"]
 
@@ -166,6 +167,8 @@ def _coef_from_components(truth, labels, kind):
     for lab in labels:
         if lab == "Intercept":
             out[lab] = truth.get("intercept", 0.0)
+        elif (occ := true_occasion_coef(lab, truth)) is not None:
+            out[lab] = occ  # before the within/between suffixes: occasion terms carry them
         elif lab.endswith(" (within)"):
             out[lab] = w.get(lab[:-9])
         elif lab.endswith(" (between)"):
@@ -182,8 +185,6 @@ def _coef_from_components(truth, labels, kind):
             out[lab] = w[lab]
         elif lab in const:
             out[lab] = const[lab]
-        elif lab.startswith("occasion["):
-            out[lab] = truth.get("occasion", {}).get(lab, 0.0)
     return {k: v for k, v in out.items() if v is not None}
 
 

@@ -26,7 +26,7 @@ import pandas as pd
 
 from .errors import SpecificationError
 
-__all__ = ["occasion_effects", "occasion_effects_figure"]
+__all__ = ["occasion_effects", "occasion_effects_figure", "true_occasion_coef"]
 
 _LABEL = re.compile(r"^occasion\[(?P<occ>.*)\](?: \((?P<part>within|between|unit mean)\))?$")
 
@@ -36,6 +36,24 @@ def _parse(label):
     if not m:
         return None
     return m.group("occ"), m.group("part") or "effect"
+
+
+def true_occasion_coef(label, truth):
+    """The true coefficient of an occasion term under simulated values, or None when
+    ``label`` is not an occasion term.
+
+    ``truth["occasion"]`` (optional) maps ``"occasion[t]"`` to the effect of occasion t,
+    0 when absent (a simulation without occasion effects). The effect is the same within
+    and between units, so ``"occasion[t] (within)"`` and ``"occasion[t] (between)"``
+    both carry it, and the Mundlak unit mean ``"occasion[t] (unit mean)"``, the between
+    minus within difference, is 0.
+    """
+    p = _parse(label)
+    if p is None:
+        return None
+    occ, part = p
+    return 0.0 if part == "unit mean" else float(
+        (truth.get("occasion") or {}).get(f"occasion[{occ}]", 0.0))
 
 
 def occasion_effects(fit, prob: float = 0.95, part: str = "effect") -> pd.DataFrame:

@@ -20,7 +20,10 @@ alike), so the parts equal the sample variances of the fitted components.
 A model without explicit within and between columns is mapped onto the same split:
 random-intercept and pooled coefficients act on both parts (``g_w = g_b``), Mundlak's
 ``x (unit mean)`` adds to the between part (``g_b = b + b_mean``), and fixed effects have
-only a within part (their unit intercepts are not given a variance).
+only a within part (their unit intercepts are not given a variance). A time-varying term
+with no between column (an occasion indicator in a balanced panel, whose unit means are
+all equal) has a between coefficient of 0 in the hybrid model and its one coefficient in
+Mundlak's; its unit means do not vary, so either way its between part adds nothing.
 
 References
 ----------
@@ -80,11 +83,15 @@ def design_columns(M, codes, labels, kind):
     if kind == "within_between":
         terms, cols, tv = [], [], []
         for lab in labels:
-            if lab.endswith(" (between)"):
+            if lab.endswith(" (between)") and f"{lab[:-len(' (between)')]} (within)" in pos:
                 continue
             if lab.endswith(" (within)"):
                 t = lab[: -len(" (within)")]
-                cols.append(M[:, pos[lab]] + M[:, pos[f"{t} (between)"]])
+                # a term without a between column (an occasion indicator in a balanced
+                # panel) is rebuilt from its within part: its unit mean is not among the
+                # model's columns, so the model gives it no between part
+                between = pos.get(f"{t} (between)")
+                cols.append(M[:, pos[lab]] + (M[:, between] if between is not None else 0.0))
                 tv.append(t)
             else:
                 t = lab
@@ -93,13 +100,22 @@ def design_columns(M, codes, labels, kind):
         return np.column_stack(cols), terms, tv
     if kind == "mundlak":
         keep = [lab for lab in labels if not lab.endswith(" (unit mean)")]
-        tv = [lab[: -len(" (unit mean)")] for lab in labels if lab.endswith(" (unit mean)")]
-        return M[:, [pos[t] for t in keep]], keep, tv
+        X = M[:, [pos[t] for t in keep]]
+        # every term that varies within units, with or without a unit-mean column (an
+        # occasion indicator in a balanced panel has none)
+        varying = set(_varies_within(X, codes, keep))
+        varying |= {lab[: -len(" (unit mean)")] for lab in labels
+                    if lab.endswith(" (unit mean)")}
+        return X, keep, [t for t in keep if t in varying]
+    return M, labels, _varies_within(M, codes, labels)
+
+
+def _varies_within(M, codes, labels):
+    """The labels (not the intercept) whose columns vary within units."""
     W = M - _unit_means(M, codes)[codes]
     scale = np.maximum(np.abs(M).max(axis=0), 1.0)
     varies = np.sqrt((W ** 2).mean(axis=0)) > _VARY_TOL * scale
-    tv = [lab for lab, v in zip(labels, varies) if v and lab != "Intercept"]
-    return M, labels, tv
+    return [lab for lab, v in zip(labels, varies) if v and lab != "Intercept"]
 
 
 def coefficient_parts(terms, time_varying, kind, labels, coef):
@@ -141,12 +157,18 @@ def coefficient_parts(terms, time_varying, kind, labels, coef):
     tv = list(time_varying)
     tc = [t for t in terms if t not in tv and t != "Intercept"]
     zero = np.zeros(coef.shape[0])
+    # a time-varying term without a between (unit-mean) column, such as an occasion
+    # indicator in a balanced panel whose unit means are all equal, has no between
+    # coefficient of its own: the hybrid model's between part leaves it out (0) and
+    # Mundlak's carries its one coefficient
     if kind == "within_between":
         g_w = [col(f"{t} (within)") for t in tv]
-        g_b = [col(f"{t} (between)") for t in tv] + [col(t) for t in tc]
+        g_b = [col(f"{t} (between)") if f"{t} (between)" in pos else zero for t in tv] \
+            + [col(t) for t in tc]
     elif kind == "mundlak":
         g_w = [col(t) for t in tv]
-        g_b = [col(t) + col(f"{t} (unit mean)") for t in tv] + [col(t) for t in tc]
+        g_b = [col(t) + (col(f"{t} (unit mean)") if f"{t} (unit mean)" in pos else zero)
+               for t in tv] + [col(t) for t in tc]
     elif kind == "within":
         g_w = [col(t) if t in pos else zero for t in tv]
         g_b = None

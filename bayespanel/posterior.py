@@ -566,12 +566,13 @@ class Posterior:
         """Between-minus-within effects with sign and ROPE probabilities, beside the
         Hausman and cluster-robust Mundlak tests; see
         :func:`bayespanel.contrasts.within_between_contrasts`."""
-        from .contrasts import within_between_contrasts
-        from .partition import design_columns
+        from .contrasts import contrast_covariates, within_between_contrasts
 
         if self.rows is None:
             raise SpecificationError("the contrasts need the estimation rows")
-        _, _, tv = design_columns(self.rows[0], self.rows[2], self.labels, self.spec.kind)
+        # the covariates with both a within and a between coefficient (an occasion
+        # indicator of a balanced panel has no between part)
+        tv = contrast_covariates(self.spec.kind, self.labels)
         return within_between_contrasts(self.spec.kind, self.labels, self._flat("coef"), tv,
                                         rope=rope, prob=prob, reference=reference,
                                         rows=self.rows if tests else None)

@@ -34,6 +34,7 @@ import numpy as np
 
 from .errors import BayespanelError, SpecificationError, choices_error
 from .models.sampling import MIN_DRAWS
+from .occasions import true_occasion_coef
 from .report.text import BAYES_MODELS, COUNTERPART, REFERENCE_FITS
 
 __all__ = ["Settings", "run", "load_settings", "MODEL_NAMES", "REFERENCE_NAMES", "LEVELS",
@@ -665,7 +666,8 @@ def _contrasts(post, design, kind, coef_d, settings, ref):
                               tests=False)
     from . import contrasts as ctr
 
-    return ctr.within_between_contrasts(kind, post.labels, coef_d, design.time_varying,
+    return ctr.within_between_contrasts(kind, post.labels, coef_d,
+                                        ctr.contrast_covariates(kind, post.labels),
                                         rope=settings.rope, prob=settings.interval,
                                         reference=ref)
 
@@ -909,10 +911,13 @@ def _truth_by_model(truth, entries, ref_entries):
         "random": dict(equal), "pooled": dict(equal),
     }
     out = {}
-    for e in entries:
-        out[e["name"]] = param[_KIND_OF[e["name"]]]
-    for e in ref_entries:
-        out[f"ref:{e['name']}"] = param[e["name"]]
+    for key, kind, e in ([(e["name"], _KIND_OF[e["name"]], e) for e in entries]
+                         + [(f"ref:{e['name']}", e["name"], e) for e in ref_entries]):
+        out[key] = dict(param[kind])
+        for row in e["coefficients"]:  # occasion terms (0 when the simulation has none)
+            occ = true_occasion_coef(row["term"], truth)
+            if occ is not None:
+                out[key][row["term"]] = occ
     return {"icc": truth["icc"], "sigma_unit": truth["sigma_unit"],
             "sigma_obs": truth["sigma_obs"], "by_model": out}
 
