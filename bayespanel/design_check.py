@@ -585,6 +585,15 @@ class DesignCheckResult:
 def _figure(res, prob):
     import matplotlib.pyplot as plt
 
+    from .report.figures import LITERAL_RC
+
+    with plt.rc_context(LITERAL_RC):  # labels are drawn as they are (no TeX, no mathtext)
+        return _draw_figure(res, prob, plt)
+
+
+def _draw_figure(res, prob, plt):
+    from .report.figures import literal
+
     tab = res.table().reset_index()
     lab = f"{round(100 * prob):d}%"
     tab = tab[tab[f"coverage {lab}"].notna()] if f"coverage {lab}" in tab else tab.iloc[:0]
@@ -601,16 +610,17 @@ def _figure(res, prob):
         g = tab[tab["method"] == meth]
         off = (k - (len(methods) - 1) / 2) * 0.22
         y = np.array([ypos[p] for p in g["parameter"]]) + off
-        axes[0].plot(g[f"coverage {lab}"], y, marks.get(meth, "o"), label=meth)
-        axes[1].plot(g[f"median width {lab}"], y, marks.get(meth, "o"), label=meth)
+        axes[0].plot(g[f"coverage {lab}"], y, marks.get(meth, "o"), label=literal(meth))
+        axes[1].plot(g[f"median width {lab}"], y, marks.get(meth, "o"), label=literal(meth))
     axes[1].set_xscale("log")
     axes[0].set_xlabel(f"coverage of the {lab} interval (band: nominal ± 2 Monte Carlo SE)")
     axes[1].set_xlabel(f"median width of the {lab} interval (log scale)")
-    axes[0].set_yticks(range(len(params)), params)
+    axes[0].set_yticks(range(len(params)), [literal(p) for p in params])
     axes[0].invert_yaxis()
     axes[0].legend(loc="best", fontsize="small")
-    fig.suptitle(f"Design check: {res.settings['model']}, {res.structure['n_units']} units, "
-                 f"{res.settings['replicates']} replicates", fontsize="medium")
+    fig.suptitle(literal(f"Design check: {res.settings['model']}, "
+                         f"{res.structure['n_units']} units, "
+                         f"{res.settings['replicates']} replicates"), fontsize="medium")
     fig.tight_layout()
     return fig
 

@@ -124,29 +124,33 @@ def occasion_effects_figure(fits, prob: float = 0.95, reference_occasion=None, p
     """
     import matplotlib.pyplot as plt
 
+    from .report.figures import LITERAL_RC, literal
+
     if not isinstance(fits, dict):
         fits = {"fit": fits}
     tables = {name: occasion_effects(f, prob, part) for name, f in fits.items()}
     order = list(dict.fromkeys(o for t in tables.values() for o in t.index))
     if reference_occasion is not None:
         order = [str(reference_occasion)] + [o for o in order if o != str(reference_occasion)]
-    pos = {o: i for i, o in enumerate(order)}
-    fig, ax = plt.subplots(figsize=(max(5.0, 0.45 * len(order) + 2.5), 3.6))
-    width = 0.6 / max(len(tables), 1)
-    for k, (name, t) in enumerate(tables.items()):
-        off = (k - (len(tables) - 1) / 2) * width
-        x = np.array([pos[o] for o in t.index]) + off
-        ax.errorbar(x, t["estimate"], yerr=[t["estimate"] - t["lower"],
-                                            t["upper"] - t["estimate"]],
-                    fmt="o-", capsize=2, lw=1, label=name)
-    if reference_occasion is not None:
-        ax.plot([0], [0], "k^", label=f"reference ({reference_occasion})")
-    ax.axhline(0, color="0.5", lw=0.8)
-    ax.set_xticks(range(len(order)), order, rotation=45 if len(order) > 10 else 0)
-    ax.set_xlabel("occasion")
-    ax.set_ylabel(("occasion effect" if part == "effect" else "between part")
-                  + f" ({round(100 * prob)}% interval)")
-    if len(tables) > 1 or reference_occasion is not None:
-        ax.legend(fontsize="small")
-    fig.tight_layout()
-    return fig
+    with plt.rc_context(LITERAL_RC):  # labels drawn as they are (no TeX, no mathtext)
+        pos = {o: i for i, o in enumerate(order)}
+        fig, ax = plt.subplots(figsize=(max(5.0, 0.45 * len(order) + 2.5), 3.6))
+        width = 0.6 / max(len(tables), 1)
+        for k, (name, t) in enumerate(tables.items()):
+            off = (k - (len(tables) - 1) / 2) * width
+            x = np.array([pos[o] for o in t.index]) + off
+            ax.errorbar(x, t["estimate"], yerr=[t["estimate"] - t["lower"],
+                                                t["upper"] - t["estimate"]],
+                        fmt="o-", capsize=2, lw=1, label=literal(name))
+        if reference_occasion is not None:
+            ax.plot([0], [0], "k^", label=literal(f"reference ({reference_occasion})"))
+        ax.axhline(0, color="0.5", lw=0.8)
+        ax.set_xticks(range(len(order)), [literal(o) for o in order],
+                      rotation=45 if len(order) > 10 else 0)
+        ax.set_xlabel("occasion")
+        ax.set_ylabel(("occasion effect" if part == "effect" else "between part")
+                      + f" ({round(100 * prob)}% interval)")
+        if len(tables) > 1 or reference_occasion is not None:
+            ax.legend(fontsize="small")
+        fig.tight_layout()
+        return fig

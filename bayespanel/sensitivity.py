@@ -323,24 +323,27 @@ class PresetComparison:
         """Posterior median and interval of the unit SD and the ICC under each preset."""
         import matplotlib.pyplot as plt
 
-        part = self.partition()
-        qs = [q for q in ("unit SD", "ICC") if q in part.index]
-        fig, axes = plt.subplots(1, len(qs), figsize=(4.5 * len(qs), 0.5 * len(self.posteriors)
-                                                       + 1.6), squeeze=False)
-        names = list(self.posteriors)
-        for ax, q in zip(axes[0], qs):
-            med = part.xs("median", axis=1, level=1).loc[q]
-            lo = part.xs("lower", axis=1, level=1).loc[q]
-            hi = part.xs("upper", axis=1, level=1).loc[q]
-            y = np.arange(len(names))
-            ax.errorbar(med[names], y, xerr=[med[names] - lo[names], hi[names] - med[names]],
-                        fmt="o", capsize=3)
-            ax.set_yticks(y, names)
-            ax.invert_yaxis()
-            ax.set_xlabel(f"{q}: median and {round(100 * self.prob)}% interval")
-        fig.suptitle("Variance partition under each unit-SD prior", fontsize="medium")
-        fig.tight_layout()
-        return fig
+        from .report.figures import LITERAL_RC, literal
+
+        with plt.rc_context(LITERAL_RC):  # labels drawn as they are
+            part = self.partition()
+            qs = [q for q in ("unit SD", "ICC") if q in part.index]
+            fig, axes = plt.subplots(1, len(qs), squeeze=False, figsize=(
+                4.5 * len(qs), 0.5 * len(self.posteriors) + 1.6))
+            names = list(self.posteriors)
+            for ax, q in zip(axes[0], qs):
+                med = part.xs("median", axis=1, level=1).loc[q]
+                lo = part.xs("lower", axis=1, level=1).loc[q]
+                hi = part.xs("upper", axis=1, level=1).loc[q]
+                y = np.arange(len(names))
+                ax.errorbar(med[names], y, xerr=[med[names] - lo[names], hi[names] - med[names]],
+                            fmt="o", capsize=3)
+                ax.set_yticks(y, [literal(n) for n in names])
+                ax.invert_yaxis()
+                ax.set_xlabel(f"{q}: median and {round(100 * self.prob)}% interval")
+            fig.suptitle("Variance partition under each unit-SD prior", fontsize="medium")
+            fig.tight_layout()
+            return fig
 
 
 def _coef_rows(post, prob):
@@ -413,6 +416,8 @@ def sensitivity_section(posterior, comparison: PresetComparison | None = None):
     """
     import matplotlib.pyplot as plt
 
+    from .report.figures import LITERAL_RC, literal
+
     tab = power_scaling(posterior)
     notes = [f"{i}: {f}" for i, f in tab["flag"].items() if f]
     lines = [f"Power-scaling sensitivity (Kallioinen et al. 2024): {len(notes)} of "
@@ -421,16 +426,17 @@ def sensitivity_section(posterior, comparison: PresetComparison | None = None):
         lines.append(comparison.summary())
         fig = comparison.figure()
     else:
-        fig, ax = plt.subplots(figsize=(6, 0.35 * len(tab) + 1.2))
-        y = np.arange(len(tab))
-        ax.barh(y - 0.2, tab["prior"], height=0.4, label="prior")
-        ax.barh(y + 0.2, tab["likelihood"], height=0.4, label="likelihood")
-        ax.axvline(tab.attrs["threshold"], color="0.4", lw=1, ls="--")
-        ax.set_yticks(y, tab.index)
-        ax.invert_yaxis()
-        ax.set_xlabel("power-scaling sensitivity")
-        ax.legend(fontsize="small")
-        fig.tight_layout()
+        with plt.rc_context(LITERAL_RC):  # labels drawn as they are
+            fig, ax = plt.subplots(figsize=(6, 0.35 * len(tab) + 1.2))
+            y = np.arange(len(tab))
+            ax.barh(y - 0.2, tab["prior"], height=0.4, label="prior")
+            ax.barh(y + 0.2, tab["likelihood"], height=0.4, label="likelihood")
+            ax.axvline(tab.attrs["threshold"], color="0.4", lw=1, ls="--")
+            ax.set_yticks(y, [literal(i) for i in tab.index])
+            ax.invert_yaxis()
+            ax.set_xlabel("power-scaling sensitivity")
+            ax.legend(fontsize="small")
+            fig.tight_layout()
     tab.attrs["title"] = "How much do the conclusions owe to the priors?"
     tab.attrs["summary"] = "\n".join(lines)
     return tab, fig

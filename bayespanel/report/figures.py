@@ -4,6 +4,11 @@ Each function returns a ``data:image/svg+xml;base64,...`` URI (or ``None`` when 
 is nothing to draw) for an ``<img>`` element. SVG output is made deterministic (fixed
 hash salt, no date, glyphs as paths), so a report rebuilt from saved results is byte
 for byte the one written by the fit.
+
+Every piece of text that comes from the data or from results.json (term labels, model
+titles, occasion labels) goes through :func:`literal`, so matplotlib draws it as it is:
+a label such as ``spend_$:cost_$`` is not read as mathematics (which failed after all
+the sampling) and TeX is never used (:data:`LITERAL_RC`).
 """
 
 from __future__ import annotations
@@ -15,7 +20,8 @@ import numpy as np
 
 from .tables import coefficient_grid
 
-__all__ = ["coefficient_figure", "icc_figure", "loo_figure", "ppc_figure", "PALETTE"]
+__all__ = ["coefficient_figure", "icc_figure", "loo_figure", "ppc_figure", "PALETTE", "literal",
+           "LITERAL_RC"]
 
 PALETTE = {
     "ink": "#1f2d3a", "grid": "#e4dccf", "paper": "#ffffff",
@@ -34,6 +40,24 @@ _RC = {
     "axes.titleweight": "bold", "axes.titlecolor": "#1f2d3a", "axes.titlelocation": "left",
     "legend.frameon": False, "legend.fontsize": 8.5,
 }
+
+#: settings under which :func:`literal` text is drawn as it is: no TeX (whose special
+#: characters ``_ % & #`` would break), and mathtext only between unescaped ``$``
+LITERAL_RC = {"text.usetex": False, "text.parse_math": True}
+_RC.update(LITERAL_RC)
+
+
+def literal(text) -> str:
+    """``text`` as a string matplotlib draws literally.
+
+    With mathtext on (matplotlib's default, and :data:`LITERAL_RC`), a string with an
+    even number of unescaped ``$`` is parsed as mathematics; with every ``$`` escaped
+    there is none, and matplotlib turns each ``\\$`` back into ``$`` when it draws the
+    text, so any string, backslashes included, comes out exactly as given. Figures made
+    by the package are built under :data:`LITERAL_RC` (usetex off), so TeX never sees
+    the text either.
+    """
+    return str(text).replace("$", r"\$")
 
 
 def _plt():
@@ -91,9 +115,9 @@ def coefficient_figure(results: dict):
                 if tv is not None:
                     ax.plot(tv, y, "D", color=PALETTE["truth"], ms=3.8, zorder=5)
             ax.set_yticks(range(len(present)))
-            ax.set_yticklabels([c["title"] for c in reversed(present)], fontsize=7.5)
+            ax.set_yticklabels([literal(c["title"]) for c in reversed(present)], fontsize=7.5)
             ax.set_ylim(-0.7, len(present) - 0.3)
-            ax.set_title(term)
+            ax.set_title(literal(term))
             ax.grid(axis="y", visible=False)
         for ax in axes.ravel()[len(terms):]:
             ax.set_visible(False)
@@ -134,11 +158,11 @@ def icc_figure(results: dict):
             if d is None:
                 continue
             ax.fill_between(grid, d, color=_colour("bayesian", i), alpha=0.18, lw=0)
-            ax.plot(grid, d, color=_colour("bayesian", i), lw=1.8, label=m["title"])
+            ax.plot(grid, d, color=_colour("bayesian", i), lw=1.8, label=literal(m["title"]))
         refs = [f for f in results.get("reference", []) if f.get("icc") is not None]
         for j, f in enumerate(refs):
             ax.axvline(f["icc"], color=_colour("reference", j), ls="--", lw=1.4,
-                       label=f"{f['title']} (ref.)")
+                       label=literal(f"{f['title']} (ref.)"))
             lo, hi = min(lo, f["icc"]), max(hi, f["icc"])
         tv = (results.get("truth") or {}).get("icc")
         if tv is not None:
@@ -175,11 +199,11 @@ def loo_figure(results: dict):
             ax.plot(d, y, "o" if kind == "bayesian" else "s", color=col, ms=6, mec="white")
         ax.axvline(0, color=PALETTE["ink"], lw=0.9)
         ax.set_yticks(range(len(rows)))
-        ax.set_yticklabels([r["title"] for r in reversed(rows)])
+        ax.set_yticklabels([literal(r["title"]) for r in reversed(rows)])
         ax.set_ylim(-0.7, len(rows) - 0.3)
         ax.grid(axis="y", visible=False)
-        ax.set_xlabel(f"ELPD difference to the best ({comp.get('level')} level; 0 = best, "
-                      "left = worse)")
+        ax.set_xlabel(literal(f"ELPD difference to the best ({comp.get('level')} level; "
+                              "0 = best, left = worse)"))
         fig.tight_layout()
         return _uri(fig)
 
@@ -208,8 +232,9 @@ def ppc_figure(results: dict):
                 ax.set_yticks([])
                 ax.grid(visible=False)
                 if i == 0:
-                    ax.set_title(lab)
+                    ax.set_title(literal(lab))
                 if j == 0:
-                    ax.set_ylabel(m["title"], fontsize=8, rotation=0, ha="right", va="center")
+                    ax.set_ylabel(literal(m["title"]), fontsize=8, rotation=0, ha="right",
+                                  va="center")
         fig.tight_layout(w_pad=0.8, h_pad=0.6)
         return _uri(fig)
