@@ -9,6 +9,7 @@ docs/guarantees.md.
 from __future__ import annotations
 
 import argparse
+import logging
 import sys
 import warnings
 from pathlib import Path
@@ -142,7 +143,22 @@ def cmd_fit(args) -> int:
     results = run(settings, out=out, quiet=args.quiet, progress_bars=args.progress_bars)
     _print_summary(results)
     print(f"report: {(out / 'report.html').resolve()}")
-    return _strict_exit(results, args.strict)
+    code = _strict_exit(results, args.strict)
+    return _failed_exit(results) or code
+
+
+def _failed_exit(results) -> int:
+    """Fits that failed (the others were finished and written): listed, exit code 1."""
+    failed = results.get("failed") or []
+    if not failed:
+        return EXIT_OK
+    print(f"\nfailed ({len(failed)}): the other fits are complete and written")
+    for f in failed:
+        print(f"  {f['title']} ({f['stage']}): {f['error']}")
+    print(f"bayespanel: failed: {len(failed)} fit(s) or stage(s) did not finish ("
+          f"{', '.join(f['name'] for f in failed)}); the outputs hold everything else; "
+          f"exit code {EXIT_FAILURE}", file=sys.stderr)
+    return EXIT_FAILURE
 
 
 def sampling_problems(results) -> list[str]:
@@ -182,28 +198,105 @@ def cmd_report(args) -> int:
 
 
 def _fmt(v):
-    return "–" if v is None else f"{v:.3f}"
+    """Console numbers: three decimals in the usual range, three significant digits
+    outside it (so 0.000692 is not shown as 0.001)."""
+    if v is None:
+        return "–"
+    a = abs(v)
+    return f"{v:.3f}" if a == 0 or 0.01 <= a < 1e6 else f"{v:.3g}"
+
+
+#: occasion indicators are listed term by term up to this many; beyond, one line
+_OCCASIONS_LISTED = 6
+
+
+def _print_terms(rows):
+    """``(term, centre, spread, lower, upper, extra)`` lines (``spread`` False: none),
+    columns sized to the block; many occasion indicators are summarised in one line
+    (every value is in results.json and the report)."""
+    occ = [r for r in rows if r[0].startswith("occasion[")]
+    many = len(occ) > _OCCASIONS_LISTED
+    cells = [(_fmt(r[1]), "" if r[2] is False else _fmt(r[2])) for r in rows]
+    w1 = max([len(c) for c, _ in cells] + [9])
+    w2 = max([len(d) for _, d in cells] + [0])
+    for r, (c, d) in zip(rows, cells):
+        if many and r in occ:
+            if r is occ[0]:
+                vals = [o[1] for o in occ if o[1] is not None]
+                print(f"  {len(occ)} occasion terms, from {_fmt(min(vals))} to "
+                      f"{_fmt(max(vals))} (each in the report and results.json)")
+            continue
+        spread = f"  {d:>{w2}}" if w2 else ""
+        print(f"  {r[0]:<28} {c:>{w1}}{spread}  [{_fmt(r[3])}, {_fmt(r[4])}]{r[5]}")
+
+
+def _not_estimated(items: dict) -> str:
+    """``term (reason)`` pairs, occasion indicators with one reason counted in one item."""
+    occ = {}
+    out = []
+    for k, v in items.items():
+        if k.startswith("occasion[") and len(items) > _OCCASIONS_LISTED:
+            occ.setdefault(v, []).append(k)
+        else:
+            out.append(f"{k} ({v})")
+    out += [f"{len(ks)} occasion terms ({v})" for v, ks in occ.items()]
+    return "; ".join(out)
+
+
+def _print_reference(results) -> None:
+    """The reference fits' estimates, SEs and intervals, and the specification tests."""
+    pct = f"{100 * results['settings']['interval']:g}%"
+    for f in results["reference"]:
+        print(f"\n{f['title']} (reference, {f['cov']} covariance; estimate, SE and {pct} "
+              "interval)")
+        _print_terms([(c["term"], c["estimate"], c["se"], c["lower"], c["upper"], "")
+                      for c in f["coefficients"]])
+        parts = [f"{label} {_fmt(f.get(k))}" for k, label in (
+            ("sigma_unit", "sigma_unit"), ("sigma_obs", "sigma_obs"), ("icc", "ICC"))
+            if f.get(k) is not None]
+        if parts:
+            print(f"  {'; '.join(parts)}")
+        if f.get("not_estimated"):
+            print(f"  not estimated: {_not_estimated(f['not_estimated'])}")
+    tests = results.get("tests") or []
+    if tests:
+        print("\nSpecification tests (are within and between effects equal?):")
+    reasons = {t["skipped"] for t in tests if t.get("skipped")}
+    if len(reasons) == 1 and all(t.get("skipped") for t in tests):  # one line for both
+        print(f"  not run: {reasons.pop()}")
+        tests = []
+    for t in tests:
+        if t.get("skipped"):
+            print(f"  {t['title']}: not run: {t['skipped']}")
+            continue
+        p = t.get("p_value")
+        print(f"  {t['title']}: statistic {_fmt(t.get('statistic'))} on "
+              f"{_fmt(t.get('df')) if t.get('df') is None else int(t['df'])} df, "
+              f"{'p < 0.001' if p is not None and p < 0.001 else f'p = {_fmt(p)}'}; "
+              f"{t['conclusion']}")
 
 
 def _print_summary(results, truth=None) -> None:
-    """Estimates per model (truth beside them for simulated data) and the comparison."""
+    """Reference fits and tests, estimates per Bayesian model (truth beside them for
+    simulated data) and the comparison."""
+    _print_reference(results)
     by = (results.get("truth") or {}).get("by_model", {})
     for m in results["models"]:
         print(f"\n{m['title']} (Bayesian; posterior mean and "
               f"{100 * results['settings']['interval']:g}% interval)")
         known = by.get(m["name"], {})
+        rows = []
         for c in m["coefficients"]:
             tv = known.get(c["term"])
-            extra = f"   true {tv:.3f}" if tv is not None else ""
-            print(f"  {c['term']:<28} {_fmt(c['mean']):>9}  [{_fmt(c['lower'])}, "
-                  f"{_fmt(c['upper'])}]{extra}")
+            rows.append((c["term"], c["mean"], False, c["lower"], c["upper"],
+                         f"   true {_fmt(tv)}" if tv is not None else ""))
         for q in m.get("scale", []):
             # the pooled model's residual SD mixes both levels: no true value to show
             tv = ((results.get("truth") or {}).get(q["name"])
                   if known and m["name"] != "pooled" else None)
-            extra = f"   true {tv:.3f}" if tv is not None else ""
-            print(f"  {q['name']:<28} {_fmt(q['mean']):>9}  [{_fmt(q['lower'])}, "
-                  f"{_fmt(q['upper'])}]{extra}")
+            rows.append((q["name"], q["mean"], False, q["lower"], q["upper"],
+                         f"   true {_fmt(tv)}" if tv is not None else ""))
+        _print_terms(rows)
         for w in m["diagnostics"]["warnings"]:
             print(f"  warning: {w}")
     comp = results.get("comparison")
@@ -244,7 +337,8 @@ def cmd_demo(args) -> int:
     _print_summary(results)
     print(f"\nreport: {(out / 'report.html').resolve()}")
     print(f"rerun exactly: python -m bayespanel fit --config {out / 'analysis.toml'} --out NEW_FOLDER")
-    return _strict_exit(results, args.strict)
+    code = _strict_exit(results, args.strict)
+    return _failed_exit(results) or code
 
 
 # ---------------------------------------------------------------------- parser
@@ -418,6 +512,10 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv=None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    if args.debug:  # tracebacks of fits that failed while the run went on
+        log = logging.getLogger("bayespanel")
+        log.setLevel(logging.DEBUG)
+        log.addHandler(logging.StreamHandler(sys.stderr))
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("default")

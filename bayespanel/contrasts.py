@@ -139,6 +139,8 @@ class ContrastResult:
         self.prob = prob
         self.reference = reference
         self.tests = dict(tests or {})
+        #: why the specification tests were not run, when they do not apply
+        self.tests_skipped = None
 
     def table(self, prob: float | None = None) -> pd.DataFrame:
         """One row per covariate: posterior summary, sign and ROPE probabilities, and the
@@ -192,6 +194,8 @@ class ContrastResult:
         s = f"<ContrastResult between minus within, {self.kind}>\n{self.table()}"
         for t in self.tests.values():
             s += f"\n{t}"
+        if self.tests_skipped:
+            s += f"\n{self.tests_skipped}"
         return s
 
 
@@ -235,6 +239,8 @@ def specification_tests(M, y, codes, labels, kind) -> dict:
     # unit means of the covariates the model gives a between part (not those whose unit
     # means are all equal, such as occasion indicators in a balanced panel)
     tb = [t for t in contrast_covariates(kind, labels) if t in tv]
+    if not tb:  # nothing to compare (see within_between_contrasts)
+        return {}
     Mm = np.column_stack([X, _unit_means(X[:, [terms.index(t) for t in tb]], codes)[codes]])
     mres = fit_arrays("mundlak", Mm, y, codes, terms + [f"{t} (unit mean)" for t in tb],
                       method="swamy-arora", cov="cluster")
@@ -263,7 +269,9 @@ def within_between_contrasts(kind, labels, coef, time_varying, *, rope=None, pro
         A ``within_between`` or ``mundlak`` fit on the same rows.
     rows : tuple (M, y, unit_codes), optional
         The model's rows: with them the classical Hausman test and the cluster-robust
-        Mundlak test are computed (:func:`specification_tests`).
+        Mundlak test are computed (:func:`specification_tests`); when no covariate has
+        both a within and a between part they do not apply, and ``tests_skipped`` of
+        the result says so.
 
     Returns
     -------
@@ -278,4 +286,9 @@ def within_between_contrasts(kind, labels, coef, time_varying, *, rope=None, pro
     if rows is not None:
         M, y, codes = rows
         found = specification_tests(M, y, codes, labels, kind)
-    return ContrastResult(D, terms, kind, rope=rope, prob=prob, reference=ref, tests=found)
+    out = ContrastResult(D, terms, kind, rope=rope, prob=prob, reference=ref, tests=found)
+    if rows is not None and not terms:
+        out.tests_skipped = ("Hausman and Mundlak tests not run: no covariate has both a "
+                             "within and a between part (a covariate whose unit means are "
+                             "the same for every unit has no between part)")
+    return out

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import logging
 import os
 import platform
 import re
@@ -26,6 +27,7 @@ import sys
 import time
 import tomllib
 import warnings
+from contextlib import contextmanager
 from dataclasses import asdict, dataclass, field, fields, replace
 from datetime import datetime, timezone
 from pathlib import Path
@@ -53,6 +55,7 @@ RE_METHODS = ("swamy-arora", "ml", "reml")
 _PACKAGES = ("bayespanel", "numpy", "scipy", "pandas", "xarray", "pymc", "pytensor", "arviz",
              "arviz-base", "arviz-stats", "formulaic", "matplotlib", "h5netcdf", "nutpie")
 AUTO_EXACT = 1000
+_LOG = logging.getLogger("bayespanel")
 LOO_OBSERVATIONS = 400
 _KIND_OF = {"pooled": "pooled", "random_intercept": "random", "within_between": "within_between",
             "correlated_effects": "mundlak", "fixed_effects": "within"}
@@ -485,53 +488,98 @@ def _data_record(settings, panel, design, source, n_read, say):
     }
 
 
-def _reference_stage(settings, design, say):
-    from . import reference as ref
+@contextmanager
+def _isolated(failed, say, name, title, what):
+    """Run one fit or stage; on an error, record it in ``failed`` and go on, so one
+    model's failure never loses the others (``results["failed"]``, the console and the
+    report list it; the command line exits with 1). Interrupts are not caught. The
+    traceback goes to the ``bayespanel`` logger (``--debug`` shows it)."""
+    try:
+        yield
+    except Exception as exc:  # noqa: BLE001 - any failure of one fit is recorded, not raised
+        text = f"{type(exc).__name__}: {exc}" if str(exc) else type(exc).__name__
+        failed.append({"name": name, "title": title, "stage": what, "error": text})
+        _LOG.debug("%s of %s failed", what, name, exc_info=True)
+        say(f"{what} of {name} failed ({text}); the run goes on without it")
 
+
+def _reference_stage(settings, design, say, failed):
     fits, out = {}, []
-    prob = settings.interval
     for name in settings.reference:
-        kw = {"method": settings.re_method} if name in ("random", "mundlak", "within_between") else {}
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            res = ref.fit_design(design, name, cov=settings.cov, **kw)
-        fits[name] = res
-        tab = res.table(prob)
-        entry = {
-            "name": name, "title": REFERENCE_FITS[name][0],
-            "assumptions": _assumptions(res, settings.cov) or REFERENCE_FITS[name][1],
-            "estimator": name, "method": res.method, "cov": res.cov_type,
-            "coefficients": [{"term": t, "estimate": float(r["estimate"]), "se": float(r["se"]),
-                              "df": float(r["df"]) if np.isfinite(r["df"]) else None,
-                              "p_value": float(r["p"]), "lower": float(r["lower"]),
-                              "upper": float(r["upper"])} for t, r in tab.iterrows()],
-            "sigma_unit": res.sigma_unit, "sigma_obs": res.sigma_obs,
-            "icc": res.icc if name in ("random", "mundlak", "within_between") else None,
-            "n_obs": res.n_obs, "n_units": res.n_units,
-            "not_estimated": {str(k): str(v) for k, v in res.dropped.items()},
-        }
-        out.append(_floats(entry))
-    say(f"reference fits ({settings.cov} covariance): {', '.join(settings.reference) or 'none'}")
+        with _isolated(failed, say, name, REFERENCE_FITS[name][0], "reference fit"):
+            res, entry = _reference_one(name, settings, design)
+            fits[name] = res
+            out.append(entry)
+    say(f"reference fits ({settings.cov} covariance): {', '.join(fits) or 'none'}")
     return fits, out
 
 
-def _tests_stage(design, say):
-    """Classical Hausman and cluster-robust Mundlak tests (when a within part exists)."""
+def _reference_one(name, settings, design):
     from . import reference as ref
 
+    prob = settings.interval
+    kw = {"method": settings.re_method} if name in ("random", "mundlak", "within_between") else {}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = ref.fit_design(design, name, cov=settings.cov, **kw)
+    tab = res.table(prob)
+    entry = {
+        "name": name, "title": REFERENCE_FITS[name][0],
+        "assumptions": _assumptions(res, settings.cov) or REFERENCE_FITS[name][1],
+        "estimator": name, "method": res.method, "cov": res.cov_type,
+        "coefficients": [{"term": t, "estimate": float(r["estimate"]), "se": float(r["se"]),
+                          "df": float(r["df"]) if np.isfinite(r["df"]) else None,
+                          "p_value": float(r["p"]), "lower": float(r["lower"]),
+                          "upper": float(r["upper"])} for t, r in tab.iterrows()],
+        "sigma_unit": res.sigma_unit, "sigma_obs": res.sigma_obs,
+        "icc": res.icc if name in ("random", "mundlak", "within_between") else None,
+        "n_obs": res.n_obs, "n_units": res.n_units,
+        "not_estimated": {str(k): str(v) for k, v in res.dropped.items()},
+    }
+    return res, _floats(entry)
+
+
+_TESTS = (("hausman", "Hausman (classical), fixed vs random effects"),
+          ("mundlak", "Mundlak unit-mean terms (cluster-robust Wald)"))
+
+
+def tests_skip_reason(design) -> str | None:
+    """Why the Hausman and Mundlak tests do not apply to a design, or None when they do.
+
+    Both ask whether a covariate's within and between effects differ, so they need at
+    least one covariate that varies within units and whose unit means differ between
+    units (a fixed schedule, such as years since baseline observed on the same occasions
+    for every unit, or occasion indicators in a balanced panel, has no between variation).
+    """
     if not design.time_varying:
-        return []
+        return ("no covariate varies within units, so there is no within effect to "
+                "compare with a between effect")
+    if not any(lab.endswith(" (unit mean)") for lab in design.labels("mundlak")):
+        return ("no time-varying covariate varies between units (every unit has the same "
+                f"unit mean of {', '.join(map(repr, design.time_varying))}), so within "
+                "and between effects cannot be told apart")
+    return None
+
+
+def _tests_stage(design, say):
+    """Classical Hausman and cluster-robust Mundlak tests, each when it applies; a test
+    that does not apply is recorded with the reason (``skipped``)."""
+    from . import reference as ref
+
+    why = tests_skip_reason(design)
+    if why is not None:
+        say(f"specification tests skipped: {why}")
+        return [{"name": key, "title": title, "statistic": None, "df": None, "p_value": None,
+                 "null": None, "conclusion": f"not run: {why}", "message": None,
+                 "skipped": why} for key, title in _TESTS]
     tests = []
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         fe = ref.fit_design(design, "within", cov="classical")
         re_ = ref.fit_design(design, "random", cov="classical", method="swamy-arora")
-        for key, title, t in (("hausman", "Hausman (classical), fixed vs random effects",
-                               ref.hausman(fe, re_)),
-                              ("mundlak", "Mundlak unit-mean terms (cluster-robust Wald)",
-                               ref.mundlak_test(ref.fit_design(design, "mundlak",
-                                                               method="swamy-arora",
-                                                               cov="cluster")))):
+        found = (ref.hausman(fe, re_), ref.mundlak_test(ref.fit_design(
+            design, "mundlak", method="swamy-arora", cov="cluster")))
+        for (key, title), t in zip(_TESTS, found):
             reject = np.isfinite(t.p_value) and t.p_value < 0.05
             tests.append(_floats({
                 "name": key, "title": title, "statistic": t.statistic, "df": t.df,
@@ -863,8 +911,9 @@ def _comparison_large(settings, design, posts, entries, say):
     return {"level": settings.level, "reference_folds": None, "rows": rows}
 
 
-def _comparison_stage(settings, design, posts, ref_fits, entries, say):
-    """LOO at the chosen level for every Bayesian model and reference fit."""
+def _comparison_stage(settings, design, posts, ref_fits, entries, say, failed=None):
+    """LOO at the chosen level for every Bayesian model and reference fit (a model whose
+    LOO fails is left out of the table and recorded in ``failed``)."""
     from .compare import compare
 
     if getattr(design, "out_of_core", False):
@@ -872,9 +921,11 @@ def _comparison_stage(settings, design, posts, ref_fits, entries, say):
     fits, titles = {}, {}
     by_name = {e["name"]: e for e in entries}
     for name, post in posts.items():
-        lr, by_name[name]["loo"] = _loo_entry(post, settings.level)
-        fits[name] = lr if lr is not None else post
-        titles[name] = BAYES_MODELS[name][0]
+        with _isolated(failed if failed is not None else [], say, name, BAYES_MODELS[name][0],
+                       "LOO"):
+            lr, by_name[name]["loo"] = _loo_entry(post, settings.level)
+            fits[name] = lr if lr is not None else post
+            titles[name] = BAYES_MODELS[name][0]
     for name, res in ref_fits.items():
         if name == "between":
             continue  # one row per unit: it has no predictive density for rows
@@ -1019,8 +1070,11 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
     """Reference fits, tests, Bayesian fits and the comparison -> the results dict."""
     from .report.results_json import SCHEMA_NAME, SCHEMA_VERSION, validate
 
-    ref_fits, ref_entries = _reference_stage(settings, design, say)
-    tests = _tests_stage(design, say)
+    failed = []
+    ref_fits, ref_entries = _reference_stage(settings, design, say, failed)
+    tests = []
+    with _isolated(failed, say, "tests", "Hausman and Mundlak tests", "specification tests"):
+        tests = _tests_stage(design, say)
     labels = {}
     for name in settings.models:
         try:
@@ -1033,11 +1087,16 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
                          ": constant within units, absorbed by the unit intercepts"]
     posts, entries = {}, []
     for name in settings.models:
-        post, entry = _bayes_one(name, settings, panel, design, labels[name], ref_fits,
-                                 out_dir, say, progress_bars)
-        posts[name] = post
-        entries.append(entry)
-    comparison = _comparison_stage(settings, design, posts, ref_fits, entries, say)
+        with _isolated(failed, say, name, BAYES_MODELS[name][0], "Bayesian fit"):
+            post, entry = _bayes_one(name, settings, panel, design, labels[name], ref_fits,
+                                     out_dir, say, progress_bars)
+            posts[name] = post
+            entries.append(entry)
+    comparison = None
+    if posts or ref_fits:
+        with _isolated(failed, say, "comparison", "LOO comparison", "comparison"):
+            comparison = _comparison_stage(settings, design, posts, ref_fits, entries, say,
+                                           failed)
     results = {
         "schema": SCHEMA_NAME, "schema_version": SCHEMA_VERSION,
         "created": datetime.now(timezone.utc).replace(microsecond=0).isoformat(),
@@ -1048,6 +1107,8 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
         "comparison": comparison, "warnings": notes,
         "truth": _truth_by_model(truth, entries, ref_entries) if truth else None,
     }
+    if failed:  # runs where everything was fitted keep the 1.0 layout
+        results["failed"] = failed
     if getattr(design, "out_of_core", False):
         results["out_of_core"] = _left_out(settings, panel, design)
     validate(results)

@@ -34,6 +34,14 @@ def wage_panel() -> pd.DataFrame:
 
 
 @pytest.fixture(scope="session")
+def wage_csv(tmp_path_factory, wage_panel):
+    """The wage panel written to CSV, for the command line."""
+    path = tmp_path_factory.mktemp("wage") / "wage.csv"
+    wage_panel.to_csv(path, index=False)
+    return path
+
+
+@pytest.fixture(scope="session")
 def demo():
     import bayespanel as bp
 

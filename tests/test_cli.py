@@ -19,13 +19,6 @@ FORMULA = "lwage ~ exper + expersq + union + married + educ + black"
 
 
 @pytest.fixture(scope="module")
-def wage_csv(tmp_path_factory, wage_panel):
-    path = tmp_path_factory.mktemp("wage") / "wage.csv"
-    wage_panel.to_csv(path, index=False)
-    return path
-
-
-@pytest.fixture(scope="module")
 def ref_run(wage_csv, tmp_path_factory):
     out = tmp_path_factory.mktemp("wage_ref")
     with warnings.catch_warnings():

@@ -457,8 +457,13 @@ def _report_dropped(estimator, ss, fit, labels):
                 "units remain)", DataHandlingWarning,
                 skip_file_prefixes=(_PKG_DIR,))
         return dropped
+    scale = np.diag(ss.total) + ss.n * ss.mean ** 2
     for j in missing:
-        dropped[labels[j]] = "collinear with other terms"
+        # a column whose unit means are all equal (a schedule every unit follows, an
+        # occasion indicator of a balanced panel) says nothing about differences between units
+        flat = estimator == "between" and (ss.total - ss.within)[j, j] <= COLLINEAR_TOL * scale[j]
+        dropped[labels[j]] = ("the same unit mean for every unit" if flat else
+                              "collinear with other terms")
     # unit means of occasion indicators are constant in balanced panels: expected, quiet
     loud = [labels[j] for j in missing if not labels[j].startswith("occasion[")]
     if loud:

@@ -158,6 +158,8 @@ def _overview(r) -> Safe:
     elif r["models"]:
         parts.append(note("fine", "No sampling warnings: R-hat, ESS, divergences and "
                           "energy are within the usual thresholds.", "Sampling."))
+    for f in r.get("failed") or []:
+        parts.append(_failed_note(f))
     for w in r.get("warnings", []):
         parts.append(note("caution", w, "Note."))
     ooc = r.get("out_of_core")
@@ -169,6 +171,13 @@ def _overview(r) -> Safe:
             join([join([tag("b", x["item"]), f" ({x['reason']})"]) for x in ooc["left_out"]],
                  "; "), "."]), "Out of core."))
     return join(parts)
+
+
+def _failed_note(f) -> Safe:
+    """One fit or stage that failed while the run went on (results.json ``failed``)."""
+    return note("problem", f"{f['stage']} of {f['title']} failed: {f['error']}. It is "
+                "missing from the tables; everything else on this page is complete.",
+                "Failed.")
 
 
 def _data(r) -> Safe:
@@ -209,6 +218,8 @@ def _models(r) -> Safe:
                cls="bp-lead")]
     if cards:
         out.append(tag("div", *cards, cls="bp-models"))
+    out += [_failed_note(f) for f in r.get("failed") or []
+            if f["stage"] in ("Bayesian fit", "reference fit")]
     if r["reference"]:
         rows = [[f["title"], Safe(esc(f["assumptions"])), Safe(esc(
             f["cov"] + (f", {f['method']}" if f.get("method") else ""))),
