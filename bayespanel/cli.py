@@ -119,6 +119,9 @@ def _settings_from_args(args):
         "ppc_draws": args.ppc_draws, "reference_folds": args.reference_folds,
         "out_of_core": True if args.out_of_core else None,
         "loo_observations": args.loo_observations,
+        "family": args.family, "trials": args.trials, "exposure": args.exposure,
+        "random_slopes": _names(args.random_slopes),
+        "centred": True if args.centred_effects else None,
     }
     if args.config:
         s = load_settings(args.config, **over)
@@ -297,8 +300,19 @@ def _print_summary(results, truth=None) -> None:
             rows.append((q["name"], q["mean"], False, q["lower"], q["upper"],
                          f"   true {_fmt(tv)}" if tv is not None else ""))
         _print_terms(rows)
+        ame = m.get("average_marginal_effects") or []
+        if ame:
+            print("  average marginal effects (outcome scale; reference GLM beside):")
+            for a in ame:
+                ref = ("" if a.get("reference_estimate") is None else
+                       f"   ref. {_fmt(a['reference_estimate'])} (SE {_fmt(a['reference_se'])})")
+                print(f"    {a['effect']:<26} {_fmt(a['mean'])!s:>9}  [{_fmt(a['lower'])}, "
+                      f"{_fmt(a['upper'])}]{ref}")
         for w in m["diagnostics"]["warnings"]:
             print(f"  warning: {w}")
+    for w in results.get("warnings") or []:
+        if "--family" in w:  # the family suggestion for a 0/1 outcome fitted as Gaussian
+            print(f"\nnote: {w}")
     comp = results.get("comparison")
     if comp and comp.get("rows"):
         print(f"\nLOO comparison ({comp['level']} level; ELPD difference to the best, SE):")
@@ -352,6 +366,31 @@ def _sampling_args(p, draws, tune, chains):
     g.add_argument("--seed", type=int, default=None,
                    help="seed of every random draw; the same seed repeats the run (default 1)")
     return g
+
+
+def _family_args(p):
+    """Outcome family, its columns and random slopes (docs/families.md, docs/cli.md)."""
+    from .models.families import FAMILIES
+
+    g = p.add_argument_group("outcome family and random slopes")
+    g.add_argument("--family", choices=FAMILIES, default=None,
+                   help="distribution of the outcome: gaussian (default), student_t, "
+                        "bernoulli (0/1), binomial (successes of --trials), poisson or "
+                        "negative_binomial (counts); families other than gaussian are fitted "
+                        "by random_intercept, within_between and correlated_effects, beside "
+                        "pooled GLMs as reference fits")
+    g.add_argument("--trials", metavar="COL",
+                   help="column with the number of trials of every row (binomial)")
+    g.add_argument("--exposure", metavar="COL",
+                   help="column with each row's exposure (time at risk, population), entering "
+                        "counts as log(exposure) (poisson, negative_binomial)")
+    g.add_argument("--random-slopes", metavar="X[,Z]",
+                   help="comma-separated time-varying covariates (at most two) whose slope "
+                        "varies by unit")
+    g.add_argument("--centred-effects", action="store_true",
+                   help="centred latent unit effects instead of the non-centred default "
+                        "(try it when units have many occasions and sampling reports "
+                        "divergences)")
 
 
 def cmd_design_check(args) -> int:
@@ -459,6 +498,7 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--occasion-effects", action="store_true",
                    help="add one indicator per occasion to every model")
     g.add_argument("--out-of-core", action="store_true", help=_OOC_HELP)
+    _family_args(p)
     g.add_argument("--prior", action="append", metavar="KEY=SPEC",
                    help="prior override, repeatable: KEY is a term label, 'coef' (all slopes), "
                         "'sigma_obs' or 'sigma_unit'; SPEC is a family (normal, student_t, "

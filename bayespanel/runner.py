@@ -35,12 +35,13 @@ from pathlib import Path
 import numpy as np
 
 from .errors import BayespanelError, SpecificationError, choices_error
+from .models.families import FAMILIES
 from .models.sampling import MIN_DRAWS
 from .occasions import true_occasion_coef
 from .report.text import BAYES_MODELS, COUNTERPART, REFERENCE_FITS
 
 __all__ = ["Settings", "run", "load_settings", "MODEL_NAMES", "REFERENCE_NAMES", "LEVELS",
-           "BUILDER_OF", "software_versions"]
+           "BUILDER_OF", "LATENT_MODELS", "GLM_REFERENCES", "software_versions"]
 
 #: command-line model names -> builder class names in :mod:`bayespanel.models`
 BUILDER_OF = {"pooled": "Pooled", "random_intercept": "RandomIntercept",
@@ -54,6 +55,10 @@ COVS = ("classical", "cluster", "cr2")
 RE_METHODS = ("swamy-arora", "ml", "reml")
 _PACKAGES = ("bayespanel", "numpy", "scipy", "pandas", "xarray", "pymc", "pytensor", "arviz",
              "arviz-base", "arviz-stats", "formulaic", "matplotlib", "h5netcdf", "nutpie")
+#: models that take a latent-effect family or random slopes (the others refuse them)
+LATENT_MODELS = ("random_intercept", "within_between", "correlated_effects")
+#: reference fits of the logit / log-link families: pooled GLMs on these columns
+GLM_REFERENCES = ("pooled", "mundlak", "within_between")
 AUTO_EXACT = 1000
 _LOG = logging.getLogger("bayespanel")
 LOO_OBSERVATIONS = 400
@@ -103,14 +108,31 @@ class Settings:
         (docs/cli.md lists what is left out and why).
     loo_observations : int, optional
         Out of core: points sampled by the sub-sampled LOO (default ``LOO_OBSERVATIONS``).
+    family : str
+        Outcome family (docs/families.md): ``gaussian`` (default), ``student_t``,
+        ``bernoulli``, ``binomial``, ``poisson``, ``negative_binomial``. Families other
+        than ``gaussian``, and random slopes, are fitted by ``LATENT_MODELS`` only; their
+        reference fits are pooled GLMs (``GLM_REFERENCES``) for the logit and log links.
+    trials : str, optional
+        Column with the binomial trials of every row (``family="binomial"`` only).
+    exposure : str, optional
+        Column with the exposure of every row, entering counts as ``log(exposure)``
+        (``poisson`` and ``negative_binomial`` only).
+    random_slopes : tuple of str
+        Time-varying covariates whose (within) slope varies by unit (at most two).
+    centred : bool
+        Centred instead of non-centred latent unit effects (docs/families.md).
+
+    ``models`` and ``reference`` default to every model and reference fit that applies
+    to the family: all five and all six for the Gaussian family without random slopes.
     """
 
     unit: str
     time: str
     formula: str
     data: str | None = None
-    models: tuple = MODEL_NAMES
-    reference: tuple = REFERENCE_NAMES
+    models: tuple | None = None
+    reference: tuple | None = None
     priors: dict = field(default_factory=dict)
     draws: int = 1000
     tune: int = 1000
@@ -129,14 +151,40 @@ class Settings:
     data_sha256: str | None = None
     out_of_core: bool = False
     loo_observations: int | None = None
+    family: str = "gaussian"
+    trials: str | None = None
+    exposure: str | None = None
+    random_slopes: tuple = ()
+    centred: bool = False
 
     def __post_init__(self):
-        for name in ("models", "reference"):
+        defaults = {"models": LATENT_MODELS if self.latent else MODEL_NAMES,
+                    "reference": GLM_REFERENCES if self.glm_reference else REFERENCE_NAMES}
+        for name in ("models", "reference", "random_slopes"):
             v = getattr(self, name)
+            if v is None:
+                v = defaults[name]
             if isinstance(v, str):
                 v = tuple(x.strip() for x in v.split(",") if x.strip())
             object.__setattr__(self, name, tuple(v))
         object.__setattr__(self, "priors", dict(self.priors or {}))
+        lkj = self.priors.get("lkj_eta")
+        if isinstance(lkj, str):
+            try:
+                self.priors["lkj_eta"] = float(lkj)
+            except ValueError:
+                pass  # refused by check() with the option named
+
+    @property
+    def latent(self) -> bool:
+        """True when the models have latent unit effects: a family other than the
+        Gaussian, or random slopes."""
+        return self.family != "gaussian" or bool(self.random_slopes)
+
+    @property
+    def glm_reference(self) -> bool:
+        """True when the reference fits are pooled GLMs (logit and log-link families)."""
+        return self.family not in ("gaussian", "student_t")
 
     # ------------------------------------------------------------------ checks
     def check(self) -> "Settings":
@@ -194,17 +242,82 @@ class Settings:
         if not isinstance(self.occasion_effects, bool):
             raise SpecificationError(f"occasion_effects={self.occasion_effects!r} must be "
                                      "true or false")
+        self._check_family()
         for k, v in self.priors.items():
+            if k == "lkj_eta":
+                if isinstance(v, bool) or not isinstance(v, (int, float)) or not v > 0:
+                    raise SpecificationError(f"priors['lkj_eta']={v!r} must be a positive "
+                                             "number (the LKJ shape of the random-slope "
+                                             "correlations)")
+                continue
             if not isinstance(v, (str, dict)):
                 raise SpecificationError(
                     f"priors[{k!r}]={v!r}: give a family name such as 'gamma2' or a table "
                     "like {family = 'normal', sigma = 10}")
         return self
 
+    def _check_family(self):
+        """The family, its columns and the models and reference fits that apply to it."""
+        if self.family not in FAMILIES:
+            raise choices_error("family", self.family, FAMILIES)
+        for name in ("trials", "exposure"):
+            v = getattr(self, name)
+            if v is not None and (not isinstance(v, str) or not v.strip()):
+                raise SpecificationError(f"{name}={v!r} must be a column name")
+        if self.family == "binomial" and self.trials is None:
+            raise SpecificationError("family='binomial' needs trials: the column with the "
+                                     "number of trials of every row (--trials COL)")
+        if self.trials is not None and self.family != "binomial":
+            raise SpecificationError(f"trials={self.trials!r} is used by family='binomial' "
+                                     f"only, not {self.family!r}")
+        if self.exposure is not None and self.family not in ("poisson", "negative_binomial"):
+            raise SpecificationError(f"exposure={self.exposure!r} is used by the count "
+                                     "families ('poisson', 'negative_binomial') only, not "
+                                     f"{self.family!r}")
+        if not all(isinstance(x, str) and x for x in self.random_slopes):
+            raise SpecificationError(f"random_slopes={list(self.random_slopes)!r} must be "
+                                     "covariate names")
+        if len(set(self.random_slopes)) != len(self.random_slopes):
+            raise SpecificationError(f"random_slopes={list(self.random_slopes)!r} names a "
+                                     "covariate twice")
+        if len(self.random_slopes) > 2:
+            raise SpecificationError(f"random_slopes={list(self.random_slopes)!r}: at most "
+                                     "two random slopes are supported")
+        if not isinstance(self.centred, bool):
+            raise SpecificationError(f"centred={self.centred!r} must be true or false")
+        if not self.latent:
+            if self.centred:
+                raise SpecificationError("centred applies to latent unit effects only (a "
+                                         "family other than gaussian, or random slopes)")
+            return
+        what = (f"family={self.family!r}" if self.family != "gaussian" else "random slopes")
+        bad = [m for m in self.models if m not in LATENT_MODELS]
+        if bad:
+            raise SpecificationError(
+                f"models: {', '.join(bad)} cannot fit {what}; the models that can are "
+                f"{', '.join(LATENT_MODELS)}")
+        if self.glm_reference:
+            bad = [r for r in self.reference if r not in GLM_REFERENCES]
+            if bad:
+                raise SpecificationError(
+                    f"reference: {', '.join(bad)} has no counterpart for family="
+                    f"{self.family!r} (a linear fit of a {self.family} outcome would not match "
+                    f"the models); the reference fits for it are pooled GLMs on the columns "
+                    f"of {', '.join(GLM_REFERENCES)}")
+            if self.cov == "cr2":
+                raise SpecificationError(
+                    f"cov='cr2' is for the linear reference fits; the reference GLMs of "
+                    f"family={self.family!r} take 'cluster' or 'classical'")
+        if self.out_of_core:
+            raise SpecificationError(
+                f"out_of_core: {what} needs the rows (latent unit effects are sampled row by "
+                "row); drop out_of_core or use the Gaussian family without random slopes")
+
     # ------------------------------------------------------------------ files
     def to_dict(self) -> dict:
         d = asdict(self)
-        d["models"], d["reference"] = list(self.models), list(self.reference)
+        for k in ("models", "reference", "random_slopes"):
+            d[k] = list(getattr(self, k))
         return d
 
     def to_toml(self) -> str:
@@ -224,7 +337,15 @@ class Settings:
         lines += ["", "[model]", f"formula = {_toml_value(self.formula)}",
                   f"models = {_toml_value(list(self.models))}",
                   f"occasion_effects = {_toml_value(self.occasion_effects)}",
-                  "", "[priors]"]
+                  f"family = {_toml_value(self.family)}"]
+        for k in ("trials", "exposure"):
+            if getattr(self, k) is not None:
+                lines.append(f"{k} = {_toml_value(getattr(self, k))}")
+        if self.random_slopes:
+            lines.append(f"random_slopes = {_toml_value(list(self.random_slopes))}")
+        if self.centred:
+            lines.append("centred = true")
+        lines += ["", "[priors]"]
         lines += [f"{_toml_key(k)} = {_toml_value(v)}" for k, v in self.priors.items()]
         lines += ["", "[sampling]"] + [f"{k} = {_toml_value(getattr(self, k))}" for k in
                                        ("draws", "tune", "chains", "seed", "sampler", "ppc_draws")]
@@ -245,7 +366,9 @@ _TOML_LAYOUT = {  # section -> {key in file: Settings field}
     "": {"title": "title"},
     "data": {"file": "data", "unit": "unit", "time": "time", "sha256": "data_sha256",
              "out_of_core": "out_of_core"},
-    "model": {"formula": "formula", "models": "models", "occasion_effects": "occasion_effects"},
+    "model": {"formula": "formula", "models": "models", "occasion_effects": "occasion_effects",
+              "family": "family", "trials": "trials", "exposure": "exposure",
+              "random_slopes": "random_slopes", "centred": "centred"},
     "sampling": {k: k for k in ("draws", "tune", "chains", "seed", "sampler", "ppc_draws")},
     "reference": {"fits": "reference", "cov": "cov", "method": "re_method"},
     "comparison": {"level": "level", "rope": "rope", "reference_folds": "reference_folds",
@@ -593,15 +716,33 @@ def _tests_stage(design, say):
     return tests
 
 
+def _extra_prior_keys(settings) -> set:
+    """Prior keys of the latent-effect models beyond the Gaussian ones (docs/families.md)."""
+    from .models.families import get_family
+
+    if not settings.latent:
+        return set()
+    params = get_family(settings.family).params
+    keys = {"sigma_slope", "lkj_eta"} if settings.random_slopes else set()
+    keys |= {"nu"} if "nu" in params else set()
+    keys |= {"inv_sqrt_shape"} if settings.family == "negative_binomial" else set()
+    return keys
+
+
 def _model_priors(settings, model_cls, labels):
     has_unit = model_cls.unit_effects == "random"
     valid = set(labels) | {"coef", "sigma_obs"} | ({"sigma_unit"} if has_unit else set())
+    valid |= _extra_prior_keys(settings)
     return {k: v for k, v in settings.priors.items() if k in valid} or None
 
 
 def _check_prior_keys(settings, label_sets):
+    from .models.families import get_family
+
     known = set().union(*label_sets.values()) if label_sets else set()
-    known |= {"coef", "sigma_obs", "sigma_unit"}
+    known |= {"coef", "sigma_unit"} | _extra_prior_keys(settings)
+    if "sigma_obs" in get_family(settings.family).params:
+        known.add("sigma_obs")
     for k in settings.priors:
         if k not in known:
             raise SpecificationError(
@@ -720,9 +861,43 @@ def _contrasts(post, design, kind, coef_d, settings, ref):
                                         reference=ref)
 
 
+def _sample_timed(m, settings, progress_bars):
+    """Sample a built model with the run's settings; returns the posterior and seconds."""
+    t0 = time.perf_counter()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # problems are collected from diagnostics() later
+        post = m.sample(draws=settings.draws, tune=settings.tune, chains=settings.chains,
+                        seed=settings.seed, sampler=settings.sampler, progress=progress_bars)
+    return post, time.perf_counter() - t0
+
+
+def _diagnostics_entry(diag) -> dict:
+    """The ``diagnostics`` record of a model entry from ``post.diagnostics()``."""
+    return _floats({"divergences": diag["divergences"], "draws": diag["draws"],
+                    "max_rhat": diag["max_rhat"], "min_ess_bulk": diag["min_ess_bulk"],
+                    "min_ess_tail": diag["min_ess_tail"],
+                    "min_bfmi": float(np.nanmin(diag["bfmi"])) if diag["bfmi"] else None,
+                    "warnings": list(diag["problems"])})
+
+
+def _contrast_entries(ct) -> list:
+    """The ``contrasts`` records of a model entry from a contrasts table."""
+    return [_floats({
+        "covariate": cov_name, "mean": r["mean"], "sd": r["sd"], "lower": r["lower"],
+        "upper": r["upper"], "p_positive": r["P(> 0)"], "p_negative": r["P(< 0)"],
+        "rope": r.get("rope"), "p_rope": r.get("P(in rope)"),
+        "reference_estimate": r.get("reference estimate"),
+        "reference_lower": r.get("reference lower"),
+        "reference_upper": r.get("reference upper")}) for cov_name, r in ct.iterrows()]
+
+
 def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, progress_bars):
     from . import models
 
+    if settings.latent:  # a family other than the Gaussian, or random slopes
+        from .family_stage import bayes_one
+        return bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say,
+                         progress_bars)
     cls = getattr(models, BUILDER_OF[name])
     prob = settings.interval
     large = getattr(design, "out_of_core", False)
@@ -737,12 +912,7 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
             design = m.design
     say(f"sampling {name}: {settings.chains} chains x {settings.draws} draws "
         f"(+{settings.tune} tuning)")
-    t0 = time.perf_counter()
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # problems are collected from diagnostics() below
-        post = m.sample(draws=settings.draws, tune=settings.tune, chains=settings.chains,
-                        seed=settings.seed, sampler=settings.sampler, progress=progress_bars)
-    seconds = time.perf_counter() - t0
+    post, seconds = _sample_timed(m, settings, progress_bars)
     diag = post.diagnostics(warn=False)
     summ = post.summary(prob)
     lo, hi = summ.columns[2], summ.columns[3]
@@ -784,15 +954,7 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             cr = _contrasts(post, design, kind, coef_d, settings, ref_for)
-        ct = cr.table(prob)
-        for cov_name, r in ct.iterrows():
-            contrasts.append(_floats({
-                "covariate": cov_name, "mean": r["mean"], "sd": r["sd"], "lower": r["lower"],
-                "upper": r["upper"], "p_positive": r["P(> 0)"], "p_negative": r["P(< 0)"],
-                "rope": r.get("rope"), "p_rope": r.get("P(in rope)"),
-                "reference_estimate": r.get("reference estimate"),
-                "reference_lower": r.get("reference lower"),
-                "reference_upper": r.get("reference upper")}))
+        contrasts = _contrast_entries(cr.table(prob))
     ppc = [] if large else _ppc(post, design, settings.ppc_draws, settings.seed)
     rel = None
     if out_dir is not None:
@@ -815,11 +977,7 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
                   for q in ("sigma_unit", "sigma_obs", "icc") if q in summ.index],
         "variance_partition": vp,
         "contrasts": contrasts,
-        "diagnostics": _floats({"divergences": diag["divergences"], "draws": diag["draws"],
-                                "max_rhat": diag["max_rhat"], "min_ess_bulk": diag["min_ess_bulk"],
-                                "min_ess_tail": diag["min_ess_tail"],
-                                "min_bfmi": float(np.nanmin(diag["bfmi"])) if diag["bfmi"] else None,
-                                "warnings": list(diag["problems"])}),
+        "diagnostics": _diagnostics_entry(diag),
         "loo": None,
         "ppc": ppc,
     }
@@ -927,8 +1085,8 @@ def _comparison_stage(settings, design, posts, ref_fits, entries, say, failed=No
             fits[name] = lr if lr is not None else post
             titles[name] = BAYES_MODELS[name][0]
     for name, res in ref_fits.items():
-        if name == "between":
-            continue  # one row per unit: it has no predictive density for rows
+        if name == "between" or settings.glm_reference:
+            continue  # between: one row per unit; GLMs: no cross-validation (docs/families.md)
         fits[f"ref:{name}"] = res
         titles[f"ref:{name}"] = REFERENCE_FITS[name][0] + " (ref.)"
     folds = _reference_folds(settings, design)
@@ -945,7 +1103,13 @@ def _comparison_stage(settings, design, posts, ref_fits, entries, say, failed=No
         rec["kind"] = "reference" if str(key).startswith("ref:") else "bayesian"
         rows.append(rec)
     say(f"LOO comparison done: {len(rows)} fits")
-    return {"level": settings.level, "reference_folds": folds, "rows": rows}
+    out = {"level": settings.level, "reference_folds": folds, "rows": rows}
+    if settings.glm_reference and ref_fits:
+        out["note"] = ("the reference GLMs are not scored: they have no cross-validation "
+                       "here, and a pooled GLM's plug-in density would not predict a known "
+                       "unit's occasions as the models do; compare them by their average "
+                       "marginal effects")
+    return out
 
 
 def _truth_by_model(truth, entries, ref_entries):
@@ -1070,11 +1234,21 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
     """Reference fits, tests, Bayesian fits and the comparison -> the results dict."""
     from .report.results_json import SCHEMA_NAME, SCHEMA_VERSION, validate
 
+    from . import family_stage
+
     failed = []
-    ref_fits, ref_entries = _reference_stage(settings, design, say, failed)
+    notes = notes + family_stage.data_checks(settings, panel, design)
     tests = []
-    with _isolated(failed, say, "tests", "Hausman and Mundlak tests", "specification tests"):
-        tests = _tests_stage(design, say)
+    if settings.glm_reference:  # logit and log links: pooled GLMs, their Mundlak test
+        ref_fits, ref_entries, more = family_stage.reference_stage(settings, panel, design, say)
+        notes = notes + more
+        with _isolated(failed, say, "tests", "Mundlak test (GLM)", "specification tests"):
+            tests = family_stage.tests_stage(ref_fits, panel, design, settings, say)
+    else:
+        ref_fits, ref_entries = _reference_stage(settings, design, say, failed)
+        with _isolated(failed, say, "tests", "Hausman and Mundlak tests",
+                       "specification tests"):
+            tests = _tests_stage(design, say)
     labels = {}
     for name in settings.models:
         try:

@@ -318,8 +318,13 @@ def loo(post, level="occasion", *, refit_high_k=False, max_refits=10, refit_kwar
     elif len(high):
         who = _describe_points(pw.iloc[high], level, names=fd.names)
         msg = (f"Pareto k above {good_k:.2f} for {len(high)} of {len(pw)} points at the "
-               f"{level} level ({who}); the PSIS estimate may be biased for them. Use "
-               "refit_high_k=True for exact refits, or bp.loo.kfold")
+               f"{level} level ({who}); the PSIS estimate may be biased for them. "
+               + ("Exact refits and K-fold are not available for latent-effect models; at "
+                  "the unit level each unit's effects are integrated out and k is usually "
+                  "lower" if fd.latent is not None and level == "occasion" else
+                  "Exact refits and K-fold are not available for latent-effect models"
+                  if fd.latent is not None else
+                  "Use refit_high_k=True for exact refits, or bp.loo.kfold"))
         warnings.warn(msg, SamplingWarning, stacklevel=2)
         notes.append(f"{len(high)} point(s) with Pareto k > {good_k:.2f}: {who}")
     elpd, se, p = _summary(pw["elpd"].to_numpy(), lpd_i)

@@ -57,6 +57,9 @@ __all__ = [
     "latent_residual_variance",
     "icc_latent_draws",
     "ame_draws",
+    "effect_weights",
+    "ppc_statistics",
+    "ppc_p_value",
     "icc_latent",
     "average_marginal_effects",
     "ppc_summary",
@@ -385,6 +388,30 @@ def ame_draws(family, eta, tau, weights, b, params=None, *, trials=None, log_exp
     return slope * avg[:, None]
 
 
+def effect_weights(labels, kind):
+    """Names and coefficient weights of the effects reported on the outcome scale: every
+    term but the intercept; in a Mundlak design (``kind="mundlak"``) ``x (within)`` =
+    ``b_x`` and ``x (between)`` = ``b_x + b_{x (unit mean)}``. Returns ``(names, W)`` with
+    ``W`` of shape ``(E, k)``."""
+    labels = list(labels)
+    names, rows, k = [], [], len(labels)
+    for j, lab in enumerate(labels):
+        if lab == "Intercept" or lab.endswith(" (unit mean)"):
+            continue
+        w = np.zeros(k)
+        w[j] = 1.0
+        if kind == "mundlak" and f"{lab} (unit mean)" in labels:
+            names.append(f"{lab} (within)")
+            rows.append(w.copy())
+            w[labels.index(f"{lab} (unit mean)")] = 1.0
+            names.append(f"{lab} (between)")
+            rows.append(w)
+            continue
+        names.append(lab)
+        rows.append(w)
+    return names, np.array(rows).reshape(-1, k)
+
+
 # ---------------------------------------------------------------------------- labelled skins
 def _interval_table(draws: pd.DataFrame, prob: float) -> pd.DataFrame:
     lo, hi = (1 - prob) / 2, 1 - (1 - prob) / 2
@@ -425,36 +452,94 @@ def average_marginal_effects(post, prob: float = 0.9, max_draws: int = 400) -> p
         "average marginal effect (outcome scale)")
 
 
-def _ppc_statistics(fam: Family, y, T_codes, trials=None):
-    """Discrepancy statistics suited to the family (columns of the PPC table)."""
-    y = np.atleast_2d(y)
+def _unit_means_rows(y, codes):
+    T = np.bincount(codes)
+    return np.stack([np.bincount(codes, weights=r) / T for r in y])
+
+
+def ppc_statistics(family, y, yrep, unit_codes, *, trials=None, occasion_codes=None):
+    """Discrepancy statistics suited to the family and to the observed outcome's range.
+
+    The set is chosen from the observed outcome, so that no statistic is trivially
+    outside the replicated range (counts in the hundreds are not asked for their share of
+    ones): binary outcomes get the rate of ones, its spread over occasions and units, the
+    shares of units never and always 1 and the switching rate (the share of consecutive
+    occasions of a unit whose outcomes differ: a check of persistence); binomial outcomes the success rate, the spread of row and unit rates and the
+    shares of rows with no or all successes (each only when such rows occur); counts the
+    mean, the variance-to-mean ratio (dispersion), the share of zeros (only when zeros
+    occur) and the 10%, 50% and 90% quantiles; continuous outcomes the mean, SD and tail
+    quantiles. Every family also gets the SD of the unit means and the SD within units.
+
+    Parameters
+    ----------
+    y : array (n,)
+        Observed outcome, rows sorted by unit (and by occasion within units).
+    yrep : array (S, n)
+        Replicated outcomes.
+    unit_codes : array (n,)
+    trials : array (n,) or None
+    occasion_codes : array (n,) of ints or None
+        Occasion of each row (0..T-1), for the spread of occasion rates.
+
+    Returns
+    -------
+    list of (label, observed float, replicated array (S,))
+    """
+    fam = get_family(family)
+    y = np.asarray(y, dtype=float)
+    yrep = np.atleast_2d(np.asarray(yrep, dtype=float))
+    codes = np.asarray(unit_codes)
+    both = np.vstack([y[None, :], yrep])
     out = {}
+    rate = both / np.asarray(trials, dtype=float) if fam.name == "binomial" else both
+    unit_mean = _unit_means_rows(rate, codes)
     if fam.name == "bernoulli":
-        out["rate of ones"] = y.mean(axis=1)
-        T = np.bincount(T_codes)
-        unit_rate = np.stack([np.bincount(T_codes, weights=r) / T for r in y])
-        out["share of units never 1"] = (unit_rate == 0).mean(axis=1)
-        out["share of units always 1"] = (unit_rate == 1).mean(axis=1)
-        out["SD of unit rates"] = unit_rate.std(axis=1)
+        out["rate of ones"] = both.mean(axis=1)
+        if occasion_codes is not None and len(np.unique(occasion_codes)) > 1:
+            oc = np.asarray(occasion_codes)
+            out["SD of occasion rates"] = _unit_means_rows(both, oc).std(axis=1)
+        out["share of units never 1"] = (unit_mean == 0).mean(axis=1)
+        out["share of units always 1"] = (unit_mean == 1).mean(axis=1)
+        same = codes[1:] == codes[:-1]
+        if same.any():
+            out["switching rate"] = (
+                both[:, 1:][:, same] != both[:, :-1][:, same]).mean(axis=1)
     elif fam.name == "binomial":
         n = np.asarray(trials, dtype=float)
-        out["overall success rate"] = y.sum(axis=1) / n.sum()
-        out["share of rows with no success"] = (y == 0).mean(axis=1)
-        out["share of rows all successes"] = (y == n).mean(axis=1)
-        out["SD of row rates"] = (y / n).std(axis=1)
+        out["overall success rate"] = both.sum(axis=1) / n.sum()
+        out["SD of row rates"] = rate.std(axis=1)
+        if (y == 0).any():
+            out["share of rows with no success"] = (both == 0).mean(axis=1)
+        if (y == n).any():
+            out["share of rows all successes"] = (both == n).mean(axis=1)
     elif fam.discrete:
-        out["mean count"] = y.mean(axis=1)
-        out["variance of counts"] = y.var(axis=1)
-        for c in range(3):
-            out[f"share of {c}s"] = (y == c).mean(axis=1)
-        out["share of 3 or more"] = (y >= 3).mean(axis=1)
-        out["maximum"] = y.max(axis=1)
+        out["mean count"] = both.mean(axis=1)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out["variance-to-mean ratio"] = both.var(axis=1) / both.mean(axis=1)
+        if (y == 0).any():
+            out["share of zeros"] = (both == 0).mean(axis=1)
+        for q in (0.1, 0.5, 0.9):
+            out[f"quantile {q:g}"] = np.quantile(both, q, axis=1)
     else:
-        out["mean"] = y.mean(axis=1)
-        out["SD"] = y.std(axis=1)
+        out["mean"] = both.mean(axis=1)
+        out["SD"] = both.std(axis=1)
         for q in (0.01, 0.5, 0.99):
-            out[f"quantile {q:g}"] = np.quantile(y, q, axis=1)
-    return out
+            out[f"quantile {q:g}"] = np.quantile(both, q, axis=1)
+    if len(np.unique(codes)) > 1:
+        out["SD of unit means" if fam.name != "bernoulli" else "SD of unit rates"] = \
+            unit_mean.std(axis=1, ddof=1)
+    dev = rate - unit_mean[:, codes]
+    if len(codes) > len(np.unique(codes)):
+        out["SD within units"] = np.sqrt((dev ** 2).sum(axis=1) / (len(codes) - 1))
+    return [(k, float(v[0]), v[1:]) for k, v in out.items() if np.all(np.isfinite(v))]
+
+
+def ppc_p_value(observed, replicated) -> float:
+    """Posterior predictive p-value ``P(replicated > observed) + P(replicated = observed)
+    / 2`` (ties count half, so a discrete statistic that the model reproduces exactly is
+    not flagged; for continuous statistics this is ``P(replicated >= observed)``)."""
+    r = np.asarray(replicated, dtype=float)
+    return float((r > observed).mean() + 0.5 * (r == observed).mean())
 
 
 def ppc_summary(post, draws: int = 400, seed: int = 0, prob: float = 0.9) -> pd.DataFrame:
@@ -471,16 +556,17 @@ def ppc_summary(post, draws: int = 400, seed: int = 0, prob: float = 0.9) -> pd.
     eta = post.linear_predictor(include_units=True, max_draws=draws, seed=seed)
     params = {k: post.flat_draws(k, draws)[:, None] for k in fam.params}
     yrep = simulate(fam, rng, eta, params, trials=post.trials, log_exposure=post.log_exposure)
-    obs = _ppc_statistics(fam, post.y, post.unit_codes, post.trials)
-    rep = _ppc_statistics(fam, yrep, post.unit_codes, post.trials)
+    occ = None
+    if getattr(post, "time", None) is not None:
+        occ = pd.factorize(np.asarray(post.time))[0]
+    checks = ppc_statistics(fam, post.y, yrep, post.unit_codes, trials=post.trials,
+                            occasion_codes=occ)
     lo, hi = (1 - prob) / 2, 1 - (1 - prob) / 2
     pct = f"{100 * prob:g}%"
     rows = {}
-    for name in obs:
-        r = rep[name]
-        o = float(obs[name][0])
+    for name, o, r in checks:
         rows[name] = {"observed": o, "replicated mean": r.mean(),
                       f"replicated lower {pct}": np.quantile(r, lo),
                       f"replicated upper {pct}": np.quantile(r, hi),
-                      "p (replicated >= observed)": float((r >= o).mean())}
+                      "p (replicated >= observed)": ppc_p_value(o, r)}
     return pd.DataFrame(rows).T.rename_axis(f"posterior predictive check ({fam.name})")

@@ -680,22 +680,7 @@ class LatentPosterior(_posterior_cls()):
         """Names and coefficient weights of the effects reported by
         :meth:`average_marginal_effects`: every term but the intercept; for a Mundlak
         design ``x (within)`` = ``b_x`` and ``x (between)`` = ``b_x + b_{x (unit mean)}``."""
-        names, rows, k = [], [], len(self.labels)
-        for j, lab in enumerate(self.labels):
-            if lab == "Intercept" or lab.endswith(" (unit mean)"):
-                continue
-            w = np.zeros(k)
-            w[j] = 1.0
-            if self.spec.kind == "mundlak" and f"{lab} (unit mean)" in self.labels:
-                names.append(f"{lab} (within)")
-                rows.append(w.copy())
-                w[self.labels.index(f"{lab} (unit mean)")] = 1.0
-                names.append(f"{lab} (between)")
-                rows.append(w)
-                continue
-            names.append(lab)
-            rows.append(w)
-        return names, np.array(rows).reshape(-1, k)
+        return fam_mod.effect_weights(self.labels, self.spec.kind)
 
     def linear_predictor(self, include_units=True, max_draws=400, seed=0):
         """``eta`` per draw and row, ``(S, n)``, without the exposure offset; with the unit

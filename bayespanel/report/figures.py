@@ -171,7 +171,10 @@ def icc_figure(results: dict):
         pad = 0.08 * max(hi - lo, 0.05)
         ax.set_xlim(max(0.0, lo - pad), min(1.0, hi + pad))
         ax.set_ylim(bottom=0)
-        ax.set_xlabel("ICC = sigma_unit² / (sigma_unit² + sigma_obs²)")
+        latent = any((m["variance_partition"] or {}).get("scale", "").startswith("latent")
+                     for m in models)
+        ax.set_xlabel("ICC on the latent scale = sigma_unit² / (sigma_unit² + s²)" if latent
+                      else "ICC = sigma_unit² / (sigma_unit² + sigma_obs²)")
         ax.set_ylabel("posterior density")
         ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0))
         fig.tight_layout()

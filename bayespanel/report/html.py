@@ -14,7 +14,7 @@ import html as _html
 import math
 from importlib import resources
 
-from . import figures, tables
+from . import family_report, figures, tables
 from .text import CAUTION, LEVEL_TEXT
 
 __all__ = ["Safe", "esc", "fmt", "render", "SECTIONS"]
@@ -24,6 +24,7 @@ SECTIONS = [
     ("data", "The data"),
     ("models", "The models and what they assume"),
     ("coefficients", "Coefficients side by side"),
+    ("effects", "Effects on the outcome scale"),
     ("partition", "Variance between and within units"),
     ("contrasts", "Within versus between"),
     ("comparison", "Predictive comparison"),
@@ -142,7 +143,7 @@ def _overview(r) -> Safe:
     box = tag("div", *[tag("div", tag("b", fmt(v)), tag("small", k), cls="bp-fact")
                        for v, k in facts], cls="bp-keyfacts")
     parts = [box, tag("p", "Outcome ", tag("code", d["outcome"]), ", formula ",
-                      tag("code", d["formula"]), ".")]
+                      tag("code", d["formula"]), ".", family_report.overview_text(r))]
     comp = r.get("comparison") or {}
     best = [row for row in comp.get("rows", []) if row.get("elpd_diff") == 0]
     if best:
@@ -213,9 +214,10 @@ def _data(r) -> Safe:
 def _models(r) -> Safe:
     cards = [tag("div", tag("h3", tag("span", "Bayesian", cls="bp-tag bayes"), m["title"]),
                  tag("p", m["assumptions"]), cls="bp-card") for m in r["models"]]
+    glm = any(f.get("estimator") == "glm" for f in r["reference"])
     out = [tag("p", "Bayesian models are sampled with the priors listed below; reference "
-               "fits are closed-form frequentist estimates on exactly the same rows.",
-               cls="bp-lead")]
+               "fits are " + ("maximum-likelihood" if glm else "closed-form") + " frequentist "
+               "estimates on exactly the same rows.", cls="bp-lead")]
     if cards:
         out.append(tag("div", *cards, cls="bp-models"))
     out += [_failed_note(f) for f in r.get("failed") or []
@@ -263,7 +265,7 @@ def _coefficients(r) -> Safe:
                "estimand: a within part is not comparable with a pooled coefficient."
                + (" The simulated demo's true values are in the last column, where the "
                   "model's parametrisation has one." if truth else ""), cls="bp-lead"),
-           table(heads, body)]
+           family_report.coefficient_note(r), table(heads, body)]
     out.append(figure(figures.coefficient_figure(r), "coefficient intervals by model",
                       f"Estimates and {_pct(prob)} intervals; Bayesian models in lagoon "
                       "(circles), reference fits in clay (squares)"
@@ -274,9 +276,10 @@ def _coefficients(r) -> Safe:
 
 def _partition(r) -> Safe:
     prob = r["settings"]["interval"]
-    out = [tag("p", "How much of the outcome's variance lies between units. The ICC is "
-               "sigma_unit^2 / (sigma_unit^2 + sigma_obs^2): the share of residual variance "
-               "due to stable unit differences.", cls="bp-lead")]
+    out = [family_report.partition_lead(r) or tag(
+        "p", "How much of the outcome's variance lies between units. The ICC is "
+        "sigma_unit^2 / (sigma_unit^2 + sigma_obs^2): the share of residual variance "
+        "due to stable unit differences.", cls="bp-lead")]
     any_vp = False
     for m in r["models"]:
         vp = m.get("variance_partition")
@@ -286,6 +289,8 @@ def _partition(r) -> Safe:
         rows = [[q["quantity"], q["mean"], q["median"], q["sd"], Safe(esc(_interval(q["lower"], q["upper"])))]
                 for q in vp["summary"]]
         out.append(tag("h3", m["title"]))
+        if vp.get("scale"):
+            out.append(tag("p", "Scale: ", vp["scale"], ".", cls="bp-lead"))
         out.append(table(["quantity", "mean", "median", "SD", f"{_pct(prob)} interval"], rows))
         if vp.get("theta"):
             trs = [[f"T = {t['length']}", t["mean"], Safe(esc(_interval(t["lower"], t["upper"])))]
@@ -321,7 +326,7 @@ def _contrasts(r) -> Safe:
                "covariate, with the probability of each sign and of a practically null "
                "difference (inside the ROPE, when one is set). The random-intercept model "
                "assumes it is zero; the reference tests below ask the same question.",
-               cls="bp-lead")]
+               family_report.contrast_scale(r), cls="bp-lead")]
     rows = []
     for m in r["models"]:
         for c in m.get("contrasts") or []:
@@ -356,11 +361,14 @@ def _comparison(r) -> Safe:
     out = [note("info", f"Level: {LEVEL_TEXT.get(level, level)}.", "What is compared."),
            tag("p", "ELPD is the expected log predictive density (higher is better); "
                "differences are to the best model with the SE of the paired difference. "
-               "Bayesian models use PSIS-LOO; reference fits enter through "
-               + ("exact leave-one-out refits" if comp.get("reference_folds") is None else
-                  f"grouped {comp['reference_folds']}-fold cross-validation")
-               + " with plug-in predictive densities, scored on the same points.",
+               "Bayesian models use PSIS-LOO"
+               + ("." if comp.get("note") else "; reference fits enter through "
+                  + ("exact leave-one-out refits" if comp.get("reference_folds") is None else
+                     f"grouped {comp['reference_folds']}-fold cross-validation")
+                  + " with plug-in predictive densities, scored on the same points."),
                cls="bp-lead")]
+    if comp.get("note"):
+        out.append(note("info", comp["note"] + ".", "Reference fits."))
     def _note(text):
         text = text or ""
         return "" if text.startswith("exact CV with closed-form refits") else text
@@ -455,6 +463,7 @@ def _rerun(r) -> Safe:
 
 _BUILDERS = {
     "overview": _overview, "data": _data, "models": _models, "coefficients": _coefficients,
+    "effects": lambda r: family_report.effects(r),
     "partition": _partition, "contrasts": _contrasts, "comparison": _comparison,
     "diagnostics": _diagnostics, "checks": _checks,
     "caution": lambda r: note("caution", CAUTION, "Associations, not effects."),

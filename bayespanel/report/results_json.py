@@ -26,7 +26,7 @@ __all__ = [
 ]
 
 SCHEMA_NAME = "bayespanel-results"
-SCHEMA_VERSION = "1.0.0"
+SCHEMA_VERSION = "1.1.0"
 
 
 def jsonable(obj):
