@@ -17,10 +17,12 @@ import numpy as np
 import pandas as pd
 
 from . import suffstats as _ss
-from .errors import DataHandlingWarning, EstimationError, FormulaError, PanelDataError, choices_error
+from .errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
+                     SpecificationError, choices_error)
 from .formula import safe_context, screen
 
-__all__ = ["Design", "DesignSpec", "KINDS", "group_means", "kind_transform", "check_stats"]
+__all__ = ["Design", "DesignSpec", "KINDS", "group_means", "kind_transform", "check_stats",
+           "check_terms", "check_flag", "refuse_complex"]
 
 KINDS = ("pooled", "random", "within", "between", "mundlak", "within_between")
 _VARY_TOL = 1e-10
@@ -41,6 +43,44 @@ class DesignSpec:
 
 def _plain(v):
     return v.item() if isinstance(v, np.generic) else v
+
+
+def check_flag(option: str, value) -> bool:
+    """``value`` as a bool if it is one (Python or numpy); anything else, such as the
+    text ``"no"`` (which is true in Python), is a :class:`SpecificationError`."""
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    raise SpecificationError(f"{option}={value!r} must be True or False")
+
+
+def refuse_complex(column: str, dtype) -> None:
+    """Refuse a column of complex numbers (converting it to real would drop a part)."""
+    if pd.api.types.is_complex_dtype(dtype):
+        raise PanelDataError(
+            f"column {column!r} holds complex numbers (dtype {dtype}); the models need real "
+            "numbers: use its real part, its modulus or two columns")
+
+
+def check_terms(terms, formula: str) -> None:
+    """Refuse a design whose term labels repeat or take a label the package makes.
+
+    Column names are screened (:func:`bayespanel.formula.reserved_name`); this catches
+    labels formulaic builds that equal a column's name (a column named ``log(x)`` beside
+    the transform ``log(x)``), which would give two coefficients one name.
+    """
+    from .formula import reserved_name
+
+    seen = set()
+    for j, t in enumerate(terms):
+        if t in seen:
+            raise FormulaError(
+                f"formula {formula!r} gives two terms the label {t!r} (a column of that "
+                "name and a term formulaic builds); rename the column")
+        seen.add(t)
+        if reserved_name(t) is not None and not (t == "Intercept" and j == 0):
+            raise FormulaError(
+                f"formula {formula!r} makes a term labelled {t!r}, the label bayespanel "
+                f"gives to {reserved_name(t)}; rename the column or the level behind it")
 
 
 def group_means(M: np.ndarray, starts: np.ndarray, counts: np.ndarray) -> np.ndarray:
@@ -365,6 +405,7 @@ class Design:
         """
         from formulaic import Formula
 
+        occasion_effects = check_flag("occasion_effects", occasion_effects)
         frame = panel._df
         screened = screen(formula, panel.columns)
         used = [c for c in screened.columns if c not in (panel.unit, panel.time)]
@@ -378,6 +419,7 @@ class Design:
         if panel.time in screened.columns:
             used.append(panel.time)  # a trend or C(time) is allowed
         for c in used:
+            refuse_complex(c, frame[c].dtype)
             if _numeric(frame[c]) or pd.api.types.is_bool_dtype(frame[c]):
                 continue
             in_c = re.search(r"C\(\s*`?" + re.escape(c) + r"`?\s*[,)]", screened.rhs)
@@ -432,6 +474,7 @@ class Design:
             extra = list(np.sort(pd.unique(time))[1:])
         if plain is not None:
             terms = ["Intercept" if c is None else c for c in plain]
+            check_terms(terms, formula)
             X = np.empty((n, len(terms) + len(extra)))
             for j, c in enumerate(plain):
                 if c is None:
@@ -452,8 +495,14 @@ class Design:
                 raise FormulaError(f"cannot build the design for {formula!r}: {exc}") from None
             del sub
             terms = [str(c) for c in mm.columns]
+            check_terms(terms, formula)
             X = np.empty((n, len(terms) + len(extra)))
-            X[:, :len(terms)] = np.asarray(mm, dtype=float)
+            for j, t in enumerate(terms):
+                try:
+                    X[:, j] = np.asarray(mm.iloc[:, j], dtype=float)
+                except (TypeError, ValueError) as exc:
+                    raise FormulaError(f"term {t!r} of formula {formula!r} is not numeric: "
+                                       f"{exc}") from None
             del mm
         k0 = len(terms)
         for j, o in enumerate(extra):
@@ -467,7 +516,8 @@ class Design:
                 pos = r if idx is None else int(idx[r])
                 raise PanelDataError(
                     f"term {terms[j]!r} is not finite at {panel.unit}="
-                    f"{frame[panel.unit].iloc[pos]!r}, {panel.time}={frame[panel.time].iloc[pos]!r}"
+                    f"{_plain(frame[panel.unit].iloc[pos])!r}, "
+                    f"{panel.time}={_plain(frame[panel.time].iloc[pos])!r}"
                     " (a transform such as log of a non-positive value?)"
                 )
         stats = _check_columns(X, y, terms, screened.outcome, units_codes)

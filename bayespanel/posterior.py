@@ -237,11 +237,11 @@ class Posterior:
         ``(chain, draw, ...)``.
         """
         post = self.idata["posterior"]
-        if name in post.data_vars:
-            return np.asarray(post[name].values)
-        if name in self.labels:
+        if name in self.labels:  # first: a column may share a name with an inner variable
             j = self.labels.index(name)
             return np.asarray(post["coef"].values[:, :, j])
+        if name in post.data_vars:
+            return np.asarray(post[name].values)
         raise SpecificationError(
             f"no draws named {name!r}; choose a variable ({', '.join(post.data_vars)}) or a "
             f"term ({', '.join(self.labels)})")

@@ -168,3 +168,214 @@ def test_design_check_occasion_and_sensitivity_figures_render_dollars(dollar_run
         _, fig = sensitivity_section(post)
         assert _png(fig)[:4] == b"\x89PNG"
     plt.close("all")
+
+
+# ---------------------------------------------------------------------- exhausting formulas
+_ROUTES_SCRIPT = r'''
+import json, resource, sys, warnings
+limit = int(sys.argv[1]) << 20
+resource.setrlimit(resource.RLIMIT_AS, (limit, limit))
+warnings.simplefilter("ignore")
+import dask.dataframe as dd
+import pandas as pd
+import bayespanel as bp
+from bayespanel.cli import main
+from bayespanel.errors import FormulaError
+
+csv, formulas = sys.argv[2], json.loads(open(sys.argv[3]).read())
+df = pd.read_csv(csv)
+panel = bp.Panel(df, "firm", "year")
+dpanel = bp.Panel(dd.from_pandas(df, npartitions=2), "firm", "year", client="synchronous")
+routes = {
+    "design": lambda f: panel.design(f),
+    "reference": lambda f: bp.reference.pooled(panel, f),
+    "builder": lambda f: bp.models.RandomIntercept(panel, f),
+    "dask": lambda f: dpanel.design(f),
+}
+for f in formulas:
+    for name, call in routes.items():
+        try:
+            call(f)
+            out = "accepted"
+        except FormulaError as exc:
+            out = "FormulaError: " + str(exc)
+        except BaseException as exc:
+            out = f"{type(exc).__name__}: {exc}"[:300]
+        print(json.dumps([f[:60], name, out]), flush=True)
+    rc = main(["fit", csv, "--unit", "firm", "--time", "year", "--formula", f,
+               "--out", sys.argv[4], "--quiet", "--models", "none", "--reference", "pooled"])
+    print(json.dumps([f[:60], "command line", rc]), flush=True)
+'''
+
+EXHAUSTING = {
+    # formula -> what the refusal must name
+    "invest ~ I(value + 9**9**9)": r"computes a whole number too large .*'constant_digits'",
+    "invest ~ (value + capital + c1 + c2)**12": r"power 12.*'interaction_order'",
+    "invest ~ value + I('a'*10**10)": r"text and tuples cannot enter arithmetic",
+    "invest ~ value + I((1,)*10**10)": r"text and tuples cannot enter arithmetic",
+    "invest ~ value + I('%0999999999d' % 1)": r"text and tuples cannot enter arithmetic",
+    "invest ~ value + I(" + "np.square(" * 12 + "10**30" + ")" * 13:
+        r"'constant_digits'",
+    "invest ~ " + " + ".join(f"I(value + {i})" for i in range(20_000)):
+        r"has 368,896 characters; the limit is 20,000",
+    "invest ~ " + " + ".join(f"I(value+{i})" for i in range(1_200)):
+        r"generates too many terms \(1,001\); the limit is 1,000",
+    "invest ~ (value + capital)*(c1 + c2)*(" + " + ".join(f"I(value*{i})" for i in range(300))
+    + ")": r"makes too many products|generates too many terms",
+    "invest ~ value*capital*c1*c2*c3*c4*c5": r"7 variables\); the limit is 6",
+}
+
+
+def test_formulas_that_would_exhaust_the_machine_are_refused_on_every_route(grunfeld,
+                                                                          tmp_path):
+    """Each formula goes through Panel.design, a reference fit, a Bayesian builder, the
+    Dask design and ``bayespanel fit``, in a subprocess capped at 2 GB of address space
+    (``resource.setrlimit``) and 180 s: every route must refuse with a FormulaError naming
+    the piece and the limit (today's behaviour was to run for ever or ask for 10 GB)."""
+    import subprocess
+    import sys
+
+    df = grunfeld.assign(c1=lambda d: d["value"] ** 0.5, c2=lambda d: d["capital"] ** 0.5,
+                         c3=lambda d: np.log(d["value"]), c4=lambda d: np.log(d["capital"]),
+                         c5=lambda d: d["value"] * 0 + np.arange(len(d)) % 7)
+    csv = tmp_path / "g.csv"
+    df.to_csv(csv, index=False)
+    env = {**__import__("os").environ, "OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1"}
+    (tmp_path / "formulas.json").write_text(json.dumps(list(EXHAUSTING)))
+    proc = subprocess.run([sys.executable, "-c", _ROUTES_SCRIPT, "2048", str(csv),
+                           str(tmp_path / "formulas.json"), str(tmp_path / "out")],
+                          capture_output=True, text=True, timeout=180, env=env)
+    lines = [json.loads(x) for x in proc.stdout.splitlines() if x.startswith("[")]
+    assert len(lines) == 5 * len(EXHAUSTING), (proc.stdout[-2000:], proc.stderr[-2000:])
+    for (f, route, out), (formula, pattern) in zip(lines, [(f, p) for f, p in
+                                                          EXHAUSTING.items() for _ in range(5)]):
+        if route == "command line":
+            assert out == 2, (f, out)
+            continue
+        assert out.startswith("FormulaError: "), (f, route, out)
+        assert re.search(pattern, out), (f, route, out)
+    # the command line printed the same refusals, one line each, without a traceback
+    assert "Traceback" not in proc.stderr
+    assert proc.stderr.count("bayespanel: error: ") == len(EXHAUSTING)
+
+
+def test_limits_leave_real_formulas_alone_and_count_terms_as_formulaic_does():
+    """Formulas within the limits pass, and the screen's count of terms equals formulaic's
+    own expansion (outside check: ``formulaic.Formula``) on formulas up to the limits."""
+    from formulaic import Formula
+
+    from bayespanel.formula import LIMITS, _check_cost, screen
+
+    cols = ["y"] + list("abcdefgh")
+    for rhs in ["a + b", "a*b*c", "(a + b + c + d)**3", "(a + b + c + d)**6", "a/b",
+                "(a + b)/c", "a:b + c - 1", "0 + a*b", "a*b - a:b", "(a + b)*(c + d + e)",
+                "a*b*c*d*e*f", "I(a**2) + np.log(b) + C(c) + poly(d, degree=3)",
+                "(a + b + c + d + e + f + g + h)**2", "center(a) * scale(b)"]:
+        screen(f"y ~ {rhs}", cols)
+        assert _check_cost(rhs, rhs, {}) == len(list(Formula(rhs))), rhs
+    assert LIMITS["terms"] >= 1000 and LIMITS["interaction_order"] >= 6
+
+
+# ---------------------------------------------------------------------- names that clash
+CLASHING = ["Intercept", "value (within)", "value (between)", "value (unit mean)",
+            "occasion[1940]", "sigma_obs", "sigma_unit", "icc", "coef", "unit_effect",
+            "shape", "sigma_slope[value]", "corr[Intercept, value]"]
+
+
+def _routes(df, formula):
+    """The in-memory design, a reference fit, a Bayesian builder and the Dask design."""
+    import dask.dataframe as dd
+
+    panel = bp.Panel(df, UNIT, TIME)
+    dpanel = bp.Panel(dd.from_pandas(df, npartitions=2), UNIT, TIME, client="synchronous")
+    return {"design": lambda: panel.design(formula),
+            "reference": lambda: bp.reference.within(panel, formula),
+            "builder": lambda: bp.models.WithinBetween(panel, formula),
+            "dask": lambda: dpanel.design(formula)}
+
+
+def _cli_fit(df, formula, tmp_path, capsys):
+    from bayespanel.cli import main
+
+    path = tmp_path / "panel.csv"
+    df.to_csv(path, index=False)
+    rc = main(["fit", str(path), "--unit", UNIT, "--time", TIME, "--formula", formula,
+               "--out", str(tmp_path / "out"), "--quiet", "--models", "none"])
+    return rc, capsys.readouterr().err
+
+
+@pytest.mark.parametrize("name", CLASHING)
+def test_a_column_named_like_a_generated_label_is_refused_on_every_route(grunfeld, name,
+                                                                         tmp_path, capsys):
+    from bayespanel.errors import FormulaError
+
+    df = grunfeld.rename(columns={"value": name})
+    formula = f"invest ~ `{name}` + capital"
+    for route, call in _routes(df, formula).items():
+        with pytest.raises(FormulaError, match=re.escape(f"column {name!r} has the name "
+                                                         "bayespanel gives to")):
+            call()
+    rc, err = _cli_fit(df, formula, tmp_path, capsys)
+    assert rc == 2 and f"column {name!r} has the name bayespanel gives to" in err
+    assert not (tmp_path / "out" / "results.json").exists()
+
+
+def test_the_renamed_column_gives_the_answer_of_statsmodels_and_linearmodels(grunfeld):
+    """What the refusal asks for (rename the column) gives the right numbers: outside
+    checks statsmodels OLS (pooled) and linearmodels PanelOLS (within) on the column."""
+    import statsmodels.api as sm
+    from linearmodels.panel import PanelOLS
+
+    df = grunfeld.rename(columns={"value": "intercept_shift"})
+    panel = bp.Panel(df, UNIT, TIME)
+    f = "invest ~ intercept_shift + capital"
+    pooled = bp.reference.pooled(panel, f)
+    ols = sm.OLS(df["invest"], sm.add_constant(df[["intercept_shift", "capital"]])).fit()
+    assert list(pooled.coef.index) == ["Intercept", "intercept_shift", "capital"]
+    np.testing.assert_allclose(pooled.coef.to_numpy(), ols.params.to_numpy(), rtol=1e-10)
+    d = df.set_index([UNIT, TIME])
+    fe = PanelOLS(d["invest"], d[["intercept_shift", "capital"]], entity_effects=True).fit()
+    within = bp.reference.within(panel, f)
+    np.testing.assert_allclose(within.coef.to_numpy(), fe.params.to_numpy(), rtol=1e-8)
+
+
+def test_a_column_named_like_an_inner_posterior_variable_gets_its_own_draws(grunfeld):
+    """A covariate named ``sigma_obs_std`` (an inner variable of the sampled graph) used
+    to read that variable's draws as its own. Its summary row is now its coefficient:
+    outside check, the REML estimate of statsmodels MixedLM on the same data."""
+    import statsmodels.formula.api as smf
+
+    df = grunfeld.rename(columns={"value": "sigma_obs_std"})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        post = bp.models.RandomIntercept(bp.Panel(df, UNIT, TIME),
+                                         "invest ~ sigma_obs_std + capital").sample(
+            draws=150, tune=150, chains=2, seed=2, progress=False)
+    row = post.summary().loc["sigma_obs_std"]
+    assert row["mean"] == pytest.approx(post.coef["sigma_obs_std"], rel=1e-12)
+    ml = smf.mixedlm("invest ~ sigma_obs_std + capital", df, groups=UNIT).fit(reml=True)
+    assert abs(row["mean"] - ml.params["sigma_obs_std"]) < 4 * row["sd"]
+
+
+def test_a_column_equal_to_a_term_formulaic_builds_is_refused(grunfeld):
+    from bayespanel.errors import FormulaError
+
+    df = grunfeld.assign(**{"np.log(value)": np.log(grunfeld["value"]) + 1.0})
+    with pytest.raises(FormulaError, match=r"uses the column `np\.log\(value\)` and the transform"):
+        bp.Panel(df, UNIT, TIME).design("invest ~ np.log(value) + `np.log(value)`")
+
+
+@pytest.mark.parametrize("formula", ["invest ~ invest + value", "invest ~ value + np.log(invest)",
+                                     "invest ~ I(invest * 2) + capital"])
+def test_the_outcome_among_the_covariates_is_refused_on_every_route(grunfeld, formula,
+                                                                   tmp_path, capsys):
+    """Today's answer was a coefficient of 1 with a standard error of 0 (statsmodels OLS
+    of a variable on itself gives the same: the fit is perfect and says nothing)."""
+    from bayespanel.errors import FormulaError
+
+    expected = "the outcome's column 'invest' is also among the covariates"
+    for route, call in _routes(grunfeld, formula).items():
+        with pytest.raises(FormulaError, match=expected):
+            call()
+    rc, err = _cli_fit(grunfeld, formula, tmp_path, capsys)
+    assert rc == 2 and expected in err

@@ -44,7 +44,7 @@ import numpy as np
 import pandas as pd
 
 from .. import suffstats
-from ..design import KINDS, Design, DesignSpec, check_stats
+from ..design import KINDS, Design, DesignSpec, check_flag, check_stats, check_terms, refuse_complex
 from ..errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
                       SpecificationError, choices_error)
 from ..formula import safe_context, screen
@@ -448,6 +448,7 @@ class DaskDesign:
     """
 
     def __init__(self, panel: DaskPanel, formula: str, occasion_effects=False, cluster=False):
+        occasion_effects = check_flag("occasion_effects", occasion_effects)
         self.panel = panel
         self.spec = DesignSpec(formula=formula, unit=panel.unit, time=panel.time,
                                occasion_effects=bool(occasion_effects))
@@ -476,6 +477,7 @@ class DaskDesign:
                 "(FixedEffects, RandomIntercept), not from the formula")
         used = [c for c in screened.columns if c not in (p.unit,)]
         for c in used:
+            refuse_complex(c, dt[c])
             if not (pd.api.types.is_numeric_dtype(dt[c]) or pd.api.types.is_bool_dtype(dt[c])):
                 raise PanelDataError(
                     f"column {c!r} is not numeric (dtype {dt[c]}); "
@@ -491,6 +493,7 @@ class DaskDesign:
         except Exception as exc:
             raise FormulaError(f"cannot build the design for {formula!r}: {exc}") from None
         terms = [str(c) for c in mm.columns]
+        check_terms(terms, formula)
         plain = tuple(None if t == "Intercept" else t for t in terms)
         if not all(t == "Intercept" or t in used for t in terms):
             plain = None

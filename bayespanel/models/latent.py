@@ -198,7 +198,7 @@ class LatentModel:
                 f"call {builder} without the latent options")
         self.builder, self.kind, self.family = builder, kind, fam
         self.likelihood = likelihood
-        design = panel.design(formula, occasion_effects=bool(occasion_effects))
+        design = panel.design(formula, occasion_effects=occasion_effects)
         M, labels = design.matrices(kind)
         trials_arr, trials_name = _column_values(panel, design, trials, "trials")
         expo_arr, expo_name = _column_values(panel, design, exposure, "exposure")

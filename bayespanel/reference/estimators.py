@@ -114,8 +114,9 @@ def _check_options(estimator, method, cov):
 
 
 def _design_of(data, formula, occasion_effects):
-    from ..design import Design
+    from ..design import Design, check_flag
 
+    occasion_effects = check_flag("occasion_effects", occasion_effects)
     if isinstance(data, Design):
         if formula is not None and formula != data.spec.formula:
             raise SpecificationError(
@@ -131,7 +132,7 @@ def _design_of(data, formula, occasion_effects):
             f"data must be a bayespanel Panel or Design, got {type(data).__name__}")
     if formula is None:
         raise SpecificationError("formula is required with a Panel (for example 'y ~ x')")
-    return data.design(formula, occasion_effects=bool(occasion_effects))
+    return data.design(formula, occasion_effects=occasion_effects)
 
 
 # ---------------------------------------------------------------------- public entries
