@@ -200,13 +200,18 @@ def cmd_report(args) -> int:
     return EXIT_OK
 
 
-def _fmt(v):
-    """Console numbers: three decimals in the usual range, three significant digits
-    outside it (so 0.000692 is not shown as 0.001)."""
-    if v is None:
-        return "–"
-    a = abs(v)
-    return f"{v:.3f}" if a == 0 or 0.01 <= a < 1e6 else f"{v:.3g}"
+def _fmt(v, u=None):
+    """A console number by the report's digits rule (bayespanel.report.numbers): to the
+    decimals of its uncertainty ``u``, three significant digits without one."""
+    from .report import numbers
+
+    return numbers.estimate(v, u)
+
+
+def _sd(u):
+    from .report import numbers
+
+    return f"({numbers.uncertainty(u)})"
 
 
 #: occasion indicators are listed term by term up to this many; beyond, one line
@@ -214,12 +219,16 @@ _OCCASIONS_LISTED = 6
 
 
 def _print_terms(rows):
-    """``(term, centre, spread, lower, upper, extra)`` lines (``spread`` False: none),
-    columns sized to the block; many occasion indicators are summarised in one line
-    (every value is in results.json and the report)."""
+    """``(term, centre, spread, lower, upper, extra)`` lines, the centre and interval to the
+    decimals of ``spread`` (the SD or SE, shown in brackets), columns sized to the block;
+    many occasion indicators are summarised in one line (every value is in results.json
+    and the report)."""
+    from .report import numbers
+    from .report.text import label
+
     occ = [r for r in rows if r[0].startswith("occasion[")]
     many = len(occ) > _OCCASIONS_LISTED
-    cells = [(_fmt(r[1]), "" if r[2] is False else _fmt(r[2])) for r in rows]
+    cells = [(_fmt(r[1], r[2]), f"({numbers.uncertainty(r[2])})") for r in rows]
     w1 = max([len(c) for c, _ in cells] + [9])
     w2 = max([len(d) for _, d in cells] + [0])
     for r, (c, d) in zip(rows, cells):
@@ -229,8 +238,8 @@ def _print_terms(rows):
                 print(f"  {len(occ)} occasion terms, from {_fmt(min(vals))} to "
                       f"{_fmt(max(vals))} (each in the report and results.json)")
             continue
-        spread = f"  {d:>{w2}}" if w2 else ""
-        print(f"  {r[0]:<28} {c:>{w1}}{spread}  [{_fmt(r[3])}, {_fmt(r[4])}]{r[5]}")
+        print(f"  {label(r[0]):<28} {c:>{w1}}  {d:>{w2}}  "
+              f"{numbers.interval(r[3], r[4], r[2])}{r[5]}")
 
 
 def _not_estimated(items: dict) -> str:
@@ -248,17 +257,24 @@ def _not_estimated(items: dict) -> str:
 
 def _print_reference(results) -> None:
     """The reference fits' estimates, SEs and intervals, and the specification tests."""
+    from .report import numbers
+    from .report.text import label
+
     pct = f"{100 * results['settings']['interval']:g}%"
     for f in results["reference"]:
-        print(f"\n{f['title']} (reference, {f['cov']} covariance; estimate, SE and {pct} "
-              "interval)")
+        dist = f", tests on {f['test_distribution']}" if f.get("test_distribution") else ""
+        print(f"\n{f['title']} (reference, {f['cov']} covariance{dist}; estimate, SE and "
+              f"{pct} interval)")
         _print_terms([(c["term"], c["estimate"], c["se"], c["lower"], c["upper"], "")
                       for c in f["coefficients"]])
-        parts = [f"{label} {_fmt(f.get(k))}" for k, label in (
-            ("sigma_unit", "sigma_unit"), ("sigma_obs", "sigma_obs"), ("icc", "ICC"))
-            if f.get(k) is not None]
+        zero = f.get("unit_variance_at_zero")
+        parts = [f"{label(k)} {'0 (estimated at zero)' if zero and k != 'sigma_obs' else numbers.plain(f.get(k))}"
+                 for k in ("sigma_unit", "sigma_obs", "icc") if f.get(k) is not None]
         if parts:
             print(f"  {'; '.join(parts)}")
+        if f.get("unit_intercept_share") is not None:
+            print(f"  unit intercepts account for {numbers.share(f['unit_intercept_share'])} "
+                  "of the outcome's variance")
         if f.get("not_estimated"):
             print(f"  not estimated: {_not_estimated(f['not_estimated'])}")
     tests = results.get("tests") or []
@@ -272,11 +288,12 @@ def _print_reference(results) -> None:
         if t.get("skipped"):
             print(f"  {t['title']}: not run: {t['skipped']}")
             continue
-        p = t.get("p_value")
-        print(f"  {t['title']}: statistic {_fmt(t.get('statistic'))} on "
-              f"{_fmt(t.get('df')) if t.get('df') is None else int(t['df'])} df, "
-              f"{'p < 0.001' if p is not None and p < 0.001 else f'p = {_fmt(p)}'}; "
-              f"{t['conclusion']}")
+        p = numbers.p_value(t.get("reported_p_value", t.get("p_value")))
+        dist = t.get("distribution") or (
+            f"chi-squared({numbers.dof(t.get('df'))})" if t.get("df") is not None else "")
+        print(f"  {t['title']}: statistic "
+              f"{numbers.plain(t.get('reported_statistic', t.get('statistic')))} on {dist}, "
+              f"{'p ' + p if p.startswith('<') else 'p = ' + p}; {t['conclusion']}")
 
 
 def _print_summary(results, truth=None) -> None:
@@ -285,20 +302,20 @@ def _print_summary(results, truth=None) -> None:
     _print_reference(results)
     by = (results.get("truth") or {}).get("by_model", {})
     for m in results["models"]:
-        print(f"\n{m['title']} (Bayesian; posterior mean and "
+        print(f"\n{m['title']} (Bayesian; posterior mean, SD and "
               f"{100 * results['settings']['interval']:g}% interval)")
         known = by.get(m["name"], {})
         rows = []
         for c in m["coefficients"]:
             tv = known.get(c["term"])
-            rows.append((c["term"], c["mean"], False, c["lower"], c["upper"],
-                         f"   true {_fmt(tv)}" if tv is not None else ""))
+            rows.append((c["term"], c["mean"], c.get("sd"), c["lower"], c["upper"],
+                         f"   true {_fmt(tv, c.get('sd'))}" if tv is not None else ""))
         for q in m.get("scale", []):
             # the pooled model's residual SD mixes both levels: no true value to show
             tv = ((results.get("truth") or {}).get(q["name"])
                   if known and m["name"] != "pooled" else None)
-            rows.append((q["name"], q["mean"], False, q["lower"], q["upper"],
-                         f"   true {_fmt(tv)}" if tv is not None else ""))
+            rows.append((q["name"], q["mean"], q.get("sd"), q["lower"], q["upper"],
+                         f"   true {_fmt(tv, q.get('sd'))}" if tv is not None else ""))
         _print_terms(rows)
         ame = m.get("average_marginal_effects") or []
         if ame:
@@ -320,8 +337,8 @@ def _print_summary(results, truth=None) -> None:
             text = r.get("note") or ""
             note = f"  ({text})" if text and not text.startswith("exact CV with closed-form") \
                 else ""
-            print(f"  {r['title']:<40} {_fmt(r.get('elpd_diff')):>9}  {_fmt(r.get('se_diff'))}"
-                  f"{note}")
+            print(f"  {r['title']:<40} {_fmt(r.get('elpd_diff'), r.get('se_diff')):>9}  "
+                  f"{_sd(r.get('se_diff'))}{note}")
 
 
 def cmd_demo(args) -> int:

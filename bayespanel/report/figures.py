@@ -19,6 +19,7 @@ import io
 import numpy as np
 
 from .tables import coefficient_grid
+from .text import label
 
 __all__ = ["coefficient_figure", "icc_figure", "loo_figure", "ppc_figure", "PALETTE", "literal",
            "LITERAL_RC"]
@@ -173,8 +174,10 @@ def icc_figure(results: dict):
         ax.set_ylim(bottom=0)
         latent = any((m["variance_partition"] or {}).get("scale", "").startswith("latent")
                      for m in models)
-        ax.set_xlabel("ICC on the latent scale = sigma_unit² / (sigma_unit² + s²)" if latent
-                      else "ICC = sigma_unit² / (sigma_unit² + sigma_obs²)")
+        u_sd = label("sigma_unit")
+        ax.set_xlabel(f"{label('icc')} on the latent scale = {u_sd}² / ({u_sd}² + s²)"
+                      if latent else
+                      f"{label('icc')} = {u_sd}² / ({u_sd}² + {label('sigma_obs')}²)")
         ax.set_ylabel("posterior density")
         ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0))
         fig.tight_layout()

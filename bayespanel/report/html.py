@@ -15,7 +15,8 @@ import math
 from importlib import resources
 
 from . import family_report, figures, tables
-from .text import CAUTION, LEVEL_TEXT
+from . import numbers as num
+from .text import CAUTION, LEVEL_TEXT, label
 
 __all__ = ["Safe", "esc", "fmt", "render", "SECTIONS"]
 
@@ -57,37 +58,38 @@ def tag(name: str, *body, cls: str | None = None, **attrs) -> Safe:
     return Safe(f"<{name}{a}>{join(body)}</{name}>")
 
 
-def fmt(x, digits: int = 3) -> str:
-    """Numbers for tables: fixed decimals in the usual range, significant digits outside."""
+def fmt(x, digits: int = num.PLAIN_DIGITS) -> str:
+    """A cell without a stated uncertainty: counts as integers, other numbers to
+    ``digits`` significant digits (:func:`bayespanel.report.numbers.plain`); text as it
+    is. Numbers with an uncertainty are formatted by the section with
+    :func:`bayespanel.report.numbers.estimate` before they reach a table."""
     if x is None:
-        return "–"
+        return num.MISSING
     if isinstance(x, bool):
         return "yes" if x else "no"
+    if isinstance(x, str):
+        return x
     if isinstance(x, int):
-        return f"{x:,}"
+        return num.count(x)
     try:
         v = float(x)
     except (TypeError, ValueError):
         return str(x)
     if not math.isfinite(v):
-        return "–"
+        return num.MISSING
     if abs(v) < 1e-9:  # rounding noise of an exact identity (e.g. Mundlak = within-between)
         v = 0.0
-    if v != 0 and (abs(v) >= 1e5 or abs(v) < 10 ** -digits):
-        return f"{v:.{digits}g}"
-    return f"{v:.{digits}f}"
+    return num.plain(v, digits)
 
 
-def fmt_p(p) -> str:
-    if p is None:
-        return "–"
-    return "< 0.001" if p < 0.001 else f"{p:.3f}"
+fmt_p = num.p_value
 
 
-def table(columns, rows, caption=None, numeric=None) -> Safe:
+def table(columns, rows, caption=None, numeric=None, foot=None) -> Safe:
     """A table; ``columns`` are headings, ``rows`` lists of cells (values or Safe markup).
 
     The first column is the row name. ``numeric`` lists the column indices set right.
+    ``foot`` is a note set under the table (rows, units and ICC: :func:`tables.footer`).
     """
     numeric = set(range(1, len(columns))) if numeric is None else set(numeric)
     head = join(tag("th", c, cls="num" if i in numeric else None) for i, c in enumerate(columns))
@@ -102,8 +104,9 @@ def table(columns, rows, caption=None, numeric=None) -> Safe:
             cells.append(tag("td", c if isinstance(c, Safe) else fmt(c) if i else esc(c), cls=cls))
         body.append(tag("tr", *cells))
     cap = tag("caption", caption) if caption else ""
-    return tag("div", tag("table", cap, tag("thead", tag("tr", head)), tag("tbody", *body),
+    grid = tag("div", tag("table", cap, tag("thead", tag("tr", head)), tag("tbody", *body),
                           cls="bp-grid"), cls="bp-scroll")
+    return join([grid, tag("p", foot, cls="bp-tablenote")]) if foot else grid
 
 
 def note(kind: str, text, lead: str | None = None) -> Safe:
@@ -121,8 +124,18 @@ def pairs(items) -> Safe:
     return tag("dl", *[Safe(tag("dt", k) + tag("dd", v)) for k, v in items], cls="bp-pairs")
 
 
-def _interval(lo, hi) -> str:
-    return f"[{fmt(lo)}, {fmt(hi)}]"
+def _interval(lo, hi, u=None) -> str:
+    """``[lo, hi]`` to the decimals of the uncertainty ``u`` (plain digits without one)."""
+    return num.interval(lo, hi, u) if u is not None else f"[{fmt(lo)}, {fmt(hi)}]"
+
+
+def _est(x, u) -> Safe:
+    """An estimate to the decimals of its uncertainty, as a table cell."""
+    return esc(num.estimate(x, u))
+
+
+def _nums(*texts) -> list:
+    return [esc(t) for t in texts]
 
 
 def _pct(prob) -> str:
@@ -201,14 +214,22 @@ def _data(r) -> Safe:
         out.append(note("caution", f"{smp['n_dropped']} rows with missing values were left "
                         f"out of every model ({det}); unit means use the remaining rows.",
                         "Missing values."))
-    rows = [[v["variable"], v["n"], v["mean"], v["sd_overall"], v["sd_between"], v["sd_within"],
-             v["share_within"], Safe(esc("yes" if v["varies_within"] else "no"))]
+    rows = [[v["variable"], *_nums(num.count(v["n"]), *[num.plain(v[k]) for k in (
+             "mean", "sd_overall", "sd_between", "sd_within")], num.share(v["share_within"])),
+             Safe(esc("yes" if v["varies_within"] else "no"))]
             for v in d["variables"]]
     out.append(table(["variable", "n", "mean", "SD overall", "SD between", "SD within",
                       "share within", "varies within"], rows,
                      caption="Each variable's spread split into differences between units "
-                             "(SD of the unit means) and changes within units."))
+                             "(SD of the unit means) and changes within units.",
+                     foot=tables.footer(r, icc=False)))
     return join(out)
+
+
+def _prior_key(key: str) -> str:
+    """A prior's key with the display label of its quantity (``unit SD (sigma_unit)``):
+    the key is what --prior takes."""
+    return f"{label(key)} ({key})" if label(key) != key else key
 
 
 def _models(r) -> Safe:
@@ -225,11 +246,13 @@ def _models(r) -> Safe:
     if r["reference"]:
         rows = [[f["title"], Safe(esc(f["assumptions"])), Safe(esc(
             f["cov"] + (f", {f['method']}" if f.get("method") else ""))),
+            Safe(esc(f.get("test_distribution") or num.MISSING)),
             f["n_obs"], f["n_units"]] for f in r["reference"]]
         out.append(tag("h3", "Reference fits"))
-        out.append(table(["fit", "what it assumes", "covariance, variance components", "rows",
-                          "units"], rows, numeric=[3, 4]))
-    pri = [[m["title"], Safe(esc("; ".join(f"{k}: {v}" for k, v in m["priors"].items())))]
+        out.append(table(["fit", "what it assumes", "covariance, variance components",
+                          "tests use", "rows", "units"], rows, numeric=[4, 5]))
+    pri = [[m["title"], Safe(esc("; ".join(f"{_prior_key(k)}: {v}"
+                                           for k, v in m["priors"].items())))]
            for m in r["models"] if m.get("priors")]
     if pri:
         out.append(tag("h3", "Priors (on the scale of the data)"))
@@ -241,7 +264,7 @@ def _coefficients(r) -> Safe:
     prob = r["settings"]["interval"]
     cols, terms = tables.coefficient_grid(r)
     truth = (r.get("truth") or {}).get("by_model", {})
-    heads = ["term · model", "estimate", "SD / SE", f"{_pct(prob)} interval"]
+    heads = ["term · model", "estimate", "SD / SE", f"{_pct(prob)} interval", "p-value"]
     if truth:
         heads.append("true value")
     body = []
@@ -254,18 +277,25 @@ def _coefficients(r) -> Safe:
             cell = c["cells"][term]
             kind = tag("span", "B" if c["kind"] == "bayesian" else "R",
                        cls=f"bp-tag {'bayes' if c['kind'] == 'bayesian' else 'ref'}")
-            line = [Safe(kind + esc(c["title"])), cell["estimate"],
-                    cell.get("sd", cell.get("se")), Safe(esc(_interval(cell["lower"], cell["upper"])))]
+            u = cell.get("sd", cell.get("se"))
+            line = [Safe(kind + esc(c["title"])), _est(cell["estimate"], u),
+                    esc(num.uncertainty(u)), esc(_interval(cell["lower"], cell["upper"], u)),
+                    esc(num.p_value(cell.get("p_value")) if c["kind"] == "reference"
+                        else "")]
             if truth:
                 line.append(truth.get(c["key"], {}).get(term))
             body.append(line)
     out = [tag("p", f"Posterior means and SDs with {_pct(prob)} equal-tailed intervals "
                f"(B, Bayesian) beside estimates and standard errors with {_pct(prob)} "
-               "confidence intervals (R, reference), grouped by term. Each term is one "
-               "estimand: a within part is not comparable with a pooled coefficient."
+               "confidence intervals and the p-value of a zero coefficient (R, reference), "
+               "grouped by term. Each term is one estimand: a within part is not comparable "
+               "with a pooled coefficient. Digits follow the uncertainty: two significant "
+               "digits of the SD or SE, and the estimate to the same decimal place."
                + (" The simulated demo's true values are in the last column, where the "
                   "model's parametrisation has one." if truth else ""), cls="bp-lead"),
-           family_report.coefficient_note(r), table(heads, body)]
+           family_report.coefficient_note(r),
+           table(heads, body, foot=join([tables.distribution_text(r), " ",
+                                         tables.footer(r)]))]
     out.append(figure(figures.coefficient_figure(r), "coefficient intervals by model",
                       f"Estimates and {_pct(prob)} intervals; Bayesian models in lagoon "
                       "(circles), reference fits in clay (squares)"
@@ -276,9 +306,10 @@ def _coefficients(r) -> Safe:
 
 def _partition(r) -> Safe:
     prob = r["settings"]["interval"]
+    u_sd, o_sd, icc = label("sigma_unit"), label("sigma_obs"), label("icc")
     out = [family_report.partition_lead(r) or tag(
-        "p", "How much of the outcome's variance lies between units. The ICC is "
-        "sigma_unit^2 / (sigma_unit^2 + sigma_obs^2): the share of residual variance "
+        "p", f"How much of the outcome's variance lies between units. The {icc} is "
+        f"{u_sd}^2 / ({u_sd}^2 + {o_sd}^2): the share of residual variance "
         "due to stable unit differences.", cls="bp-lead")]
     any_vp = False
     for m in r["models"]:
@@ -286,30 +317,44 @@ def _partition(r) -> Safe:
         if not vp:
             continue
         any_vp = True
-        rows = [[q["quantity"], q["mean"], q["median"], q["sd"], Safe(esc(_interval(q["lower"], q["upper"])))]
+        rows = [[label(q["quantity"]), _est(q["mean"], q["sd"]), _est(q["median"], q["sd"]),
+                 esc(num.uncertainty(q["sd"])), esc(_interval(q["lower"], q["upper"], q["sd"]))]
                 for q in vp["summary"]]
         out.append(tag("h3", m["title"]))
         if vp.get("scale"):
             out.append(tag("p", "Scale: ", vp["scale"], ".", cls="bp-lead"))
         out.append(table(["quantity", "mean", "median", "SD", f"{_pct(prob)} interval"], rows))
         if vp.get("theta"):
-            trs = [[f"T = {t['length']}", t["mean"], Safe(esc(_interval(t["lower"], t["upper"])))]
+            trs = [[f"T = {t['length']}", esc(num.share(t["mean"])),
+                    esc(f"[{num.share(t['lower'])}, {num.share(t['upper'])}]")]
                    for t in vp["theta"]]
-            out.append(table(["panel length", "quasi-demeaning share", f"{_pct(prob)} interval"],
+            out.append(table(["panel length", label("theta"), f"{_pct(prob)} interval"],
                              trs, caption="Share of each unit's mean removed by the random-"
                              "intercept fit (0: pooled, 1: fixed effects)."))
         if vp.get("explained"):
-            ers = [[e["part"], e.get("total"), e.get("within"), e.get("between")]
+            ers = [[e["part"], *_nums(num.share(e.get("total")), num.share(e.get("within")),
+                                      num.share(e.get("between")))]
                    for e in vp["explained"]]
             out.append(table(["source", "share of total", "share within", "share between"], ers,
                              caption="Variance explained at each level (Rights and Sterba 2019), "
                                      "posterior means."))
-    refs = [f for f in r["reference"] if f.get("icc") is not None]
+    refs = [f for f in r["reference"] if f.get("icc") is not None
+            or f.get("unit_variance_at_zero")]
     if refs:
+        def zero(f, v):
+            return esc("0 (at zero)" if f.get("unit_variance_at_zero") else num.plain(v))
+
         out.append(tag("h3", "Reference fits"))
-        out.append(table(["fit", "sigma_unit", "sigma_obs", "ICC"],
-                         [[f["title"], f.get("sigma_unit"), f.get("sigma_obs"), f.get("icc")]
-                          for f in refs]))
+        out.append(table(["fit", u_sd, o_sd, icc, "variance components"],
+                         [[f["title"], zero(f, f.get("sigma_unit")), esc(num.plain(f.get("sigma_obs"))),
+                           zero(f, f.get("icc")), esc(f.get("method") or num.MISSING)]
+                          for f in refs], numeric=[1, 2, 3], foot=tables.footer(r)))
+        for f in refs:
+            if f.get("boundary_note"):
+                out.append(note("caution", f["boundary_note"], f"{f['title']}:"))
+    for f in r["reference"]:
+        if f.get("unit_intercept_share") is not None:
+            out.append(note("info", tables.intercept_share_text(f), f"{f['title']}:"))
     if not any_vp and not refs:
         out.append(note("info", "No model with a unit variance component was fitted."))
     out.append(figure(figures.icc_figure(r), "posterior of the ICC",
@@ -328,25 +373,35 @@ def _contrasts(r) -> Safe:
                "assumes it is zero; the reference tests below ask the same question.",
                family_report.contrast_scale(r), cls="bp-lead")]
     rows = []
-    for m in r["models"]:
-        for c in m.get("contrasts") or []:
-            rope = c.get("rope")
-            refc = ("–" if c.get("reference_estimate") is None else
-                    f"{fmt(c['reference_estimate'])} {_interval(c.get('reference_lower'), c.get('reference_upper'))}")
-            rows.append([f"{c['covariate']} · {m['title']}", c["mean"], c["sd"],
-                         Safe(esc(_interval(c["lower"], c["upper"]))), c["p_positive"],
-                         c["p_negative"], c.get("p_rope"),
-                         Safe(esc(fmt(rope) if rope is not None else "–")), Safe(esc(refc))])
+    pairs_ = [(m, c) for m in r["models"] for c in m.get("contrasts") or []]
+    has_rope = any(c.get("rope") is not None for _, c in pairs_)
+    for m, c in pairs_:
+        ref_u = c.get("reference_se")
+        if ref_u is None and c.get("reference_lower") is not None:
+            ref_u = (c["reference_upper"] - c["reference_lower"]) / 4  # about one SE
+        refc = (esc(num.MISSING) if c.get("reference_estimate") is None else
+                join([num.estimate(c["reference_estimate"], ref_u), Safe("<br>"),
+                      tag("small", num.interval(c.get("reference_lower"),
+                                                c.get("reference_upper"), ref_u))]))
+        line = [f"{c['covariate']} · {m['title']}", _est(c["mean"], c["sd"]),
+                esc(num.uncertainty(c["sd"])), esc(_interval(c["lower"], c["upper"], c["sd"])),
+                *_nums(num.probability(c["p_positive"]), num.probability(c["p_negative"]))]
+        if has_rope:
+            line += _nums(num.probability(c.get("p_rope")), num.plain(c.get("rope")))
+        rows.append(line + [refc])
     if rows:
-        out.append(table(["covariate · model", "mean", "SD", f"{_pct(prob)} interval",
-                          "P(> 0)", "P(< 0)", "P(in ROPE)", "ROPE half-width",
-                          "reference fit"], rows))
+        heads = ["covariate · model", "mean", "SD", f"{_pct(prob)} interval", "P(> 0)",
+                 "P(< 0)"] + (["P(in ROPE)", "ROPE half-width"] if has_rope else []) + [
+                 "reference fit (estimate, interval)"]
+        out.append(table(heads, rows, foot=tables.footer(r)))
     tests = r.get("tests") or []
     if tests:
-        trs = [[t["title"], t.get("statistic"), t.get("df"),
-                Safe(esc(fmt_p(t.get("p_value")))), t.get("conclusion", "")] for t in tests]
-        out.append(table(["reference test", "statistic", "df", "p-value", "reading"], trs,
-                         numeric=[1, 2, 3]))
+        trs = [[t["title"], esc(num.plain(t.get("reported_statistic", t.get("statistic")))),
+                esc(t.get("distribution") or f"chi-squared({num.dof(t.get('df'))})"),
+                esc(num.p_value(t.get("reported_p_value", t.get("p_value")))),
+                t.get("conclusion", "")] for t in tests]
+        out.append(table(["reference test", "statistic", "distribution", "p-value", "reading"],
+                         trs, numeric=[1, 3], foot=tables.footer(r)))
     if not rows and not tests:
         out.append(note("info", "No model with separate within and between effects was "
                         "fitted (add within_between or correlated_effects)."))
@@ -373,13 +428,16 @@ def _comparison(r) -> Safe:
         text = text or ""
         return "" if text.startswith("exact CV with closed-form refits") else text
 
-    rows = [[row["title"], tag("span", row.get("method") or "", cls="bp-nowrap"), row.get("elpd"),
-             row.get("se"), row.get("elpd_diff"), row.get("se_diff"), row.get("p_loo"),
-             row.get("weight"), row.get("n_high_pareto_k"),
+    rows = [[row["title"], tag("span", row.get("method") or "", cls="bp-nowrap"),
+             _est(row.get("elpd"), row.get("se")), esc(num.uncertainty(row.get("se"))),
+             _est(row.get("elpd_diff"), row.get("se_diff")),
+             esc(num.uncertainty(row.get("se_diff"))), esc(num.plain(row.get("p_loo"))),
+             esc(num.share(row.get("weight"))), esc(num.count(row.get("n_high_pareto_k"))),
              tag("small", _note(row.get("note")))]
             for row in comp["rows"]]
     out.append(table(["model", "method", "ELPD", "SE", "difference", "SE of difference",
-                      "p_loo", "weight", "high Pareto k", "note"], rows))
+                      "p_loo", "weight", "high Pareto k", "note"], rows, numeric=range(2, 9),
+                     foot=tables.footer(r)))
     out.append(figure(figures.loo_figure(r), "ELPD difference by model",
                       "ELPD difference to the best model with two SEs of the difference.",
                       "fig-loo"))
@@ -397,15 +455,18 @@ def _diagnostics(r) -> Safe:
     for m in r["models"]:
         d = m["diagnostics"]
         loo = m.get("loo") or {}
-        ess = [Safe(esc(fmt(None if v is None else int(round(v)))))
-               for v in (d.get("min_ess_bulk"), d.get("min_ess_tail"))]
-        rows.append([m["title"], d.get("divergences"), d.get("max_rhat"), *ess, d.get("min_bfmi"), loo.get("max_k"),
-                     loo.get("n_high_k"), _status(not d.get("warnings") and not loo.get("n_high_k"))])
+        rows.append([m["title"], *_nums(
+            num.count(d.get("divergences")), num.rhat(d.get("max_rhat")),
+            num.count(d.get("min_ess_bulk")), num.count(d.get("min_ess_tail")),
+            num.bfmi(d.get("min_bfmi")), num.pareto_k(loo.get("max_k")),
+            num.count(loo.get("n_high_k"))),
+            _status(not d.get("warnings") and not loo.get("n_high_k"))])
     out = [tag("p", "Thresholds (common practice): R-hat at most 1.01, bulk and tail ESS at "
                "least 100 per chain, no divergent transitions, energy BFMI at least 0.3, "
                "Pareto k at most 0.7.", cls="bp-lead"),
            table(["model", "divergences", "max R-hat", "min bulk ESS", "min tail ESS",
-                  "min BFMI", "max Pareto k", "units with k > 0.7", "status"], rows)]
+                  "min BFMI", "max Pareto k", "high Pareto k", "status"], rows,
+                 foot=tables.footer(r, icc=False))]
     for m in r["models"]:
         for w in m["diagnostics"].get("warnings", []):
             out.append(note("problem", w, f"{m['title']}:"))
@@ -422,8 +483,9 @@ def _checks(r) -> Safe:
     rows = []
     for m in r["models"]:
         for s in m.get("ppc") or []:
-            rows.append([f"{s['label']} · {m['title']}", s["observed"], s["replicated_mean"],
-                         s["p_value"]])
+            rows.append([f"{s['label']} · {m['title']}", *_nums(
+                num.plain(s["observed"]), num.plain(s["replicated_mean"]),
+                num.probability(s["p_value"]))])
     out = [tag("p", "Replicated panels drawn from each posterior (same units, new "
                "occasion noise) against the observed one, on statistics a panel model must "
                "get right. A tail probability near 0 or 1 marks a feature the model misses.",

@@ -1,7 +1,9 @@
 """Tables of a run, shaped from ``results.json`` and written as Markdown, LaTeX and CSV.
 
 The writers are our own (no optional dependency): Markdown pipe tables, LaTeX
-``tabular`` with every special character escaped, CSV through pandas.
+``tabular`` with every special character escaped, CSV through pandas. Markdown and LaTeX
+show numbers by the one rule of :mod:`bayespanel.report.numbers` and end with notes and
+the footer (rows, units, occasions, ICC); CSV keeps full precision.
 """
 
 from __future__ import annotations
@@ -9,11 +11,15 @@ from __future__ import annotations
 import re
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
+from . import numbers as num
 from .results_json import write_atomic
+from .text import label
 
-__all__ = ["coefficient_grid", "result_tables", "to_markdown", "to_latex", "write_tables"]
+__all__ = ["coefficient_grid", "result_tables", "display_tables", "display_frame", "footer",
+           "to_markdown", "to_latex", "write_tables"]
 
 _SUFFIXES = ("", " (within)", " (between)", " (unit mean)")
 
@@ -40,7 +46,8 @@ def coefficient_grid(results: dict):
         used.add(f["name"])
         return {"key": f"ref:{f['name']}", "title": f"{f['title']} (ref.)", "kind": "reference",
                 "cells": {c["term"]: {"estimate": c["estimate"], "lower": c["lower"],
-                                      "upper": c["upper"], "se": c.get("se")}
+                                      "upper": c["upper"], "se": c.get("se"),
+                                      "p_value": c.get("p_value"), "df": c.get("df")}
                           for c in f["coefficients"]}}
 
     for m in results.get("models", []):
@@ -69,6 +76,51 @@ def coefficient_grid(results: dict):
     return cols, terms
 
 
+# ---------------------------------------------------------------------- footer
+def _icc_text(results) -> str:
+    """ICC of every model and fit with a unit variance, for the table footer."""
+    bayes = []
+    for m in results.get("models", []):
+        vp = m.get("variance_partition") or {}
+        q = {r["quantity"]: r for r in vp.get("summary", [])}.get("ICC")
+        if q is not None and q.get("mean") is not None:
+            bayes.append(f"{m['title']} {num.estimate(q['mean'], q.get('sd'))}")
+    refs = []
+    for f in results.get("reference", []):
+        if f.get("icc") is None and not f.get("unit_variance_at_zero"):
+            continue
+        v = "0 (unit variance estimated at zero)" if f.get("unit_variance_at_zero") \
+            else num.plain(f["icc"])
+        refs.append(f"{f['title']} {v}")
+    parts = []
+    if bayes:
+        parts.append(", ".join(bayes) + " (posterior means)")
+    if refs:
+        meth = sorted({f["method"] for f in results.get("reference", [])
+                       if f.get("method") and (f.get("icc") is not None
+                                               or f.get("unit_variance_at_zero"))})
+        parts.append(", ".join(refs) + " (reference"
+                     + (f", variance components by {', '.join(meth)}" if meth else "") + ")")
+    return "; ".join(parts)
+
+
+def footer(results: dict, icc: bool = True) -> str:
+    """The footer line of every table: rows, units, occasions and the ICC of each model."""
+    d = results["data"]
+    smp, s = d["sample"], d["structure"]
+    text = (f"N = {num.count(smp['n_rows'])} rows of {num.count(smp['n_units'])} units "
+            f"({d['unit']}), {num.count(s['n_occasions'])} occasions ({d['time']}).")
+    icc_text = _icc_text(results) if icc else ""
+    if icc_text:
+        text += f" {label('icc')}: {icc_text}."
+    return text
+
+
+# ---------------------------------------------------------------------- frames
+def _uncertainty_of(cell):
+    return cell.get("sd", cell.get("se"))
+
+
 def _coefficients_df(results) -> pd.DataFrame:
     cols, terms = coefficient_grid(results)
     rows = []
@@ -77,33 +129,56 @@ def _coefficients_df(results) -> pd.DataFrame:
             cell = c["cells"].get(t)
             if cell is not None:
                 rows.append({"term": t, "model": c["title"], "kind": c["kind"],
-                             "estimate": cell["estimate"],
-                             "sd_or_se": cell.get("sd", cell.get("se")),
-                             "lower": cell["lower"], "upper": cell["upper"]})
+                             "estimate": cell["estimate"], "sd_or_se": _uncertainty_of(cell),
+                             "lower": cell["lower"], "upper": cell["upper"],
+                             "p_value": cell.get("p_value"), "df": cell.get("df")})
     return pd.DataFrame(rows)
 
 
 def _wide_coefficients_df(results) -> pd.DataFrame:
+    """Full precision: each model's estimate and SD/SE side by side (the CSV)."""
     cols, terms = coefficient_grid(results)
     data = {}
     for c in cols:
-        data[c["title"]] = [
-            (f"{c['cells'][t]['estimate']:.3f} [{c['cells'][t]['lower']:.3f}, "
-             f"{c['cells'][t]['upper']:.3f}]") if t in c["cells"] and
-            c["cells"][t]["estimate"] is not None and c["cells"][t]["lower"] is not None else ""
-            for t in terms]
+        for key, what in (("estimate", "estimate"), ("unc", "SD" if c["kind"] == "bayesian"
+                                                     else "SE")):
+            data[f"{c['title']}: {what}"] = [
+                (c["cells"][t]["estimate"] if key == "estimate" else
+                 _uncertainty_of(c["cells"][t])) if t in c["cells"] else None for t in terms]
+        if c["kind"] == "reference":
+            data[f"{c['title']}: p-value"] = [c["cells"][t].get("p_value") if t in c["cells"]
+                                              else None for t in terms]
     return pd.DataFrame(data, index=pd.Index(terms, name="term"))
 
 
+def _variance_rows(results):
+    """(model, quantity label, mean, median, SD, lower, upper, note) of every model and fit
+    with a unit variance; labels from :data:`text.LABELS`."""
+    rows = []
+    for m in results["models"]:
+        for q in (m.get("variance_partition") or {}).get("summary", []):
+            rows.append({"model": m["title"], "quantity": label(q["quantity"]),
+                         "mean": q.get("mean"), "median": q.get("median"), "sd": q.get("sd"),
+                         "lower": q.get("lower"), "upper": q.get("upper"), "note": ""})
+    for f in results["reference"]:
+        if f.get("icc") is None and not f.get("unit_variance_at_zero"):
+            continue
+        zero = bool(f.get("unit_variance_at_zero"))
+        for q in ("sigma_unit", "sigma_obs", "icc"):
+            rows.append({"model": f["title"] + " (ref.)", "quantity": label(q),
+                         "mean": f.get(q), "median": None, "sd": None, "lower": None,
+                         "upper": None,
+                         "note": "estimated at zero" if zero and q != "sigma_obs" else ""})
+    return rows
+
+
 def result_tables(results: dict) -> dict[str, pd.DataFrame]:
-    """Every table of the report as a DataFrame, keyed by file stem."""
+    """Every table of the report as a DataFrame of full-precision values, keyed by file
+    stem (what the CSV files hold; :func:`display_tables` formats them)."""
     out = {"coefficients": _wide_coefficients_df(results),
            "coefficients_long": _coefficients_df(results),
            "data_description": pd.DataFrame(results["data"]["variables"]).set_index("variable")}
-    vp = [dict(model=m["title"], **q) for m in results["models"]
-          if m.get("variance_partition") for q in m["variance_partition"]["summary"]]
-    vp += [dict(model=f["title"] + " (ref.)", quantity=q, mean=f.get(q)) for f in results["reference"]
-           if f.get("icc") is not None for q in ("sigma_unit", "sigma_obs", "icc")]
+    vp = _variance_rows(results)
     if vp:
         out["variance_partition"] = pd.DataFrame(vp)
     ct = [dict(model=m["title"], **{k: v for k, v in c.items()}) for m in results["models"]
@@ -122,11 +197,174 @@ def result_tables(results: dict) -> dict[str, pd.DataFrame]:
     return out
 
 
+# ---------------------------------------------------------------------- display
+#: How each column of a table is shown (see bayespanel.report.numbers): a kind, or
+#: ("estimate", column of its uncertainty). Columns not listed are shown as text, or as
+#: plain numbers when they hold numbers.
+COLUMN_KINDS = {
+    "estimate": ("estimate", "sd_or_se"), "sd_or_se": "uncertainty",
+    "lower": ("estimate", "sd_or_se"), "upper": ("estimate", "sd_or_se"),
+    "mean": ("estimate", "sd"), "median": ("estimate", "sd"), "sd": "uncertainty",
+    "p_value": "p_value", "df": "dof", "statistic": "plain", "f_statistic": "plain",
+    "f_p_value": "p_value", "f_df_denom": "dof",
+    "p_positive": "probability", "p_negative": "probability", "p_rope": "probability",
+    "rope": "plain", "reference_estimate": "plain", "reference_lower": "plain",
+    "reference_upper": "plain",
+    "elpd": ("estimate", "se"), "se": "uncertainty", "elpd_diff": ("estimate", "se_diff"),
+    "se_diff": "uncertainty", "p_loo": "plain", "weight": "share",
+    "n_points": "count", "n_high_pareto_k": "count", "max_k": "pareto_k",
+    "divergences": "count", "draws": "count", "max_rhat": "rhat", "min_ess_bulk": "count",
+    "min_ess_tail": "count", "min_bfmi": "bfmi", "seconds": "plain",
+    "n": "count", "share_within": "share", "varies_within": "text",
+}
+
+
+def _show(value, kind, row=None) -> str:
+    if value is None or (isinstance(value, float) and value != value):
+        return ""
+    if isinstance(value, (bool, np.bool_)):
+        return "yes" if value else "no"
+    if kind == "text" or isinstance(value, str):
+        return str(value)
+    if isinstance(value, (int, float, np.integer, np.floating)):
+        if isinstance(kind, tuple):
+            return num.estimate(value, None if row is None else row.get(kind[1]))
+        return num.number(value, kind or "plain")
+    return str(value)
+
+
+def display_frame(df: pd.DataFrame, kinds: dict | None = None) -> pd.DataFrame:
+    """``df`` with every cell formatted by the numbers rule (strings), per column kind."""
+    kinds = {**COLUMN_KINDS, **(kinds or {})}
+    idx = not isinstance(df.index, pd.RangeIndex)
+    flat = df.reset_index() if idx else df
+    recs = flat.to_dict(orient="records")
+    out = pd.DataFrame([{c: _show(r[c], kinds.get(c), r) for c in flat.columns} for r in recs],
+                       columns=list(flat.columns))
+    return out.set_index(list(df.index.names)) if idx else out
+
+
+def _wide_display(results) -> pd.DataFrame:
+    """Estimate (SD or SE) of each model by term; reference p-values in their own column."""
+    cols, terms = coefficient_grid(results)
+    data = {}
+    for c in cols:
+        cells = [c["cells"].get(t) for t in terms]
+        data[c["title"]] = ["" if x is None or x["estimate"] is None else
+                            f"{num.estimate(x['estimate'], _uncertainty_of(x))} "
+                            f"({num.uncertainty(_uncertainty_of(x))})" for x in cells]
+        if c["kind"] == "reference":
+            data[f"{c['title']}: p"] = ["" if x is None else num.p_value(x.get("p_value"))
+                                        for x in cells]
+    return pd.DataFrame(data, index=pd.Index(terms, name="term"))
+
+
+def distribution_text(results) -> str:
+    """One sentence naming the distribution the reference fits' p-values and intervals use
+    (from each fit's ``test_distribution``); "" when no fit records one."""
+    fits = [f for f in results.get("reference", []) if f.get("test_distribution")]
+    if not fits:
+        return ""
+    kinds = {f["test_distribution"] for f in fits}
+    if len(kinds) == 1:
+        return (f"Reference p-values and intervals use {kinds.pop()} for every fit "
+                f"({fits[0]['cov']} covariance).")
+    return ("Reference p-values and intervals use "
+            + "; ".join(f"{f['title']}: {f['test_distribution']}" for f in fits) + ".")
+
+
+def display_tables(results: dict) -> dict[str, tuple[pd.DataFrame, list[str]]]:
+    """Every table formatted for reading (Markdown, LaTeX): ``name -> (frame, notes)``.
+
+    Numbers follow :mod:`bayespanel.report.numbers`; the notes end with :func:`footer`.
+    """
+    raw = result_tables(results)
+    prob = results["settings"]["interval"]
+    pct = f"{100 * float(prob):g}%"
+    foot = footer(results)
+    dist = distribution_text(results)
+    out = {}
+    out["coefficients"] = (_wide_display(results), [
+        "Bayesian columns: posterior mean (posterior SD); reference columns: estimate "
+        "(standard error), with the p-value of a zero coefficient beside them. Digits follow "
+        "the uncertainty (two significant digits of the SD or SE).", dist, foot])
+    long = raw["coefficients_long"].copy()
+    if len(long):
+        long["interval"] = [num.interval(lo, hi, u) for lo, hi, u in
+                            zip(long["lower"], long["upper"], long["sd_or_se"])]
+        long = long[["term", "model", "kind", "estimate", "sd_or_se", "interval", "p_value",
+                     "df"]]
+    out["coefficients_long"] = (display_frame(long).rename(columns={
+        "sd_or_se": "SD or SE", "interval": f"{pct} interval", "p_value": "p-value"}),
+        [f"Bayesian rows: posterior mean, SD and {pct} equal-tailed interval; reference "
+         f"rows: estimate, standard error, {pct} confidence interval and the p-value of a "
+         "zero coefficient, on the reference distribution with df degrees of freedom "
+         "(empty df: the normal distribution).", dist, foot])
+    dd = raw["data_description"]
+    out["data_description"] = (display_frame(dd), [footer(results, icc=False)])
+    if "variance_partition" in raw:
+        vp = raw["variance_partition"].copy()
+        vp["interval"] = [num.interval(lo, hi, u) if lo is not None and lo == lo else ""
+                          for lo, hi, u in zip(vp["lower"], vp["upper"], vp["sd"])]
+        vp = vp[["model", "quantity", "mean", "median", "sd", "interval", "note"]]
+        out["variance_partition"] = (display_frame(vp).rename(columns={
+            "mean": "estimate or mean", "sd": "SD", "interval": f"{pct} interval"}),
+            [f"{label('icc')} = {label('sigma_unit')}^2 / ({label('sigma_unit')}^2 + "
+             f"{label('sigma_obs')}^2). Bayesian rows: posterior summaries; reference rows: "
+             "point estimates.", *_boundary_notes(results), foot])
+    if "contrasts" in raw:
+        ct = raw["contrasts"].copy()
+        ct["interval"] = [num.interval(lo, hi, u) for lo, hi, u in
+                          zip(ct["lower"], ct["upper"], ct["sd"])]
+        keep = [c for c in ("covariate", "model", "mean", "sd", "interval", "p_positive",
+                            "p_negative", "p_rope", "rope", "reference_estimate")
+                if c in ct.columns]
+        out["contrasts"] = (display_frame(ct[keep]).rename(columns={
+            "sd": "SD", "interval": f"{pct} interval", "p_positive": "P(> 0)",
+            "p_negative": "P(< 0)", "p_rope": "P(in ROPE)", "rope": "ROPE half-width",
+            "reference_estimate": "reference estimate"}),
+            ["Between minus within effect of each time-varying covariate: posterior mean, "
+             "SD, interval and posterior probabilities.", foot])
+    if "tests" in raw:
+        tt = raw["tests"]
+        rows = [{"test": t.get("title", t.get("name")), "statistic": num.plain(
+                    t.get("reported_statistic", t.get("statistic"))),
+                 "distribution": t.get("distribution") or "",
+                 "p-value": num.p_value(t.get("reported_p_value", t.get("p_value"))),
+                 "reading": t.get("conclusion", "")}
+                for t in tt.to_dict(orient="records")]
+        out["tests"] = (pd.DataFrame(rows), [foot])
+    if "comparison" in raw:
+        cp = raw["comparison"].drop(columns=[c for c in ("level", "kind") if c in
+                                             raw["comparison"].columns])
+        out["comparison"] = (display_frame(cp), [
+            "ELPD and its SE, the difference to the best model and the SE of the paired "
+            "difference; digits follow the SEs.", foot])
+    if "diagnostics" in raw:
+        out["diagnostics"] = (display_frame(raw["diagnostics"]), [foot])
+    return out
+
+
+def _boundary_notes(results) -> list[str]:
+    out = [f"{f['title']}: {f['boundary_note']}" for f in results.get("reference", [])
+           if f.get("boundary_note")]
+    return out + [f"{f['title']}: {intercept_share_text(f)}" for f in results.get("reference", [])
+                  if f.get("unit_intercept_share") is not None]
+
+
+def intercept_share_text(fit: dict) -> str:
+    """The fixed-effects fit's unit intercepts, described by the share of the outcome's
+    variance they account for (fixed effects estimate no unit variance)."""
+    return (f"the estimated unit intercepts account for "
+            f"{num.share(fit['unit_intercept_share'])} of the outcome's variance (a "
+            "description of this sample; fixed effects estimate no unit variance and no ICC).")
+
+
 def _cell(v) -> str:
     if v is None or (isinstance(v, float) and v != v):
         return ""
     if isinstance(v, float):
-        return f"{v:.4g}" if abs(v) >= 1e5 or (v != 0 and abs(v) < 1e-3) else f"{v:.4f}"
+        return num.plain(v)
     return str(v)
 
 
@@ -135,12 +373,13 @@ def _frame(df: pd.DataFrame):
     return [str(c) for c in df.columns], [[_cell(v) for v in row] for row in df.itertuples(index=False)]
 
 
-def to_markdown(df: pd.DataFrame) -> str:
-    """A Markdown pipe table (pipes in cells escaped)."""
+def to_markdown(df: pd.DataFrame, notes=()) -> str:
+    """A Markdown pipe table (pipes in cells escaped), then each note as a paragraph."""
     heads, rows = _frame(df)
     clean = lambda s: s.replace("|", "\\|").replace("\n", " ")  # noqa: E731
     lines = ["| " + " | ".join(map(clean, heads)) + " |", "|" + "|".join("---" for _ in heads) + "|"]
     lines += ["| " + " | ".join(map(clean, r)) + " |" for r in rows]
+    lines += [line for n in notes if n for line in ("", clean(n))]
     return "\n".join(lines) + "\n"
 
 
@@ -154,14 +393,16 @@ def latex_escape(s: str) -> str:
     return _LATEX_RE.sub(lambda m: _LATEX[m.group()], s)
 
 
-def to_latex(df: pd.DataFrame, caption: str | None = None) -> str:
-    """A LaTeX ``tabular`` (booktabs rules) with every cell escaped."""
+def to_latex(df: pd.DataFrame, caption: str | None = None, notes=()) -> str:
+    """A LaTeX ``tabular`` (booktabs rules) with every cell escaped, then the notes in
+    small type."""
     heads, rows = _frame(df)
     spec = "l" + "r" * (len(heads) - 1)
     out = [r"\begin{tabular}{" + spec + "}", r"\toprule",
            " & ".join(latex_escape(h) for h in heads) + r" \\", r"\midrule"]
     out += [" & ".join(latex_escape(c) for c in r) + r" \\" for r in rows]
     out += [r"\bottomrule", r"\end{tabular}"]
+    out += [r"\par{\footnotesize " + latex_escape(n.replace("\n", " ")) + "}" for n in notes if n]
     if caption:
         out = [r"% " + latex_escape(caption)] + out
     return "\n".join(out) + "\n"
@@ -171,9 +412,11 @@ def write_tables(results: dict, folder) -> list[Path]:
     """Write every table as ``tables/NAME.md``, ``.tex`` and ``.csv``; return the paths."""
     folder = Path(folder) / "tables"
     paths = []
+    shown = display_tables(results)
     for name, df in result_tables(results).items():
-        paths.append(write_atomic(folder / f"{name}.md", to_markdown(df)))
-        paths.append(write_atomic(folder / f"{name}.tex", to_latex(df)))
+        view, notes = shown.get(name, (df, [footer(results)]))
+        paths.append(write_atomic(folder / f"{name}.md", to_markdown(view, notes)))
+        paths.append(write_atomic(folder / f"{name}.tex", to_latex(view, notes=notes)))
         paths.append(write_atomic(folder / f"{name}.csv", df.to_csv(index=not isinstance(
             df.index, pd.RangeIndex), lineterminator="\n")))
     return paths

@@ -7,7 +7,25 @@ and the docs. The wording is ours.
 from __future__ import annotations
 
 __all__ = ["BAYES_MODELS", "REFERENCE_FITS", "COUNTERPART", "CAUTION", "LEVEL_TEXT",
-           "model_title", "reference_title"]
+           "LABELS", "label", "model_title", "reference_title"]
+
+#: Display labels of the variance quantities, defined once for every table and output
+#: (HTML, Markdown, LaTeX, console). Keys are the names results.json and the Python
+#: objects use (``sigma_unit`` on a result, ``"unit SD"`` in a partition table).
+LABELS = {
+    "sigma_unit": "unit SD",
+    "sigma_obs": "occasion SD",
+    "icc": "ICC",
+    "unit SD": "unit SD",
+    "occasion SD": "occasion SD",
+    "ICC": "ICC",
+    "theta": "quasi-demeaning share",
+}
+
+
+def label(key: str) -> str:
+    """The display label of a quantity (the key itself when it has none)."""
+    return LABELS.get(key, key)
 
 #: Bayesian builders by command-line name: (title, assumptions in plain words).
 BAYES_MODELS = {
@@ -19,8 +37,8 @@ BAYES_MODELS = {
     ),
     "random_intercept": (
         "Random intercept",
-        "Each unit has its own baseline, drawn from a normal distribution with SD "
-        "sigma_unit. Each covariate has one effect, which mixes its within-unit and its "
+        "Each unit has its own baseline, drawn from a normal distribution whose SD is "
+        "the unit SD. Each covariate has one effect, which mixes its within-unit and its "
         "between-unit association; this is right only if the two are equal, i.e. if the "
         "unit baselines are unrelated to the covariates.",
     ),
