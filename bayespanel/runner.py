@@ -658,7 +658,13 @@ def _reference_one(name, settings, design):
         "icc": res.icc if name in ("random", "mundlak", "within_between") else None,
         "n_obs": res.n_obs, "n_units": res.n_units,
         "not_estimated": {str(k): str(v) for k, v in res.dropped.items()},
+        "test_distribution": res.test_distribution,
     }
+    if name in ("random", "mundlak", "within_between"):
+        entry["unit_variance_at_zero"] = res.unit_variance_at_zero
+        entry["boundary_note"] = res.boundary_note() or None
+    if name == "within":
+        entry["unit_intercept_share"] = res.unit_intercept_share
     return res, _floats(entry)
 
 
@@ -703,10 +709,18 @@ def _tests_stage(design, say):
         found = (ref.hausman(fe, re_), ref.mundlak_test(ref.fit_design(
             design, "mundlak", method="swamy-arora", cov="cluster")))
         for (key, title), t in zip(_TESTS, found):
-            reject = np.isfinite(t.p_value) and t.p_value < 0.05
+            # the cluster-robust Wald test is read on F(q, G - 1), as the coefficients'
+            # tests use t(G - 1); the chi-squared form stays in statistic/df/p_value
+            use_f = bool(np.isfinite(t.f_p_value))
+            p_used = t.f_p_value if use_f else t.p_value
+            reject = np.isfinite(p_used) and p_used < 0.05
             tests.append(_floats({
                 "name": key, "title": title, "statistic": t.statistic, "df": t.df,
                 "p_value": t.p_value, "null": t.null,
+                "distribution": (f"F({t.df}, {t.f_df_denom:.0f})" if use_f
+                                 else f"chi-squared({t.df})"),
+                "reported_statistic": t.f_statistic if use_f else t.statistic,
+                "reported_p_value": p_used,
                 "conclusion": ("within and between effects differ (p < 0.05): the random-"
                                "intercept assumption is doubtful" if reject else
                                "no evidence at the 5% level that within and between "
@@ -888,7 +902,8 @@ def _contrast_entries(ct) -> list:
         "rope": r.get("rope"), "p_rope": r.get("P(in rope)"),
         "reference_estimate": r.get("reference estimate"),
         "reference_lower": r.get("reference lower"),
-        "reference_upper": r.get("reference upper")}) for cov_name, r in ct.iterrows()]
+        "reference_upper": r.get("reference upper"),
+        "reference_se": r.get("reference se")}) for cov_name, r in ct.iterrows()]
 
 
 def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, progress_bars):

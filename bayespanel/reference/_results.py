@@ -53,9 +53,18 @@ class ReferenceResult:
         Residual degrees of freedom of the regression that was solved.
     sigma_unit, sigma_obs, icc : float
         Unit-level and occasion-level standard deviations and the intraclass
-        correlation ``sigma_unit^2 / (sigma_unit^2 + sigma_obs^2)``. For fixed effects
-        ``sigma_unit`` is the spread of the estimated unit intercepts (descriptive); for
-        pooled and between fits the parts that are not defined are ``nan``.
+        correlation ``sigma_unit^2 / (sigma_unit^2 + sigma_obs^2)``. Parts a fit does not
+        define are ``nan``: ``sigma_unit`` and ``icc`` of fixed-effects fits (the unit
+        intercepts are free parameters, not draws from a distribution; see
+        :attr:`unit_intercept_share`), of pooled fits, and both SDs of between fits.
+    unit_variance_at_zero : bool
+        True when a random-intercept fit estimated the unit variance at exactly zero
+        (ML/REML maximum on the boundary, Swamy-Arora estimate truncated at zero).
+    unit_intercept_share : float
+        Fixed effects only: the share of the outcome's variance that the estimated unit
+        intercepts account for.
+    test_distribution : str
+        The distribution the p-values and intervals use, from :attr:`df_resid`.
     n_obs, n_units : int
         Rows and units the estimates use.
     dropped : dict
@@ -85,7 +94,7 @@ class ReferenceResult:
         self.n_units = int(n_units)
         self.design = design
         self.dropped = dict(dropped or {})
-        self.assumptions = list(assumptions)
+        self._assumptions = list(assumptions)
         self.lengths = None if lengths is None else np.asarray(lengths)
         self.theta_by_length = None if theta is None else np.asarray(theta, dtype=float)
         self.group_count = None if group_count is None else np.asarray(group_count)
@@ -156,7 +165,50 @@ class ReferenceResult:
                          method=self.method)
         return out
 
+    @property
+    def test_distribution(self) -> str:
+        """The reference distribution of the tests and intervals, in words: ``"normal"``,
+        ``"t(9)"``, or ``"t, Satterthwaite df 3.1 to 8.7 by term"`` (CR2)."""
+        df = self._df[np.isfinite(self._df)] if len(self._df) else self._df
+        if len(df) < len(self._df) or not len(self._df):
+            return "normal" if not len(df) else "normal or t by term"
+        lo, hi = float(df.min()), float(df.max())
+        if hi - lo < 1e-9:
+            return f"t({lo:.0f})" if abs(lo - round(lo)) < 1e-9 else f"t({lo:.1f})"
+        return f"t, Satterthwaite df {lo:.1f} to {hi:.1f} by term"
+
+    @property
+    def assumptions(self) -> list:
+        """What the estimator assumes, in plain language, ending with the distribution its
+        tests use (read from the covariance actually computed)."""
+        dist = self.test_distribution
+        df = self._df[np.isfinite(self._df)]
+        if dist == "normal":
+            text = "the normal distribution (large-sample likelihood theory)"
+        elif self.cov_type == "cluster":
+            G = self.extra.get("n_clusters", self.n_units)
+            text = (f"the t distribution with G - 1 = {df.min():.0f} degrees of freedom "
+                    f"(G = {G} units as clusters)")
+        elif self.cov_type == "cr2":
+            text = (f"t distributions with each term's Satterthwaite degrees of freedom "
+                    f"({dist.split('df ')[-1].replace(' by term', '')})"
+                    if dist.startswith("t,") else
+                    f"the t distribution with {dist[2:-1]} Satterthwaite degrees of freedom")
+        else:
+            text = (f"the t distribution with the residual degrees of freedom "
+                    f"({dist[2:-1]})" if dist.startswith("t(") else dist)
+        return self._assumptions + [f"Tests and intervals use {text}."]
+
     # ------------------------------------------------------------------ variance parts
+    @property
+    def unit_variance_at_zero(self) -> bool:
+        return bool(self.estimator in ("random", "mundlak", "within_between")
+                    and self._s2u == 0.0)
+
+    @property
+    def unit_intercept_share(self) -> float:
+        return float(self.extra.get("unit_intercept_share", float("nan")))
+
     @property
     def sigma_unit(self) -> float:
         return float(np.sqrt(self._s2u)) if np.isfinite(self._s2u) else float("nan")
@@ -180,6 +232,9 @@ class ReferenceResult:
         """
         rows = [("unit SD", self.sigma_unit, np.nan), ("occasion SD", self.sigma_obs, np.nan),
                 ("ICC", self.icc, np.nan)]
+        if self.estimator == "within":
+            rows = [rows[1], ("share of outcome variance in unit intercepts",
+                              self.unit_intercept_share, np.nan)]
         if self.theta_by_length is not None:
             for T, th, c in zip(self.lengths, self.theta_by_length, self.group_count):
                 rows.append((f"theta (T={int(T)})", float(th), float(c)))
@@ -232,10 +287,43 @@ class ReferenceResult:
         if self.dropped:
             lines.append("not estimated: " + "; ".join(f"{k} ({v})" for k, v in
                                                        self.dropped.items()))
+        lines.append(f"tests and intervals: {self.test_distribution}")
         lines.append(self.table().to_string(float_format=lambda v: f"{v:.4g}"))
-        lines.append(f"unit SD {self.sigma_unit:.4g}, occasion SD {self.sigma_obs:.4g}, "
-                     f"ICC {self.icc:.3g}")
+        notes = self.notes()
+        if notes:
+            lines.append("notes: " + " ".join(notes))
         return "\n".join(lines)
+
+    def notes(self) -> list:
+        """Plain sentences on the variance parts of this fit (for tables and summaries)."""
+        if self.estimator == "within":
+            sh = self.unit_intercept_share
+            return [f"The estimated unit intercepts account for {100 * sh:.0f}% of the "
+                    f"outcome's variance; the occasion-level residual SD is "
+                    f"{self.sigma_obs:.4g}."] if np.isfinite(sh) else []
+        if self.estimator in ("random", "mundlak", "within_between"):
+            out = [f"Unit SD {self.sigma_unit:.4g} and occasion SD {self.sigma_obs:.4g} "
+                   f"(ICC {self.icc:.3g})."]
+            if self.unit_variance_at_zero:
+                out.append(self.boundary_note())
+            return out
+        return []
+
+    def boundary_note(self) -> str:
+        """What a unit variance estimated at zero means, in plain words ("" otherwise)."""
+        if not self.unit_variance_at_zero:
+            return ""
+        how = {"swamy-arora": "the Swamy-Arora estimate came out negative and was set to "
+                              "zero",
+               "ml": "the likelihood is highest at zero",
+               "reml": "the restricted likelihood is highest at zero"}.get(self.method,
+                                                                           "it is zero")
+        return (f"The unit variance is estimated at zero ({how}): the unit means of the "
+                "residuals vary no more than occasion noise alone would make them vary. The "
+                "fit then treats the units as alike, so its coefficients equal pooled least "
+                "squares, and the ICC is 0. This does not show that units do not differ: "
+                "with few units a real unit variance is often estimated at zero. The "
+                "Bayesian models' posterior of the unit SD shows which values the data allow.")
 
     def __repr__(self) -> str:
         return (f"<ReferenceResult {self.estimator}"

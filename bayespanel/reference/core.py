@@ -279,11 +279,13 @@ def gls_core(ss, sigma2_unit, sigma2_obs, cols=None, priority=None) -> CoreFit:
 def swamy_arora_components(ss, priority=None):
     """Swamy-Arora variance components, in the unbalanced form of Baltagi and Chang (1994).
 
-    ``sigma_e^2`` is the within residual variance (degrees of freedom ``n - N - r_w``, with
-    ``r_w`` the rank of the covariates that vary within units). ``sigma_u^2`` is
-    ``(e_b' e_b - (N - r_b) sigma_e^2) / (n - tr[(X'PX)^{-1} X'P P X])`` with ``P`` the
+    ``sigma_obs^2`` is the within residual variance (degrees of freedom ``n - N - r_w``,
+    with ``r_w`` the rank of the covariates that vary within units). ``sigma_unit^2`` is
+    ``(e_b' e_b - (N - r_b) sigma_obs^2) / (n - tr[(X'PX)^{-1} X'P P X])`` with ``P`` the
     projection on unit means and ``e_b`` the residuals of the between regression on all
-    rows; truncated at zero. On balanced panels this is ``s_b^2 - sigma_e^2 / T``.
+    rows; truncated at zero (the value before truncation is ``info["sigma2_unit_raw"]``
+    and ``info["boundary"]`` says whether it was cut). On balanced panels this is
+    ``s_b^2 - sigma_obs^2 / T``.
     """
     k = ss.p - 1
     w = within_core(ss, priority=priority, allow_empty=True)
@@ -302,9 +304,11 @@ def swamy_arora_components(ss, priority=None):
             "unit-level covariates")
     At2 = _cp_units(ss, s, ss.lengths.astype(float) ** 2)     # sum T_i^2 zbar zbar'
     tr = float(np.trace(bread_t @ At2[np.ix_(cols_b, cols_b)]))
-    s2u = max(0.0, (ssr_t - df_b * s2e) / (ss.n - tr))
+    raw = (ssr_t - df_b * s2e) / (ss.n - tr)
+    s2u = max(0.0, raw)
     return s2u, s2e, {"df_within": w.df_resid, "df_between": df_b, "trace": tr,
-                      "ssr_between": ssr_t}
+                      "ssr_between": ssr_t, "sigma2_unit_raw": float(raw),
+                      "boundary": bool(raw <= 0.0)}
 
 
 def swamy_arora_core(ss, cols=None, priority=None) -> CoreFit:

@@ -67,7 +67,7 @@ _ASSUME = {
     ],
     "random": [
         "The unit intercepts are random, with one variance, and uncorrelated with every "
-        "covariate on every occasion (check with hausman and mundlak_test).",
+        "covariate on every occasion (the Hausman and Mundlak tests check this).",
         "Within and between effects of each covariate are equal (one coefficient).",
         "Classical errors: homoskedastic unit effects and occasion errors.",
     ],
@@ -89,10 +89,9 @@ _ASSUME = {
 _METHOD_NOTE = {
     "swamy-arora": "Variance components by Swamy-Arora (unbalanced form of Baltagi and "
                    "Chang 1994), truncated at zero.",
-    "ml": "Variance components by maximum likelihood under normal unit effects and errors; "
-          "tests use the normal distribution.",
+    "ml": "Variance components by maximum likelihood under normal unit effects and errors.",
     "reml": "Variance components by restricted maximum likelihood under normal unit "
-            "effects and errors; tests use the normal distribution.",
+            "effects and errors.",
 }
 
 
@@ -397,8 +396,10 @@ def fit_stats(estimator, ss, labels, *, method=None, outcome=None) -> ReferenceR
     ubar = ss.unit_mean @ v  # no N x k copy of the unit means
     extra = dict(fit.extra)
     if estimator == "within":
-        multi = ss.unit_count > 1
-        s2u = float(np.var(ubar[multi], ddof=1)) if multi.sum() > 1 else float("nan")
+        # the unit intercepts are parameters here, not a variance component: report the
+        # share of the outcome's variance they account for instead of an SD and an ICC
+        extra["unit_intercept_share"] = _intercept_share(ss, ubar)
+        s2u = float("nan")
     elif estimator == "between":
         extra["sigma_between"] = float(np.sqrt(fit.sigma2))
         s2e = float("nan")
@@ -416,6 +417,20 @@ def fit_stats(estimator, ss, labels, *, method=None, outcome=None) -> ReferenceR
         group_count=None if fit.lengths is None else ss.group_count.copy(),
         loglik=fit.loglik, outcome=outcome, extra=extra, refit_info={"method": method},
     )
+
+
+def _intercept_share(ss, ubar) -> float:
+    """Share of the outcome's variance (sum of squares about its mean, over the units
+    with more than one row) that the estimated unit intercepts ``ubar`` account for:
+    ``sum_i T_i (a_i - abar)^2 / sum_it (y_it - ybar)^2``."""
+    multi = ss.unit_count > 1
+    if multi.sum() < 2:
+        return float("nan")
+    T = ss.unit_count[multi].astype(float)
+    a, yb = ubar[multi], ss.unit_mean[multi, -1]
+    spread = float(np.sum(T * (a - np.average(a, weights=T)) ** 2))
+    tss = float(ss.within[-1, -1] + np.sum(T * (yb - np.average(yb, weights=T)) ** 2))
+    return spread / tss if tss > 0 else float("nan")
 
 
 def _priority(labels):

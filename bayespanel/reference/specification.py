@@ -124,7 +124,8 @@ def hausman(first, second=None, formula=None, *, occasion_effects=False, terms=N
                       "cluster-robust ones use mundlak_test", UserWarning,
                       skip_file_prefixes=(_PKG_DIR,))
         notes.append("Covariances are not classical: the statistic is not the classical "
-                     "Hausman test; mundlak_test is the robust alternative.")
+                     "Hausman test; the cluster-robust Mundlak test is the robust "
+                     "alternative.")
     common = [t for t in fe.labels if t in re.labels and t != "Intercept"]
     if terms is not None:
         bad = [t for t in terms if t not in common]
@@ -144,7 +145,7 @@ def hausman(first, second=None, formula=None, *, occasion_effects=False, terms=N
             f"(eigenvalues {np.array2string(lam, precision=3)}); the statistic uses a "
             f"generalised inverse on its positive part, with {rank} degree(s) of freedom "
             f"instead of {q}. This happens in small samples or when the random-effects "
-            "assumptions fail; mundlak_test does not have this problem.")
+            "assumptions fail; the cluster-robust Mundlak test does not have this problem.")
     p = float(stats.chi2.sf(stat, rank)) if rank > 0 else float("nan")
     verdict = ("Random effects look inconsistent at the 5% level: prefer fixed effects or "
                "a Mundlak / within-between model." if p < 0.05 else
