@@ -37,8 +37,8 @@ def test_within_part_matches_linearmodels_demeaning(wage_panel):
 
     panel = bp.Panel(wage_panel, unit="nr", time="year")
     d = panel.describe(["lwage"])
-    pdata = PanelData(wage_panel.set_index(["nr", "year"])[["lwage"]])
-    dm = pdata.demean("entity").values2d.ravel()
+    lm_wages = PanelData(wage_panel.set_index(["nr", "year"])[["lwage"]])
+    dm = lm_wages.demean("entity").values2d.ravel()
     assert d.loc["lwage", "sd_within"] == pytest.approx(np.sqrt((dm ** 2).sum() / (len(dm) - 1)), rel=1e-10)
     # variance decomposition identity: SS_total = SS_within + sum_i T_i (xbar_i - xbar)^2
     x = wage_panel["lwage"]
