@@ -179,6 +179,8 @@ def reference_stage(settings, panel, design, say):
             "n_obs": res.n_obs, "n_units": res.n_units,
             "not_estimated": {str(k): str(v) for k, v in res.dropped.items()},
             "family": settings.family,
+            "test_distribution": (f"t({res.n_units - 1})" if res.cov_type == "cluster"
+                                  else "normal"),
             "average_marginal_effects": [_floats(a) for a in _ame_records(res, prob)],
         }))
     say(f"reference fits ({_GLM_WORD[_glm_kind(settings)]}, {settings.cov} covariance): "
@@ -213,6 +215,8 @@ def tests_stage(ref_fits, panel, design, settings, say):
         "name": "mundlak", "title": f"Mundlak unit-mean terms in the {_GLM_WORD[_glm_kind(settings)]} "
                                     f"({'cluster-robust ' if res.cov_type == 'cluster' else ''}Wald)",
         "statistic": w["statistic"], "df": w["df"], "p_value": w["p_value"],
+        "distribution": (f"F({int(w['df'])}, {int(w['df2'])})" if w["kind"] == "F" else
+                         f"chi-squared({int(w['df'])})"),
         "null": "the coefficients of the unit means are zero (unit effects unrelated to the "
                 "covariates)",
         "conclusion": ("within and between effects differ (p < 0.05): unit effects are "

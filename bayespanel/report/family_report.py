@@ -79,16 +79,19 @@ def coefficient_note(r):
                     "estimand; compare the effects on the outcome scale in the next section."
                     if link == "logit" else
                     "For the log link the slopes estimate the same log rate ratios (the "
-                    "intercepts differ by sigma_unit^2/2)."))
+                    "intercepts differ by half the unit variance, unit SD^2/2)."))
     else:
         text += "No reference fit was computed."
     return note("info", text, "Scale.")
 
 
-def _interval(lo, hi):
-    from .html import fmt
+def _cells(est, u, lo, hi):
+    """Estimate, SD/SE and interval cells by the report's digits rule
+    (bayespanel.report.numbers)."""
+    from . import numbers as num
+    from .html import esc
 
-    return f"[{fmt(lo)}, {fmt(hi)}]"
+    return [esc(num.estimate(est, u)), esc(num.uncertainty(u)), esc(num.interval(lo, hi, u))]
 
 
 def effects(r):
@@ -117,12 +120,12 @@ def effects(r):
         used.add(f["name"])
         for a in f["average_marginal_effects"]:
             add(a["effect"], [Safe(tag("span", "R", cls="bp-tag ref") + esc(f["title"] + " (ref.)")),
-                              a["estimate"], a["se"], Safe(esc(_interval(a["lower"], a["upper"])))])
+                              *_cells(a["estimate"], a["se"], a["lower"], a["upper"])])
 
     for m in models:  # each model, then its reference counterpart (as the coefficient table)
         for a in m["average_marginal_effects"]:
             add(a["effect"], [Safe(tag("span", "B", cls="bp-tag bayes") + esc(m["title"])),
-                              a["mean"], a["sd"], Safe(esc(_interval(a["lower"], a["upper"])))])
+                              *_cells(a["mean"], a["sd"], a["lower"], a["upper"])])
         cp = refs_by.get(m.get("reference_counterpart"))
         if cp is not None and cp["name"] not in used:
             ref_rows(cp)
@@ -159,7 +162,7 @@ def partition_lead(r):
     if f["name"] == "gaussian" and not f["random_slopes"]:
         return None
     text = ("How much of the variance lies between units, on the scale named above each "
-            "table. The ICC is sigma_unit^2 / (sigma_unit^2 + s^2), with s^2 the "
+            "table. The ICC is unit SD^2 / (unit SD^2 + s^2), with s^2 the "
             "occasion-level variance on that scale. Reference GLMs have no unit variance.")
     return tag("p", text, cls="bp-lead")
 
