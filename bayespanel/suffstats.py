@@ -9,11 +9,14 @@ through
   the centred cross-products of their unit means,
 * ``n``, the global mean and the centred total cross-products.
 
-The pass is a map-reduce. :func:`partial` summarises any block of rows (units may be split
-across blocks) as a :class:`Partial`; :func:`merge` combines two blocks with the pairwise
-update of Chan, Golub and LeVeque (1979), applied to the totals and to every unit split
-between blocks; :func:`finalize` turns the merged result into :class:`SuffStats`. The
-in-memory :func:`compute` is the same thing on one block.
+Out of core the pass is a map-reduce. :func:`partial` summarises any block of rows (units
+may be split across blocks) as a :class:`Partial`; :func:`merge` combines two blocks with
+the pairwise update of Chan, Golub and LeVeque (1979), applied to the totals and to every
+unit split between blocks; :func:`finalize` turns the merged result into
+:class:`SuffStats`. In memory, :func:`compute` (= :func:`compute_chunked`) reads the rows
+once, centred first on a reference point and then on their unit means, with a kernel
+compiled by numba when it pays and bit-identical numpy otherwise (see "the in-memory
+pass" below).
 
 References
 ----------
@@ -23,6 +26,9 @@ References
 
 from __future__ import annotations
 
+import os
+import sys
+import threading
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -170,28 +176,13 @@ _UNIT_STEP = 1 << 13
 def finalize(part: Partial, names=None) -> SuffStats:
     """Turn merged block moments into :class:`SuffStats` (groups by panel length).
 
-    The group statistics are swept over slices of units, so the only ``N x p`` array
-    made here is the result's ``unit_mean``.
+    The group statistics are one sweep over the unit offsets (``_group_pass``), so the
+    only ``N x p`` array made here is the result's ``unit_mean``.
     """
     counts = part.counts
-    lengths, ginv = np.unique(counts, return_inverse=True)
-    ginv = ginv.ravel()
-    D, p, N = len(lengths), part.p, len(counts)
-    gcount = np.bincount(ginv, minlength=D).astype(np.int64)
-    # group means of the unit offsets, then cross-products of the offsets about them
-    gmean_o = np.empty((D, p))
-    for j in range(p):
-        gmean_o[:, j] = np.bincount(ginv, weights=part.offsets[:, j], minlength=D)
-    gmean_o /= gcount[:, None]
-    gcp = np.zeros((D, p, p))
-    for a in range(0, N, _UNIT_STEP):
-        g = ginv[a:a + _UNIT_STEP]
-        dev = part.offsets[a:a + _UNIT_STEP] - gmean_o[g]
-        for d in np.unique(g):
-            sel = dev[g == d]
-            gcp[d] += sel.T @ sel
+    lengths, gcount, gmean_o, gcp = _group_pass(part.offsets, counts)
     return SuffStats(
-        n=int(part.n), n_units=int(N), mean=part.mean, total=part.m2.copy(),
+        n=int(part.n), n_units=int(len(counts)), mean=part.mean, total=part.m2.copy(),
         within=part.within_m2.copy(), unit_count=counts.copy(), unit_mean=part.offsets + part.ref,
         lengths=lengths.astype(np.int64), group_count=gcount,
         group_mean=(gmean_o - part.shift) + part.mean,
@@ -200,14 +191,11 @@ def finalize(part: Partial, names=None) -> SuffStats:
 
 
 def compute(X, y, unit_codes, names=None) -> SuffStats:
-    """Sufficient statistics of ``Z = [X, y]`` grouped by ``unit_codes`` (one pass)."""
-    X = np.asarray(X, dtype=float)
-    y = np.asarray(y, dtype=float).reshape(-1, 1)
-    if X.ndim == 1:
-        X = X[:, None]
-    if X.shape[0] != y.shape[0] or len(unit_codes) != y.shape[0]:
-        raise ValueError("X, y and unit_codes must have the same number of rows")
-    return finalize(partial(np.hstack([X, y]), np.asarray(unit_codes)), names=names)
+    """Sufficient statistics of ``Z = [X, y]`` grouped by ``unit_codes`` (one pass).
+
+    The same as :func:`compute_chunked` (kept as the short name).
+    """
+    return compute_chunked(X, y, unit_codes, names=names)
 
 
 def from_design(design, kind: str = "random") -> SuffStats:
@@ -298,14 +286,421 @@ def partial_inplace(Z: np.ndarray, keys: np.ndarray) -> Partial:
     return _finish(n, ref, counts, offsets, Z.T @ Z, ukeys)
 
 
-def compute_chunked(X, y, unit_codes, names=None, chunk_rows: int = 1 << 14) -> SuffStats:
-    """:func:`compute` with bounded working memory: ``O(chunk_rows * p + N * p)``.
+# ---------------------------------------------------------------------------- the in-memory pass
+#
+# The pass computes, for the columns ``z = [x, y]`` of each row about a reference point
+# ``ref``, each unit's offset (the unit mean of ``z - ref``) and the within cross-products
+# ``sum_it d_it d_it'`` with ``d_it = (z_it - ref) - offset_i``; the same code then takes
+# the unit offsets as rows and the panel lengths as units, which gives the group means
+# and cross-products. It exists twice, with the same floating-point operations in the
+# same order, so the two give bit-identical results: compiled by numba (rows sorted by
+# unit are read once from memory) and in numpy (the fallback when numba is missing, and
+# for small inputs). The order is fixed by these rules:
+#
+# * a unit's sum adds its rows ``z - ref`` one at a time, in row order, from zero; the
+#   offset is that sum divided by the unit's row count;
+# * rows are taken in blocks of :data:`_ROW_BLOCK` consecutive rows (from row 0; the last
+#   block padded with zero rows to a multiple of :data:`_LANES`). In a block, the product
+#   ``d_j d_l`` (``j <= l``) of the row at position ``t`` is added to lane ``t mod
+#   _LANES``, rows in order, each lane from zero; the lanes are then added in order
+#   (lane 0 first) and that sum is added to the result, block after block;
+# * for the groups by panel length, the rows are the unit offsets of the units of one
+#   length, in unit order, the units are those groups, and the same two rules apply.
+#
+# The lanes let the compiled loop use the processor's vector units without reassociating
+# any sum (numba compiles without ``fastmath``), so nothing depends on the machine. The
+# sums are short (at most ``_ROW_BLOCK / _LANES`` products per lane, ``_LANES`` lanes per
+# block), and the rows are centred on the reference point and on their unit means before
+# any product is taken (Chan, Golub and LeVeque 1979), which keeps the accuracy of the
+# two-pass algorithm with large common offsets in the data.
 
-    Two sweeps over row slices of ``X`` and ``y`` (which are only read): the first sums
-    the rows of each unit about a reference point, the second accumulates the
-    cross-products of the rows about their unit means. :func:`compute` stacks ``[X, y]``
-    and makes three working copies of it; this makes none, so the statistics stage adds
-    almost nothing to the memory the design already holds. Same results to rounding.
+#: rows per block of the within cross-products
+_ROW_BLOCK = 4096
+#: independent partial sums per block (a multiple of the vector width of any machine)
+_LANES = 64
+#: when numba is already loaded in the process (PyTensor's default backend loads it for
+#: any PyMC model), inputs from this many rows use the compiled kernels
+_NUMBA_MIN_ROWS = 50_000
+#: when it is not, only inputs from this many rows load it: numba's import and
+#: start-up (about a second) cost more than the numpy version spends below this size
+_NUMBA_COLD_ROWS = 5_000_000
+#: None: choose as above; True: always the compiled kernels; False: always numpy
+USE_NUMBA = None
+_kernels = None  # the compiled kernels once loaded; False when numba is unavailable
+_kernels_lock = threading.Lock()
+
+
+# The kernels read the columns of a row from two arrays, X (n x k) and Y (n x m), so
+# that ``[X, y]`` is never stacked (Y is ``y[:, None]``; for the unit offsets m = 0).
+
+def _nb_flush(D, m, lanes, upper):  # pragma: no cover (compiled)
+    """Add the products of the first ``m`` rows of the block ``D`` (p x _ROW_BLOCK,
+    one column per row) to ``upper`` (rules above)."""
+    p = D.shape[0]
+    L = lanes.shape[0]
+    nb = (m + L - 1) // L
+    for t in range(m, nb * L):
+        for j in range(p):
+            D[j, t] = 0.0
+    q = 0
+    for j in range(p):
+        for l in range(j, p):
+            for t in range(L):
+                lanes[t] = 0.0
+            for c in range(nb):
+                u = D[j, c * L:(c + 1) * L]
+                v = D[l, c * L:(c + 1) * L]
+                for t in range(L):
+                    lanes[t] += u[t] * v[t]
+            s = lanes[0]
+            for t in range(1, L):
+                s += lanes[t]
+            upper[q] += s
+            q += 1
+
+
+def _nb_sorted_pass(X, Y, starts, counts, ref, offsets, upper, D, lanes):  # pragma: no cover
+    """Rows sorted by unit, read once: each unit's sum and offset from its rows, then its
+    deviations into the block buffer while the rows are in cache (compiled by numba)."""
+    k = X.shape[1]
+    p = k + Y.shape[1]
+    S = D.shape[1]
+    s = np.empty(p)
+    m = 0
+    for i in range(starts.shape[0]):
+        a = starts[i]
+        T = counts[i]
+        for j in range(p):
+            s[j] = 0.0
+        for r in range(a, a + T):
+            for j in range(k):
+                s[j] += X[r, j] - ref[j]
+            for j in range(k, p):
+                s[j] += Y[r, j - k] - ref[j]
+        for j in range(p):
+            s[j] = s[j] / T
+            offsets[i, j] = s[j]
+        for r in range(a, a + T):
+            if m == S:
+                _nb_flush(D, m, lanes, upper)
+                m = 0
+            for j in range(k):
+                D[j, m] = (X[r, j] - ref[j]) - s[j]
+            for j in range(k, p):
+                D[j, m] = (Y[r, j - k] - ref[j]) - s[j]
+            m += 1
+    _nb_flush(D, m, lanes, upper)
+
+
+def _nb_unit_sums(X, Y, codes, ref, sums):  # pragma: no cover (compiled)
+    """Sum of ``z - ref`` per unit, rows in any order (compiled by numba)."""
+    k = X.shape[1]
+    p = k + Y.shape[1]
+    for r in range(X.shape[0]):
+        c = codes[r]
+        for j in range(k):
+            sums[c, j] += X[r, j] - ref[j]
+        for j in range(k, p):
+            sums[c, j] += Y[r, j - k] - ref[j]
+
+
+def _nb_within(X, Y, codes, ref, offsets, upper, D, lanes):  # pragma: no cover (compiled)
+    """The within products of rows in any order, given the unit offsets (numba)."""
+    k = X.shape[1]
+    p = k + Y.shape[1]
+    n = X.shape[0]
+    S = D.shape[1]
+    for a in range(0, n, S):
+        m = 0
+        for r in range(a, min(a + S, n)):
+            c = codes[r]
+            for j in range(k):
+                D[j, m] = (X[r, j] - ref[j]) - offsets[c, j]
+            for j in range(k, p):
+                D[j, m] = (Y[r, j - k] - ref[j]) - offsets[c, j]
+            m += 1
+        _nb_flush(D, m, lanes, upper)
+
+
+def _nb_runs(keys, starts):  # pragma: no cover (compiled)
+    """Number of runs of equal keys written to ``starts``, or -1 if ``keys`` decrease."""
+    prev = keys[0]
+    starts[0] = 0
+    m = 1
+    for r in range(1, keys.shape[0]):
+        kr = keys[r]
+        if kr != prev:
+            if kr < prev:
+                return -1
+            starts[m] = r
+            m += 1
+            prev = kr
+    return m
+
+
+def _numba_kernels():
+    """The compiled kernels (numba caches them on disk: compiled once per machine), or
+    None when numba is not installed or the environment sets ``BAYESPANEL_NUMBA=0``."""
+    global _kernels, _nb_flush
+    with _kernels_lock:
+        if _kernels is None:
+            try:
+                if os.environ.get("BAYESPANEL_NUMBA", "1") == "0":
+                    raise ImportError
+                import numba
+            except ImportError:
+                _kernels = False
+            else:
+                jit = numba.njit(cache=True, nogil=True)
+                _nb_flush = jit(_nb_flush)  # the kernels below call the compiled version
+                _kernels = {"sorted": jit(_nb_sorted_pass), "sums": jit(_nb_unit_sums),
+                            "within": jit(_nb_within), "runs": jit(_nb_runs)}
+    return _kernels or None
+
+
+def _kernels_for(n):
+    """The compiled kernels if they are to be used for ``n`` rows, else None (numpy)."""
+    if USE_NUMBA is None:
+        if n < _NUMBA_MIN_ROWS or (n < _NUMBA_COLD_ROWS and "numba" not in sys.modules):
+            return None
+    elif not USE_NUMBA:
+        return None
+    kern = _numba_kernels()
+    if USE_NUMBA and kern is None:
+        raise RuntimeError("USE_NUMBA is True but numba is not available")
+    return kern
+
+
+#: rows per slice in the numpy version (bounds its temporaries)
+_NP_STEP = 1 << 14
+
+
+def _np_block(X, Y, ref, step):
+    """``block(a, b)``: rows a..b of ``Z - ref``, transposed (p x rows), written into a
+    buffer of ``step`` rows that is reused (fresh arrays of this size cost page faults)."""
+    k, p = X.shape[1], X.shape[1] + Y.shape[1]
+    buf = np.empty((p, step))
+    ref = ref[:, None]
+
+    def block(a, b):
+        Z = buf[:, :b - a]
+        Z[:k] = X[a:b].T
+        Z[k:] = Y[a:b].T
+        Z -= ref
+        return Z
+    return block
+
+
+#: runs longer than this are summed by np.add.accumulate in the numpy version
+_NP_LONG_RUN = 32
+
+
+def _np_sums(block, runs_of, n, p, N):
+    """The unit sums of :func:`_nb_sorted_pass` / :func:`_nb_unit_sums` in numpy: each
+    unit's rows added one at a time, in row order, from zero. ``runs_of(a, b)`` gives
+    the runs of rows of one unit in the slice (``units, first, size``; first relative to
+    ``a``), or ``codes`` for rows in any order."""
+    sums = np.zeros((p, N))
+    for a in range(0, n, _NP_STEP):
+        b = min(a + _NP_STEP, n)
+        Z, runs = block(a, b), runs_of(a, b)
+        if not isinstance(runs, tuple):  # rows in any order
+            np.add.at(sums.T, runs, Z.T)  # one row at a time, in row order
+            continue
+        units, first, size = runs
+        short = np.flatnonzero(size <= _NP_LONG_RUN)
+        short = short[np.argsort(-size[short], kind="stable")]  # longest first
+        neg = -size[short]
+        su, sf = units[short], first[short]
+        acc = sums[:, su]  # what the previous slice left for these units
+        for t in range(int(-neg[0]) if len(short) else 0):
+            m = int(np.searchsorted(neg, -t, side="left"))  # the runs longer than t
+            acc[:, :m] += Z[:, sf[:m] + t]
+        sums[:, su] = acc
+        for r in np.flatnonzero(size > _NP_LONG_RUN):
+            u, f = units[r], first[r]
+            rows = np.concatenate([sums[:, u:u + 1], Z[:, f:f + size[r]]], axis=1)
+            sums[:, u] = np.add.accumulate(rows, axis=1)[:, -1]  # one at a time, in order
+    return np.ascontiguousarray(sums.T)  # the layout of the kernels' result
+
+
+def _np_within(block, codes_of, offsets, n, p, upper):
+    """:func:`_nb_flush` over every block, in numpy (same operations, same order),
+    added to ``upper``. ``block`` must hold :data:`_ROW_BLOCK` rows."""
+    npair, nc = p * (p + 1) // 2, _ROW_BLOCK // _LANES
+    D = np.zeros((p, nc, _LANES))  # a block, its rows in chunks of _LANES
+    P = np.empty((nc, npair, _LANES))  # the products of each chunk
+    for a in range(0, n, _ROW_BLOCK):
+        b = min(a + _ROW_BLOCK, n)
+        m = b - a
+        flat = D.reshape(p, -1)
+        flat[:, :m] = block(a, b)
+        flat[:, :m] -= offsets[codes_of(a, b)].T
+        flat[:, m:] = 0.0  # as the kernel pads the last chunk
+        used = -(-m // _LANES)
+        q = 0
+        for j in range(p):
+            np.multiply(D[j, :used, None], D[j:, :used].transpose(1, 0, 2),
+                        out=P[:used, q:q + p - j])
+            q += p - j
+        lanes = P[0].copy()
+        for c in range(1, used):  # lane t gets the rows t, t + L, ... in order
+            lanes += P[c]
+        upper += np.add.accumulate(lanes, axis=1)[:, -1]  # the lanes in order
+    return upper
+
+
+def _sorted_slices(starts, counts):
+    """``(runs_of, codes_of)`` for rows sorted by unit with run ``starts``."""
+    ends = starts + counts
+
+    def runs_of(a, b):  # units meeting rows a..b, their first row (from a), their size
+        u0 = int(np.searchsorted(starts, a, side="right")) - 1
+        u1 = int(np.searchsorted(starts, b, side="left"))
+        first = np.maximum(starts[u0:u1], a)
+        return np.arange(u0, u1), first - a, np.minimum(ends[u0:u1], b) - first
+
+    def codes_of(a, b):
+        units, _, size = runs_of(a, b)
+        return np.repeat(units, size)
+    return runs_of, codes_of
+
+
+def _unpack(upper, p):
+    """Symmetric ``p x p`` matrices from their upper triangles (last axis)."""
+    J, L = np.triu_indices(p)
+    W = np.empty(upper.shape[:-1] + (p, p))
+    W[..., J, L] = upper
+    W[..., L, J] = upper
+    return W
+
+
+def _sorted_runs(keys, kern):
+    """``(ukeys, counts, starts)`` when ``keys`` are sorted, else ``None``."""
+    if kern is None or keys.dtype.kind not in "iu" or len(keys) == 0:
+        return _sorted_groups(keys)
+    starts = np.empty(len(keys), dtype=np.int64)
+    m = kern["runs"](keys, starts)
+    if m < 0:
+        return None
+    starts = starts[:m].copy()
+    counts = np.diff(np.append(starts, len(keys))).astype(np.int64)
+    return keys[starts], counts, starts
+
+
+def _pass(X, Y, keys, ref):
+    """``(ukeys, counts, offsets, within)`` of the rows ``[X, Y]`` grouped by ``keys``,
+    about ``ref`` (rules above; numba or numpy as :data:`USE_NUMBA` says)."""
+    n, k = X.shape
+    p = k + Y.shape[1]
+    kern = _kernels_for(n)
+    groups = _sorted_runs(keys, kern)
+    if groups is not None:
+        ukeys, counts, starts = groups
+        codes = None
+    else:
+        ukeys, codes = np.unique(keys, return_inverse=True)
+        codes = codes.ravel().astype(np.int64)
+        counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
+    N = len(ukeys)
+    if kern is not None:
+        X = np.ascontiguousarray(X, dtype=np.float64)
+        Y = np.ascontiguousarray(Y, dtype=np.float64)
+        upper = np.zeros(p * (p + 1) // 2)
+        D, lanes = np.empty((p, _ROW_BLOCK)), np.empty(_LANES)
+        if codes is None:
+            offsets = np.empty((N, p))
+            kern["sorted"](X, Y, starts, counts, ref, offsets, upper, D, lanes)
+        else:
+            sums = np.zeros((N, p))
+            kern["sums"](X, Y, codes, ref, sums)
+            offsets = sums / counts[:, None]
+            kern["within"](X, Y, codes, ref, offsets, upper, D, lanes)
+        return ukeys, counts, offsets, _unpack(upper, p)
+    if codes is None:
+        runs_of, codes_of = _sorted_slices(starts, counts)
+    else:
+        def codes_of(a, b):
+            return codes[a:b]
+        runs_of = codes_of
+    offsets = _np_sums(_np_block(X, Y, ref, _NP_STEP), runs_of, n, p, N) / counts[:, None]
+    upper = _np_within(_np_block(X, Y, ref, _ROW_BLOCK), codes_of, offsets, n, p,
+                       np.zeros(p * (p + 1) // 2))
+    return ukeys, counts, offsets, _unpack(upper, p)
+
+
+def _length_groups(counts):
+    """``(lengths, ginv)``: the distinct panel lengths and each unit's index among them."""
+    top = int(counts.max()) if len(counts) else 0
+    if top > 4 * len(counts) + 1024:  # few long units: sort instead of a long table
+        lengths, ginv = np.unique(counts, return_inverse=True)
+        return lengths, ginv.ravel().astype(np.int64)
+    seen = np.bincount(counts, minlength=top + 1)
+    lengths = np.flatnonzero(seen)
+    where = np.zeros(top + 1, dtype=np.int64)
+    where[lengths] = np.arange(len(lengths))
+    return lengths, where[counts]
+
+
+#: units per slice of a length group gathered for its cross-products (a multiple of
+#: _ROW_BLOCK, so that the slices do not move the blocks)
+_GROUP_STEP = 16 * _ROW_BLOCK
+
+
+def _group_pass(offsets, counts):
+    """``(lengths, gcount, gmean, gcp)`` of the unit offsets grouped by panel length:
+    the mean of the offsets of the units of each length and their centred
+    cross-products (rules above; numba or numpy, bit-identical)."""
+    lengths, ginv = _length_groups(counts)
+    D, (N, p) = len(lengths), offsets.shape
+    gcount = np.bincount(ginv, minlength=D).astype(np.int64)
+    kern = _kernels_for(N)
+    Y, zero = np.empty((N, 0)), np.zeros(p)
+    if kern is not None:
+        offsets = np.ascontiguousarray(offsets, dtype=np.float64)
+        sums = np.zeros((D, p))
+        kern["sums"](offsets, Y, ginv, zero, sums)
+    else:
+        sums = _np_sums(_np_block(offsets, Y, zero, _NP_STEP), lambda a, b: ginv[a:b], N, p, D)
+    gmean = sums / gcount[:, None]
+    upper = np.zeros((D, p * (p + 1) // 2))
+    if D == 1:
+        slices = [(0, None)]
+    else:  # the units of each length in unit order (stable sort), in slices
+        order = np.argsort(ginv.astype(np.uint16 if D < 65536 else np.int64), kind="stable")
+        bounds = np.concatenate([[0], np.cumsum(gcount)])
+        slices = [(d, order[a:min(a + _GROUP_STEP, bounds[d + 1])])
+                  for d in range(D) for a in range(bounds[d], bounds[d + 1], _GROUP_STEP)]
+    buf = (np.empty((p, _ROW_BLOCK)), np.empty(_LANES)) if kern is not None else None
+    for d, idx in slices:
+        M = offsets if idx is None else offsets[idx]
+        m = len(M)
+        codes = np.zeros(m, dtype=np.int64)
+        if kern is not None:
+            kern["within"](M, Y[:m], codes, zero, gmean[d:d + 1], upper[d], *buf)
+        else:
+            _np_within(_np_block(M, Y[:m], zero, _ROW_BLOCK), lambda a, b: codes[a:b],
+                       gmean[d:d + 1], m, p, upper[d])
+    return lengths, gcount, gmean, _unpack(upper, p)
+
+
+def compute_chunked(X, y, unit_codes, names=None, chunk_rows: int = 1 << 14) -> SuffStats:
+    """:func:`compute` with bounded working memory: ``O(_ROW_BLOCK * p + N * p)``.
+
+    ``X`` and ``y`` are only read, never stacked or copied. Rows sorted by unit (as a
+    :class:`~bayespanel.design.Design` holds them) are read once by a kernel compiled
+    with numba: each unit's rows are summed about a reference point, then their
+    cross-products about the unit mean are accumulated while the rows are still in
+    cache; rows in any other order take two sweeps (unit sums, then cross-products).
+    The groups by panel length are the same computation on the unit means. Without
+    numba (or under 50,000 rows) the same arithmetic runs in numpy, in the same order,
+    with bit-identical results. The total cross-products follow exactly from the within
+    ones and the group statistics (``total = within + sum_i T_i (zbar_i - zbar)
+    (zbar_i - zbar)'``, summed by panel length), so nothing is accumulated about the
+    global mean (Chan, Golub and LeVeque 1979).
+
+    ``chunk_rows`` is accepted for compatibility; the block size is fixed so that the
+    result does not depend on it.
     """
     X = np.asarray(X, dtype=float)
     if X.ndim == 1:
@@ -317,46 +712,25 @@ def compute_chunked(X, y, unit_codes, names=None, chunk_rows: int = 1 << 14) -> 
         raise ValueError("X, y and unit_codes must have the same number of rows")
     if n == 0:
         return finalize(partial(np.zeros((0, k + 1)), keys), names=names)
-    groups = _sorted_groups(keys)
-    if groups is not None:
-        ukeys, counts, starts = groups
-
-        def codes_of(a, b):  # unit of each row of a slice, from the run starts
-            return np.searchsorted(starts, np.arange(a, b), side="right") - 1
-    else:
-        ukeys, codes = np.unique(keys, return_inverse=True)
-        codes = codes.ravel()
-        counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
-
-        def codes_of(a, b):
-            return codes[a:b]
-    N, p = len(ukeys), k + 1
-
-    def block(a, b):
-        Z = np.empty((b - a, p))
-        Z[:, :k] = X[a:b]
-        Z[:, k] = y[a:b]
-        return Z
-
-    ref = block(0, min(n, 4096)).mean(axis=0)
-    sums = np.zeros((N, p))
-    for a in range(0, n, chunk_rows):
-        b = min(a + chunk_rows, n)
-        Z = block(a, b)
-        Z -= ref
-        c = codes_of(a, b)
-        if groups is not None:
-            local = np.flatnonzero(np.concatenate([[True], c[1:] != c[:-1]]))
-            sums[c[local]] += np.add.reduceat(Z, local, axis=0)
-        else:
-            np.add.at(sums, c, Z)
-    sums /= counts[:, None]
-    offsets = sums
-    within = np.zeros((p, p))
-    for a in range(0, n, chunk_rows):
-        b = min(a + chunk_rows, n)
-        Z = block(a, b)
-        Z -= ref
-        Z -= offsets[codes_of(a, b)]
-        within += Z.T @ Z
-    return finalize(_finish(n, ref, counts, offsets, within, ukeys), names=names)
+    head = min(n, 4096)
+    ref = np.append(X[:head].mean(axis=0), y[:head].mean())
+    ukeys, counts, offsets, within = _pass(X, y[:, None], keys, ref)
+    lengths, gcount, gmean, gcp = _group_pass(offsets, counts)
+    # by panel length: sum_i T_i dev_i dev_i' = T_d [gcp_d + c_d (gmean_d - shift)(...)'],
+    # in elementwise steps over the few lengths (a matrix product could round differently
+    # for different memory layouts, and the result is to be the same on both paths)
+    weight = (lengths * gcount).astype(float)
+    shift = np.zeros(k + 1)
+    for d in range(len(lengths)):
+        shift += weight[d] * gmean[d]
+    shift /= n
+    total = within.copy()
+    for d in range(len(lengths)):
+        dev = gmean[d] - shift
+        total += float(lengths[d]) * gcp[d] + weight[d] * (dev[:, None] * dev[None, :])
+    mean = ref + shift
+    return SuffStats(
+        n=int(n), n_units=int(len(counts)), mean=mean, total=total, within=within,
+        unit_count=counts, unit_mean=offsets + ref, lengths=lengths.astype(np.int64),
+        group_count=gcount, group_mean=gmean + ref, group_cp=gcp, unit_keys=ukeys,
+        names=list(names) if names is not None else None)

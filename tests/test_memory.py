@@ -86,10 +86,9 @@ def test_statistics_stage_stays_small():
     assert res.returncode == 0, res.stderr[-2000:]
     out = json.loads(res.stdout.strip().splitlines()[-1])
     assert out["n"] == 60 * 4360
-    # the stacked [X, y] plus three working copies: the reason for compute_chunked
-    assert out["compute"] > 3.0
-    # chunked: 16,384-row slices, the unit codes (n integers) and the N x p unit-level
-    # arrays of the result and of finalize (here N = n / 8, so each is 1/8 of [X, y])
+    # both read X and y in place (compute is compute_chunked): 4,096-row blocks and the
+    # N x p unit-level arrays of the result (here N = n / 8, so each is 1/8 of [X, y])
+    assert out["compute"] < 1.1, out
     assert out["compute_chunked"] < 1.1, out
 
 

@@ -126,3 +126,115 @@ def test_merge_in_any_split_equals_one_pass(case):
         assert np.max(np.abs(getattr(got, name) - getattr(one, name))) <= 1e-9 * scale, name
     np.testing.assert_allclose(got.unit_mean, one.unit_mean, rtol=1e-12, atol=1e-9)
     np.testing.assert_array_equal(got.unit_count, one.unit_count)
+
+
+# ---------------------------------------------------------------------------- compiled pass
+# The in-memory pass runs compiled by numba or in numpy; both follow the same order of
+# floating-point operations (suffstats module comments), so they must agree bit for bit,
+# and both must agree with numpy in extended precision.
+
+FIELDS = ("mean", "total", "within", "unit_mean", "unit_count", "lengths", "group_count",
+          "group_mean", "group_cp", "unit_keys")
+
+
+def _layout(kind, rng):
+    if kind == "balanced":
+        T = np.full(700, 9)
+    elif kind == "unbalanced":
+        T = rng.integers(1, 25, 3000)  # singletons and many panel lengths
+    elif kind == "long units":  # runs longer than a numpy slice and than a block
+        T = np.array([3, 40_000, 1, 5000, 33, 32, 17_000])
+    else:
+        T = rng.integers(1, 12, 2500)
+    codes = np.repeat(np.arange(len(T)), T)
+    order = rng.permutation(len(codes)) if kind == "shuffled" else np.arange(len(codes))
+    return codes[order], order
+
+
+def _both(fn, monkeypatch):
+    out = []
+    for use in (True, False):
+        monkeypatch.setattr(ss, "USE_NUMBA", use)
+        out.append(fn())
+    return out
+
+
+@pytest.mark.parametrize("offset", [0.0, 1e8], ids=["plain", "offset-1e8"])
+@pytest.mark.parametrize("kind", ["balanced", "unbalanced", "long units", "shuffled"])
+def test_compiled_and_numpy_passes_agree_bit_for_bit(kind, offset, monkeypatch):
+    pytest.importorskip("numba")
+    rng = np.random.default_rng(11)
+    codes, _ = _layout(kind, rng)
+    n = len(codes)
+    X = np.column_stack([np.ones(n), rng.normal(size=(n, 3)) * [1.0, 1e3, 1e-3] + offset])
+    y = X[:, 1] * 0.5 + rng.normal(size=n) + offset
+    a, b = _both(lambda: ss.compute_chunked(X, y, codes, names=["a", "b", "c", "d", "y"]),
+                 monkeypatch)
+    for f in FIELDS:
+        np.testing.assert_array_equal(getattr(a, f), getattr(b, f), err_msg=f)
+    assert a.names == b.names
+
+
+@pytest.mark.parametrize("kind", ["unbalanced", "shuffled"])
+def test_both_passes_equal_extended_precision_with_large_offsets(kind, monkeypatch):
+    # Reference: numpy in extended precision (np.longdouble), one unit at a time; data
+    # with a common offset of 1e8, on more rows than the compiled kernels' threshold.
+    rng = np.random.default_rng(5)
+    codes, _ = _layout(kind, rng)
+    n = len(codes)
+    X = np.column_stack([np.ones(n), rng.normal(size=(n, 2)) + 1e8])
+    y = X[:, 1:] @ np.array([0.5, -1.0]) + rng.normal(size=n) + 1e8
+    runs = _both(lambda: ss.compute_chunked(X, y, codes), monkeypatch) \
+        if ss._numba_kernels() else [ss.compute_chunked(X, y, codes)]
+    Z = np.column_stack([X, y])
+    ref = dense(Z, codes)
+    for stats in runs:
+        for name in ("within", "total", "unit_mean", "mean"):
+            assert rel(getattr(stats, name), ref[name]) < 1e-12, name
+        groups = group_dense(ref["unit_mean"], ref["unit_count"])
+        for d, T in enumerate(stats.lengths):
+            c, m, cp = groups[int(T)]
+            assert rel(stats.group_mean[d], m) < 1e-12
+            if c > 1:
+                assert rel(stats.group_cp[d], cp) < 1e-11
+
+
+_NO_NUMBA = """
+import sys
+sys.modules["numba"] = None  # as if numba were not installed
+import numpy as np
+from bayespanel import suffstats as ss
+d = np.load(sys.argv[1])
+st = ss.compute_chunked(d["X"], d["y"], d["codes"])
+np.savez(sys.argv[2], **{f: getattr(st, f) for f in %r})
+ss.USE_NUMBA = True
+try:
+    ss.compute_chunked(d["X"], d["y"], d["codes"])
+except RuntimeError as exc:
+    print("refused:", exc)
+""" % (FIELDS,)
+
+
+def test_without_numba_the_numpy_pass_gives_the_same_numbers(tmp_path, monkeypatch):
+    # The fallback when numba is missing (a fresh interpreter that cannot import it)
+    # gives exactly the numbers of the compiled pass.
+    import subprocess
+    import sys
+
+    pytest.importorskip("numba")
+    rng = np.random.default_rng(8)
+    codes, _ = _layout("unbalanced", rng)
+    n = len(codes)
+    X = rng.normal(size=(n, 4)) + 1e6
+    y = rng.normal(size=n)
+    np.savez(tmp_path / "in.npz", X=X, y=y, codes=codes)
+    res = subprocess.run([sys.executable, "-c", _NO_NUMBA, str(tmp_path / "in.npz"),
+                          str(tmp_path / "out.npz")], capture_output=True, text=True,
+                         timeout=300)
+    assert res.returncode == 0, res.stderr[-2000:]
+    assert "refused: USE_NUMBA is True but numba is not available" in res.stdout
+    monkeypatch.setattr(ss, "USE_NUMBA", True)
+    compiled = ss.compute_chunked(X, y, codes)
+    got = np.load(tmp_path / "out.npz")
+    for f in FIELDS:
+        np.testing.assert_array_equal(got[f], getattr(compiled, f), err_msg=f)
