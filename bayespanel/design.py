@@ -19,7 +19,7 @@ import pandas as pd
 from . import suffstats as _ss
 from .errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
                      SpecificationError, choices_error)
-from .formula import safe_context, screen
+from .formula import outcome_values, safe_context, screen
 
 __all__ = ["Design", "DesignSpec", "KINDS", "group_means", "kind_transform", "check_stats",
            "check_terms", "check_flag", "refuse_complex"]
@@ -409,7 +409,7 @@ class Design:
         frame = panel._df
         screened = screen(formula, panel.columns)
         used = [c for c in screened.columns if c not in (panel.unit, panel.time)]
-        if screened.outcome in (panel.unit, panel.time):
+        if set(screened.outcome_columns) & {panel.unit, panel.time}:
             raise FormulaError(
                 f"the outcome {screened.outcome!r} is the panel's unit or time column")
         if panel.unit in screened.columns:
@@ -423,8 +423,8 @@ class Design:
             if _numeric(frame[c]) or pd.api.types.is_bool_dtype(frame[c]):
                 continue
             in_c = re.search(r"C\(\s*`?" + re.escape(c) + r"`?\s*[,)]", screened.rhs)
-            if c == screened.outcome or not in_c:
-                _refuse_text(panel, c, screened.outcome)
+            if c in screened.outcome_columns or not in_c:
+                _refuse_text(panel, c, screened.outcome_columns)
         used = list(dict.fromkeys(used))
         order = panel._order
         miss = {}
@@ -508,18 +508,14 @@ class Design:
         for j, o in enumerate(extra):
             X[:, k0 + j] = time == o
         terms += [f"occasion[{o}]" for o in extra]
-        y = take(frame[screened.outcome].to_numpy(dtype=float, na_value=np.nan))
+        if screened.outcome_expr is None:
+            y = take(frame[screened.outcome].to_numpy(dtype=float, na_value=np.nan))
+        else:  # a transform of columns (log(gsp)), on the estimation rows
+            cols = list(screened.outcome_columns)
+            y = outcome_values(screened, frame[cols] if idx is None else frame[cols].take(idx))
+            _check_finite(y, f"the outcome {screened.outcome!r}", frame, panel, idx)
         for j in range(X.shape[1]):
-            bad = ~np.isfinite(X[:, j])
-            if bad.any():
-                r = int(np.flatnonzero(bad)[0])
-                pos = r if idx is None else int(idx[r])
-                raise PanelDataError(
-                    f"term {terms[j]!r} is not finite at {panel.unit}="
-                    f"{_plain(frame[panel.unit].iloc[pos])!r}, "
-                    f"{panel.time}={_plain(frame[panel.time].iloc[pos])!r}"
-                    " (a transform such as log of a non-positive value?)"
-                )
+            _check_finite(X[:, j], f"term {terms[j]!r}", frame, panel, idx)
         stats = _check_columns(X, y, terms, screened.outcome, units_codes)
         spec = DesignSpec(formula=formula, unit=panel.unit, time=panel.time,
                           occasion_effects=bool(occasion_effects))
@@ -530,11 +526,24 @@ class Design:
                    n_input_rows=len(frame), stats=stats)
 
 
+def _check_finite(values, what, frame, panel, idx):
+    """Name the first row where a term or the outcome is not finite (a transform such as
+    the log of a value that is not positive)."""
+    bad = ~np.isfinite(values)
+    if bad.any():
+        r = int(np.flatnonzero(bad)[0])
+        pos = r if idx is None else int(idx[r])
+        raise PanelDataError(
+            f"{what} is not finite at {panel.unit}={_plain(frame[panel.unit].iloc[pos])!r}, "
+            f"{panel.time}={_plain(frame[panel.time].iloc[pos])!r}"
+            " (a transform such as log of a non-positive value?)")
+
+
 def _numeric(s) -> bool:
     return pd.api.types.is_numeric_dtype(s) and not pd.api.types.is_bool_dtype(s)
 
 
-def _refuse_text(panel, c, outcome):
+def _refuse_text(panel, c, outcome_columns):
     """The error for a column that is not numeric (named, with its first bad value)."""
     s = panel.sorted_column(c)
     sample = s.dropna().astype(str).head(3).tolist()
@@ -548,7 +557,7 @@ def _refuse_text(panel, c, outcome):
                  f"{_plain(ids.at[bad.index[0], panel.time])!r} is not a number")
     raise PanelDataError(
         f"column {c!r} is not numeric (dtype {s.dtype}, values like {sample}{first}); "
-        + ("the outcome must be numeric" if c == outcome else
+        + ("the outcome must be numeric" if c in outcome_columns else
            f"convert it to numbers, or write C({c}) to use it as categories")
     )
 

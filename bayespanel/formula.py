@@ -35,7 +35,7 @@ import numpy as np
 from .errors import FormulaError
 
 __all__ = ["screen", "safe_context", "ScreenedFormula", "ALLOWED_TRANSFORMS", "LIMITS",
-           "reserved_name"]
+           "reserved_name", "outcome_values"]
 
 #: What a formula may cost (each far above what an analysis writes; docs/user-guide.md).
 LIMITS = {
@@ -110,12 +110,19 @@ class _SafeNumpy:
 
 @dataclass(frozen=True)
 class ScreenedFormula:
-    """A formula that passed screening, with its outcome and the columns it uses."""
+    """A formula that passed screening, with its outcome and the columns it uses.
+
+    ``outcome`` is the outcome's label as written (``"gsp"``, ``"log(gsp)"``);
+    ``outcome_expr`` is None for a plain column, else the transform formulaic evaluates
+    (:func:`outcome_values`); ``outcome_columns`` are the table columns it reads.
+    """
 
     text: str
     outcome: str
     rhs: str
     columns: tuple[str, ...]
+    outcome_expr: str | None = None
+    outcome_columns: tuple[str, ...] = ()
 
 
 def safe_context() -> dict:
@@ -319,10 +326,6 @@ def screen(formula: str, columns) -> ScreenedFormula:
     if not lhs:
         raise FormulaError(f"formula {formula!r} has no outcome before '~'")
     lhs_work = _BACKTICK.sub(lambda m: m.group(1), lhs)
-    if lhs_work not in colset:
-        raise FormulaError(
-            f"the outcome {lhs!r} in formula {formula!r} must be a single column of the table"
-        )
     if not rhs:
         raise FormulaError(f"formula {formula!r} has nothing after '~' (use '1' for intercept only)")
     seen = []
@@ -343,7 +346,11 @@ def screen(formula: str, columns) -> ScreenedFormula:
             "perfectly and says nothing: remove it from the right-hand side")
     for side_work in work.split("~", 1):  # the outcome may be a transform too
         _check_cost(side_work, formula, quoted)
-    return ScreenedFormula(text=text, outcome=lhs_work, rhs=rhs, columns=tuple(seen))
+    # the outcome side, once its cost is known to be bounded
+    expr, lhs_columns = _screen_outcome(lhs, lhs_work, colset, formula)
+    return ScreenedFormula(text=text, outcome=lhs_work if expr is None else lhs, rhs=rhs,
+                           columns=tuple(seen), outcome_expr=expr,
+                           outcome_columns=lhs_columns)
 
 
 # ---------------------------------------------------------------------- cost bounds
@@ -665,3 +672,68 @@ def _exact(op, x: int, y: int):
 
 def _digits(d: float) -> str:
     return "infinitely many" if not math.isfinite(d) else f"{d:,.0f}"
+
+
+#: transforms that make several columns or categories: not an outcome
+_NOT_OUTCOME = frozenset({"C", "poly"})
+
+
+def _screen_outcome(lhs, lhs_work, colset, formula):
+    """The outcome side (already screened token by token with the whole formula):
+    a column, or one term that transforms columns with the same whitelist as the
+    covariates (``log(gsp)``, ``np.sqrt(y)``, ``I(gsp / emp)``). Returns
+    ``(expr, columns)``: ``expr`` None for a plain column."""
+    if lhs_work in colset:
+        return None, (lhs_work,)
+    from formulaic import Formula
+
+    try:
+        terms = list(Formula(f"0 + {lhs}"))
+    except Exception as exc:  # formulaic's own syntax errors
+        raise FormulaError(f"cannot read the outcome {lhs!r} of formula {formula!r}: "
+                           f"{exc}") from None
+    tokens = set(re.findall(r"[A-Za-z_]\w*", lhs))
+    bad = sorted(tokens & _NOT_OUTCOME)
+    factors = [f for t in terms for f in t.factors]
+    if len(terms) != 1 or len(factors) != 1 or bad:
+        raise FormulaError(
+            f"the outcome {lhs!r} in formula {formula!r} must be one numeric column or one "
+            "transform of columns such as log(y) or I(y / x)"
+            + (f"; {bad[0]}() makes several columns" if bad else
+               "; for arithmetic on columns write it inside I(...), e.g. I(y / x)"))
+    cols = []
+    for m in re.finditer(r"`([^`]*)`|([A-Za-z_]\w*)", lhs):
+        name = m.group(1) if m.group(1) is not None else m.group(2)
+        if name in colset and name not in cols:
+            cols.append(name)
+    if not cols:
+        raise FormulaError(f"the outcome {lhs!r} in formula {formula!r} uses no column of "
+                           "the table")
+    return lhs, tuple(cols)
+
+
+def outcome_values(screened: "ScreenedFormula | str", frame) -> np.ndarray:
+    """The outcome on the rows of ``frame`` (a DataFrame holding its columns), float64.
+
+    A plain column is read as it is; a transform (``screened.outcome_expr``, or the
+    expression itself) is evaluated by formulaic in :func:`safe_context`, on these rows
+    only. Values that are not finite (log of 0, sqrt of a negative) stay NaN or inf for
+    the caller to name.
+    """
+    expr = screened if isinstance(screened, str) else screened.outcome_expr
+    if expr is None:
+        return frame[screened.outcome].to_numpy(dtype=float, na_value=np.nan)
+    from formulaic import Formula
+
+    try:
+        with np.errstate(all="ignore"):
+            mm = Formula(f"0 + {expr}").get_model_matrix(
+                frame.reset_index(drop=True), context=safe_context(), ensure_full_rank=False,
+                na_action="ignore")
+    except FormulaError:
+        raise
+    except Exception as exc:
+        raise FormulaError(f"cannot compute the outcome {expr!r}: {exc}") from None
+    if mm.shape[1] != 1:
+        raise FormulaError(f"the outcome {expr!r} gives {mm.shape[1]} columns; it must give one")
+    return np.asarray(mm, dtype=float)[:, 0]

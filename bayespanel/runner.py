@@ -243,6 +243,9 @@ class Settings:
             raise SpecificationError(f"occasion_effects={self.occasion_effects!r} must be "
                                      "true or false")
         self._check_family()
+        from .models.latent import EXTRA_PRIOR_KEYS
+        from .models.priors import check_prior
+
         for k, v in self.priors.items():
             if k == "lkj_eta":
                 if isinstance(v, bool) or not isinstance(v, (int, float)) or not v > 0:
@@ -254,6 +257,8 @@ class Settings:
                 raise SpecificationError(
                     f"priors[{k!r}]={v!r}: give a family name such as 'gamma2' or a table "
                     "like {family = 'normal', sigma = 10}")
+            if k not in EXTRA_PRIOR_KEYS:
+                check_prior(k, v)  # family and parameters, before any data is read
         return self
 
     def _check_family(self):
@@ -612,13 +617,17 @@ def _data_record(settings, panel, design, source, n_read, say):
 
 
 @contextmanager
-def _isolated(failed, say, name, title, what):
+def _isolated(failed, say, name, title, what, refuse=()):
     """Run one fit or stage; on an error, record it in ``failed`` and go on, so one
     model's failure never loses the others (``results["failed"]``, the console and the
-    report list it; the command line exits with 1). Interrupts are not caught. The
+    report list it; the command line exits with 1). Interrupts are not caught, nor the
+    errors in ``refuse`` (the reference fits come first and take milliseconds, so data
+    they cannot be fitted to is refused as bad input before anything is sampled). The
     traceback goes to the ``bayespanel`` logger (``--debug`` shows it)."""
     try:
         yield
+    except refuse:
+        raise
     except Exception as exc:  # noqa: BLE001 - any failure of one fit is recorded, not raised
         text = f"{type(exc).__name__}: {exc}" if str(exc) else type(exc).__name__
         failed.append({"name": name, "title": title, "stage": what, "error": text})
@@ -629,7 +638,8 @@ def _isolated(failed, say, name, title, what):
 def _reference_stage(settings, design, say, failed):
     fits, out = {}, []
     for name in settings.reference:
-        with _isolated(failed, say, name, REFERENCE_FITS[name][0], "reference fit"):
+        with _isolated(failed, say, name, REFERENCE_FITS[name][0], "reference fit",
+                       refuse=BayespanelError):
             res, entry = _reference_one(name, settings, design)
             fits[name] = res
             out.append(entry)
@@ -1264,12 +1274,9 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
         with _isolated(failed, say, "tests", "Hausman and Mundlak tests",
                        "specification tests"):
             tests = _tests_stage(design, say)
-    labels = {}
-    for name in settings.models:
-        try:
-            labels[name] = design.labels(_KIND_OF[name])
-        except BayespanelError:
-            labels[name] = []
+    # a model this design cannot hold (fixed effects without a covariate that varies
+    # within units) is refused as bad input here, before anything is sampled
+    labels = {name: design.labels(_KIND_OF[name]) for name in settings.models}
     _check_prior_keys(settings, labels)
     if "fixed_effects" in settings.models and design.time_constant:
         notes = notes + [f"fixed_effects leaves out {', '.join(map(repr, design.time_constant))}"

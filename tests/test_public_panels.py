@@ -147,3 +147,67 @@ def test_design_check_maps_true_occasion_effects_onto_the_hybrid_terms(munnell_p
         assert row["truth"] == pytest.approx(years[f"occasion[{y}]"])
         assert abs(row["bias"]) < 4 * row["rmse"] / np.sqrt(20)
     assert tab.loc["unemp (between - within)", "truth"] == 0.0
+
+
+LOG_MUNNELL = "log(gsp) ~ log(pcap) + log(pc) + log(emp) + unemp"
+
+
+def test_transformed_outcome_matches_ols_on_the_transformed_column(munnell_panel, munnell):
+    import statsmodels.formula.api as smf
+    from linearmodels.panel import PanelOLS
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        pooled = bp.reference.pooled(munnell_panel, LOG_MUNNELL)
+        within = bp.reference.within(munnell_panel, LOG_MUNNELL)
+    # refused before: "the outcome 'log(gsp)' ... must be a single column of the table"
+    assert pooled.design.outcome == "log(gsp)"  # the label as written
+    # outside check: statsmodels OLS on the logged column
+    ols = smf.ols("np.log(gsp) ~ np.log(pcap) + np.log(pc) + np.log(emp) + unemp",
+                  data=munnell).fit()
+    np.testing.assert_allclose(pooled.coef.to_numpy(), ols.params.to_numpy(), rtol=1e-9)
+    np.testing.assert_allclose(pooled.sigma_obs, np.sqrt(ols.scale), rtol=1e-9)
+    # outside check: linearmodels PanelOLS (entity effects) on the logged column
+    d = munnell.set_index(["state", "year"])
+    x = np.log(d[["pcap", "pc", "emp"]]).assign(unemp=d["unemp"])
+    fe = PanelOLS(np.log(d["gsp"]), x, entity_effects=True).fit()
+    np.testing.assert_allclose(within.coef.to_numpy(), fe.params.to_numpy(), rtol=1e-8)
+
+
+def test_transformed_outcome_on_the_dask_path_equals_memory(munnell, munnell_panel, tmp_path):
+    path = tmp_path / "munnell.parquet"
+    munnell.to_parquet(path)
+    p = bp.Panel.from_parquet(str(path), unit="state", time="year", engine="dask",
+                              client="synchronous")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        dask = bp.reference.fit_design(p.design("I(gsp / emp) ~ log(pcap) + unemp"), "random",
+                                       method="swamy-arora")
+        mem = bp.reference.random(munnell_panel, "I(gsp / emp) ~ log(pcap) + unemp")
+    assert p.design("I(gsp / emp) ~ unemp").outcome == "I(gsp / emp)"
+    np.testing.assert_allclose(dask.coef.to_numpy(), mem.coef.to_numpy(), rtol=1e-9)
+    # outside check: linearmodels RandomEffects on the ratio column (balanced panel:
+    # Swamy-Arora variance components)
+    from linearmodels.panel import RandomEffects
+
+    d = munnell.set_index(["state", "year"])
+    re = RandomEffects(d["gsp"] / d["emp"], pd.DataFrame(
+        {"const": 1.0, "lp": np.log(d["pcap"]), "unemp": d["unemp"]})).fit()
+    np.testing.assert_allclose(mem.coef.to_numpy(), re.params.to_numpy(), rtol=1e-6)
+
+
+@pytest.mark.parametrize("formula, needle", [
+    ("log(gsp) ~ unemp", "log(gsp)' is not finite"),          # a zero in the column
+    ("gsp / emp ~ unemp", "write it inside I(...)"),          # nesting, not division
+    ("C(gsp) ~ unemp", "C() makes several columns"),
+])
+def test_transformed_outcome_refusals_name_the_problem(munnell, formula, needle):
+    from bayespanel.errors import BayespanelError
+
+    d = munnell.copy()
+    d.loc[5, "gsp"] = 0
+    with pytest.raises(BayespanelError, match=None) as e:
+        bp.Panel(d, unit="state", time="year").design(formula)
+    assert needle in str(e.value)
+    if "finite" in needle:
+        assert "state='ALABAMA', year=1975" in str(e.value)

@@ -263,6 +263,7 @@ class BlockSpec:
     occasions: tuple = ()  # occasions given an indicator (occasion effects)
     unit_cp: bool = False  # collect per-unit within cross-products
     structure: bool = False  # also summarise the panel's structure (all rows)
+    outcome_expr: str | None = None  # a transformed outcome (log(gsp)); None: the column
 
 
 @dataclass
@@ -303,7 +304,12 @@ def _build_Z(sub: pd.DataFrame, spec: BlockSpec) -> np.ndarray:
         k0 = k - len(spec.occasions)
         for j, o in enumerate(spec.occasions):
             Z[:, k0 + j] = tv == o
-    Z[:, k] = sub[spec.outcome].to_numpy(dtype=float)
+    if spec.outcome_expr is None:
+        Z[:, k] = sub[spec.outcome].to_numpy(dtype=float)
+    else:
+        from ..formula import outcome_values
+
+        Z[:, k] = outcome_values(spec.outcome_expr, sub)
     return Z
 
 
@@ -320,6 +326,12 @@ def complete_rows(pdf: pd.DataFrame, spec: BlockSpec):
         if c != spec.time and pd.api.types.is_numeric_dtype(sub[c]):
             _check_inf(sub[c].to_numpy(dtype=float), sub, c, spec.unit, spec.time)
     Z = _build_Z(sub, spec)
+    if spec.outcome_expr is not None and not np.all(np.isfinite(Z[:, -1])):
+        r = int(np.flatnonzero(~np.isfinite(Z[:, -1]))[0])
+        raise PanelDataError(
+            f"the outcome {spec.outcome!r} is not finite ({float(Z[r, -1])!r}) at {spec.unit}="
+            f"{_plain(sub[spec.unit].iloc[r])!r}, {spec.time}={_plain(sub[spec.time].iloc[r])!r}"
+            " (a transform such as log of a value that is not positive?)")
     if Z.size and not np.all(np.isfinite(Z[:, :-1])):
         bad = int(np.flatnonzero(~np.isfinite(Z[:, :-1]).all(axis=0))[0])
         r = int(np.flatnonzero(~np.isfinite(Z[:, bad]))[0])

@@ -463,12 +463,13 @@ class DaskDesign:
         dt = p.data.dtypes
         screened = screen(formula, p.columns)
         for name in _STATEFUL:
-            if re.search(r"(?<![\w.])" + name + r"\s*\(", screened.rhs):
+            if re.search(r"(?<![\w.])" + name + r"\s*\(",
+                         f"{screened.outcome_expr or ''} {screened.rhs}"):
                 raise FormulaError(
                     f"{name}(...) in {formula!r} depends on the whole column, which the "
                     "partitioned (Dask) pass does not see at once; use the in-memory Panel, "
                     "or add the transformed column to the table first")
-        if screened.outcome in (p.unit, p.time):
+        if set(screened.outcome_columns) & {p.unit, p.time}:
             raise FormulaError(f"the outcome {screened.outcome!r} is the panel's unit or "
                                "time column")
         if p.unit in screened.columns:
@@ -481,7 +482,7 @@ class DaskDesign:
             if not (pd.api.types.is_numeric_dtype(dt[c]) or pd.api.types.is_bool_dtype(dt[c])):
                 raise PanelDataError(
                     f"column {c!r} is not numeric (dtype {dt[c]}); "
-                    + ("the outcome must be numeric" if c == screened.outcome else
+                    + ("the outcome must be numeric" if c in screened.outcome_columns else
                        "on the Dask path covariates must be numeric (C() is not available "
                        "there)"))
         used = list(dict.fromkeys(used))
@@ -505,7 +506,8 @@ class DaskDesign:
         self.formula_terms = terms
         return blk.BlockSpec(unit=p.unit, time=p.time, outcome=screened.outcome,
                              used=tuple(used), terms=tuple(terms), plain=plain,
-                             rhs=screened.rhs, occasions=occ)
+                             rhs=screened.rhs, occasions=occ,
+                             outcome_expr=screened.outcome_expr)
 
     # ------------------------------------------------------------------ the pass
     def _run(self, cluster: bool):

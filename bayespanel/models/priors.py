@@ -33,7 +33,8 @@ import numpy as np
 
 from ..errors import SpecificationError, choices_error
 
-__all__ = ["Prior", "COEF_FAMILIES", "SD_FAMILIES", "resolve_priors", "default_priors"]
+__all__ = ["Prior", "COEF_FAMILIES", "SD_FAMILIES", "resolve_priors", "default_priors",
+           "check_prior"]
 
 #: coefficient families and their parameters (all on the data scale)
 COEF_FAMILIES = {"normal": ("mu", "sigma"), "student_t": ("nu", "mu", "sigma"), "flat": ()}
@@ -179,6 +180,22 @@ def _fill(prior: Prior, *, sd_prior: bool, base_sd: float, base_mu: float = 0.0)
     return Prior(prior.family, **full)
 
 
+def check_prior(key: str, value) -> Prior:
+    """One user prior as a :class:`Prior`, checked without the data: a known family with
+    valid parameters, a standard-deviation family for ``sigma_obs`` and ``sigma_unit``
+    and a coefficient family for every other key (so a mistake is caught before any
+    sampling)."""
+    prior = _coerce(key, value)
+    sd_prior = key in SD_NAMES
+    if sd_prior != prior.is_sd:
+        fams = SD_FAMILIES if sd_prior else COEF_FAMILIES
+        what = "a standard deviation" if sd_prior else "a coefficient"
+        raise SpecificationError(
+            f"priors[{key!r}] is {what}; family {prior.family!r} does not fit, choose one "
+            f"of {', '.join(map(repr, fams))}")
+    return prior
+
+
 def resolve_priors(user, labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd) -> dict:
     """Merge the user's priors with the defaults; every entry fully specified.
 
@@ -225,14 +242,8 @@ def resolve_priors(user, labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd) 
     for key in order:
         if key not in user:
             continue
-        prior = _coerce(key, user[key])
+        prior = check_prior(key, user[key])
         sd_prior = key in SD_NAMES
-        if sd_prior != prior.is_sd:
-            fams = SD_FAMILIES if sd_prior else COEF_FAMILIES
-            what = "a standard deviation" if sd_prior else "a coefficient"
-            raise SpecificationError(
-                f"priors[{key!r}] is {what}; family {prior.family!r} does not fit, choose one "
-                f"of {', '.join(map(repr, fams))}")
         if sd_prior:
             out[key] = _fill(prior, sd_prior=True, base_sd=sd_y)
             continue
