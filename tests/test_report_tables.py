@@ -138,7 +138,7 @@ def test_every_table_shows_estimates_to_their_uncertainty(grunfeld_run):
     assert n >= 10
     # diagnostics: ESS as integers; probabilities in the contrasts with three decimals
     _, diag = _md_rows(run / "tables" / "diagnostics.md")
-    assert all(re.fullmatch(r"[\d,]+", r["min_ess_bulk"]) for r in diag)
+    assert all(re.fullmatch(r"[\d,]+", r["min bulk ESS"]) for r in diag)
     _, ct = _md_rows(run / "tables" / "contrasts.md")
     assert all(re.fullmatch(r"(< |> )?[01]\.\d{3}", r["P(> 0)"]) for r in ct)
 

@@ -16,7 +16,7 @@ import pandas as pd
 
 from . import numbers as num
 from .results_json import write_atomic
-from .text import label
+from .text import HEADINGS, label
 
 __all__ = ["coefficient_grid", "result_tables", "display_tables", "display_frame", "footer",
            "to_markdown", "to_latex", "write_tables"]
@@ -301,7 +301,8 @@ def display_tables(results: dict) -> dict[str, tuple[pd.DataFrame, list[str]]]:
          "zero coefficient, on the reference distribution with df degrees of freedom "
          "(empty df: the normal distribution).", dist, foot])
     dd = raw["data_description"]
-    out["data_description"] = (display_frame(dd), [footer(results, icc=False)])
+    out["data_description"] = (display_frame(dd).rename(columns=HEADINGS),
+                               [footer(results, icc=False)])
     if "variance_partition" in raw:
         vp = raw["variance_partition"].copy()
         vp["interval"] = [num.interval(lo, hi, u) if lo is not None and lo == lo else ""
@@ -337,11 +338,14 @@ def display_tables(results: dict) -> dict[str, tuple[pd.DataFrame, list[str]]]:
     if "comparison" in raw:
         cp = raw["comparison"].drop(columns=[c for c in ("level", "kind") if c in
                                              raw["comparison"].columns])
-        out["comparison"] = (display_frame(cp), [
+        cp = cp[[c for c in ("title",) if c in cp.columns]
+                + [c for c in cp.columns if c != "title"]]
+        out["comparison"] = (display_frame(cp).rename(columns=HEADINGS), [
             "ELPD and its SE, the difference to the best model and the SE of the paired "
             "difference; digits follow the SEs.", foot])
     if "diagnostics" in raw:
-        out["diagnostics"] = (display_frame(raw["diagnostics"]), [foot])
+        out["diagnostics"] = (display_frame(raw["diagnostics"]).rename(columns=HEADINGS),
+                              [foot])
     return out
 
 

@@ -7,7 +7,7 @@ and the docs. The wording is ours.
 from __future__ import annotations
 
 __all__ = ["BAYES_MODELS", "REFERENCE_FITS", "COUNTERPART", "CAUTION", "LEVEL_TEXT",
-           "LABELS", "label", "model_title", "reference_title"]
+           "LABELS", "HEADINGS", "label", "model_title", "reference_title"]
 
 #: Display labels of the variance quantities, defined once for every table and output
 #: (HTML, Markdown, LaTeX, console). Keys are the names results.json and the Python
@@ -20,6 +20,20 @@ LABELS = {
     "occasion SD": "occasion SD",
     "ICC": "ICC",
     "theta": "quasi-demeaning share",
+}
+
+
+#: Column headings of the tables, shared by the HTML report and the Markdown/LaTeX files
+#: (keys are results.json field names).
+HEADINGS = {
+    "title": "model", "n": "n", "n_missing": "missing", "mean": "mean",
+    "sd_overall": "SD overall", "sd_between": "SD between", "sd_within": "SD within",
+    "share_within": "share within", "varies_within": "varies within",
+    "method": "method", "elpd": "ELPD", "se": "SE", "elpd_diff": "difference",
+    "se_diff": "SE of difference", "p_loo": "p_loo", "weight": "weight",
+    "n_points": "points", "n_high_pareto_k": "high Pareto k", "note": "note",
+    "divergences": "divergences", "draws": "draws", "max_rhat": "max R-hat",
+    "min_ess_bulk": "min bulk ESS", "min_ess_tail": "min tail ESS", "min_bfmi": "min BFMI",
 }
 
 
