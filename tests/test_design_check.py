@@ -68,7 +68,7 @@ def test_known_variance_gls_has_exact_coverage(closed_form):
 
 
 def test_known_variance_gls_matches_statsmodels(closed_form):
-    # statsmodels GLS with the true block covariance sigma_u^2 J + sigma_e^2 I gives the
+    # statsmodels GLS with the true block covariance sigma_unit^2 J + sigma_obs^2 I gives the
     # same estimate and the same (exact) standard errors on replicate 0.
     import statsmodels.api as sm
 

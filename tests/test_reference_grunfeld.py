@@ -87,7 +87,7 @@ def test_textbook_values_recalled_from_memory(panel, kind):
 
 def test_swamy_arora_components_recalled_from_memory(panel):
     """Source: Baltagi ch. 2 / common textbook output for Grunfeld, recalled from memory:
-    sigma_u about 84.2 and sigma_e about 52.77 for the Swamy-Arora fit."""
+    sigma_unit about 84.2 and sigma_obs about 52.77 for the Swamy-Arora fit."""
     res = bp.reference.random(panel, FORMULA)
     assert round(res.sigma_unit, 1) == pytest.approx(84.2)
     assert round(res.sigma_obs, 2) == pytest.approx(52.77)

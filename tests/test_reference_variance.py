@@ -46,7 +46,7 @@ def test_icc_one_way_equals_shrout_fleiss(ratings_panel):
 
 
 def test_variance_partition_theta_per_panel_length(grunfeld):
-    """Source: theta_T = 1 - sqrt(sigma_e^2 / (sigma_e^2 + T sigma_u^2)) (Baltagi ch. 2),
+    """Source: theta_T = 1 - sqrt(sigma_obs^2 / (sigma_obs^2 + T sigma_unit^2)) (Baltagi ch. 2),
     one row per distinct panel length on an unbalanced panel."""
     df = grunfeld[~((grunfeld.firm == "IBM") & (grunfeld.year > 1949))]
     df = df[~((df.firm == "Chrysler") & (df.year < 1940))]
