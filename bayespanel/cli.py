@@ -9,7 +9,9 @@ docs/guarantees.md.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import logging
+import re
 import sys
 import warnings
 from pathlib import Path
@@ -32,6 +34,44 @@ _OOC_HELP = ("read a Parquet file or folder in partitions on Dask and work from 
              "the scheduler comes from BAYESPANEL_DASK_SCHEDULER")
 
 
+_UNPRINTABLE = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u061c\u200b-\u200f\u2028-\u202e"
+                          "\u2060-\u2069\ufeff]")
+
+
+def printable(text) -> str:
+    """``text`` with control and direction-changing characters written as escapes
+    (``\\x1b``), so a column name or a label cannot drive the terminal (colours, cursor
+    moves, reversed text); line breaks and tabs stay."""
+    return _UNPRINTABLE.sub(lambda m: m.group().encode("unicode_escape").decode("ascii"),
+                            str(text))
+
+
+class _Printable:
+    """A text stream that writes :func:`printable` text (the console output of a verb)."""
+
+    def __init__(self, stream):
+        self._stream = stream
+
+    def write(self, text):
+        return self._stream.write(printable(text))
+
+    def __getattr__(self, name):
+        return getattr(self._stream, name)
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    """Python's warning display, with the message made :func:`printable`."""
+    text = warnings.formatwarning(printable(message), category, filename, lineno, line)
+    (file or sys.stderr).write(text)
+
+
+def _describe_number(v) -> str:
+    """Three decimals, or four significant digits for magnitudes far from 1."""
+    if v != v or v in (float("inf"), float("-inf")):
+        return str(v)
+    return f"{v:.4g}" if v != 0 and not 1e-3 <= abs(v) < 1e7 else f"{v:.3f}"
+
+
 def _print_describe(panel, desc=None) -> None:
     s = panel.structure()
     print(f"{s['n_units']} units ({panel.unit}) observed on {s['n_occasions']} occasions "
@@ -39,9 +79,14 @@ def _print_describe(panel, desc=None) -> None:
           f"{'balanced' if s['balanced'] else 'unbalanced'}: {s['occasions_min']} to "
           f"{s['occasions_max']} occasions per unit; {s['n_units_with_gaps']} units with gaps; "
           f"{s['n_singleton_units']} units seen once.")
+    desc = panel.describe() if desc is None else desc
     with pd.option_context("display.width", 120, "display.max_columns", 20,
-                           "display.float_format", "{:.3f}".format):
-        print(panel.describe() if desc is None else desc)
+                           "display.float_format", _describe_number):
+        print(desc)
+    left_out = desc.attrs.get("left_out") or {}
+    if left_out:
+        print(f"left out ({len(left_out)}): "
+              + "; ".join(f"{c} ({why})" for c, why in left_out.items()))
 
 
 def _names(text):
@@ -574,11 +619,12 @@ def main(argv=None) -> int:
         log.setLevel(logging.DEBUG)
         log.addHandler(logging.StreamHandler(sys.stderr))
     try:
-        with warnings.catch_warnings():
+        with warnings.catch_warnings(), contextlib.redirect_stdout(_Printable(sys.stdout)):
             warnings.simplefilter("default")
+            warnings.showwarning = _show_warning
             return int(args.func(args) or 0)
     except BayespanelError as exc:
-        print(f"bayespanel: error: {exc}", file=sys.stderr)
+        print(f"bayespanel: error: {printable(exc)}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except KeyboardInterrupt:
         print("bayespanel: interrupted", file=sys.stderr)
@@ -586,8 +632,8 @@ def main(argv=None) -> int:
     except Exception as exc:  # a failure, not bad input: say what and how to see more
         if args.debug:
             raise
-        print(f"bayespanel: failed: {type(exc).__name__}: {exc} (rerun with --debug for the "
-              "traceback)", file=sys.stderr)
+        print(f"bayespanel: failed: {type(exc).__name__}: {printable(exc)} (rerun with "
+              "--debug for the traceback)", file=sys.stderr)
         return EXIT_FAILURE
 
 

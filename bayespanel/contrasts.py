@@ -114,8 +114,10 @@ def _rope_of(rope, terms):
             raise SpecificationError(
                 f"rope={rope!r} must be a positive number (half-width of the region around "
                 "0) or a dict of them by covariate") from None
-    if np.any(vals[np.isfinite(vals)] <= 0):
-        raise SpecificationError(f"rope={rope!r}: half-widths must be positive")
+    given = vals if not isinstance(rope, dict) else \
+        np.array([float(v) if isinstance(v, (int, float)) else np.nan for v in rope.values()])
+    if not np.all(np.isfinite(given) & (given > 0)):  # nan would switch the region off
+        raise SpecificationError(f"rope={rope!r}: half-widths must be finite positive numbers")
     return vals
 
 

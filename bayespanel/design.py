@@ -19,10 +19,10 @@ import pandas as pd
 from . import suffstats as _ss
 from .errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
                      SpecificationError, choices_error)
-from .formula import outcome_values, safe_context, screen
+from .formula import dependency_message, outcome_values, safe_context, screen
 
 __all__ = ["Design", "DesignSpec", "KINDS", "group_means", "kind_transform", "check_stats",
-           "check_terms", "check_flag", "refuse_complex"]
+           "check_terms", "check_flag", "refuse_complex", "occasion_label"]
 
 KINDS = ("pooled", "random", "within", "between", "mundlak", "within_between")
 _VARY_TOL = 1e-10
@@ -43,6 +43,15 @@ class DesignSpec:
 
 def _plain(v):
     return v.item() if isinstance(v, np.generic) else v
+
+
+def occasion_label(o) -> str:
+    """The label of an occasion's indicator: ``occasion[2003]``; dates without a time of
+    day as ``occasion[2003-01-13]`` (numpy would write ``2003-01-13T00:00:00.000000``)."""
+    if isinstance(o, (np.datetime64, pd.Timestamp)) or hasattr(o, "isoformat"):
+        t = pd.Timestamp(o)
+        o = t.date().isoformat() if t == t.normalize() else t.isoformat()
+    return f"occasion[{_plain(o)}]"
 
 
 def check_flag(option: str, value) -> bool:
@@ -492,7 +501,8 @@ class Design:
             except FormulaError:
                 raise
             except Exception as exc:
-                raise FormulaError(f"cannot build the design for {formula!r}: {exc}") from None
+                raise FormulaError(f"cannot build the design for {formula!r}: "
+                                   f"{dependency_message(exc)}") from None
             del sub
             terms = [str(c) for c in mm.columns]
             check_terms(terms, formula)
@@ -507,7 +517,7 @@ class Design:
         k0 = len(terms)
         for j, o in enumerate(extra):
             X[:, k0 + j] = time == o
-        terms += [f"occasion[{o}]" for o in extra]
+        terms += [occasion_label(o) for o in extra]
         if screened.outcome_expr is None:
             y = take(frame[screened.outcome].to_numpy(dtype=float, na_value=np.nan))
         else:  # a transform of columns (log(gsp)), on the estimation rows
@@ -645,13 +655,13 @@ def check_stats(stats, terms, outcome, maxabs, stacklevel=5):
     from .reference._linalg import independent_columns
 
     if stats.total[-1, -1] == 0:
-        raise PanelDataError(f"the outcome {outcome!r} is constant ({stats.mean[-1]!r}) on "
-                             "every row used")
+        raise PanelDataError(f"the outcome {outcome!r} is constant "
+                             f"({float(stats.mean[-1])!r}) on every row used")
     for j, t in enumerate(terms):
         if t != "Intercept" and stats.total[j, j] <= stats.n * (1e-14 * maxabs[j]) ** 2:
             raise PanelDataError(
-                f"covariate {t!r} is constant ({stats.mean[j]!r}) on every row used; it cannot "
-                "be told apart from the intercept")
+                f"covariate {t!r} is constant ({float(stats.mean[j])!r}) on every row used; it "
+                "cannot be told apart from the intercept")
     k = len(terms)
     if k == 0:
         return

@@ -35,7 +35,7 @@ import numpy as np
 from .errors import FormulaError
 
 __all__ = ["screen", "safe_context", "ScreenedFormula", "ALLOWED_TRANSFORMS", "LIMITS",
-           "reserved_name", "outcome_values"]
+           "reserved_name", "outcome_values", "dependency_message"]
 
 #: What a formula may cost (each far above what an analysis writes; docs/user-guide.md).
 LIMITS = {
@@ -163,6 +163,27 @@ def reserved_name(name: str) -> str | None:
     return None
 
 
+_ANSI = re.compile(r"\x1b\[[0-9;?]*[ -/]*[@-~]")
+_HIGHLIGHT = re.compile(r"\u29db?\x1b\[1;31m(.*?)\x1b\[0m\u29da?")
+
+
+def dependency_message(exc) -> str:
+    """A dependency's error message as one plain line: formulaic underlines the culprit
+    on a second line with terminal colour codes, which become ``(at 'x' in '...')``."""
+    text = str(exc)
+    culprit = context = None
+    for line in text.splitlines()[1:]:
+        m = _HIGHLIGHT.search(line)
+        if m:
+            culprit = _ANSI.sub("", m.group(1))
+            context = _ANSI.sub("", _HIGHLIGHT.sub(lambda k: k.group(1), line)).strip()
+            break
+    first = next((ln for ln in text.splitlines() if ln.strip()), type(exc).__name__)
+    first = _ANSI.sub("", first).strip()
+    first = "".join(ch if ch.isprintable() else repr(ch)[1:-1] for ch in first)
+    return first + (f" (at {culprit!r} in {context!r})" if culprit else "")
+
+
 def _limit_error(formula, piece, what, limit_key, found=None) -> FormulaError:
     found = f" ({found})" if found is not None else ""
     return FormulaError(
@@ -236,7 +257,10 @@ def screen(formula: str, columns) -> ScreenedFormula:
                   if t.type not in (tokenize.NEWLINE, tokenize.NL, tokenize.ENDMARKER,
                                     tokenize.INDENT, tokenize.DEDENT, tokenize.COMMENT)]
     except (tokenize.TokenError, IndentationError, SyntaxError) as exc:
-        raise FormulaError(f"cannot read formula {formula!r}: {exc}") from None
+        what = exc.args[0] if exc.args else type(exc).__name__
+        if "EOF" in str(what):
+            what = "a parenthesis or a quote is not closed"
+        raise FormulaError(f"cannot read formula {formula!r}: {what}") from None
 
     used: list[str] = []
     lhs_used: set[str] = set()
@@ -477,7 +501,9 @@ def _combine(node, args, piece, formula) -> frozenset:
     elif sym == "-":
         out = args[0] - args[1] if len(args) == 2 else frozenset()
     elif sym == "|":
-        out = frozenset().union(*args)
+        raise FormulaError(f"'|' in formula {_short(formula)} would split it into several "
+                           "parts, which bayespanel does not use; unit effects come from the "
+                           "model (write the covariates joined by '+')")
     elif sym in ("*", ":"):
         prod = _product(args[0], args[1], piece, formula)
         out = args[0] | args[1] | prod if sym == "*" else prod

@@ -8,7 +8,26 @@ import pandas as pd
 
 from .errors import PanelDataError
 
-__all__ = ["read_table"]
+__all__ = ["read_table", "parquet_files"]
+
+PARQUET_SUFFIXES = (".parquet", ".pq", ".parq")
+
+
+def parquet_files(folder) -> list[Path]:
+    """The Parquet files in a folder and its sub-folders (hidden and ``_``-prefixed
+    names, which Parquet writers use for metadata, are skipped); a folder without any is a
+    :class:`PanelDataError` naming what it holds instead."""
+    folder = Path(folder)
+    files = sorted(f for f in folder.rglob("*") if f.suffix.lower() in PARQUET_SUFFIXES
+                   and not any(part.startswith((".", "_"))
+                               for part in f.relative_to(folder).parts))
+    if not files:
+        others = sorted(f.name for f in folder.iterdir())[:5]
+        held = f"; it holds {', '.join(map(repr, others))}" if others else "; it is empty"
+        raise PanelDataError(
+            f"folder {str(folder)!r} holds no Parquet files "
+            f"({', '.join(PARQUET_SUFFIXES)}){held}")
+    return files
 
 
 def read_table(path, sep: str | None = None, encoding: str = "utf-8") -> pd.DataFrame:
@@ -24,7 +43,9 @@ def read_table(path, sep: str | None = None, encoding: str = "utf-8") -> pd.Data
     if path.is_file() and path.stat().st_size == 0:
         raise PanelDataError(f"file {str(path)!r} is empty")
     suffix = path.suffix.lower()
-    if suffix in (".parquet", ".pq") or path.is_dir():
+    if suffix in PARQUET_SUFFIXES or path.is_dir():
+        if path.is_dir():
+            parquet_files(path)
         try:
             return pd.read_parquet(path)
         except Exception as exc:  # pyarrow raises several types

@@ -2,19 +2,150 @@
 
 from __future__ import annotations
 
+import re
 import warnings
 from typing import Iterable
 
 import numpy as np
 import pandas as pd
 
-from .errors import PanelDataError
+from .errors import DataHandlingWarning, PanelDataError
 
-__all__ = ["Panel"]
+__all__ = ["Panel", "check_column_names"]
 
 
 def _plain(v):
     return v.item() if isinstance(v, np.generic) else v
+
+
+def check_column_names(columns, unit, time) -> None:
+    """Refuse what cannot name a column: a unit or time that is not text (a list, a
+    number), columns in several levels (a MultiIndex) and column names that are not text
+    (formulas and outputs name columns by text)."""
+    for role, col in (("unit", unit), ("time", time)):
+        if not isinstance(col, str):
+            raise PanelDataError(
+                f"{role} must be the name of one column (text), got {type(col).__name__} "
+                f"{col!r}")
+    if isinstance(columns, pd.MultiIndex):
+        raise PanelDataError(
+            f"the table's columns have {columns.nlevels} levels (a MultiIndex, e.g. "
+            f"{columns[0]!r}); join them into single names first, e.g. "
+            "df.columns = ['_'.join(map(str, c)) for c in df.columns]")
+    bad = [c for c in columns if not isinstance(c, str)]
+    if bad:
+        raise PanelDataError(
+            f"column names must be text; {bad[0]!r} is a {type(bad[0]).__name__}: rename "
+            "the columns, e.g. df.columns = df.columns.astype(str)")
+
+
+_DAY_MONTH = re.compile(r"\A\s*(\d{1,2})([/.-])(\d{1,2})\2(\d{4})\s*\Z")
+_YEAR_FIRST = re.compile(r"\A\s*(\d{4})([/.-])(\d{1,2})\2(\d{1,2})\s*\Z")
+
+
+def _text_occasions(col: pd.Series, name: str):
+    """Occasions written as text that would sort out of order as text, read as what they
+    are; None when the column is not text or sorts correctly as it is.
+
+    Dates such as ``1/13/2003`` (month first) or ``13.1.2003`` (day first) are parsed
+    when some value shows the order (a part above 12); when none does, the order is
+    ambiguous and the column is refused. Year-first dates that are not zero-padded
+    (``2003-1-5``) and whole numbers stored as text (``"9"``, ``"10"``) are parsed when
+    their text order differs from their order in time. A ``DataHandlingWarning`` says
+    what was read.
+    """
+    if not (pd.api.types.is_string_dtype(col) or pd.api.types.is_object_dtype(col)):
+        return None
+    values = pd.unique(col)
+    if not all(isinstance(v, str) for v in values):
+        return None
+    text_order = np.argsort(np.asarray(values, dtype=object), kind="stable")
+
+    def sorted_as_text(parsed) -> bool:
+        return bool(np.all(np.diff(np.asarray(parsed)[text_order]) > 0))
+
+    def warn(what, example, shown):
+        warnings.warn(
+            f"time column {name!r} read as {what} ({example!r} is {shown}); as text the "
+            "occasions would sort out of order", DataHandlingWarning, stacklevel=4)
+
+    dm = [_DAY_MONTH.match(v) for v in values]
+    if all(dm):
+        first = np.array([int(m.group(1)) for m in dm])
+        second = np.array([int(m.group(3)) for m in dm])
+        if (first > 12).any() and not (second > 12).any():
+            fmt, what, show = "%d{0}%m{0}%Y", "dates, day first (day/month/year)", first > 12
+        elif (second > 12).any() and not (first > 12).any():
+            fmt, what, show = "%m{0}%d{0}%Y", "dates, month first (month/day/year)", second > 12
+        elif (first > 12).any():
+            raise PanelDataError(
+                f"time column {name!r} holds dates that are neither day/month/year nor "
+                f"month/day/year throughout (e.g. {values[int(np.argmax(first > 12))]!r} and "
+                f"{values[int(np.argmax(second > 12))]!r}); write them as year-month-day "
+                "(2003-01-13)")
+        else:
+            raise PanelDataError(
+                f"time column {name!r} holds dates such as {values[0]!r} that read both as "
+                "month/day/year and as day/month/year (no part is above 12), and as text "
+                "they sort out of order; write them as year-month-day (2003-01-02) or "
+                "convert the column to dates")
+        sep = dm[0].group(2)
+        try:
+            parsed = pd.to_datetime(col, format=fmt.format(sep))
+        except (ValueError, TypeError) as exc:
+            raise PanelDataError(f"time column {name!r}: cannot read {what}: {exc}") from None
+        example = values[int(np.argmax(show))]
+        warn(what, example, pd.Timestamp(parsed[col == example].iloc[0]).date().isoformat())
+        return parsed
+    ymd = [_YEAR_FIRST.match(v) for v in values]
+    if all(ymd):
+        try:
+            parsed_values = pd.to_datetime(
+                pd.Series([f"{m.group(1)}-{m.group(3)}-{m.group(4)}" for m in ymd]),
+                format="%Y-%m-%d")
+        except (ValueError, TypeError) as exc:
+            raise PanelDataError(f"time column {name!r}: cannot read the dates: {exc}") from None
+        if sorted_as_text(parsed_values.to_numpy()):
+            return None
+        mapping = dict(zip(values, parsed_values))
+        warn("dates (year-month-day)", values[0], mapping[values[0]].date().isoformat())
+        return col.map(mapping).astype("datetime64[ns]")
+    numbers = pd.to_numeric(pd.Series(values), errors="coerce")
+    if numbers.notna().all() and np.all(numbers == np.round(numbers)):
+        if sorted_as_text(numbers.to_numpy()):
+            return None
+        mapping = dict(zip(values, numbers.astype(np.int64)))
+        warn("whole numbers", values[0], str(mapping[values[0]]))
+        return col.map(mapping).astype(np.int64)
+    return None
+
+
+def describe_frame(rows, left_out=None) -> pd.DataFrame:
+    """The table :meth:`Panel.describe` returns (also the out-of-core one): one row per
+    variable, and ``attrs["left_out"]`` when given."""
+    out = pd.DataFrame(rows, columns=["variable", "n", "n_missing", "mean", "sd_overall",
+                                      "sd_between", "sd_within", "share_within",
+                                      "varies_within"]).set_index("variable")
+    if left_out is not None:
+        out.attrs["left_out"] = left_out
+    return out
+
+
+def describable(dtype) -> bool:
+    """True for the columns :meth:`Panel.describe` summarises: real numbers and booleans."""
+    return pd.api.types.is_numeric_dtype(dtype) and not pd.api.types.is_complex_dtype(dtype)
+
+
+def left_out_reason(dtype) -> str:
+    """Why :meth:`Panel.describe` leaves a column of this type out (``"text"`` for text and
+    mixed columns, which :meth:`Panel.left_out_columns` details)."""
+    if pd.api.types.is_complex_dtype(dtype):
+        return "complex numbers"
+    if pd.api.types.is_datetime64_any_dtype(dtype) or pd.api.types.is_timedelta64_dtype(dtype):
+        return "dates or times"
+    if isinstance(dtype, pd.CategoricalDtype):
+        return "categories"
+    return "text"
 
 
 def _first_pair(df: pd.DataFrame, mask, unit: str, time: str) -> str:
@@ -90,6 +221,7 @@ class Panel:
                     "bayespanel.engines.dask_panel or Panel.from_parquet(..., engine='dask')"
                 )
             raise PanelDataError(f"Panel needs a pandas DataFrame, got {type(df).__name__}")
+        check_column_names(df.columns, unit, time)
         for role, col in (("unit", unit), ("time", time)):
             if col not in df.columns:
                 raise PanelDataError(
@@ -109,7 +241,7 @@ class Panel:
                 where = int(np.flatnonzero(miss)[0])
                 raise PanelDataError(
                     f"{role} column {col!r} has {int(miss.sum())} missing value(s); first at "
-                    f"row {df.index[where]!r}. Every row needs a unit and an occasion."
+                    f"row {_plain(df.index[where])!r}. Every row needs a unit and an occasion."
                 )
         for role, col in (("unit", unit), ("time", time)):
             kind = pd.api.types.infer_dtype(df[col], skipna=True)
@@ -119,6 +251,9 @@ class Panel:
                     f"{role} column {col!r} mixes value types ({', '.join(types)}), so equal-"
                     "looking labels such as 3 and '3' would count as different; convert the "
                     "column to one type")
+        parsed = _text_occasions(df[time], time)
+        if parsed is not None:  # one column replaced in a shallow copy (the caller's stays)
+            df = df.assign(**{time: parsed})
         dup = df.duplicated(subset=[unit, time], keep=False).to_numpy()
         if dup.any():
             raise PanelDataError(
@@ -131,7 +266,8 @@ class Panel:
             if col in (unit, time) or not (pd.api.types.is_float_dtype(s)
                                            or pd.api.types.is_complex_dtype(s)):
                 continue
-            vals = s.to_numpy(dtype=float, na_value=np.nan)
+            kind = complex if pd.api.types.is_complex_dtype(s) else float
+            vals = s.to_numpy(dtype=kind, na_value=np.nan)
             bad = np.isinf(vals)
             if bad.any():
                 raise PanelDataError(
@@ -255,9 +391,33 @@ class Panel:
 
     # ------------------------------------------------------------------ describe
     def numeric_columns(self) -> list[str]:
-        return [c for c in self._df.columns
-                if c not in (self.unit, self.time)
-                and (pd.api.types.is_numeric_dtype(self._df[c]))]
+        """Columns :meth:`describe` summarises: numbers (not complex), besides unit and time."""
+        return [c for c in self._df.columns if c not in (self.unit, self.time)
+                and describable(self._df[c].dtype)]
+
+    def left_out_columns(self) -> dict:
+        """Columns :meth:`describe` leaves out, each with the reason: text (with the first
+        value that is not a number and where it is), dates, complex numbers, ..."""
+        out = {}
+        for c in self._df.columns:
+            if c in (self.unit, self.time) or describable(self._df[c].dtype):
+                continue
+            s = self._df[c]
+            reason = left_out_reason(s.dtype)
+            if reason == "text":
+                text = s.dropna()
+                bad = text[pd.to_numeric(text.astype(str), errors="coerce").isna()]
+                if bad.empty:
+                    reason = "numbers stored as text"
+                elif len(bad) == len(text):
+                    reason = f"text, e.g. {_plain(bad.iloc[0])!r}"
+                else:
+                    where = _first_pair(self._df, s.index.isin([bad.index[0]]), self.unit,
+                                        self.time)
+                    reason = (f"text: {len(bad)} value(s) are not numbers, the first "
+                              f"{_plain(bad.iloc[0])!r} at {where}")
+            out[c] = reason
+        return out
 
     def describe(self, columns: Iterable[str] | None = None) -> pd.DataFrame:
         """Decompose each numeric variable into its between-unit and within-unit parts.
@@ -269,15 +429,20 @@ class Panel:
         lies within units) and ``varies_within`` (False when every unit holds one value).
 
         SDs use ``ddof=1``. Unit means are taken over each variable's non-missing rows.
+        Each column is scaled by its largest magnitude before squaring, so values near
+        1e300 (or 1e-300) give finite SDs. Without ``columns``, the columns left out (text,
+        dates, complex numbers) are listed with the reason in ``attrs["left_out"]``.
         """
+        left_out = None
         if columns is None:
             columns = self.numeric_columns()
+            left_out = self.left_out_columns()
         else:
             columns = list(columns)
             for c in columns:
                 if c not in self._df.columns:
                     raise PanelDataError(f"column {c!r} is not in the table")
-                if not pd.api.types.is_numeric_dtype(self._df[c]):
+                if not describable(self._df[c].dtype):
                     raise PanelDataError(
                         f"column {c!r} is not numeric (dtype {self._df[c].dtype}); describe() "
                         "summarises numeric columns"
@@ -286,6 +451,9 @@ class Panel:
         units = self.sorted_column(self.unit)
         for c in columns:
             x = self.sorted_column(c).astype(float)
+            size = float(np.nanmax(np.abs(x.to_numpy()))) if x.notna().any() else 0.0
+            unit_scale = size if np.isfinite(size) and size > 0 else 1.0
+            x = x / unit_scale  # magnitudes <= 1: squares neither overflow nor vanish
             ok = x.notna()
             xv, uv = x[ok], units[ok]
             n = int(ok.sum())
@@ -299,20 +467,21 @@ class Panel:
             unit_means = xv.groupby(uv, observed=True).mean()
             ss_total = float(((xv - xv.mean()) ** 2).sum())
             ss_within = float((dev ** 2).sum())
-            scale = max(float(np.abs(xv).max()), 1.0)
+            scale = max(float(np.abs(xv).max()), 1.0 / unit_scale)
             varies = bool(np.sqrt(ss_within / max(n, 1)) > 1e-10 * scale)
             rows.append({
                 "variable": c,
                 "n": n,
                 "n_missing": int((~ok).sum()),
-                "mean": float(xv.mean()),
-                "sd_overall": float(xv.std(ddof=1)) if n > 1 else np.nan,
-                "sd_between": float(unit_means.std(ddof=1)) if len(unit_means) > 1 else np.nan,
-                "sd_within": float(np.sqrt(ss_within / (n - 1))) if n > 1 else np.nan,
+                "mean": float(xv.mean()) * unit_scale,
+                "sd_overall": float(xv.std(ddof=1)) * unit_scale if n > 1 else np.nan,
+                "sd_between": (float(unit_means.std(ddof=1)) * unit_scale
+                               if len(unit_means) > 1 else np.nan),
+                "sd_within": float(np.sqrt(ss_within / (n - 1))) * unit_scale if n > 1 else np.nan,
                 "share_within": ss_within / ss_total if ss_total > 0 else np.nan,
                 "varies_within": varies,
             })
-        return pd.DataFrame(rows).set_index("variable")
+        return describe_frame(rows, left_out)
 
     # ------------------------------------------------------------------ design
     def design(self, formula: str, occasion_effects: bool = False):

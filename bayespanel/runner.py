@@ -225,8 +225,8 @@ class Settings:
             raise SpecificationError(f"reference_folds={self.reference_folds!r} must be 0 "
                                      "(exact leave-one-out) or an integer K >= 2")
         if self.rope is not None and (isinstance(self.rope, bool) or not isinstance(
-                self.rope, (int, float)) or self.rope <= 0):
-            raise SpecificationError(f"rope={self.rope!r} must be a positive number")
+                self.rope, (int, float)) or not 0 < self.rope < float("inf")):
+            raise SpecificationError(f"rope={self.rope!r} must be a finite positive number")
         if not isinstance(self.out_of_core, bool):
             raise SpecificationError(f"out_of_core={self.out_of_core!r} must be true or false")
         if self.loo_observations is not None and (
@@ -570,9 +570,9 @@ def _data_stage(settings, df, say):
         source = _source(settings, "give a CSV or Parquet file")
         df = read_table(settings.data)
     say(f"read {len(df)} rows x {df.shape[1]} columns")
-    panel = Panel(df, unit=settings.unit, time=settings.time)
     with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
+        warnings.simplefilter("always")  # occasions read as dates are reported too
+        panel = Panel(df, unit=settings.unit, time=settings.time)
         design = panel.design(settings.formula, occasion_effects=settings.occasion_effects)
     return panel, design, _data_record(settings, panel, design, source, len(df), say), \
         [str(w.message) for w in caught]

@@ -31,6 +31,7 @@ import pytest
 import bayespanel as bp
 from bayespanel import models
 from bayespanel.cli import main
+from bayespanel.contrasts import ContrastResult
 from bayespanel.errors import (BayespanelError, DataHandlingWarning, EstimationError,
                                FormulaError, PanelDataError, SpecificationError)
 from bayespanel.runner import Settings
@@ -149,6 +150,12 @@ def _mixed_time(df):
     df = df.copy()
     df[TIME] = df[TIME].astype(object)
     df.loc[df[TIME] == 1940, TIME] = "1940"
+    return df
+
+
+def _columns_in_two_levels(df):
+    df = df.copy()
+    df.columns = pd.MultiIndex.from_tuples([(c, "a") for c in df.columns])
     return df
 
 
@@ -274,6 +281,41 @@ CASES = [
     Case("trials-for-poisson", None, _fit(formula="count ~ value", family="poisson",
                                           trials="trials"),
          None, SpecificationError, r"trials= is only used by family='binomial'"),
+    # --- accepted silently before (issue 14)
+    Case("rope-not-a-number", None,
+         lambda df: Settings(unit=UNIT, time=TIME, formula=F, rope=float("nan")).check(),
+         ["--rope", "nan"], SpecificationError, r"rope=nan must be a finite positive number"),
+    Case("rope-not-a-number-api", None,
+         lambda df: ContrastResult(np.zeros((8, 1)), ["value"], "within_between",
+                                   rope=float("nan")),
+         None, SpecificationError, r"rope=nan: half-widths must be finite positive numbers"),
+    Case("occasion-effects-as-text", None, _reference(occasion_effects="no"), None,
+         SpecificationError, r"occasion_effects='no' must be True or False"),
+    Case("occasion-effects-as-text-builder", None, _fit(occasion_effects="no"), None,
+         SpecificationError, r"occasion_effects='no' must be True or False"),
+    Case("complex-column", _assign(value=lambda d: d["value"] + 1j), _fit(), [],
+         PanelDataError, r"column 'value' holds complex numbers",
+         cli_match=r"column 'value' is not numeric"),
+    Case("ambiguous-date-occasions",
+         _assign(**{TIME: lambda d: [f"{y % 12 + 1}/1/{y}" for y in d[TIME]]}), _fit(), [],
+         PanelDataError, r"time column 'year' holds dates such as '\d+/1/19\d\d' that read "
+                         r"both as month/day/year and as day/month/year"),
+    Case("unit-given-as-a-list", None, lambda df: _panel(df, unit=[UNIT]), None,
+         PanelDataError, r"unit must be the name of one column \(text\), got list \['firm'\]"),
+    Case("multiindex-columns", _columns_in_two_levels, lambda df: bp.Panel(df, UNIT, TIME),
+         None, PanelDataError, r"the table's columns have 2 levels \(a MultiIndex"),
+    Case("text-as-a-term", None, _fit(formula='invest ~ value + I("abc")'), [],
+         FormulaError, r"I\(.abc.\). in formula .* is text, not a column of numbers",
+         formula='invest ~ value + I("abc")'),
+    Case("formula-in-parts", None, _fit(formula="invest ~ value | capital"), [],
+         FormulaError, r"'\|' in formula 'invest ~ value \| capital' would split it",
+         formula="invest ~ value | capital"),
+    Case("formula-syntax-error", None, _fit(formula="invest ~ value + "), [],
+         FormulaError, r"Operator `\+` has insuffient arguments .*\(at '\+' in 'value \+'\)$",
+         formula="invest ~ value + "),
+    Case("unclosed-parenthesis", None, _fit(formula="invest ~ value + (capital"), [],
+         FormulaError, r"a parenthesis or a quote is not closed",
+         formula="invest ~ value + (capital"),
 ]
 assert len({c.id for c in CASES}) == len(CASES)
 assert len(CASES) >= 30
@@ -299,6 +341,9 @@ def _write(case, base, folder):
 
 
 # ---------------------------------------------------------------------- the matrix
+#: what a message must not hold: numpy reprs (np.float64(7.0)) and terminal codes
+_UNREADABLE = re.compile(r"np\.(float|int|uint|bool|str)\w*\(|\x1b\[")
+
 @pytest.mark.parametrize("case", [c for c in CASES if c.api is not None], ids=lambda c: c.id)
 def test_python_api_refuses(case, base):
     df = _bad_frame(case, base)
@@ -307,6 +352,7 @@ def test_python_api_refuses(case, base):
         with pytest.raises(case.error, match=case.match) as info:
             case.api(df)
     assert isinstance(info.value, BayespanelError)  # ours, never a dependency's
+    assert not _UNREADABLE.search(str(info.value)), str(info.value)
 
 
 @pytest.mark.parametrize("case", [c for c in CASES if isinstance(c.data, tuple)],
@@ -340,6 +386,7 @@ def test_command_line_exits_two(case, base, tmp_path, capsys):
     assert stderr.startswith("bayespanel: error: "), stderr
     assert re.search(case.cli_match or case.match, stderr), stderr
     assert "Traceback" not in stderr + stdout
+    assert not _UNREADABLE.search(stderr), stderr
     assert not (out / "results.json").exists()  # no numbers
 
 

@@ -379,3 +379,199 @@ def test_the_outcome_among_the_covariates_is_refused_on_every_route(grunfeld, fo
             call()
     rc, err = _cli_fit(grunfeld, formula, tmp_path, capsys)
     assert rc == 2 and expected in err
+
+
+# ---------------------------------------------------------------------- outputs other programs read
+INJECTED = {"value": "=HYPERLINK(\"http://example.invalid\",\"x\")",
+            "capital": "<img src=x onerror=alert(1)>[y](javascript:alert(2))"}
+
+
+@pytest.fixture(scope="module")
+def injected_run(grunfeld, tmp_path_factory):
+    """A reference-only run whose covariates are named like a spreadsheet formula and
+    like HTML with a Markdown link."""
+    from bayespanel.runner import Settings, run
+
+    df = grunfeld.rename(columns=INJECTED)
+    df["@sum"] = -np.sqrt(grunfeld["value"])  # negative values: must stay numbers
+    out = tmp_path_factory.mktemp("injected")
+    path = out / "g.csv"
+    df.to_csv(path, index=False)
+    names = list(INJECTED.values()) + ["@sum"]
+    s = Settings(data=str(path), unit=UNIT, time=TIME, models=(), reference=("pooled",),
+                 formula="invest ~ " + " + ".join(f"`{n}`" for n in names))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        results = run(s, out=out / "run", quiet=True)
+    return out / "run", results, df
+
+
+def test_csv_tables_neutralise_formulas_but_keep_numbers(injected_run):
+    """Outside check: the standard library's csv reader; a cell a spreadsheet would run
+    starts with =, +, -, @, tab or CR (OWASP, CSV injection) unless it is a number."""
+    import csv
+
+    out, results, df = injected_run
+    files = sorted((out / "tables").glob("*.csv"))
+    assert files
+    seen_negative = False
+    for f in files:
+        for row in csv.reader(io.StringIO(f.read_text("utf-8"))):
+            for cell in row:
+                if cell[:1] in ("=", "+", "-", "@", "\t", "\r"):
+                    float(cell)  # only numbers may start so
+                    seen_negative |= cell.startswith("-")
+    assert seen_negative  # the negative estimate of @sum is still a number
+    text = (out / "tables" / "coefficients_long.csv").read_text("utf-8") \
+        if (out / "tables" / "coefficients_long.csv").exists() else \
+        "".join(f.read_text("utf-8") for f in files)
+    assert "'=HYPERLINK(" in text and "'@sum" in text
+    # the estimate next to the neutralised name is statsmodels OLS's
+    import statsmodels.api as sm
+
+    names = list(INJECTED.values()) + ["@sum"]
+    ols = sm.OLS(df["invest"], sm.add_constant(df[names])).fit()
+    est = {c["term"]: c["estimate"] for c in results["reference"][0]["coefficients"]}
+    assert est["@sum"] == pytest.approx(ols.params["@sum"], rel=1e-9)
+    assert est["Intercept"] == pytest.approx(ols.params["const"], rel=1e-9)
+
+
+def test_markdown_tables_escape_html_and_links(injected_run):
+    """Outside check: the standard library's HTML parser finds no tag in the Markdown
+    files (a Markdown viewer renders raw HTML), and no Markdown link is left."""
+    from html.parser import HTMLParser
+
+    class Tags(HTMLParser):
+        def __init__(self):
+            super().__init__()
+            self.tags = []
+
+        def handle_starttag(self, tag, attrs):
+            self.tags.append(tag)
+
+    out, _, _ = injected_run
+    files = sorted((out / "tables").glob("*.md"))
+    assert files
+    for f in files:
+        md = f.read_text("utf-8")
+        parser = Tags()
+        parser.feed(md)
+        assert parser.tags == [], (f.name, parser.tags)
+        assert not re.search(r"(?<!\\)\]\(", md), f.name  # no [text](url) link
+    md = "".join(f.read_text("utf-8") for f in files)
+    assert "&lt;img src=x onerror=alert(1)&gt;\\[y\\](javascript:alert(2))" in md
+
+
+def test_markdown_escape_round_trips():
+    """What the escaping writes reads back as the original text (CommonMark: a backslash
+    before punctuation is a literal; entities are characters), checked here by undoing it."""
+    import html as _html
+
+    from bayespanel.report.tables import markdown_escape
+
+    for s in ["<b>&amp;</b>", "a|b", "x_y*z`", "[a](b)", "~~s~~", "\\", "plain"]:
+        back = _html.unescape(re.sub(r"\\(.)", r"\1", markdown_escape(s)))
+        assert back == s
+
+
+def test_describe_prints_no_terminal_codes(grunfeld, tmp_path, capsys):
+    from bayespanel.cli import main
+
+    name = "\x1b[31mred\x1b[0m\u202egnp"
+    path = tmp_path / "g.csv"
+    grunfeld.rename(columns={"value": name}).to_csv(path, index=False)
+    assert main(["describe", str(path), "--unit", UNIT, "--time", TIME]) == 0
+    out = capsys.readouterr().out
+    assert "\x1b" not in out and "\u202e" not in out
+    assert "\\x1b[31mred\\x1b[0m\\u202egnp" in out  # shown, as escapes
+
+
+def test_describe_of_huge_values_is_finite_and_exact(grunfeld, tmp_path, capsys):
+    """Values near 1e301 used to give infinite SDs. Outside check: the standard library's
+    statistics.stdev, which sums exactly (fractions) and so cannot overflow."""
+    import statistics
+
+    df = grunfeld.assign(value=grunfeld["value"] * 1e298)
+    desc = bp.Panel(df, UNIT, TIME).describe()
+    row = desc.loc["value"]
+    assert np.isfinite(row[["mean", "sd_overall", "sd_between", "sd_within"]].astype(float)).all()
+    assert row["sd_overall"] == pytest.approx(statistics.stdev(df["value"].tolist()), rel=1e-12)
+    means = df.groupby(UNIT)["value"].mean().tolist()
+    assert row["sd_between"] == pytest.approx(statistics.stdev(means), rel=1e-12)
+    assert row["share_within"] == pytest.approx(
+        bp.Panel(grunfeld, UNIT, TIME).describe().loc["value", "share_within"], rel=1e-12)
+    from bayespanel.cli import main
+
+    path = tmp_path / "big.csv"
+    df.to_csv(path, index=False)
+    assert main(["describe", str(path), "--unit", UNIT, "--time", TIME]) == 0
+    out = capsys.readouterr().out
+    assert "1.082e+301" in out and "inf" not in out
+
+
+def test_describe_names_the_columns_it_leaves_out(grunfeld, tmp_path, capsys):
+    from bayespanel.cli import main
+
+    df = grunfeld.copy()
+    df["note"] = "x"
+    df["value"] = df["value"].astype(object)
+    df.loc[5, "value"] = "abc"
+    path = tmp_path / "g.csv"
+    df.to_csv(path, index=False)
+    assert main(["describe", str(path), "--unit", UNIT, "--time", TIME]) == 0
+    out = capsys.readouterr().out
+    assert "left out (2): " in out
+    assert "note (text, e.g. 'x')" in out
+    assert ("value (text: 1 value(s) are not numbers, the first 'abc' at firm='General "
+            "Motors', year=1940)") in out
+
+
+def test_dates_written_month_first_are_read_as_dates(grunfeld):
+    """m/d/yyyy text sorted as text made units look as if they had gaps. Unambiguous
+    dates are read as dates (said in a DataHandlingWarning); outside check: pandas'
+    to_datetime with the explicit format gives the same order, and the within fit with
+    occasion effects equals the one on the integer years (linearmodels PanelOLS with time
+    effects)."""
+    from linearmodels.panel import PanelOLS
+
+    from bayespanel.errors import DataHandlingWarning
+
+    df = grunfeld.assign(date=[f"{y % 12 + 1}/{13 + y % 15}/{y}" for y in grunfeld[TIME]])
+    with pytest.warns(DataHandlingWarning, match=r"read as dates, month first"):
+        panel = bp.Panel(df.drop(columns=TIME), UNIT, "date")
+    assert panel.structure()["n_units_with_gaps"] == 0
+    expected = np.sort(pd.to_datetime(df["date"], format="%m/%d/%Y").unique())
+    np.testing.assert_array_equal(panel.occasions, expected)
+    fit = bp.reference.within(panel, "invest ~ value + capital", occasion_effects=True)
+    d = grunfeld.set_index([UNIT, TIME])
+    lm = PanelOLS(d["invest"], d[["value", "capital"]], entity_effects=True,
+                  time_effects=True).fit()
+    np.testing.assert_allclose(fit.coef[["value", "capital"]].to_numpy(),
+                               lm.params[["value", "capital"]].to_numpy(), rtol=1e-8)
+    assert "occasion[1936-05-14]" in fit.coef.index
+
+
+def test_a_parquet_folder_without_parquet_files_is_named(tmp_path, capsys):
+    from bayespanel.cli import main
+    from bayespanel.errors import PanelDataError
+
+    (tmp_path / "data").mkdir()
+    (tmp_path / "data" / "notes.txt").write_text("not a table")
+    with pytest.raises(PanelDataError, match=r"holds no Parquet files .*it holds 'notes\.txt'"):
+        bp.Panel.from_file(tmp_path / "data", UNIT, TIME)
+    for extra in ([], ["--out-of-core"]):
+        rc = main(["describe", str(tmp_path / "data"), "--unit", UNIT, "--time", TIME] + extra)
+        err = capsys.readouterr().err
+        assert rc == 2 and "holds no Parquet files" in err and "columns are" not in err
+
+
+def test_messages_on_the_out_of_core_route_show_plain_numbers(grunfeld):
+    import dask.dataframe as dd
+
+    from bayespanel.errors import PanelDataError
+
+    df = grunfeld.assign(capital=7.0)
+    dpanel = bp.Panel(dd.from_pandas(df, npartitions=2), UNIT, TIME, client="synchronous")
+    with pytest.raises(PanelDataError) as info:
+        dpanel.design("invest ~ value + capital")
+    assert "covariate 'capital' is constant (7.0)" in str(info.value)

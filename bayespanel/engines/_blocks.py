@@ -208,10 +208,14 @@ def describe_block(pdf, unit, columns, time=None) -> DescribePiece:
         if ok.all():
             complete.append(j)
         else:
-            groups.append(((j,), suffstats.partial_inplace(x[ok][:, None].copy(), keys[ok])))
+            with np.errstate(over="ignore", invalid="ignore", under="ignore"):
+                groups.append(((j,), suffstats.partial_inplace(x[ok][:, None].copy(),
+                                                               keys[ok])))
     if complete:
         Z = np.ascontiguousarray(X[:, complete]) if len(complete) < len(columns) else X
-        groups.append((tuple(complete), suffstats.partial_inplace(Z, keys)))
+        # a column beyond 1e100 in magnitude overflows here; describe leaves it out by name
+        with np.errstate(over="ignore", invalid="ignore", under="ignore"):
+            groups.append((tuple(complete), suffstats.partial_inplace(Z, keys)))
     groups.sort(key=lambda g: g[0])
     return DescribePiece(np.asarray(n_missing, np.int64), groups, np.asarray(maxabs), st)
 
@@ -230,8 +234,9 @@ def merge_describe(pieces) -> DescribePiece:
     else:
         layout = tuple((j,) for j in range(len(pieces[0].n_missing)))
         per_piece = [p.singletons() for p in pieces]
-    groups = [(cols, _merge.merge_parts([g[i][1] for g in per_piece])[0])
-              for i, cols in enumerate(layout)]
+    with np.errstate(over="ignore", invalid="ignore", under="ignore"):  # see describe_block
+        groups = [(cols, _merge.merge_parts([g[i][1] for g in per_piece])[0])
+                  for i, cols in enumerate(layout)]
     return DescribePiece(sum(p.n_missing for p in pieces), groups,
                          np.max([p.maxabs for p in pieces], axis=0), _merge_optional(pieces))
 

@@ -37,6 +37,7 @@ from __future__ import annotations
 
 import atexit
 import importlib
+import os
 import re
 import warnings
 
@@ -44,10 +45,11 @@ import numpy as np
 import pandas as pd
 
 from .. import suffstats
-from ..design import KINDS, Design, DesignSpec, check_flag, check_stats, check_terms, refuse_complex
+from ..design import (KINDS, Design, DesignSpec, check_flag, check_stats, check_terms,
+                      occasion_label, refuse_complex)
 from ..errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
                       SpecificationError, choices_error)
-from ..formula import safe_context, screen
+from ..formula import dependency_message, safe_context, screen
 from . import _blocks as blk
 from . import _merge
 
@@ -170,6 +172,9 @@ class DaskPanel:
     def __init__(self, df, unit: str, time: str, client=None):
         if not _is_dask_frame(df):
             raise PanelDataError(f"DaskPanel needs a Dask DataFrame, got {type(df).__name__}")
+        from ..panel import check_column_names
+
+        check_column_names(df.columns, unit, time)
         cols = [str(c) for c in df.columns]
         for role, col in (("unit", unit), ("time", time)):
             if col not in cols:
@@ -192,6 +197,10 @@ class DaskPanel:
         """Open a Parquet file or folder lazily (``dask.dataframe.read_parquet``)."""
         import dask.dataframe as dd
 
+        from ..io import parquet_files
+
+        if isinstance(path, (str, os.PathLike)) and os.path.isdir(path):
+            parquet_files(path)  # an empty folder is named as such, not as a reader error
         try:
             df = dd.read_parquet(path, columns=columns, **kwargs)
         except Exception as exc:  # pyarrow / fsspec raise several types
@@ -355,16 +364,30 @@ class DaskPanel:
 
     # ------------------------------------------------------------------ describe
     def numeric_columns(self) -> list[str]:
+        from ..panel import describable
+
         dt = self._df.dtypes
         return [str(c) for c in self._df.columns if c not in (self.unit, self.time)
-                and pd.api.types.is_numeric_dtype(dt[c])]
+                and describable(dt[c])]
 
     def describe(self, columns=None) -> pd.DataFrame:
         """Between/within decomposition of each numeric variable, as
-        :meth:`Panel.describe` (same columns, same definitions), in one pass."""
+        :meth:`Panel.describe` (same columns, same definitions), in one pass.
+
+        Without ``columns``, ``attrs["left_out"]`` names the columns left out and why: those
+        that are not numbers, and those with values outside the magnitudes a design accepts
+        (:data:`bayespanel.design.MAGNITUDE_LIMITS`), whose one-pass squares would overflow
+        or vanish (the in-memory describe rescales them instead).
+        """
+        from ..design import MAGNITUDE_LIMITS
+        from ..panel import describe_frame, left_out_reason
+
         dt = self._df.dtypes
+        left_out = None
         if columns is None:
             columns = self.numeric_columns()
+            left_out = {str(c): left_out_reason(dt[c]) for c in self._df.columns
+                        if c not in (self.unit, self.time) and str(c) not in columns}
         else:
             columns = list(columns)
             for c in columns:
@@ -381,9 +404,18 @@ class DaskPanel:
         if need:
             self._adopt(piece.structure)
         rows = []
+        lo, hi = MAGNITUDE_LIMITS
         for j, (c, n_miss, mx) in enumerate(zip(columns, piece.n_missing, piece.maxabs)):
+            if mx > hi or 0 < mx < lo:
+                if left_out is None:
+                    raise PanelDataError(
+                        f"column {c!r} has values of magnitude {float(mx):.3g}, outside "
+                        f"{lo:g}..{hi:g}: its one-pass squares overflow or vanish; rescale it")
+                left_out[c] = (f"values of magnitude {float(mx):.3g}, outside {lo:g}..{hi:g} "
+                               "(rescale the column)")
+                continue
             rows.append(_describe_row(c, piece.column(j), int(n_miss), float(mx)))
-        return pd.DataFrame(rows).set_index("variable")
+        return describe_frame(rows, left_out)
 
     # ------------------------------------------------------------------ design
     def design(self, formula: str, occasion_effects: bool = False, cluster: bool = False):
@@ -492,7 +524,8 @@ class DaskDesign:
             mm = Formula(screened.rhs).get_model_matrix(probe, context=safe_context(),
                                                         ensure_full_rank=False)
         except Exception as exc:
-            raise FormulaError(f"cannot build the design for {formula!r}: {exc}") from None
+            raise FormulaError(f"cannot build the design for {formula!r}: "
+                               f"{dependency_message(exc)}") from None
         terms = [str(c) for c in mm.columns]
         check_terms(terms, formula)
         plain = tuple(None if t == "Intercept" else t for t in terms)
@@ -501,7 +534,7 @@ class DaskDesign:
         occ = ()
         if occasion_effects:
             occ = tuple(blk._plain(o) for o in p.occasions[1:])
-            terms += [f"occasion[{o}]" for o in occ]
+            terms += [occasion_label(o) for o in occ]
         self.outcome = screened.outcome
         self.formula_terms = terms
         return blk.BlockSpec(unit=p.unit, time=p.time, outcome=screened.outcome,

@@ -377,10 +377,51 @@ def _frame(df: pd.DataFrame):
     return [str(c) for c in df.columns], [[_cell(v) for v in row] for row in df.itertuples(index=False)]
 
 
+_MARKDOWN = {"&": "&amp;", "<": "&lt;", ">": "&gt;", "\n": " ", "\r": " ",
+             **{c: "\\" + c for c in "\\`*_[]|~"}}
+_MARKDOWN_RE = re.compile("|".join(re.escape(k) for k in _MARKDOWN))
+
+
+def markdown_escape(s: str) -> str:
+    """Text as literal Markdown: HTML (which Markdown viewers render) as entities, and
+    the characters that make emphasis, code, links and table cells backslash-escaped, so a
+    column named ``<img src=x onerror=...>`` or ``[x](javascript:...)`` stays text."""
+    return _MARKDOWN_RE.sub(lambda m: _MARKDOWN[m.group()], str(s))
+
+
+#: first characters that make a spreadsheet read a cell as a formula (OWASP, "CSV
+#: Injection"); such text cells get a leading apostrophe, which spreadsheets hide
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def _csv_cell(v):
+    if not isinstance(v, str) or not v.startswith(_FORMULA_START):
+        return v
+    try:
+        float(v)  # a number written as text ("-0.5") is not a formula
+        return v
+    except ValueError:
+        return "'" + v
+
+
+def csv_text(df: pd.DataFrame) -> str:
+    """``df`` as CSV with every text cell, header and index label that a spreadsheet
+    would run as a formula neutralised (numbers, negative ones too, are left alone)."""
+    safe = df.copy()
+    safe.columns = [_csv_cell(str(c)) for c in safe.columns]
+    if not isinstance(safe.index, pd.RangeIndex):
+        safe.index = pd.Index([_csv_cell(v) for v in safe.index], name=safe.index.name)
+    for c in safe.columns:
+        if not (pd.api.types.is_numeric_dtype(safe[c]) or pd.api.types.is_bool_dtype(safe[c])):
+            safe[c] = safe[c].map(_csv_cell)
+    return safe.to_csv(index=not isinstance(df.index, pd.RangeIndex), lineterminator="\n")
+
+
 def to_markdown(df: pd.DataFrame, notes=()) -> str:
-    """A Markdown pipe table (pipes in cells escaped), then each note as a paragraph."""
+    """A Markdown pipe table (cells escaped by :func:`markdown_escape`), then each note as
+    a paragraph."""
     heads, rows = _frame(df)
-    clean = lambda s: s.replace("|", "\\|").replace("\n", " ")  # noqa: E731
+    clean = markdown_escape
     lines = ["| " + " | ".join(map(clean, heads)) + " |", "|" + "|".join("---" for _ in heads) + "|"]
     lines += ["| " + " | ".join(map(clean, r)) + " |" for r in rows]
     lines += [line for n in notes if n for line in ("", clean(n))]
@@ -421,6 +462,5 @@ def write_tables(results: dict, folder) -> list[Path]:
         view, notes = shown.get(name, (df, [footer(results)]))
         paths.append(write_atomic(folder / f"{name}.md", to_markdown(view, notes)))
         paths.append(write_atomic(folder / f"{name}.tex", to_latex(view, notes=notes)))
-        paths.append(write_atomic(folder / f"{name}.csv", df.to_csv(index=not isinstance(
-            df.index, pd.RangeIndex), lineterminator="\n")))
+        paths.append(write_atomic(folder / f"{name}.csv", csv_text(df)))
     return paths
