@@ -717,7 +717,7 @@ def _screen_outcome(lhs, lhs_work, colset, formula):
         terms = list(Formula(f"0 + {lhs}"))
     except Exception as exc:  # formulaic's own syntax errors
         raise FormulaError(f"cannot read the outcome {lhs!r} of formula {formula!r}: "
-                           f"{exc}") from None
+                           f"{dependency_message(exc)}") from None
     tokens = set(re.findall(r"[A-Za-z_]\w*", lhs))
     bad = sorted(tokens & _NOT_OUTCOME)
     factors = [f for t in terms for f in t.factors]
@@ -759,7 +759,8 @@ def outcome_values(screened: "ScreenedFormula | str", frame) -> np.ndarray:
     except FormulaError:
         raise
     except Exception as exc:
-        raise FormulaError(f"cannot compute the outcome {expr!r}: {exc}") from None
+        raise FormulaError(f"cannot compute the outcome {expr!r}: "
+                           f"{dependency_message(exc)}") from None
     if mm.shape[1] != 1:
         raise FormulaError(f"the outcome {expr!r} gives {mm.shape[1]} columns; it must give one")
     return np.asarray(mm, dtype=float)[:, 0]
