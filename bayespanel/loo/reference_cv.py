@@ -9,9 +9,18 @@ Gabry and Vehtari 2021). The covariate columns (including unit means in the Mund
 within-between designs) are those of the full estimation sample, exactly as in the
 Bayesian PSIS terms, so both sides answer the same question on the same rows.
 
-The refits use :func:`bayespanel.reference.fit_arrays` with the fit's own estimator and
-variance-component method; the densities are those of :mod:`bayespanel.models.gaussian`
-(through :func:`~bayespanel.loo.pointwise.holdout_loglik`).
+Exact leave-one-out runs at every size: each refit reads the sufficient statistics of
+the rows without the held-out unit or row, obtained from those of all rows by exact
+downdates (:mod:`bayespanel.loo._downdate`), and runs the estimator's own closed-form
+core (:func:`bayespanel.reference.estimators.core_fit`) on them. So the refit is the
+estimator itself on the reduced rows, column selection and variance components included:
+the random-intercept fits re-estimate ``sigma_unit`` and ``sigma_obs`` without the point
+(Swamy-Arora in closed form; ML and REML by the same root search, started at the
+full-data optimum). Holding the variance components at their full-data values would let
+the held-out point inform its own prediction, so it would not be leave-one-out of the
+estimator. Grouped K-fold (``folds=K``) refits with
+:func:`bayespanel.reference.fit_arrays` on each fold's training rows. The densities are
+those of :mod:`bayespanel.models.gaussian`.
 """
 
 from __future__ import annotations
@@ -20,10 +29,12 @@ import numpy as np
 
 from ..errors import EstimationError, SpecificationError
 from ._draws import check_level, from_draws
+from ..models import gaussian
+from ._downdate import Downdates
 from .pointwise import holdout_loglik, undefined_reason
 from .result import LOOResult
 
-__all__ = ["reference_cv", "reference_columns"]
+__all__ = ["reference_cv", "reference_columns", "exact_loo_values"]
 
 _UNIT_EFFECTS = {"pooled": "none", "within": "fixed", "random": "random", "mundlak": "random",
                  "within_between": "random"}
@@ -64,7 +75,76 @@ def _score(ref, M, labels, test, level):
     return holdout_loglik(M, d.y, d.unit_codes, test, b, sigma, tau, level)[0]
 
 
-def reference_cv(ref, level="occasion", folds=None, seed=0) -> LOOResult:
+def _plugin(fit, k, unit_effects):
+    """``(v = [-b, 1], sigma, tau)`` of a core fit for the plug-in densities."""
+    v = np.zeros(k + 1)
+    v[np.asarray(fit.cols, dtype=np.int64)] = -fit.beta
+    v[-1] = 1.0
+    sigma = float(np.sqrt(fit.sigma2_obs))
+    tau = None if unit_effects == "fixed" else (
+        0.0 if unit_effects == "none" else float(np.sqrt(fit.sigma2_unit)))
+    return v, sigma, tau
+
+
+#: seconds between progress lines of a long exact cross-validation
+PROGRESS_EVERY = 5.0
+
+
+def exact_loo_values(ref, level="occasion", progress=None):
+    """Exact leave-one-out log predictive densities of a reference fit, one per point
+    (unit or estimation row; ``nan`` where fixed effects cannot predict a row of a unit
+    with no other rows), from downdated statistics (see the module docstring).
+
+    ``progress``, a callable, receives a line every ``PROGRESS_EVERY`` seconds."""
+    import time
+
+    from .. import suffstats
+    from ..reference.estimators import core_fit
+
+    M, labels = reference_columns(ref)
+    d = ref.design
+    ue = _UNIT_EFFECTS[ref.estimator]
+    Z = np.column_stack([M, d.y])
+    codes = np.asarray(d.unit_codes, dtype=np.int64)
+    dd = Downdates(suffstats.compute(M, d.y, codes), Z, codes)
+    k = M.shape[1]
+    near = ref.extra.get("gamma") if ref.method in ("ml", "reml") else None
+
+    def fit(stats):
+        return _plugin(core_fit(ref.estimator, stats, labels, ref.method, near=near), k, ue)
+
+    last = [time.perf_counter()]
+
+    def tick(done, total):
+        now = time.perf_counter()
+        if progress is not None and now - last[0] >= PROGRESS_EVERY:
+            last[0] = now
+            progress(f"  exact CV of the {ref.estimator} fit: {done} of {total} "
+                     f"{'units' if level == 'unit' else 'rows'} refitted")
+
+    if level == "unit":
+        out = np.empty(d.n_units)
+        for i in range(d.n_units):
+            tick(i, d.n_units)
+            v, sigma, tau = fit(dd.without_unit(i))
+            r = Z[dd.unit_rows(i)] @ v
+            out[i] = gaussian.unit_logdensity(r, np.zeros(len(r), dtype=np.int64), sigma,
+                                              tau)[0]
+        return out
+    out = np.full(d.n, np.nan)
+    for j in range(d.n):
+        tick(j, d.n)
+        i = codes[j]
+        T = dd.starts[i + 1] - dd.starts[i]
+        if ue == "fixed" and T < 2:
+            continue  # nothing to predict this row from
+        v, sigma, tau = fit(dd.without_row(j))
+        R = (T * dd.ss.unit_mean[i] - Z[j]) @ v
+        out[j] = gaussian.occasion_logpdf(Z[j] @ v, R, T - 1.0, sigma, tau)
+    return out
+
+
+def reference_cv(ref, level="occasion", folds=None, seed=0, progress=None) -> LOOResult:
     """Exact cross-validated ELPD of a reference fit (closed-form refits).
 
     Parameters
@@ -74,10 +154,13 @@ def reference_cv(ref, level="occasion", folds=None, seed=0) -> LOOResult:
         ``within_between``).
     level : {"unit", "occasion"}
     folds : int, optional
-        ``None`` (default): exact leave-one-out, one refit per unit or per row. An integer
-        ``K``: grouped K-fold with the same folds as :func:`bayespanel.loo.kfold`.
+        ``None`` (default): exact leave-one-out, one refit per unit or per row (from
+        downdated statistics, at every size). An integer ``K``: grouped K-fold with the
+        same folds as :func:`bayespanel.loo.kfold`.
     seed : int
         Seed of the folds.
+    progress : callable, optional
+        Receives a progress line every few seconds of a long exact cross-validation.
 
     Returns
     -------
@@ -100,9 +183,9 @@ def reference_cv(ref, level="occasion", folds=None, seed=0) -> LOOResult:
                        time_name=getattr(getattr(d, "spec", None), "time", None))
     labels_df = proxy.point_index(level)
     elpd_i = np.full(len(labels_df), np.nan)
+    groups = []
     if folds is None:
-        groups = [(d.unit_codes == i, [i]) for i in range(N)] if level == "unit" else \
-            [(np.arange(n) == j, [j]) for j in range(n)]
+        elpd_i = exact_loo_values(ref, level, progress)
         method = "exact CV"
     else:
         from .psis import _folds

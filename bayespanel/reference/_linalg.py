@@ -21,23 +21,35 @@ def independent_columns(cp: np.ndarray, scale: np.ndarray | None = None,
     column (default ``diag(A)``); pass the uncentred sums of squares of the original
     columns when ``A`` holds demeaned data, so that rounding left by demeaning a
     constant column does not count as variation.
+
+    The residuals are the diagonal of the Schur complement, updated by one elimination
+    step per kept column (symmetric Gaussian elimination, which is Cholesky's), so the
+    cost is one ``k x k`` update per column.
     """
     A = np.asarray(cp, dtype=float)
     k = A.shape[0]
     size = np.diag(A).copy() if scale is None else np.asarray(scale, dtype=float).copy()
-    keep: list[int] = []
     first = [int(j) for j in (priority or ())]
-    for j in first + [j for j in range(k) if j not in set(first)]:
-        if size[j] <= 0 or A[j, j] <= tol * size[j]:
+    seen = set(first)
+    order = np.asarray(first + [j for j in range(k) if j not in seen], dtype=np.int64)
+    S = A[order][:, order]
+    lim = tol * size[order]
+    if np.all(size[order] > 0) and np.all(np.diag(S) > lim):
+        try:  # the usual case, every column kept: one factorisation says so
+            if np.all(np.diag(np.linalg.cholesky(S)) ** 2 > lim):
+                return np.arange(k, dtype=np.int64)
+        except np.linalg.LinAlgError:
+            pass
+    S = S.copy()
+    keep: list[int] = []
+    size, diag = size.tolist(), np.diag(A).tolist()
+    for t, j in enumerate(order.tolist()):
+        lim = tol * size[j]
+        if size[j] <= 0 or diag[j] <= lim or not S[t, t] > lim:
             continue
-        if keep:
-            S = A[np.ix_(keep, keep)]
-            b = A[keep, j]
-            resid = A[j, j] - b @ np.linalg.solve(S, b)
-        else:
-            resid = A[j, j]
-        if resid > tol * size[j]:
-            keep.append(j)
+        keep.append(j)
+        if t + 1 < k:
+            S[t + 1:, t + 1:] -= (S[t + 1:, t, None] / S[t, t]) * S[t, None, t + 1:]
     return np.asarray(sorted(keep), dtype=np.int64)
 
 

@@ -121,15 +121,28 @@ def _uncentred_scale(ss):
 
 
 def _solve(A, cols):
-    """Least squares from cross-products ``A`` of ``[X, y]`` on the columns ``cols``."""
+    """Least squares from cross-products ``A`` of ``[X, y]`` on the columns ``cols``.
+
+    The normal equations are solved with the columns scaled to unit length (``D Axx D``
+    with ``D = diag(Axx)^-1/2``), which costs nothing and keeps columns of very different
+    sizes (an intercept beside incomes) from costing digits in the Cholesky factor."""
     y = A.shape[0] - 1
-    Axx = A[np.ix_(cols, cols)]
+    Axx = A[cols][:, cols]
     Axy = A[cols, y]
-    beta = solve_psd(Axx, Axy)
+    dg = np.diag(Axx)
+    d = 1.0 / np.sqrt(np.where(dg > 0, dg, 1.0))
+    scaled = Axx * np.outer(d, d)
+    try:
+        ci = np.linalg.inv(np.linalg.cholesky(scaled))  # triangular: L^-1
+        inv = ci.T @ ci
+        beta = d * (ci.T @ (ci @ (d * Axy)))
+    except np.linalg.LinAlgError:
+        inv = inv_psd(scaled)
+        beta = d * solve_psd(scaled, d * Axy)
     rss = float(A[y, y] - Axy @ beta)
     scale = max(float(A[y, y]), np.finfo(float).tiny)
     rss = max(rss, 0.0) if rss > -1e-9 * scale else rss
-    return beta, rss, inv_psd(Axx)
+    return beta, rss, (inv + inv.T) / 2 * np.outer(d, d)
 
 
 def _unshift(beta, bread, cols, s, icol):
@@ -357,7 +370,27 @@ def _profile_slope(ss, gamma, cols, method, s):
     return (n - k) * dQ / Q + dlog + float(np.trace(bread @ dA[np.ix_(cols, cols)]))
 
 
-def likelihood_core(ss, method="reml", cols=None, priority=None) -> CoreFit:
+def _bracket_near(slope, eta0, lo, hi, step=0.05, tries=40):
+    """A bracket ``(a, b)`` of a sign change of ``slope`` from negative to positive found
+    by walking downhill from ``eta0`` in doubling steps, or ``None`` when the walk leaves
+    ``[lo, hi]``."""
+    s0 = slope(eta0)
+    if s0 == 0:
+        return eta0, eta0
+    direction = -1.0 if s0 > 0 else 1.0
+    a, sa, h = eta0, s0, step
+    for _ in range(tries):
+        b = a + direction * h
+        if not lo <= b <= hi:
+            return None
+        sb = slope(b)
+        if (sa > 0) != (sb > 0) or sb == 0:
+            return (b, a) if direction < 0 else (a, b)
+        a, sa, h = b, sb, 2 * h
+    return None
+
+
+def likelihood_core(ss, method="reml", cols=None, priority=None, near=None) -> CoreFit:
     """Random intercept by maximum likelihood (``"ml"``) or restricted ML (``"reml"``).
 
     The Gaussian marginal likelihood is profiled over the coefficients and ``sigma^2``,
@@ -367,6 +400,12 @@ def likelihood_core(ss, method="reml", cols=None, priority=None) -> CoreFit:
     evaluation costs ``O(D k^3)`` (``D`` distinct panel lengths), whatever
     the number of rows. The REML criterion follows Harville (1977); its constant is the
     usual ``(n - k) log 2 pi`` and omits ``log|X'X|``.
+
+    ``near`` (a value of ``gamma``, e.g. the optimum on almost the same data) skips the
+    grid: the root of the slope is bracketed by walking downhill from ``log(near)``
+    and then found as above, with the same check of ``gamma = 0``. Both searches end at
+    the same root whenever the criterion has one interior minimum; when the walk leaves
+    the grid's range the grid is used.
     """
     if method not in ("ml", "reml"):
         raise ValueError(f"method must be 'ml' or 'reml', got {method!r}")
@@ -382,15 +421,25 @@ def likelihood_core(ss, method="reml", cols=None, priority=None) -> CoreFit:
     def f(eta):
         return _profile(ss, np.exp(eta), cols, method, s)[0]
 
-    grid = np.linspace(np.log(1e-8), np.log(1e6), 57)
-    vals = np.array([f(e) for e in grid])
-    j = int(np.argmin(vals))
-    lo, hi = grid[max(j - 1, 0)], grid[min(j + 1, len(grid) - 1)]
-
     def slope(e):
         return _profile_slope(ss, np.exp(e), cols, method, s)
 
-    if slope(lo) < 0 < slope(hi):
+    lo_all, hi_all = np.log(1e-8), np.log(1e6)
+    bracket = None
+    if near is not None and np.isfinite(near) and near > 0:
+        bracket = _bracket_near(slope, float(np.log(near)), lo_all, hi_all)
+    if bracket is not None:
+        lo, hi = bracket
+        vals, j = None, None
+    else:
+        grid = np.linspace(lo_all, hi_all, 57)
+        vals = np.array([f(e) for e in grid])
+        j = int(np.argmin(vals))
+        lo, hi = grid[max(j - 1, 0)], grid[min(j + 1, len(grid) - 1)]
+    if lo == hi:
+        eta = float(lo)
+        best = f(eta)
+    elif bracket is not None or slope(lo) < 0 < slope(hi):
         eta = float(optimize.brentq(slope, lo, hi, xtol=1e-15, rtol=4 * np.finfo(float).eps))
         best = f(eta)
     else:

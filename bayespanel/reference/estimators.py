@@ -363,26 +363,18 @@ def fit_stats(estimator, ss, labels, *, method=None, outcome=None) -> ReferenceR
     as in :func:`fit_arrays`)."""
     method = _check_options(estimator, method, "classical")
     labels = list(labels)
-    pr = _priority(labels)
-    if estimator == "pooled":
-        fit = core.pooled_core(ss, priority=pr)
-    elif estimator == "within":
-        try:
-            fit = core.within_core(ss, priority=pr)
-        except EstimationError as exc:
-            size = np.diag(ss.total) + ss.n * ss.mean ** 2
-            const = [t for j, t in enumerate(labels) if t != "Intercept"
-                     and ss.within[j, j] <= COLLINEAR_TOL * size[j]]
-            if const:
-                raise EstimationError(f"{exc} (constant within units: "
-                                      f"{', '.join(map(repr, const))})") from None
+    try:
+        fit = core_fit(estimator, ss, labels, method)
+    except EstimationError as exc:
+        if estimator != "within":
             raise
-    elif estimator == "between":
-        fit = core.between_core(ss, priority=pr)
-    elif method == "swamy-arora":
-        fit = core.swamy_arora_core(ss, priority=pr)
-    else:
-        fit = core.likelihood_core(ss, method, priority=pr)
+        size = np.diag(ss.total) + ss.n * ss.mean ** 2
+        const = [t for j, t in enumerate(labels) if t != "Intercept"
+                 and ss.within[j, j] <= COLLINEAR_TOL * size[j]]
+        if const:
+            raise EstimationError(f"{exc} (constant within units: "
+                                  f"{', '.join(map(repr, const))})") from None
+        raise
     dropped = _report_dropped(estimator, ss, fit, labels)
     cols = fit.cols
     kept = [labels[j] for j in cols]
@@ -431,6 +423,24 @@ def _intercept_share(ss, ubar) -> float:
     spread = float(np.sum(T * (a - np.average(a, weights=T)) ** 2))
     tss = float(ss.within[-1, -1] + np.sum(T * (yb - np.average(yb, weights=T)) ** 2))
     return spread / tss if tss > 0 else float("nan")
+
+
+def core_fit(estimator, ss, labels, method=None, near=None) -> core.CoreFit:
+    """The closed-form core of one estimator on statistics (no labels, no checks):
+    what :func:`fit_stats` and the exact cross-validation of the reference fits
+    (:func:`bayespanel.loo.reference_cv`) both run. ``near`` is a starting value of
+    ``gamma = tau^2 / sigma^2`` for the ML/REML search (see
+    :func:`~bayespanel.reference.core.likelihood_core`)."""
+    pr = _priority(labels)
+    if estimator == "pooled":
+        return core.pooled_core(ss, priority=pr)
+    if estimator == "within":
+        return core.within_core(ss, priority=pr)
+    if estimator == "between":
+        return core.between_core(ss, priority=pr)
+    if method == "swamy-arora":
+        return core.swamy_arora_core(ss, priority=pr)
+    return core.likelihood_core(ss, method, priority=pr, near=near)
 
 
 def _priority(labels):
