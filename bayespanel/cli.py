@@ -21,8 +21,9 @@ import pandas as pd
 from .errors import BayespanelError, SpecificationError
 
 EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT, EXIT_SAMPLING = 0, 1, 2, 3
-_STRICT_HELP = ("exit with code 3 when sampling had problems (divergences, high R-hat, low "
-                "ESS, low BFMI, high Pareto k); the outputs are written either way")
+_STRICT_HELP = ("exit with code 3 when the run had problems: sampling (divergences, high "
+                "R-hat, low ESS, low BFMI) or comparison (Pareto k above the threshold); the "
+                "outputs are written either way")
 
 _MODELS_HELP = ("comma-separated Bayesian models: pooled, random_intercept, within_between, "
                 "correlated_effects, fixed_effects, or 'none' (default: all five)")
@@ -162,6 +163,7 @@ def _settings_from_args(args):
         "level": args.level, "rope": args.rope, "interval": args.interval,
         "occasion_effects": True if args.occasion_effects else None, "title": args.title,
         "ppc_draws": args.ppc_draws, "reference_folds": args.reference_folds,
+        "refit_high_k": True if args.refit_high_k else None, "max_refits": args.max_refits,
         "out_of_core": True if args.out_of_core else None,
         "loo_observations": args.loo_observations,
         "family": args.family, "trials": args.trials, "exposure": args.exposure,
@@ -209,27 +211,28 @@ def _failed_exit(results) -> int:
     return EXIT_FAILURE
 
 
-def sampling_problems(results) -> list[str]:
-    """Every sampling problem recorded in a results dict, one line each."""
-    out = []
-    for m in results["models"]:
-        out += [f"{m['name']}: {w}" for w in m["diagnostics"]["warnings"]]
-        loo = m.get("loo") or {}
-        if loo.get("n_high_k"):
-            out.append(f"{m['name']}: {loo['n_high_k']} Pareto k value(s) above the threshold "
-                       f"in LOO at the {loo.get('level')} level; the ELPD estimate is unreliable")
-    return out
+def print_problems(results) -> list:
+    """Print the run's problem list (``results["problems"]``, the list results.json and
+    the report hold), grouped by kind; return it."""
+    from .report.problems import stored
+
+    items = stored(results)
+    heads = {"sampling": "the estimates of these models may be unreliable",
+             "comparison": "the LOO estimates of these models are unreliable"}
+    for kind, head in heads.items():
+        mine = [p for p in items if p["kind"] == kind]
+        if mine:
+            print(f"\n{kind} problems ({len(mine)}): {head}")
+            for p in mine:
+                print(f"  {p['title']}: {p['text']}")
+    return items
 
 
 def _strict_exit(results, strict) -> int:
-    problems = sampling_problems(results)
-    if problems:
-        print(f"\nsampling problems ({len(problems)}): the estimates above may be unreliable")
-        for line in problems:
-            print(f"  {line}")
-    if problems and strict:
-        print(f"bayespanel: --strict: {len(problems)} sampling problem(s); exit code "
-              f"{EXIT_SAMPLING}", file=sys.stderr)
+    items = print_problems(results)
+    if items and strict:
+        print(f"bayespanel: --strict: {len(items)} problem(s) (sampling or comparison); exit "
+              f"code {EXIT_SAMPLING}", file=sys.stderr)
         return EXIT_SAMPLING
     return EXIT_OK
 
@@ -377,13 +380,25 @@ def _print_summary(results, truth=None) -> None:
             print(f"\nnote: {w}")
     comp = results.get("comparison")
     if comp and comp.get("rows"):
-        print(f"\nLOO comparison ({comp['level']} level; ELPD difference to the best, SE):")
+        print(f"\nLOO comparison ({comp['level']} level; ELPD difference to the best, its "
+              "SE, stacking weight, method):")
+        title = {r["model"]: r["title"] for r in comp["rows"]}
         for r in comp["rows"]:
-            text = r.get("note") or ""
-            note = f"  ({text})" if text and not text.startswith("exact CV with closed-form") \
-                else ""
+            flags = []
+            if r.get("elpd") is None and r.get("note"):
+                flags.append(r["note"])  # why the level is undefined for this model
+            if r.get("n_high_pareto_k"):
+                flags.append(f"{r['n_high_pareto_k']} point(s) with high Pareto k")
+            if r.get("equivalent_to"):
+                flags.append("equivalent to " + ", ".join(
+                    title.get(n, n) for n in r["equivalent_to"].split(", ")))
+            flags += [p for p in (r.get("note") or "").split("; ") if p.startswith("scored on")]
+            w = r.get("weight")
             print(f"  {r['title']:<40} {_fmt(r.get('elpd_diff'), r.get('se_diff')):>9}  "
-                  f"{_sd(r.get('se_diff'))}{note}")
+                  f"{_sd(r.get('se_diff')):>8}  {'' if w is None else f'{w:.2f}':>5}  "
+                  f"{r.get('method') or ''}" + (f"  ({'; '.join(flags)})" if flags else ""))
+        if comp.get("methods_note"):
+            print(f"  note: {comp['methods_note']}")
 
 
 def cmd_demo(args) -> int:
@@ -585,7 +600,15 @@ def build_parser() -> argparse.ArgumentParser:
                         "units (default occasion)")
     g.add_argument("--reference-folds", type=int, default=None, metavar="K",
                    help="reference fits in the LOO table: 0 = exact leave-one-out refits, "
-                        "K >= 2 = grouped K-fold (default: exact up to 1000 points, else 10)")
+                        "K >= 2 = grouped K-fold (default: exact leave-one-out at every size, "
+                        "from downdated closed-form refits)")
+    g.add_argument("--refit-high-k", action="store_true",
+                   help="replace PSIS-LOO points whose Pareto k is above the threshold by "
+                        "exact refits of the Bayesian model without them (one posterior "
+                        "sample each)")
+    g.add_argument("--max-refits", type=int, default=None, metavar="N",
+                   help="with --refit-high-k, most refits per model; with more high-k points "
+                        "the PSIS values stay and the problem list says so (default 10)")
     g.add_argument("--loo-observations", type=int, default=None, metavar="M",
                    help="out of core: points scored in full by the sub-sampled LOO "
                         "(default 400)")

@@ -10,6 +10,14 @@ Gelman and Gabry 2017, section 5.2); stacking weights (Yao et al. 2018) are comp
 Bayesian models only, since the reference fits have no predictive distribution beyond a
 point estimate.
 
+Equivalent models (the same likelihood on the same column space, such as the
+within-between and the Mundlak parametrisations: :func:`equivalence_classes`) predict
+alike, so the stacking objective cannot tell how to split weight between them: only the
+sum of their weights is determined, and an optimiser puts it anywhere (0.000 to one,
+0.843 to the other). Stacking is therefore run over classes of equivalent models, each
+class scored by the equal mixture of its members' LOO predictive densities, and a class's
+weight is shared equally by its members (see docs/comparison.md).
+
 :func:`coef_table` aligns every model's estimates and intervals by term.
 
 References
@@ -33,10 +41,10 @@ from .errors import EstimationError, SpecificationError
 from .loo import LOOResult, loo, reference_cv
 from .loo._draws import check_level, outcome_measure
 
-__all__ = ["compare", "coef_table", "COMPARE_COLUMNS"]
+__all__ = ["compare", "coef_table", "equivalence_classes", "methods_note", "COMPARE_COLUMNS"]
 
 COMPARE_COLUMNS = ["elpd", "se", "elpd_diff", "se_diff", "p_loo", "weight", "method",
-                   "level", "n_points", "n_high_pareto_k", "note"]
+                   "level", "n_points", "n_high_pareto_k", "equivalent_to", "note"]
 
 
 def _is_posterior(obj) -> bool:
@@ -128,7 +136,7 @@ def _check_same_question(models):
             "and Student-t models among themselves")
 
 
-def _evaluate(name, obj, level, reference_folds, loo_kwargs, seed):
+def _evaluate(name, obj, level, reference_folds, loo_kwargs, seed, progress=None):
     """``(LOOResult or None, kind, note)``."""
     if loo_kwargs.get("subsample") is not None:
         raise SpecificationError(
@@ -150,7 +158,8 @@ def _evaluate(name, obj, level, reference_folds, loo_kwargs, seed):
             return None, "bayes", str(exc)
     if _is_reference(obj):
         try:
-            return reference_cv(obj, level, folds=reference_folds, seed=seed), "reference", ""
+            return (reference_cv(obj, level, folds=reference_folds, seed=seed,
+                                 progress=progress), "reference", "")
         except EstimationError as exc:
             return None, "reference", str(exc)
     raise SpecificationError(
@@ -158,10 +167,19 @@ def _evaluate(name, obj, level, reference_folds, loo_kwargs, seed):
         "LOOResult")
 
 
-def _stacking(results: dict, common) -> dict:
-    """Stacking weights of the Bayesian models on the common points (arviz-stats)."""
-    if len(results) == 1:
-        return {next(iter(results)): 1.0}
+def _stacking(results: dict, common, classes=()) -> dict:
+    """Stacking weights of the Bayesian models on the common points (arviz-stats), over
+    classes of equivalent models: a class enters as the equal mixture of its members'
+    LOO predictive densities, ``log mean_m exp(elpd_m,i)``, and its weight is shared
+    equally by its members."""
+    from scipy.special import logsumexp
+
+    groups = [[n for n in c if n in results] for c in classes]
+    groups = [g for g in groups if g]
+    grouped = {n for g in groups for n in g}
+    groups += [[n] for n in results if n not in grouped]
+    if len(groups) == 1:
+        return {n: 1.0 / len(groups[0]) for n in groups[0]}
     import warnings
 
     import arviz_stats
@@ -169,16 +187,125 @@ def _stacking(results: dict, common) -> dict:
     from arviz_stats.utils import ELPDDataLOO
 
     ics = {}
-    for name, r in results.items():
-        e = _restrict(r, common)
-        ics[name] = ELPDDataLOO(elpd=float(e.sum()), se=float(np.sqrt(len(e) * np.var(e, ddof=1))),
-                                p=0.0, n_samples=r.n_draws or 1, n_data_points=len(e),
-                                scale="log", warning=False, good_k=0.7,
+    for g in groups:
+        e = logsumexp(np.vstack([_restrict(results[n], common) for n in g]), axis=0) \
+            - np.log(len(g))
+        ics[g[0]] = ELPDDataLOO(elpd=float(e.sum()), se=float(np.sqrt(len(e) * np.var(e, ddof=1))),
+                                p=0.0, n_samples=results[g[0]].n_draws or 1,
+                                n_data_points=len(e), scale="log", warning=False, good_k=0.7,
                                 elpd_i=xr.DataArray(e, dims=["point"]))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         table = arviz_stats.compare(ics, method="stacking", round_to="none")
-    return {name: float(table.loc[name, "weight"]) for name in results}
+    return {n: float(table.loc[g[0], "weight"]) / len(g) for g in groups for n in g}
+
+
+# ---------------------------------------------------------------------------- equivalence
+def _signature(name, obj):
+    """``(likelihood key, columns)`` of a model, or ``None`` when unknown (a LOOResult).
+
+    Two models with the same key and the same column span on the same rows have the same
+    likelihood up to a reparametrisation of the coefficients."""
+    if _is_posterior(obj):
+        from .loo._draws import from_posterior
+
+        fd = from_posterior(obj)
+        lspec = getattr(obj, "lspec", None)
+        slopes = tuple(getattr(lspec, "slope_labels", ()) or ())
+        key = ("posterior", fd.unit_effects, fd.family, slopes)
+        return key, fd.M
+    if _is_reference(obj):
+        from .loo.reference_cv import _UNIT_EFFECTS, reference_columns
+
+        if obj.estimator == "between" or obj.design is None:
+            return None
+        M, _ = reference_columns(obj)
+        return ("reference", _UNIT_EFFECTS[obj.estimator], obj.method), M
+    return None
+
+
+def _same_span(A, B) -> bool:
+    """Whether the columns of ``A`` and ``B`` (same rows) span the same space, judged on
+    the cross-products with the reference fits' collinearity tolerance."""
+    from .reference._linalg import rank_of
+
+    C = np.column_stack([A, B])
+    norms = np.sqrt(np.einsum("ij,ij->j", C, C))
+    C = C[:, norms > 0] / norms[norms > 0]
+    cp = C.T @ C
+    ka = int(np.sum(norms[:A.shape[1]] > 0))
+    ra = rank_of(cp[:ka, :ka])
+    rb = rank_of(cp[ka:, ka:])
+    return ra == rb == rank_of(cp)
+
+
+def equivalence_classes(models: dict) -> list:
+    """Groups of models that are reparametrisations of each other.
+
+    Two models are equivalent when they have the same likelihood family, the same kind of
+    unit effects (none, random, fixed) and, for posteriors, the same random slopes, or for
+    reference fits the same estimator family and variance-component method, and their
+    columns span the same space on the same rows. The within-between and Mundlak models
+    always are (``x = x_within + x_between``); the random intercept joins them when no
+    covariate varies within units. Equivalent posteriors differ only through their priors
+    (alike when the priors are weak, as the defaults are); equivalent reference fits give
+    identical predictions.
+
+    Parameters
+    ----------
+    models : dict of str -> Posterior, ReferenceResult or LOOResult
+        LOOResults carry no design and are never grouped.
+
+    Returns
+    -------
+    list of list of str
+        Classes of two or more models, in the order the models were given.
+    """
+    sigs = {}
+    for name, obj in models.items():
+        sig = _signature(name, obj)
+        if sig is not None:
+            sigs[name] = sig
+    classes, seen = [], set()
+    names = list(sigs)
+    for a_i, a in enumerate(names):
+        if a in seen:
+            continue
+        group = [a]
+        for b in names[a_i + 1:]:
+            if b in seen or sigs[a][0] != sigs[b][0]:
+                continue
+            A, B = sigs[a][1], sigs[b][1]
+            if A.shape[0] == B.shape[0] and _same_span(A, B):
+                group.append(b)
+        if len(group) > 1:
+            classes.append(group)
+            seen.update(group)
+    return classes
+
+
+def methods_note(methods) -> str:
+    """What a table mixing LOO methods means for its ranking ("" when it does not mix).
+
+    ``methods`` are the ``method`` labels of the rows (``undefined`` rows ignored)."""
+    methods = [m for m in methods if m and m != "undefined"]
+    kfold = sorted({m for m in methods if "K-fold" in m})
+    loo_rows = [m for m in methods if "K-fold" not in m]
+    parts = []
+    if kfold and loo_rows:
+        parts.append(
+            f"Rows scored by {' and '.join(kfold)} sit beside leave-one-out rows. A K-fold "
+            "refit leaves out a whole fold, so it predicts from fewer rows than a "
+            "leave-one-out refit and its ELPD is lower for the same model (more so for "
+            "models with more parameters): a difference between a K-fold row and a "
+            "leave-one-out row mixes the models' accuracy with this difference of method. "
+            "Rank such rows as approximate, or score every row by leave-one-out")
+    sub = sorted({m for m in methods if "sub-sampled" in m})
+    if sub and len(sub) < len(set(methods)):
+        parts.append("Sub-sampled estimates carry extra sampling error (their SE includes "
+                     "it); differences to exact rows are less certain than their SE of "
+                     "difference suggests")
+    return ". ".join(parts) + ("." if parts else "")
 
 
 def _restrict(r: LOOResult, common) -> np.ndarray:
@@ -187,7 +314,7 @@ def _restrict(r: LOOResult, common) -> np.ndarray:
 
 
 def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed: int = 0,
-            loo_kwargs=None) -> pd.DataFrame:
+            loo_kwargs=None, equivalent=None, progress=None) -> pd.DataFrame:
     """Compare Bayesian posteriors and reference fits by LOO at one level.
 
     Parameters
@@ -204,23 +331,33 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
         docs/comparison.md.
     reference_folds : int, optional
         Reference fits use exact leave-one-out by default (one closed-form refit per
-        point); an integer ``K`` uses grouped K-fold instead (for large panels).
+        point, from downdated statistics, at every size); an integer ``K`` uses grouped
+        K-fold instead (the table then says what mixing methods means for the ranking).
     seed : int
         Seed of the reference K-fold folds.
     loo_kwargs : dict, optional
         Passed to :func:`bayespanel.loo.loo` for the posteriors (e.g.
         ``{"refit_high_k": True}``).
+    equivalent : list of list of str, optional
+        Classes of equivalent models (default: :func:`equivalence_classes` of
+        ``models``; give them when the models are LOOResults).
+    progress : callable, optional
+        Receives progress lines of long reference cross-validations.
 
     Returns
     -------
     pandas.DataFrame
         Indexed by model name, best first, with columns ``elpd``, ``se``, ``elpd_diff``
         (model minus best), ``se_diff`` (from the paired pointwise differences),
-        ``p_loo`` (Bayesian only), ``weight`` (stacking, Bayesian only), ``method``
-        (``"PSIS-LOO"``, ``"exact CV"``, ...), ``level``, ``n_points``,
-        ``n_high_pareto_k`` and ``note``. Models for which the level is undefined (fixed
-        effects at the unit level) come last with ``nan`` values and the reason in
-        ``note``. Only plain floats, ints and strings, so ``to_json`` works.
+        ``p_loo`` (Bayesian only), ``weight`` (stacking over classes of equivalent
+        models, Bayesian only), ``method`` (``"PSIS-LOO"``, ``"exact CV"``, ...),
+        ``level``, ``n_points``, ``n_high_pareto_k``, ``equivalent_to`` (the other
+        members of the model's equivalence class, comma-separated, or ``""``) and
+        ``note``. Models for which the level is undefined (fixed effects at the unit
+        level) come last with ``nan`` values and the reason in ``note``. Only plain
+        floats, ints and strings, so ``to_json`` works. ``attrs`` hold ``level``,
+        ``n_points``, ``n_points_all``, ``equivalent`` (the classes) and
+        ``methods_note`` (:func:`methods_note`, "" unless methods are mixed).
 
     Raises
     ------
@@ -239,8 +376,11 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
     if not isinstance(models, dict) or not models:
         raise SpecificationError("models must be a non-empty dict of name -> fitted model")
     _check_same_question(models)
+    classes = equivalence_classes(models) if equivalent is None else [
+        [n for n in c if n in models] for c in equivalent]
+    classes = [c for c in classes if len(c) > 1]
     evaluated = {name: _evaluate(name, obj, level, reference_folds, dict(loo_kwargs or {}),
-                                 seed) for name, obj in models.items()}
+                                 seed, progress) for name, obj in models.items()}
     defined = {n: r for n, (r, _, _) in evaluated.items() if r is not None}
     if not defined:
         raise SpecificationError(f"no model has a predictive density at the {level} level")
@@ -277,12 +417,18 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
         rows[name]["elpd_diff"] = float(d.sum())
         rows[name]["se_diff"] = float(np.sqrt(len(d) * np.var(d, ddof=1))) if len(d) > 1 else np.nan
     bayes = {n: defined[n] for n in order if rows[n]["kind"] == "bayes"}
-    weights = _stacking(bayes, common) if bayes else {}
+    weights = _stacking(bayes, common, classes) if bayes else {}
     for name in rows:
         rows[name].setdefault("elpd_diff", np.nan)
         rows[name].setdefault("se_diff", np.nan)
         rows[name]["weight"] = weights.get(name, np.nan)
         rows[name]["level"] = level
+        cls = next((c for c in classes if name in c), [])
+        rows[name]["equivalent_to"] = ", ".join(n for n in cls if n != name)
+        if cls and name in defined:
+            rows[name]["note"] = "; ".join(x for x in (_equivalence_note(
+                name, cls, values, rows[name]["kind"] == "bayes", weights), rows[name]["note"])
+                if x)
     names = order + [n for n in models if n not in defined]
     out = pd.DataFrame([rows[n] for n in names], index=pd.Index(names, name="model"))
     out = out[COMPARE_COLUMNS]
@@ -290,8 +436,25 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
         out[c] = out[c].astype(float)
     for c in ("n_points", "n_high_pareto_k"):
         out[c] = out[c].astype(int)
-    out.attrs.update(level=level, n_points=len(common), n_points_all=n_all)
+    out.attrs.update(level=level, n_points=len(common), n_points_all=n_all,
+                     equivalent=[list(c) for c in classes],
+                     methods_note=methods_note(out["method"].tolist()))
     return out
+
+
+def _equivalence_note(name, cls, values, bayes, weights) -> str:
+    """The note of a member of an equivalence class: who it is equivalent to, how far
+    their ELPDs are apart and, for posteriors, how the class shares its weight."""
+    others = [n for n in cls if n != name]
+    scored = [n for n in cls if n in values]
+    spread = max(values[n].sum() for n in scored) - min(values[n].sum() for n in scored)
+    text = (f"equivalent to {', '.join(others)} (same likelihood, same column space: a "
+            f"reparametrisation); ELPDs {spread:.2f} apart")
+    if bayes and name in weights:
+        total = sum(weights.get(n, 0.0) for n in cls)
+        text += (f"; the class's stacking weight {total:.3f} is shared equally, since "
+                 "equivalent models cannot be told apart by stacking")
+    return text
 
 
 # ---------------------------------------------------------------------------- coefficients

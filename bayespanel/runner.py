@@ -34,7 +34,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import BayespanelError, SpecificationError, choices_error
+from .errors import (BayespanelError, EstimationError, SamplingWarning, SpecificationError,
+                     choices_error)
 from .models.families import FAMILIES
 from .models.sampling import MIN_DRAWS
 from .occasions import true_occasion_coef
@@ -59,9 +60,9 @@ _PACKAGES = ("bayespanel", "numpy", "scipy", "pandas", "xarray", "pymc", "pytens
 LATENT_MODELS = ("random_intercept", "within_between", "correlated_effects")
 #: reference fits of the logit / log-link families: pooled GLMs on these columns
 GLM_REFERENCES = ("pooled", "mundlak", "within_between")
-AUTO_EXACT = 1000
 _LOG = logging.getLogger("bayespanel")
 LOO_OBSERVATIONS = 400
+MAX_REFITS = 10
 _KIND_OF = {"pooled": "pooled", "random_intercept": "random", "within_between": "within_between",
             "correlated_effects": "mundlak", "fixed_effects": "within"}
 
@@ -99,9 +100,16 @@ class Settings:
     ppc_draws : int
         Posterior draws used for the predictive checks.
     reference_folds : int, optional
-        How reference fits enter the LOO table: ``None`` exact leave-one-out refits when
-        there are at most ``AUTO_EXACT`` points at the chosen level, grouped 10-fold
-        beyond; ``0`` always exact; ``K >= 2`` grouped K-fold.
+        How reference fits enter the LOO table: ``None`` or ``0`` exact leave-one-out
+        refits at every size (closed form, from downdated statistics); ``K >= 2`` grouped
+        K-fold (the comparison then says what mixing methods means for the ranking).
+    refit_high_k : bool
+        Replace the PSIS-LOO points whose Pareto k is above the threshold by exact refits
+        (one posterior sample each, the compiled model reused), at most ``max_refits``
+        per model.
+    max_refits : int
+        Most exact refits per model (default ``MAX_REFITS``); with more high-k points the
+        PSIS values stay and the problem list says so.
     title : str, optional
     out_of_core : bool
         Read the Parquet file or folder on Dask and work from one-pass statistics
@@ -147,6 +155,8 @@ class Settings:
     occasion_effects: bool = False
     ppc_draws: int = 200
     reference_folds: int | None = None
+    refit_high_k: bool = False
+    max_refits: int = MAX_REFITS
     title: str | None = None
     data_sha256: str | None = None
     out_of_core: bool = False
@@ -224,6 +234,15 @@ class Settings:
                 or self.reference_folds == 1 or self.reference_folds < 0):
             raise SpecificationError(f"reference_folds={self.reference_folds!r} must be 0 "
                                      "(exact leave-one-out) or an integer K >= 2")
+        if not isinstance(self.refit_high_k, bool):
+            raise SpecificationError(f"refit_high_k={self.refit_high_k!r} must be true or false")
+        if isinstance(self.max_refits, bool) or not isinstance(self.max_refits, int) \
+                or self.max_refits < 1:
+            raise SpecificationError(f"max_refits={self.max_refits!r} must be an integer >= 1")
+        if self.out_of_core and self.refit_high_k:
+            raise SpecificationError(
+                "refit_high_k: exact refits need the rows, which the out-of-core route does "
+                "not load; drop refit_high_k or out_of_core")
         if self.rope is not None and (isinstance(self.rope, bool) or not isinstance(
                 self.rope, (int, float)) or not 0 < self.rope < float("inf")):
             raise SpecificationError(f"rope={self.rope!r} must be a finite positive number")
@@ -359,6 +378,10 @@ class Settings:
                   "", "[comparison]", f"level = {_toml_value(self.level)}"]
         if self.reference_folds is not None:
             lines.append(f"reference_folds = {_toml_value(self.reference_folds)}")
+        if self.refit_high_k:
+            lines.append("refit_high_k = true")
+        if self.max_refits != MAX_REFITS:
+            lines.append(f"max_refits = {_toml_value(self.max_refits)}")
         if self.rope is not None:
             lines.append(f"rope = {_toml_value(self.rope)}")
         if self.loo_observations is not None:
@@ -377,7 +400,8 @@ _TOML_LAYOUT = {  # section -> {key in file: Settings field}
     "sampling": {k: k for k in ("draws", "tune", "chains", "seed", "sampler", "ppc_draws")},
     "reference": {"fits": "reference", "cov": "cov", "method": "re_method"},
     "comparison": {"level": "level", "rope": "rope", "reference_folds": "reference_folds",
-                   "loo_observations": "loo_observations"},
+                   "loo_observations": "loo_observations", "refit_high_k": "refit_high_k",
+                   "max_refits": "max_refits"},
     "report": {"interval": "interval", "title": "title"},
 }
 
@@ -1011,12 +1035,10 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
     return post, entry
 
 
-def _reference_folds(settings, design):
-    """Exact LOO for the reference fits up to AUTO_EXACT points, grouped K-fold beyond."""
-    if settings.reference_folds is not None:
-        return settings.reference_folds or None
-    points = design.n if settings.level == "occasion" else design.n_units
-    return None if points <= AUTO_EXACT else 10
+def _reference_folds(settings):
+    """Exact LOO for the reference fits at every size (downdated closed-form refits),
+    grouped K-fold when the settings ask for it."""
+    return settings.reference_folds or None
 
 
 def _loo_observations(settings, design):
@@ -1026,33 +1048,72 @@ def _loo_observations(settings, design):
     return min(settings.loo_observations or LOO_OBSERVATIONS, points)
 
 
+def _loo_refitted(post, level, settings):
+    """PSIS-LOO with the high-k points replaced by exact refits (``refit_high_k``):
+    ``(LOOResult, note or None, refit warnings)``. With more high-k points than
+    ``max_refits``, or a model that cannot be refitted, the PSIS values stay and the note
+    says why."""
+    from .loo.psis import MANY_REFITS
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", SamplingWarning)
+        try:
+            lr = post.loo(level, refit_high_k=True, max_refits=settings.max_refits)
+            n = int(lr.pointwise["refit"].sum()) if "refit" in lr.pointwise else 0
+            note = (f"{n} point(s) with high Pareto k replaced by exact refits" if n else None)
+        except SpecificationError as exc:  # latent-effect models have no exact refits
+            lr, note = post.loo(level), f"not refitted: {exc}"
+        except EstimationError:  # more high-k points than max_refits
+            lr = post.loo(level)
+            n_high = int(lr.n_high_pareto_k)
+            note = (f"not refitted: {n_high} points exceed max_refits = {settings.max_refits}"
+                    f" (--max-refits N; from {MANY_REFITS} refits on they use nutpie, "
+                    "compiled once) or compare by grouped K-fold")
+    found = [str(w.message) for w in caught if issubclass(w.category, SamplingWarning)]
+    return lr, note, [w for w in found if w.startswith("refit without")]
+
+
 def _loo_entry(post, level, design=None, settings=None):
-    """PSIS-LOO of one posterior (out of core: sub-sampled, Magnusson et al. 2019), or
-    None when the level is undefined for the model."""
+    """PSIS-LOO of one posterior (out of core: sub-sampled, Magnusson et al. 2019; with
+    ``settings.refit_high_k``, high-k points refitted exactly), or None when the level is
+    undefined for the model."""
     large = getattr(design, "out_of_core", False)
+    refit_note, refit_warnings = None, []
     try:
-        lr = (design.loo_subsample(post, _loo_observations(settings, design), level=level,
-                                   seed=settings.seed) if large else post.loo(level))
+        if large:
+            lr = design.loo_subsample(post, _loo_observations(settings, design), level=level,
+                                      seed=settings.seed)
+        elif settings is not None and settings.refit_high_k:
+            lr, refit_note, refit_warnings = _loo_refitted(post, level, settings)
+        else:
+            lr = post.loo(level)
     except BayespanelError as exc:
         return None, {"level": level, "elpd": None, "se": None, "p_loo": None,
                       "n_high_k": None, "max_k": None, "warning": str(exc)}
     pw = lr.pointwise
     entry = {"level": level, "elpd": lr.elpd, "se": lr.se, "p_loo": lr.p_loo,
-             "n_high_k": None, "max_k": None, "warning": "; ".join(lr.notes) or None}
+             "n_high_k": None, "max_k": None, "warning": "; ".join(lr.notes) or None,
+             "method": lr.method, "n_points": lr.n_points}
     if large:
-        entry.update(method=lr.method, n_points=lr.n_points,
-                     observations=_loo_observations(settings, design),
+        entry.update(observations=_loo_observations(settings, design),
                      subsampling_se=lr.subsampling_se)
     if "pareto_k" in pw:
         k = pw["pareto_k"].to_numpy(dtype=float)
         good = lr.good_k if lr.good_k is not None else 0.7
-        high = pw.loc[k > good]
+        high = lr.high_k  # points above the threshold not replaced by exact refits
         entry["max_k"] = float(np.nanmax(k)) if np.isfinite(k).any() else None
+        entry["good_k"] = good
         entry["n_high_k"] = int(len(high))
+        if "refit" in pw:
+            entry["n_refits"] = int(pw["refit"].sum())
         if len(high) and not entry["warning"]:
             who = ", ".join(map(str, high["unit"].astype(str).unique()[:10]))
             entry["warning"] = (f"{len(high)} point(s) with Pareto k above {good:.2f} "
                                 f"(units {who}); their LOO values are unreliable")
+    if refit_note:
+        entry["refit_note"] = refit_note
+    if refit_warnings:
+        entry["refit_warnings"] = refit_warnings
     return lr, _floats(entry)
 
 
@@ -1097,38 +1158,52 @@ def _comparison_large(settings, design, posts, entries, say):
 def _comparison_stage(settings, design, posts, ref_fits, entries, say, failed=None):
     """LOO at the chosen level for every Bayesian model and reference fit (a model whose
     LOO fails is left out of the table and recorded in ``failed``)."""
-    from .compare import compare
+    from .compare import compare, equivalence_classes
 
     if getattr(design, "out_of_core", False):
         return _comparison_large(settings, design, posts, entries, say)
     fits, titles = {}, {}
     by_name = {e["name"]: e for e in entries}
+    models = {}
     for name, post in posts.items():
+        if settings.refit_high_k:
+            say(f"LOO of {name}: PSIS at the {settings.level} level, exact refits of points "
+                f"with high Pareto k (at most {settings.max_refits})")
         with _isolated(failed if failed is not None else [], say, name, BAYES_MODELS[name][0],
                        "LOO"):
-            lr, by_name[name]["loo"] = _loo_entry(post, settings.level)
+            lr, by_name[name]["loo"] = _loo_entry(post, settings.level, settings=settings)
             fits[name] = lr if lr is not None else post
+            models[name] = post
             titles[name] = BAYES_MODELS[name][0]
     for name, res in ref_fits.items():
         if name == "between" or settings.glm_reference:
             continue  # between: one row per unit; GLMs: no cross-validation (docs/families.md)
-        fits[f"ref:{name}"] = res
+        fits[f"ref:{name}"] = models[f"ref:{name}"] = res
         titles[f"ref:{name}"] = REFERENCE_FITS[name][0] + " (ref.)"
-    folds = _reference_folds(settings, design)
+    folds = _reference_folds(settings)
     say(f"LOO at the {settings.level} level; reference fits by "
         + ("exact leave-one-out refits" if folds is None else f"grouped {folds}-fold CV"))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        table = compare(fits, level=settings.level, reference_folds=folds, seed=settings.seed)
+        classes = equivalence_classes(models)
+        table = compare(fits, level=settings.level, reference_folds=folds, seed=settings.seed,
+                        equivalent=classes, progress=say)
     rows = []
     for key, r in table.iterrows():
         rec = _floats({str(k): v for k, v in r.items()})
         rec["model"] = str(key)
         rec["title"] = titles.get(str(key), str(key))
+        if rec.get("equivalent_to") and rec.get("note"):  # titles, not internal names
+            names = rec["equivalent_to"].split(", ")
+            rec["note"] = rec["note"].replace(
+                f"equivalent to {rec['equivalent_to']} (",
+                f"equivalent to {', '.join(titles.get(n, n) for n in names)} (", 1)
         rec["kind"] = "reference" if str(key).startswith("ref:") else "bayesian"
         rows.append(rec)
     say(f"LOO comparison done: {len(rows)} fits")
-    out = {"level": settings.level, "reference_folds": folds, "rows": rows}
+    out = {"level": settings.level, "reference_folds": folds, "rows": rows,
+           "methods_note": table.attrs.get("methods_note") or None,
+           "equivalent": table.attrs.get("equivalent", [])}
     if settings.glm_reference and ref_fits:
         out["note"] = ("the reference GLMs are not scored: they have no cross-validation "
                        "here, and a pooled GLM's plug-in density would not predict a known "
@@ -1257,6 +1332,7 @@ def _left_out(settings, panel, design) -> dict:
 
 def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progress_bars):
     """Reference fits, tests, Bayesian fits and the comparison -> the results dict."""
+    from .report.problems import problems
     from .report.results_json import SCHEMA_NAME, SCHEMA_VERSION, validate
 
     from . import family_stage
@@ -1307,5 +1383,6 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
         results["failed"] = failed
     if getattr(design, "out_of_core", False):
         results["out_of_core"] = _left_out(settings, panel, design)
+    results["problems"] = problems(results)  # the one list every output prints
     validate(results)
     return results

@@ -156,7 +156,8 @@ def test_problems_are_flagged_in_the_report_and_on_screen(flawed_run, tmp_path, 
     html = (out / "report.html").read_text("utf-8")
     assert "divergent transition" in html and "R-hat above" in html and "Pareto k" in html
     assert "warning: 3 divergent transition(s)" in stdout
-    assert "sampling problems (" in stdout and "Pareto k value(s) above" in stdout
+    assert "sampling problems (" in stdout and "comparison problems (" in stdout
+    assert "with Pareto k above" in stdout and "--refit-high-k" in stdout
     # the report rebuilt from results.json alone carries them too
     assert main(["report", str(out), "--out", str(tmp_path)]) == 0
     capsys.readouterr()
@@ -166,12 +167,14 @@ def test_problems_are_flagged_in_the_report_and_on_screen(flawed_run, tmp_path, 
 def test_strict_mode_fails_the_run_and_still_writes(flawed_run):
     out, rc, _, stderr = flawed_run
     assert rc == EXIT_SAMPLING == 3
-    assert "--strict:" in stderr and "sampling problem(s)" in stderr
+    assert "--strict:" in stderr and "problem(s) (sampling or comparison)" in stderr
     assert (out / "results.json").exists()  # outputs are written either way
     res = json.loads((out / "results.json").read_text("utf-8"))
     assert _strict_exit(res, strict=False) == 0  # without --strict: reported, exit 0
     clean = {**res, "models": [{**m, "diagnostics": {**m["diagnostics"], "warnings": []},
                                 "loo": {**m["loo"], "n_high_k": 0}} for m in res["models"]]}
+    assert _strict_exit(clean, strict=True) == EXIT_SAMPLING  # the stored list counts
+    clean.pop("problems")  # an older results file: the list is computed the same way
     assert _strict_exit(clean, strict=True) == 0
 
 

@@ -324,7 +324,9 @@ def loo(post, level="occasion", *, refit_high_k=False, max_refits=10, refit_kwar
                   "lower" if fd.latent is not None and level == "occasion" else
                   "Exact refits and K-fold are not available for latent-effect models"
                   if fd.latent is not None else
-                  "Use refit_high_k=True for exact refits, or bp.loo.kfold"))
+                  "Refit them exactly with post.loo(level, refit_high_k=True), or from the "
+                  "command line with --refit-high-k (refit_high_k = true in the analysis "
+                  "file); or use bp.loo.kfold"))
         warnings.warn(msg, SamplingWarning, stacklevel=2)
         notes.append(f"{len(high)} point(s) with Pareto k > {good_k:.2f}: {who}")
     elpd, se, p = _summary(pw["elpd"].to_numpy(), lpd_i)

@@ -16,6 +16,7 @@ from importlib import resources
 
 from . import family_report, figures, tables
 from . import numbers as num
+from .problems import stored as stored_problems
 from .text import CAUTION, LEVEL_TEXT, label
 
 __all__ = ["Safe", "esc", "fmt", "render", "SECTIONS"]
@@ -157,21 +158,12 @@ def _overview(r) -> Safe:
                        for v, k in facts], cls="bp-keyfacts")
     parts = [box, tag("p", "Outcome ", tag("code", d["outcome"]), ", formula ",
                       tag("code", d["formula"]), ".", family_report.overview_text(r))]
+    items = stored_problems(r)
     comp = r.get("comparison") or {}
     best = [row for row in comp.get("rows", []) if row.get("elpd_diff") == 0]
     if best:
-        close = [row["title"] for row in comp["rows"] if row.get("elpd_diff") not in (None, 0)
-                 and row.get("se_diff") and -row["elpd_diff"] < 2 * row["se_diff"]]
-        tie = (f" Within two SEs of it, so not told apart: {', '.join(close)}." if close else "")
-        parts.append(note("info", f"Best predictive accuracy ({comp['level']} level): "
-                          f"{best[0]['title']}.{tie}", "LOO."))
-    n_warn = sum(len(m["diagnostics"].get("warnings", [])) for m in r["models"])
-    if n_warn:
-        parts.append(note("caution", f"{n_warn} sampling warning(s); see the diagnostics "
-                          "section before relying on the estimates.", "Check."))
-    elif r["models"]:
-        parts.append(note("fine", "No sampling warnings: R-hat, ESS, divergences and "
-                          "energy are within the usual thresholds.", "Sampling."))
+        parts.append(_best_note(comp, best[0], items))
+    parts += _problem_notes(r, items)
     for f in r.get("failed") or []:
         parts.append(_failed_note(f))
     for w in r.get("warnings", []):
@@ -192,6 +184,56 @@ def _failed_note(f) -> Safe:
     return note("problem", f"{f['stage']} of {f['title']} failed: {f['error']}. It is "
                 "missing from the tables; everything else on this page is complete.",
                 "Failed.")
+
+
+def _best_note(comp, best, items) -> Safe:
+    """The first screen's LOO sentence: the best model, the models not told apart from it,
+    and, when its own LOO estimate is in doubt, that the ranking is too."""
+    close = [row["title"] for row in comp["rows"] if row.get("elpd_diff") not in (None, 0)
+             and row.get("se_diff") and -row["elpd_diff"] < 2 * row["se_diff"]]
+    tie = f" Within two SEs of it, so not told apart: {', '.join(close)}." if close else ""
+    text = f"Best predictive accuracy ({comp['level']} level): {best['title']}.{tie}"
+    if best.get("equivalent_to"):
+        text += (" It is a reparametrisation of "
+                 + ", ".join(_title_of(comp, n) for n in best["equivalent_to"].split(", "))
+                 + ", which predicts alike.")
+    flagged = [p for p in items if p["kind"] == "comparison" and p["model"] == best["model"]]
+    if flagged or best.get("n_high_pareto_k"):
+        n = best.get("n_high_pareto_k") or 0
+        text += (f" But its own LOO estimate is unreliable ({n} point{'s' if n != 1 else ''} "
+                 "with high Pareto k), so this ranking is uncertain; see the problems below.")
+    if comp.get("methods_note"):
+        text += " Rows are scored by different methods (see the comparison section)."
+    return note("caution" if flagged else "info", text, "LOO.")
+
+
+def _title_of(comp, name) -> str:
+    for row in comp.get("rows", []):
+        if row["model"] == name:
+            return row["title"]
+    return name
+
+
+def _problem_notes(r, items) -> list:
+    """One note per kind of problem, listing them, or one note that there are none: the
+    same list the console prints and results.json holds."""
+    out = []
+    heads = {"sampling": ("Sampling.", "the estimates of these models may be unreliable; "
+                          "see the diagnostics section before relying on them"),
+             "comparison": ("Comparison.", "the LOO estimates of these models are "
+                            "unreliable, and so is their place in the comparison")}
+    for kind, (lead, what) in heads.items():
+        mine = [p for p in items if p["kind"] == kind]
+        if mine:
+            out.append(note("caution", join([
+                f"{len(mine)} {kind} problem(s): {what}.",
+                tag("ul", *[tag("li", tag("b", p["title"]), f": {p['text']}") for p in mine],
+                    cls="bp-problems")]), lead))
+    if not items and r["models"]:
+        out.append(note("fine", "No sampling or comparison problems: R-hat, ESS, "
+                        "divergences, energy and Pareto k are within the usual thresholds.",
+                        "Checks."))
+    return out
 
 
 def _data(r) -> Safe:
@@ -429,16 +471,37 @@ def _comparison(r) -> Safe:
         text = text or ""
         return "" if text.startswith("exact CV with closed-form refits") else text
 
+    def _k(row):
+        n = row.get("n_high_pareto_k")
+        return tag("span", num.count(n), cls="bp-status warn") if n else esc(num.count(n))
+
     rows = [[row["title"], tag("span", row.get("method") or "", cls="bp-nowrap"),
              _est(row.get("elpd"), row.get("se")), esc(num.uncertainty(row.get("se"))),
              _est(row.get("elpd_diff"), row.get("se_diff")),
              esc(num.uncertainty(row.get("se_diff"))), esc(num.plain(row.get("p_loo"))),
-             esc(num.share(row.get("weight"))), esc(num.count(row.get("n_high_pareto_k"))),
+             esc(num.share(row.get("weight"))), _k(row),
              tag("small", _note(row.get("note")))]
             for row in comp["rows"]]
     out.append(table(["model", "method", "ELPD", "SE", "difference", "SE of difference",
                       "p_loo", "weight", "high Pareto k", "note"], rows, numeric=range(2, 9),
                      foot=tables.footer(r)))
+    if comp.get("methods_note"):
+        out.append(note("caution", comp["methods_note"], "Methods differ."))
+    flagged = [row["title"] for row in comp["rows"] if row.get("n_high_pareto_k")]
+    if flagged:
+        out.append(note("caution", f"{', '.join(flagged)}: points with Pareto k above the "
+                        "threshold make these ELPDs unreliable, and differences involving "
+                        "them too. Refit those points exactly (--refit-high-k, or "
+                        "refit_high_k = true in the analysis file) before ranking.",
+                        "High Pareto k."))
+    if comp.get("equivalent"):
+        groups = "; ".join(" = ".join(_title_of(comp, n) for n in c) for c in comp["equivalent"])
+        out.append(note("info", f"{groups}. Same likelihood on the same column space: the "
+                        "models are reparametrisations of each other and predict alike (for "
+                        "Bayesian models, up to their priors). Stacking cannot tell how to "
+                        "split weight between them, so each class is stacked as one (the "
+                        "equal mixture of its members) and its weight is shared equally.",
+                        "Equivalent models."))
     out.append(figure(figures.loo_figure(r), "ELPD difference by model",
                       "ELPD difference to the best model with two SEs of the difference.",
                       "fig-loo"))
@@ -468,12 +531,13 @@ def _diagnostics(r) -> Safe:
            table(["model", "divergences", "max R-hat", "min bulk ESS", "min tail ESS",
                   "min BFMI", "max Pareto k", "high Pareto k", "status"], rows,
                  foot=tables.footer(r, icc=False))]
+    for p in stored_problems(r):
+        out.append(note("problem" if p["kind"] == "sampling" else "caution", p["text"],
+                        f"{p['title']} ({p['kind']}):"))
     for m in r["models"]:
-        for w in m["diagnostics"].get("warnings", []):
-            out.append(note("problem", w, f"{m['title']}:"))
         loo = m.get("loo") or {}
-        if loo.get("warning"):
-            out.append(note("caution", loo["warning"], f"{m['title']}:"))
+        if loo.get("warning") and not loo.get("n_high_k"):
+            out.append(note("info", loo["warning"], f"{m['title']} (LOO):"))
     return join(out)
 
 
