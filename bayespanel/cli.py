@@ -394,11 +394,9 @@ def _print_summary(results, truth=None) -> None:
                     title.get(n, n) for n in r["equivalent_to"].split(", ")))
             flags += [p for p in (r.get("note") or "").split("; ") if p.startswith("scored on")]
             w = r.get("weight")
-            print(f"  {r['title']:<40} {_fmt(r.get('elpd_diff'), r.get('se_diff')):>9}  "
-                  f"{_sd(r.get('se_diff')):>8}  {'' if w is None else f'{w:.2f}':>5}  "
-                  f"{r.get('method') or ''}" + (f"  ({'; '.join(flags)})" if flags else ""))
-        if comp.get("methods_note"):
-            print(f"  note: {comp['methods_note']}")
+        for text in (comp.get("note"), comp.get("methods_note")):
+            if text:
+                print(f"  note: {text}")
 
 
 def cmd_demo(args) -> int:
