@@ -393,7 +393,12 @@ def _print_summary(results, truth=None) -> None:
                 flags.append("equivalent to " + ", ".join(
                     title.get(n, n) for n in r["equivalent_to"].split(", ")))
             flags += [p for p in (r.get("note") or "").split("; ") if p.startswith("scored on")]
-            w = r.get("weight")
+            from .report import numbers
+
+            w = "" if r.get("weight") is None else numbers.share(r["weight"])
+            print(f"  {r['title']:<40} {_fmt(r.get('elpd_diff'), r.get('se_diff')):>9}  "
+                  f"{_sd(r.get('se_diff')):>8}  {w:>5}  "
+                  f"{r.get('method') or ''}" + (f"  ({'; '.join(flags)})" if flags else ""))
         for text in (comp.get("note"), comp.get("methods_note")):
             if text:
                 print(f"  note: {text}")
