@@ -467,9 +467,10 @@ def _comparison(r) -> Safe:
                cls="bp-lead")]
     if comp.get("note"):
         out.append(note("info", comp["note"] + ".", "Reference fits."))
-    def _note(text):
-        text = text or ""
-        return "" if text.startswith("exact CV with closed-form refits") else text
+    def _note(text):  # the method column says how reference rows were scored
+        return "; ".join(p for p in (text or "").split("; ")
+                         if p and not p.startswith("exact CV with closed-form refits")
+                         and not p.startswith("exact K-fold CV (K="))
 
     def _k(row):
         n = row.get("n_high_pareto_k")
