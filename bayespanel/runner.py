@@ -563,9 +563,6 @@ def open_out_of_core(path, unit, time_col, say):
     client = os.environ.get(SCHEDULER_ENV, "local").strip() or "local"
     if client not in SCHEDULERS:
         raise choices_error(SCHEDULER_ENV, client, SCHEDULERS)
-    # dask's Parquet reader trips pandas' own deprecation notices on every partition;
-    # they are about dask's code, not the user's data
-    warnings.filterwarnings("ignore", module=r"dask\.")
     panel = Panel.from_parquet(str(p), unit=unit, time=time_col, engine="dask", client=client)
     say(f"opened {p.name} out of core: {panel.npartitions} partitions, "
         f"{len(panel.columns)} columns, scheduler {client}")

@@ -36,6 +36,7 @@ References
 from __future__ import annotations
 
 import atexit
+import contextlib
 import importlib
 import os
 import re
@@ -97,6 +98,23 @@ def close_local_client() -> None:
 
 
 atexit.register(close_local_client)
+
+
+#: dask's Parquet reader (dask/dataframe/io/parquet/arrow.py) calls
+#: DataFrame.reset_index(inplace=True), deprecated in pandas 3.1 (PDEP-8), on every
+#: partition of a file written without a pandas index; the notice is about dask's code,
+#: not the user's data, so the passes silence that one message (and nothing else) while
+#: they read, instead of letting it into results.json on every out-of-core run
+_DASK_PARQUET_NOTICE = r"The inplace keyword in DataFrame\.reset_index is deprecated"
+
+
+@contextlib.contextmanager
+def _reading():
+    """While dask reads partitions: its own pandas deprecation notice is not the user's
+    concern (see :data:`_DASK_PARQUET_NOTICE`); every other warning passes."""
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=_DASK_PARQUET_NOTICE, module=r"dask\.")
+        yield
 
 
 def _resolve_client(client):
@@ -202,7 +220,8 @@ class DaskPanel:
         if isinstance(path, (str, os.PathLike)) and os.path.isdir(path):
             parquet_files(path)  # an empty folder is named as such, not as a reader error
         try:
-            df = dd.read_parquet(path, columns=columns, **kwargs)
+            with _reading():
+                df = dd.read_parquet(path, columns=columns, **kwargs)
         except Exception as exc:  # pyarrow / fsspec raise several types
             raise PanelDataError(f"cannot read Parquet {str(path)!r}: {exc}") from None
         return cls(df, unit=unit, time=time, client=client)
@@ -250,12 +269,13 @@ class DaskPanel:
         extra = () if shared is None else (self._share(shared),)
         parts = [delayed(block, pure=True)(d, *args, *extra) for d in self._pieces(columns)]
         root = _tree(parts, merge)
-        if isinstance(self.client, str):
-            sched = {"local": None, "threads": "threads", "synchronous": "sync"}[self.client]
-            if sched is None:
-                return local_client().compute(root).result()
-            return root.compute(scheduler=sched)
-        return self.client.compute(root).result()
+        with _reading():
+            if isinstance(self.client, str):
+                sched = {"local": None, "threads": "threads", "synchronous": "sync"}[self.client]
+                if sched is None:
+                    return local_client().compute(root).result()
+                return root.compute(scheduler=sched)
+            return self.client.compute(root).result()
 
     # ------------------------------------------------------------------ structure
     @property
@@ -286,7 +306,8 @@ class DaskPanel:
 
     def _raise_duplicates(self, piece, dup, distinct):
         u = piece.keys[dup[0]]
-        rows = self._df[self._df[self.unit] == u][self.time].compute()
+        with _reading():
+            rows = self._df[self._df[self.unit] == u][self.time].compute()
         t = rows[rows.duplicated()].iloc[0]
         extra = int((piece.counts - distinct)[dup].sum())
         raise PanelDataError(
