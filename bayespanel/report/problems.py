@@ -37,6 +37,9 @@ def _high_k_text(loo) -> str:
             "comparison, is unreliable")
     if loo.get("refit_note"):
         return f"{text}; {loo['refit_note']}"
+    if "sub-sampled" in (loo.get("method") or ""):
+        return (f"{text}; exact refits need the rows, which the out-of-core route does not "
+                "load: read the points' values as approximate")
     return (f"{text}; rerun with {REFIT_OPTION} to replace them by exact refits "
             f"(refit_high_k = true in the analysis file)")
 
