@@ -1083,7 +1083,10 @@ def _loo_entry(post, level, design=None, settings=None):
         elif settings is not None and settings.refit_high_k:
             lr, refit_note, refit_warnings = _loo_refitted(post, level, settings)
         else:
-            lr = post.loo(level)
+            with warnings.catch_warnings():
+                # high Pareto k enters the run's problem list (report.problems), once
+                warnings.simplefilter("ignore", SamplingWarning)
+                lr = post.loo(level)
     except BayespanelError as exc:
         return None, {"level": level, "elpd": None, "se": None, "p_loo": None,
                       "n_high_k": None, "max_k": None, "warning": str(exc)}
