@@ -82,7 +82,7 @@ def _report_problems(page):
     found = set()
     for kind, items in re.findall(r"<b>(Sampling|Comparison)\.</b>.*?<ul[^>]*>(.*?)</ul>",
                                   glance, flags=re.S):
-        for title, text in re.findall(r"<li><b>(.*?)</b>: (.*?)</li>", items, flags=re.S):
+        for title, text in re.findall(r"<li><b>(.*?):</b> (.*?)</li>", items, flags=re.S):
             found.add((kind.lower(), html.unescape(title), html.unescape(text)))
     return found
 

@@ -227,7 +227,7 @@ def _problem_notes(r, items) -> list:
         if mine:
             out.append(note("caution", join([
                 f"{len(mine)} {kind} problem(s): {what}.",
-                tag("ul", *[tag("li", tag("b", p["title"]), f": {p['text']}") for p in mine],
+                tag("ul", *[tag("li", tag("b", f"{p['title']}:"), f" {p['text']}") for p in mine],
                     cls="bp-problems")]), lead))
     if not items and r["models"]:
         out.append(note("fine", "No sampling or comparison problems: R-hat, ESS, "
