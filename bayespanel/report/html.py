@@ -130,6 +130,10 @@ def _interval(lo, hi, u=None) -> str:
     return num.interval(lo, hi, u) if u is not None else f"[{fmt(lo)}, {fmt(hi)}]"
 
 
+#: "p-value" with a non-breaking hyphen, so a narrow heading does not break it in two
+_P_VALUE = "p\u2011value"
+
+
 def _est(x, u) -> Safe:
     """An estimate to the decimals of its uncertainty, as a table cell."""
     return esc(num.estimate(x, u))
@@ -256,8 +260,10 @@ def _data(r) -> Safe:
         out.append(note("caution", f"{smp['n_dropped']} rows with missing values were left "
                         f"out of every model ({det}); unit means use the remaining rows.",
                         "Missing values."))
-    rows = [[v["variable"], *_nums(num.count(v["n"]), *[num.plain(v[k]) for k in (
-             "mean", "sd_overall", "sd_between", "sd_within")], num.share(v["share_within"])),
+    rows = [[v["variable"], *_nums(num.count(v["n"]), *[num.plain(v[k], scale=v["sd_overall"])
+                                                         for k in ("mean", "sd_overall",
+                                                                   "sd_between", "sd_within")],
+                                   num.share(v["share_within"])),
              Safe(esc("yes" if v["varies_within"] else "no"))]
             for v in d["variables"]]
     out.append(table(["variable", "n", "mean", "SD overall", "SD between", "SD within",
@@ -306,7 +312,7 @@ def _coefficients(r) -> Safe:
     prob = r["settings"]["interval"]
     cols, terms = tables.coefficient_grid(r)
     truth = (r.get("truth") or {}).get("by_model", {})
-    heads = ["term · model", "estimate", "SD / SE", f"{_pct(prob)} interval", "p-value"]
+    heads = ["term · model", "estimate", "SD / SE", f"{_pct(prob)} interval", _P_VALUE]
     if truth:
         heads.append("true value")
     body = []
@@ -391,9 +397,8 @@ def _partition(r) -> Safe:
                          [[f["title"], zero(f, f.get("sigma_unit")), esc(num.plain(f.get("sigma_obs"))),
                            zero(f, f.get("icc")), esc(f.get("method") or num.MISSING)]
                           for f in refs], numeric=[1, 2, 3], foot=tables.footer(r)))
-        for f in refs:
-            if f.get("boundary_note"):
-                out.append(note("caution", f["boundary_note"], f"{f['title']}:"))
+        for titles, text in tables.grouped_notes(refs, "boundary_note"):
+            out.append(note("caution", text, f"{titles}:"))
     for f in r["reference"]:
         if f.get("unit_intercept_share") is not None:
             out.append(note("info", tables.intercept_share_text(f), f"{f['title']}:"))
@@ -443,7 +448,7 @@ def _contrasts(r) -> Safe:
                                               if t.get("df") is not None else num.MISSING)),
                 esc(num.p_value(t.get("reported_p_value", t.get("p_value")))),
                 t.get("conclusion", "")] for t in tests]
-        out.append(table(["reference test", "statistic", "distribution", "p-value", "reading"],
+        out.append(table(["reference test", "statistic", "distribution", _P_VALUE, "reading"],
                          trs, numeric=[1, 3], foot=tables.footer(r)))
     if not rows and not tests:
         out.append(note("info", "No model with separate within and between effects was "

@@ -10,6 +10,8 @@ The rule
   of its interval, are shown to the same decimal place (never fewer than zero decimals):
   ``-0.00412`` beside ``0.00069``, ``98`` beside ``30``, ``0.110`` beside ``0.013``.
   Common practice in reporting measurements (two significant digits of the uncertainty).
+  Digits before the decimal point are never dropped: an uncertainty of 100 or more is
+  shown as an integer (``121``), and so is its estimate.
 - A number without a stated uncertainty (a test statistic, a descriptive statistic, a
   variance component of a reference fit) is shown to :data:`PLAIN_DIGITS` significant
   digits, never dropping digits before the decimal point.
@@ -118,12 +120,16 @@ def interval(lo, hi, u) -> str:
     return f"[{estimate(lo, u)}, {estimate(hi, u)}]"
 
 
-def plain(x, sig: int = PLAIN_DIGITS) -> str:
+def plain(x, sig: int = PLAIN_DIGITS, scale=None) -> str:
     """A number without a stated uncertainty: ``sig`` significant digits, never fewer
-    digits than its integer part has."""
+    digits than its integer part has. With ``scale`` (e.g. the SD of the variable), a value
+    below ``1e-9 * scale`` is the rounding noise of an exact zero and shown as 0."""
     v = _finite(x)
     if v is None:
         return MISSING
+    s = _finite(scale)
+    if s and abs(v) < 1e-9 * abs(s):
+        v = 0.0
     if v == 0:
         return "0"
     if abs(v) >= 1e9 or abs(v) < 10.0 ** -(MAX_DECIMALS - sig + 1):

@@ -84,23 +84,24 @@ def _icc_text(results) -> str:
         vp = m.get("variance_partition") or {}
         q = {r["quantity"]: r for r in vp.get("summary", [])}.get("ICC")
         if q is not None and q.get("mean") is not None:
-            bayes.append(f"{m['title']} {num.estimate(q['mean'], q.get('sd'))}")
+            bayes.append((m["title"], num.estimate(q["mean"], q.get("sd"))))
     refs = []
     for f in results.get("reference", []):
         if f.get("icc") is None and not f.get("unit_variance_at_zero"):
             continue
         v = "0 (unit variance estimated at zero)" if f.get("unit_variance_at_zero") \
             else num.plain(f["icc"])
-        refs.append(f"{f['title']} {v}")
+        refs.append((f["title"], v))
     parts = []
     if bayes:
-        parts.append(", ".join(bayes) + " (posterior means)")
+        parts.append(f"{label('icc')} (posterior means): " + _group_values(bayes))
     if refs:
         meth = sorted({f["method"] for f in results.get("reference", [])
                        if f.get("method") and (f.get("icc") is not None
                                                or f.get("unit_variance_at_zero"))})
-        parts.append(", ".join(refs) + " (reference"
-                     + (f", variance components by {', '.join(meth)}" if meth else "") + ")")
+        parts.append(f"{label('icc')} of the reference fits"
+                     + (f" ({', '.join(meth)})" if meth else "") + ": "
+                     + _group_values(refs))
     return "; ".join(parts)
 
 
@@ -112,7 +113,7 @@ def footer(results: dict, icc: bool = True) -> str:
             f"({d['unit']}), {num.count(s['n_occasions'])} occasions ({d['time']}).")
     icc_text = _icc_text(results) if icc else ""
     if icc_text:
-        text += f" {label('icc')}: {icc_text}."
+        text += f" {icc_text}."
     return text
 
 
@@ -300,7 +301,10 @@ def display_tables(results: dict) -> dict[str, tuple[pd.DataFrame, list[str]]]:
          f"rows: estimate, standard error, {pct} confidence interval and the p-value of a "
          "zero coefficient, on the reference distribution with df degrees of freedom "
          "(empty df: the normal distribution).", dist, foot])
-    dd = raw["data_description"]
+    dd = raw["data_description"].copy()
+    for c in ("mean", "sd_overall", "sd_between", "sd_within"):  # exact zeros stay zeros
+        if c in dd and "sd_overall" in dd:
+            dd[c] = [num.plain(v, scale=s) for v, s in zip(dd[c], dd["sd_overall"])]
     out["data_description"] = (display_frame(dd).rename(columns=HEADINGS),
                                [footer(results, icc=False)])
     if "variance_partition" in raw:
@@ -349,9 +353,28 @@ def display_tables(results: dict) -> dict[str, tuple[pd.DataFrame, list[str]]]:
     return out
 
 
+def grouped_notes(fits, key):
+    """``(titles, text)`` for each distinct ``fit[key]`` text, the fits that share it named
+    together (three fits at the same boundary get one note, not three)."""
+    by = {}
+    for f in fits:
+        if f.get(key):
+            by.setdefault(f[key], []).append(f["title"])
+    return [(", ".join(t), text) for text, t in by.items()]
+
+
+def _group_values(pairs):
+    """``"A, B 0.72; C 0.75"`` from ``[(title, value text)]``: titles with the same value
+    text share it."""
+    by = {}
+    for title, v in pairs:
+        by.setdefault(v, []).append(title)
+    return ", ".join(f"{', '.join(t)} {v}" for v, t in by.items())
+
+
 def _boundary_notes(results) -> list[str]:
-    out = [f"{f['title']}: {f['boundary_note']}" for f in results.get("reference", [])
-           if f.get("boundary_note")]
+    out = [f"{titles}: {text}" for titles, text in
+           grouped_notes(results.get("reference", []), "boundary_note")]
     return out + [f"{f['title']}: {intercept_share_text(f)}" for f in results.get("reference", [])
                   if f.get("unit_intercept_share") is not None]
 
@@ -359,8 +382,10 @@ def _boundary_notes(results) -> list[str]:
 def intercept_share_text(fit: dict) -> str:
     """The fixed-effects fit's unit intercepts, described by the share of the outcome's
     variance they account for (fixed effects estimate no unit variance)."""
+    sh = fit["unit_intercept_share"]
     return (f"the estimated unit intercepts account for "
-            f"{num.share(fit['unit_intercept_share'])} of the outcome's variance (a "
+            f"{'less than 0.001' if 0 < sh < 0.0005 else num.share(sh)} of the outcome's "
+            "variance (a "
             "description of this sample; fixed effects estimate no unit variance and no ICC).")
 
 
