@@ -325,6 +325,9 @@ def test_unit_variance_at_zero_is_flagged(zero_run, grunfeld):
     page = (run / "report.html").read_text("utf-8")
     part = page.split('id="partition"')[1].split("</section>")[0]
     assert "0 (at zero)" in part and "The unit variance is estimated at zero" in part
+    glance = page.split('id="overview"')[1].split("</section>")[0]
+    assert "Random effects (GLS), Mundlak (GLS), Within-between (GLS) estimate the unit " \
+           "variance at zero" in glance
     _, vp = _md_rows(run / "tables" / "variance_partition.md")
     zero_rows = [r for r in vp if r["model"] == "Random effects (GLS) (ref.)"]
     assert {r["quantity"]: r["note"] for r in zero_rows} == {

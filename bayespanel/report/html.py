@@ -168,6 +168,13 @@ def _overview(r) -> Safe:
     if best:
         parts.append(_best_note(comp, best[0], items))
     parts += _problem_notes(r, items)
+    zero = [f["title"] for f in r["reference"] if f.get("unit_variance_at_zero")]
+    if zero:  # the variance section says what it means
+        parts.append(note("info", f"{', '.join(zero)} estimate{'s' if len(zero) == 1 else ''} "
+                          "the unit variance at zero; the variance section says what that "
+                          "means" + (" beside the Bayesian posterior of the unit SD"
+                                     if any(m.get("variance_partition") for m in r["models"])
+                                     else "") + ".", "Unit variance."))
     for f in r.get("failed") or []:
         parts.append(_failed_note(f))
     for w in r.get("warnings", []):
