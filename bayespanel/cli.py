@@ -11,7 +11,6 @@ from __future__ import annotations
 import argparse
 import contextlib
 import logging
-import re
 import sys
 import warnings
 from pathlib import Path
@@ -19,6 +18,7 @@ from pathlib import Path
 import pandas as pd
 
 from .errors import BayespanelError, SpecificationError
+from .report.text import printable
 
 EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT, EXIT_SAMPLING = 0, 1, 2, 3
 _STRICT_HELP = ("exit with code 3 when the run had problems: sampling (divergences, high "
@@ -33,18 +33,6 @@ _REF_HELP = ("comma-separated reference fits: pooled, within, between, random, m
 _OOC_HELP = ("read a Parquet file or folder in partitions on Dask and work from one-pass "
              "statistics, without loading the table (docs/cli.md says what is left out); "
              "the scheduler comes from BAYESPANEL_DASK_SCHEDULER")
-
-
-_UNPRINTABLE = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u061c\u200b-\u200f\u2028-\u202e"
-                          "\u2060-\u2069\ufeff]")
-
-
-def printable(text) -> str:
-    """``text`` with control and direction-changing characters written as escapes
-    (``\\x1b``), so a column name or a label cannot drive the terminal (colours, cursor
-    moves, reversed text); line breaks and tabs stay."""
-    return _UNPRINTABLE.sub(lambda m: m.group().encode("unicode_escape").decode("ascii"),
-                            str(text))
 
 
 class _Printable:
@@ -375,9 +363,8 @@ def _print_summary(results, truth=None) -> None:
                       f"{_fmt(a['upper'])}]{ref}")
         for w in m["diagnostics"]["warnings"]:
             print(f"  warning: {w}")
-    for w in results.get("warnings") or []:
-        if "--family" in w:  # the family suggestion for a 0/1 outcome fitted as Gaussian
-            print(f"\nnote: {w}")
+    for w in results.get("warnings") or []:  # rows dropped, occasions read as dates, ...
+        print(f"\nnote: {w}")
     comp = results.get("comparison")
     if comp and comp.get("rows"):
         print(f"\nLOO comparison ({comp['level']} level; ELPD difference to the best, its "

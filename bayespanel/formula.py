@@ -366,8 +366,9 @@ def screen(formula: str, columns) -> ScreenedFormula:
     if both:
         raise FormulaError(
             f"the outcome's column {both[0]!r} is also among the covariates of formula "
-            f"{formula!r}; a model of a variable on itself (or on a transform of it) fits "
-            "perfectly and says nothing: remove it from the right-hand side")
+            f"{formula!r}; the outcome cannot explain itself (with itself among the "
+            "covariates the fit is perfect and says nothing): remove it from the right-hand "
+            "side (a lagged outcome goes in as a column of its own)")
     for side_work in work.split("~", 1):  # the outcome may be a transform too
         _check_cost(side_work, formula, quoted)
     # the outcome side, once its cost is known to be bounded

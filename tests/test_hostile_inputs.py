@@ -599,3 +599,37 @@ def test_dask_reading_notices_do_not_reach_the_record_of_a_run(wage_panel, tmp_p
         panel.describe()
     assert design.n == len(wage_panel)
     assert [str(w.message) for w in caught] == []
+
+
+def test_control_characters_in_labels_are_drawn_as_escapes():
+    """No font draws ESC (matplotlib warned 'Glyph 27 missing'); labels show it escaped,
+    as the console does."""
+    import matplotlib.pyplot as plt
+
+    from bayespanel.report.figures import LITERAL_RC, literal
+
+    assert literal("\x1b[31mred$") == "\\x1b[31mred\\$"
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        with plt.rc_context(LITERAL_RC):
+            fig, ax = plt.subplots(figsize=(3, 1))
+            ax.set_title(literal("\x1b[31mred\u202e$x$"))
+            assert _png(fig)[:4] == b"\x89PNG"
+
+
+def test_the_console_says_what_the_data_stage_did(grunfeld, tmp_path, capsys):
+    """Occasions read as dates and rows dropped are printed after the estimates, not only
+    written to results.json."""
+    from bayespanel.cli import main
+
+    df = grunfeld.assign(date=[f"{y % 12 + 1}/{13 + y % 15}/{y}" for y in grunfeld[TIME]])
+    df.loc[[3, 4], "value"] = np.nan
+    path = tmp_path / "g.csv"
+    df.drop(columns=TIME).to_csv(path, index=False)
+    rc = main(["fit", str(path), "--unit", UNIT, "--time", "date", "--formula",
+               "invest ~ value + capital", "--models", "none", "--reference", "within",
+               "--out", str(tmp_path / "out"), "--quiet"])
+    out = capsys.readouterr().out
+    assert rc == 0
+    assert "note: time column 'date' read as dates, month first" in out
+    assert "note: dropped 2 of 200 rows with missing values (value: 2)" in out

@@ -56,9 +56,12 @@ def literal(text) -> str:
     there is none, and matplotlib turns each ``\\$`` back into ``$`` when it draws the
     text, so any string, backslashes included, comes out exactly as given. Figures made
     by the package are built under :data:`LITERAL_RC` (usetex off), so TeX never sees
-    the text either.
+    the text either. Control characters, which no font draws, are written as escapes
+    (``\\x1b``), as on the console.
     """
-    return str(text).replace("$", r"\$")
+    from .text import printable
+
+    return printable(text).replace("$", r"\$")
 
 
 def _plt():

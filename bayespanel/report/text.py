@@ -6,8 +6,10 @@ and the docs. The wording is ours.
 
 from __future__ import annotations
 
+import re
+
 __all__ = ["BAYES_MODELS", "REFERENCE_FITS", "COUNTERPART", "CAUTION", "LEVEL_TEXT",
-           "LABELS", "HEADINGS", "label", "model_title", "reference_title"]
+           "LABELS", "HEADINGS", "label", "model_title", "reference_title", "printable"]
 
 #: Display labels of the variance quantities, defined once for every table and output
 #: (HTML, Markdown, LaTeX, console). Keys are the names results.json and the Python
@@ -124,3 +126,15 @@ def model_title(name: str) -> str:
 
 def reference_title(name: str) -> str:
     return REFERENCE_FITS.get(name, (name.replace("_", " ").capitalize(), ""))[0]
+
+
+_UNPRINTABLE = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u061c\u200b-\u200f\u2028-\u202e"
+                          "\u2060-\u2069\ufeff]")
+
+
+def printable(text) -> str:
+    """``text`` with control and direction-changing characters written as escapes
+    (``\\x1b``), so a column name or a label cannot drive the terminal (colours, cursor
+    moves, reversed text); line breaks and tabs stay."""
+    return _UNPRINTABLE.sub(lambda m: m.group().encode("unicode_escape").decode("ascii"),
+                            str(text))
