@@ -289,6 +289,7 @@ class GaussianModel:
                          for k, p in self.priors.items()),
             design=tuple(design_spec.items()) if design_spec else None)
         self._nutpie = None
+        self._pymc_logp = None  # compiled log density and gradient (models.sampling)
         self.pymc_model = self._build()
 
     def _scaling(self, stats) -> gaussian.Scaling:
@@ -477,7 +478,7 @@ class GaussianModel:
 
     # ------------------------------------------------------------------ sampling
     def sample(self, draws=1000, tune=1000, chains=4, seed=1, sampler="auto", progress=True,
-               cores=None, target_accept=0.8):
+               cores=None, target_accept=0.8, start=None):
         """Draw from the posterior with NUTS; returns a :class:`~bayespanel.posterior.Posterior`.
 
         Parameters
@@ -494,6 +495,11 @@ class GaussianModel:
         cores : int, optional
             Chains run in parallel on up to this many cores (default ``min(chains, CPUs)``).
         target_accept : float
+        start : {"mode", "jitter"}, optional
+            Where the chains start: ``"mode"`` (the default for the marginal likelihood)
+            starts them around the posterior mode with the Laplace covariance as the
+            initial mass matrix, so that warm-up does not grow with the rows;
+            ``"jitter"`` is the previous start (see :mod:`bayespanel.models.sampling`).
 
         Notes
         -----
@@ -504,7 +510,7 @@ class GaussianModel:
         from .sampling import run
 
         dt, info = run(self, draws=draws, tune=tune, chains=chains, seed=seed, sampler=sampler,
-                       progress=progress, cores=cores, target_accept=target_accept)
+                       progress=progress, cores=cores, target_accept=target_accept, start=start)
         post = Posterior.from_model(self, dt, info)
         post.diagnostics(warn=True)
         return post

@@ -13,16 +13,41 @@ low-rank adaptation); latent-intercept models, with one parameter per unit, a di
 ``sampler="auto"`` applies exactly that rule, so the choice depends only on the model and
 the same seed always reproduces the same draws. A nutpie compilation is kept with the
 model and reused (with the current ``pm.Data`` values) on every later call, which makes
-repeated fits after :meth:`~bayespanel.models.GaussianModel.set_suffstats` cheap.
+repeated fits after :meth:`~bayespanel.models.GaussianModel.set_suffstats` cheap; so is
+the compiled log density and gradient that PyMC's sampler uses.
+
+Where the chains start (``start``). A marginal model has a few parameters and a log
+density that costs the same for any number of rows, but the more rows, the narrower the
+posterior on the sampler's (unconstrained, standardised) scale. Started from the prior's
+centre with a unit mass matrix, warm-up first has to travel to the posterior and learn
+its scale, and that takes longer the more rows there are. With ``start="mode"`` (the
+default for marginal models) the sampler starts where the posterior is: the posterior
+mode is found by Newton's method on the model's own log density (exact gradient, Hessian
+by central differences of the gradient), the Laplace approximation there (the inverse
+of the negative Hessian, Laplace 1774; Tierney and Kadane 1986) is the initial mass
+matrix (PyMC: the starting covariance of its adapted dense or diagonal metric, counted
+as :data:`START_WEIGHT` draws; nutpie adapts its own metric, which cannot be seeded), and
+each chain starts at the mode plus a draw from the Laplace normal scaled by
+:data:`START_SPREAD`, so that the chains start apart and R-hat keeps its meaning
+(overdispersed starting points, Gelman and Rubin 1992). Adaptation then runs as usual.
+``start="jitter"`` is the previous start (PyMC's ``jitter+adapt_full`` or
+``jitter+adapt_diag``, nutpie's own), kept for comparison; latent-intercept models, with
+one parameter per unit, always use it. bench/bench_models.py measures both.
 
 References
 ----------
 .. [1] Hoffman, M. D. and Gelman, A. (2014). The No-U-Turn sampler: adaptively setting path
    lengths in Hamiltonian Monte Carlo. Journal of Machine Learning Research 15, 1593-1623.
+.. [2] Tierney, L. and Kadane, J. B. (1986). Accurate approximations for posterior moments
+   and marginal densities. Journal of the American Statistical Association 81, 82-86.
+   doi:10.1080/01621459.1986.10478240
+.. [3] Gelman, A. and Rubin, D. B. (1992). Inference from iterative simulation using
+   multiple sequences. Statistical Science 7, 457-472. doi:10.1214/ss/1177011136
 """
 
 from __future__ import annotations
 
+import dataclasses
 import importlib.util
 import logging
 import os
@@ -33,8 +58,8 @@ import numpy as np
 
 from ..errors import SpecificationError, choices_error
 
-__all__ = ["SAMPLERS", "NUTPIE_ROWS", "MIN_DRAWS", "choose_sampler", "run", "nutpie_available",
-           "check_int"]
+__all__ = ["SAMPLERS", "STARTS", "NUTPIE_ROWS", "MIN_DRAWS", "choose_sampler", "run",
+           "nutpie_available", "check_int", "laplace"]
 
 SAMPLERS = ("auto", "pymc", "nutpie")
 #: latent-intercept models with at least this many rows go to nutpie under "auto"
@@ -43,6 +68,13 @@ NUTPIE_ROWS = 2_000
 MIN_DRAWS = 4
 #: marginal models with at most this many coefficients adapt a dense mass matrix
 DENSE_MAX = 60
+STARTS = ("mode", "jitter")
+#: chains start at the mode plus this many Laplace standard deviations (times a standard
+#: normal draw): overdispersed relative to the posterior (Gelman and Rubin 1992)
+START_SPREAD = 2.0
+#: weight, in draws, of the Laplace covariance in PyMC's first adaptation window (its
+#: own default for a unit start is 10)
+START_WEIGHT = 50
 
 
 def nutpie_available() -> bool:
@@ -79,10 +111,13 @@ def _seed(seed):
     return int(seed)
 
 
-def run(model, *, draws, tune, chains, seed, sampler, progress, cores, target_accept):
+def run(model, *, draws, tune, chains, seed, sampler, progress, cores, target_accept,
+        start=None):
     """Sample ``model.pymc_model``; returns ``(DataTree, info)``.
 
-    ``info`` records the sampler, seed, sizes and the compile and sampling times.
+    ``start``: ``"mode"``, ``"jitter"`` or None (``"mode"`` for marginal models, see the
+    module docstring). ``info`` records the sampler, seed, sizes, the start and the
+    compile and sampling times.
     """
     draws = check_int("draws", draws, 1)
     if draws < MIN_DRAWS:
@@ -93,6 +128,8 @@ def run(model, *, draws, tune, chains, seed, sampler, progress, cores, target_ac
     chains = check_int("chains", chains, 1)
     if sampler not in SAMPLERS:
         raise choices_error("sampler", sampler, SAMPLERS)
+    if start is not None and start not in STARTS:
+        raise choices_error("start", start, STARTS)
     if not (isinstance(target_accept, float) and 0.5 <= target_accept < 1.0):
         raise SpecificationError(f"target_accept={target_accept!r} must be a float in [0.5, 1)")
     if cores is None:
@@ -106,16 +143,137 @@ def run(model, *, draws, tune, chains, seed, sampler, progress, cores, target_ac
             "or choose sampler='pymc'")
     info = {"sampler": chosen, "requested_sampler": sampler, "seed": seed, "draws": draws,
             "tune": tune, "chains": chains, "target_accept": target_accept}
+    warm = start != "jitter" and _dense(model)
+    info["start"] = "mode" if warm else "jitter"
     t0 = time.perf_counter()
     if chosen == "pymc":
-        dt = _run_pymc(model, draws, tune, chains, seed, progress, cores, target_accept, info)
+        dt = _run_pymc(model, draws, tune, chains, seed, progress, cores, target_accept, info,
+                       warm)
     else:
-        dt = _run_nutpie(model, draws, tune, chains, seed, progress, cores, target_accept, info)
+        dt = _run_nutpie(model, draws, tune, chains, seed, progress, cores, target_accept, info,
+                         warm)
     info["total_seconds"] = time.perf_counter() - t0
     _check_complete(dt, chains, draws)
     for group in [g for g in dt.children if g.startswith("warmup")]:
         del dt[group]
     return dt, info
+
+
+# ---------------------------------------------------------------------------- the start
+@dataclasses.dataclass(frozen=True)
+class Laplace:
+    """The posterior mode on the sampler's unconstrained scale and the Laplace covariance
+    there (the inverse of the negative Hessian of the log density)."""
+
+    mode: np.ndarray
+    cov: np.ndarray
+    iterations: int
+
+    def starts(self, rng, logp_grad=None, spread=START_SPREAD, tries=10):
+        """One starting point: ``mode + spread * L z``, ``z ~ N(0, I)``, ``L L' = cov``;
+        drawn again (up to ``tries`` times) where the log density is not finite."""
+        L = np.linalg.cholesky(self.cov)
+        for _ in range(tries):
+            x = self.mode + spread * (L @ rng.standard_normal(len(self.mode)))
+            if logp_grad is None or np.isfinite(logp_grad(x)[0]):
+                return x
+        return self.mode.copy()
+
+
+def _hessian(logp_grad, x, h):
+    """Hessian by central differences of the exact gradient (steps ``h`` per coordinate),
+    symmetrised."""
+    n = len(x)
+    H = np.empty((n, n))
+    for i in range(n):
+        e = np.zeros(n)
+        e[i] = h[i]
+        H[i] = (logp_grad(x + e)[1] - logp_grad(x - e)[1]) / (2.0 * h[i])
+    return 0.5 * (H + H.T)
+
+
+def laplace(logp_grad, x0, *, max_iter=100, tol=1e-10):
+    """Posterior mode and Laplace covariance of a log density with few parameters.
+
+    Damped Newton iterations from ``x0``: the Hessian by central differences of the
+    exact gradient, its eigenvalues made negative where they are not (so that every step
+    goes uphill), and a backtracking line search; they stop when the Newton decrement
+    ``g' (-H)^-1 g`` falls below ``tol`` (in log-density units). Returns a
+    :class:`Laplace`, or None when no mode with a negative definite Hessian is found (the
+    caller then starts the chains the old way).
+
+    Parameters
+    ----------
+    logp_grad : callable
+        ``x -> (logp, gradient)`` on the sampler's unconstrained scale.
+    x0 : array
+    """
+    x = np.asarray(x0, dtype=float).copy()
+    f, g = logp_grad(x)
+    if not (np.isfinite(f) and np.all(np.isfinite(g))):
+        return None
+    scale = np.ones_like(x)  # the posterior SD per coordinate, as far as known
+    for it in range(1, max_iter + 1):
+        H = _hessian(logp_grad, x, 1e-4 * scale)
+        if not np.all(np.isfinite(H)):
+            return None
+        lam, V = np.linalg.eigh(-H)
+        top = np.max(np.abs(lam))
+        if not top > 0:
+            return None
+        lam = np.maximum(np.abs(lam), 1e-10 * top)
+        step = V @ ((V.T @ g) / lam)
+        decrement = float(g @ step)
+        if decrement < tol:
+            break
+        t = 1.0
+        for _ in range(60):
+            f_new, g_new = logp_grad(x + t * step)
+            if np.isfinite(f_new) and f_new >= f + 1e-4 * t * decrement:
+                break
+            t *= 0.5
+        else:
+            return None
+        x, f, g = x + t * step, f_new, g_new
+        scale = 1.0 / np.sqrt(np.maximum(np.abs(np.diag(H)), 1e-300))
+    else:
+        return None
+    H = _hessian(logp_grad, x, 1e-4 / np.sqrt(np.maximum(np.abs(np.diag(H)), 1e-300)))
+    try:
+        cov = np.linalg.inv(-H)
+        np.linalg.cholesky(cov)
+    except np.linalg.LinAlgError:
+        return None
+    if not np.all(np.isfinite(cov)):
+        return None
+    return Laplace(mode=x, cov=0.5 * (cov + cov.T), iterations=it)
+
+
+def _pymc_logp(model):
+    """The compiled log density and gradient of ``model.pymc_model`` (PyMC's
+    ``ValueGradFunction`` over every free variable, raveled), compiled once per model and
+    kept: it reads the ``pm.Data`` values when called, so data swaps need no recompile."""
+    fn = getattr(model, "_pymc_logp", None)
+    if fn is None:
+        fn = model.pymc_model.logp_dlogp_function(ravel_inputs=True)
+        fn.trust_input = True
+        model._pymc_logp = fn
+    return fn
+
+
+def _warm_start(logp_grad, x0, info):
+    t0 = time.perf_counter()
+    lap = laplace(logp_grad, x0)
+    info["start_seconds"] = time.perf_counter() - t0
+    if lap is None:
+        info["start"] = "jitter (no posterior mode with a negative definite Hessian found)"
+    else:
+        info["start_newton_iterations"] = lap.iterations
+    return lap
+
+
+def _chain_rngs(seed, chains):
+    return [np.random.default_rng([seed, 7919, c]) for c in range(chains)]
 
 
 def _check_complete(dt, chains, draws):
@@ -129,7 +287,7 @@ def _check_complete(dt, chains, draws):
             f"{chains} x {draws} asked for; the partial draws were discarded")
 
 
-def _run_pymc(model, draws, tune, chains, seed, progress, cores, target_accept, info):
+def _run_pymc(model, draws, tune, chains, seed, progress, cores, target_accept, info, warm):
     import pymc as pm
 
     logger = logging.getLogger("pymc")
@@ -138,6 +296,10 @@ def _run_pymc(model, draws, tune, chains, seed, progress, cores, target_accept, 
         logger.setLevel(logging.WARNING)
     try:
         t0 = time.perf_counter()
+        kwargs = {"init": "jitter+adapt_full" if _dense(model) else "jitter+adapt_diag",
+                  "target_accept": target_accept}
+        if warm:  # the step (with its target_accept) and the starting points
+            kwargs = _pymc_warm_step(model, chains, seed, target_accept, info) or kwargs
         with warnings.catch_warnings():
             # our own diagnostics report R-hat, ESS and divergences (Posterior.diagnostics)
             warnings.filterwarnings("ignore", message=".*overflow encountered.*")
@@ -145,18 +307,56 @@ def _run_pymc(model, draws, tune, chains, seed, progress, cores, target_accept, 
             dt = pm.sample(draws=draws, tune=tune, chains=chains, cores=cores,
                            random_seed=seed, progressbar=progress, nuts_sampler="pymc",
                            model=model.pymc_model, compute_convergence_checks=False,
-                           target_accept=target_accept, quiet=not progress,
-                           init="jitter+adapt_full" if _dense(model) else "jitter+adapt_diag")
+                           quiet=not progress, **kwargs)
         elapsed = time.perf_counter() - t0
         # PyMC records the time spent in the chains; the rest is compilation and set-up
         info["sampling_seconds"] = float(dt["posterior"].attrs.get("sampling_time", elapsed))
-        info["compile_seconds"] = elapsed - info["sampling_seconds"]
+        info["compile_seconds"] = elapsed - info["sampling_seconds"] - info.get("start_seconds", 0.0)
     finally:
         logger.setLevel(level)
     return dt
 
 
-def _run_nutpie(model, draws, tune, chains, seed, progress, cores, target_accept, info):
+def _pymc_warm_step(model, chains, seed, target_accept, info):
+    """``pm.sample`` arguments for a start at the mode: a NUTS step whose metric starts
+    from the Laplace covariance, and one starting point per chain; None if no mode."""
+    import pymc as pm
+    from pymc.blocking import DictToArrayBijection
+    from pymc.step_methods.hmc import quadpotential
+
+    t0 = time.perf_counter()
+    m = model.pymc_model
+    fn = _pymc_logp(model)
+    point = m.initial_point()
+    x0 = DictToArrayBijection.map(point)
+    fn(x0.data, extra_vars={})  # the first call finishes the compilation (numba)
+    info["compile_logp_seconds"] = time.perf_counter() - t0
+
+    def logp_grad(x):
+        return fn(x, extra_vars={})
+
+    lap = _warm_start(logp_grad, x0.data, info)
+    if lap is None:
+        return None
+    n = len(lap.mode)
+    starts = [lap.starts(rng, logp_grad) for rng in _chain_rngs(seed, chains)]
+    initvals = [{k: v for k, v in DictToArrayBijection.rmap(
+        x0._replace(data=x), start_point=point).items()} for x in starts]
+    rng = np.random.default_rng([seed, 7919])
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="QuadPotentialFullAdapt is an experimental")
+        if _dense(model):
+            potential = quadpotential.QuadPotentialFullAdapt(
+                n, lap.mode, lap.cov, START_WEIGHT, rng=rng)
+        else:
+            potential = quadpotential.QuadPotentialDiagAdapt(
+                n, lap.mode, np.diag(lap.cov).copy(), START_WEIGHT, rng=rng)
+    step = pm.NUTS(vars=m.value_vars, model=m, potential=potential, target_accept=target_accept,
+                   rng=rng, initial_point=initvals[0], logp_dlogp_func=fn)
+    return {"step": step, "initvals": initvals}
+
+
+def _run_nutpie(model, draws, tune, chains, seed, progress, cores, target_accept, info, warm):
     import nutpie
 
     t0 = time.perf_counter()
@@ -168,6 +368,8 @@ def _run_nutpie(model, draws, tune, chains, seed, progress, cores, target_accept
     known = {var.name for var in model._nutpie.shared_var_keys}
     values = {v.name: v.get_value() for v in model.pymc_model.data_vars if v.name in known}
     compiled = model._nutpie.with_data(**values)
+    if warm:
+        compiled = _nutpie_warm(compiled, model, seed, info)
     t1 = time.perf_counter()
     dt = nutpie.sample(compiled, draws=draws, tune=max(tune, 1), chains=chains, cores=cores,
                        seed=seed, progress_bar=progress, target_accept=target_accept,
@@ -178,3 +380,34 @@ def _run_nutpie(model, draws, tune, chains, seed, progress, cores, target_accept
     if drop:
         dt["sample_stats"] = dt["sample_stats"].to_dataset().drop_vars(drop)
     return dt
+
+
+def _nutpie_warm(compiled, model, seed, info):
+    """The compiled nutpie model with its chains started from the Laplace approximation:
+    nutpie asks ``initial_point_func(seed)`` for each chain's (flat, unconstrained) start.
+    The log density is nutpie's own compiled one (its C entry point, with the data of
+    ``compiled``), so nothing is compiled again."""
+    import ctypes
+
+    n = compiled.n_dim
+    cfunc = compiled.compiled_logp_func.ctypes
+    data = ctypes.c_void_p(compiled.user_data.ctypes.data)
+    as_ptr = ctypes.POINTER(ctypes.c_double)
+
+    def logp_grad(x):
+        x = np.ascontiguousarray(x, dtype=float)
+        grad, logp = np.empty(n), np.empty(())
+        code = cfunc(n, x.ctypes.data_as(as_ptr), grad.ctypes.data_as(as_ptr),
+                     logp.ctypes.data_as(as_ptr), data)
+        return (float(logp) if code == 0 else -np.inf), grad
+
+    x0 = np.asarray(compiled.initial_point_func(seed), dtype=float)
+    lap = _warm_start(logp_grad, x0, info)
+    if lap is None:
+        return compiled
+
+    def initial_point(chain_seed):
+        rng = np.random.default_rng([seed, 7919, int(chain_seed) % (2 ** 63)])
+        return lap.starts(rng, logp_grad)
+
+    return dataclasses.replace(compiled, initial_point_func=initial_point)
