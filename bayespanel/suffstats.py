@@ -361,34 +361,42 @@ def _nb_flush(D, m, lanes, upper):  # pragma: no cover (compiled)
 
 def _nb_sorted_pass(X, Y, starts, counts, ref, offsets, upper, D, lanes):  # pragma: no cover
     """Rows sorted by unit, read once: each unit's sum and offset from its rows, then its
-    deviations into the block buffer while the rows are in cache (compiled by numba)."""
+    deviations into the block buffer while the rows are in cache (compiled by numba).
+    Column by column, so that the reference point and the offset stay in registers."""
     k = X.shape[1]
     p = k + Y.shape[1]
     S = D.shape[1]
-    s = np.empty(p)
     m = 0
     for i in range(starts.shape[0]):
         a = starts[i]
         T = counts[i]
         for j in range(p):
-            s[j] = 0.0
-        for r in range(a, a + T):
-            for j in range(k):
-                s[j] += X[r, j] - ref[j]
-            for j in range(k, p):
-                s[j] += Y[r, j - k] - ref[j]
-        for j in range(p):
-            s[j] = s[j] / T
-            offsets[i, j] = s[j]
-        for r in range(a, a + T):
+            rj = ref[j]
+            acc = 0.0
+            if j < k:
+                for r in range(a, a + T):
+                    acc += X[r, j] - rj
+            else:
+                for r in range(a, a + T):
+                    acc += Y[r, j - k] - rj
+            offsets[i, j] = acc / T
+        r0 = a
+        while r0 < a + T:  # the unit's rows, in pieces that fit the block
             if m == S:
                 _nb_flush(D, m, lanes, upper)
                 m = 0
-            for j in range(k):
-                D[j, m] = (X[r, j] - ref[j]) - s[j]
-            for j in range(k, p):
-                D[j, m] = (Y[r, j - k] - ref[j]) - s[j]
-            m += 1
+            r1 = min(a + T, r0 + (S - m))
+            for j in range(p):
+                rj = ref[j]
+                o = offsets[i, j]
+                if j < k:
+                    for r in range(r0, r1):
+                        D[j, m + r - r0] = (X[r, j] - rj) - o
+                else:
+                    for r in range(r0, r1):
+                        D[j, m + r - r0] = (Y[r, j - k] - rj) - o
+            m += r1 - r0
+            r0 = r1
     _nb_flush(D, m, lanes, upper)
 
 

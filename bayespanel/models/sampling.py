@@ -299,7 +299,9 @@ def _run_pymc(model, draws, tune, chains, seed, progress, cores, target_accept, 
         kwargs = {"init": "jitter+adapt_full" if _dense(model) else "jitter+adapt_diag",
                   "target_accept": target_accept}
         if warm:  # the step (with its target_accept) and the starting points
-            kwargs = _pymc_warm_step(model, chains, seed, target_accept, info) or kwargs
+            warm_kwargs = _pymc_warm_step(model, chains, seed, target_accept, info)
+            if warm_kwargs is not None:
+                kwargs = {k: warm_kwargs[k] for k in ("step", "initvals")}
         with warnings.catch_warnings():
             # our own diagnostics report R-hat, ESS and divergences (Posterior.diagnostics)
             warnings.filterwarnings("ignore", message=".*overflow encountered.*")
@@ -340,8 +342,8 @@ def _pymc_warm_step(model, chains, seed, target_accept, info):
         return None
     n = len(lap.mode)
     starts = [lap.starts(rng, logp_grad) for rng in _chain_rngs(seed, chains)]
-    initvals = [{k: v for k, v in DictToArrayBijection.rmap(
-        x0._replace(data=x), start_point=point).items()} for x in starts]
+    initvals = [_initvals(m, DictToArrayBijection.rmap(x0._replace(data=x), start_point=point))
+                for x in starts]
     rng = np.random.default_rng([seed, 7919])
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message="QuadPotentialFullAdapt is an experimental")
@@ -351,9 +353,23 @@ def _pymc_warm_step(model, chains, seed, target_accept, info):
         else:
             potential = quadpotential.QuadPotentialDiagAdapt(
                 n, lap.mode, np.diag(lap.cov).copy(), START_WEIGHT, rng=rng)
+    first = DictToArrayBijection.rmap(x0._replace(data=starts[0]), start_point=point)
     step = pm.NUTS(vars=m.value_vars, model=m, potential=potential, target_accept=target_accept,
-                   rng=rng, initial_point=initvals[0], logp_dlogp_func=fn)
-    return {"step": step, "initvals": initvals}
+                   rng=rng, initial_point=first, logp_dlogp_func=fn)
+    return {"step": step, "initvals": initvals, "starts": starts}
+
+
+def _initvals(m, values):
+    """PyMC initial values keyed by the random variables, from unconstrained values keyed
+    by the value variables: each value is taken back through its variable's transform
+    (symbolically, as PyMC does for transformed names), so no name is parsed."""
+    out = {}
+    for value_var in m.value_vars:
+        rv = m.values_to_rvs[value_var]
+        x = np.asarray(values[value_var.name])
+        transform = m.rvs_to_transforms.get(rv)
+        out[rv] = x if transform is None else transform.backward(x, *rv.owner.inputs)
+    return out
 
 
 def _run_nutpie(model, draws, tune, chains, seed, progress, cores, target_accept, info, warm):
