@@ -54,13 +54,6 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
     (file or sys.stderr).write(text)
 
 
-def _describe_number(v) -> str:
-    """Three decimals, or four significant digits for magnitudes far from 1."""
-    if v != v or v in (float("inf"), float("-inf")):
-        return str(v)
-    return f"{v:.4g}" if v != 0 and not 1e-3 <= abs(v) < 1e7 else f"{v:.3f}"
-
-
 def _print_describe(panel, desc=None) -> None:
     s = panel.structure()
     print(f"{s['n_units']} units ({panel.unit}) observed on {s['n_occasions']} occasions "
@@ -69,9 +62,10 @@ def _print_describe(panel, desc=None) -> None:
           f"{s['occasions_max']} occasions per unit; {s['n_units_with_gaps']} units with gaps; "
           f"{s['n_singleton_units']} units seen once.")
     desc = panel.describe() if desc is None else desc
-    with pd.option_context("display.width", 120, "display.max_columns", 20,
-                           "display.float_format", _describe_number):
-        print(desc)
+    from .report.tables import describe_display
+
+    with pd.option_context("display.width", 120, "display.max_columns", 20):
+        print(describe_display(desc))  # the report's digits rule and headings
     left_out = desc.attrs.get("left_out") or {}
     if left_out:
         print(f"left out ({len(left_out)}): "

@@ -301,11 +301,7 @@ def display_tables(results: dict) -> dict[str, tuple[pd.DataFrame, list[str]]]:
          f"rows: estimate, standard error, {pct} confidence interval and the p-value of a "
          "zero coefficient, on the reference distribution with df degrees of freedom "
          "(empty df: the normal distribution).", dist, foot])
-    dd = raw["data_description"].copy()
-    for c in ("mean", "sd_overall", "sd_between", "sd_within"):  # exact zeros stay zeros
-        if c in dd and "sd_overall" in dd:
-            dd[c] = [num.plain(v, scale=s) for v, s in zip(dd[c], dd["sd_overall"])]
-    out["data_description"] = (display_frame(dd).rename(columns=HEADINGS),
+    out["data_description"] = (describe_display(raw["data_description"]),
                                [footer(results, icc=False)])
     if "variance_partition" in raw:
         vp = raw["variance_partition"].copy()
@@ -370,6 +366,17 @@ def _group_values(pairs):
     for title, v in pairs:
         by.setdefault(v, []).append(title)
     return ", ".join(f"{', '.join(t)} {v}" for v, t in by.items())
+
+
+def describe_display(desc: pd.DataFrame) -> pd.DataFrame:
+    """A variable description (``Panel.describe()``, results.json ``data.variables``)
+    formatted by the numbers rule with the report's headings; exact zeros of the spreads
+    stay zeros (no 5.8e-17)."""
+    dd = desc.copy()
+    for c in ("mean", "sd_overall", "sd_between", "sd_within"):
+        if c in dd and "sd_overall" in dd:
+            dd[c] = [num.plain(v, scale=s) for v, s in zip(dd[c], dd["sd_overall"])]
+    return display_frame(dd).rename(columns=HEADINGS)
 
 
 def _boundary_notes(results) -> list[str]:
