@@ -62,7 +62,10 @@ def _text_occasions(col: pd.Series, name: str):
     text_order = np.argsort(np.asarray(values, dtype=object), kind="stable")
 
     def sorted_as_text(parsed) -> bool:
-        return bool(np.all(np.diff(np.asarray(parsed)[text_order]) > 0))
+        ordered = np.asarray(parsed)[text_order]
+        if np.issubdtype(ordered.dtype, np.datetime64):
+            ordered = ordered.astype("datetime64[ns]").astype(np.int64)
+        return bool(np.all(np.diff(ordered) > 0))
 
     def warn(what, example, shown):
         warnings.warn(
@@ -77,6 +80,8 @@ def _text_occasions(col: pd.Series, name: str):
             fmt, what, show = "%d{0}%m{0}%Y", "dates, day first (day/month/year)", first > 12
         elif (second > 12).any() and not (first > 12).any():
             fmt, what, show = "%m{0}%d{0}%Y", "dates, month first (month/day/year)", second > 12
+        elif (first == second).all():  # 1/1/1987, 2/2/1988: either reading
+            fmt, what, show = "%m{0}%d{0}%Y", "dates (month and day equal)", first > 0
         elif (first > 12).any():
             raise PanelDataError(
                 f"time column {name!r} holds dates that are neither day/month/year nor "
@@ -84,6 +89,12 @@ def _text_occasions(col: pd.Series, name: str):
                 f"{values[int(np.argmax(second > 12))]!r}); write them as year-month-day "
                 "(2003-01-13)")
         else:
+            sep = dm[0].group(2)
+            readings = [pd.to_datetime(pd.Series(values), format=f.format(sep),
+                                       errors="coerce").to_numpy()
+                        for f in ("%m{0}%d{0}%Y", "%d{0}%m{0}%Y")]
+            if all(not np.isnat(r).any() and sorted_as_text(r) for r in readings):
+                return None  # either reading keeps the text order: left as text
             raise PanelDataError(
                 f"time column {name!r} holds dates such as {values[0]!r} that read both as "
                 "month/day/year and as day/month/year (no part is above 12), and as text "
@@ -91,12 +102,14 @@ def _text_occasions(col: pd.Series, name: str):
                 "convert the column to dates")
         sep = dm[0].group(2)
         try:
-            parsed = pd.to_datetime(col, format=fmt.format(sep))
+            dates = pd.to_datetime(pd.Series(values), format=fmt.format(sep))
         except (ValueError, TypeError) as exc:
             raise PanelDataError(f"time column {name!r}: cannot read {what}: {exc}") from None
-        example = values[int(np.argmax(show))]
-        warn(what, example, pd.Timestamp(parsed[col == example].iloc[0]).date().isoformat())
-        return parsed
+        if sorted_as_text(dates.to_numpy()):
+            return None  # the text order is the order in time: left as it is
+        example = int(np.argmax(show))
+        warn(what, values[example], dates[example].date().isoformat())
+        return col.map(dict(zip(values, dates))).astype("datetime64[ns]")
     ymd = [_YEAR_FIRST.match(v) for v in values]
     if all(ymd):
         try:
