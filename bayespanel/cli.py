@@ -11,13 +11,15 @@ from __future__ import annotations
 import argparse
 import contextlib
 import logging
+import signal
 import sys
+import threading
 import warnings
 from pathlib import Path
 
 import pandas as pd
 
-from .errors import BayespanelError, SpecificationError
+from .errors import BayespanelError, OutputError, SpecificationError
 from .report.text import printable
 
 EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT, EXIT_SAMPLING = 0, 1, 2, 3
@@ -220,12 +222,17 @@ def _strict_exit(results, strict) -> int:
 
 
 def cmd_report(args) -> int:
+    from .outputs import REPORT_SCOPE, RunFolder
     from .report import load_results, write_report
 
     folder = Path(args.folder)
-    results = load_results(folder)
     target = Path(args.out) if args.out else folder
-    write_report(results, target)
+    # the report and tables are published like a run's outputs, replacing only those
+    with RunFolder(target, command="bayespanel report", scope=REPORT_SCOPE) as dest:
+        results = load_results(folder)  # read under the lock when writing into the folder
+        _refuse_other_run(folder, target)
+        write_report(results, dest.stage)
+        dest.publish()
     print(f"report: {(target / 'report.html').resolve()}")
     return EXIT_OK
 
@@ -324,6 +331,18 @@ def _print_reference(results) -> None:
         print(f"  {t['title']}: statistic "
               f"{numbers.plain(t.get('reported_statistic', t.get('statistic')))} on {dist}, "
               f"{'p ' + p if p.startswith('<') else 'p = ' + p}; {t['conclusion']}")
+
+
+def _refuse_other_run(source: Path, target: Path) -> None:
+    """``report SRC --out DEST``: DEST must not hold another run's results."""
+    theirs = target / "results.json"
+    mine = source / "results.json" if source.is_dir() else source
+    if target.resolve() == (mine.parent.resolve()) or not theirs.is_file():
+        return
+    if theirs.read_bytes() != mine.read_bytes():
+        raise SpecificationError(
+            f"--out {str(target)!r} holds the outputs of another run (its own results.json); "
+            "write the report into an empty folder or into that run's own folder")
 
 
 def _print_summary(results, truth=None) -> None:
@@ -618,6 +637,10 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _terminate(signum, frame):
+    raise KeyboardInterrupt(f"terminated by signal {signum}")
+
+
 def main(argv=None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -625,16 +648,36 @@ def main(argv=None) -> int:
         log = logging.getLogger("bayespanel")
         log.setLevel(logging.DEBUG)
         log.addHandler(logging.StreamHandler(sys.stderr))
+    previous = None
+    if threading.current_thread() is threading.main_thread():
+        # SIGTERM (a scheduler's time limit, `kill`) ends a run like Ctrl-C: the staging
+        # folder is discarded and the folder keeps its earlier run (docs/guarantees.md)
+        previous = signal.signal(signal.SIGTERM, _terminate)
+    try:
+        return _main(args)
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
+def _main(args) -> int:
     try:
         with warnings.catch_warnings(), contextlib.redirect_stdout(_Printable(sys.stdout)):
             warnings.simplefilter("default")
             warnings.showwarning = _show_warning
             return int(args.func(args) or 0)
+    except OutputError as exc:  # the input was fine; the outputs could not be written
+        print(f"bayespanel: failed: {exc}", file=sys.stderr)
+        return EXIT_FAILURE
     except BayespanelError as exc:
         print(f"bayespanel: error: {printable(exc)}", file=sys.stderr)
         return EXIT_BAD_INPUT
-    except KeyboardInterrupt:
-        print("bayespanel: interrupted", file=sys.stderr)
+    except KeyboardInterrupt as exc:
+        print(f"bayespanel: interrupted{f' ({exc})' if str(exc) else ''}", file=sys.stderr)
+        return EXIT_FAILURE
+    except MemoryError:
+        print("bayespanel: failed: out of memory (lower --draws, --chains or --ppc-draws)",
+              file=sys.stderr)
         return EXIT_FAILURE
     except Exception as exc:  # a failure, not bad input: say what and how to see more
         if args.debug:

@@ -12,6 +12,8 @@ __all__ = [
     "FormulaError",
     "SpecificationError",
     "EstimationError",
+    "FolderInUseError",
+    "OutputError",
     "SamplingWarning",
     "DataHandlingWarning",
 ]
@@ -35,6 +37,15 @@ class SpecificationError(BayespanelError, ValueError):
 
 class EstimationError(BayespanelError, RuntimeError):
     """A fit cannot proceed (for example no within variation left)."""
+
+
+class FolderInUseError(SpecificationError):
+    """The output folder is being written by another run (the message names it)."""
+
+
+class OutputError(BayespanelError, OSError):
+    """The outputs could not be written (disk full, a file in the way); the folder keeps
+    the run it held before. The command line exits with 1, not 2: the input was fine."""
 
 
 class SamplingWarning(UserWarning):

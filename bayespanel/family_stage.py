@@ -357,7 +357,7 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
     """Sample one latent-effect model and build its ``results.json`` entry."""
     from . import models
     from .runner import (BUILDER_OF, _KIND_OF, _contrast_entries, _contrasts,
-                         _diagnostics_entry, _floats, _model_priors, _prior_text, _staged,
+                         _diagnostics_entry, _floats, _model_priors, _prior_text,
                          _sample_timed)
     from .report.text import BAYES_MODELS, COUNTERPART
 
@@ -398,7 +398,7 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
     if out_dir is not None:
         rel = f"posteriors/{name}.nc"
         (Path(out_dir) / "posteriors").mkdir(parents=True, exist_ok=True)
-        post.save(_staged(Path(out_dir) / rel))  # moved into place when the run completes
+        post.save(Path(out_dir) / rel)  # the staging folder: published when the run completes
     priors_used = {**m.priors, **getattr(m, "extra_priors", {})}
     entry = {
         "name": name, "builder": BUILDER_OF[name], "title": BAYES_MODELS[name][0],

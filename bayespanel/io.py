@@ -2,13 +2,15 @@
 
 from __future__ import annotations
 
+import os
+import stat
 from pathlib import Path
 
 import pandas as pd
 
 from .errors import PanelDataError
 
-__all__ = ["read_table", "parquet_files"]
+__all__ = ["read_table", "parquet_files", "regular_file"]
 
 PARQUET_SUFFIXES = (".parquet", ".pq", ".parq")
 
@@ -19,6 +21,7 @@ def parquet_files(folder) -> list[Path]:
     :class:`PanelDataError` naming what it holds instead."""
     folder = Path(folder)
     files = sorted(f for f in folder.rglob("*") if f.suffix.lower() in PARQUET_SUFFIXES
+                   and f.is_file()  # a pipe or device named x.parquet is never read
                    and not any(part.startswith((".", "_"))
                                for part in f.relative_to(folder).parts))
     if not files:
@@ -30,6 +33,33 @@ def parquet_files(folder) -> list[Path]:
     return files
 
 
+def regular_file(path, what: str = "file", error=PanelDataError, folder: bool = False) -> Path:
+    """``path`` as a :class:`~pathlib.Path` if it is a regular file we may read (or, with
+    ``folder=True``, a folder); otherwise ``error`` naming it.
+
+    Devices, pipes and sockets are refused before anything opens them: reading
+    ``/dev/zero`` or a FIFO would never end. Symbolic links are followed.
+    """
+    path = Path(path)
+    try:
+        st = path.stat()
+    except FileNotFoundError:
+        raise error(f"{what} {str(path)!r} does not exist") from None
+    except OSError as exc:  # permission denied on a parent folder, a name too long, ...
+        raise error(f"cannot read {what} {str(path)!r}: {exc.strerror or exc}") from None
+    if stat.S_ISDIR(st.st_mode) and folder:
+        kind_ok = os.access(path, os.R_OK | os.X_OK)
+    elif stat.S_ISREG(st.st_mode):
+        kind_ok = os.access(path, os.R_OK)
+    else:
+        kind = "a folder" if stat.S_ISDIR(st.st_mode) else "not a regular file (a device, " \
+            "pipe or socket)"
+        raise error(f"{what} {str(path)!r} is {kind}; give a regular file")
+    if not kind_ok:
+        raise error(f"cannot read {what} {str(path)!r}: permission denied")
+    return path
+
+
 def read_table(path, sep: str | None = None, encoding: str = "utf-8") -> pd.DataFrame:
     """Read a CSV (``.csv``, ``.txt``, ``.tsv``) or Parquet (``.parquet``, ``.pq``) file.
 
@@ -37,9 +67,7 @@ def read_table(path, sep: str | None = None, encoding: str = "utf-8") -> pd.Data
     given encoding, a table with a single column (usually the wrong delimiter), and
     unreadable Parquet.
     """
-    path = Path(path)
-    if not path.exists():
-        raise PanelDataError(f"file {str(path)!r} does not exist")
+    path = regular_file(path, folder=True)
     if path.is_file() and path.stat().st_size == 0:
         raise PanelDataError(f"file {str(path)!r} is empty")
     suffix = path.suffix.lower()
@@ -63,6 +91,8 @@ def read_table(path, sep: str | None = None, encoding: str = "utf-8") -> pd.Data
         raise PanelDataError(f"file {str(path)!r} has no table in it") from None
     except pd.errors.ParserError as exc:
         raise PanelDataError(f"cannot parse {str(path)!r} as delimited text: {exc}") from None
+    except OSError as exc:  # permissions changed after the check, an I/O error
+        raise PanelDataError(f"cannot read {str(path)!r}: {exc.strerror or exc}") from None
     if df.shape[1] == 1:
         only = str(df.columns[0])
         guess = next((d for d in (";", "\t", "|", ",") if d in only and d != sep), None)

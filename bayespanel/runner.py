@@ -168,6 +168,7 @@ class Settings:
     centred: bool = False
 
     def __post_init__(self):
+        # values of the wrong type are kept as they are for check() to refuse by name
         defaults = {"models": LATENT_MODELS if self.latent else MODEL_NAMES,
                     "reference": GLM_REFERENCES if self.glm_reference else REFERENCE_NAMES}
         for name in ("models", "reference", "random_slopes"):
@@ -176,9 +177,13 @@ class Settings:
                 v = defaults[name]
             if isinstance(v, str):
                 v = tuple(x.strip() for x in v.split(",") if x.strip())
-            object.__setattr__(self, name, tuple(v))
-        object.__setattr__(self, "priors", dict(self.priors or {}))
-        lkj = self.priors.get("lkj_eta")
+            if isinstance(v, (list, tuple)):
+                object.__setattr__(self, name, tuple(v))
+        if isinstance(self.data, os.PathLike):
+            object.__setattr__(self, "data", os.fspath(self.data))
+        if self.priors is None or isinstance(self.priors, dict):
+            object.__setattr__(self, "priors", dict(self.priors or {}))
+        lkj = self.priors.get("lkj_eta") if isinstance(self.priors, dict) else None
         if isinstance(lkj, str):
             try:
                 self.priors["lkj_eta"] = float(lkj)
@@ -203,6 +208,18 @@ class Settings:
             v = getattr(self, name)
             if not isinstance(v, str) or not v.strip():
                 raise SpecificationError(f"{name} is required (got {v!r})")
+        for name in ("models", "reference"):
+            v = getattr(self, name)
+            if not isinstance(v, tuple) or not all(isinstance(x, str) for x in v):
+                raise SpecificationError(f"{name}={v!r} must be a list of names (or a "
+                                         "comma-separated string)")
+        for name in ("data", "title", "data_sha256"):
+            v = getattr(self, name)
+            if v is not None and not isinstance(v, str):
+                raise SpecificationError(f"{name}={v!r} must be text")
+        if not isinstance(self.priors, dict):
+            raise SpecificationError(f"priors={self.priors!r} must be a mapping of prior keys "
+                                     "to families")
         for m in self.models:
             if m not in MODEL_NAMES:
                 raise choices_error("models", m, MODEL_NAMES)
@@ -424,19 +441,51 @@ def _toml_value(v) -> str:
     raise SpecificationError(f"cannot write {v!r} to an analysis file")
 
 
+#: the TOML types each setting may have in an analysis file (the values are checked
+#: further by :meth:`Settings.check`)
+_FILE_TYPES = {
+    **dict.fromkeys(("title", "data", "unit", "time", "formula", "data_sha256", "sampler",
+                     "cov", "re_method", "level"), (str,)),
+    **dict.fromkeys(("models", "reference"), (list, str)),
+}  # numbers and switches are checked, with their ranges, by Settings.check
+_TYPE_NAMES = {str: "text", list: "a list of names"}
+
+
+def _check_file_type(path, name, value):
+    """Refuse a value of the wrong TOML type, naming the key as the file spells it."""
+    want = _FILE_TYPES.get(name)
+    ok = want is None or isinstance(value, want)
+    if ok and name in ("models", "reference") and isinstance(value, list):
+        ok = all(isinstance(x, str) for x in value)
+    if not ok:
+        key = next(f"[{sec}] {k}" if sec else k for sec, keys in _TOML_LAYOUT.items()
+                   for k, f in keys.items() if f == name)
+        raise SpecificationError(
+            f"analysis file {str(path)!r}: {key} = {value!r} must be "
+            + " or ".join(_TYPE_NAMES[t] for t in want))
+
+
 def load_settings(path, **overrides) -> Settings:
     """Read an analysis file (TOML); ``overrides`` (not None) replace its values.
 
     A relative data path is taken relative to the analysis file's folder. Unknown
     sections or keys are errors naming them, so a typo never passes silently.
     """
-    path = Path(path)
-    if not path.is_file():
-        raise SpecificationError(f"analysis file {str(path)!r} does not exist")
+    from .io import regular_file
+    from .outputs import settle_for
+
+    path = regular_file(path, "analysis file", SpecificationError)
+    settle_for(path)  # an analysis.toml of a run folder: finish an interrupted publish first
     try:
         doc = tomllib.loads(path.read_text("utf-8"))
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
         raise SpecificationError(f"analysis file {str(path)!r} is not valid TOML: {exc}") from None
+    except RecursionError:
+        raise SpecificationError(f"analysis file {str(path)!r} nests tables or arrays too "
+                                 "deeply to be an analysis file") from None
+    except OSError as exc:
+        raise SpecificationError(f"cannot read analysis file {str(path)!r}: "
+                                 f"{exc.strerror or exc}") from None
     values = {}
     for key, val in doc.items():
         if isinstance(val, dict):
@@ -457,6 +506,8 @@ def load_settings(path, **overrides) -> Settings:
             values[_TOML_LAYOUT[""][key]] = val
         else:
             raise SpecificationError(f"analysis file {str(path)!r}: unknown top-level key {key!r}")
+    for name, v in values.items():
+        _check_file_type(path, name, v)
     if values.get("data") is not None and not Path(values["data"]).is_absolute():
         values["data"] = str((path.parent / values["data"]).resolve())
     values.update({k: v for k, v in overrides.items() if v is not None})
@@ -549,12 +600,10 @@ def open_out_of_core(path, unit, time_col, say):
     local cluster of two thread workers; ``threads``; ``synchronous``).
     """
     from .engines.dask import SCHEDULERS
-    from .errors import PanelDataError
+    from .io import regular_file
     from .panel import Panel
 
-    p = Path(path)
-    if not p.exists():
-        raise PanelDataError(f"file {str(p)!r} does not exist")
+    p = regular_file(path, folder=True)
     if not (p.is_dir() or p.suffix.lower() in (".parquet", ".pq")):
         raise SpecificationError(
             f"out_of_core: {str(p)!r} is not Parquet; the out-of-core route reads a Parquet "
@@ -572,10 +621,17 @@ def open_out_of_core(path, unit, time_col, say):
 # ---------------------------------------------------------------------- stages
 def _source(settings, what):
     """The data file's record (path, SHA-256 of the file or folder); warns if it changed."""
+    from .errors import PanelDataError
+    from .io import regular_file
+
     if not settings.data:
         raise SpecificationError(f"no data: {what} (data = ...)")
-    source = {"file": str(settings.data), "sha256": _sha256(settings.data)
-              if Path(settings.data).exists() else None}
+    regular_file(settings.data, folder=True)  # never open a device or a pipe
+    try:
+        digest = _sha256(settings.data)
+    except OSError as exc:
+        raise PanelDataError(f"cannot read {settings.data!r}: {exc.strerror or exc}") from None
+    source = {"file": str(settings.data), "sha256": digest}
     if settings.data_sha256 and source["sha256"] and settings.data_sha256 != source["sha256"]:
         warnings.warn(f"the data file {settings.data!r} has changed since the analysis "
                       "file was written (SHA-256 differs); results will differ", UserWarning)
@@ -1006,7 +1062,7 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
     if out_dir is not None:
         rel = f"posteriors/{name}.nc"
         (Path(out_dir) / "posteriors").mkdir(parents=True, exist_ok=True)
-        post.save(_staged(Path(out_dir) / rel))  # moved into place when the run completes
+        post.save(Path(out_dir) / rel)  # the staging folder: published when the run completes
     entry = {
         "name": name, "builder": BUILDER_OF[name], "title": BAYES_MODELS[name][0],
         "assumptions": BAYES_MODELS[name][1], "reference_counterpart": COUNTERPART[name],
@@ -1249,7 +1305,9 @@ def run(settings: Settings, df=None, out=None, truth=None, progress=None, quiet=
         The table (otherwise read from ``settings.data``).
     out : path, optional
         Output folder: ``results.json``, ``analysis.toml``, ``posteriors/*.nc``,
-        ``tables/*.{md,tex,csv}`` and ``report.html``.
+        ``tables/*.{md,tex,csv}`` and ``report.html``, published together when the run
+        completes (:mod:`bayespanel.outputs`); the folder is locked against other runs
+        meanwhile (:class:`~bayespanel.errors.FolderInUseError`).
     truth : dict, optional
         Known true values (simulated data), shown beside the estimates.
     progress : callable, optional
@@ -1262,47 +1320,37 @@ def run(settings: Settings, df=None, out=None, truth=None, progress=None, quiet=
     dict
         The contents of ``results.json`` (see docs/results-schema.md).
     """
+    from contextlib import nullcontext
+
+    from .budget import check_run_memory
+    from .outputs import RunFolder, write_atomic
     from .report import write_report
-    from .report.results_json import write_atomic, write_json
+    from .report.results_json import write_json
 
     settings = settings.check()
     say = progress or _Progress(quiet=quiet)
     if settings.out_of_core and df is not None:
         raise SpecificationError("out_of_core reads settings.data on Dask; pass no DataFrame")
-    panel, design, data, notes = (_data_stage_large(settings, say) if settings.out_of_core
-                                  else _data_stage(settings, df, say))
-    if settings.data and data["source"]["sha256"]:
-        settings = replace(settings, data=str(Path(settings.data).resolve()),
-                           data_sha256=data["source"]["sha256"])
-    out_dir = Path(out) if out is not None else None
-    if out_dir is not None:
-        out_dir.mkdir(parents=True, exist_ok=True)
-    try:
-        results = _fit_stages(settings, panel, design, data, notes, out_dir, truth, say,
+    # the folder is locked for the whole run and every output is written to its staging
+    # folder, then published at once (bayespanel.outputs): an error, an interrupt or a kill
+    # leaves the earlier run or the new one, complete
+    with RunFolder(out) if out is not None else nullcontext() as folder:
+        panel, design, data, notes = (_data_stage_large(settings, say) if settings.out_of_core
+                                      else _data_stage(settings, df, say))
+        if settings.data and data["source"]["sha256"]:
+            settings = replace(settings, data=str(Path(settings.data).resolve()),
+                               data_sha256=data["source"]["sha256"])
+        check_run_memory(settings, design)  # draws x chains that fit, before any fit
+        stage = folder.stage if folder is not None else None
+        results = _fit_stages(settings, panel, design, data, notes, stage, truth, say,
                               progress_bars)
-    except BaseException:
-        # an interrupted or failed run leaves the folder's earlier outputs as they were
-        if out_dir is not None:
-            for name in settings.models:
-                _staged(out_dir / f"posteriors/{name}.nc").unlink(missing_ok=True)
-        raise
-    if out_dir is not None:
-        # every file is written atomically (temporary file, then rename); results.json,
-        # last, marks a complete run
-        for m in results["models"]:
-            if m["posterior_file"]:
-                target = out_dir / m["posterior_file"]
-                os.replace(_staged(target), target)
-        write_atomic(out_dir / "analysis.toml", settings.to_toml())
-        write_report(results, out_dir)
-        write_json(out_dir / "results.json", results)
-        say(f"wrote {out_dir / 'report.html'}")
+        if folder is not None:
+            write_atomic(stage / "analysis.toml", settings.to_toml())
+            write_report(results, stage)
+            write_json(stage / "results.json", results)
+            folder.publish()
+            say(f"wrote {Path(out) / 'report.html'}")
     return results
-
-
-def _staged(path: Path) -> Path:
-    """Where an output is written before the run completes (hidden, beside the target)."""
-    return path.with_name(f".{path.name}.partial")
 
 
 def _left_out(settings, panel, design) -> dict:

@@ -31,9 +31,11 @@ N_DIVERGENT = 3
 
 
 def _snapshot(folder):
-    """Every file under ``folder`` (hidden ones too) -> its bytes."""
+    """Every file under ``folder`` (hidden ones too) -> its bytes, except the lock file,
+    which names the last process that held the folder (docs/guarantees.md, section 4)."""
     return {str(p.relative_to(folder)): p.read_bytes()
-            for p in sorted(folder.rglob("*")) if p.is_file()}
+            for p in sorted(folder.rglob("*")) if p.is_file()
+            and p.relative_to(folder).as_posix() != ".bayespanel/lock"}
 
 
 @pytest.fixture(scope="module")

@@ -10,8 +10,6 @@ from __future__ import annotations
 
 import json
 import math
-import os
-import tempfile
 from importlib import resources
 from pathlib import Path
 
@@ -19,6 +17,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import SpecificationError
+from ..outputs import write_atomic
 
 __all__ = [
     "SCHEMA_NAME", "SCHEMA_VERSION", "jsonable", "dumps", "write_atomic", "write_json",
@@ -64,37 +63,6 @@ def dumps(results: dict) -> str:
     return json.dumps(jsonable(results), indent=1, ensure_ascii=False, allow_nan=False) + "\n"
 
 
-def write_atomic(path, data: bytes | str) -> Path:
-    """Write ``data`` to ``path`` through a temporary file and an atomic rename."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    if isinstance(data, str):
-        data = data.encode("utf-8")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.chmod(tmp, _file_mode(path))  # mkstemp makes 0600; keep the usual permissions
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-    return path
-
-
-def _file_mode(path: Path) -> int:
-    """The replaced file's permissions, or those a new file gets under the umask."""
-    try:
-        return path.stat().st_mode & 0o777
-    except FileNotFoundError:
-        umask = os.umask(0)
-        os.umask(umask)
-        return 0o666 & ~umask
-
-
 def write_json(path, results: dict) -> Path:
     return write_atomic(path, dumps(results))
 
@@ -111,7 +79,17 @@ def validate(results: dict) -> None:
     Needs the ``jsonschema`` package (a test extra); without it, only the schema name and
     version are checked.
     """
-    data = jsonable(results)
+    if not isinstance(results, dict):
+        raise SpecificationError(f"not a bayespanel results file (a JSON "
+                                 f"{type(results).__name__}, not an object)")
+    try:
+        _validate(jsonable(results))
+    except RecursionError:
+        raise SpecificationError("not a bayespanel results file: it nests arrays or objects "
+                                 "too deeply") from None
+
+
+def _validate(data: dict) -> None:
     if data.get("schema") != SCHEMA_NAME:
         raise SpecificationError(f"not a bayespanel results file (schema={data.get('schema')!r})")
     major = str(data.get("schema_version", "")).split(".")[0]
@@ -133,14 +111,24 @@ def validate(results: dict) -> None:
 
 def load_results(path) -> dict:
     """Read a ``results.json`` (or the folder holding one) and check its schema version."""
+    from ..io import regular_file
+    from ..outputs import settle_for
+
     path = Path(path)
     if path.is_dir():
         path = path / "results.json"
+    settle_for(path)  # a run folder a killed run left mid-publish is finished first
     if not path.exists():
         raise SpecificationError(f"no results file at {str(path)!r}; run `bayespanel fit` first")
+    path = regular_file(path, "results file", SpecificationError)
     try:
         data = json.loads(path.read_text("utf-8"))
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise SpecificationError(f"{str(path)!r} is not valid JSON: {exc}") from None
+    except RecursionError:
+        raise SpecificationError(f"{str(path)!r} nests arrays or objects too deeply to be a "
+                                 "results file") from None
+    except OSError as exc:
+        raise SpecificationError(f"cannot read {str(path)!r}: {exc.strerror or exc}") from None
     validate(data)
     return data
