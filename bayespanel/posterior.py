@@ -584,8 +584,18 @@ class Posterior:
         Groups: the sampler's (``posterior``, ``sample_stats``, ...), ``bayespanel_stats``
         (sufficient statistics and unit labels) and, with ``rows=True``, ``bayespanel_rows``
         (the estimation rows, for predictive draws and LOO). The specification, sampling
-        record and scaling are JSON strings in the root attributes. No pickle.
+        record and scaling are JSON strings in the root attributes, with their SHA-256;
+        every numeric array carries HDF5's Fletcher-32 checksum, so a damaged file is
+        refused on loading rather than read as other numbers. No pickle.
+
+        The file is made in memory and written atomically (a temporary file, fsync, a
+        rename), so a full disk or an interrupt leaves no partial file and HDF5 never sees
+        the write fail.
         """
+        _write_tree(self._tree(rows), path)
+
+    def _tree(self, rows: bool) -> "xr.DataTree":
+        """The DataTree :meth:`save` writes."""
         groups = {name: node.to_dataset() for name, node in self.idata.children.items()}
         st = self.stats
         p = st.p
@@ -618,7 +628,7 @@ class Posterior:
             "bayespanel_sampling": json.dumps(self.sampling),
             "bayespanel_scaling": json.dumps(self.scaling.to_dict() if self.scaling else None),
         }), **groups})
-        tree.to_netcdf(path, engine="h5netcdf")
+        return tree
 
     @classmethod
     def load(cls, path) -> "Posterior":
@@ -627,20 +637,24 @@ class Posterior:
         Only NetCDF (HDF5) is read, through xarray; nothing is unpickled. Any other file is
         a :class:`SpecificationError` naming it.
         """
-        try:
-            with xr.open_datatree(path, engine="h5netcdf") as tree:
-                tree = tree.load()
-        except (OSError, ValueError) as exc:
-            raise SpecificationError(
-                f"{str(path)!r} is not a posterior file written by Posterior.save (NetCDF): "
-                f"{exc}") from None
-        attrs = tree.attrs
-        if "bayespanel_latent" in attrs and cls is Posterior:  # issue 5 hook: latent families
+        tree = _read_tree(path)
+        if "bayespanel_latent" in tree.attrs and cls is Posterior:  # latent families
             from .models.latent import LatentPosterior
 
             return LatentPosterior.load(path)
-        if "bayespanel_spec" not in attrs:
+        if "bayespanel_spec" not in tree.attrs:
             raise SpecificationError(f"{path!s} was not written by Posterior.save")
+        try:
+            return cls._from_tree(tree)
+        except (KeyError, ValueError, TypeError, AttributeError, IndexError) as exc:
+            # a file that is HDF5 but not as Posterior.save wrote it (edited, damaged)
+            raise SpecificationError(
+                f"{str(path)!r} is not a posterior file as Posterior.save writes it: "
+                f"{type(exc).__name__}: {exc}") from None
+
+    @classmethod
+    def _from_tree(cls, tree) -> "Posterior":
+        attrs = tree.attrs
         spec = ModelSpec.from_json(attrs["bayespanel_spec"])
         sampling = json.loads(attrs["bayespanel_sampling"])
         sc = json.loads(attrs["bayespanel_scaling"])
@@ -664,6 +678,64 @@ class Posterior:
         idata = xr.DataTree.from_dict(keep)
         return cls(idata, spec, stats, units, rows=rows, sampling=sampling, scaling=scaling,
                    **labels)
+
+
+_DIGEST = "bayespanel_digest"
+
+
+def _attrs_digest(tree) -> str:
+    """SHA-256 of the attributes that describe the model: the root's JSON texts and the
+    sizes of the statistics (the arrays carry their own checksums)."""
+    import hashlib
+
+    h = hashlib.sha256()
+    for k in sorted(a for a in tree.attrs if a.startswith("bayespanel_") and a != _DIGEST):
+        h.update(f"{k}\0{tree.attrs[k]}\0".encode())
+    if "bayespanel_stats" in tree.children:
+        st = tree["bayespanel_stats"].attrs
+        for k in sorted(st):
+            h.update(f"stats.{k}\0{st[k]}\0".encode())
+    return h.hexdigest()
+
+
+def _write_tree(tree, path) -> None:
+    """Write a posterior's DataTree: checksums on, made in memory, written atomically."""
+    from .outputs import write_atomic
+
+    tree.attrs = {**tree.attrs, _DIGEST: _attrs_digest(tree)}
+    encoding = {}
+    for node in tree.subtree:
+        enc = {name: {"fletcher32": True} for name, v in node.dataset.data_vars.items()
+               if v.dtype.kind in "biuf" and v.ndim >= 1 and v.size > 0}
+        if enc:
+            encoding[node.path] = enc
+    data = tree.to_netcdf(engine="h5netcdf", encoding=encoding)  # bytes, not a file
+    write_atomic(path, bytes(data))
+
+
+def _read_tree(path):
+    """The DataTree of a saved posterior, or :class:`SpecificationError` naming the file.
+
+    Only a regular file is opened; a bad checksum or attributes that do not match their
+    digest (a flipped bit, an edited value) are refused.
+    """
+    from .io import regular_file
+    from .outputs import settle_for
+
+    settle_for(path)  # a run folder a killed run left mid-publish is finished first
+    path = regular_file(path, "posterior file", SpecificationError)
+    try:
+        with xr.open_datatree(path, engine="h5netcdf") as tree:
+            tree = tree.load()
+    except Exception as exc:  # noqa: BLE001 - a damaged file fails anywhere in h5py/h5netcdf
+        raise SpecificationError(
+            f"{str(path)!r} is not a posterior file written by Posterior.save (NetCDF), or it "
+            f"is damaged: {exc}") from None
+    digest = tree.attrs.get(_DIGEST)
+    if digest is not None and digest != _attrs_digest(tree):
+        raise SpecificationError(f"{str(path)!r} is damaged or was edited: its model "
+                                 "attributes do not match their SHA-256")
+    return tree
 
 
 def _encode_labels(values):

@@ -823,11 +823,12 @@ class LatentPosterior(_posterior_cls()):
     def save(self, path, rows: bool = True) -> None:
         """As :meth:`Posterior.save`, plus group ``bayespanel_latent`` (the random-effect
         columns, trials, log exposure) and the latent specification as JSON."""
+        super().save(path, rows=True)
+
+    def _tree(self, rows: bool):
         import xarray as xr
 
-        super().save(path, rows=True)
-        with xr.open_datatree(path, engine="h5netcdf") as tree:
-            tree = tree.load()
+        tree = super()._tree(rows=True)
         extra = {"Z": (("row", "effect"), self.Z)}
         if self.trials is not None:
             extra["trials"] = (("row",), self.trials)
@@ -835,17 +836,25 @@ class LatentPosterior(_posterior_cls()):
             extra["log_exposure"] = (("row",), self.log_exposure)
         tree["bayespanel_latent"] = xr.DataTree(xr.Dataset(extra))
         tree.attrs = {**tree.attrs, "bayespanel_latent": self.lspec.to_json()}
-        tree.to_netcdf(path, engine="h5netcdf")
+        return tree
 
     @classmethod
     def load(cls, path) -> "LatentPosterior":
-        import xarray as xr
-
         base = _posterior_cls().load.__func__(cls, path)
-        with xr.open_datatree(path, engine="h5netcdf") as tree:
-            tree = tree.load()
+        from ..posterior import _read_tree
+
+        tree = _read_tree(path)
         if "bayespanel_latent" not in tree.attrs:
             raise SpecificationError(f"{path!s} holds no latent-model posterior")
+        try:
+            return cls._latent_from_tree(base, tree)
+        except (KeyError, ValueError, TypeError, AttributeError, IndexError) as exc:
+            raise SpecificationError(
+                f"{str(path)!r} is not a latent-model posterior as save writes it: "
+                f"{type(exc).__name__}: {exc}") from None
+
+    @staticmethod
+    def _latent_from_tree(base, tree):
         ld = tree["bayespanel_latent"].to_dataset()
         base.lspec = LatentSpec.from_json(tree.attrs["bayespanel_latent"])
         base.Z = np.asarray(ld["Z"].values)
