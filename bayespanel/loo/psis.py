@@ -33,6 +33,10 @@ from .result import LOOResult
 __all__ = ["loo", "kfold", "loo_subsample", "psis_arrays", "refit_draws"]
 
 _MAX_NAMED = 8
+#: fewest draws PSIS can smooth: arviz-stats fits the Pareto tail to the largest
+#: ``floor(S / 5)`` weights when ``S * r_eff <= 225`` and needs at least 5 of them
+#: (Vehtari et al. 2024 give ``min(S / 5, 3 sqrt(S / r_eff))``)
+MIN_PSIS_DRAWS = 25
 
 
 # ---------------------------------------------------------------------------- PSIS core
@@ -54,13 +58,24 @@ def psis_arrays(ll, level, posterior=None, reff=None):
     """
     import arviz_stats
 
+    S = int(np.prod(np.shape(ll)[:-1]))
+    if S < MIN_PSIS_DRAWS:
+        raise EstimationError(
+            f"PSIS-LOO needs at least {MIN_PSIS_DRAWS} draws in all (chains x draws); this "
+            f"posterior has {S}, so its LOO is not computed: sample more draws")
     dt = _datatree(ll, level, posterior)
     if posterior is None and reff is None:
         reff = 1.0
     with warnings.catch_warnings():
         # high Pareto k is reported by us, naming the units (SamplingWarning)
         warnings.filterwarnings("ignore", message="Estimated shape parameter of Pareto")
-        return arviz_stats.loo(dt, var_name=level, pointwise=True, reff=reff)
+        try:
+            return arviz_stats.loo(dt, var_name=level, pointwise=True, reff=reff)
+        except ValueError as exc:  # arviz-stats cannot fit the tail of the weights
+            raise EstimationError(
+                f"PSIS-LOO could not fit the tail of the importance weights ({exc}): the "
+                "draws barely move, as when the sampler was not tuned; the LOO is not "
+                "computed: tune the sampler and sample more draws") from None
 
 
 def _lpd(ll):
