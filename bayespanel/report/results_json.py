@@ -89,9 +89,15 @@ def validate(results: dict) -> None:
                                  "too deeply") from None
 
 
+def _short(v, width: int = 60) -> str:
+    text = repr(v)
+    return text if len(text) <= width else text[:width] + "..."
+
+
 def _validate(data: dict) -> None:
     if data.get("schema") != SCHEMA_NAME:
-        raise SpecificationError(f"not a bayespanel results file (schema={data.get('schema')!r})")
+        raise SpecificationError(f"not a bayespanel results file "
+                                 f"(schema={_short(data.get('schema'))})")
     major = str(data.get("schema_version", "")).split(".")[0]
     if major != SCHEMA_VERSION.split(".")[0]:
         raise SpecificationError(
