@@ -87,6 +87,8 @@ def data_checks(settings, panel, design) -> list:
     from .models.latent import _where
 
     notes = []
+    if settings.family == "gaussian" and not hasattr(design, "y"):
+        return notes  # out of core: no rows in memory (the family check needs them)
     y = np.asarray(design.y, dtype=float)
     if settings.family == "gaussian":
         vals = np.unique(y[np.isfinite(y)])
