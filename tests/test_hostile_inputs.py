@@ -633,3 +633,20 @@ def test_the_console_says_what_the_data_stage_did(grunfeld, tmp_path, capsys):
     assert rc == 0
     assert "note: time column 'date' read as dates, month first" in out
     assert "note: dropped 2 of 200 rows with missing values (value: 2)" in out
+
+
+def test_names_that_contain_keywords_or_double_underscores_are_columns(grunfeld):
+    """``lambda_hat`` was refused as a lambda expression (a substring test); such names
+    are columns. Outside check: statsmodels OLS on the same columns."""
+    import statsmodels.api as sm
+
+    df = grunfeld.rename(columns={"value": "lambda_hat", "capital": "k__stock"})
+    res = bp.reference.pooled(bp.Panel(df, UNIT, TIME), "invest ~ lambda_hat + k__stock")
+    ols = sm.OLS(df["invest"], sm.add_constant(df[["lambda_hat", "k__stock"]])).fit()
+    np.testing.assert_allclose(res.coef.to_numpy(), ols.params.to_numpy(), rtol=1e-10)
+    from bayespanel.errors import FormulaError
+
+    with pytest.raises(FormulaError, match="lambda expressions"):
+        bp.Panel(df, UNIT, TIME).design("invest ~ (lambda: lambda_hat)()")
+    with pytest.raises(FormulaError, match="double-underscore"):
+        bp.Panel(df, UNIT, TIME).design("invest ~ lambda_hat + __builtins__")
