@@ -131,6 +131,8 @@ def test_every_table_shows_estimates_to_their_uncertainty(grunfeld_run):
                            ("contrasts", "mean", "SD")):
         for r in _md_rows(run / "tables" / f"{stem}.md")[1]:
             _check_pair(r[est], r[unc], (stem, r))
+            if stem == "contrasts":  # the reference contrast to its own SE's digits
+                _check_pair(r["reference estimate"], r["reference SE"], (stem, r))
     # the HTML coefficient table: estimate, SD/SE, interval per row
     page = (run / "report.html").read_text("utf-8")
     sec = page.split('id="coefficients"')[1].split("</table>")[0]

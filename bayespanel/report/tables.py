@@ -209,8 +209,9 @@ COLUMN_KINDS = {
     "p_value": "p_value", "df": "dof", "statistic": "plain", "f_statistic": "plain",
     "f_p_value": "p_value", "f_df_denom": "dof",
     "p_positive": "probability", "p_negative": "probability", "p_rope": "probability",
-    "rope": "plain", "reference_estimate": "plain", "reference_lower": "plain",
-    "reference_upper": "plain",
+    "rope": "plain", "reference_estimate": ("estimate", "reference_se"),
+    "reference_se": "uncertainty", "reference_lower": ("estimate", "reference_se"),
+    "reference_upper": ("estimate", "reference_se"),
     "elpd": ("estimate", "se"), "se": "uncertainty", "elpd_diff": ("estimate", "se_diff"),
     "se_diff": "uncertainty", "p_loo": "plain", "weight": "share",
     "n_points": "count", "n_high_pareto_k": "count", "max_k": "pareto_k",
@@ -318,12 +319,13 @@ def display_tables(results: dict) -> dict[str, tuple[pd.DataFrame, list[str]]]:
         ct["interval"] = [num.interval(lo, hi, u) for lo, hi, u in
                           zip(ct["lower"], ct["upper"], ct["sd"])]
         keep = [c for c in ("covariate", "model", "mean", "sd", "interval", "p_positive",
-                            "p_negative", "p_rope", "rope", "reference_estimate")
-                if c in ct.columns]
+                            "p_negative", "p_rope", "rope", "reference_estimate",
+                            "reference_se")
+                if c in ct.columns and ct[c].notna().any()]  # no empty ROPE columns
         out["contrasts"] = (display_frame(ct[keep]).rename(columns={
             "sd": "SD", "interval": f"{pct} interval", "p_positive": "P(> 0)",
             "p_negative": "P(< 0)", "p_rope": "P(in ROPE)", "rope": "ROPE half-width",
-            "reference_estimate": "reference estimate"}),
+            "reference_estimate": "reference estimate", "reference_se": "reference SE"}),
             ["Between minus within effect of each time-varying covariate: posterior mean, "
              "SD, interval and posterior probabilities.", foot])
     if "tests" in raw:
