@@ -451,8 +451,9 @@ def _contrasts(r) -> Safe:
     tests = r.get("tests") or []
     if tests:
         trs = [[t["title"], esc(num.plain(t.get("reported_statistic", t.get("statistic")))),
-                esc(t.get("distribution") or (f"chi-squared({num.dof(t['df'])})"
-                                              if t.get("df") is not None else num.MISSING)),
+                tag("span", t.get("distribution") or (f"chi-squared({num.dof(t['df'])})"
+                                                       if t.get("df") is not None
+                                                       else num.MISSING), cls="bp-nowrap"),
                 esc(num.p_value(t.get("reported_p_value", t.get("p_value")))),
                 t.get("conclusion", "")] for t in tests]
         out.append(table(["reference test", "statistic", "distribution", _P_VALUE, "reading"],
