@@ -15,6 +15,7 @@ import signal
 import sys
 import threading
 import warnings
+from dataclasses import fields
 from pathlib import Path
 
 import pandas as pd
@@ -51,7 +52,13 @@ class _Printable:
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):
-    """Python's warning display, with the message made :func:`printable`."""
+    """The console's warning display: one line (:func:`format_warning`), the message made
+    :func:`printable`."""
+    print(format_warning(printable(message), category), file=file or sys.stderr, flush=True)
+
+
+def _show_warning_debug(message, category, filename, lineno, file=None, line=None):
+    """With ``--debug``: Python's warning display (file and source line), made printable."""
     text = warnings.formatwarning(printable(message), category, filename, lineno, line)
     (file or sys.stderr).write(text)
 
@@ -81,6 +88,26 @@ def _names(text):
     if text.lower() == "none":
         return ()
     return tuple(x.strip() for x in text.split(",") if x.strip())
+
+
+_DELIMITER_NAMES = {"tab": "\t", "\\t": "\t", "comma": ",", "semicolon": ";", "pipe": "|",
+                    "space": " "}
+_DELIMITER_HELP = ("field delimiter of a CSV file: one character such as ';' or '|', or tab, "
+                   "comma, semicolon, pipe, space (default ',', tab for .tsv)")
+
+
+def _delimiter(text):
+    """``--delimiter``: one character, or its name (``tab`` is easier to type than a tab)."""
+    return None if text is None else _DELIMITER_NAMES.get(text.lower(), text)
+
+
+def delimiter_option(text):
+    """``--delimiter`` of describe and design-check, checked (fit checks it in Settings)."""
+    delim = _delimiter(text)
+    if delim is not None and len(delim) != 1:
+        raise SpecificationError(f"--delimiter {text!r} must be one character, or tab, "
+                                 "comma, semicolon, pipe, space")
+    return delim
 
 
 def parse_prior(text: str):
@@ -116,7 +143,8 @@ def cmd_describe(args) -> int:
 
     if args.out_of_core:
         return _describe_out_of_core(args)
-    panel = Panel.from_file(args.file, unit=args.unit, time=args.time)
+    panel = Panel.from_file(args.file, unit=args.unit, time=args.time,
+                            sep=delimiter_option(args.delimiter))
     _print_describe(panel)
     return EXIT_OK
 
@@ -149,6 +177,7 @@ def _settings_from_args(args):
         "ppc_draws": args.ppc_draws, "reference_folds": args.reference_folds,
         "refit_high_k": True if args.refit_high_k else None, "max_refits": args.max_refits,
         "out_of_core": True if args.out_of_core else None,
+        "delimiter": _delimiter(args.delimiter),
         "loo_observations": args.loo_observations,
         "family": args.family, "trials": args.trials, "exposure": args.exposure,
         "random_slopes": _names(args.random_slopes),
@@ -436,15 +465,20 @@ def cmd_demo(args) -> int:
 
 
 # ---------------------------------------------------------------------- parser
-def _sampling_args(p, draws, tune, chains):
+def _sampling_args(p, draws, tune, chains, shown=None):
+    """``--draws``, ``--tune``, ``--chains``, ``--seed``; ``shown`` gives the defaults the
+    help states when the options' own default is None (values come from Settings)."""
+    shown = shown or {"draws": draws, "tune": tune, "chains": chains, "seed": 1}
     g = p.add_argument_group("sampling")
     g.add_argument("--draws", type=int, default=draws,
-                   help=f"posterior draws per chain (default {draws})")
+                   help=f"posterior draws per chain (default {shown['draws']})")
     g.add_argument("--tune", type=int, default=tune,
-                   help=f"tuning steps per chain, discarded (default {tune})")
-    g.add_argument("--chains", type=int, default=chains, help=f"chains (default {chains})")
+                   help=f"tuning steps per chain, discarded (default {shown['tune']})")
+    g.add_argument("--chains", type=int, default=chains,
+                   help=f"chains (default {shown['chains']})")
     g.add_argument("--seed", type=int, default=None,
-                   help="seed of every random draw; the same seed repeats the run (default 1)")
+                   help="seed of every random draw; the same seed repeats the run (default "
+                        f"{shown['seed']})")
     return g
 
 
@@ -495,6 +529,7 @@ def _add_design_check_verb(sub):
     p.add_argument("file", help="CSV or Parquet file, one row per unit and occasion")
     p.add_argument("--unit", required=True, help="column identifying the units")
     p.add_argument("--time", required=True, help="column identifying the occasions")
+    p.add_argument("--delimiter", metavar="CHAR", help=_DELIMITER_HELP)
     p.add_argument("--formula", required=True, help="Wilkinson formula, e.g. 'y ~ x + z'")
     p.add_argument("--model", default="random_intercept",
                    help="pooled, random_intercept, within_between, correlated_effects or "
@@ -524,6 +559,12 @@ def build_parser() -> argparse.ArgumentParser:
                     "Exit codes: 0 success, 2 bad input, 1 failure or interrupted, 3 "
                     "sampling problems under --strict.",
     )
+    from . import __version__
+    from .runner import Settings
+
+    default = {f.name: f.default for f in fields(Settings)}
+    parser.add_argument("--version", action="version", version=f"bayespanel {__version__}",
+                        help="print the version and exit")
     parser.add_argument("--debug", action="store_true",
                         help="show the full traceback when a run fails")
     sub = parser.add_subparsers(dest="verb", required=True, metavar="VERB")
@@ -552,6 +593,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("file", help="CSV or Parquet file, one row per unit and occasion")
     p.add_argument("--unit", required=True, help="column identifying the units")
     p.add_argument("--time", required=True, help="column identifying the occasions")
+    p.add_argument("--delimiter", metavar="CHAR", help=_DELIMITER_HELP)
     p.add_argument("--out-of-core", action="store_true", help=_OOC_HELP)
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.set_defaults(func=cmd_describe)
@@ -572,6 +614,7 @@ def build_parser() -> argparse.ArgumentParser:
     g = p.add_argument_group("data and model")
     g.add_argument("--unit", help="column identifying the units")
     g.add_argument("--time", help="column identifying the occasions")
+    g.add_argument("--delimiter", metavar="CHAR", help=_DELIMITER_HELP)
     g.add_argument("--formula", help="Wilkinson formula, e.g. 'y ~ x + z' (unit effects come "
                    "from the model, not the formula)")
     g.add_argument("--models", help=_MODELS_HELP)
@@ -585,22 +628,26 @@ def build_parser() -> argparse.ArgumentParser:
                         "flat, half_normal, half_student_t, exponential, gamma2, half_flat) "
                         "optionally with parameters, e.g. sigma_unit=gamma2 or "
                         "'coef=normal:sigma=10'")
-    g = _sampling_args(p, None, None, None)
+    # the option defaults stay None so that an analysis file's values are not overridden;
+    # the help shows the defaults a run uses (those of Settings)
+    g = _sampling_args(p, None, None, None, shown=default)
     g.add_argument("--sampler", choices=["auto", "pymc", "nutpie"], default=None,
-                   help="NUTS implementation (default auto: picked by model size)")
+                   help=f"NUTS implementation (default {default['sampler']}: picked by "
+                        "model size)")
     g.add_argument("--ppc-draws", type=int, default=None,
-                   help="posterior draws used for predictive checks (default 200)")
+                   help=f"posterior draws used for predictive checks (default "
+                        f"{default['ppc_draws']})")
     g.add_argument("--progress-bars", action="store_true", help="show the sampler's progress bars")
     g = p.add_argument_group("reference fits and comparison")
     g.add_argument("--reference", help=_REF_HELP)
     g.add_argument("--cov", choices=["classical", "cluster", "cr2"], default=None,
-                   help="covariance of the reference fits (default cluster: CR1 by unit)")
+                   help=f"covariance of the reference fits (default {default['cov']}: CR1 by unit)")
     g.add_argument("--method", choices=["swamy-arora", "ml", "reml"], default=None,
                    help="variance components of the random-intercept reference fits "
-                        "(default swamy-arora)")
+                        f"(default {default['re_method']})")
     g.add_argument("--level", choices=["occasion", "unit"], default=None,
                    help="LOO level: occasion = new occasions of known units, unit = new "
-                        "units (default occasion)")
+                        f"units (default {default['level']})")
     g.add_argument("--reference-folds", type=int, default=None, metavar="K",
                    help="reference fits in the LOO table: 0 = exact leave-one-out refits, "
                         "K >= 2 = grouped K-fold (default: exact leave-one-out at every size, "
@@ -619,7 +666,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="half-width of the region of practical equivalence for the "
                         "between-minus-within contrasts (outcome units per covariate unit)")
     g.add_argument("--interval", type=float, default=None,
-                   help="probability of every reported interval (default 0.95)")
+                   help=f"probability of every reported interval (default "
+                        f"{default['interval']})")
     g.add_argument("--title", help="title of the report")
     g.add_argument("--quiet", action="store_true", help="no progress lines")
     g.add_argument("--strict", action="store_true", help=_STRICT_HELP)
@@ -639,6 +687,15 @@ def build_parser() -> argparse.ArgumentParser:
 
 def _terminate(signum, frame):
     raise KeyboardInterrupt(f"terminated by signal {signum}")
+
+
+def format_warning(message, category) -> str:
+    """A warning as the console shows it: one line, no file name or Python source line
+    (``bayespanel: warning: ...``; the category is named unless it is a plain
+    ``UserWarning`` or one of ours, whose messages say what they are about)."""
+    text = " ".join(str(message).split())
+    ours = category.__module__.startswith("bayespanel") or category is UserWarning
+    return f"bayespanel: warning: {text if ours else f'{category.__name__}: {text}'}"
 
 
 def main(argv=None) -> int:
@@ -664,7 +721,7 @@ def _main(args) -> int:
     try:
         with warnings.catch_warnings(), contextlib.redirect_stdout(_Printable(sys.stdout)):
             warnings.simplefilter("default")
-            warnings.showwarning = _show_warning
+            warnings.showwarning = _show_warning_debug if args.debug else _show_warning
             return int(args.func(args) or 0)
     except OutputError as exc:  # the input was fine; the outputs could not be written
         print(f"bayespanel: failed: {exc}", file=sys.stderr)

@@ -816,6 +816,7 @@ def run_command(args) -> int:
     """The ``design-check`` verb of the command line (see ``bayespanel design-check -h``)."""
     from pathlib import Path
 
+    from .cli import delimiter_option
     from .panel import Panel
 
     if args.model not in _CLI_MODELS:
@@ -830,7 +831,8 @@ def run_command(args) -> int:
         raise SpecificationError("--sigma-unit and --sigma-obs need --coef for every term")
     else:
         truth = "reference"
-    panel = Panel.from_file(args.file, unit=args.unit, time=args.time)
+    panel = Panel.from_file(args.file, unit=args.unit, time=args.time,
+                            sep=delimiter_option(args.delimiter))
     res = design_check(panel, _CLI_MODELS[args.model], args.formula, truth=truth,
                        replicates=args.replicates, difference=_pairs(args.difference,
                                                                      "--difference") or None,

@@ -74,6 +74,8 @@ def read_table(path, sep: str | None = None, encoding: str = "utf-8") -> pd.Data
     if suffix in PARQUET_SUFFIXES or path.is_dir():
         if path.is_dir():
             parquet_files(path)
+        if sep is not None:
+            raise PanelDataError(f"{str(path)!r} is Parquet; a delimiter applies to CSV files")
         try:
             return pd.read_parquet(path)
         except Exception as exc:  # pyarrow raises several types
@@ -96,7 +98,8 @@ def read_table(path, sep: str | None = None, encoding: str = "utf-8") -> pd.Data
     if df.shape[1] == 1:
         only = str(df.columns[0])
         guess = next((d for d in (";", "\t", "|", ",") if d in only and d != sep), None)
-        hint = f"; the header contains {guess!r}, try that delimiter" if guess else ""
+        hint = (f"; the header contains {guess!r}, try that delimiter (--delimiter "
+                f"{'tab' if guess == chr(9) else repr(guess)})" if guess else "")
         raise PanelDataError(
             f"file {str(path)!r} read as a single column {only[:60]!r} with delimiter "
             f"{sep!r}{hint}"

@@ -24,9 +24,11 @@ import os
 import platform
 import re
 import sys
+import threading
 import time
 import tomllib
 import warnings
+import weakref
 from contextlib import contextmanager
 from dataclasses import asdict, dataclass, field, fields, replace
 from datetime import datetime, timezone
@@ -111,6 +113,8 @@ class Settings:
         Most exact refits per model (default ``MAX_REFITS``); with more high-k points the
         PSIS values stay and the problem list says so.
     title : str, optional
+    delimiter : str, optional
+        Field delimiter of a CSV file (one character); default ``,`` (tab for ``.tsv``).
     out_of_core : bool
         Read the Parquet file or folder on Dask and work from one-pass statistics
         (docs/cli.md lists what is left out and why).
@@ -159,6 +163,7 @@ class Settings:
     max_refits: int = MAX_REFITS
     title: str | None = None
     data_sha256: str | None = None
+    delimiter: str | None = None
     out_of_core: bool = False
     loo_observations: int | None = None
     family: str = "gaussian"
@@ -263,6 +268,13 @@ class Settings:
         if self.rope is not None and (isinstance(self.rope, bool) or not isinstance(
                 self.rope, (int, float)) or not 0 < self.rope < float("inf")):
             raise SpecificationError(f"rope={self.rope!r} must be a finite positive number")
+        if self.delimiter is not None and (not isinstance(self.delimiter, str)
+                                           or len(self.delimiter) != 1):
+            raise SpecificationError(
+                f"delimiter={self.delimiter!r} must be one character, such as ';' or '|' "
+                "(a tab: 'tab' on the command line, \"\\t\" in an analysis file)")
+        if self.delimiter is not None and self.out_of_core:
+            raise SpecificationError("delimiter applies to CSV files; out_of_core reads Parquet")
         if not isinstance(self.out_of_core, bool):
             raise SpecificationError(f"out_of_core={self.out_of_core!r} must be true or false")
         if self.loo_observations is not None and (
@@ -368,7 +380,7 @@ class Settings:
         if self.title is not None:
             lines.append(f"title = {_toml_value(self.title)}")
         lines += ["", "[data]"]
-        for k in ("data", "unit", "time", "data_sha256"):
+        for k in ("data", "unit", "time", "data_sha256", "delimiter"):
             v = getattr(self, k)
             if v is not None:
                 lines.append(f"{'file' if k == 'data' else 'sha256' if k == 'data_sha256' else k}"
@@ -410,7 +422,7 @@ class Settings:
 _TOML_LAYOUT = {  # section -> {key in file: Settings field}
     "": {"title": "title"},
     "data": {"file": "data", "unit": "unit", "time": "time", "sha256": "data_sha256",
-             "out_of_core": "out_of_core"},
+             "out_of_core": "out_of_core", "delimiter": "delimiter"},
     "model": {"formula": "formula", "models": "models", "occasion_effects": "occasion_effects",
               "family": "family", "trials": "trials", "exposure": "exposure",
               "random_slopes": "random_slopes", "centred": "centred"},
@@ -553,17 +565,61 @@ def _sha256(path) -> str:
     return h.hexdigest()
 
 
-class _Progress:
-    """Stage lines with elapsed time, to a stream (stderr on the command line)."""
+#: seconds without a progress line after which the last stage is said to be still running
+HEARTBEAT = 10.0
 
-    def __init__(self, stream=None, quiet=False):
+
+class _Progress:
+    """Stage lines with elapsed time, to a stream (stderr on the command line).
+
+    A stage that runs longer than :data:`HEARTBEAT` seconds without a line of its own
+    (sampling a model, LOO of many points, drawing the figures) gets a line saying it is
+    still running, every ``HEARTBEAT`` seconds, from a daemon thread that ends with the
+    object (it holds only a weak reference).
+    """
+
+    def __init__(self, stream=None, quiet=False, heartbeat=HEARTBEAT):
         self.stream = stream if stream is not None else sys.stderr
         self.quiet = quiet
         self.t0 = time.perf_counter()
+        self.heartbeat = heartbeat
+        self._stage = None  # the last stage line, when it began, when a line was printed
+        self._began = self._printed = self.t0
+        self._lock = threading.Lock()
+        self._beat = None
 
     def __call__(self, msg: str):
-        if not self.quiet:
-            print(f"[{time.perf_counter() - self.t0:6.1f} s] {msg}", file=self.stream, flush=True)
+        if self.quiet:
+            return
+        with self._lock:
+            self._print(msg)
+            self._stage, self._began = msg.strip(), self._printed
+        if self._beat is None and self.heartbeat:
+            self._beat = threading.Thread(target=_heartbeat, args=(weakref.ref(self),),
+                                          name="bayespanel-progress", daemon=True)
+            self._beat.start()
+
+    def _print(self, msg: str):
+        self._printed = time.perf_counter()
+        print(f"[{self._printed - self.t0:6.1f} s] {msg}", file=self.stream, flush=True)
+
+    def _idle(self):
+        """A line saying the last stage is still running, after ``heartbeat`` silent s."""
+        with self._lock:
+            if self._stage is not None and time.perf_counter() - self._printed >= self.heartbeat:
+                self._print(f"  ... still running: {self._stage} "
+                            f"({time.perf_counter() - self._began:.0f} s)")
+
+
+def _heartbeat(ref):
+    """Loop of the heartbeat thread: ends when its :class:`_Progress` is gone."""
+    while True:
+        time.sleep(1.0)
+        progress = ref()
+        if progress is None:
+            return
+        progress._idle()
+        del progress
 
 
 def _records(df, index_name=None):
@@ -645,7 +701,7 @@ def _data_stage(settings, df, say):
     source = {"file": None, "sha256": None}
     if df is None:
         source = _source(settings, "give a CSV or Parquet file")
-        df = read_table(settings.data)
+        df = read_table(settings.data, sep=settings.delimiter)
     say(f"read {len(df)} rows x {df.shape[1]} columns")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")  # occasions read as dates are reported too
@@ -1016,6 +1072,8 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
         f"(+{settings.tune} tuning)")
     post, seconds = _sample_timed(m, settings, progress_bars)
     diag = post.diagnostics(warn=False)
+    say(f"  {name}: {seconds:.1f} s, max R-hat {diag['max_rhat']:.3f}, "
+        f"{diag['divergences']} divergences")
     summ = post.summary(prob)
     lo, hi = summ.columns[2], summ.columns[3]
     coefs = [_floats({"term": t, "mean": r["mean"], "sd": r["sd"], "lower": r[lo], "upper": r[hi],
@@ -1027,6 +1085,7 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
     tau_d = (post._flat("sigma_unit") if m.unit_effects == "random"
              else (np.zeros_like(sigma_d) if m.unit_effects == "none" else None))
     ref_for = ref_fits.get(COUNTERPART[name])
+    say(f"  {name}: summaries, variance partition, contrasts, predictive checks")
     vp = None
     if m.unit_effects == "random":
         with warnings.catch_warnings():
@@ -1083,8 +1142,6 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
         "loo": None,
         "ppc": ppc,
     }
-    say(f"  {name}: {seconds:.1f} s, max R-hat {diag['max_rhat']:.3f}, "
-        f"{diag['divergences']} divergences")
     return post, entry
 
 
@@ -1225,6 +1282,9 @@ def _comparison_stage(settings, design, posts, ref_fits, entries, say, failed=No
         if settings.refit_high_k:
             say(f"LOO of {name}: PSIS at the {settings.level} level, exact refits of points "
                 f"with high Pareto k (at most {settings.max_refits})")
+        else:
+            say(f"LOO of {name} at the {settings.level} level (PSIS, "
+                f"{design.n if settings.level == 'occasion' else design.n_units} points)")
         with _isolated(failed if failed is not None else [], say, name, BAYES_MODELS[name][0],
                        "LOO"):
             lr, by_name[name]["loo"] = _loo_entry(post, settings.level, settings=settings)
@@ -1345,6 +1405,7 @@ def run(settings: Settings, df=None, out=None, truth=None, progress=None, quiet=
         results = _fit_stages(settings, panel, design, data, notes, stage, truth, say,
                               progress_bars)
         if folder is not None:
+            say("writing results.json, tables, figures and report.html")
             write_atomic(stage / "analysis.toml", settings.to_toml())
             write_report(results, stage)
             write_json(stage / "results.json", results)
