@@ -195,10 +195,16 @@ def tests_stage(ref_fits, panel, design, settings, say):
     correlated-random-effects test for nonlinear models; Wooldridge 2010, section 15.8.2).
     The classical Hausman test compares linear fits and is not run for these families."""
     from .reference.glm import fit_glm
-    from .runner import _floats
+    from .runner import _floats, tests_skip_reason
 
-    if not design.time_varying:
-        return []
+    title = (f"Mundlak unit-mean terms in the {_GLM_WORD[_glm_kind(settings)]} "
+             f"({'cluster-robust ' if settings.cov == 'cluster' else ''}Wald)")
+    why = tests_skip_reason(design)
+    if why is not None:  # one line saying why, as for the linear tests
+        say(f"specification test skipped: {why}")
+        return [{"name": "mundlak", "title": title, "statistic": None, "df": None,
+                 "p_value": None, "null": None, "conclusion": f"not run: {why}",
+                 "message": None, "skipped": why}]
     res = ref_fits.get("mundlak")
     if res is None:
         trials, expo = _columns(settings, panel, design)
@@ -214,8 +220,7 @@ def tests_stage(ref_fits, panel, design, settings, say):
     reject = np.isfinite(w["p_value"]) and w["p_value"] < 0.05
     say("specification test: Mundlak unit-mean terms in the GLM")
     return [_floats({
-        "name": "mundlak", "title": f"Mundlak unit-mean terms in the {_GLM_WORD[_glm_kind(settings)]} "
-                                    f"({'cluster-robust ' if res.cov_type == 'cluster' else ''}Wald)",
+        "name": "mundlak", "title": title,
         "statistic": w["statistic"], "df": w["df"], "p_value": w["p_value"],
         "distribution": (f"F({int(w['df'])}, {int(w['df2'])})" if w["kind"] == "F" else
                          f"chi-squared({int(w['df'])})"),

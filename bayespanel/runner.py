@@ -765,7 +765,8 @@ def _isolated(failed, say, name, title, what, refuse=()):
         text = f"{type(exc).__name__}: {exc}" if str(exc) else type(exc).__name__
         failed.append({"name": name, "title": title, "stage": what, "error": text})
         _LOG.debug("%s of %s failed", what, name, exc_info=True)
-        say(f"{what} of {name} failed ({text}); the run goes on without it")
+        say(f"{what if name in (what, 'tests') else f'{what} of {name}'} failed ({text}); "
+            "the run goes on without it")
 
 
 def _reference_stage(settings, design, say, failed):
@@ -1296,6 +1297,10 @@ def _comparison_stage(settings, design, posts, ref_fits, entries, say, failed=No
             continue  # between: one row per unit; GLMs: no cross-validation (docs/families.md)
         fits[f"ref:{name}"] = models[f"ref:{name}"] = res
         titles[f"ref:{name}"] = REFERENCE_FITS[name][0] + " (ref.)"
+    if not fits:  # e.g. only the between fit, or only GLM references: nothing to score
+        say("LOO comparison skipped: no fit is scored by LOO (the between fit has one row "
+            "per unit; reference GLMs are not cross-validated)")
+        return None
     folds = _reference_folds(settings)
     say(f"LOO at the {settings.level} level; reference fits by "
         + ("exact leave-one-out refits" if folds is None else f"grouped {folds}-fold CV"))

@@ -211,3 +211,24 @@ def test_transformed_outcome_refusals_name_the_problem(munnell, formula, needle)
     assert needle in str(e.value)
     if "finite" in needle:
         assert "state='ALABAMA', year=1975" in str(e.value)
+
+
+def test_glm_mundlak_test_is_skipped_with_its_reason_and_nothing_fails(wage_panel):
+    import statsmodels.api as sm
+
+    from bayespanel.runner import Settings, run
+
+    s = Settings(unit="nr", time="year", formula="union ~ I(year - 1980)", family="bernoulli",
+                 models=(), reference=("pooled",))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = run(s, df=wage_panel, quiet=True)
+    # years since 1980: the same schedule for every worker, so no between variation
+    [test] = res["tests"]
+    assert test["p_value"] is None and "same unit mean of 'I(year - 1980)'" in test["skipped"]
+    assert "failed" not in res and res["comparison"] is None  # nothing to score: no failure
+    # outside check: the pooled logit reference is statsmodels' Logit
+    x = sm.add_constant((wage_panel["year"] - 1980).astype(float).to_numpy())
+    logit = sm.Logit(wage_panel["union"].to_numpy(), x).fit(disp=0)
+    got = [c["estimate"] for c in res["reference"][0]["coefficients"]]
+    np.testing.assert_allclose(got, logit.params, rtol=1e-7)
