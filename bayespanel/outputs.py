@@ -62,7 +62,7 @@ from pathlib import Path
 from .errors import FolderInUseError, OutputError, SpecificationError
 
 __all__ = ["RunFolder", "settle", "settle_for", "published_files", "write_atomic",
-           "STATE_DIR", "STEPS", "FAULT_ENV"]
+           "cannot_write", "STATE_DIR", "STEPS", "FAULT_ENV"]
 
 STATE_DIR = ".bayespanel"
 FAULT_ENV = "BAYESPANEL_TEST_PUBLISH_FAULT"
@@ -152,6 +152,16 @@ if hasattr(os, "register_at_fork"):
     os.register_at_fork(after_in_child=_close_in_child)
 
 
+def _command_line() -> str:
+    """This process's command line as a user typed it (``bayespanel fit ...``)."""
+    import shlex
+
+    prog = Path(sys.argv[0]).name if sys.argv and sys.argv[0] else "python"
+    if prog in ("__main__.py", "bayespanel", "-m", "-c"):
+        prog = "bayespanel"
+    return shlex.join([prog, *sys.argv[1:]])[:300]
+
+
 def _describe_holder(info: dict) -> str:
     if not info:
         return "another bayespanel process"
@@ -164,7 +174,7 @@ class _Lock:
 
     def __init__(self, state: Path, command: str | None = None):
         self.path = state / "lock"
-        self.command = command or " ".join(sys.argv)[:200]
+        self.command = command or _command_line()
         self.fd = None
 
     def acquire(self, wait: float = 0.0) -> "_Lock":
@@ -569,10 +579,16 @@ class RunFolder:
 
     def __exit__(self, exc_type, exc, tb):
         self._abandon()
-        if isinstance(exc, OSError) and not isinstance(exc, OutputError) \
-                and exc.errno in _NO_SPACE:
+        if cannot_write(exc) and not isinstance(exc, OutputError):
             raise _output_error(exc, self.out) from None
         return False
+
+
+def cannot_write(exc: BaseException) -> bool:
+    """Is ``exc`` a failure to write the outputs (a full disk, a quota, a size limit)?
+    Such a failure stops the whole run rather than one fit."""
+    return isinstance(exc, OutputError) or (isinstance(exc, OSError)
+                                            and exc.errno in _NO_SPACE)
 
 
 def _output_error(exc: OSError, out: Path) -> OutputError:

@@ -709,8 +709,15 @@ def _write_tree(tree, path) -> None:
                if v.dtype.kind in "biuf" and v.ndim >= 1 and v.size > 0}
         if enc:
             encoding[node.path] = enc
-    data = tree.to_netcdf(engine="h5netcdf", encoding=encoding)  # bytes, not a file
-    write_atomic(path, bytes(data))
+    view = tree.to_netcdf(engine="h5netcdf", encoding=encoding)  # in memory, not a file
+    try:
+        data = bytes(view)
+    finally:
+        # a view kept alive (by the traceback of a failed write) would pin xarray's BytesIO,
+        # and collecting the two in a cycle crashed the interpreter
+        view.release()
+    del view
+    write_atomic(path, data)
 
 
 def _read_tree(path):

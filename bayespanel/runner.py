@@ -762,6 +762,10 @@ def _isolated(failed, say, name, title, what, refuse=()):
     except refuse:
         raise
     except Exception as exc:  # noqa: BLE001 - any failure of one fit is recorded, not raised
+        from .outputs import cannot_write
+
+        if cannot_write(exc):  # a full disk stops the run; the folder keeps its earlier run
+            raise
         text = f"{type(exc).__name__}: {exc}" if str(exc) else type(exc).__name__
         failed.append({"name": name, "title": title, "stage": what, "error": text})
         _LOG.debug("%s of %s failed", what, name, exc_info=True)

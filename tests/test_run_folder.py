@@ -307,6 +307,32 @@ def test_a_full_disk_fails_cleanly_and_keeps_the_earlier_run(folder, old_run, gr
     assert _snapshot(folder) == old_run[1]  # no staging, no temporary file, old run intact
 
 
+def test_a_full_disk_while_saving_a_posterior_stops_the_run(folder, old_run, grunfeld_csv,
+                                                          monkeypatch):
+    """Not recorded as one failed model with the run going on: the outputs cannot be
+    written, so the run stops and the folder keeps the earlier run. (The failed write's
+    traceback once pinned xarray's in-memory file and crashed the interpreter when the
+    garbage collector met it; ``gc.collect`` here would meet it again.)"""
+    import gc
+
+    real = os.fdopen
+
+    def fdopen(fd, *a, **k):
+        if Path(os.readlink(f"/proc/self/fd/{fd}")).name.startswith(".pooled.nc."):
+            os.close(fd)
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        return real(fd, *a, **k)
+
+    monkeypatch.setattr(os, "fdopen", fdopen)
+    rc, _, err = _main(_args(grunfeld_csv, folder, "--models", "pooled", "--reference",
+                             "random", "--draws", "30", "--tune", "30", "--chains", "2",
+                             "--ppc-draws", "10", "--sampler", "pymc", "--seed", "4"))
+    gc.collect()
+    assert rc == 1, err
+    assert "No space left on device" in err and "did not finish" not in err
+    assert _snapshot(folder) == old_run[1]
+
+
 def test_a_posterior_on_a_full_disk_leaves_no_file_and_no_hdf5_noise(old_run, tmp_path):
     """The file-size limit makes the write fail for real (EFBIG), in a fresh process: the
     posterior is made in memory, so HDF5 never sees the failure and prints nothing."""
