@@ -318,6 +318,8 @@ def partial_inplace(Z: np.ndarray, keys: np.ndarray) -> Partial:
 _ROW_BLOCK = 4096
 #: independent partial sums per block (a multiple of the vector width of any machine)
 _LANES = 64
+#: units of at most this many rows are read once into the block buffer (longer ones twice)
+_SLACK = 1024
 #: when numba is already loaded in the process (PyTensor's default backend loads it for
 #: any PyMC model), inputs from this many rows use the compiled kernels
 _NUMBA_MIN_ROWS = 50_000
@@ -359,17 +361,46 @@ def _nb_flush(D, m, lanes, upper):  # pragma: no cover (compiled)
             q += 1
 
 
-def _nb_sorted_pass(X, Y, starts, counts, ref, offsets, upper, D, lanes):  # pragma: no cover
-    """Rows sorted by unit, read once: each unit's sum and offset from its rows, then its
-    deviations into the block buffer while the rows are in cache (compiled by numba).
-    Column by column, so that the reference point and the offset stay in registers."""
+def _nb_sorted_pass(X, Y, starts, counts, ref, offsets, upper, D, lanes, S):  # pragma: no cover
+    """Rows sorted by unit, read once (compiled by numba). A unit of at most the buffer's
+    slack (``D.shape[1] - S``) rows is copied into the block buffer as ``z - ref`` and
+    summed on the way, column by column, then its offset is taken off in the buffer;
+    full blocks of ``S`` rows go to :func:`_nb_flush` and the rows past them move to the
+    front. A longer unit is summed first and then copied in pieces. Either way each
+    row's deviation is ``(z - ref) - offset`` and each sum runs in row order."""
     k = X.shape[1]
     p = k + Y.shape[1]
-    S = D.shape[1]
+    slack = D.shape[1] - S
     m = 0
     for i in range(starts.shape[0]):
         a = starts[i]
         T = counts[i]
+        if T <= slack:
+            for j in range(p):
+                rj = ref[j]
+                acc = 0.0
+                if j < k:
+                    for t in range(T):
+                        v = X[a + t, j] - rj
+                        D[j, m + t] = v
+                        acc += v
+                else:
+                    for t in range(T):
+                        v = Y[a + t, j - k] - rj
+                        D[j, m + t] = v
+                        acc += v
+                o = acc / T
+                offsets[i, j] = o
+                for t in range(m, m + T):
+                    D[j, t] -= o
+            m += T
+            if m >= S:
+                _nb_flush(D, S, lanes, upper)
+                m -= S
+                for j in range(p):
+                    for t in range(m):
+                        D[j, t] = D[j, S + t]
+            continue
         for j in range(p):
             rj = ref[j]
             acc = 0.0
@@ -615,15 +646,16 @@ def _pass(X, Y, keys, ref):
         X = np.ascontiguousarray(X, dtype=np.float64)
         Y = np.ascontiguousarray(Y, dtype=np.float64)
         upper = np.zeros(p * (p + 1) // 2)
-        D, lanes = np.empty((p, _ROW_BLOCK)), np.empty(_LANES)
+        lanes = np.empty(_LANES)
         if codes is None:
             offsets = np.empty((N, p))
-            kern["sorted"](X, Y, starts, counts, ref, offsets, upper, D, lanes)
+            D = np.empty((p, _ROW_BLOCK + _SLACK))
+            kern["sorted"](X, Y, starts, counts, ref, offsets, upper, D, lanes, _ROW_BLOCK)
         else:
             sums = np.zeros((N, p))
             kern["sums"](X, Y, codes, ref, sums)
             offsets = sums / counts[:, None]
-            kern["within"](X, Y, codes, ref, offsets, upper, D, lanes)
+            kern["within"](X, Y, codes, ref, offsets, upper, np.empty((p, _ROW_BLOCK)), lanes)
         return ukeys, counts, offsets, _unpack(upper, p)
     if codes is None:
         runs_of, codes_of = _sorted_slices(starts, counts)

@@ -20,11 +20,12 @@ measured in this one run:
    (``start="jitter"``). Sampling time includes warm-up. Target: at most 1.2 times the
    time at the smallest size; ESS per second no lower than with the old start.
 3. **The whole fit** (``--fit-rows``, default 1,000,000 rows). From a ``Panel`` to a
-   ``Posterior`` (design, build, compile, sampling, diagnostics), run twice in fresh
-   processes that share a private PyTensor compile directory (the first run compiles,
-   the second finds the compiled code), against linearmodels' ``RandomEffects`` fit on
-   the same rows (``set_index`` and model construction included). The compile time is
-   reported apart.
+   ``Posterior`` (design, build, compile, sampling, diagnostics), run in fresh processes
+   that share a private PyTensor compile directory: first with it empty (as on a new
+   machine), then again (PyTensor's numba code and bayespanel's compiled log density are
+   found), then again with bayespanel's cache off; against linearmodels'
+   ``RandomEffects`` fit on the same rows (``set_index`` and model construction
+   included). The compile time is reported apart.
 
 The machine load (``os.getloadavg``) is printed at the start and end: other work on the
 machine inflates wall-clock seconds; the pass is timed in CPU seconds for that reason.
@@ -270,9 +271,12 @@ def main():
         try:
             runs = [spawn("fit", env=env, rows=fit_rows, with_reference=(i == 1))
                     for i in range(2)]
+            runs.append(spawn("fit", env=dict(env, BAYESPANEL_COMPILE_CACHE="0"),
+                              rows=fit_rows))
         finally:
             shutil.rmtree(cache, ignore_errors=True)
-        for label, r in zip(("first run (empty compile cache)", "repeated run"), runs):
+        for label, r in zip(("first run (empty compile caches)", "repeated run",
+                             "repeated run, bayespanel's compile cache off"), runs):
             if "error" in r:
                 print(f"  {label}: error: {r['error'].strip().splitlines()[-1]}")
                 continue
@@ -290,6 +294,9 @@ def main():
         if "fit" in runs[0] and "fit" in r:
             ratios.append(("compile seconds, repeated / first run",
                            r["compile"] / runs[0]["compile"], ""))
+        if "fit" in runs[2] and "fit" in r:
+            ratios.append(("compile seconds, repeated run with / without bayespanel's cache",
+                           r["compile"] / runs[2]["compile"], ""))
 
     print(f"\n# load average at end {_load()} (other work on the machine inflates wall-clock "
           "times)")

@@ -23,6 +23,7 @@ BENCHES = [
     ("bench_design_check.py", [], ["--replicates", "20", "--fresh", "2", "--draws", "200"]),
     ("bench_scale.py", [], ["--rows", "1000000"]),
     ("bench_memory.py", [], ["--reps", "15,60"]),
+    ("bench_speed.py", [], ["--quick"]),
 ]
 
 
