@@ -242,6 +242,26 @@ def _read_json(path: Path):
                           f"{str(path.parent)!r} to start the output folder afresh") from None
 
 
+def _inside(out: Path, rel) -> Path | None:
+    """``out / rel`` if ``rel`` names a file inside ``out`` (outside the state folder),
+    else None. Manifests and journals come from the folder, which may have been shared
+    or edited: a name with ``..``, an absolute name or a path through a symbolic link
+    that leaves the folder is never moved or removed."""
+    from pathlib import PurePosixPath
+
+    if not isinstance(rel, str) or not rel or rel.startswith("/") or "\\" in rel:
+        return None
+    parts = PurePosixPath(rel).parts
+    if any(p in ("..", ".") for p in parts) or parts[0] == STATE_DIR:
+        return None
+    path = out / rel
+    try:
+        root, parent = out.resolve(), path.parent.resolve()
+    except OSError:
+        return None
+    return path if parent == root or root in parent.parents else None
+
+
 def _record(path: Path) -> dict:
     st = path.stat()
     return {"size": st.st_size, "mtime_ns": st.st_mtime_ns}
@@ -253,7 +273,8 @@ def published_files(out) -> dict:
     out = Path(out)
     manifest = _read_json(out / STATE_DIR / "manifest.json")
     if isinstance(manifest, dict) and isinstance(manifest.get("files"), dict):
-        return dict(manifest["files"])
+        return {rel: rec if isinstance(rec, dict) else {}
+                for rel, rec in manifest["files"].items() if _inside(out, rel) is not None}
     return _legacy_files(out)
 
 
@@ -269,8 +290,8 @@ def _legacy_files(out: Path) -> dict:
         models = json.loads((out / "results.json").read_text("utf-8")).get("models") or []
         for m in models:
             rel = m.get("posterior_file") if isinstance(m, dict) else None
-            if isinstance(rel, str) and rel.startswith("posteriors/") and ".." not in rel \
-                    and (out / rel).is_file():
+            if isinstance(rel, str) and rel.startswith("posteriors/") \
+                    and _inside(out, rel) is not None and (out / rel).is_file():
                 files[rel] = None
     except (OSError, ValueError, RecursionError, AttributeError):
         pass
@@ -323,9 +344,27 @@ def _unchanged(path: Path, rec) -> bool:
     return rec is None or (st.st_size == rec.get("size") and st.st_mtime_ns == rec.get("mtime_ns"))
 
 
+def _check_journal(out: Path, journal) -> None:
+    """Refuse a journal that is not one we wrote (damaged, or names files outside)."""
+    import re
+
+    ok = (isinstance(journal, dict) and {"stage", "files", "moves"} <= set(journal)
+          and isinstance(journal["stage"], str)
+          and re.fullmatch(r"stage-[0-9]+-[0-9a-f]+", journal["stage"]) is not None
+          and isinstance(journal["moves"], list) and isinstance(journal.get("remove", {}), dict)
+          and all(_inside(out, rel) is not None for rel in journal["moves"])
+          and all(_inside(out, rel) is not None for rel in journal.get("remove", {})))
+    if not ok:
+        state = out / STATE_DIR
+        raise OutputError(f"{str(state / 'publish.json')!r} is damaged or not bayespanel's; "
+                          f"nothing was changed: remove {str(state)!r} to start the output "
+                          "folder afresh")
+
+
 def _roll_forward(out: Path, journal: dict) -> None:
     """Finish a committed publish; idempotent, so a kill at any step is recovered by
     running it again."""
+    _check_journal(out, journal)
     state = out / STATE_DIR
     stage = state / journal["stage"]
     for rel in journal["moves"]:
@@ -340,7 +379,8 @@ def _roll_forward(out: Path, journal: dict) -> None:
                               f"{str(state)!r} edited?)")
     for rel, rec in journal.get("remove", {}).items():
         p = out / rel
-        if _unchanged(p, rec):
+        if _inside(out, rel) is not None and _unchanged(p, rec if isinstance(rec, dict)
+                                                        or rec is None else {}):
             p.unlink()
         parent = p.parent
         while parent != out and parent.is_dir() and not any(parent.iterdir()):
@@ -360,9 +400,6 @@ def _recover(out: Path) -> None:
     state = out / STATE_DIR
     journal = _read_json(state / "publish.json")
     if journal is not None:
-        if not isinstance(journal, dict) or not {"stage", "files", "moves"} <= set(journal):
-            raise OutputError(f"{str(state / 'publish.json')!r} is damaged; remove "
-                              f"{str(state)!r} to start the output folder afresh")
         _roll_forward(out, journal)
     for p in state.iterdir():
         if p.name.startswith("stage-") and p.is_dir():
@@ -519,6 +556,9 @@ class RunFolder:
         files = _order(str(p.relative_to(stage)) for p in stage.rglob("*") if p.is_file())
         for rel in files:
             dst = out / rel
+            if _inside(out, rel) is None:
+                raise OutputError(f"cannot publish {rel} in {str(out)!r}: its folder is a "
+                                  "link that leads out of the output folder")
             if dst.exists() and not dst.is_file():
                 raise OutputError(f"cannot publish {rel} in {str(out)!r}: a folder of that "
                                   "name is in the way")

@@ -411,3 +411,31 @@ def test_report_into_another_runs_folder_is_refused(folder, old_run, grunfeld_cs
     rc, _, err = _main(["report", str(folder), "--out", str(other)])
     assert rc == 2 and "holds the outputs of another run" in err
     assert _snapshot(other) == before
+
+
+# ---------------------------------------------------------------------- a shared folder
+def test_a_crafted_manifest_or_journal_never_touches_files_outside(folder, old_run, grunfeld_csv,
+                                                                   tmp_path):
+    """A results folder from someone else may carry any manifest or journal: names with
+    '..', absolute names and paths through a link that leaves the folder are not ours."""
+    outside = tmp_path / "outside.txt"
+    outside.write_text("keep me\n")
+    (tmp_path / "elsewhere").mkdir()
+    (tmp_path / "elsewhere/x.md").write_text("keep me too\n")
+    (folder / "tables/linked").symlink_to(tmp_path / "elsewhere")
+    manifest = json.loads((folder / ".bayespanel/manifest.json").read_text())
+    st = outside.stat()
+    for rel in ("../outside.txt", str(outside), "tables/linked/x.md"):
+        manifest["files"][rel] = {"size": st.st_size, "mtime_ns": st.st_mtime_ns}
+    (folder / ".bayespanel/manifest.json").write_text(json.dumps(manifest))
+    rc, _, err = _main(_args(grunfeld_csv, folder, *NEW))  # a rerun removes stale files
+    assert rc == 0, err
+    assert outside.read_text() == "keep me\n"
+    assert (tmp_path / "elsewhere/x.md").read_text() == "keep me too\n"
+    # a journal naming a file outside is refused before anything is moved or removed
+    journal = {"stage": "stage-1-ab", "files": {}, "moves": [],
+               "remove": {"../outside.txt": None}}
+    (folder / ".bayespanel/publish.json").write_text(json.dumps(journal))
+    rc, _, err = _main(["report", str(folder)])
+    assert rc == 1 and "damaged or not bayespanel's" in err
+    assert outside.read_text() == "keep me\n"
