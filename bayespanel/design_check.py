@@ -211,7 +211,8 @@ def _apply_difference(b, labels, kind, difference):
 
 def _no_contrast(x, labels):
     return (f"difference names {x!r}, which has no within and between parts in this model "
-            "(only covariates that vary within units do); terms are "
+            "(only covariates that vary within units and whose unit means differ between "
+            "units do); terms are "
             + ", ".join(map(repr, labels)))
 
 

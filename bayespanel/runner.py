@@ -593,7 +593,7 @@ class _Progress:
             return
         with self._lock:
             self._print(msg)
-            self._stage, self._began = msg.strip(), self._printed
+            self._stage, self._began = _stage_name(msg), self._printed
         if self._beat is None and self.heartbeat:
             self._beat = threading.Thread(target=_heartbeat, args=(weakref.ref(self),),
                                           name="bayespanel-progress", daemon=True)
@@ -609,6 +609,14 @@ class _Progress:
             if self._stage is not None and time.perf_counter() - self._printed >= self.heartbeat:
                 self._print(f"  ... still running: {self._stage} "
                             f"({time.perf_counter() - self._began:.0f} s)")
+
+
+def _stage_name(msg: str) -> str:
+    """A stage line shortened for the heartbeat: ``sampling pooled: 4 chains x ...`` ->
+    ``sampling pooled``; a closing parenthesis dropped (``LOO of x ... (PSIS, 816 points)``)."""
+    text = re.sub(r"\s*\([^()]*\)$", "", msg.strip())
+    head, sep, _ = text.partition(": ")
+    return head if sep and " " in head else text
 
 
 def _heartbeat(ref):
@@ -872,10 +880,20 @@ def _tests_stage(design, say):
                 "conclusion": ("within and between effects differ (p < 0.05): the random-"
                                "intercept assumption is doubtful" if reject else
                                "no evidence at the 5% level that within and between "
-                               "effects differ"),
+                               "effects differ") + _rank_note(t),
                 "message": t.message}))
     say("specification tests: Hausman, Mundlak")
     return tests
+
+
+def _rank_note(t) -> str:
+    """Said beside a test's reading when its df is below the number of terms compared (the
+    Hausman covariance difference is often not positive definite; Hausman 1978)."""
+    q = len(t.terms or [])
+    if not q or t.df >= q:
+        return ""
+    return (f" (on {t.df} of {q} df: the difference of the covariance matrices is not "
+            "positive definite, so its generalised inverse was used)")
 
 
 def _extra_prior_keys(settings) -> set:

@@ -232,3 +232,36 @@ def test_glm_mundlak_test_is_skipped_with_its_reason_and_nothing_fails(wage_pane
     logit = sm.Logit(wage_panel["union"].to_numpy(), x).fit(disp=0)
     got = [c["estimate"] for c in res["reference"][0]["coefficients"]]
     np.testing.assert_allclose(got, logit.params, rtol=1e-7)
+
+
+def test_hausman_rank_and_the_units_used_on_jobtraining(tmp_path):
+    from linearmodels.datasets import jobtraining
+    from linearmodels.panel import PanelOLS, RandomEffects
+
+    from bayespanel.runner import Settings, run
+
+    df = jobtraining.load()
+    s = Settings(unit="fcode", time="year", formula="lscrap ~ d88 + d89 + grant + grant_1",
+                 models=(), reference=("within",))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = run(s, df=df, out=tmp_path, quiet=True)
+    hausman = next(t for t in res["tests"] if t["name"] == "hausman")
+    # outside check: the Hausman statistic from linearmodels' PanelOLS and RandomEffects
+    # (classical covariances; 54 firms with lscrap in all three years, a balanced sample),
+    # with the generalised inverse on the positive part of V_fe - V_re (Hausman 1978)
+    d = df.dropna(subset=["lscrap"]).set_index(["fcode", "year"])
+    x = d[["d88", "d89", "grant", "grant_1"]]
+    fe = PanelOLS(d["lscrap"], x, entity_effects=True).fit()
+    re = RandomEffects(d["lscrap"], x.assign(const=1.0)).fit()
+    cols = list(x.columns)
+    b = (fe.params[cols] - re.params[cols]).to_numpy()
+    lam, vec = np.linalg.eigh((fe.cov.loc[cols, cols] - re.cov.loc[cols, cols]).to_numpy())
+    pos = lam > 1e-10 * np.abs(lam).max()
+    stat = float(np.sum((vec.T @ b)[pos] ** 2 / lam[pos]))
+    assert hausman["df"] == pos.sum() < len(cols)
+    assert hausman["statistic"] == pytest.approx(stat, rel=1e-5)
+    assert f"on {int(pos.sum())} of 4 df" in hausman["conclusion"]  # said beside the reading
+    # the first screen counts the units of the estimation sample (54 of the 157 firms)
+    html = (tmp_path / "report.html").read_text("utf-8")
+    assert "<b>54</b><small>units used (fcode)</small>" in html

@@ -151,8 +151,10 @@ def _pct(prob) -> str:
 def _overview(r) -> Safe:
     d = r["data"]
     s = d["structure"]
+    # the estimation sample, which every fit uses (the table may hold more units, e.g.
+    # 157 firms of which 54 have complete rows; "The data" gives both)
     facts = [
-        (s["n_units"], f"units ({d['unit']})"),
+        (d["sample"]["n_units"], f"units used ({d['unit']})"),
         (s["n_occasions"], f"occasions ({d['time']})"),
         (d["sample"]["n_rows"], "rows used"),
         (len(r["models"]), "Bayesian models"),
