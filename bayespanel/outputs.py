@@ -182,7 +182,11 @@ class _Lock:
 
         deadline = time.monotonic() + wait
         while True:
-            fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o666)
+            try:
+                fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o666)
+            except OSError as exc:  # a read-only folder, no permission
+                raise OutputError(f"cannot write into {str(self.path.parent.parent)!r}: "
+                                  f"{exc.strerror or exc}") from None
             try:
                 fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
             except OSError as exc:

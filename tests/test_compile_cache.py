@@ -11,6 +11,9 @@ Verbeek (1998, linearmodels.datasets) with the compile cache in a private folder
    ``union`` puts the posterior mean there, which the data alone put near 0.08);
 4. a different prior *family* on ``union`` (another graph): not found, compiled, stored;
 5. one more covariate (another graph): not found, and ``married`` gets a coefficient.
+
+The stored entry holds none of the model's data (the statistics and prior parameters
+are pushed in before every use).
 """
 
 import json
@@ -19,6 +22,7 @@ import subprocess
 import sys
 import textwrap
 
+import numpy as np
 import pytest
 
 SCRIPT = textwrap.dedent("""
@@ -52,7 +56,19 @@ def test_cache_entries_follow_the_graph_and_the_data(tmp_path):
     base = "lwage ~ exper + union"
     first = _run(tmp_path, base)
     assert first["cache"] == "miss"
-    assert len(list(tmp_path.glob("*.pkl"))) == 1
+    entries = list(tmp_path.glob("*.pkl"))
+    assert len(entries) == 1
+    # the entry holds no data: not the model's cross-products (nor any statistic)
+    from linearmodels.datasets import wage_panel
+
+    import bayespanel as bp
+
+    m = bp.models.RandomIntercept(bp.Panel(wage_panel.load(), "nr", "year"), base)
+    stored = entries[0].read_bytes()
+    for name, value in m._data_values().items():
+        value = np.asarray(value, dtype=float)
+        if value.size > 1 and np.any(value != 0):
+            assert value.tobytes() not in stored, name
     again = _run(tmp_path, base)
     assert again["cache"] == "hit"
     assert again["draws"] == first["draws"]  # the stored function computes the same numbers

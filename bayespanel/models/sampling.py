@@ -2,11 +2,14 @@
 
 Both run the No-U-Turn sampler (Hoffman and Gelman 2014). The marginal models have few
 parameters, so they adapt a dense mass matrix (PyMC's ``jitter+adapt_full``, nutpie's
-low-rank adaptation); latent-intercept models, with one parameter per unit, a diagonal one. Measured on this project's models (bench/bench_models.py, docs/performance.md):
+low-rank adaptation); latent-intercept models, with one parameter per unit, a diagonal
+one. Measured on this project's models (bench/bench_models.py, bench/bench_speed.py,
+docs/bayesian-models.md):
 
 * the marginal likelihood costs the same per gradient for any number of rows, and PyMC's
-  own sampler with its cached C compilation fits it end to end in a few seconds, while
-  nutpie first spends several seconds compiling through numba on every new model;
+  own sampler, whose compiled log density is cached on disk (by PyTensor and by
+  :func:`_pymc_logp`), fits it end to end in a few seconds, while nutpie first spends
+  several seconds compiling through numba in every new process;
 * a row-level (latent-intercept) likelihood grows with the rows, and there nutpie's faster
   gradient and adaptation outweigh its compile time beyond :data:`NUTPIE_ROWS` rows.
 
@@ -24,7 +27,7 @@ its scale, and that takes longer the more rows there are. With ``start="mode"`` 
 default for marginal models) the sampler starts where the posterior is: the posterior
 mode is found by Newton's method on the model's own log density (exact gradient, Hessian
 by central differences of the gradient), the Laplace approximation there (the inverse
-of the negative Hessian, Laplace 1774; Tierney and Kadane 1986) is the initial mass
+of the negative Hessian; Tierney and Kadane 1986) is the initial mass
 matrix (PyMC: the starting covariance of its adapted dense or diagonal metric, counted
 as :data:`START_WEIGHT` draws; nutpie adapts its own metric, which cannot be seeded), and
 each chain starts at the mode plus a draw from the Laplace normal scaled by
@@ -410,12 +413,26 @@ def _cache_load(path, m):
     return fn
 
 
+#: models whose data hold more numbers than this are not cached (rows in the graph)
+_CACHE_MAX_DATA = 1_000_000
+
+
 def _cache_save(path, fn):
+    """Store ``fn`` without the model's data: the values of its shared inputs are zeros
+    while it is pickled (they are given back before every use, :func:`_push_data`)."""
     import pickle
     import tempfile
 
+    f = fn._pytensor_function
+    held = [(c, c.storage[0]) for inp, c in zip(f.maker.inputs, f.input_storage)
+            if inp.shared and inp.variable.name != "__weights"
+            and isinstance(c.storage[0], np.ndarray)]
+    if sum(v.size for _, v in held) > _CACHE_MAX_DATA:
+        return
     tmp = None
     try:
+        for c, v in held:
+            c.storage[0] = np.zeros_like(v)
         path.parent.mkdir(parents=True, exist_ok=True)
         with tempfile.NamedTemporaryFile(dir=path.parent, delete=False, suffix=".tmp") as fh:
             tmp = fh.name
@@ -424,6 +441,9 @@ def _cache_save(path, fn):
     except Exception:  # noqa: BLE001 (no cache directory: the run goes on without one)
         if tmp is not None and os.path.exists(tmp):
             os.unlink(tmp)
+    finally:
+        for c, v in held:
+            c.storage[0] = v
 
 
 def _push_data(fn, m):
