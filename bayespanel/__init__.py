@@ -46,9 +46,9 @@ _LAZY = {
     "FixedEffects": ("models", "FixedEffects"),
     "Prior": ("models", "Prior"),
     "Posterior": ("posterior", "Posterior"),
-    "compare": ("compare", "compare"),
-    "coef_table": ("compare", "coef_table"),
-    "design_check": ("design_check", "design_check"),
+    "compare": ("comparison", "compare"),
+    "coef_table": ("comparison", "coef_table"),
+    "design_check": ("recovery", "design_check"),
 }
 
 __all__ = [

@@ -508,7 +508,7 @@ def _family_args(p):
 
 
 def cmd_design_check(args) -> int:
-    from .design_check import run_command
+    from .recovery import run_command
 
     return run_command(args)
 

@@ -1294,7 +1294,7 @@ def _comparison_large(settings, design, posts, entries, say):
 def _comparison_stage(settings, design, posts, ref_fits, entries, say, failed=None):
     """LOO at the chosen level for every Bayesian model and reference fit (a model whose
     LOO fails is left out of the table and recorded in ``failed``)."""
-    from .compare import compare, equivalence_classes
+    from .comparison import compare, equivalence_classes
 
     if getattr(design, "out_of_core", False):
         return _comparison_large(settings, design, posts, entries, say)

@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 
 import bayespanel as bp
-from bayespanel.compare import compare
+from bayespanel.comparison import compare
 from bayespanel.models import FixedEffects, RandomIntercept
 
 try:

@@ -36,7 +36,7 @@ def test_module_entry_point_demo(tmp_path):
                           "--tune", "150", "--chains", "2", "--out", str(tmp_path), "--quiet"],
                          capture_output=True, text=True, check=True).stdout
     assert "36 units" in out and "satisfaction" in out
-    assert "true 1.500" in out and "true 4.000" in out  # within and between staffing effects
+    assert "true 1.50" in out and "true 4.00" in out  # within and between staffing effects (3 significant digits)
     assert f"report: {(tmp_path / 'report.html').resolve()}" in out
     assert "LOO comparison (occasion level" in out
     import pandas as pd

@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 
 import bayespanel as bp
-from bayespanel.compare import COMPARE_COLUMNS, coef_table, compare
+from bayespanel.comparison import COMPARE_COLUMNS, coef_table, compare
 from bayespanel.errors import SpecificationError
 
 KW = dict(draws=300, tune=300, chains=2, seed=9, progress=False, cores=1)

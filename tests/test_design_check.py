@@ -19,7 +19,7 @@ import pytest
 from scipy import stats
 
 import bayespanel as bp
-from bayespanel.design_check import ORACLE, REFERENCE, BAYES, design_check, design_check_section
+from bayespanel.recovery import ORACLE, REFERENCE, BAYES, design_check, design_check_section
 from bayespanel.errors import SpecificationError
 
 FORMULA = "invest ~ value + capital"

@@ -259,6 +259,8 @@ def saved_posterior(panel, tmp_path_factory):
 def test_loading_a_posterior_never_unpickles(saved_posterior, monkeypatch, grunfeld):
     from bayespanel.posterior import Posterior
 
+    import statsmodels.formula.api as smf  # imported before pickle is patched below
+
     post, path = saved_posterior
 
     def forbidden(*a, **k):
@@ -269,8 +271,6 @@ def test_loading_a_posterior_never_unpickles(saved_posterior, monkeypatch, grunf
     back = Posterior.load(path)
     pd.testing.assert_frame_equal(back.summary(), post.summary())
     # outside check: the posterior mean sits near statsmodels MixedLM (REML) on Grunfeld
-    import statsmodels.formula.api as smf
-
     monkeypatch.undo()
     ml = smf.mixedlm("invest ~ value + capital", grunfeld, groups="firm").fit(reml=True)
     assert abs(back.coef["value"] - ml.params["value"]) < 5 * back.sd["value"]
@@ -308,4 +308,47 @@ def test_the_package_source_has_no_unpickling_and_no_eval():
                          r"os\.system\(|pd\.read_pickle|np\.load\(", re.M)
     hits = [f"{p.relative_to(root)}: {m.group(0).strip()}" for p in root.rglob("*.py")
             for m in pattern.finditer(p.read_text("utf-8"))]
-    assert hits == []
+    # The one exception: the compile cache stores compiled log densities (code, as
+    # PyTensor's own compile folder does) and reads them only from a folder and files of
+    # this user that nobody else can write (test_a_cache_entry_others_could_write_is_not_read).
+    assert hits == ["models/sampling.py: import pickle"] * 2
+    cache = (root / "models" / "sampling.py").read_text("utf-8")
+    assert "if not (_private(path.parent) and _private(path)):" in cache
+
+
+def test_a_cache_entry_others_could_write_is_not_read(tmp_path, monkeypatch):
+    """An entry in a folder or file writable by the group or others, or behind a link, is
+    never unpickled: a crafted entry that would write a file when loaded does nothing."""
+    import os
+    import pickle
+
+    from bayespanel.models import sampling
+
+    if not hasattr(os, "getuid"):
+        pytest.skip("no file owners on this system")
+    marker = tmp_path / "ran"
+
+    class Payload:
+        def __reduce__(self):
+            return (Path.write_text, (marker, "code ran"))
+
+    folder = tmp_path / "cache"
+    folder.mkdir(mode=0o700)
+    os.chmod(folder, 0o700)
+    entry = folder / "entry.pkl"
+    entry.write_bytes(pickle.dumps(Payload()))
+    for folder_mode, entry_mode in [(0o770, 0o600), (0o707, 0o600), (0o700, 0o660),
+                                    (0o700, 0o606)]:
+        os.chmod(folder, folder_mode)
+        os.chmod(entry, entry_mode)
+        assert sampling._cache_load(entry, None) is None
+        assert not marker.exists(), (oct(folder_mode), oct(entry_mode))
+    os.chmod(folder, 0o700)
+    link = folder / "link.pkl"
+    link.symlink_to(entry)
+    os.chmod(entry, 0o600)
+    assert sampling._cache_load(link, None) is None and not marker.exists()
+    # the control: the same entry, private, is read (and so the check above is what held)
+    with pytest.raises(Exception):
+        sampling._cache_load(entry, None)  # unpickled: the payload ran, then m=None fails
+    assert marker.exists()

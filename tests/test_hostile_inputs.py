@@ -146,7 +146,7 @@ def test_design_check_occasion_and_sensitivity_figures_render_dollars(dollar_run
     """Figures returned to the caller save to PNG with ``$`` in every label."""
     import matplotlib.pyplot as plt
 
-    from bayespanel.design_check import design_check
+    from bayespanel.recovery import design_check
     from bayespanel.occasions import occasion_effects_figure
     from bayespanel.posterior import Posterior
     from bayespanel.sensitivity import sensitivity_section

@@ -22,7 +22,7 @@ import pytest
 from scipy import integrate, stats
 
 import bayespanel as bp
-from bayespanel.compare import compare
+from bayespanel.comparison import compare
 from bayespanel.errors import SamplingWarning, SpecificationError
 from bayespanel.posterior import Posterior
 

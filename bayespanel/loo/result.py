@@ -46,7 +46,7 @@ class LOOResult:
     family : str or None
         The outcome family whose terms were scored (``"gaussian"`` for the marginal and
         reference models, ``"poisson"``, ``"bernoulli"``, ... for latent-effect models);
-        :func:`bayespanel.compare.compare` refuses to rank log probabilities of a discrete
+        :func:`bayespanel.compare` refuses to rank log probabilities of a discrete
         outcome against log densities of a continuous one. ``None`` when unknown.
     n_points : int, optional
         Number of points the estimate is about, when ``pointwise`` holds only some of them

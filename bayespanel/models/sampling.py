@@ -398,9 +398,29 @@ def _cache_path(m, point=None):
     return (Path(where) if where else Path(cfg.base_compiledir) / "bayespanel") / f"{key}.pkl"
 
 
+def _private(path):
+    """True when ``path`` (an entry or the cache folder) belongs to this user and nobody
+    else can write to it. The cache is the one place bayespanel unpickles: an entry is
+    code, with the same trust as PyTensor's compiled modules in its compile folder, so it
+    is read only from a folder and a file that no other account could have written (a
+    shared BAYESPANEL_COMPILE_CACHE such as /tmp itself is never read or written)."""
+    import stat
+
+    if not hasattr(os, "getuid"):  # no owners to check (Windows): no cache
+        return False
+    try:
+        st = os.lstat(path)
+    except OSError:
+        return False
+    return (st.st_uid == os.getuid() and not stat.S_ISLNK(st.st_mode)
+            and not st.st_mode & (stat.S_IWGRP | stat.S_IWOTH))
+
+
 def _cache_load(path, m):
     import pickle
 
+    if not (_private(path.parent) and _private(path)):
+        return None
     try:
         with open(path, "rb") as fh:
             fn = pickle.load(fh)
@@ -433,7 +453,9 @@ def _cache_save(path, fn):
     try:
         for c, v in held:
             c.storage[0] = np.zeros_like(v)
-        path.parent.mkdir(parents=True, exist_ok=True)
+        path.parent.mkdir(mode=0o700, parents=True, exist_ok=True)
+        if not _private(path.parent):
+            return
         with tempfile.NamedTemporaryFile(dir=path.parent, delete=False, suffix=".tmp") as fh:
             tmp = fh.name
             pickle.dump(fn, fh, protocol=pickle.HIGHEST_PROTOCOL)
