@@ -1,0 +1,1 @@
+"""Kept outputs that structural changes must reproduce (see compare_results)."""
