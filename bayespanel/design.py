@@ -20,6 +20,7 @@ from . import suffstats as _ss
 from .errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
                      SpecificationError, choices_error)
 from .formula import dependency_message, outcome_values, safe_context, screen
+from .terms import BETWEEN, UNIT_MEAN, WITHIN, Term, labels as term_labels, occasion, parse
 
 __all__ = ["Design", "DesignSpec", "KINDS", "group_means", "kind_transform", "check_stats",
            "check_terms", "check_flag", "refuse_complex", "occasion_label"]
@@ -51,7 +52,7 @@ def occasion_label(o) -> str:
     if isinstance(o, (np.datetime64, pd.Timestamp)) or hasattr(o, "isoformat"):
         t = pd.Timestamp(o)
         o = t.date().isoformat() if t == t.normalize() else t.isoformat()
-    return f"occasion[{_plain(o)}]"
+    return occasion(_plain(o)).label
 
 
 def check_flag(option: str, value) -> bool:
@@ -111,43 +112,33 @@ def kind_transform(terms, tv, tb, kind):
     """The columns of a design kind as linear maps of a row and of its unit mean.
 
     With ``z = [X, y]`` (``p = k + 1``), every column of ``"within"``, ``"mundlak"`` and
-    ``"within_between"`` is ``a' z_it + b' zbar_i``; returns ``(A, B, labels)`` with one
-    row of ``A`` and ``B`` per column and a last row that keeps ``y``. ``tv`` are the
-    indices of the time-varying terms, ``tb`` those whose unit means enter (``"mundlak"``,
-    ``"within_between"``; see ``Design._with_between_part``). Labels as in
+    ``"within_between"`` is ``a' z_it + b' zbar_i``; returns ``(A, B, terms)`` with one
+    row of ``A`` and ``B`` and one :class:`~bayespanel.terms.Term` per column, and a last
+    row that keeps ``y``. ``terms`` are the labels (or terms) of the columns of ``X``;
+    ``tv`` the indices of the time-varying ones, ``tb`` those whose unit means enter
+    (``"mundlak"``, ``"within_between"``; see ``Design._with_between_part``). Labels as in
     DEVELOPERS.md: ``x (within)``, ``x (between)``, ``x (unit mean)``.
     """
     k = len(terms)
+    cols = [parse(t) for t in terms]
     eye = np.eye(k + 1)
     zero = np.zeros(k + 1)
     if kind == "within":
-        rows = [(eye[i], -eye[i], terms[i]) for i in tv]
+        rows = [(eye[i], -eye[i], cols[i]) for i in tv]
     elif kind == "mundlak":
-        rows = ([(eye[j], zero, terms[j]) for j in range(k)]
-                + [(zero, eye[i], _label_mean(terms[i])) for i in tb])
+        rows = ([(eye[j], zero, cols[j]) for j in range(k)]
+                + [(zero, eye[i], cols[i].with_part(UNIT_MEAN)) for i in tb])
     elif kind == "within_between":
-        rows = [(eye[i], zero, t) for i, t in enumerate(terms) if t == "Intercept"]
-        rows += [(eye[i], -eye[i], _label_within(terms[i])) for i in tv]
-        rows += [(zero, eye[i], _label_between(terms[i])) for i in tb]
-        rows += [(eye[i], zero, t) for i, t in enumerate(terms)
-                 if t != "Intercept" and i not in tv]
+        rows = [(eye[i], zero, t) for i, t in enumerate(cols) if t == Term("Intercept")]
+        rows += [(eye[i], -eye[i], cols[i].with_part(WITHIN)) for i in tv]
+        rows += [(zero, eye[i], cols[i].with_part(BETWEEN)) for i in tb]
+        rows += [(eye[i], zero, t) for i, t in enumerate(cols)
+                 if t != Term("Intercept") and i not in tv]
     else:
         raise ValueError(f"kind {kind!r} uses the columns of X as they are")
     A = np.vstack([r[0] for r in rows] + [eye[k]])
     B = np.vstack([r[1] for r in rows] + [zero])
     return A, B, [r[2] for r in rows]
-
-
-def _label_within(t: str) -> str:
-    return f"{t} (within)"
-
-
-def _label_between(t: str) -> str:
-    return f"{t} (between)"
-
-
-def _label_mean(t: str) -> str:
-    return f"{t} (unit mean)"
 
 
 class Design:
@@ -279,15 +270,21 @@ class Design:
 
     def labels(self, kind: str) -> list[str]:
         """Column labels of ``kind``, as ``matrices(kind)[1]``, without building the rows."""
+        return term_labels(self.term_parts(kind))
+
+    def term_parts(self, kind: str) -> list[Term]:
+        """The columns of ``kind`` as :class:`~bayespanel.terms.Term` (covariate, part),
+        in the order of :meth:`labels`."""
         if kind not in KINDS:
             raise choices_error("kind", kind, KINDS)
         if kind in ("pooled", "random", "between"):
-            return list(self.terms)
-        return self._transform(kind)[2]
+            return [parse(t) for t in self.terms]
+        return self._transform(kind, structured=True)[2]
 
-    def _transform(self, kind):
+    def _transform(self, kind, structured=False):
         """``(A, B, labels)``: the rows of ``kind`` are ``A z_it + B zbar_i`` with
-        ``z = [X, y]`` (the last row of ``A`` and ``B`` keeps ``y``)."""
+        ``z = [X, y]`` (the last row of ``A`` and ``B`` keeps ``y``); with ``structured``
+        the columns as terms instead of labels."""
         tv = [i for i, t in enumerate(self.terms) if self.varies_within[t]]
         if not tv:
             raise EstimationError(
@@ -295,7 +292,8 @@ class Design:
                 f"{kind.replace('_', '-')} model has no within part to estimate"
             )
         tb = tv if kind == "within" else self._with_between_part(tv)
-        return kind_transform(self.terms, tv, tb, kind)
+        A, B, terms = kind_transform(self.terms, tv, tb, kind)
+        return A, B, (terms if structured else term_labels(terms))
 
     def suffstats(self, kind: str = "random") -> _ss.SuffStats:
         """Sufficient statistics of ``[M, y]`` with ``M`` the columns of ``kind``.
@@ -359,7 +357,7 @@ class Design:
             scale = max(float(np.abs(um[:, i]).max()), 1.0)
             if np.ptp(um[:, i]) > _VARY_TOL * scale:
                 keep.append(i)
-        occ = [i for i in keep if self.terms[i].startswith("occasion[")]
+        occ = [i for i in keep if parse(self.terms[i]).is_occasion]
         if not occ:
             return keep
         base = [i for i in range(self.k) if i not in occ and (i not in tv or i in keep)]

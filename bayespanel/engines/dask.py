@@ -759,6 +759,7 @@ class DaskDesign:
     _transform = Design._transform
     _with_between_part = Design._with_between_part
     labels = Design.labels
+    term_parts = Design.term_parts
     suffstats = Design.suffstats
     model_suffstats = Design.model_suffstats
 
