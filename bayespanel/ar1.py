@@ -54,7 +54,6 @@ import numbers
 from dataclasses import dataclass, field
 
 import numpy as np
-import pandas as pd
 
 from .errors import PanelDataError
 
@@ -82,10 +81,11 @@ def occasion_times(values, column: str = "time") -> np.ndarray:
             f"differences are the spacing of the occasions (for example years, or "
             f"occasions numbered 0, 1, 2, ...), or an ordered categorical")
 
-    if isinstance(values, (pd.Series, pd.Index)) and isinstance(values.dtype, pd.CategoricalDtype):
-        if not values.dtype.ordered:
+    dtype = getattr(values, "dtype", None)
+    if getattr(dtype, "name", None) == "category":        # pandas categorical, duck-typed
+        if not dtype.ordered:
             raise refuse("is an unordered categorical")
-        codes = np.asarray(values.cat.codes if isinstance(values, pd.Series) else values.codes)
+        codes = np.asarray(values.cat.codes if hasattr(values, "cat") else values.codes)
         if np.any(codes < 0):
             raise refuse("has missing values")
         return codes.astype(float)

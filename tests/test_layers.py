@@ -33,10 +33,11 @@ ROOT = Path(__file__).resolve().parents[1] / PACKAGE
 # leading "bayespanel.") starts with; "" is the package itself (its __init__, the public
 # face). A new module that matches no entry fails test_every_module_has_a_layer.
 LAYERS: list[tuple[str, tuple[str, ...]]] = [
-    # errors, the sufficient statistics, the Gaussian densities, linear algebra, budgets,
-    # the output folder and term labels: numpy and scipy at most, nothing of the package above them
+    # errors, the sufficient statistics (iid and AR(1)), the Gaussian densities, linear
+    # algebra, budgets, the output folder and term labels: numpy and scipy at most, nothing
+    # of the package above them
     ("core", ("errors", "suffstats", "models.gaussian", "reference._linalg", "budget",
-              "outputs", "terms")),
+              "outputs", "terms", "ar1")),
     ("data", ("panel", "formula", "io", "design", "engines", "datasets")),
     ("reference", ("reference",)),
     ("bayes", ("models", "posterior")),
