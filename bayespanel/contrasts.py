@@ -35,6 +35,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import SpecificationError
+from .terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
 
 __all__ = ["ContrastResult", "contrast_draws", "contrast_matrix", "contrast_covariates",
            "within_between_contrasts", "specification_tests"]
@@ -64,10 +65,10 @@ def contrast_matrix(kind: str, labels, time_varying):
     L = np.zeros((len(time_varying), len(labels)))
     for r, t in enumerate(time_varying):
         if kind == "within_between":
-            names = (f"{t} (between)", f"{t} (within)")
+            names = (part_label(t, BETWEEN), part_label(t, WITHIN))
             signs = (1.0, -1.0)
         else:
-            names, signs = (f"{t} (unit mean)",), (1.0,)
+            names, signs = (part_label(t, UNIT_MEAN),), (1.0,)
         for name, s in zip(names, signs):
             if name not in pos:
                 raise SpecificationError(
@@ -84,11 +85,10 @@ def contrast_covariates(kind: str, labels) -> list:
     :func:`contrast_matrix`."""
     if kind not in CONTRAST_KINDS:
         contrast_matrix(kind, labels, [])  # raises, saying which model to fit instead
-    tag = " (between)" if kind == "within_between" else " (unit mean)"
-    out = [lab[:-len(tag)] for lab in labels if lab.endswith(tag)]
-    if kind == "within_between":
-        out = [t for t in out if f"{t} (within)" in labels]
-    return out
+    part = BETWEEN if kind == "within_between" else UNIT_MEAN
+    terms = [parse(lab) for lab in labels]
+    return [t.column.label for t in terms if t.part == part
+            and (kind != "within_between" or t.with_part(WITHIN) in terms)]
 
 
 def contrast_draws(kind, labels, time_varying, coef) -> np.ndarray:
@@ -244,7 +244,7 @@ def specification_tests(M, y, codes, labels, kind) -> dict:
     if not tb:  # nothing to compare (see within_between_contrasts)
         return {}
     Mm = np.column_stack([X, _unit_means(X[:, [terms.index(t) for t in tb]], codes)[codes]])
-    mres = fit_arrays("mundlak", Mm, y, codes, terms + [f"{t} (unit mean)" for t in tb],
+    mres = fit_arrays("mundlak", Mm, y, codes, terms + [part_label(t, UNIT_MEAN) for t in tb],
                       method="swamy-arora", cov="cluster")
     return {"Hausman (classical)": hausman(fe, re),
             "Mundlak (cluster-robust)": mundlak_test(mres)}

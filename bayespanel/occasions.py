@@ -19,23 +19,19 @@ References
 
 from __future__ import annotations
 
-import re
-
 import numpy as np
 import pandas as pd
 
 from .errors import SpecificationError
+from .terms import AS_IS, BETWEEN, UNIT_MEAN, WITHIN, parse
 
 __all__ = ["occasion_effects", "occasion_effects_figure", "true_occasion_coef"]
 
-_LABEL = re.compile(r"^occasion\[(?P<occ>.*)\](?: \((?P<part>within|between|unit mean)\))?$")
-
 
 def _parse(label):
-    m = _LABEL.match(str(label))
-    if not m:
-        return None
-    return m.group("occ"), m.group("part") or "effect"
+    """``(occasion, part)`` of an occasion term's label, None for any other term."""
+    t = parse(label)
+    return (t.base, t.part) if t.is_occasion else None
 
 
 def true_occasion_coef(label, truth):
@@ -52,8 +48,8 @@ def true_occasion_coef(label, truth):
     if p is None:
         return None
     occ, part = p
-    return 0.0 if part == "unit mean" else float(
-        (truth.get("occasion") or {}).get(f"occasion[{occ}]", 0.0))
+    return 0.0 if part == UNIT_MEAN else float(
+        (truth.get("occasion") or {}).get(parse(label).column.label, 0.0))
 
 
 def occasion_effects(fit, prob: float = 0.95, part: str = "effect") -> pd.DataFrame:
@@ -83,16 +79,16 @@ def occasion_effects(fit, prob: float = 0.95, part: str = "effect") -> pd.DataFr
     coef = pd.Series(fit.coef)
     ci = fit.interval(prob)
     kinds = {p for lab in coef.index if (p := _parse(lab))}
-    has_within = any(k == "within" for _, k in kinds)
-    want = ("within" if has_within else "effect") if part == "effect" else None
+    has_within = any(k == WITHIN for _, k in kinds)
+    want = (WITHIN if has_within else AS_IS) if part == "effect" else None
     rows = []
     for lab in coef.index:
         p = _parse(lab)
         if p is None:
             continue
         occ, k = p
-        if (part == "effect" and k == want) or (part == "between" and k in ("between",
-                                                                              "unit mean")):
+        if (part == "effect" and k == want) or (part == "between" and k in (BETWEEN,
+                                                                              UNIT_MEAN)):
             rows.append({"occasion": occ, "term": lab, "estimate": float(coef[lab]),
                          "lower": float(ci.loc[lab, "lower"]),
                          "upper": float(ci.loc[lab, "upper"])})

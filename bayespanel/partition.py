@@ -41,6 +41,7 @@ import pandas as pd
 
 from .design import group_means
 from .errors import SpecificationError, choices_error
+from .terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
 
 __all__ = ["PartitionResult", "coefficient_parts", "partition_draws", "variance_partition",
            "reference_partition", "summarise_draws", "design_columns", "PARTITION_KINDS"]
@@ -79,33 +80,33 @@ def design_columns(M, codes, labels, kind):
     M = np.asarray(M, dtype=float)
     codes = np.asarray(codes, dtype=np.int64)
     labels = list(labels)
-    pos = {lab: j for j, lab in enumerate(labels)}
+    parts = [parse(lab) for lab in labels]
+    pos = {t: j for j, t in enumerate(parts)}
     if kind == "within_between":
         terms, cols, tv = [], [], []
-        for lab in labels:
-            if lab.endswith(" (between)") and f"{lab[:-len(' (between)')]} (within)" in pos:
+        for lab, t in zip(labels, parts):
+            if t.part == BETWEEN and t.with_part(WITHIN) in pos:
                 continue
-            if lab.endswith(" (within)"):
-                t = lab[: -len(" (within)")]
+            if t.part == WITHIN:
                 # a term without a between column (an occasion indicator in a balanced
                 # panel) is rebuilt from its within part: its unit mean is not among the
                 # model's columns, so the model gives it no between part
-                between = pos.get(f"{t} (between)")
-                cols.append(M[:, pos[lab]] + (M[:, between] if between is not None else 0.0))
-                tv.append(t)
+                between = pos.get(t.with_part(BETWEEN))
+                cols.append(M[:, pos[t]] + (M[:, between] if between is not None else 0.0))
+                lab = t.column.label
+                tv.append(lab)
             else:
-                t = lab
-                cols.append(M[:, pos[lab]])
-            terms.append(t)
+                cols.append(M[:, pos[t]])
+            terms.append(lab)
         return np.column_stack(cols), terms, tv
     if kind == "mundlak":
-        keep = [lab for lab in labels if not lab.endswith(" (unit mean)")]
-        X = M[:, [pos[t] for t in keep]]
+        keep = [j for j, t in enumerate(parts) if t.part != UNIT_MEAN]
+        X = M[:, keep]
+        keep = [labels[j] for j in keep]
         # every term that varies within units, with or without a unit-mean column (an
         # occasion indicator in a balanced panel has none)
         varying = set(_varies_within(X, codes, keep))
-        varying |= {lab[: -len(" (unit mean)")] for lab in labels
-                    if lab.endswith(" (unit mean)")}
+        varying |= {t.column.label for t in parts if t.part == UNIT_MEAN}
         return X, keep, [t for t in keep if t in varying]
     return M, labels, _varies_within(M, codes, labels)
 
@@ -162,13 +163,13 @@ def coefficient_parts(terms, time_varying, kind, labels, coef):
     # coefficient of its own: the hybrid model's between part leaves it out (0) and
     # Mundlak's carries its one coefficient
     if kind == "within_between":
-        g_w = [col(f"{t} (within)") for t in tv]
-        g_b = [col(f"{t} (between)") if f"{t} (between)" in pos else zero for t in tv] \
-            + [col(t) for t in tc]
+        g_w = [col(part_label(t, WITHIN)) for t in tv]
+        g_b = [col(part_label(t, BETWEEN)) if part_label(t, BETWEEN) in pos else zero
+               for t in tv] + [col(t) for t in tc]
     elif kind == "mundlak":
         g_w = [col(t) for t in tv]
-        g_b = [col(t) + (col(f"{t} (unit mean)") if f"{t} (unit mean)" in pos else zero)
-               for t in tv] + [col(t) for t in tc]
+        g_b = [col(t) + (col(part_label(t, UNIT_MEAN)) if part_label(t, UNIT_MEAN) in pos
+                         else zero) for t in tv] + [col(t) for t in tc]
     elif kind == "within":
         g_w = [col(t) if t in pos else zero for t in tv]
         g_b = None

@@ -47,6 +47,7 @@ from scipy import stats as _st
 from . import suffstats as _ss
 from .errors import EstimationError, SamplingWarning, SpecificationError, choices_error
 from .occasions import true_occasion_coef
+from .terms import BETWEEN, CONTRAST, UNIT_MEAN, WITHIN, parse, part_label
 
 __all__ = ["design_check", "DesignCheckResult", "design_check_section", "REFERENCE_METHODS"]
 
@@ -55,7 +56,6 @@ REFERENCE_METHODS = ("reml", "ml", "swamy-arora")
 _REFERENCE_OF = {"pooled": "pooled", "random": "random", "within_between": "within_between",
                  "mundlak": "mundlak", "within": "within"}
 BAYES, REFERENCE, ORACLE = "Bayesian", "reference", "GLS, known variances"
-_CONTRAST = " (between - within)"
 
 
 # ---------------------------------------------------------------------------- inputs
@@ -165,16 +165,17 @@ def _coef_from_components(truth, labels, kind):
     const = dict(truth.get("constant", {}))
     out = {}
     for lab in labels:
+        t = parse(lab)
         if lab == "Intercept":
             out[lab] = truth.get("intercept", 0.0)
         elif (occ := true_occasion_coef(lab, truth)) is not None:
-            out[lab] = occ  # before the within/between suffixes: occasion terms carry them
-        elif lab.endswith(" (within)"):
-            out[lab] = w.get(lab[:-9])
-        elif lab.endswith(" (between)"):
-            out[lab] = bt.get(lab[:-10])
-        elif lab.endswith(" (unit mean)"):
-            x = lab[:-12]
+            out[lab] = occ  # before the within/between parts: occasion terms carry them
+        elif t.part == WITHIN:
+            out[lab] = w.get(t.base)
+        elif t.part == BETWEEN:
+            out[lab] = bt.get(t.base)
+        elif t.part == UNIT_MEAN:
+            x = t.base
             out[lab] = bt[x] - w[x] if x in bt and x in w else None
         elif lab in w:
             if kind in ("random", "pooled") and not np.isclose(w[lab], bt.get(lab, w[lab])):
@@ -197,12 +198,12 @@ def _apply_difference(b, labels, kind, difference):
     b = b.copy()
     for x, size in dict(difference).items():
         if kind == "within_between":
-            wl, bl = f"{x} (within)", f"{x} (between)"
+            wl, bl = part_label(x, WITHIN), part_label(x, BETWEEN)
             if wl not in labels or bl not in labels:
                 raise SpecificationError(_no_contrast(x, labels))
             b[labels.index(bl)] = b[labels.index(wl)] + float(size)
         else:
-            ml = f"{x} (unit mean)"
+            ml = part_label(x, UNIT_MEAN)
             if ml not in labels:
                 raise SpecificationError(_no_contrast(x, labels))
             b[labels.index(ml)] = float(size)
@@ -220,17 +221,17 @@ def _contrasts(labels, kind):
     """``(name, weight vector)`` for each between-minus-within contrast of the model."""
     out = []
     k = len(labels)
-    for j, lab in enumerate(labels):
-        if (kind == "within_between" and lab.endswith(" (within)")
-                and f"{lab[:-9]} (between)" in labels):
-            x = lab[:-9]
+    terms = [parse(lab) for lab in labels]
+    for j, t in enumerate(terms):
+        if (kind == "within_between" and t.part == WITHIN
+                and t.with_part(BETWEEN) in terms):
             w = np.zeros(k)
-            w[j], w[labels.index(f"{x} (between)")] = -1.0, 1.0
-            out.append((x + _CONTRAST, w))
-        elif kind == "mundlak" and lab.endswith(" (unit mean)"):
+            w[j], w[terms.index(t.with_part(BETWEEN))] = -1.0, 1.0
+            out.append((t.with_part(CONTRAST).label, w))
+        elif kind == "mundlak" and t.part == UNIT_MEAN:
             w = np.zeros(k)
             w[j] = 1.0
-            out.append((lab[:-12] + _CONTRAST, w))
+            out.append((t.with_part(CONTRAST).label, w))
     return out
 
 
@@ -556,8 +557,9 @@ class DesignCheckResult:
                 lines.append(f"- {row['method']}: the 95% interval of {row['parameter']} holds "
                              f"the truth in {c:.0%} of replicates (nominal 95%, Monte Carlo "
                              f"SE {np.sqrt(0.95 * 0.05 / n):.1%}).")
-            if row["parameter"].endswith(_CONTRAST) and pd.notna(row.get("excludes zero 95%")):
-                x, e = row["parameter"][:-len(_CONTRAST)], row["excludes zero 95%"]
+            t = parse(row["parameter"])
+            if t.part == CONTRAST and pd.notna(row.get("excludes zero 95%")):
+                x, e = t.column.label, row["excludes zero 95%"]
                 if row["truth"] != 0:
                     lines.append(f"- {row['method']}: a between-minus-within difference of "
                                  f"{row['truth']:.3g} in {x} is detected (95% interval excludes "

@@ -41,6 +41,7 @@ from .errors import (BayespanelError, EstimationError, SamplingWarning, Specific
 from .models.families import FAMILIES
 from .models.sampling import MIN_DRAWS
 from .occasions import true_occasion_coef
+from .terms import BETWEEN, UNIT_MEAN, WITHIN, part_label
 from .report.text import BAYES_MODELS, COUNTERPART, REFERENCE_FITS
 
 __all__ = ["Settings", "run", "load_settings", "MODEL_NAMES", "REFERENCE_NAMES", "LEVELS",
@@ -839,7 +840,7 @@ def tests_skip_reason(design) -> str | None:
     if not design.time_varying:
         return ("no covariate varies within units, so there is no within effect to "
                 "compare with a between effect")
-    if not any(lab.endswith(" (unit mean)") for lab in design.labels("mundlak")):
+    if not any(t.part == UNIT_MEAN for t in design.term_parts("mundlak")):
         return ("no time-varying covariate varies between units (every unit has the same "
                 f"unit mean of {', '.join(map(repr, design.time_varying))}), so within "
                 "and between effects cannot be told apart")
@@ -1360,10 +1361,11 @@ def _truth_by_model(truth, entries, ref_entries):
     w, b, c = truth["within"], truth["between"], truth.get("constant", {})
     equal = {k: w[k] for k in w if np.isclose(w[k], b[k])}
     param = {
-        "within_between": {"Intercept": truth["intercept"], **{f"{k} (within)": v for k, v in w.items()},
-                           **{f"{k} (between)": v for k, v in b.items()}, **c},
+        "within_between": {"Intercept": truth["intercept"],
+                           **{part_label(k, WITHIN): v for k, v in w.items()},
+                           **{part_label(k, BETWEEN): v for k, v in b.items()}, **c},
         "mundlak": {"Intercept": truth["intercept"], **w,
-                    **{f"{k} (unit mean)": b[k] - w[k] for k in w}, **c},
+                    **{part_label(k, UNIT_MEAN): b[k] - w[k] for k in w}, **c},
         "within": dict(w),
         "between": {"Intercept": truth["intercept"], **b, **c},
         "random": dict(equal), "pooled": dict(equal),

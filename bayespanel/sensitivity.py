@@ -38,6 +38,7 @@ import pandas as pd
 from scipy import stats as _st
 
 from .errors import SpecificationError, choices_error
+from .terms import BETWEEN, CONTRAST, UNIT_MEAN, WITHIN, parse
 
 __all__ = ["power_scaling", "power_scaling_arrays", "log_prior_draws", "log_likelihood_draws",
            "prior_presets", "PresetComparison", "UNIT_SD_PRESETS", "THRESHOLD",
@@ -352,12 +353,13 @@ def _coef_rows(post, prob):
     labels = post.labels
     coef = post.draws("coef").reshape(-1, len(labels))
     rows = {lab: coef[:, j] for j, lab in enumerate(labels)}
-    for j, lab in enumerate(labels):
-        if lab.endswith(" (within)") and f"{lab[:-9]} (between)" in labels:
-            rows[f"{lab[:-9]} (between - within)"] = (
-                coef[:, labels.index(f"{lab[:-9]} (between)")] - coef[:, j])
-        elif lab.endswith(" (unit mean)"):
-            rows[f"{lab[:-12]} (between - within)"] = coef[:, j]
+    terms = [parse(lab) for lab in labels]
+    for j, t in enumerate(terms):
+        if t.part == WITHIN and t.with_part(BETWEEN) in terms:
+            rows[t.with_part(CONTRAST).label] = (
+                coef[:, terms.index(t.with_part(BETWEEN))] - coef[:, j])
+        elif t.part == UNIT_MEAN:
+            rows[t.with_part(CONTRAST).label] = coef[:, j]
     for name in post.parameter_names[len(labels):]:
         rows[name] = post.draws(name).reshape(-1)
     q = [(1 - prob) / 2, (1 + prob) / 2]

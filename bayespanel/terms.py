@@ -23,7 +23,7 @@ from __future__ import annotations
 from typing import NamedTuple
 
 __all__ = ["Term", "AS_IS", "WITHIN", "BETWEEN", "UNIT_MEAN", "CONTRAST", "PARTS",
-           "label", "labels", "parse", "occasion"]
+           "label", "labels", "parse", "part_label", "occasion"]
 
 AS_IS = ""
 WITHIN = "within"
@@ -97,6 +97,12 @@ def label(term) -> str:
 def labels(terms) -> list[str]:
     """:func:`label` of each term."""
     return [label(t) for t in terms]
+
+
+def part_label(term, part: str) -> str:
+    """The label of one part of the covariate ``term`` (a term or a label):
+    ``part_label("x", WITHIN)`` -> ``"x (within)"``."""
+    return label(parse(term).with_part(part))
 
 
 def parse(text) -> Term:
