@@ -14,6 +14,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from .mathcore import intraclass_correlation
+
 __all__ = ["clinic_panel", "simulate_outcome"]
 
 DEMO_FORMULA = "satisfaction ~ staffing + caseload + rural"
@@ -54,7 +56,7 @@ def clinic_panel(n_clinics: int = 36, n_quarters: int = 8, seed: int = 2026,
         "constant": {"rural": -3.0},
         "sigma_unit": float(sigma_unit),
         "sigma_obs": float(sigma_obs),
-        "icc": float(sigma_unit**2 / (sigma_unit**2 + sigma_obs**2)),
+        "icc": float(intraclass_correlation(sigma_unit**2, sigma_obs**2)),
     }
     rows = []
     for c in range(n_clinics):

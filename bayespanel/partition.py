@@ -41,18 +41,13 @@ import pandas as pd
 
 from .design import group_means
 from .errors import SpecificationError, choices_error
+from .mathcore import partition_quantities
 from .terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
 
 __all__ = ["PartitionResult", "coefficient_parts", "partition_draws", "variance_partition",
            "reference_partition", "summarise_draws", "design_columns", "PARTITION_KINDS"]
 
 PARTITION_KINDS = ("pooled", "random", "within", "mundlak", "within_between")
-_SHARES = (
-    ("total: within part", "f1", "total"), ("total: between part", "f2", "total"),
-    ("total: unit intercepts", "m", "total"), ("total: occasion residual", "e", "total"),
-    ("within: within part", "f1", "within"), ("within: occasion residual", "e", "within"),
-    ("between: between part", "f2", "between"), ("between: unit intercepts", "m", "between"),
-)
 
 
 # ---------------------------------------------------------------------------- array core
@@ -190,12 +185,6 @@ def _row_cov(A):
     return C.T @ C / A.shape[0]
 
 
-def _quad(g, Phi):
-    if g.shape[1] == 0:
-        return np.zeros(g.shape[0])
-    return np.einsum("si,ij,sj->s", g, Phi, g)
-
-
 def partition_draws(X, codes, terms, time_varying, kind, labels, coef, sigma, tau=None) -> dict:
     """Every quantity of the partition, per draw.
 
@@ -220,9 +209,6 @@ def partition_draws(X, codes, terms, time_varying, kind, labels, coef, sigma, ta
         shares ``"total: ..."``, ``"within: ..."``, ``"between: ..."`` (Rights and Sterba
         2019). Quantities a model does not define are ``nan``.
     """
-    sigma = np.atleast_1d(np.asarray(sigma, dtype=float))
-    S = sigma.shape[0]
-    nan = np.full(S, np.nan)
     g_w, g_b = coefficient_parts(terms, time_varying, kind, labels, coef)
     X = np.asarray(X, dtype=float)
     codes = np.asarray(codes, dtype=np.int64)
@@ -231,28 +217,8 @@ def partition_draws(X, codes, terms, time_varying, kind, labels, coef, sigma, ta
     means = _unit_means(X[:, tv], codes)[codes]
     Wc = X[:, tv] - means
     Bc = np.column_stack([means, X[:, tc]])
-    T_all = np.bincount(codes)
-    v = {"f1": _quad(g_w, _row_cov(Wc)), "e": sigma ** 2}
-    if g_b is None or tau is None:
-        v["f2"], v["m"] = nan, nan
-        t2 = nan
-    else:
-        t2 = np.broadcast_to(np.asarray(tau, dtype=float) ** 2, (S,)).astype(float)
-        v["f2"], v["m"] = _quad(g_b, _row_cov(Bc)), t2
-    denom = {"total": v["f1"] + v["f2"] + v["m"] + v["e"], "within": v["f1"] + v["e"],
-             "between": v["f2"] + v["m"]}
-    out = {"unit SD": np.sqrt(t2) if tau is not None else nan, "occasion SD": sigma}
-    with np.errstate(divide="ignore", invalid="ignore"):
-        out["ICC"] = t2 / (t2 + sigma ** 2)
-        for T in np.unique(T_all):
-            out[f"theta (T={int(T)})"] = 1.0 - np.sqrt(sigma ** 2 / (sigma ** 2 + T * t2))
-        out["variance: within part"] = v["f1"]
-        out["variance: between part"] = v["f2"]
-        out["variance: unit intercepts"] = v["m"]
-        out["variance: occasion residual"] = v["e"]
-        for name, part, level in _SHARES:
-            out[name] = v[part] / denom[level]
-    return out
+    return partition_quantities(g_w, g_b, _row_cov(Wc), _row_cov(Bc), sigma, tau,
+                                np.unique(np.bincount(codes)))
 
 
 def summarise_draws(draws: dict, prob: float = 0.95) -> pd.DataFrame:

@@ -993,6 +993,7 @@ def _partition_stats(design, kind, labels, coef_d, sigma_d, tau_d, ref):
     the unit means and time-constant columns (the analysis-of-variance decomposition);
     the reference fit's plug-in partition is the same function at its estimates."""
     from . import partition as part
+    from .mathcore import partition_quantities
 
     st = design.design_suffstats()
     terms, tv = list(design.terms), list(design.time_varying)
@@ -1003,22 +1004,7 @@ def _partition_stats(design, kind, labels, coef_d, sigma_d, tau_d, ref):
 
     def draws(coef, sigma, tau):
         g_w, g_b = part.coefficient_parts(terms, tv, kind, labels, coef)
-        sigma = np.asarray(sigma, dtype=float)
-        nan = np.full(sigma.shape, np.nan)
-        t2 = nan if g_b is None or tau is None else np.asarray(tau, dtype=float) ** 2
-        v = {"f1": part._quad(g_w, phi_w), "e": sigma ** 2, "m": t2,
-             "f2": nan if g_b is None or tau is None else part._quad(g_b, phi_b)}
-        level = {"total": v["f1"] + v["f2"] + v["m"] + v["e"], "within": v["f1"] + v["e"],
-                 "between": v["f2"] + v["m"]}
-        with np.errstate(divide="ignore", invalid="ignore"):
-            out = {"unit SD": np.sqrt(t2), "occasion SD": sigma, "ICC": t2 / (t2 + v["e"])}
-            out.update({f"theta (T={int(T)})": 1.0 - np.sqrt(v["e"] / (v["e"] + T * t2))
-                        for T in st.lengths})
-            out.update({f"variance: {q}": v[key] for q, key in (
-                ("within part", "f1"), ("between part", "f2"), ("unit intercepts", "m"),
-                ("occasion residual", "e"))})
-            out.update({q: v[key] / level[lev] for q, key, lev in part._SHARES})
-        return out
+        return partition_quantities(g_w, g_b, phi_w, phi_b, sigma, tau, st.lengths)
 
     plug = None
     if ref is not None and ref.estimator in part.PARTITION_KINDS:

@@ -37,7 +37,7 @@ LAYERS: list[tuple[str, tuple[str, ...]]] = [
     # algebra, budgets, the output folder and term labels: numpy and scipy at most, nothing
     # of the package above them
     ("core", ("errors", "suffstats", "models.gaussian", "reference._linalg", "budget",
-              "outputs", "terms", "ar1")),
+              "outputs", "terms", "ar1", "mathcore")),
     ("data", ("panel", "formula", "io", "design", "engines", "datasets")),
     ("reference", ("reference",)),
     ("bayes", ("models", "posterior")),

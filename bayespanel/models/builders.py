@@ -46,6 +46,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DataHandlingWarning, EstimationError, SpecificationError, choices_error
+from ..mathcore import intraclass_correlation
 from . import gaussian
 from .priors import Prior, resolve_priors, standardised_params
 
@@ -399,7 +400,7 @@ class GaussianModel:
             pm.Deterministic("sigma_obs", d["scale_y"] * sigma)
             if tau is not None:
                 pm.Deterministic("sigma_unit", d["scale_y"] * tau)
-                pm.Deterministic("icc", tau ** 2 / (tau ** 2 + sigma ** 2))
+                pm.Deterministic("icc", intraclass_correlation(tau ** 2, sigma ** 2))
         return model
 
     def _unit_coord(self):

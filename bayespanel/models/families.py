@@ -43,6 +43,7 @@ import pandas as pd
 from scipy import special
 
 from ..errors import PanelDataError, SpecificationError, choices_error
+from ..mathcore import intraclass_correlation
 
 __all__ = [
     "FAMILIES",
@@ -341,7 +342,8 @@ def latent_residual_variance(family, params=None, *, intercept=None, tau=None):
 def icc_latent_draws(family, tau, params=None, *, intercept=None):
     """ICC draws on the latent scale: ``tau^2 / (tau^2 + latent_residual_variance)``."""
     t2 = np.asarray(tau, dtype=float) ** 2
-    return t2 / (t2 + latent_residual_variance(family, params, intercept=intercept, tau=tau))
+    return intraclass_correlation(
+        t2, latent_residual_variance(family, params, intercept=intercept, tau=tau))
 
 
 def ame_draws(family, eta, tau, weights, b, params=None, *, trials=None, log_exposure=None,

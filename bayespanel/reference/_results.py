@@ -6,6 +6,8 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from ..mathcore import intraclass_correlation
+
 __all__ = ["ReferenceResult"]
 
 _TITLES = {
@@ -220,7 +222,8 @@ class ReferenceResult:
     @property
     def icc(self) -> float:
         tot = self._s2u + self._s2e
-        return float(self._s2u / tot) if np.isfinite(tot) and tot > 0 else float("nan")
+        return float(intraclass_correlation(self._s2u, self._s2e)) \
+            if np.isfinite(tot) and tot > 0 else float("nan")
 
     def variance_partition(self) -> pd.DataFrame:
         """Unit SD, occasion SD, ICC and the GLS quasi-demeaning share per panel length.

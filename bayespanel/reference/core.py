@@ -32,6 +32,7 @@ import numpy as np
 from scipy import optimize
 
 from ..errors import EstimationError
+from ..mathcore import quasi_demeaning_share
 from ._linalg import independent_columns, inv_psd, solve_psd
 
 __all__ = [
@@ -269,18 +270,10 @@ def _gls(ss, theta, cols=None, priority=None):
     return beta, rss, bread, cols
 
 
-def theta_of(lengths, sigma2_unit, sigma2_obs):
-    """Quasi-demeaning share ``1 - sqrt(sigma^2 / (sigma^2 + T tau^2))`` per panel length."""
-    lengths = np.asarray(lengths, dtype=float)
-    if sigma2_obs <= 0:
-        return np.ones_like(lengths)
-    return 1.0 - np.sqrt(sigma2_obs / (sigma2_obs + lengths * sigma2_unit))
-
-
 def gls_core(ss, sigma2_unit, sigma2_obs, cols=None, priority=None) -> CoreFit:
     """Random-intercept GLS for given variance components; classical covariance uses the
     residual variance of the quasi-demeaned regression (``rss / (n - k)``)."""
-    theta = theta_of(ss.lengths, sigma2_unit, sigma2_obs)
+    theta = quasi_demeaning_share(ss.lengths, sigma2_unit, sigma2_obs)
     beta, rss, bread, cols = _gls(ss, theta, cols, priority)
     df = ss.n - len(cols)
     _need_df(df, "random-intercept regression", ss.n, len(cols))
@@ -452,7 +445,7 @@ def likelihood_core(ss, method="reml", cols=None, priority=None, near=None) -> C
     val, beta, bread, s2 = _profile(ss, gamma, cols, method, s)
     beta, bread = _unshift(beta, bread, cols, s, icol)
     s2u = gamma * s2
-    theta = theta_of(ss.lengths, s2u, s2)
+    theta = quasi_demeaning_share(ss.lengths, s2u, s2)
     df = ss.n - len(cols)
     fit = CoreFit(beta, cols, bread, float("nan"), s2, df, ss.n, ss.n_units,
                   sigma2_unit=s2u, sigma2_obs=s2, lengths=ss.lengths.copy(), theta=theta,

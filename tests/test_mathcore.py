@@ -1,0 +1,90 @@
+"""The mathematics written once (bayespanel.mathcore), each function against an outside
+reference: a published identity checked with scipy / numpy linear algebra, or statsmodels.
+"""
+
+import numpy as np
+import pytest
+from scipy import linalg
+from statsmodels.stats.moment_helpers import cov2corr
+
+from bayespanel import mathcore as mc
+
+
+def _unit_cov(T, s2, t2):
+    """Covariance of one unit's rows under the random intercept: s2 I + t2 11'."""
+    return s2 * np.eye(T) + t2 * np.ones((T, T))
+
+
+@pytest.mark.parametrize("T,s2,t2", [(1, 1.0, 0.5), (4, 2.0, 0.7), (9, 0.3, 5.0), (5, 1.0, 0.0)])
+def test_quasi_demeaning_share_is_the_gls_square_root(T, s2, t2):
+    # published identity (Baltagi 2021, section 2.3): sigma * Sigma_i^{-1/2} = I - theta J/T,
+    # with Sigma_i = sigma^2 I + tau^2 11'; the matrix square root from scipy
+    root = np.real(linalg.sqrtm(linalg.inv(_unit_cov(T, s2, t2)))) * np.sqrt(s2)
+    theta = mc.quasi_demeaning_share(T, t2, s2)
+    np.testing.assert_allclose(np.eye(T) - theta * np.ones((T, T)) / T, root, atol=1e-10)
+
+
+def test_quasi_demeaning_share_broadcasts_and_limits():
+    T = np.array([1, 3, 7])
+    th = mc.quasi_demeaning_share(T, 2.0, 1.0)
+    assert th.shape == (3,) and np.all(np.diff(th) > 0)
+    # no occasion noise: the whole unit mean is taken off (fixed-effects limit)
+    np.testing.assert_array_equal(mc.quasi_demeaning_share(T, 2.0, 0.0), np.ones(3))
+    # per draw: (S,) variances at one length
+    np.testing.assert_allclose(mc.quasi_demeaning_share(4, np.array([0.0, 1.0]), np.ones(2)),
+                               [0.0, 1 - np.sqrt(1 / 5)])
+
+
+def test_intraclass_correlation_is_the_within_unit_correlation():
+    # statsmodels' cov2corr of the unit covariance s2 I + t2 11': every off-diagonal entry
+    # is the ICC
+    for s2, t2 in [(1.0, 0.5), (0.2, 3.0), (4.0, 0.0)]:
+        R = cov2corr(_unit_cov(5, s2, t2))
+        assert mc.intraclass_correlation(t2, s2) == pytest.approx(R[0, 3], abs=1e-14)
+    np.testing.assert_allclose(mc.intraclass_correlation(np.array([1.0, 3.0]), 1.0), [0.5, 0.75])
+    assert np.isnan(mc.intraclass_correlation(np.array(0.0), np.array(0.0)))
+
+
+def test_intraclass_correlation_on_pytensor_variables():
+    pt = pytest.importorskip("pytensor.tensor")
+    a, b = pt.dscalar("a"), pt.dscalar("b")
+    assert mc.intraclass_correlation(a, b).eval({a: 3.0, b: 1.0}) == pytest.approx(0.75)
+
+
+def test_quadratic_forms_match_a_loop():
+    rng = np.random.default_rng(1)
+    g = rng.normal(size=(6, 3))
+    P = rng.normal(size=(3, 3))
+    P = P @ P.T
+    np.testing.assert_allclose(mc.quadratic_forms(g, P), [x @ P @ x for x in g], rtol=1e-12)
+    np.testing.assert_array_equal(mc.quadratic_forms(np.zeros((4, 0)), np.zeros((0, 0))),
+                                  np.zeros(4))
+
+
+def test_partition_quantities_are_the_variances_of_the_fitted_parts():
+    # Rights and Sterba (2019): the within and between parts of the linear predictor are
+    # uncorrelated over the rows, so their quadratic forms equal numpy's variances of the
+    # fitted components, and each level's shares add to one
+    rng = np.random.default_rng(7)
+    N, T = 30, 4
+    codes = np.repeat(np.arange(N), T)
+    x = rng.normal(size=(N * T, 2)) + rng.normal(size=(N, 2))[codes]
+    means = np.stack([np.bincount(codes, weights=x[:, j]) / T for j in range(2)], axis=1)
+    W, B = x - means[codes], means[codes]
+    g_w, g_b = np.array([[1.0, -0.5], [0.3, 2.0]]), np.array([[0.4, 1.0], [-1.0, 0.2]])
+    sigma, tau = np.array([1.0, 0.5]), np.array([0.8, 2.0])
+    q = mc.partition_quantities(g_w, g_b, np.cov(W.T, bias=True), np.cov(B.T, bias=True),
+                                sigma, tau, [T])
+    np.testing.assert_allclose(q["variance: within part"], np.var(W @ g_w.T, axis=0))
+    np.testing.assert_allclose(q["variance: between part"], np.var(B @ g_b.T, axis=0))
+    assert np.allclose(np.var(W @ g_w.T + B @ g_b.T, axis=0),
+                       q["variance: within part"] + q["variance: between part"])
+    for level in ("total", "within", "between"):
+        parts = [v for k, v in q.items() if k.startswith(f"{level}: ")]
+        np.testing.assert_allclose(np.sum(parts, axis=0), 1.0)
+    np.testing.assert_allclose(q["ICC"], tau ** 2 / (tau ** 2 + sigma ** 2))
+    np.testing.assert_allclose(q["theta (T=4)"], mc.quasi_demeaning_share(4, tau ** 2, sigma ** 2))
+    # no between part (fixed effects): unit quantities are nan, within shares still add up
+    fe = mc.partition_quantities(g_w, None, np.cov(W.T, bias=True), None, sigma, None, [T])
+    assert np.all(np.isnan(fe["ICC"])) and np.all(np.isnan(fe["unit SD"]))
+    np.testing.assert_allclose(fe["within: within part"] + fe["within: occasion residual"], 1.0)
