@@ -301,7 +301,7 @@ class Design:
         ``"pooled"``, ``"random"``, ``"within"`` and ``"between"`` (whose estimators use the
         original columns): the statistics of ``[X, y]``, computed once with the design.
         ``"mundlak"`` and ``"within_between"``: derived exactly from them
-        (:func:`bayespanel.engines._blocks.augment`) and kept: reference fits and models of
+        (:func:`bayespanel.derived.augment`) and kept: reference fits and models of
         that kind share them (each holds ``N x columns`` unit means). The same accessor as the
         out-of-core design's, so reference fits and models read one interface.
         """
@@ -310,7 +310,7 @@ class Design:
         if kind in ("pooled", "random", "within", "between"):
             return self._stats
         if kind not in self._cache:
-            from .engines._blocks import augment
+            from .derived import augment
 
             A, B, labels = self._transform(kind)
             self._cache[kind] = augment(self._stats, A, B, names=labels + [self.outcome])
@@ -321,7 +321,7 @@ class Design:
         ``"within"`` keeps only the time-varying columns (what ``FixedEffects`` uses)."""
         if kind != "within":
             return self.suffstats(kind)
-        from .engines._blocks import select_columns
+        from .derived import select_columns
 
         tv = [i for i, t in enumerate(self.terms) if self.varies_within[t]]
         if not tv:

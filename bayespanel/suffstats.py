@@ -198,24 +198,6 @@ def compute(X, y, unit_codes, names=None) -> SuffStats:
     return compute_chunked(X, y, unit_codes, names=names)
 
 
-def from_design(design, kind: str = "random") -> SuffStats:
-    """Sufficient statistics of ``[M, y]`` for ``M, _ = design.matrices(kind)``.
-
-    Read from the statistics the :class:`~bayespanel.design.Design` computed once
-    (``design.suffstats(kind)``); for ``"within"`` (demeaned time-varying columns) they
-    are derived from those exactly, as for the Mundlak and within-between kinds. No
-    ``n x k`` matrix is built.
-    """
-    if kind == "between":
-        raise ValueError("the between kind has one row per unit; use kind='random'")
-    if kind != "within":
-        return design.suffstats(kind)
-    from .engines._blocks import augment
-
-    A, B, labels = design._transform(kind)
-    return augment(design.suffstats("random"), A, B, names=list(labels) + [design.outcome])
-
-
 def quad_terms(stats: SuffStats, b: np.ndarray):
     """Residual quadratic forms for coefficients ``b``: ``(sum_i W_i, S_d)`` where
     ``S_d = sum over units of length T_d of rbar_i^2``.

@@ -17,7 +17,7 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel import suffstats
+from bayespanel import derived
 from bayespanel.engines.dask import DaskPanel
 from bayespanel.errors import (DataHandlingWarning, FormulaError, PanelDataError,
                                SpecificationError)
@@ -118,7 +118,7 @@ def test_gaps_and_unbalanced_structure(grunfeld):
 def test_suffstats_match_memory_wage(wage_designs, kind):
     # Source: wage panel (linearmodels.datasets); units spread over 9 partitions.
     dsk, mem = wage_designs
-    a, b = dsk.suffstats(kind), suffstats.from_design(mem, kind)
+    a, b = dsk.suffstats(kind), derived.from_design(mem, kind)
     assert a.names == b.names and a.n == b.n and a.n_units == b.n_units
     np.testing.assert_array_equal(a.unit_count, b.unit_count)
     np.testing.assert_array_equal(a.lengths, b.lengths)
@@ -136,7 +136,7 @@ def test_suffstats_match_memory_grunfeld(grunfeld_panels, layout):
     mem = bp.Panel(df, "firm", "year").design(GRUNFELD)
     dsk = panels[layout].design(GRUNFELD)
     for kind in ("random", "mundlak"):
-        a, b = dsk.suffstats(kind), suffstats.from_design(mem, kind)
+        a, b = dsk.suffstats(kind), derived.from_design(mem, kind)
         for f in FIELDS:
             assert rel(getattr(a, f), getattr(b, f)) < 1e-10, (kind, f)
 
@@ -162,7 +162,7 @@ def test_listwise_deletion_reported_as_in_memory(wage):
     assert a.n_units == b.n_units == 544 and list(a.units) == list(b.units)
     for f in FIELDS:
         assert rel(getattr(a.suffstats("within_between"), f),
-                   getattr(suffstats.from_design(b, "within_between"), f)) < 1e-10
+                   getattr(derived.from_design(b, "within_between"), f)) < 1e-10
 
 
 def test_occasion_effects_match_memory(wage, wage_dask):
@@ -173,7 +173,7 @@ def test_occasion_effects_match_memory(wage, wage_dask):
     b = mem.design("lwage ~ union + married", occasion_effects=True)
     assert a.terms == b.terms and a.terms[-1] == "occasion[1987]"
     for f in FIELDS:
-        assert rel(getattr(a.suffstats(), f), getattr(suffstats.from_design(b), f)) < 1e-10
+        assert rel(getattr(a.suffstats(), f), getattr(derived.from_design(b), f)) < 1e-10
     df2 = df.copy()
     df2.loc[df2["year"] == 1980, "union"] = np.nan
     with warnings.catch_warnings():
@@ -182,7 +182,7 @@ def test_occasion_effects_match_memory(wage, wage_dask):
             "lwage ~ union + married", occasion_effects=True)
         b = bp.Panel(df2, "nr", "year").design("lwage ~ union + married", occasion_effects=True)
     assert a.terms == b.terms and "occasion[1981]" not in a.terms
-    assert rel(a.suffstats().total, suffstats.from_design(b).total) < 1e-10
+    assert rel(a.suffstats().total, derived.from_design(b).total) < 1e-10
 
 
 @pytest.mark.parametrize("kind", ["mundlak", "within_between"])
@@ -219,7 +219,7 @@ def test_row_wise_transforms(wage, wage_dask):
     f = "lwage ~ np.log(hours) + I(exper ** 2) + union * married"
     a, b = wage_dask.design(f), mem.design(f)
     assert a.terms == b.terms
-    assert rel(a.suffstats().within, suffstats.from_design(b).within) < 1e-10
+    assert rel(a.suffstats().within, derived.from_design(b).within) < 1e-10
 
 
 # ---------------------------------------------------------------------------- reference fits

@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 import bayespanel as bp
-from bayespanel import suffstats
+from bayespanel import derived, suffstats
 from bayespanel.engines import _merge
 from bayespanel.engines.dask import DaskPanel
 
@@ -88,7 +88,7 @@ def test_design_pass_matches_memory_on_every_layout(wage, name, count_general):
     a = dp.design(WAGE, cluster=True)
     assert (len(count_general) == 0) == fast, count_general
     for kind in ("random", "mundlak", "within_between"):
-        sa, sb = a.suffstats(kind), suffstats.from_design(b, kind)
+        sa, sb = a.suffstats(kind), derived.from_design(b, kind)
         np.testing.assert_array_equal(sa.unit_count, sb.unit_count)
         np.testing.assert_array_equal(sa.unit_keys, np.asarray(b.units))
         for f in FIELDS:
@@ -143,7 +143,7 @@ def test_chain_merge_equals_general_merge_and_direct_statistics():
     direct = suffstats.compute(Z[:, :-1], Z[:, -1], keys)
     np.testing.assert_array_equal(fast.counts, slow.counts)
     assert rel(fast.offsets + fast.ref, slow.offsets + slow.ref) < 1e-13
-    for got in (suffstats.finalize(fast), _merge.finalize_inplace(fast)):  # the last consumes
+    for got in (suffstats.finalize(fast), derived.finalize_inplace(fast)):  # the last consumes
         np.testing.assert_array_equal(got.unit_keys, names)
         for f in FIELDS:
             assert rel(getattr(got, f), getattr(direct, f)) < 1e-12, f
@@ -165,7 +165,7 @@ def test_finalize_inplace_equals_finalize_with_many_lengths():
     keys = np.repeat(np.arange(3000), rng.integers(1, 12, 3000))
     Z = rng.normal(5.0, 2.0, (len(keys), 4))
     a = suffstats.finalize(suffstats.partial(Z, keys))
-    b = _merge.finalize_inplace(suffstats.partial(Z, keys), chunk=700)
+    b = derived.finalize_inplace(suffstats.partial(Z, keys), chunk=700)
     np.testing.assert_array_equal(a.lengths, b.lengths)
     np.testing.assert_array_equal(a.group_count, b.group_count)
     for f in FIELDS:
@@ -193,6 +193,6 @@ def test_sorted_files_with_dropped_rows_match_memory(wage, count_general):
     assert not count_general
     assert a.n_dropped == b.n_dropped and list(a.units) == list(b.units)
     for f in FIELDS:
-        assert rel(getattr(a.suffstats(), f), getattr(suffstats.from_design(b), f)) < 1e-10
+        assert rel(getattr(a.suffstats(), f), getattr(derived.from_design(b), f)) < 1e-10
     assert dp.structure() == mem.structure()
     assert dp.occasions_per_unit.to_dict() == mem.occasions_per_unit.to_dict()

@@ -16,7 +16,7 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel import suffstats
+from bayespanel import derived, suffstats
 from bayespanel.errors import DataHandlingWarning
 
 WAGE = "lwage ~ exper + expersq + union + married + hours"
@@ -97,7 +97,7 @@ def test_design_statistics_equal_those_of_its_rows(wage_panel):
     d = bp.Panel(wage_panel, "nr", "year").design(WAGE)
     for kind in ("random", "within", "mundlak", "within_between"):
         M, labels = d.matrices(kind)
-        st = suffstats.from_design(d, kind)
+        st = derived.from_design(d, kind)
         assert st.names == labels + ["lwage"]
         Z = np.column_stack([M, d.y]).astype(np.longdouble)
         within = np.zeros((Z.shape[1],) * 2, dtype=np.longdouble)

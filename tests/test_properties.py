@@ -20,7 +20,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import bayespanel as bp
-from bayespanel import suffstats as ss
+from bayespanel import derived
 
 FORMULA = "y ~ x + z + w"
 
@@ -61,7 +61,7 @@ def fits(df):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         d = bp.Panel(df, unit="unit", time="occ").design(FORMULA)
-    stats = ss.from_design(d, "random")
+    stats = derived.from_design(d, "random")
     out = {"within": within_ols(stats), "pooled": pooled_ols(stats)}
     import statsmodels.api as sm  # reference library: statsmodels OLS on the same rows
 

@@ -176,7 +176,7 @@ def test_start_option_is_checked_and_latent_models_keep_the_old_start(wage_panel
 
 def test_a_data_swap_reaches_the_kept_log_density(wage_fits):
     # the compiled log density is kept with the model; new statistics must move the mode
-    from bayespanel import suffstats
+    from bayespanel import derived
 
     df = _simulate(300, seed=5)
     model = RandomIntercept(bp.Panel(df, unit="unit", time="occ"), "y ~ x1 + x2 + z")
@@ -185,7 +185,7 @@ def test_a_data_swap_reaches_the_kept_log_density(wage_fits):
         first = model.sample(start="mode", **KW)
         df2 = df.assign(y=df["y"] + 2.0 * df["x1"])  # slope of x1: 0.5 -> 2.5
         d2 = bp.Panel(df2, unit="unit", time="occ").design("y ~ x1 + x2 + z")
-        model.set_suffstats(suffstats.from_design(d2, "random"))
+        model.set_suffstats(derived.from_design(d2, "random"))
         second = model.sample(start="mode", **KW)
     assert abs(first.coef["x1"] - 0.5) < 0.1
     assert abs(second.coef["x1"] - 2.5) < 0.1

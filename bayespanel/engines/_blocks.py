@@ -13,8 +13,9 @@ adds what a partitioned pass needs around it:
 * optional per-unit within cross-products of ``[X, y]``, for cluster-robust scores,
   merged across partitions with the same pairwise update as the totals (Chan, Golub and
   LeVeque 1979);
-* :func:`augment`: the sufficient statistics of designs that add unit means of columns
-  (Mundlak, within-between), derived exactly from those of ``[X, y]``, with no second pass.
+* the sufficient statistics of designs that add unit means of columns (Mundlak,
+  within-between) are derived exactly from those of ``[X, y]``, with no second pass, by
+  :func:`bayespanel.derived.augment`.
 """
 
 from __future__ import annotations
@@ -28,7 +29,7 @@ from .. import suffstats
 from ..errors import PanelDataError
 from . import _merge
 
-__all__ = ["StructurePiece", "DesignPiece", "augment", "augment_unit_cp", "select_columns"]
+__all__ = ["StructurePiece", "DesignPiece"]
 
 
 def _plain(v):
@@ -400,41 +401,3 @@ def _shares_units(piece: DesignPiece) -> bool:
     if part.n == 0:
         return st.n_rows == 0
     return st.keys is part.keys and st.counts is part.counts
-
-
-# ---------------------------------------------------------------------------- derived designs
-def augment(stats: suffstats.SuffStats, A: np.ndarray, B: np.ndarray, names=None):
-    """Sufficient statistics of rows ``A z_it + B zbar_i`` from those of ``z_it``.
-
-    A design whose columns are linear in a row and in its unit mean (the Mundlak unit
-    means, the within and between parts of the hybrid model) needs no second pass:
-    deviations from the unit mean are ``A (z_it - zbar_i)``, so the within block is
-    ``A W A'``; the unit means are ``(A + B) zbar_i``; and the total cross-products are
-    the within block plus the ``T_i``-weighted cross-products of the unit means about
-    the global mean (the analysis-of-variance decomposition). Exact in exact arithmetic.
-    """
-    C = A + B
-    within = A @ stats.within @ A.T
-    mean = C @ stats.mean
-    dev = (stats.unit_mean - stats.mean) @ C.T
-    total = within + (dev * stats.unit_count[:, None]).T @ dev
-    part = suffstats.Partial(int(stats.n), mean, np.zeros_like(mean), total, within,
-                             stats.unit_keys, stats.unit_count, dev)
-    return _merge.finalize_inplace(part, names=names)  # dev is ours: becomes unit_mean
-
-
-def augment_unit_cp(unit_cp: np.ndarray, A: np.ndarray) -> np.ndarray:
-    """Per-unit within cross-products of ``A z_it + B zbar_i``: ``A W_i A'``."""
-    return np.einsum("ij,gjk,lk->gil", A, unit_cp, A)
-
-
-def select_columns(stats: suffstats.SuffStats, cols, names=None):
-    """Sufficient statistics of a subset of the columns (``y`` must be among ``cols``)."""
-    c = np.asarray(cols, dtype=np.int64)
-    ix = np.ix_(c, c)
-    return suffstats.SuffStats(
-        n=stats.n, n_units=stats.n_units, mean=stats.mean[c], total=stats.total[ix],
-        within=stats.within[ix], unit_count=stats.unit_count, unit_mean=stats.unit_mean[:, c],
-        lengths=stats.lengths, group_count=stats.group_count,
-        group_mean=stats.group_mean[:, c], group_cp=stats.group_cp[:, c][:, :, c],
-        unit_keys=stats.unit_keys, names=names)

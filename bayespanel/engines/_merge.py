@@ -28,7 +28,7 @@ import numpy as np
 from .. import suffstats
 from ..suffstats import Partial
 
-__all__ = ["Chain", "chain", "merge_parts", "merge_unit_cp", "finalize_inplace"]
+__all__ = ["Chain", "chain", "merge_parts", "merge_unit_cp"]
 
 
 @dataclass(frozen=True)
@@ -164,45 +164,3 @@ def merge_unit_cp(pa: Partial, cpa, pb: Partial, cpb, merged: Partial):
     inv = inv[order]
     starts = np.flatnonzero(np.concatenate([[True], inv[1:] != inv[:-1]]))
     return np.add.reduceat(cps[order], starts, axis=0)
-
-
-def finalize_inplace(part: Partial, names=None, chunk: int = 1 << 16) -> suffstats.SuffStats:
-    """:func:`bayespanel.suffstats.finalize` without unit-level working copies.
-
-    The piece is consumed: its ``offsets`` become the result's ``unit_mean`` (the
-    reference point added in place) and its ``counts`` and ``keys`` are kept, not copied.
-    Panel lengths come from a count of the lengths (no sort of the units), and the
-    cross-products of the unit means about their group mean are accumulated over slices
-    of ``chunk`` units (centred on the group mean first, as ``finalize`` does).
-    """
-    counts, off = part.counts, part.offsets
-    N, p = off.shape
-    hist = np.bincount(counts) if N else np.zeros(1, np.int64)
-    lengths = np.flatnonzero(hist)
-    D = len(lengths)
-    gcount = hist[lengths].astype(np.int64)
-    code = np.zeros(int(lengths[-1]) + 1 if D else 1, dtype=np.int64)
-    code[lengths] = np.arange(D)
-    gsum = np.zeros((D, p))
-    for a in range(0, N, chunk):  # group sums of the unit means (about ref)
-        g = code[counts[a:a + chunk]]
-        for j in range(p):
-            gsum[:, j] += np.bincount(g, weights=off[a:a + chunk, j], minlength=D)
-    gmean_c = gsum / np.maximum(gcount, 1)[:, None] - part.shift  # about the global mean
-    gcp = np.zeros((D, p, p))
-    centre = gmean_c + part.shift  # group means about ref
-    for a in range(0, N, chunk):
-        g = code[counts[a:a + chunk]]
-        dev = off[a:a + chunk] - centre[g]
-        if D == 1:
-            gcp[0] += dev.T @ dev
-        else:
-            for d in np.unique(g):
-                sel = g == d
-                gcp[d] += dev[sel].T @ dev[sel]
-    off += part.ref  # the unit means, in place
-    return suffstats.SuffStats(
-        n=int(part.n), n_units=int(N), mean=part.mean, total=part.m2.copy(),
-        within=part.within_m2.copy(), unit_count=counts, unit_mean=off,
-        lengths=lengths.astype(np.int64), group_count=gcount, group_mean=gmean_c + part.mean,
-        group_cp=gcp, unit_keys=part.keys, names=list(names) if names is not None else None)

@@ -45,14 +45,13 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from .. import suffstats
+from .. import derived, suffstats
 from ..design import (KINDS, Design, DesignSpec, check_flag, check_stats, check_terms,
                       occasion_label, refuse_complex)
 from ..errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
                       SpecificationError, choices_error)
 from ..formula import dependency_message, safe_context, screen
 from . import _blocks as blk
-from . import _merge
 
 __all__ = ["DaskPanel", "DaskDesign", "SCHEDULERS", "local_client", "close_local_client"]
 
@@ -492,7 +491,7 @@ class DaskDesign:
     ``dropped_by_column``, ``unit_means()``, ``y_unit_means()``, ``spec``) and yields
     sufficient statistics for every model kind with :meth:`suffstats`. The Mundlak and
     within-between statistics are derived exactly from those of ``[X, y]``
-    (:func:`bayespanel.engines._blocks.augment`), without a second pass.
+    (:func:`bayespanel.derived.augment`), without a second pass.
 
     Listwise deletion is the same as in memory: rows missing any variable the formula
     uses are dropped, counted per column and reported with a
@@ -589,7 +588,7 @@ class DaskDesign:
                 DataHandlingWarning, stacklevel=4)
         if piece.part.n == 0:
             raise PanelDataError("no complete rows remain after dropping missing values")
-        stats = _merge.finalize_inplace(piece.part, names=list(spec.terms) + [spec.outcome])
+        stats = derived.finalize_inplace(piece.part, names=list(spec.terms) + [spec.outcome])
         if stats.n_units < 2:
             raise PanelDataError(
                 f"only {stats.n_units} unit of {p.unit!r} has complete rows; at least 2 are "
@@ -625,7 +624,7 @@ class DaskDesign:
             return stats, maxabs, ucp, None
         names = [stats.names[c] for c in cols]
         ucp = None if ucp is None else ucp[:, cols][:, :, cols]
-        return blk.select_columns(stats, cols, names), maxabs[cols], ucp, tuple(cols)
+        return derived.select_columns(stats, cols, names), maxabs[cols], ucp, tuple(cols)
 
     # ------------------------------------------------------------------ sizes
     @property
@@ -773,6 +772,6 @@ class DaskDesign:
         if kind in ("pooled", "random", "within", "between"):
             return self._unit_cp
         A, _, _ = self._transform(kind)
-        return blk.augment_unit_cp(self._unit_cp, A)
+        return derived.augment_unit_cp(self._unit_cp, A)
 
 
