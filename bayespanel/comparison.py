@@ -38,6 +38,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import EstimationError, SpecificationError
+from .resultshape import DEFAULT_INTERVAL, check_prob, leading_columns
 from .loo import LOOResult, loo, reference_cv
 from .loo._draws import check_level, outcome_measure
 
@@ -459,18 +460,14 @@ def _equivalence_note(name, cls, values, bayes, weights) -> str:
 
 # ---------------------------------------------------------------------------- coefficients
 def _coef_frame(name, obj, prob):
+    if _is_posterior(obj) or _is_reference(obj):  # the leading columns every table shares
+        out = obj.table(prob)[leading_columns(obj.error_name)].set_axis(
+            ["estimate", "sd/se", "lower", "upper"], axis=1).rename_axis(None)
     if _is_posterior(obj):
-        t = obj.table(prob)
-        est = t["estimate"] if "estimate" in t else t["coef"]
-        out = pd.DataFrame({"estimate": est, "sd/se": t["sd"], "lower": t["lower"],
-                            "upper": t["upper"]})
         if "icc" in out.index:
             out = out.rename(index={"icc": "ICC"})
         return out, "posterior mean, SD, equal-tailed interval"
     if _is_reference(obj):
-        t = obj.table(prob)
-        out = pd.DataFrame({"estimate": t["estimate"], "sd/se": t["se"], "lower": t["lower"],
-                            "upper": t["upper"]})
         extra = pd.DataFrame({"estimate": [obj.sigma_unit, obj.sigma_obs, obj.icc]},
                              index=["sigma_unit", "sigma_obs", "ICC"])
         extra = extra[np.isfinite(extra["estimate"])]
@@ -481,7 +478,7 @@ def _coef_frame(name, obj, prob):
                              "a ReferenceResult")
 
 
-def coef_table(models: dict, prob: float = 0.95, shape: str = "wide") -> pd.DataFrame:
+def coef_table(models: dict, prob: float = DEFAULT_INTERVAL, shape: str = "wide") -> pd.DataFrame:
     """Every model's estimates and intervals side by side, aligned by term.
 
     Parameters
@@ -506,8 +503,7 @@ def coef_table(models: dict, prob: float = 0.95, shape: str = "wide") -> pd.Data
     if shape not in ("wide", "long"):
         from .errors import choices_error
         raise choices_error("shape", shape, ("wide", "long"))
-    if not 0 < prob < 1:
-        raise SpecificationError(f"prob={prob!r} is not valid; choose a number in (0, 1)")
+    prob = check_prob(prob)
     if not isinstance(models, dict) or not models:
         raise SpecificationError("models must be a non-empty dict of name -> fitted model")
     frames, what = {}, {}

@@ -35,6 +35,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import SpecificationError
+from .resultshape import DEFAULT_INTERVAL, check_prob
 from .terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
 
 __all__ = ["ContrastResult", "contrast_draws", "contrast_matrix", "contrast_covariates",
@@ -134,7 +135,8 @@ class ContrastResult:
         Classical Hausman and cluster-robust Mundlak tests, when computed.
     """
 
-    def __init__(self, draws, terms, kind, rope=None, prob=0.95, reference=None, tests=None):
+    def __init__(self, draws, terms, kind, rope=None, prob=DEFAULT_INTERVAL, reference=None,
+                 tests=None):
         self.draws = pd.DataFrame(np.asarray(draws), columns=list(terms))
         self.kind = kind
         self.rope = _rope_of(rope, list(terms))
@@ -148,8 +150,7 @@ class ContrastResult:
         """One row per covariate: posterior summary, sign and ROPE probabilities, and the
         reference estimate beside it."""
         prob = self.prob if prob is None else prob
-        if not 0 < prob < 1:
-            raise SpecificationError(f"prob={prob!r} is not valid; choose a number in (0, 1)")
+        prob = check_prob(prob)
         D = self.draws.to_numpy()
         lo, hi = (1 - prob) / 2, (1 + prob) / 2
         out = pd.DataFrame({
@@ -250,7 +251,7 @@ def specification_tests(M, y, codes, labels, kind) -> dict:
             "Mundlak (cluster-robust)": mundlak_test(mres)}
 
 
-def within_between_contrasts(kind, labels, coef, time_varying, *, rope=None, prob=0.95,
+def within_between_contrasts(kind, labels, coef, time_varying, *, rope=None, prob=DEFAULT_INTERVAL,
                              reference=None, rows=None) -> ContrastResult:
     """Posterior of between-minus-within effects with the frequentist checks beside them.
 
@@ -279,8 +280,7 @@ def within_between_contrasts(kind, labels, coef, time_varying, *, rope=None, pro
     -------
     ContrastResult
     """
-    if not 0 < prob < 1:
-        raise SpecificationError(f"prob={prob!r} is not valid; choose a number in (0, 1)")
+    prob = check_prob(prob)
     terms = list(time_varying)
     D = contrast_draws(kind, labels, terms, coef)
     ref = None if reference is None else _reference_contrast(reference, terms, prob)

@@ -23,6 +23,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import SpecificationError
+from .resultshape import DEFAULT_INTERVAL
 from .terms import AS_IS, BETWEEN, UNIT_MEAN, WITHIN, parse
 
 __all__ = ["occasion_effects", "occasion_effects_figure", "true_occasion_coef"]
@@ -52,7 +53,7 @@ def true_occasion_coef(label, truth):
         (truth.get("occasion") or {}).get(parse(label).column.label, 0.0))
 
 
-def occasion_effects(fit, prob: float = 0.95, part: str = "effect") -> pd.DataFrame:
+def occasion_effects(fit, prob: float = DEFAULT_INTERVAL, part: str = "effect") -> pd.DataFrame:
     """The occasion effects of a fit, in occasion order.
 
     Parameters
@@ -102,7 +103,8 @@ def occasion_effects(fit, prob: float = 0.95, part: str = "effect") -> pd.DataFr
     return out
 
 
-def occasion_effects_figure(fits, prob: float = 0.95, reference_occasion=None, part="effect"):
+def occasion_effects_figure(fits, prob: float = DEFAULT_INTERVAL, reference_occasion=None,
+                            part="effect"):
     """Occasion effects over the occasions, with intervals, one series per fit.
 
     Parameters

@@ -42,6 +42,7 @@ import pandas as pd
 from .design import group_means
 from .errors import SpecificationError, choices_error
 from .mathcore import partition_quantities
+from .resultshape import DEFAULT_INTERVAL, check_prob
 from .terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
 
 __all__ = ["PartitionResult", "coefficient_parts", "partition_draws", "variance_partition",
@@ -221,10 +222,9 @@ def partition_draws(X, codes, terms, time_varying, kind, labels, coef, sigma, ta
                                 np.unique(np.bincount(codes)))
 
 
-def summarise_draws(draws: dict, prob: float = 0.95) -> pd.DataFrame:
+def summarise_draws(draws: dict, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
     """Mean, median, SD and the central (equal-tailed) interval of each quantity."""
-    if not 0 < prob < 1:
-        raise SpecificationError(f"prob={prob!r} is not valid; choose a number in (0, 1)")
+    prob = check_prob(prob)
     lo, hi = (1 - prob) / 2, (1 + prob) / 2
     rows = {}
     for name, x in draws.items():
@@ -262,7 +262,7 @@ class PartitionResult:
             {k: float(np.asarray(v).ravel()[0]) for k, v in reference.items()}, name="reference")
         self.reference_name = reference_name
 
-    def table(self, prob: float = 0.95) -> pd.DataFrame:
+    def table(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
         """Summary per quantity (mean, median, SD, interval) with the reference beside it."""
         out = summarise_draws({c: self.draws[c].to_numpy() for c in self.draws}, prob)
         if self.reference is not None:
@@ -271,7 +271,7 @@ class PartitionResult:
         out.attrs["kind"] = self.kind
         return out
 
-    def to_dict(self, prob: float = 0.95) -> dict:
+    def to_dict(self, prob: float = DEFAULT_INTERVAL) -> dict:
         """JSON-ready summary (nan becomes None)."""
         t = self.table(prob)
         recs = {q: {c: (None if not np.isfinite(v) else float(v)) for c, v in row.items()}

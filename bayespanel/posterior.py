@@ -6,9 +6,11 @@ the sufficient statistics and (when known) the estimation rows. Everything compu
 the draws calls the one implementation of the mathematics in
 :mod:`bayespanel.models.gaussian`.
 
-Summaries answer with the same names as the reference fits: ``coef`` (posterior means),
-``sd`` (posterior SDs), ``interval(prob)`` (equal-tailed credible intervals), ``table()``
-(columns ``estimate``, ``sd``, ``lower``, ``upper``), ``sigma_unit`` and ``sigma_obs``.
+Summaries answer with the same names as the reference fits (:mod:`bayespanel.resultshape`):
+``coef`` (posterior means), ``sd`` (posterior SDs, the error column), ``interval(prob)``
+(equal-tailed credible intervals), ``table()`` (columns ``estimate``, ``sd``, ``lower``,
+``upper``), ``variance_partition()``, ``icc``, ``n_obs``, ``n_units``, ``sigma_unit`` and
+``sigma_obs``.
 
 Saved posteriors are NetCDF files (through xarray, engine h5netcdf) with the model
 specification as JSON attributes; nothing is pickled.
@@ -35,6 +37,7 @@ import xarray as xr
 from .errors import SamplingWarning, SpecificationError
 from .models import gaussian
 from .models.builders import ModelSpec
+from .resultshape import DEFAULT_INTERVAL, check_prob
 from .suffstats import SuffStats
 
 __all__ = ["Posterior", "PointwiseInputs", "simulate_outcome", "THRESHOLDS"]
@@ -126,12 +129,6 @@ class PointwiseInputs:
 
 def _percent(q) -> str:
     return f"{100 * q:.10g}%"
-
-
-def _check_prob(prob):
-    if not (isinstance(prob, (float, int)) and 0 < prob < 1):
-        raise SpecificationError(f"prob={prob!r} must be a number strictly between 0 and 1")
-    return float(prob)
 
 
 class Posterior:
@@ -275,7 +272,7 @@ class Posterior:
             out[name] = self.draws(name)
         return out
 
-    def summary(self, prob: float = 0.95) -> pd.DataFrame:
+    def summary(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
         """Posterior mean, SD, equal-tailed interval, R-hat and ESS of every parameter.
 
         Rows are the coefficient labels (``"x"``, ``"x (within)"``, ``"x (between)"``,
@@ -285,7 +282,7 @@ class Posterior:
         is the rank-normalised split R-hat and ESS the bulk and tail effective sample
         sizes of Vehtari et al. (2021), from arviz_stats.
         """
-        prob = _check_prob(prob)
+        prob = check_prob(prob)
         key = ("summary", prob)
         if key not in self._cache:
             self._cache[key] = self._summarise(self._named_draws(), prob)
@@ -303,6 +300,33 @@ class Posterior:
         flat = self._flat("coef")
         return pd.Series(flat.std(axis=0, ddof=1), index=self.labels, name="sd")
 
+    #: name of the error column of :meth:`table` (:mod:`bayespanel.resultshape`)
+    error_name = "sd"
+
+    @property
+    def error(self) -> pd.Series:
+        """The error column of :meth:`table`: the posterior SDs (same as :attr:`sd`)."""
+        return self.sd
+
+    @property
+    def n_obs(self) -> int:
+        """Rows of the estimation sample."""
+        return int(self.stats.n)
+
+    @property
+    def n_units(self) -> int:
+        """Units of the estimation sample."""
+        return int(self.stats.n_units)
+
+    @property
+    def icc(self) -> float:
+        """Posterior mean of the ICC ``sigma_unit^2 / (sigma_unit^2 + sigma_obs^2)``;
+        ``nan`` for models without a unit variance (pooled, fixed effects), as for the
+        reference fits. Its interval is in :meth:`summary` and :meth:`variance_partition`."""
+        if "icc" not in self.parameter_names:
+            return float("nan")
+        return float(self.draws("icc").mean())
+
     @property
     def sigma_obs(self) -> float:
         return float(self.draws("sigma_obs").mean())
@@ -314,23 +338,24 @@ class Posterior:
             return float(self.draws("sigma_unit").mean())
         return 0.0 if self.spec.unit_effects == "none" else float("nan")
 
-    def interval(self, prob: float = 0.95) -> pd.DataFrame:
+    def interval(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
         """Equal-tailed credible intervals of the coefficients (columns lower, upper)."""
-        prob = _check_prob(prob)
+        prob = check_prob(prob)
         flat = self._flat("coef")
         q = np.quantile(flat, [(1 - prob) / 2, 1 - (1 - prob) / 2], axis=0)
         return pd.DataFrame({"lower": q[0], "upper": q[1]}, index=self.labels)
 
-    def table(self, prob: float = 0.95) -> pd.DataFrame:
+    def table(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
         """Coefficients and variance components with the reference fits' column names:
         ``estimate`` (posterior mean), ``sd``, ``lower``, ``upper`` (equal-tailed interval)."""
         s = self.summary(prob)
         lo, hi = _percent((1 - prob) / 2), _percent(1 - (1 - prob) / 2)
         out = s[["mean", "sd", lo, hi]].copy()
         out.columns = ["estimate", "sd", "lower", "upper"]
+        out.attrs.update(prob=prob, error="sd")
         return out
 
-    def contextual_effects(self, prob: float = 0.95) -> pd.DataFrame:
+    def contextual_effects(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
         """The contextual effect (between minus within) of each time-varying covariate.
 
         WithinBetween: draws of ``b_between - b_within``; CorrelatedEffects: the
@@ -347,7 +372,7 @@ class Posterior:
         D = contrast_draws(self.spec.kind, self.labels, terms, coef.reshape(-1, coef.shape[-1]))
         D = D.reshape(coef.shape[0], coef.shape[1], len(terms))
         named = {t: D[..., j] for j, t in enumerate(terms)}
-        return self._summarise(named, _check_prob(prob))
+        return self._summarise(named, check_prob(prob))
 
     # ------------------------------------------------------------------ diagnostics
     def diagnostics(self, warn: bool = True) -> dict:
@@ -562,7 +587,8 @@ class Posterior:
                                   self._flat("coef"), self._flat("sigma_obs"), tau,
                                   reference=reference)
 
-    def contrasts(self, rope=None, prob: float = 0.95, reference=None, tests: bool = True):
+    def contrasts(self, rope=None, prob: float = DEFAULT_INTERVAL, reference=None,
+                  tests: bool = True):
         """Between-minus-within effects with sign and ROPE probabilities, beside the
         Hausman and cluster-robust Mundlak tests; see
         :func:`bayespanel.contrasts.within_between_contrasts`."""

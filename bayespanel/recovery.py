@@ -46,6 +46,7 @@ from scipy import stats as _st
 
 from . import suffstats as _ss
 from .errors import EstimationError, SamplingWarning, SpecificationError, choices_error
+from .resultshape import DEFAULT_INTERVAL
 from .occasions import true_occasion_coef
 from .terms import BETWEEN, CONTRAST, UNIT_MEAN, WITHIN, parse, part_label
 
@@ -575,7 +576,7 @@ class DesignCheckResult:
         lines += [f"- {p}" for p in self.problems()]
         return "\n".join(lines)
 
-    def figure(self, prob: float = 0.95):
+    def figure(self, prob: float = DEFAULT_INTERVAL):
         """Coverage (with 2 Monte Carlo SE) and median interval width per parameter.
 
         Returns
@@ -628,7 +629,7 @@ def _draw_figure(res, prob, plt):
     return fig
 
 
-def design_check_section(result: DesignCheckResult, prob: float = 0.95):
+def design_check_section(result: DesignCheckResult, prob: float = DEFAULT_INTERVAL):
     """The report section of a design check: ``(table, figure)``.
 
     ``table`` is :meth:`DesignCheckResult.table` with ``attrs["summary"]`` holding the

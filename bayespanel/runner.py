@@ -41,6 +41,7 @@ from .errors import (BayespanelError, EstimationError, SamplingWarning, Specific
 from .models.families import FAMILIES
 from .models.sampling import MIN_DRAWS
 from .occasions import true_occasion_coef
+from .resultshape import DEFAULT_INTERVAL
 from .terms import BETWEEN, UNIT_MEAN, WITHIN, part_label
 from .report.text import BAYES_MODELS, COUNTERPART, REFERENCE_FITS
 
@@ -156,7 +157,7 @@ class Settings:
     re_method: str = "swamy-arora"
     level: str = "occasion"
     rope: float | None = None
-    interval: float = 0.95
+    interval: float = DEFAULT_INTERVAL
     occasion_effects: bool = False
     ppc_draws: int = 200
     reference_folds: int | None = None

@@ -38,6 +38,7 @@ import pandas as pd
 from scipy import stats as _st
 
 from .errors import SpecificationError, choices_error
+from .resultshape import DEFAULT_INTERVAL
 from .terms import BETWEEN, CONTRAST, UNIT_MEAN, WITHIN, parse
 
 __all__ = ["power_scaling", "power_scaling_arrays", "log_prior_draws", "log_likelihood_draws",
@@ -258,7 +259,7 @@ class PresetComparison:
     """
 
     posteriors: dict
-    prob: float = 0.95
+    prob: float = DEFAULT_INTERVAL
 
     def partition(self) -> pd.DataFrame:
         """The variance partition side by side: rows are quantities (SDs, ICC, shares of
@@ -368,7 +369,7 @@ def _coef_rows(post, prob):
 
 
 def prior_presets(model, presets=UNIT_SD_PRESETS, *, draws=1000, tune=1000, chains=4, seed=1,
-                  prob=0.95, sampler="auto") -> PresetComparison:
+                  prob=DEFAULT_INTERVAL, sampler="auto") -> PresetComparison:
     """Refit ``model`` under each built-in prior preset for the unit SD.
 
     Parameters

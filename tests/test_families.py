@@ -235,7 +235,8 @@ def test_family_reports(paired_fits):
     else:  # Nakagawa et al. (2017): lambda = exp(b0 + tau^2 / 2) at the covariate means
         b0 = post.coef_draws() @ post.rows[0].mean(axis=0)
         expected = tau ** 2 / (tau ** 2 + np.log1p(1 / np.exp(b0 + tau ** 2 / 2)))
-    table = post.icc(prob=0.9)
+    table = post.icc_table(prob=0.9)
+    assert post.icc == pytest.approx(expected.mean(), rel=1e-12)  # float, as for every fit
     assert table["mean"].iloc[0] == pytest.approx(expected.mean(), rel=1e-12)
     assert "latent scale" in table.index[0]
     ppc = post.ppc(draws=200, seed=1)

@@ -207,7 +207,7 @@ def test_table_and_labels(panel):
 
     res = bp.reference.pooled(panel, FORMULA)
     tab = res.table()
-    assert list(tab.columns) == ["estimate", "se", "t", "df", "p", "lower", "upper"]
+    assert list(tab.columns) == ["estimate", "se", "lower", "upper", "t", "df", "p"]
     q = stats.t.ppf(0.975, 197)
     np.testing.assert_allclose(tab["upper"], res.coef + q * res.se)
     assert res.vcov.index.tolist() == res.coef.index.tolist() == ["Intercept", "value", "capital"]

@@ -44,6 +44,7 @@ from scipy import special
 
 from ..errors import PanelDataError, SpecificationError, choices_error
 from ..mathcore import intraclass_correlation
+from ..resultshape import DEFAULT_INTERVAL
 
 __all__ = [
     "FAMILIES",
@@ -422,7 +423,7 @@ def _interval_table(draws: pd.DataFrame, prob: float) -> pd.DataFrame:
                          f"lower {pct}": draws.quantile(lo), f"upper {pct}": draws.quantile(hi)})
 
 
-def icc_latent(post, prob: float = 0.9) -> pd.DataFrame:
+def icc_latent(post, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
     """ICC on the latent scale, with its interval, for a latent-family posterior.
 
     ``post`` is a :class:`bayespanel.models.latent.LatentPosterior`, whose ``icc`` draws
@@ -436,7 +437,8 @@ def icc_latent(post, prob: float = 0.9) -> pd.DataFrame:
     return _interval_table(pd.DataFrame({f"ICC ({basis})": post.flat_draws("icc")}), prob)
 
 
-def average_marginal_effects(post, prob: float = 0.9, max_draws: int = 400) -> pd.DataFrame:
+def average_marginal_effects(post, prob: float = DEFAULT_INTERVAL,
+                             max_draws: int = 400) -> pd.DataFrame:
     """Average marginal effects of each within, between and other term on the outcome scale.
 
     Population-averaged over the unit-intercept distribution (see :func:`ame_draws`); with
@@ -544,7 +546,8 @@ def ppc_p_value(observed, replicated) -> float:
     return float((r > observed).mean() + 0.5 * (r == observed).mean())
 
 
-def ppc_summary(post, draws: int = 400, seed: int = 0, prob: float = 0.9) -> pd.DataFrame:
+def ppc_summary(post, draws: int = 400, seed: int = 0,
+                prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
     """Posterior predictive checks suited to the family.
 
     Replicates the outcome for ``draws`` posterior draws (given the sampled unit effects)

@@ -52,6 +52,7 @@ import pandas as pd
 
 from .. import suffstats as _ss
 from ..errors import EstimationError, PanelDataError, SpecificationError, choices_error
+from ..resultshape import DEFAULT_INTERVAL
 from . import families as fam_mod
 from . import gaussian, slopes
 from .priors import Prior, _coerce, _fill, resolve_priors, standardised_params
@@ -526,7 +527,7 @@ def _posterior_cls():
 class LatentPosterior(_posterior_cls()):
     """Posterior of a :class:`LatentModel`: the Gaussian-model summaries plus the family.
 
-    Adds :meth:`icc` (latent scale), :meth:`average_marginal_effects` (outcome scale),
+    Adds :meth:`icc_table` (latent scale), :meth:`average_marginal_effects` (outcome scale),
     :meth:`ppc` (family-specific posterior predictive checks) and :meth:`pointwise_loglik`
     (unit or occasion level, for LOO). ``summary()`` rows: the coefficients,
     ``sigma_unit``, ``sigma_slope[x]``, ``corr[Intercept, x]``, the family's own
@@ -805,16 +806,19 @@ class LatentPosterior(_posterior_cls()):
         return loo(self, level, **kwargs)
 
     # ------------------------------------------------------------------ family reports
-    def icc(self, prob: float = 0.9) -> pd.DataFrame:
-        """ICC on the latent scale (see :func:`~bayespanel.models.families.icc_latent`)."""
+    def icc_table(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+        """The ICC on the latent scale with its interval, one row labelled by the residual
+        variance used (see :func:`~bayespanel.models.families.icc_latent`). The posterior
+        mean alone is :attr:`icc` (a float, as for every fit)."""
         return fam_mod.icc_latent(self, prob)
 
-    def average_marginal_effects(self, prob: float = 0.9) -> pd.DataFrame:
+    def average_marginal_effects(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
         """Average marginal effects on the outcome scale
         (:func:`~bayespanel.models.families.average_marginal_effects`)."""
         return fam_mod.average_marginal_effects(self, prob)
 
-    def ppc(self, draws: int = 400, seed: int = 0, prob: float = 0.9) -> pd.DataFrame:
+    def ppc(self, draws: int = 400, seed: int = 0,
+            prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
         """Family-specific posterior predictive checks
         (:func:`~bayespanel.models.families.ppc_summary`)."""
         return fam_mod.ppc_summary(self, draws=draws, seed=seed, prob=prob)

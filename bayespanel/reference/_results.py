@@ -7,6 +7,7 @@ import pandas as pd
 from scipy import stats
 
 from ..mathcore import intraclass_correlation
+from ..resultshape import DEFAULT_INTERVAL, check_prob
 
 __all__ = ["ReferenceResult"]
 
@@ -121,6 +122,14 @@ class ReferenceResult:
 
     sd = se  # the name a Posterior uses
 
+    #: name of the error column of :meth:`table` (:mod:`bayespanel.resultshape`)
+    error_name = "se"
+
+    @property
+    def error(self) -> pd.Series:
+        """The error column of :meth:`table`: the standard errors (same as :attr:`se`)."""
+        return self.se
+
     @property
     def df_resid(self) -> pd.Series:
         return pd.Series(self._df, index=self.labels, name="df")
@@ -143,28 +152,27 @@ class ReferenceResult:
         return np.where(finite, stats.t.ppf(q, np.where(finite, self._df, 1.0)),
                         stats.norm.ppf(q))
 
-    def interval(self, prob: float = 0.95) -> pd.DataFrame:
+    def interval(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
         """Confidence intervals from each term's reference distribution.
 
         Returns a DataFrame with columns ``lower`` and ``upper``, indexed by term.
         """
-        if not 0 < prob < 1:
-            from ..errors import SpecificationError
-            raise SpecificationError(f"prob={prob!r} is not valid; choose a number in (0, 1)")
+        prob = check_prob(prob)
         half = self._quantile(prob) * self.se.to_numpy()
         return pd.DataFrame({"lower": self._coef - half, "upper": self._coef + half},
                             index=self.labels)
 
-    def table(self, prob: float = 0.95) -> pd.DataFrame:
-        """Estimates, standard errors, t, reference df, p-values and intervals."""
+    def table(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+        """Estimates, standard errors and intervals (the leading columns every fit's
+        table shares, :mod:`bayespanel.resultshape`), then t, reference df and p-values."""
         ci = self.interval(prob)
         out = pd.DataFrame({
-            "estimate": self._coef, "se": self.se.to_numpy(), "t": self.tvalues.to_numpy(),
-            "df": self._df, "p": self.pvalues.to_numpy(),
+            "estimate": self._coef, "se": self.se.to_numpy(),
             "lower": ci["lower"].to_numpy(), "upper": ci["upper"].to_numpy(),
+            "t": self.tvalues.to_numpy(), "df": self._df, "p": self.pvalues.to_numpy(),
         }, index=pd.Index(self.labels, name="term"))
-        out.attrs.update(prob=prob, estimator=self.estimator, cov_type=self.cov_type,
-                         method=self.method)
+        out.attrs.update(prob=prob, error="se", estimator=self.estimator,
+                         cov_type=self.cov_type, method=self.method)
         return out
 
     @property

@@ -49,6 +49,7 @@ import pandas as pd
 from scipy import special, stats
 
 from ..errors import EstimationError, SpecificationError, choices_error
+from ..resultshape import DEFAULT_INTERVAL, check_prob
 
 __all__ = ["GLMResult", "fit_glm", "glm_design", "GLM_COVS", "GLM_KINDS", "glm_family"]
 
@@ -113,18 +114,39 @@ class GLMResult:
         z = np.abs(np.asarray(z, dtype=float))
         return 2 * (stats.t.sf(z, self.df) if np.isfinite(self.df) else stats.norm.sf(z))
 
-    def table(self, prob: float = 0.95) -> pd.DataFrame:
-        """Estimates, standard errors, statistic, reference df, p-values and intervals."""
+    #: name of the error column of :meth:`table` (:mod:`bayespanel.resultshape`)
+    error_name = "se"
+
+    @property
+    def error(self) -> pd.Series:
+        return self.se.rename("se")
+
+    @property
+    def icc(self) -> float:
+        """``nan``: a pooled GLM has no unit variance (population-averaged)."""
+        return float("nan")
+
+    def interval(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+        """Confidence intervals of the coefficients (columns ``lower``, ``upper``)."""
+        t = self.table(prob)
+        return t[["lower", "upper"]].rename_axis(None)
+
+    def table(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+        """Estimates, standard errors and intervals (the leading columns every fit's
+        table shares), then the statistic, reference df and p-values."""
         se = self.se.to_numpy()
         b = self.coef.to_numpy()
-        c = self._crit(prob)
+        c = self._crit(check_prob(prob))
         with np.errstate(divide="ignore", invalid="ignore"):
             z = b / se
-        return pd.DataFrame({"estimate": b, "se": se, "t": z, "df": self.df, "p": self._p(z),
-                             "lower": b - c * se, "upper": b + c * se},
-                            index=pd.Index(self.labels, name="term"))
+        out = pd.DataFrame({"estimate": b, "se": se, "lower": b - c * se, "upper": b + c * se,
+                            "t": z, "df": self.df, "p": self._p(z)},
+                           index=pd.Index(self.labels, name="term"))
+        out.attrs.update(prob=prob, error="se")
+        return out
 
-    def average_marginal_effects(self, names, weights, prob: float = 0.95) -> pd.DataFrame:
+    def average_marginal_effects(self, names, weights,
+                                 prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
         """``d E[y] / d x`` averaged over the rows, with delta-method standard errors.
 
         ``names``/``weights`` as :func:`bayespanel.models.families.effect_weights`

@@ -1,0 +1,133 @@
+"""One result shape: a reference fit, a Gaussian posterior and a latent-effect posterior
+answer the same questions with the same names and types (bayespanel.resultshape).
+
+Outside checks, each named beside its assertion:
+- linearmodels RandomEffects (Swamy-Arora) on the same rows: coefficients, standard errors,
+  intervals (normal quantiles from scipy), rows and units;
+- statsmodels' Grunfeld investment panel (conftest.py), 10 firms x 20 years.
+"""
+
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+import bayespanel as bp
+from bayespanel import resultshape
+
+FORMULA = "invest ~ value + capital"
+
+
+@pytest.fixture(scope="module")
+def panel(grunfeld):
+    return bp.Panel(grunfeld, unit="firm", time="year")
+
+
+@pytest.fixture(scope="module")
+def linearmodels_re(grunfeld):
+    from linearmodels import RandomEffects
+
+    d = grunfeld.set_index(["firm", "year"])
+    X = d[["value", "capital"]].copy()
+    X.insert(0, "Intercept", 1.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return RandomEffects(d["invest"], X).fit()
+
+
+@pytest.fixture(scope="module")
+def fits(panel):
+    """The three kinds of result, on the same rows."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ref = bp.reference.random(panel, FORMULA)
+        gauss = bp.RandomIntercept(panel, FORMULA).sample(draws=200, tune=200, chains=2,
+                                                         seed=3, progress=False)
+        latent = bp.RandomIntercept(panel, FORMULA, family="student_t").sample(
+            draws=200, tune=200, chains=2, seed=3, progress=False)
+    assert type(latent).__name__ == "LatentPosterior"
+    return {"reference": ref, "gaussian": gauss, "latent": latent}
+
+
+@pytest.mark.parametrize("which", ["reference", "gaussian", "latent"])
+def test_same_names_and_types(fits, which, linearmodels_re):
+    fit = fits[which]
+    terms = ["Intercept", "value", "capital"]
+    # coef: a Series of point values by term
+    assert isinstance(fit.coef, pd.Series) and list(fit.coef.index) == terms
+    assert fit.coef.name == "estimate"
+    # the error column is named and reachable under its name
+    assert fit.error_name == ("se" if which == "reference" else "sd")
+    err = fit.error
+    assert isinstance(err, pd.Series) and err.name == fit.error_name
+    np.testing.assert_array_equal(err.to_numpy(), getattr(fit, fit.error_name).to_numpy())
+    assert (err > 0).all()
+    # interval(prob): lower and upper by term, around the point value
+    ci = fit.interval(0.9)
+    assert list(ci.columns) == ["lower", "upper"] and list(ci.index) == terms
+    assert (ci["lower"] < fit.coef).all() and (fit.coef < ci["upper"]).all()
+    # table(prob): the same leading columns, agreeing with the attributes
+    tab = fit.table(0.9)
+    lead = resultshape.leading_columns(fit.error_name)
+    assert list(tab.columns[:4]) == lead == ["estimate", fit.error_name, "lower", "upper"]
+    assert tab.attrs["error"] == fit.error_name
+    np.testing.assert_allclose(tab.loc[terms, "estimate"], fit.coef, rtol=1e-12)
+    np.testing.assert_allclose(tab.loc[terms, "lower"], ci["lower"], rtol=1e-12)
+    # icc, n_obs, n_units: the same types
+    # (Student-t: the ICC is 0 in draws with nu <= 2, where the occasion variance is
+    # infinite, docs/families.md)
+    assert isinstance(fit.icc, float) and 0 <= fit.icc < 1
+    assert isinstance(fit.n_obs, int) and isinstance(fit.n_units, int)
+    # linearmodels counts the same rows and units
+    assert fit.n_obs == int(linearmodels_re.nobs) == 200
+    assert fit.n_units == int(linearmodels_re.entity_info["total"]) == 10
+
+
+def test_reference_numbers_match_linearmodels(fits, linearmodels_re):
+    """Source: linearmodels RandomEffects (Swamy-Arora) on the same rows, 1e-6; its
+    intervals are normal, so ours are checked against scipy's normal quantile."""
+    ref = fits["reference"]
+    np.testing.assert_allclose(ref.coef, linearmodels_re.params, rtol=1e-6)
+    np.testing.assert_allclose(ref.error, linearmodels_re.std_errors, rtol=1e-6)
+    tab = ref.table(0.9)
+    z = stats.norm.ppf(0.95)
+    if np.isfinite(tab["df"]).all():
+        z = stats.t.ppf(0.95, tab["df"].to_numpy())
+    np.testing.assert_allclose(tab["upper"] - tab["estimate"], z * tab["se"], rtol=1e-12)
+
+
+def test_posterior_numbers_from_draws(fits):
+    """The posterior's point value and error are the mean and SD of its draws; the icc is
+    the mean of sigma_unit^2 / (sigma_unit^2 + s^2) draws (numpy on the draws)."""
+    for which in ("gaussian", "latent"):
+        post = fits[which]
+        coef = post.draws("coef").reshape(-1, 3)
+        np.testing.assert_allclose(post.coef, coef.mean(axis=0), rtol=1e-12)
+        np.testing.assert_allclose(post.error, coef.std(axis=0, ddof=1), rtol=1e-12)
+        np.testing.assert_allclose(post.interval(0.9)["upper"],
+                                   np.quantile(coef, 0.95, axis=0), rtol=1e-12)
+    g = fits["gaussian"]
+    tau, sigma = g.draws("sigma_unit").ravel(), g.draws("sigma_obs").ravel()
+    assert g.icc == pytest.approx(np.mean(tau ** 2 / (tau ** 2 + sigma ** 2)), rel=1e-10)
+
+
+def test_one_interval_default(fits):
+    """Every interval a fit reports by default has the same probability."""
+    p = resultshape.DEFAULT_INTERVAL
+    lo, hi = (1 - p) / 2, (1 + p) / 2
+    for fit in fits.values():
+        assert fit.table().attrs["prob"] == p
+        pd.testing.assert_frame_equal(fit.interval(), fit.interval(p))
+    latent = fits["latent"]
+    icc = latent.flat_draws("icc")
+    row = latent.icc_table().iloc[0]
+    assert row[f"lower {100 * p:g}%"] == pytest.approx(np.quantile(icc, lo), rel=1e-12)
+    assert row[f"upper {100 * p:g}%"] == pytest.approx(np.quantile(icc, hi), rel=1e-12)
+    assert f"lower {100 * p:g}%" in latent.average_marginal_effects().columns
+    assert f"replicated lower {100 * p:g}%" in latent.ppc(draws=50).columns
+    s = fits["gaussian"].summary()
+    assert {f"{100 * lo:.10g}%", f"{100 * hi:.10g}%"} <= set(s.columns)
+    with pytest.raises(bp.errors.SpecificationError, match="prob=1.5"):
+        fits["reference"].interval(1.5)
