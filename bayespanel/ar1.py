@@ -408,32 +408,41 @@ class AR1Stats:
         Returns a dict: ``n``, ``n_units``; ``gaps`` (D,), ``link_count`` (D,); ``first``
         (p, p), ``sum z*_1 z*_1'`` over units; ``link_start``, ``link_end``, ``link_cross``
         (D, p, p), per gap length ``sum z*_k z*_k'``, ``sum z*_k+1 z*_k+1'`` and
-        ``sum z*_k+1 z*_k'`` over links; ``groups``, a list of dicts with ``count``,
-        ``T``, ``index`` (positions in ``gaps``), ``link_counts`` and ``cp``, the
-        ``(J p) x (J p)`` cross-products of the stacked vectors (``J = 1 + 2m``).
+        ``sum z*_k+1 z*_k'`` over links; per group of units sharing a link pattern (G
+        groups): ``group_count`` (G,), ``group_T`` (G,), ``group_links`` (G, D) links of
+        each gap length per unit, and ``group_cp`` (G, J p, J p), ``J = 1 + 2 D``, the
+        cross-products of the stacked vectors ``[z*_1, E*_1..E*_D, S*_1..S*_D]`` laid
+        out over all D gap lengths (zero blocks where a group has no such link), so the
+        density is the same few array operations whatever the number of groups.
         """
-        p = self.p
+        p, D = self.p, len(self.gaps)
         c = np.zeros(p) if center is None else np.asarray(center, dtype=float)
         s = np.ones(p) if scale is None else np.asarray(scale, dtype=float)
         ss = np.outer(s, s)
-        D = len(self.gaps)
         start = np.empty((D, p, p))
         end = np.empty((D, p, p))
         cross = np.empty((D, p, p))
         for j, m in enumerate(self.links):
             P = m.about(np.concatenate([c, c])) / np.outer(np.tile(s, 2), np.tile(s, 2))
             start[j], end[j], cross[j] = P[:p, :p], P[p:, p:], P[p:, :p]
-        groups = []
-        for grp in self.groups:
+        G, J = len(self.groups), 1 + 2 * D
+        links = np.zeros((G, D))
+        cp = np.zeros((G, J * p, J * p))
+        for i, grp in enumerate(self.groups):
             lc = grp.link_counts.astype(float)
+            links[i, grp.index] = lc
             shift = np.concatenate([c] + [n * c for n in lc] * 2)
             sc = np.tile(s, 1 + 2 * len(lc))
-            groups.append({"count": grp.count, "T": grp.T, "index": grp.index,
-                           "link_counts": lc, "cp": grp.moments.about(shift) / np.outer(sc, sc)})
+            slots = np.concatenate([[0], 1 + grp.index, 1 + D + grp.index])
+            at = (slots[:, None] * p + np.arange(p)).ravel()       # rows of the global layout
+            cp[i][np.ix_(at, at)] = grp.moments.about(shift) / np.outer(sc, sc)
         return {"n": self.n, "n_units": self.n_units, "gaps": self.gaps.copy(),
                 "link_count": self.link_count.astype(float),
                 "first": self.first.about(c) / ss, "link_start": start, "link_end": end,
-                "link_cross": cross, "groups": groups}
+                "link_cross": cross,
+                "group_count": np.array([g.count for g in self.groups], dtype=float),
+                "group_T": np.array([g.T for g in self.groups], dtype=float),
+                "group_links": links, "group_cp": cp}
 
 
 def finalize(part: AR1Partial, names=None) -> AR1Stats:
@@ -530,29 +539,29 @@ def loglik(v, arrays: dict, rho, sigma, tau, xp=np):
     n, N = arrays["n"], arrays["n_units"]
     fixed = tau is None
     pooled = not fixed and isinstance(tau, numbers.Real) and tau == 0
-    g = None if fixed or pooled else tau ** 2 / s2
-    log_c = 0.0
-    sub = 0.0
-    if not pooled:
-        for grp in arrays["groups"]:
-            idx, cnt = grp["index"], grp["link_counts"]
-            if len(idx):
-                ph = phi[idx]
-                c = 1.0 + xp.sum(cnt * (1.0 - ph) / (1.0 + ph))
-                lvec = xp.concatenate([xp.ones((1,)), 1.0 / (1.0 + ph), -ph / (1.0 + ph)])
-            else:
-                c = 1.0
-                lvec = xp.ones((1,))
-            L = (lvec[:, None] * v[None, :]).flatten()
-            wr2 = (grp["cp"] * L[:, None] * L[None, :]).sum()
-            if fixed:
-                log_c = log_c + grp["count"] * (xp.log(c) - np.log(grp["T"]))
-                sub = sub + wr2 / c
-            else:
-                h = 1.0 + g * c
-                log_c = log_c + grp["count"] * xp.log(h)
-                sub = sub + g * wr2 / h
-    m = n - N if fixed else n
+    if pooled:
+        return -0.5 * (n * (_LOG_2PI + xp.log(s2)) + logdet + q / s2)
+    # per group: c = 1' R^-1 1 and (w'r)^2 = L' cp L with L = l (x) v, l = [1, 1/(1+phi),
+    # -phi/(1+phi)] over the D gap lengths
+    count, T = arrays["group_count"], arrays["group_T"]
+    if len(gaps):
+        c = 1.0 + (arrays["group_links"] * ((1.0 - phi) / (1.0 + phi))[None, :]).sum(axis=1)
+        lvec = xp.concatenate([xp.ones((1,)), 1.0 / (1.0 + phi), -phi / (1.0 + phi)])
+    else:
+        c = np.ones(len(count))
+        lvec = xp.ones((1,))
+    L = (lvec[:, None] * v[None, :]).flatten()
+    wr2 = (arrays["group_cp"] * L[None, :, None] * L[None, None, :]).sum(axis=(1, 2))
+    if fixed:
+        log_c = (count * (xp.log(c) - np.log(T))).sum()
+        sub = (wr2 / c).sum()
+        m = n - N
+    else:
+        g = tau ** 2 / s2
+        h = 1.0 + g * c
+        log_c = (count * xp.log(h)).sum()
+        sub = (g * wr2 / h).sum()
+        m = n
     return -0.5 * (m * (_LOG_2PI + xp.log(s2)) + logdet + log_c + (q - sub) / s2)
 
 

@@ -167,13 +167,11 @@ def _assert_same(s1, s2, tol=1e-10):
     a1, a2 = s1.arrays(), s2.arrays()
     for key in ("n", "n_units"):
         assert a1[key] == a2[key]
-    for key in ("gaps", "link_count", "first", "link_start", "link_end", "link_cross"):
+    for key in ("group_count", "group_T", "group_links"):
+        np.testing.assert_array_equal(a1[key], a2[key])
+    for key in ("gaps", "link_count", "first", "link_start", "link_end", "link_cross",
+                "group_cp"):
         np.testing.assert_allclose(a1[key], a2[key], rtol=tol, atol=tol)
-    assert len(a1["groups"]) == len(a2["groups"])
-    for g1, g2 in zip(a1["groups"], a2["groups"]):
-        assert (g1["count"], g1["T"]) == (g2["count"], g2["T"])
-        np.testing.assert_array_equal(g1["index"], g2["index"])
-        np.testing.assert_allclose(g1["cp"], g2["cp"], rtol=tol, atol=tol)
 
 
 def test_split_blocks_give_the_same_statistics(panel):
@@ -216,10 +214,8 @@ def test_standardised_arrays_equal_statistics_of_standardised_rows(panel):
     s = np.array([1.0, 2.0, 0.5, 1.7])
     a1 = ar1.finalize(ar1.partial((Z - c) / s, keys, times)).arrays()
     a2 = st.arrays(c, s)
-    for key in ("first", "link_start", "link_end", "link_cross"):
+    for key in ("first", "link_start", "link_end", "link_cross", "group_cp"):
         np.testing.assert_allclose(a1[key], a2[key], rtol=1e-10, atol=1e-10)
-    for g1, g2 in zip(a1["groups"], a2["groups"]):
-        np.testing.assert_allclose(g1["cp"], g2["cp"], rtol=1e-10, atol=1e-10)
 
 
 def test_large_offsets_keep_precision():
@@ -256,3 +252,116 @@ def test_ordered_categorical_time_maps_to_codes():
     np.testing.assert_array_equal(ar1.occasion_times(t, "wave"), [0.0, 2.0, 1.0])
     with pytest.raises(PanelDataError, match="'wave'.*unordered"):
         ar1.occasion_times(t.cat.as_unordered(), "wave")
+
+
+# ---------------------------------------------------------------------------- PyTensor form
+@pytest.fixture(scope="module")
+def compiled(panel):
+    import pytensor
+    import pytensor.tensor as pt
+
+    _, _, _, st = panel
+    arrays = st.arrays()
+    b, rho, sigma, tau = pt.dvector("b"), pt.dscalar("rho"), pt.dscalar("sigma"), pt.dscalar("tau")
+    v = pt.concatenate([-b, pt.ones((1,))])
+    out = {}
+    for form, t in (("random", tau), ("pooled", 0.0), ("fixed", None)):
+        lp = ar1.loglik(v, arrays, rho, sigma, t, xp=pt)
+        wrt = [b, rho, sigma] + ([tau] if form == "random" else [])
+        grads = pytensor.grad(lp, wrt)
+        ins = [b, rho, sigma] + ([tau] if form == "random" else [])
+        # the graph's values and gradients do not depend on the backend; the Python one
+        # skips a minute of compiling on a loaded machine
+        out[form] = pytensor.function(ins, [lp] + grads, on_unused_input="ignore",
+                                      mode="FAST_COMPILE")
+    return arrays, out
+
+
+@pytest.mark.parametrize("rho,sigma,tau", [(0.6, 1.3, 0.8), (-0.7, 0.9, 1.1), (0.2, 1.1, 0.5)])
+@pytest.mark.parametrize("form", ["random", "pooled", "fixed"])
+def test_pytensor_form_and_its_gradient(compiled, form, rho, sigma, tau):
+    # value: the numpy form (itself checked against scipy above); gradient: central finite
+    # differences of the numpy form
+    arrays, fns = compiled
+    t = {"random": tau, "pooled": 0.0, "fixed": None}[form]
+
+    def f(theta):
+        return ar1.loglik(np.append(-theta[:3], 1.0), arrays, theta[3], theta[4],
+                          theta[5] if form == "random" else t)
+
+    theta = np.array([*B, rho, sigma, tau])
+    args = [B, rho, sigma] + ([tau] if form == "random" else [])
+    lp, *grads = fns[form](*args)
+    assert lp == pytest.approx(f(theta), abs=1e-9)
+    grad = np.concatenate([np.atleast_1d(g) for g in grads])
+    m = len(grad)
+    h = 1e-6
+    fd = np.array([(f(theta + h * e) - f(theta - h * e)) / (2 * h) for e in np.eye(6)[:m]])
+    np.testing.assert_allclose(grad, fd, rtol=1e-6, atol=1e-5)
+
+
+# ---------------------------------------------------------------------------- conditionals
+def _dense_conditional(t, r, rho, sigma, tau):
+    """Mean and SD of each r_t given the unit's other residuals, with numpy's dense
+    linear algebra: the partitioned normal (random, pooled) or, for fixed effects, the
+    flat-prior posterior of the intercept from the other rows (GLS) carried into the
+    conditional of r_t given the intercept and the other rows."""
+    T = len(t)
+    means, sds = np.empty(T), np.empty(T)
+    R = _ar1_corr(t, rho)
+    for j in range(T):
+        o = np.delete(np.arange(T), j)
+        if tau is not None:
+            S = sigma ** 2 * R + tau ** 2
+            k = np.linalg.solve(S[np.ix_(o, o)], S[o, j])
+            means[j], sds[j] = k @ r[o], np.sqrt(S[j, j] - S[j, o] @ k)
+            continue
+        if T == 1:
+            means[j] = sds[j] = np.nan
+            continue
+        Ro = R[np.ix_(o, o)]
+        one = np.ones(T - 1)
+        a = np.linalg.solve(Ro, one)
+        u_hat, u_var = a @ r[o] / (a @ one), sigma ** 2 / (a @ one)
+        k = np.linalg.solve(Ro, R[o, j])
+        lead = 1.0 - k @ one                          # weight of the intercept in the mean
+        means[j] = lead * u_hat + k @ r[o]
+        sds[j] = np.sqrt(sigma ** 2 * (1.0 - R[j, o] @ k) + lead ** 2 * u_var)
+    return means, sds
+
+
+@pytest.mark.parametrize("rho,sigma,tau", [(0.6, 1.3, 0.8), (-0.7, 0.9, 1.1), (0.95, 0.7, 0.0),
+                                           (0.5, 1.2, None), (-0.4, 0.8, None)])
+def test_occasion_conditional_equals_dense_normal(panel, rho, sigma, tau):
+    Z, keys, times, _ = panel
+    r = Z[:, -1] - Z[:, :-1] @ B
+    tl = ar1.Timeline.build(keys, times)
+    mean, sd = ar1.occasion_conditional(r, tl, rho, sigma, tau)
+    for u in np.unique(keys):
+        rows = np.flatnonzero(keys == u)
+        rows = rows[np.argsort(times[rows])]
+        m_ref, s_ref = _dense_conditional(times[rows], r[rows], rho, sigma, tau)
+        np.testing.assert_allclose(mean[rows], m_ref, rtol=0, atol=1e-10)
+        np.testing.assert_allclose(sd[rows], s_ref, rtol=0, atol=1e-10)
+    lp = ar1.occasion_logdensity(r, tl, rho, sigma, tau)
+    ok = np.isfinite(sd)
+    np.testing.assert_allclose(lp[ok], stats.norm(mean[ok], sd[ok]).logpdf(r[ok]), atol=1e-12)
+
+
+def test_row_functions_take_draws(panel):
+    # the draws axis gives, draw by draw, what one draw gives (the dense checks above)
+    Z, keys, times, _ = panel
+    rng = np.random.default_rng(2)
+    b = B + 0.1 * rng.normal(size=(4, 3))
+    r = Z[:, -1][None] - b @ Z[:, :-1].T
+    rho, sigma, tau = np.array([0.3, -0.5, 0.8, 0.0]), np.array([1.0, 0.7, 1.4, 1.1]), \
+        np.array([0.5, 1.0, 0.0, 2.0])
+    tl = ar1.Timeline.build(keys, times)
+    U = ar1.unit_logdensity(r, tl, rho, sigma, tau)
+    M, S = ar1.occasion_conditional(r, tl, rho, sigma, None)
+    for s in range(4):
+        np.testing.assert_allclose(U[s], ar1.unit_logdensity(r[s], tl, rho[s], sigma[s], tau[s]),
+                                   rtol=1e-13)
+        m, sd = ar1.occasion_conditional(r[s], tl, rho[s], sigma[s], None)
+        np.testing.assert_allclose(M[s], m, rtol=1e-13)
+        np.testing.assert_allclose(S[s], sd, rtol=1e-13)
