@@ -20,6 +20,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from . import kinds
 from .errors import BayespanelError, OutputError, SpecificationError
 from .report.text import printable
 
@@ -28,10 +29,24 @@ _STRICT_HELP = ("exit with code 3 when the run had problems: sampling (divergenc
                 "R-hat, low ESS, low BFMI) or comparison (Pareto k above the threshold); the "
                 "outputs are written either way")
 
-_MODELS_HELP = ("comma-separated Bayesian models: pooled, random_intercept, within_between, "
-                "correlated_effects, fixed_effects, or 'none' (default: all five)")
-_REF_HELP = ("comma-separated reference fits: pooled, within, between, random, mundlak, "
-             "within_between, or 'none' (default: all six)")
+
+
+def _has_unit_level(name) -> bool:
+    """Whether a model kind in a results file separates the unit and occasion levels."""
+    return name not in kinds.model_names() or kinds.model(name).unit_effects != "none"
+
+
+def _models_help() -> str:
+    names = kinds.model_names()
+    return (f"comma-separated Bayesian models: {', '.join(names)}, or 'none' (default: all "
+            f"{len(names)})")
+
+
+def _reference_help() -> str:
+    names = kinds.reference_names()
+    return (f"comma-separated reference fits: {', '.join(names)}, or 'none' (default: all "
+            f"{len(names)})")
+
 
 _OOC_HELP = ("read a Parquet file or folder in partitions on Dask and work from one-pass "
              "statistics, without loading the table (docs/cli.md says what is left out); "
@@ -389,9 +404,10 @@ def _print_summary(results, truth=None) -> None:
             rows.append((c["term"], c["mean"], c.get("sd"), c["lower"], c["upper"],
                          f"   true {_fmt(tv, c.get('sd'))}" if tv is not None else ""))
         for q in m.get("scale", []):
-            # the pooled model's residual SD mixes both levels: no true value to show
+            # a model without unit effects has a residual SD that mixes both levels: no
+            # true value to show
             tv = ((results.get("truth") or {}).get(q["name"])
-                  if known and m["name"] != "pooled" else None)
+                  if known and _has_unit_level(m["name"]) else None)
             rows.append((q["name"], q["mean"], q.get("sd"), q["lower"], q["upper"],
                          f"   true {_fmt(tv, q.get('sd'))}" if tv is not None else ""))
         _print_terms(rows)
@@ -532,8 +548,7 @@ def _add_design_check_verb(sub):
     p.add_argument("--delimiter", metavar="CHAR", help=_DELIMITER_HELP)
     p.add_argument("--formula", required=True, help="Wilkinson formula, e.g. 'y ~ x + z'")
     p.add_argument("--model", default="random_intercept",
-                   help="pooled, random_intercept, within_between, correlated_effects or "
-                        "fixed_effects (default random_intercept)")
+                   help=f"{', '.join(kinds.model_names())} (default random_intercept)")
     p.add_argument("--replicates", type=int, default=100, help="replicates (default 100)")
     p.add_argument("--coef", action="append", metavar="TERM=VALUE",
                    help="true coefficient, repeatable; without --coef the values come from "
@@ -617,7 +632,7 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--delimiter", metavar="CHAR", help=_DELIMITER_HELP)
     g.add_argument("--formula", help="Wilkinson formula, e.g. 'y ~ x + z' (unit effects come "
                    "from the model, not the formula)")
-    g.add_argument("--models", help=_MODELS_HELP)
+    g.add_argument("--models", help=_models_help())
     g.add_argument("--occasion-effects", action="store_true",
                    help="add one indicator per occasion to every model")
     g.add_argument("--out-of-core", action="store_true", help=_OOC_HELP)
@@ -639,7 +654,7 @@ def build_parser() -> argparse.ArgumentParser:
                         f"{default['ppc_draws']})")
     g.add_argument("--progress-bars", action="store_true", help="show the sampler's progress bars")
     g = p.add_argument_group("reference fits and comparison")
-    g.add_argument("--reference", help=_REF_HELP)
+    g.add_argument("--reference", help=_reference_help())
     g.add_argument("--cov", choices=["classical", "cluster", "cr2"], default=None,
                    help=f"covariance of the reference fits (default {default['cov']}: CR1 by unit)")
     g.add_argument("--method", choices=["swamy-arora", "ml", "reml"], default=None,

@@ -30,15 +30,13 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from . import kinds
 from .errors import EstimationError
 from .models import families as fam_mod
 
 __all__ = ["data_checks", "reference_stage", "tests_stage", "bayes_one", "family_record",
-           "COUNTERPART_GLM", "SCALE_TEXT"]
+           "SCALE_TEXT"]
 
-#: the reference GLM beside each Bayesian model (same columns)
-COUNTERPART_GLM = {"random_intercept": "pooled", "within_between": "within_between",
-                   "correlated_effects": "mundlak"}
 #: what the coefficients are, by link
 COEF_SCALE = {"logit": "log-odds (logit) scale, conditional on the unit's effect",
               "log": "log scale (log rate ratios), conditional on the unit's effect",
@@ -54,7 +52,6 @@ SCALE_TEXT = {
     "identity": "outcome scale",
 }
 _GLM_WORD = {"logit": "logit GLM", "poisson": "Poisson GLM (quasi-likelihood)"}
-_REF_BASE = {"pooled": "Pooled", "mundlak": "Mundlak", "within_between": "Within-between"}
 
 
 def _family(settings):
@@ -108,7 +105,7 @@ def data_checks(settings, panel, design) -> list:
 
 # ---------------------------------------------------------------------- reference GLMs
 def _glm_title(settings, name):
-    return f"{_REF_BASE[name]} {_GLM_WORD[_glm_kind(settings)]}"
+    return f"{kinds.reference(name).glm_title} {_GLM_WORD[_glm_kind(settings)]}"
 
 
 def _glm_kind(settings):
@@ -252,8 +249,6 @@ def latent_options(settings) -> dict:
 
 def assumptions(name, settings) -> str:
     """The model's assumptions in plain words, with the family and random slopes."""
-    from .report.text import BAYES_MODELS
-
     fam = _family(settings)
     text = {
         "bernoulli": "The outcome is 0/1: each occasion is a Bernoulli draw whose log-odds "
@@ -279,7 +274,7 @@ def assumptions(name, settings) -> str:
         text += (" The slope of " + ", ".join(settings.random_slopes) + " varies by unit "
                  "(normal, correlated with the unit intercept); the coefficient is the "
                  "average slope.")
-    return (BAYES_MODELS[name][1] + " " + text).strip()
+    return (kinds.model(name).assumptions + " " + text).strip()
 
 
 def _ame_stage(post, name, settings, ref_fits, prob):
@@ -290,7 +285,7 @@ def _ame_stage(post, name, settings, ref_fits, prob):
         return []
     tab = post.average_marginal_effects(prob)
     lo, hi = tab.columns[2], tab.columns[3]
-    ref = ref_fits.get(COUNTERPART_GLM[name])
+    ref = ref_fits.get(kinds.model(name).glm_reference)
     by_ref = {}
     if ref is not None:
         names, W = fam_mod.effect_weights(ref.labels, ref.kind)
@@ -362,13 +357,12 @@ def _ppc_stage(post, design, settings):
 
 def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, progress_bars):
     """Sample one latent-effect model and build its ``results.json`` entry."""
-    from . import models
-    from .runner import (BUILDER_OF, _KIND_OF, _contrast_entries, _contrasts,
+    from .runner import (_contrast_entries, _contrasts,
                          _diagnostics_entry, _floats, _model_priors, _prior_text,
                          _sample_timed)
-    from .report.text import BAYES_MODELS, COUNTERPART
 
-    cls = getattr(models, BUILDER_OF[name])
+    registered = kinds.model(name)
+    cls = registered.builder_class()
     prob = settings.interval
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # dropped rows were reported by the data stage
@@ -390,7 +384,7 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
     coefs = [row("term", r) for _, r in summ.loc[post.labels].iterrows()]
     scale = [{k: v for k, v in row("name", r).items() if k != "ess_tail"}
              for q, r in summ.iterrows() if q not in post.labels]
-    kind = _KIND_OF[name]
+    kind = registered.columns
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         say(f"  {name}: average marginal effects, variance partition, predictive checks")
@@ -408,10 +402,10 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
         post.save(Path(out_dir) / rel)  # the staging folder: published when the run completes
     priors_used = {**m.priors, **getattr(m, "extra_priors", {})}
     entry = {
-        "name": name, "builder": BUILDER_OF[name], "title": BAYES_MODELS[name][0],
+        "name": name, "builder": registered.class_name, "title": registered.title,
         "assumptions": assumptions(name, settings),
-        "reference_counterpart": (COUNTERPART_GLM[name] if settings.glm_reference
-                                  else COUNTERPART[name]),
+        "reference_counterpart": (registered.glm_reference if settings.glm_reference
+                                  else registered.reference),
         "posterior_file": rel,
         "sampling": _floats({"draws": settings.draws, "tune": settings.tune,
                              "chains": settings.chains, "seed": settings.seed,

@@ -61,14 +61,13 @@ BAYES, REFERENCE, ORACLE = "Bayesian", "reference", "GLS, known variances"
 
 # ---------------------------------------------------------------------------- inputs
 def _builder(model):
-    from .models import BUILDERS, GaussianModel
+    from . import kinds
+    from .models import GaussianModel
 
     if isinstance(model, GaussianModel):
         return model
-    if isinstance(model, str):
-        if model not in BUILDERS:
-            raise choices_error("model", model, sorted(BUILDERS))
-        return BUILDERS[model]
+    if isinstance(model, (str, kinds.ModelKind)):
+        return kinds.model(model).builder_class()
     if isinstance(model, type) and issubclass(model, GaussianModel):
         return model
     raise SpecificationError(
@@ -655,8 +654,9 @@ def design_check(source, model="RandomIntercept", formula=None, *, truth="refere
         The panel whose structure is kept (estimation rows, units, occasions, covariate
         values). ``None`` when ``model`` is a built model.
     model : str, builder class or built model, default "RandomIntercept"
-        ``"Pooled"``, ``"RandomIntercept"``, ``"WithinBetween"``, ``"CorrelatedEffects"``
-        or ``"FixedEffects"``; a built model is refitted as it is (its priors included).
+        A registered model kind (:mod:`bayespanel.kinds`) by class, class name
+        (``"WithinBetween"``) or snake-case name (``"within_between"``); a built model is
+        refitted as it is (its priors included).
     formula : str, optional
         Needed with a panel and a builder name.
     truth : dict, "reference" or a fitted result, default "reference"
@@ -798,11 +798,6 @@ class _progress:
 
 
 # ---------------------------------------------------------------------------- command line
-_CLI_MODELS = {"pooled": "Pooled", "random_intercept": "RandomIntercept",
-               "within_between": "WithinBetween", "correlated_effects": "CorrelatedEffects",
-               "fixed_effects": "FixedEffects"}
-
-
 def _pairs(items, option):
     out = {}
     for text in items or []:
@@ -823,8 +818,10 @@ def run_command(args) -> int:
     from .cli import delimiter_option
     from .panel import Panel
 
-    if args.model not in _CLI_MODELS:
-        raise choices_error("--model", args.model, list(_CLI_MODELS))
+    from . import kinds
+
+    if args.model not in kinds.model_names():
+        raise choices_error("--model", args.model, kinds.model_names())
     coef = _pairs(args.coef, "--coef")
     if coef:
         missing = [o for o, v in (("--sigma-obs", args.sigma_obs),) if v is None]
@@ -837,7 +834,7 @@ def run_command(args) -> int:
         truth = "reference"
     panel = Panel.from_file(args.file, unit=args.unit, time=args.time,
                             sep=delimiter_option(args.delimiter))
-    res = design_check(panel, _CLI_MODELS[args.model], args.formula, truth=truth,
+    res = design_check(panel, args.model, args.formula, truth=truth,
                        replicates=args.replicates, difference=_pairs(args.difference,
                                                                      "--difference") or None,
                        draws=args.draws, tune=args.tune, chains=args.chains,

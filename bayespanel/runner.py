@@ -36,6 +36,7 @@ from pathlib import Path
 
 import numpy as np
 
+from . import kinds
 from .errors import (BayespanelError, EstimationError, SamplingWarning, SpecificationError,
                      choices_error)
 from .models.families import FAMILIES
@@ -43,32 +44,18 @@ from .models.sampling import MIN_DRAWS
 from .occasions import true_occasion_coef
 from .resultshape import DEFAULT_INTERVAL
 from .terms import BETWEEN, UNIT_MEAN, WITHIN, part_label
-from .report.text import BAYES_MODELS, COUNTERPART, REFERENCE_FITS
 
-__all__ = ["Settings", "run", "load_settings", "MODEL_NAMES", "REFERENCE_NAMES", "LEVELS",
-           "BUILDER_OF", "LATENT_MODELS", "GLM_REFERENCES", "software_versions"]
+__all__ = ["Settings", "run", "load_settings", "LEVELS", "software_versions"]
 
-#: command-line model names -> builder class names in :mod:`bayespanel.models`
-BUILDER_OF = {"pooled": "Pooled", "random_intercept": "RandomIntercept",
-              "within_between": "WithinBetween", "correlated_effects": "CorrelatedEffects",
-              "fixed_effects": "FixedEffects"}
-MODEL_NAMES = tuple(BUILDER_OF)
-REFERENCE_NAMES = ("pooled", "within", "between", "random", "mundlak", "within_between")
 LEVELS = ("occasion", "unit")
 SAMPLERS = ("auto", "pymc", "nutpie")
 COVS = ("classical", "cluster", "cr2")
 RE_METHODS = ("swamy-arora", "ml", "reml")
 _PACKAGES = ("bayespanel", "numpy", "scipy", "pandas", "xarray", "pymc", "pytensor", "arviz",
              "arviz-base", "arviz-stats", "formulaic", "matplotlib", "h5netcdf", "nutpie")
-#: models that take a latent-effect family or random slopes (the others refuse them)
-LATENT_MODELS = ("random_intercept", "within_between", "correlated_effects")
-#: reference fits of the logit / log-link families: pooled GLMs on these columns
-GLM_REFERENCES = ("pooled", "mundlak", "within_between")
 _LOG = logging.getLogger("bayespanel")
 LOO_OBSERVATIONS = 400
 MAX_REFITS = 10
-_KIND_OF = {"pooled": "pooled", "random_intercept": "random", "within_between": "within_between",
-            "correlated_effects": "mundlak", "fixed_effects": "within"}
 
 
 @dataclass(frozen=True)
@@ -82,8 +69,9 @@ class Settings:
     data : str, optional
         CSV or Parquet file (``None`` when a DataFrame is passed to :func:`run`).
     models : tuple of str
-        Bayesian models by command-line name: ``pooled``, ``random_intercept``,
-        ``within_between``, ``correlated_effects``, ``fixed_effects``.
+        Bayesian models by snake-case name (:func:`bayespanel.kinds.model_names`):
+        ``pooled``, ``random_intercept``, ``within_between``, ``correlated_effects``,
+        ``fixed_effects`` and any kind registered later; default all of them.
     reference : tuple of str
         Reference fits: ``pooled``, ``within``, ``between``, ``random``, ``mundlak``,
         ``within_between``.
@@ -125,8 +113,10 @@ class Settings:
     family : str
         Outcome family (docs/families.md): ``gaussian`` (default), ``student_t``,
         ``bernoulli``, ``binomial``, ``poisson``, ``negative_binomial``. Families other
-        than ``gaussian``, and random slopes, are fitted by ``LATENT_MODELS`` only; their
-        reference fits are pooled GLMs (``GLM_REFERENCES``) for the logit and log links.
+        than ``gaussian``, and random slopes, are fitted by the kinds with latent effects
+        only (:func:`bayespanel.kinds.latent_model_names`); their reference fits are
+        pooled GLMs (:func:`bayespanel.kinds.glm_reference_names`) for the logit and log
+        links.
     trials : str, optional
         Column with the binomial trials of every row (``family="binomial"`` only).
     exposure : str, optional
@@ -176,8 +166,10 @@ class Settings:
 
     def __post_init__(self):
         # values of the wrong type are kept as they are for check() to refuse by name
-        defaults = {"models": LATENT_MODELS if self.latent else MODEL_NAMES,
-                    "reference": GLM_REFERENCES if self.glm_reference else REFERENCE_NAMES}
+        defaults = {"models": (kinds.latent_model_names() if self.latent
+                               else kinds.model_names()),
+                    "reference": (kinds.glm_reference_names() if self.glm_reference
+                                  else kinds.reference_names())}
         for name in ("models", "reference", "random_slopes"):
             v = getattr(self, name)
             if v is None:
@@ -185,6 +177,8 @@ class Settings:
             if isinstance(v, str):
                 v = tuple(x.strip() for x in v.split(",") if x.strip())
             if isinstance(v, (list, tuple)):
+                if name == "models":  # class names and classes become snake-case names
+                    v = [kinds.snake_name(m) for m in v]
                 object.__setattr__(self, name, tuple(v))
         if isinstance(self.data, os.PathLike):
             object.__setattr__(self, "data", os.fspath(self.data))
@@ -228,11 +222,11 @@ class Settings:
             raise SpecificationError(f"priors={self.priors!r} must be a mapping of prior keys "
                                      "to families")
         for m in self.models:
-            if m not in MODEL_NAMES:
-                raise choices_error("models", m, MODEL_NAMES)
+            if m not in kinds.model_names():
+                raise choices_error("models", m, kinds.model_names())
         for r in self.reference:
-            if r not in REFERENCE_NAMES:
-                raise choices_error("reference", r, REFERENCE_NAMES)
+            if r not in kinds.reference_names():
+                raise choices_error("reference", r, kinds.reference_names())
         if len(set(self.models)) != len(self.models):
             raise SpecificationError(f"models={list(self.models)!r} names a model twice")
         if not self.models and not self.reference:
@@ -346,19 +340,19 @@ class Settings:
                                          "family other than gaussian, or random slopes)")
             return
         what = (f"family={self.family!r}" if self.family != "gaussian" else "random slopes")
-        bad = [m for m in self.models if m not in LATENT_MODELS]
+        bad = [m for m in self.models if m not in kinds.latent_model_names()]
         if bad:
             raise SpecificationError(
                 f"models: {', '.join(bad)} cannot fit {what}; the models that can are "
-                f"{', '.join(LATENT_MODELS)}")
+                f"{', '.join(kinds.latent_model_names())}")
         if self.glm_reference:
-            bad = [r for r in self.reference if r not in GLM_REFERENCES]
+            bad = [r for r in self.reference if r not in kinds.glm_reference_names()]
             if bad:
                 raise SpecificationError(
                     f"reference: {', '.join(bad)} has no counterpart for family="
                     f"{self.family!r} (a linear fit of a {self.family} outcome would not match "
                     f"the models); the reference fits for it are pooled GLMs on the columns "
-                    f"of {', '.join(GLM_REFERENCES)}")
+                    f"of {', '.join(kinds.glm_reference_names())}")
             if self.cov == "cr2":
                 raise SpecificationError(
                     f"cov='cr2' is for the linear reference fits; the reference GLMs of "
@@ -786,7 +780,7 @@ def _isolated(failed, say, name, title, what, refuse=()):
 def _reference_stage(settings, design, say, failed):
     fits, out = {}, []
     for name in settings.reference:
-        with _isolated(failed, say, name, REFERENCE_FITS[name][0], "reference fit",
+        with _isolated(failed, say, name, kinds.reference(name).title, "reference fit",
                        refuse=BayespanelError):
             res, entry = _reference_one(name, settings, design)
             fits[name] = res
@@ -799,26 +793,27 @@ def _reference_one(name, settings, design):
     from . import reference as ref
 
     prob = settings.interval
-    kw = {"method": settings.re_method} if name in ("random", "mundlak", "within_between") else {}
+    components = kinds.reference(name).variance_components
+    kw = {"method": settings.re_method} if components else {}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         res = ref.fit_design(design, name, cov=settings.cov, **kw)
     tab = res.table(prob)
     entry = {
-        "name": name, "title": REFERENCE_FITS[name][0],
-        "assumptions": _assumptions(res, settings.cov) or REFERENCE_FITS[name][1],
+        "name": name, "title": kinds.reference(name).title,
+        "assumptions": _assumptions(res, settings.cov) or kinds.reference(name).assumptions,
         "estimator": name, "method": res.method, "cov": res.cov_type,
         "coefficients": [{"term": t, "estimate": float(r["estimate"]), "se": float(r["se"]),
                           "df": float(r["df"]) if np.isfinite(r["df"]) else None,
                           "p_value": float(r["p"]), "lower": float(r["lower"]),
                           "upper": float(r["upper"])} for t, r in tab.iterrows()],
         "sigma_unit": res.sigma_unit, "sigma_obs": res.sigma_obs,
-        "icc": res.icc if name in ("random", "mundlak", "within_between") else None,
+        "icc": res.icc if components else None,
         "n_obs": res.n_obs, "n_units": res.n_units,
         "not_estimated": {str(k): str(v) for k, v in res.dropped.items()},
         "test_distribution": res.test_distribution,
     }
-    if name in ("random", "mundlak", "within_between"):
+    if components:
         entry["unit_variance_at_zero"] = res.unit_variance_at_zero
         entry["boundary_note"] = res.boundary_note() or None
     if name == "within":
@@ -1061,13 +1056,11 @@ def _contrast_entries(ct) -> list:
 
 
 def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, progress_bars):
-    from . import models
-
     if settings.latent:  # a family other than the Gaussian, or random slopes
         from .family_stage import bayes_one
         return bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say,
                          progress_bars)
-    cls = getattr(models, BUILDER_OF[name])
+    cls = kinds.model(name).builder_class()
     prob = settings.interval
     large = getattr(design, "out_of_core", False)
     with warnings.catch_warnings():
@@ -1090,12 +1083,12 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
     coefs = [_floats({"term": t, "mean": r["mean"], "sd": r["sd"], "lower": r[lo], "upper": r[hi],
                       "rhat": r["rhat"], "ess_bulk": r["ess_bulk"], "ess_tail": r["ess_tail"]})
              for t, r in summ.loc[post.labels].iterrows()]
-    kind = _KIND_OF[name]
+    kind = kinds.model(name).columns
     coef_d = post._flat("coef")
     sigma_d = post._flat("sigma_obs")
     tau_d = (post._flat("sigma_unit") if m.unit_effects == "random"
              else (np.zeros_like(sigma_d) if m.unit_effects == "none" else None))
-    ref_for = ref_fits.get(COUNTERPART[name])
+    ref_for = ref_fits.get(kinds.model(name).reference)
     say(f"  {name}: summaries, variance partition, contrasts, predictive checks")
     vp = None
     if m.unit_effects == "random":
@@ -1134,8 +1127,8 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
         (Path(out_dir) / "posteriors").mkdir(parents=True, exist_ok=True)
         post.save(Path(out_dir) / rel)  # the staging folder: published when the run completes
     entry = {
-        "name": name, "builder": BUILDER_OF[name], "title": BAYES_MODELS[name][0],
-        "assumptions": BAYES_MODELS[name][1], "reference_counterpart": COUNTERPART[name],
+        "name": name, "builder": kinds.model(name).class_name, "title": kinds.model(name).title,
+        "assumptions": kinds.model(name).assumptions, "reference_counterpart": kinds.model(name).reference,
         "posterior_file": rel,
         "sampling": _floats({"draws": settings.draws, "tune": settings.tune,
                              "chains": settings.chains, "seed": settings.seed,
@@ -1260,7 +1253,7 @@ def _comparison_large(settings, design, posts, entries, say):
     rows = []
     for name in order + [n for n in results if n not in scored]:
         r = scored.get(name)
-        rec = {"model": name, "title": BAYES_MODELS[name][0], "kind": "bayesian",
+        rec = {"model": name, "title": kinds.model(name).title, "kind": "bayesian",
                "elpd": None, "se": None, "elpd_diff": None, "se_diff": None,
                "method": "undefined", "level": settings.level,
                "note": by_name[name]["loo"]["warning"]}
@@ -1296,17 +1289,17 @@ def _comparison_stage(settings, design, posts, ref_fits, entries, say, failed=No
         else:
             say(f"LOO of {name} at the {settings.level} level (PSIS, "
                 f"{design.n if settings.level == 'occasion' else design.n_units} points)")
-        with _isolated(failed if failed is not None else [], say, name, BAYES_MODELS[name][0],
+        with _isolated(failed if failed is not None else [], say, name, kinds.model(name).title,
                        "LOO"):
             lr, by_name[name]["loo"] = _loo_entry(post, settings.level, settings=settings)
             fits[name] = lr if lr is not None else post
             models[name] = post
-            titles[name] = BAYES_MODELS[name][0]
+            titles[name] = kinds.model(name).title
     for name, res in ref_fits.items():
         if name == "between" or settings.glm_reference:
             continue  # between: one row per unit; GLMs: no cross-validation (docs/families.md)
         fits[f"ref:{name}"] = models[f"ref:{name}"] = res
-        titles[f"ref:{name}"] = REFERENCE_FITS[name][0] + " (ref.)"
+        titles[f"ref:{name}"] = kinds.reference(name).title + " (ref.)"
     if not fits:  # e.g. only the between fit, or only GLM references: nothing to score
         say("LOO comparison skipped: no fit is scored by LOO (the between fit has one row "
             "per unit; reference GLMs are not cross-validated)")
@@ -1358,7 +1351,7 @@ def _truth_by_model(truth, entries, ref_entries):
         "random": dict(equal), "pooled": dict(equal),
     }
     out = {}
-    for key, kind, e in ([(e["name"], _KIND_OF[e["name"]], e) for e in entries]
+    for key, kind, e in ([(e["name"], kinds.model(e["name"]).columns, e) for e in entries]
                          + [(f"ref:{e['name']}", e["name"], e) for e in ref_entries]):
         out[key] = dict(param[kind])
         for row in e["coefficients"]:  # occasion terms (0 when the simulation has none)
@@ -1477,14 +1470,15 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
             tests = _tests_stage(design, say)
     # a model this design cannot hold (fixed effects without a covariate that varies
     # within units) is refused as bad input here, before anything is sampled
-    labels = {name: design.labels(_KIND_OF[name]) for name in settings.models}
+    labels = {name: design.labels(kinds.model(name).columns) for name in settings.models}
     _check_prior_keys(settings, labels)
-    if "fixed_effects" in settings.models and design.time_constant:
-        notes = notes + [f"fixed_effects leaves out {', '.join(map(repr, design.time_constant))}"
-                         ": constant within units, absorbed by the unit intercepts"]
+    for name in settings.models:
+        if kinds.model(name).columns == "within" and design.time_constant:
+            notes = notes + [f"{name} leaves out {', '.join(map(repr, design.time_constant))}"
+                             ": constant within units, absorbed by the unit intercepts"]
     posts, entries = {}, []
     for name in settings.models:
-        with _isolated(failed, say, name, BAYES_MODELS[name][0], "Bayesian fit"):
+        with _isolated(failed, say, name, kinds.model(name).title, "Bayesian fit"):
             post, entry = _bayes_one(name, settings, panel, design, labels[name], ref_fits,
                                      out_dir, say, progress_bars)
             posts[name] = post

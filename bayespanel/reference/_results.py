@@ -6,19 +6,12 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from .. import kinds
 from ..mathcore import intraclass_correlation
 from ..resultshape import DEFAULT_INTERVAL, check_prob
 
 __all__ = ["ReferenceResult"]
 
-_TITLES = {
-    "pooled": "Pooled least squares",
-    "within": "Fixed effects (within)",
-    "between": "Between (unit means)",
-    "random": "Random intercept",
-    "mundlak": "Random intercept with unit means (Mundlak)",
-    "within_between": "Within-between (hybrid) random intercept",
-}
 _COV_TITLES = {
     "classical": "classical",
     "cluster": "cluster-robust by unit (CR1)",
@@ -290,7 +283,8 @@ class ReferenceResult:
 
     # ------------------------------------------------------------------ display
     def summary(self) -> str:
-        head = _TITLES.get(self.estimator, self.estimator)
+        head = (kinds.reference(self.estimator).title
+                if self.estimator in kinds.reference_names() else self.estimator)
         if self.method:
             head += f", variance components by {self.method}"
         lines = [head, f"covariance: {_COV_TITLES.get(self.cov_type, self.cov_type)}",

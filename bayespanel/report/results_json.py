@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from .. import kinds
 from ..errors import SpecificationError
 from ..outputs import write_atomic
 
@@ -68,9 +69,15 @@ def write_json(path, results: dict) -> Path:
 
 
 def schema() -> dict:
-    """The JSON Schema (draft 2020-12) of ``results.json``."""
+    """The JSON Schema (draft 2020-12) of ``results.json``.
+
+    The names a model and a reference fit may have are those registered in
+    :mod:`bayespanel.kinds` (the file lists the built-in ones)."""
     text = resources.files("bayespanel").joinpath("schema/results.schema.json").read_text("utf-8")
-    return json.loads(text)
+    out = json.loads(text)
+    out["$defs"]["model"]["properties"]["name"]["enum"] = list(kinds.model_names())
+    out["$defs"]["reference_fit"]["properties"]["name"]["enum"] = list(kinds.reference_names())
+    return out
 
 
 def validate(results: dict) -> None:

@@ -1,15 +1,15 @@
 """Plain-language text of the report: what each model assumes, how to read the numbers.
 
 Kept apart from the layout so the same words go into ``results.json``, the HTML report
-and the docs. The wording is ours.
+and the docs. The wording is ours. What each model kind assumes is registered with the
+kind (:mod:`bayespanel.kinds`: ``title`` and ``assumptions``).
 """
 
 from __future__ import annotations
 
 import re
 
-__all__ = ["BAYES_MODELS", "REFERENCE_FITS", "COUNTERPART", "CAUTION", "LEVEL_TEXT",
-           "LABELS", "HEADINGS", "label", "model_title", "reference_title", "printable"]
+__all__ = ["CAUTION", "LEVEL_TEXT", "LABELS", "HEADINGS", "label", "printable"]
 
 #: Display labels of the variance quantities, defined once for every table and output
 #: (HTML, Markdown, LaTeX, console). Keys are the names results.json and the Python
@@ -43,65 +43,6 @@ def label(key: str) -> str:
     """The display label of a quantity (the key itself when it has none)."""
     return LABELS.get(key, key)
 
-#: Bayesian builders by command-line name: (title, assumptions in plain words).
-BAYES_MODELS = {
-    "pooled": (
-        "Pooled regression",
-        "One intercept for every unit: units differ only through the covariates. Rows of "
-        "the same unit are treated as independent, which overstates precision when units "
-        "differ in their baseline. Useful as a floor to compare against.",
-    ),
-    "random_intercept": (
-        "Random intercept",
-        "Each unit has its own baseline, drawn from a normal distribution whose SD is "
-        "the unit SD. Each covariate has one effect, which mixes its within-unit and its "
-        "between-unit association; this is right only if the two are equal, i.e. if the "
-        "unit baselines are unrelated to the covariates.",
-    ),
-    "within_between": (
-        "Within-between (hybrid)",
-        "Each time-varying covariate is split into the unit's mean (between part) and the "
-        "occasion's deviation from it (within part), each with its own effect; unit "
-        "baselines vary as in the random-intercept model. The within effect is protected "
-        "against stable differences between units; time-constant covariates keep one effect.",
-    ),
-    "correlated_effects": (
-        "Correlated random effects (Mundlak)",
-        "The random-intercept model with the unit means of the time-varying covariates "
-        "added. Their coefficients measure how far the between effect departs from the "
-        "within effect (the contextual effect); the covariates' own coefficients equal the "
-        "within effects.",
-    ),
-    "fixed_effects": (
-        "Fixed effects",
-        "Every unit has its own free baseline, so only changes within units inform the "
-        "coefficients; covariates that never change within a unit cannot be estimated. "
-        "Predicts occasions of known units only: a new unit's baseline is unknown.",
-    ),
-}
-
-#: Reference (frequentist) fits: (title, assumptions).
-REFERENCE_FITS = {
-    "pooled": ("Pooled OLS", "Least squares on all rows, cluster-robust errors by unit."),
-    "within": ("Within (fixed effects)", "Least squares on unit-demeaned rows; degrees of "
-               "freedom corrected for the absorbed unit means."),
-    "between": ("Between", "Least squares on the unit means, one row per unit."),
-    "random": ("Random effects (GLS)", "Feasible GLS with variance components estimated "
-               "by the method named beside it."),
-    "mundlak": ("Mundlak (GLS)", "Random-effects GLS with the unit means of the "
-                "time-varying covariates added."),
-    "within_between": ("Within-between (GLS)", "Random-effects GLS on the within and "
-                       "between parts of each time-varying covariate."),
-}
-
-#: The reference fit set beside each Bayesian model.
-COUNTERPART = {
-    "pooled": "pooled",
-    "random_intercept": "random",
-    "within_between": "within_between",
-    "correlated_effects": "mundlak",
-    "fixed_effects": "within",
-}
 
 LEVEL_TEXT = {
     "occasion": ("leave one occasion out: how well each model predicts a further occasion "
@@ -118,14 +59,6 @@ CAUTION = (
     "units and carry every confounder that differs between them. A model that predicts "
     "better by LOO is not thereby closer to the causal truth."
 )
-
-
-def model_title(name: str) -> str:
-    return BAYES_MODELS.get(name, (name.replace("_", " ").capitalize(), ""))[0]
-
-
-def reference_title(name: str) -> str:
-    return REFERENCE_FITS.get(name, (name.replace("_", " ").capitalize(), ""))[0]
 
 
 _UNPRINTABLE = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u061c\u200b-\u200f\u2028-\u202e"

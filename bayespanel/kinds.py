@@ -1,0 +1,327 @@
+"""The registry of model kinds: every fact about a kind, in one place.
+
+Two sorts of kinds are registered:
+
+- :class:`ModelKind`, a Bayesian model built by a class in :mod:`bayespanel.models`. It
+  has three names: the class name (``"RandomIntercept"``), the snake-case name the
+  command line and ``results.json`` use (``"random_intercept"``) and the name of its
+  columns (``"random"``, a ``Design.matrices`` kind, which is also the name of its
+  reference counterpart).
+- :class:`ReferenceKind`, a frequentist reference fit of :mod:`bayespanel.reference`
+  (``"pooled"``, ``"within"``, ``"between"``, ``"random"``, ``"mundlak"``,
+  ``"within_between"``); its name is also the ``Design.matrices`` kind of its columns.
+
+The command line's choices, the schema's enums, the report's titles and texts and the
+tables of the runner and the design check read these records; a new kind is one
+:func:`register` call (in its own file) plus its builder. Every public function that
+takes a model accepts the class, the class name and the snake-case name alike
+(:func:`model`).
+
+>>> from bayespanel import kinds
+>>> kinds.model("RandomIntercept").name
+'random_intercept'
+>>> kinds.model("fixed_effects").columns
+'within'
+
+This module is a lower layer: it imports nothing of the package above ``errors``; the
+builder classes are named by import path and loaded on first use.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from importlib import import_module
+
+from .errors import SpecificationError, choices_error
+
+__all__ = ["ModelKind", "ReferenceKind", "register", "unregister", "model", "reference",
+           "models", "references", "model_names", "reference_names",
+           "latent_model_names", "glm_reference_names", "snake_name", "COLUMNS",
+           "UNIT_EFFECTS"]
+
+#: the column maps of ``Design.matrices`` a kind can use
+COLUMNS = ("pooled", "random", "within", "between", "mundlak", "within_between")
+#: what the unit intercepts are: none (``tau = 0``), random (``N(0, sigma_unit^2)``) or
+#: fixed (flat prior, integrated out to the within likelihood)
+UNIT_EFFECTS = ("none", "random", "fixed")
+
+
+@dataclass(frozen=True)
+class ModelKind:
+    """Every fact about one Bayesian model kind.
+
+    Attributes
+    ----------
+    name : str
+        Snake-case name used by the command line, analysis files and ``results.json``.
+    class_name : str
+        Name of the builder class.
+    builder : str or type
+        The builder class, or its import path ``"package.module:Class"`` (loaded on
+        first use by :meth:`builder_class`).
+    columns : str
+        The ``Design.matrices`` kind of its columns (one of :data:`COLUMNS`).
+    unit_effects : {"none", "random", "fixed"}
+    reference : str or None
+        Name of the reference fit shown beside it (a :class:`ReferenceKind`).
+    title : str
+        Title in the report, tables and ``results.json``.
+    assumptions : str
+        What the model assumes, in plain words (report and ``results.json``).
+    latent : bool
+        Whether it is fitted with the outcome families other than Gaussian and with
+        random slopes (through latent unit effects).
+    glm_reference : str or None
+        The pooled GLM beside it for those families (a :class:`ReferenceKind` with a
+        ``glm_title``).
+    """
+
+    name: str
+    class_name: str
+    builder: object
+    columns: str
+    unit_effects: str
+    reference: str | None
+    title: str
+    assumptions: str
+    latent: bool = False
+    glm_reference: str | None = None
+
+    def __post_init__(self):
+        if self.columns not in COLUMNS:
+            raise choices_error("columns", self.columns, COLUMNS)
+        if self.unit_effects not in UNIT_EFFECTS:
+            raise choices_error("unit_effects", self.unit_effects, UNIT_EFFECTS)
+
+    def builder_class(self) -> type:
+        """The builder class (imported on first use when registered by path)."""
+        if isinstance(self.builder, str):
+            mod, _, attr = self.builder.partition(":")
+            return getattr(import_module(mod), attr)
+        return self.builder
+
+    @property
+    def contrasts(self) -> bool:
+        """Whether the columns hold separate within and between effects (so the model
+        has between-minus-within contrasts)."""
+        return self.columns in ("within_between", "mundlak")
+
+
+@dataclass(frozen=True)
+class ReferenceKind:
+    """Every fact about one frequentist reference fit.
+
+    Attributes
+    ----------
+    name : str
+        Its name (``bp.reference.<name>``, ``results.json``); also the ``Design.matrices``
+        kind of its columns.
+    title : str
+        Title in the report, tables, ``results.json`` and the printed summary.
+    assumptions : str
+        One-line statement of the estimator (the report's fallback text).
+    unit_effects : {"none", "random", "fixed"}
+    variance_components : bool
+        Whether the fit estimates a unit variance by a method (``method=``).
+    glm_title : str or None
+        First word(s) of the title of the pooled GLM on these columns (the reference of
+        the non-Gaussian families); None when there is none.
+    """
+
+    name: str
+    title: str
+    assumptions: str
+    unit_effects: str
+    variance_components: bool = False
+    glm_title: str | None = None
+
+    def __post_init__(self):
+        if self.name not in COLUMNS:
+            raise choices_error("name", self.name, COLUMNS)
+        if self.unit_effects not in UNIT_EFFECTS:
+            raise choices_error("unit_effects", self.unit_effects, UNIT_EFFECTS)
+
+
+_MODELS: dict[str, ModelKind] = {}
+_REFERENCES: dict[str, ReferenceKind] = {}
+
+
+def register(kind):
+    """Add a :class:`ModelKind` or :class:`ReferenceKind` to the registry.
+
+    Raises :class:`~bayespanel.errors.SpecificationError` when its name (or, for a model,
+    its class name) is taken, or when a model's reference is not registered.
+    """
+    if isinstance(kind, ReferenceKind):
+        if kind.name in _REFERENCES:
+            raise SpecificationError(f"a reference kind named {kind.name!r} is registered")
+        _REFERENCES[kind.name] = kind
+        return kind
+    if not isinstance(kind, ModelKind):
+        raise SpecificationError(
+            f"register takes a ModelKind or a ReferenceKind, got {type(kind).__name__}")
+    taken = {n for k in _MODELS.values() for n in (k.name, k.class_name)}
+    clash = [n for n in (kind.name, kind.class_name) if n in taken]
+    if clash:
+        raise SpecificationError(f"a model kind named {clash[0]!r} is registered")
+    for ref in (kind.reference, kind.glm_reference):
+        if ref is not None and ref not in _REFERENCES:
+            raise choices_error("reference", ref, list(_REFERENCES))
+    _MODELS[kind.name] = kind
+    return kind
+
+
+def unregister(name: str) -> None:
+    """Remove the model kind of this snake-case name (for kinds added at run time)."""
+    _MODELS.pop(model(name).name)
+
+
+def model(which) -> ModelKind:
+    """The registered model kind of a builder class, a class name or a snake-case name.
+
+    Parameters
+    ----------
+    which : ModelKind, type or str
+        ``RandomIntercept`` (the class), ``"RandomIntercept"`` or ``"random_intercept"``.
+        A class registered under no kind resolves through its nearest registered base.
+
+    Raises
+    ------
+    SpecificationError
+        Naming the value and the valid names.
+    """
+    if isinstance(which, ModelKind):
+        return which
+    if isinstance(which, type):
+        for cls in which.__mro__:
+            for k in _MODELS.values():
+                if k.class_name == cls.__name__ and k.builder_class() is cls:
+                    return k
+        raise SpecificationError(f"{which.__name__} is not a registered model kind; choose "
+                                 "one of " + ", ".join(k.class_name for k in _MODELS.values()))
+    for k in _MODELS.values():
+        if which in (k.name, k.class_name):
+            return k
+    raise choices_error("model", which, model_names())
+
+
+def reference(name: str) -> ReferenceKind:
+    """The registered reference kind of this name."""
+    if isinstance(name, ReferenceKind):
+        return name
+    if name not in _REFERENCES:
+        raise choices_error("reference", name, reference_names())
+    return _REFERENCES[name]
+
+
+def models() -> tuple:
+    """Every registered model kind, in registration order."""
+    return tuple(_MODELS.values())
+
+
+def references() -> tuple:
+    """Every registered reference kind, in registration order."""
+    return tuple(_REFERENCES.values())
+
+
+def model_names() -> tuple:
+    """Snake-case names of the registered model kinds (the command line's choices)."""
+    return tuple(_MODELS)
+
+
+def reference_names() -> tuple:
+    """Names of the registered reference kinds."""
+    return tuple(_REFERENCES)
+
+
+def latent_model_names() -> tuple:
+    """Snake-case names of the model kinds fitted with latent unit effects (the outcome
+    families other than Gaussian and random slopes); the others refuse those."""
+    return tuple(k.name for k in _MODELS.values() if k.latent)
+
+
+def glm_reference_names() -> tuple:
+    """Names of the reference kinds with a pooled GLM on their columns (the reference
+    fits of the logit and log-link families)."""
+    return tuple(k.name for k in _REFERENCES.values() if k.glm_title)
+
+
+def snake_name(which):
+    """The snake-case name of a registered model kind given by any of its names or its
+    class; anything else is returned as it is (for the caller's check to refuse)."""
+    try:
+        return model(which).name
+    except (SpecificationError, TypeError):
+        return which
+
+
+# ---------------------------------------------------------------------- the built-in kinds
+for _ref in (
+    ReferenceKind("pooled", "Pooled OLS",
+                  "Least squares on all rows, cluster-robust errors by unit.",
+                  unit_effects="none", glm_title="Pooled"),
+    ReferenceKind("within", "Within (fixed effects)",
+                  "Least squares on unit-demeaned rows; degrees of freedom corrected for "
+                  "the absorbed unit means.", unit_effects="fixed"),
+    ReferenceKind("between", "Between",
+                  "Least squares on the unit means, one row per unit.", unit_effects="none"),
+    ReferenceKind("random", "Random effects (GLS)",
+                  "Feasible GLS with variance components estimated by the method named "
+                  "beside it.", unit_effects="random", variance_components=True),
+    ReferenceKind("mundlak", "Mundlak (GLS)",
+                  "Random-effects GLS with the unit means of the time-varying covariates "
+                  "added.", unit_effects="random", variance_components=True,
+                  glm_title="Mundlak"),
+    ReferenceKind("within_between", "Within-between (GLS)",
+                  "Random-effects GLS on the within and between parts of each time-varying "
+                  "covariate.", unit_effects="random", variance_components=True,
+                  glm_title="Within-between"),
+):
+    register(_ref)
+
+_BUILDERS = "bayespanel.models.builders:"
+for _kind in (
+    ModelKind(
+        "pooled", "Pooled", _BUILDERS + "Pooled", columns="pooled", unit_effects="none",
+        reference="pooled", title="Pooled regression",
+        assumptions="One intercept for every unit: units differ only through the covariates. "
+        "Rows of the same unit are treated as independent, which overstates precision when "
+        "units differ in their baseline. Useful as a floor to compare against."),
+    ModelKind(
+        "random_intercept", "RandomIntercept", _BUILDERS + "RandomIntercept",
+        columns="random", unit_effects="random", reference="random",
+        title="Random intercept",
+        assumptions="Each unit has its own baseline, drawn from a normal distribution whose "
+        "SD is the unit SD. Each covariate has one effect, which mixes its within-unit and "
+        "its between-unit association; this is right only if the two are equal, i.e. if the "
+        "unit baselines are unrelated to the covariates.",
+        latent=True, glm_reference="pooled"),
+    ModelKind(
+        "within_between", "WithinBetween", _BUILDERS + "WithinBetween",
+        columns="within_between", unit_effects="random", reference="within_between",
+        title="Within-between (hybrid)",
+        assumptions="Each time-varying covariate is split into the unit's mean (between "
+        "part) and the occasion's deviation from it (within part), each with its own effect; "
+        "unit baselines vary as in the random-intercept model. The within effect is "
+        "protected against stable differences between units; time-constant covariates keep "
+        "one effect.",
+        latent=True, glm_reference="within_between"),
+    ModelKind(
+        "correlated_effects", "CorrelatedEffects", _BUILDERS + "CorrelatedEffects",
+        columns="mundlak", unit_effects="random", reference="mundlak",
+        title="Correlated random effects (Mundlak)",
+        assumptions="The random-intercept model with the unit means of the time-varying "
+        "covariates added. Their coefficients measure how far the between effect departs "
+        "from the within effect (the contextual effect); the covariates' own coefficients "
+        "equal the within effects.",
+        latent=True, glm_reference="mundlak"),
+    ModelKind(
+        "fixed_effects", "FixedEffects", _BUILDERS + "FixedEffects",
+        columns="within", unit_effects="fixed", reference="within", title="Fixed effects",
+        assumptions="Every unit has its own free baseline, so only changes within units "
+        "inform the coefficients; covariates that never change within a unit cannot be "
+        "estimated. Predicts occasions of known units only: a new unit's baseline is "
+        "unknown."),
+):
+    register(_kind)
+del _ref, _kind

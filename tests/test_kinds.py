@@ -1,0 +1,89 @@
+"""The registry of model kinds (bayespanel.kinds): one record per kind, read everywhere.
+
+Outside sources, named beside each check: the Grunfeld investment panel shipped by
+statsmodels.datasets; statsmodels' OLS and MixedLM (REML) fitted on it.
+"""
+
+import warnings
+
+import numpy as np
+import pytest
+import statsmodels.formula.api as smf
+
+import bayespanel as bp
+from bayespanel import kinds
+from bayespanel.design import KINDS as DESIGN_KINDS
+from bayespanel.errors import SpecificationError
+from bayespanel.recovery import design_check
+from bayespanel.report.results_json import schema
+from bayespanel.runner import Settings
+
+FORMULA = "invest ~ value + capital"
+
+
+@pytest.fixture(scope="module")
+def panel(grunfeld):
+    return bp.Panel(grunfeld, unit="firm", time="year")
+
+
+def test_registered_facts_agree_with_the_builders_and_the_reference_functions():
+    assert set(kinds.COLUMNS) == set(DESIGN_KINDS)
+    for k in kinds.models():
+        cls = k.builder_class()
+        assert cls is getattr(bp, k.class_name)
+        assert (cls.kind, cls.unit_effects) == (k.columns, k.unit_effects), k.name
+        assert k.reference in kinds.reference_names()
+        assert kinds.reference(k.reference).unit_effects == k.unit_effects
+    for r in kinds.references():
+        assert callable(getattr(bp.reference, r.name))
+    assert kinds.latent_model_names() == ("random_intercept", "within_between",
+                                          "correlated_effects")
+
+
+def test_every_name_of_a_kind_resolves_to_the_same_record():
+    for k in kinds.models():
+        cls = k.builder_class()
+        assert kinds.model(k.name) is kinds.model(k.class_name) is kinds.model(cls) is k
+    with pytest.raises(SpecificationError, match="random_intercept"):
+        kinds.model("random")  # a column map, not a model name: the message lists the names
+    s = Settings(unit="firm", time="year", formula=FORMULA,
+                 models=("RandomIntercept", bp.FixedEffects, "within_between"))
+    assert s.models == ("random_intercept", "fixed_effects", "within_between")
+
+
+def test_design_check_takes_the_class_its_name_and_the_snake_name(panel, grunfeld):
+    runs = [design_check(panel, m, FORMULA, truth="reference", replicates=3, bayes=False,
+                         progress=False, seed=5)
+            for m in ("random_intercept", "RandomIntercept", bp.RandomIntercept)]
+    for other in runs[1:]:
+        assert other.truth == runs[0].truth
+        assert other.table().equals(runs[0].table())
+    # truth="reference" is the REML random-intercept fit on the real outcome; outside
+    # check: statsmodels MixedLM (REML) on the Grunfeld panel (statsmodels.datasets)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ml = smf.mixedlm(FORMULA, grunfeld, groups=grunfeld["firm"]).fit(reml=True)
+    for term, value in runs[0].truth["coef"].items():
+        assert value == pytest.approx(ml.fe_params[term], rel=1e-4, abs=1e-6)
+    assert runs[0].truth["sigma_obs"] == pytest.approx(np.sqrt(ml.scale), rel=1e-4)
+
+
+def test_a_reference_fit_has_one_title(panel, grunfeld):
+    res = bp.reference.pooled(panel, FORMULA)
+    assert res.summary().splitlines()[0] == kinds.reference("pooled").title == "Pooled OLS"
+    # the numbers under that title: statsmodels OLS on the same rows
+    ols = smf.ols(FORMULA, grunfeld).fit()
+    np.testing.assert_allclose(res.coef.to_numpy(), ols.params.to_numpy(), rtol=1e-10)
+
+
+def test_schema_enums_are_the_registered_names():
+    import json
+    from importlib import resources
+
+    on_disk = json.loads(resources.files("bayespanel").joinpath(
+        "schema/results.schema.json").read_text("utf-8"))["$defs"]
+    live = schema()["$defs"]
+    for part, names in (("model", kinds.model_names()),
+                        ("reference_fit", kinds.reference_names())):
+        assert on_disk[part]["properties"]["name"]["enum"] == list(names)
+        assert live[part]["properties"]["name"]["enum"] == list(names)
