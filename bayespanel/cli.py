@@ -21,7 +21,7 @@ from pathlib import Path
 import pandas as pd
 
 from . import kinds
-from .errors import BayespanelError, OutputError, SpecificationError
+from .errors import BayespanelError, OutputError, SpecificationError, choices_error
 from .report.text import printable
 
 EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT, EXIT_SAMPLING = 0, 1, 2, 3
@@ -523,10 +523,59 @@ def _family_args(p):
                         "divergences)")
 
 
-def cmd_design_check(args) -> int:
-    from .recovery import run_command
+def _pairs(items, option):
+    out = {}
+    for text in items or []:
+        if "=" not in text:
+            raise SpecificationError(f"{option} {text!r} must look like NAME=NUMBER")
+        k, v = text.rsplit("=", 1)
+        try:
+            out[k.strip()] = float(v)
+        except ValueError:
+            raise SpecificationError(f"{option} {text!r}: {v.strip()!r} is not a number") from None
+    return out
 
-    return run_command(args)
+
+def cmd_design_check(args) -> int:
+    """The ``design-check`` verb of the command line (see ``bayespanel design-check -h``)."""
+    from .panel import Panel
+    from .recovery import design_check
+
+    if args.model not in kinds.model_names():
+        raise choices_error("--model", args.model, kinds.model_names())
+    coef = _pairs(args.coef, "--coef")
+    if coef:
+        missing = [o for o, v in (("--sigma-obs", args.sigma_obs),) if v is None]
+        if missing:
+            raise SpecificationError("with --coef, give --sigma-obs (and --sigma-unit)")
+        truth = {"coef": coef, "sigma_unit": args.sigma_unit, "sigma_obs": args.sigma_obs}
+    elif args.sigma_unit is not None or args.sigma_obs is not None:
+        raise SpecificationError("--sigma-unit and --sigma-obs need --coef for every term")
+    else:
+        truth = "reference"
+    panel = Panel.from_file(args.file, unit=args.unit, time=args.time,
+                            sep=delimiter_option(args.delimiter))
+    res = design_check(panel, args.model, args.formula, truth=truth,
+                       replicates=args.replicates, difference=_pairs(args.difference,
+                                                                     "--difference") or None,
+                       draws=args.draws, tune=args.tune, chains=args.chains,
+                       bayes=not args.reference_only,
+                       seed=1 if args.seed is None else args.seed, workers=args.workers,
+                       progress=not args.quiet)
+    print(res.summary())
+    with pd.option_context("display.width", 160, "display.max_columns", 20,
+                           "display.float_format", "{:.3f}".format):
+        print(res.table().drop(columns=[c for c in res.table().columns
+                                        if c.startswith("mcse")]))
+    if args.out:
+        out = Path(args.out)
+        out.mkdir(parents=True, exist_ok=True)
+        res.table().to_csv(out / "design_check.csv")
+        fig = res.figure()
+        fig.savefig(out / "design_check.png", dpi=120)
+        print(f"table: {(out / 'design_check.csv').resolve()}")
+        print(f"figure: {(out / 'design_check.png').resolve()}")
+    return 0
 
 
 def _add_design_check_verb(sub):
