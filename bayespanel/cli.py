@@ -23,6 +23,7 @@ import pandas as pd
 from . import kinds
 from .errors import BayespanelError, OutputError, SpecificationError, choices_error
 from .report.text import printable
+from .terms import parse
 
 EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT, EXIT_SAMPLING = 0, 1, 2, 3
 _STRICT_HELP = ("exit with code 3 when the run had problems: sampling (divergences, high "
@@ -307,7 +308,7 @@ def _print_terms(rows):
     from .report import numbers
     from .report.text import label
 
-    occ = [r for r in rows if r[0].startswith("occasion[")]
+    occ = [r for r in rows if parse(r[0]).is_occasion]
     many = len(occ) > _OCCASIONS_LISTED
     cells = [(_fmt(r[1], r[2]), f"({numbers.uncertainty(r[2])})") for r in rows]
     w1 = max([len(c) for c, _ in cells] + [9])
@@ -328,7 +329,7 @@ def _not_estimated(items: dict) -> str:
     occ = {}
     out = []
     for k, v in items.items():
-        if k.startswith("occasion[") and len(items) > _OCCASIONS_LISTED:
+        if parse(k).is_occasion and len(items) > _OCCASIONS_LISTED:
             occ.setdefault(v, []).append(k)
         else:
             out.append(f"{k} ({v})")

@@ -33,6 +33,7 @@ import pandas as pd
 from . import kinds
 from .errors import EstimationError
 from .models import families as fam_mod
+from .terms import UNIT_MEAN, parse
 
 __all__ = ["data_checks", "reference_stage", "tests_stage", "bayes_one", "family_record",
            "SCALE_TEXT"]
@@ -210,7 +211,7 @@ def tests_stage(ref_fits, panel, design, settings, say):
                           log_exposure=None if expo is None else np.log(expo), cov=settings.cov)
         except (EstimationError, np.linalg.LinAlgError):
             return []
-    terms = [t for t in res.labels if t.endswith(" (unit mean)")]
+    terms = [t for t in res.labels if parse(t).part == UNIT_MEAN]
     if not terms:
         return []
     w = res.wald(terms)

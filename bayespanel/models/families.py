@@ -45,6 +45,7 @@ from scipy import special
 from ..errors import PanelDataError, SpecificationError, choices_error
 from ..mathcore import intraclass_correlation
 from ..resultshape import DEFAULT_INTERVAL
+from ..terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
 
 __all__ = [
     "FAMILIES",
@@ -399,15 +400,15 @@ def effect_weights(labels, kind):
     labels = list(labels)
     names, rows, k = [], [], len(labels)
     for j, lab in enumerate(labels):
-        if lab == "Intercept" or lab.endswith(" (unit mean)"):
+        if lab == "Intercept" or parse(lab).part == UNIT_MEAN:
             continue
         w = np.zeros(k)
         w[j] = 1.0
-        if kind == "mundlak" and f"{lab} (unit mean)" in labels:
-            names.append(f"{lab} (within)")
+        if kind == "mundlak" and part_label(lab, UNIT_MEAN) in labels:
+            names.append(part_label(lab, WITHIN))
             rows.append(w.copy())
-            w[labels.index(f"{lab} (unit mean)")] = 1.0
-            names.append(f"{lab} (between)")
+            w[labels.index(part_label(lab, UNIT_MEAN))] = 1.0
+            names.append(part_label(lab, BETWEEN))
             rows.append(w)
             continue
         names.append(lab)

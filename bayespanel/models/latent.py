@@ -53,6 +53,7 @@ import pandas as pd
 from .. import suffstats as _ss
 from ..errors import EstimationError, PanelDataError, SpecificationError, choices_error
 from ..resultshape import DEFAULT_INTERVAL
+from ..terms import WITHIN, part_label
 from . import families as fam_mod
 from . import gaussian, slopes
 from .priors import Prior, _coerce, _fill, resolve_priors, standardised_params
@@ -271,7 +272,7 @@ class LatentModel:
                 raise SpecificationError(
                     f"random_slopes names {name!r}, which does not vary within units; only "
                     "time-varying covariates can have unit-specific within slopes")
-            lab = f"{name} (within)" if self.kind == "within_between" else name
+            lab = part_label(name, WITHIN) if self.kind == "within_between" else name
             out.append(lab)
         return out
 

@@ -32,6 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import SpecificationError, choices_error
+from ..terms import parse
 
 __all__ = ["Prior", "COEF_FAMILIES", "SD_FAMILIES", "resolve_priors", "default_priors",
            "check_prior"]
@@ -51,11 +52,6 @@ ALL_KEY = "coef"
 #: key of the prior shared by every occasion effect (labels ``occasion[...]``, with their
 #: ``(within)``, ``(between)`` and ``(unit mean)`` parts)
 OCCASION_KEY = "occasion"
-
-
-def is_occasion_label(label: str) -> bool:
-    """True for the label of an occasion indicator or of one of its parts."""
-    return str(label).startswith("occasion[")
 
 
 @dataclass(frozen=True)
@@ -228,7 +224,7 @@ def resolve_priors(user, labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd) 
     if not isinstance(user, dict):
         raise SpecificationError(f"priors must be a dict keyed by term or component, got "
                                  f"{type(user).__name__}")
-    occ = [lab for lab in labels if is_occasion_label(lab)]
+    occ = [lab for lab in labels if parse(lab).is_occasion]
     valid = (labels + [ALL_KEY] + ([OCCASION_KEY] if occ else [])
              + (["sigma_obs", "sigma_unit"] if has_unit_sd else ["sigma_obs"]))
     for key in user:

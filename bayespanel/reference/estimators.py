@@ -29,6 +29,7 @@ import numpy as np
 
 from .. import suffstats
 from ..errors import DataHandlingWarning, EstimationError, SpecificationError, choices_error
+from ..terms import AS_IS, parse
 from . import core
 from ._linalg import COLLINEAR_TOL
 from ._results import ReferenceResult
@@ -447,7 +448,7 @@ def _priority(labels):
     """Columns kept first when some are collinear: the intercept, then the occasion
     indicators (effects absorb a trend such as experience, not the other way round)."""
     first = [j for j, t in enumerate(labels) if t == "Intercept"]
-    occ = [j for j, t in enumerate(labels) if t.startswith("occasion[") and t.endswith("]")]
+    occ = [j for j, t in enumerate(map(parse, labels)) if t.is_occasion and t.part == AS_IS]
     return first + occ
 
 
@@ -491,7 +492,7 @@ def _report_dropped(estimator, ss, fit, labels):
         dropped[labels[j]] = ("the same unit mean for every unit" if flat else
                               "collinear with other terms")
     # unit means of occasion indicators are constant in balanced panels: expected, quiet
-    loud = [labels[j] for j in missing if not labels[j].startswith("occasion[")]
+    loud = [labels[j] for j in missing if not parse(labels[j]).is_occasion]
     if loud:
         warnings.warn(
             f"dropped {', '.join(map(repr, loud))} from the {estimator} fit: collinear with "

@@ -33,6 +33,7 @@ import pandas as pd
 
 from ..errors import EstimationError, SpecificationError, choices_error
 from ..models import gaussian
+from ..terms import BETWEEN, UNIT_MEAN, WITHIN, parse
 
 __all__ = ["occasion_logpdf", "fixed_occasion_logpdf", "unit_logpdf", "log_predictive",
            "exact_holdout"]
@@ -65,13 +66,13 @@ def _model_matrix(all_labels, terms, X, Xbar):
         if lab in idx:
             cols.append(X[:, idx[lab]])
             continue
-        base, _, part = lab.rpartition(" (")
-        if base not in idx:
+        term = parse(lab)
+        if term.column.label not in idx:
             raise SpecificationError(f"cannot build column {lab!r} from the design terms")
-        j = idx[base]
-        if part in ("unit mean)", "between)"):
+        j = idx[term.column.label]
+        if term.part in (UNIT_MEAN, BETWEEN):
             cols.append(Xbar[:, j])
-        elif part == "within)":
+        elif term.part == WITHIN:
             cols.append(X[:, j] - Xbar[:, j])
         else:
             raise SpecificationError(f"cannot build column {lab!r} from the design terms")

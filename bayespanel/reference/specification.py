@@ -19,6 +19,7 @@ import numpy as np
 from scipy import stats
 
 from ..errors import SpecificationError, choices_error
+from ..terms import UNIT_MEAN, parse
 from ._results import ReferenceResult
 from .estimators import _PKG_DIR
 
@@ -201,7 +202,7 @@ def mundlak_test(data, formula=None, *, cov="cluster", fit="random", method="swa
             res = fit_arrays("pooled", M, design.y, design.unit_codes, labels, cov=cov,
                              outcome=design.outcome, units=design.units)
             res.design = design
-    terms = [t for t in res.labels if t.endswith(" (unit mean)")]
+    terms = [t for t in res.labels if parse(t).part == UNIT_MEAN]
     if not terms:
         raise SpecificationError("the fit has no unit-mean terms to test")
     b = res.coef[terms].to_numpy()

@@ -8,6 +8,8 @@ they return nothing and the report is as before.
 
 from __future__ import annotations
 
+from ..terms import BETWEEN, WITHIN, parse
+
 __all__ = ["family_of", "effects", "overview_text", "coefficient_note", "partition_lead",
            "contrast_scale", "AME_SCALE"]
 
@@ -132,10 +134,10 @@ def effects(r):
     for f in refs:
         if f["name"] not in used:
             ref_rows(f)
-    bases = list(dict.fromkeys(e.rsplit(" (", 1)[0] for e in rows_by))
-    rank = {" (within)": 1, " (between)": 2}
-    order = sorted(rows_by, key=lambda e: (bases.index(e.rsplit(" (", 1)[0]),
-                                           next((v for k, v in rank.items() if e.endswith(k)), 0)))
+    bases = list(dict.fromkeys(parse(e).column for e in rows_by))
+    rank = {WITHIN: 1, BETWEEN: 2}
+    order = sorted(rows_by, key=lambda e: (bases.index(parse(e).column),
+                                           rank.get(parse(e).part, 0)))
     heads = ["effect · model", "estimate", "SD / SE", f"{pct} interval"]
     body = []
     for e in order:

@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from ..terms import PARTS, parse
 from . import numbers as num
 from .results_json import write_atomic
 from .text import HEADINGS, label
@@ -21,14 +22,11 @@ from .text import HEADINGS, label
 __all__ = ["coefficient_grid", "result_tables", "display_tables", "display_frame", "footer",
            "to_markdown", "to_latex", "write_tables"]
 
-_SUFFIXES = ("", " (within)", " (between)", " (unit mean)")
-
-
 def _split(term: str):
-    for i, s in enumerate(_SUFFIXES[1:], start=1):
-        if term.endswith(s):
-            return term[: -len(s)], i
-    return term, 0
+    """``(covariate label, rank of the part)``: a covariate's rows, then its parts in the
+    order of :data:`bayespanel.terms.PARTS`."""
+    t = parse(term)
+    return t.column.label, PARTS.index(t.part)
 
 
 def coefficient_grid(results: dict):
