@@ -35,6 +35,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import SpecificationError
+from .jsonsafe import json_record
 from .resultshape import DEFAULT_INTERVAL, check_prob
 from .terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
 
@@ -181,17 +182,10 @@ class ContrastResult:
 
     def to_dict(self, prob: float | None = None) -> dict:
         """JSON-ready form (nan becomes None)."""
-        def clean(v):
-            if isinstance(v, (float, np.floating)):
-                return None if not np.isfinite(v) else float(v)
-            if isinstance(v, (np.integer,)):
-                return int(v)
-            return v
         t = self.table(prob)
         return {"kind": self.kind, "prob": t.attrs["prob"], "contrast": "between minus within",
-                "covariates": {i: {c: clean(v) for c, v in r.items()} for i, r in t.iterrows()},
-                "tests": {k: {kk: clean(vv) for kk, vv in v.to_dict().items()}
-                          for k, v in self.tests.items()}}
+                "covariates": {i: json_record(r) for i, r in t.iterrows()},
+                "tests": {k: json_record(v.to_dict()) for k, v in self.tests.items()}}
 
     def __repr__(self):
         s = f"<ContrastResult between minus within, {self.kind}>\n{self.table()}"

@@ -41,6 +41,7 @@ import pandas as pd
 
 from .design import group_means
 from .errors import SpecificationError, choices_error
+from .jsonsafe import json_record
 from .mathcore import partition_quantities
 from .resultshape import DEFAULT_INTERVAL, check_prob
 from .terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
@@ -274,7 +275,7 @@ class PartitionResult:
     def to_dict(self, prob: float = DEFAULT_INTERVAL) -> dict:
         """JSON-ready summary (nan becomes None)."""
         t = self.table(prob)
-        recs = {q: {c: (None if not np.isfinite(v) else float(v)) for c, v in row.items()}
+        recs = {q: json_record(row)
                 for q, row in t.iterrows()}
         return {"kind": self.kind, "prob": prob, "reference": self.reference_name,
                 "quantities": recs}

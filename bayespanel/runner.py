@@ -39,6 +39,7 @@ import numpy as np
 from . import kinds
 from .errors import (BayespanelError, EstimationError, SamplingWarning, SpecificationError,
                      choices_error)
+from .jsonsafe import json_record as _floats  # flat records for results.json
 from .models.families import FAMILIES
 from .models.sampling import MIN_DRAWS
 from .occasions import true_occasion_coef
@@ -632,18 +633,6 @@ def _records(df, index_name=None):
         rec = {index_name or (df.index.name or "name"): idx}
         rec.update({str(k): v for k, v in row.items()})
         out.append(rec)
-    return out
-
-
-def _floats(d: dict) -> dict:
-    out = {}
-    for k, v in d.items():
-        if isinstance(v, (np.floating, float)):
-            out[k] = float(v) if np.isfinite(v) else None
-        elif isinstance(v, np.integer):
-            out[k] = int(v)
-        else:
-            out[k] = v
     return out
 
 

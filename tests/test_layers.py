@@ -37,7 +37,8 @@ LAYERS: list[tuple[str, tuple[str, ...]]] = [
     # them, the densities, shared mathematics, linear algebra, budgets and the output
     # folder: numpy and scipy at most, nothing of the package above them
     ("core", ("errors", "terms", "suffstats", "derived", "models.gaussian", "ar1",
-              "mathcore", "reference._linalg", "resultshape", "budget", "outputs")),
+              "mathcore", "jsonsafe", "reference._linalg", "resultshape", "budget",
+              "outputs")),
     ("kinds", ("kinds",)),  # the registry of model kinds (reads its builders by name)
     ("data", ("panel", "formula", "io", "design", "engines", "datasets")),
     ("reference", ("reference",)),

@@ -88,3 +88,37 @@ def test_partition_quantities_are_the_variances_of_the_fitted_parts():
     fe = mc.partition_quantities(g_w, None, np.cov(W.T, bias=True), None, sigma, None, [T])
     assert np.all(np.isnan(fe["ICC"])) and np.all(np.isnan(fe["unit SD"]))
     np.testing.assert_allclose(fe["within: within part"] + fe["within: occasion residual"], 1.0)
+
+
+# ------------------------------------------------------------------ JSON cleaning (jsonsafe)
+def test_json_scalar_and_record_give_strict_json():
+    # the standard library's strict encoder (RFC 8259 has no NaN or infinity) is the check
+    import json
+
+    from bayespanel.jsonsafe import json_record, json_scalar
+
+    rec = json_record({"a": np.float64(np.nan), "b": np.float32(1.5), "c": np.int64(3),
+                       "d": np.bool_(True), "e": float("inf"), "f": "text", "g": None})
+    assert json.loads(json.dumps(rec, allow_nan=False)) == {
+        "a": None, "b": 1.5, "c": 3, "d": True, "e": None, "f": "text", "g": None}
+    assert type(json_scalar(np.int32(2))) is int and type(json_scalar(np.bool_(0))) is bool
+    assert json_scalar(-np.inf) is None and json_scalar([1]) == [1]
+
+
+def test_jsonable_matches_pandas_own_json_writer():
+    # pandas' to_json writes NaN as null: its records must equal ours for a frame with an
+    # index, integers, floats (exactly representable), NaN and text
+    import json
+
+    import pandas as pd
+
+    from bayespanel.jsonsafe import jsonable
+
+    df = pd.DataFrame({"x": [0.5, np.nan, -2.25], "n": [1, 2, 3], "s": ["a", "b", "c"]},
+                      index=pd.Index(["u1", "u2", "u3"], name="unit"))
+    ours = jsonable(df)
+    assert ours == json.loads(df.reset_index().to_json(orient="records", double_precision=15))
+    nested = {1: [np.arange(2), (np.nan, pd.Series({"k": np.inf}))],
+              "t": pd.Timestamp("2026-01-02")}
+    assert json.loads(json.dumps(jsonable(nested), allow_nan=False)) == {
+        "1": [[0, 1], [None, {"k": None}]], "t": "2026-01-02T00:00:00"}

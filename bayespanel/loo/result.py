@@ -6,17 +6,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from ..jsonsafe import json_scalar
+
 __all__ = ["LOOResult"]
-
-
-def _clean(v):
-    if isinstance(v, (bool, np.bool_)):
-        return bool(v)
-    if isinstance(v, (int, np.integer)):
-        return int(v)
-    if isinstance(v, (float, np.floating)):
-        return None if not np.isfinite(v) else float(v)
-    return v
 
 
 class LOOResult:
@@ -100,16 +92,16 @@ class LOOResult:
 
     def to_dict(self, pointwise: bool = False) -> dict:
         """JSON-ready form (nan becomes None)."""
-        out = {"level": self.level, "method": self.method, "elpd": _clean(self.elpd),
-               "se": _clean(self.se), "p_loo": _clean(self.p_loo), "n_points": self.n_points,
-               "good_k": _clean(self.good_k), "n_high_pareto_k": self.n_high_pareto_k,
+        out = {"level": self.level, "method": self.method, "elpd": json_scalar(self.elpd),
+               "se": json_scalar(self.se), "p_loo": json_scalar(self.p_loo), "n_points": self.n_points,
+               "good_k": json_scalar(self.good_k), "n_high_pareto_k": self.n_high_pareto_k,
                "notes": list(self.notes)}
         if self.family is not None:
             out["family"] = self.family
         if self.subsampling_se is not None:
-            out["subsampling_se"] = _clean(self.subsampling_se)
+            out["subsampling_se"] = json_scalar(self.subsampling_se)
         if pointwise:
-            out["pointwise"] = [{k: _clean(v) for k, v in r.items()}
+            out["pointwise"] = [{k: json_scalar(v) for k, v in r.items()}
                                 for r in self.pointwise.to_dict(orient="records")]
         return out
 

@@ -9,15 +9,12 @@ Non-finite numbers become ``null`` because JSON has no NaN.
 from __future__ import annotations
 
 import json
-import math
 from importlib import resources
 from pathlib import Path
 
-import numpy as np
-import pandas as pd
-
 from .. import kinds
 from ..errors import SpecificationError
+from ..jsonsafe import jsonable
 from ..outputs import write_atomic
 
 __all__ = [
@@ -27,36 +24,6 @@ __all__ = [
 
 SCHEMA_NAME = "bayespanel-results"
 SCHEMA_VERSION = "1.1.0"
-
-
-def jsonable(obj):
-    """Convert numpy, pandas and plain Python values to JSON types (NaN and inf to None)."""
-    if obj is None or isinstance(obj, (bool, str)):
-        return obj
-    if isinstance(obj, (np.bool_,)):
-        return bool(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        v = float(obj)
-        return v if math.isfinite(v) else None
-    if isinstance(obj, dict):
-        return {str(k): jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple, set)):
-        return [jsonable(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return [jsonable(v) for v in obj.tolist()]
-    if isinstance(obj, pd.Series):
-        return {str(k): jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, pd.DataFrame):
-        return [jsonable(r) for r in obj.reset_index().to_dict(orient="records")]
-    if isinstance(obj, (pd.Timestamp,)):
-        return obj.isoformat()
-    if isinstance(obj, Path):
-        return str(obj)
-    if hasattr(obj, "item"):
-        return jsonable(obj.item())
-    return str(obj)
 
 
 def dumps(results: dict) -> str:
