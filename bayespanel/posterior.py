@@ -152,6 +152,14 @@ class Posterior:
         The index labels of the estimation rows in the Panel's data (``Design.rows``).
     sampling : dict
         Sampler, seed, sizes and timings.
+    model : GaussianModel or None
+        The model the draws came from (None for a loaded posterior): exact LOO refits and
+        K-fold sample it again, with any variables or potentials the user added to its
+        ``pymc_model`` (docs/bayesian-models.md).
+    edits : list of str
+        What the user added to the model's ``pymc_model`` before sampling
+        (:func:`bayespanel.models.sampling.graph_edits`); empty for the model as built.
+        Added variables are rows of :meth:`summary` and are checked by :meth:`diagnostics`.
     """
 
     def __init__(self, idata, spec: ModelSpec, stats: SuffStats, units, rows=None,
@@ -173,6 +181,17 @@ class Posterior:
         self.time = None if time is None else np.asarray(time)
         self.row_labels = None if row_labels is None else np.asarray(row_labels)
         self._cache = {}
+        self.model, self.edits, self.graph = None, [], None
+
+    def _keep_model(self, model):
+        """Keep ``model``, what the user added to its graph and the graph sampled (a later
+        edit of the model is then told apart from the graph these draws came from)."""
+        from .models.graph import graph_edits, graph_identity
+
+        self.model = model
+        self.edits = graph_edits(model)
+        self.graph = graph_identity(model.pymc_model)
+        return self
 
     @property
     def rows(self):
@@ -198,8 +217,9 @@ class Posterior:
     def from_model(cls, model, idata, info) -> "Posterior":
         pending = getattr(model, "_rows", None) is None and getattr(model, "_rows_from", None)
         rows = (lambda: model.rows) if pending else model.rows
-        return cls(idata, model.spec, model.stats, model.units, rows=rows, sampling=info,
+        post = cls(idata, model.spec, model.stats, model.units, rows=rows, sampling=info,
                    scaling=model.scaling, **cls._row_info(model))
+        return post._keep_model(model)
 
     def __repr__(self):
         post = self.idata["posterior"]
@@ -270,6 +290,29 @@ class Posterior:
         out = {lab: self.draws(lab) for lab in self.labels}
         for name in self.parameter_names[len(self.labels):]:
             out[name] = self.draws(name)
+        for name, arr in self._added_draws().items():
+            out.setdefault(name, arr)
+        return out
+
+    def _added_draws(self) -> dict:
+        """Draws of the variables the user added to the model's graph (:attr:`edits`)
+        that the sampler recorded: one entry per element, labelled ``name`` or
+        ``name[label]`` by the variable's coordinates (its positions where it has none)."""
+        post = self.idata["posterior"]
+        out = {}
+        for name in self.edits:
+            if name not in post.data_vars:
+                continue
+            da = post[name]
+            arr = np.asarray(da.values)
+            if arr.ndim == 2:
+                out[name] = arr
+                continue
+            labels = [da.coords[d].values if d in da.coords else np.arange(da.sizes[d])
+                      for d in da.dims[2:]]
+            for idx in np.ndindex(*arr.shape[2:]):
+                where = ", ".join(str(labels[a][i]) for a, i in enumerate(idx))
+                out[f"{name}[{where}]"] = arr[(slice(None), slice(None)) + idx]
         return out
 
     def summary(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
@@ -277,7 +320,8 @@ class Posterior:
 
         Rows are the coefficient labels (``"x"``, ``"x (within)"``, ``"x (between)"``,
         ``"x (unit mean)"``, ``"occasion[2003]"``) and then ``sigma_unit``, ``sigma_obs``
-        and ``icc`` (``sigma_unit^2 / (sigma_unit^2 + sigma_obs^2)``). Interval columns are
+        and ``icc`` (``sigma_unit^2 / (sigma_unit^2 + sigma_obs^2)``), followed by any
+        variable the user added to the model's ``pymc_model`` (:attr:`edits`). Interval columns are
         labelled by their quantile, e.g. ``2.5%`` and ``97.5%`` for ``prob=0.95``. R-hat
         is the rank-normalised split R-hat and ESS the bulk and tail effective sample
         sizes of Vehtari et al. (2021), from arviz_stats.
@@ -653,6 +697,7 @@ class Posterior:
             "bayespanel_spec": self.spec.to_json(),
             "bayespanel_sampling": json.dumps(self.sampling),
             "bayespanel_scaling": json.dumps(self.scaling.to_dict() if self.scaling else None),
+            **({"bayespanel_edits": json.dumps(self.edits)} if self.edits else {}),
         }), **groups})
         return tree
 
@@ -702,8 +747,10 @@ class Posterior:
         keep = {k: v.to_dataset() for k, v in tree.children.items()
                 if not k.startswith("bayespanel_")}
         idata = xr.DataTree.from_dict(keep)
-        return cls(idata, spec, stats, units, rows=rows, sampling=sampling, scaling=scaling,
+        post = cls(idata, spec, stats, units, rows=rows, sampling=sampling, scaling=scaling,
                    **labels)
+        post.edits = list(json.loads(attrs.get("bayespanel_edits", "[]")))
+        return post
 
 
 _DIGEST = "bayespanel_digest"

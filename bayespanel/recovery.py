@@ -272,16 +272,14 @@ class _Sampler:
     """The Bayesian model compiled once (nutpie); each replicate swaps the shared data."""
 
     def __init__(self, model, draws, tune, chains, target_accept):
-        import nutpie
+        from .models.sampling import nutpie_compiled
 
         self.model = model
         self.names = ["coef", "sigma_obs"] + (["sigma_unit"] if model.unit_effects == "random"
                                               else [])
-        # the compilation is kept on the model (as models.sampling does), so later design
-        # checks and nutpie fits of the same model do not compile again
-        if getattr(model, "_nutpie", None) is None:
-            model._nutpie = nutpie.compile_pymc_model(model.pymc_model)
-        self.compiled = model._nutpie
+        # the compilation is kept on the model (until its graph is edited), so later
+        # design checks and nutpie fits of the same model do not compile again
+        self.compiled = nutpie_compiled(model)
         self.shared = {v.name for v in self.compiled.shared_var_keys}
         self.draws, self.tune, self.chains = draws, tune, chains
         self.target_accept = target_accept

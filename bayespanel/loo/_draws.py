@@ -193,24 +193,48 @@ def from_posterior(post) -> FitDraws:
     return from_draws(
         kind=spec.kind, unit_effects=spec.unit_effects, labels=list(spec.labels), M=M, y=y,
         codes=codes, coef=coef, sigma=sigma, tau=tau, units=post.units, time=time, rows=rows,
-        posterior=ds, model=None if latent is not None else (
-            getattr(post, "model", None) or _Rebuild(post)),
+        posterior=ds, model=None if latent is not None else _refit_model(post),
         design=design, sample_kwargs=sample_kwargs, unit_name=names.get("unit"),
         time_name=names.get("time"),
         family=latent.family if latent is not None else "gaussian", latent=latent)
 
 
+def _refit_model(post):
+    """The model exact refits and K-fold sample for ``post``: the model the draws came
+    from (with whatever the user added to its ``pymc_model``) while its graph is still
+    the one sampled; otherwise the model rebuilt from the specification, which is the
+    same model only when nothing had been added (else refits are refused, naming why)."""
+    from ..models.graph import graph_identity, same_graph
+
+    model, edits = getattr(post, "model", None), list(getattr(post, "edits", None) or [])
+    if model is not None and same_graph(getattr(post, "graph", None),
+                                        graph_identity(model.pymc_model)):
+        return model
+    if not edits:
+        return _Rebuild(post)
+    why = ("this posterior was loaded from a file, which keeps the draws but not the graph"
+           if model is None else "the model's pymc_model has been edited again since")
+    return _Rebuild(post, refuse=(
+        "exact refits must sample the model these draws came from, including what was "
+        f"added to its pymc_model ({', '.join(edits)}); {why}. Sample the model as it "
+        "is now and compute LOO on that posterior"))
+
+
 class _Rebuild:
     """Placeholder for the model of a posterior: rebuilt (once) from its specification
     when a refit is needed. The priors in the specification are fully stated on the data
-    scale, so the rebuilt model is the same model."""
+    scale, so the rebuilt model is the same model, unless the user had added to the
+    graph: then ``refuse`` says why no refit is possible."""
 
-    def __init__(self, post):
+    def __init__(self, post, refuse=None):
         self.post = post
+        self.refuse = refuse
 
     def build(self):
         from ..models.builders import BUILDERS
 
+        if self.refuse:
+            raise SpecificationError(self.refuse)
         post, spec = self.post, self.post.spec
         cls = BUILDERS[spec.model]
         return cls.from_suffstats(

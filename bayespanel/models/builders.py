@@ -49,6 +49,7 @@ from ..errors import DataHandlingWarning, EstimationError, SpecificationError, c
 from ..mathcore import intraclass_correlation
 from . import gaussian
 from .priors import Prior, resolve_priors, standardised_params
+from .graph import mark_built
 
 __all__ = ["ModelSpec", "GaussianModel", "Pooled", "RandomIntercept", "WithinBetween",
            "CorrelatedEffects", "FixedEffects", "BUILDERS"]
@@ -292,6 +293,7 @@ class GaussianModel:
         self._nutpie = None
         self._pymc_logp = None  # compiled log density and gradient (models.sampling)
         self.pymc_model = self._build()
+        mark_built(self)  # so that a user's additions to pymc_model are known
 
     def _scaling(self, stats) -> gaussian.Scaling:
         sd = _column_sd(stats, self.kind)

@@ -57,6 +57,7 @@ from ..terms import WITHIN, part_label
 from . import families as fam_mod
 from . import gaussian, slopes
 from .priors import Prior, _coerce, _fill, resolve_priors, standardised_params
+from .graph import mark_built
 
 __all__ = ["LatentSpec", "LatentModel", "latent_model", "LATENT_OPTIONS"]
 
@@ -241,6 +242,7 @@ class LatentModel:
             design=tuple(design.spec.to_dict().items()))
         self._nutpie = None
         self.pymc_model = self._build()
+        mark_built(self)  # so that a user's additions to pymc_model are known
 
     # ------------------------------------------------------------------ checks
     @staticmethod
@@ -552,7 +554,7 @@ class LatentPosterior(_posterior_cls()):
                    log_exposure=model.log_exposure, **cls._row_info(model))
         post.design = model.design
         post._add_icc()
-        return post
+        return post._keep_model(model)
 
     def __repr__(self):
         return super().__repr__()[:-1] + f", family {self.family!r})"

@@ -60,9 +60,10 @@ import warnings
 import numpy as np
 
 from ..errors import SpecificationError, choices_error
+from .graph import graph_identity, same_graph
 
 __all__ = ["SAMPLERS", "STARTS", "NUTPIE_ROWS", "MIN_DRAWS", "choose_sampler", "run",
-           "nutpie_available", "check_int", "laplace"]
+           "nutpie_available", "check_int", "laplace", "forget_stale", "nutpie_compiled"]
 
 SAMPLERS = ("auto", "pymc", "nutpie")
 #: latent-intercept models with at least this many rows go to nutpie under "auto"
@@ -146,7 +147,9 @@ def run(model, *, draws, tune, chains, seed, sampler, progress, cores, target_ac
             "or choose sampler='pymc'")
     info = {"sampler": chosen, "requested_sampler": sampler, "seed": seed, "draws": draws,
             "tune": tune, "chains": chains, "target_accept": target_accept}
-    warm = start != "jitter" and _dense(model)
+    # a start at the mode needs a gradient in every free variable: not with discrete ones
+    # (which a user may add to the graph; PyMC's sampler then gives them their own step)
+    warm = start != "jitter" and _dense(model) and not model.pymc_model.discrete_value_vars
     info["start"] = "mode" if warm else "jitter"
     t0 = time.perf_counter()
     if chosen == "pymc":
@@ -252,6 +255,36 @@ def laplace(logp_grad, x0, *, max_iter=100, tol=1e-10):
     return Laplace(mode=x, cov=0.5 * (cov + cov.T), iterations=it)
 
 
+# ---------------------------------------------------------------------------- compiled code
+def forget_stale(model) -> bool:
+    """Drop the compiled samplers kept with ``model`` (``_nutpie``, ``_pymc_logp``) when
+    its ``pymc_model`` changed since they were made; returns True when it did.
+
+    Called before every use of them (:func:`run`, :func:`nutpie_compiled`), so that an
+    edited model is never sampled with the code of its former graph.
+    """
+    now = graph_identity(model.pymc_model)
+    kept = getattr(model, "_compiled_graph", None)
+    if same_graph(kept, now):
+        return False
+    stale = kept is not None
+    model._nutpie = None
+    model._pymc_logp = None
+    model._compiled_graph = now
+    return stale
+
+
+def nutpie_compiled(model):
+    """nutpie's compilation of ``model.pymc_model``, made once per graph and kept with the
+    model (a later call with the same graph only swaps data, ``with_data``)."""
+    import nutpie
+
+    forget_stale(model)
+    if getattr(model, "_nutpie", None) is None:
+        model._nutpie = nutpie.compile_pymc_model(model.pymc_model)
+    return model._nutpie
+
+
 def _pymc_logp(model, info=None, point=None):
     """The compiled log density and gradient of ``model.pymc_model`` (PyMC's
     ``ValueGradFunction`` over every free variable, raveled).
@@ -262,6 +295,7 @@ def _pymc_logp(model, info=None, point=None):
     numba code in its own cache. ``info["compile_cache"]`` says ``"hit"``, ``"miss"``
     or ``"off"``.
     """
+    forget_stale(model)
     fn = getattr(model, "_pymc_logp", None)
     if fn is None:
         path = _cache_path(model.pymc_model, point)
@@ -594,11 +628,10 @@ def _run_nutpie(model, draws, tune, chains, seed, progress, cores, target_accept
     import nutpie
 
     t0 = time.perf_counter()
-    if model._nutpie is None:
-        model._nutpie = nutpie.compile_pymc_model(model.pymc_model)
-        info["compile_seconds"] = time.perf_counter() - t0
-    else:
-        info["compile_seconds"] = 0.0
+    forget_stale(model)
+    fresh = getattr(model, "_nutpie", None) is None
+    nutpie_compiled(model)
+    info["compile_seconds"] = time.perf_counter() - t0 if fresh else 0.0
     known = {var.name for var in model._nutpie.shared_var_keys}
     values = {v.name: v.get_value() for v in model.pymc_model.data_vars if v.name in known}
     compiled = model._nutpie.with_data(**values)
