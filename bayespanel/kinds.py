@@ -36,7 +36,7 @@ from .errors import SpecificationError, choices_error
 
 __all__ = ["ModelKind", "ReferenceKind", "register", "unregister", "model", "reference",
            "models", "references", "model_names", "reference_names",
-           "latent_model_names", "glm_reference_names", "snake_name", "COLUMNS",
+           "latent_model_names", "glm_reference_names", "snake_name", "with_default_priors", "COLUMNS",
            "UNIT_EFFECTS"]
 
 #: the column maps of ``Design.matrices`` a kind can use
@@ -74,6 +74,10 @@ class ModelKind:
     glm_reference : str or None
         The pooled GLM beside it for those families (a :class:`ReferenceKind` with a
         ``glm_title``).
+    priors : dict or None
+        Default priors of the kind, in the form of the builders' ``priors=`` (keys: a term
+        label, ``"coef"``, ``"sigma_obs"``, ``"sigma_unit"``); the user's priors replace
+        the same keys. None: the package's defaults (docs/priors.md).
     """
 
     name: str
@@ -86,6 +90,7 @@ class ModelKind:
     assumptions: str
     latent: bool = False
     glm_reference: str | None = None
+    priors: dict | None = None
 
     def __post_init__(self):
         if self.columns not in COLUMNS:
@@ -244,6 +249,21 @@ def glm_reference_names() -> tuple:
     """Names of the reference kinds with a pooled GLM on their columns (the reference
     fits of the logit and log-link families)."""
     return tuple(k.name for k in _REFERENCES.values() if k.glm_title)
+
+
+def with_default_priors(builder, priors):
+    """The priors a builder class uses: its kind's default priors (:attr:`ModelKind.priors`)
+    with the user's ``priors`` replacing the same keys; ``priors`` as given when the kind
+    has none or the class is registered under no kind."""
+    try:
+        defaults = model(builder).priors
+    except SpecificationError:
+        return priors
+    if not defaults:
+        return priors
+    if priors is not None and not isinstance(priors, dict):
+        return priors  # refused with its message by resolve_priors
+    return {**defaults, **(priors or {})}
 
 
 def snake_name(which):

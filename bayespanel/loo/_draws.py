@@ -231,12 +231,12 @@ class _Rebuild:
         self.refuse = refuse
 
     def build(self):
-        from ..models.builders import BUILDERS
+        from .. import kinds
 
         if self.refuse:
             raise SpecificationError(self.refuse)
         post, spec = self.post, self.post.spec
-        cls = BUILDERS[spec.model]
+        cls = kinds.model(spec.model).builder_class()
         return cls.from_suffstats(
             post.stats, list(spec.labels), outcome=spec.outcome, units=post.units,
             priors=spec.prior_dict, likelihood=spec.likelihood, rows=post.rows,

@@ -45,6 +45,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from .. import kinds
 from ..errors import DataHandlingWarning, EstimationError, SpecificationError, choices_error
 from ..mathcore import intraclass_correlation
 from . import gaussian
@@ -281,6 +282,7 @@ class GaussianModel:
         self._rows_from = rows_from
         self.scaling = self._scaling(stats)
         sd = _column_sd(stats, self.kind)
+        priors = kinds.with_default_priors(type(self), priors)
         self.priors = resolve_priors(priors, labels, intercept=self.intercept, sd_y=sd[-1],
                                      mean_y=float(stats.mean[-1]), sd_x=sd[:-1],
                                      has_unit_sd=self.unit_effects == "random")
