@@ -408,12 +408,14 @@ class AR1Stats:
         Returns a dict: ``n``, ``n_units``; ``gaps`` (D,), ``link_count`` (D,); ``first``
         (p, p), ``sum z*_1 z*_1'`` over units; ``link_start``, ``link_end``, ``link_cross``
         (D, p, p), per gap length ``sum z*_k z*_k'``, ``sum z*_k+1 z*_k+1'`` and
-        ``sum z*_k+1 z*_k'`` over links; per group of units sharing a link pattern (G
-        groups): ``group_count`` (G,), ``group_T`` (G,), ``group_links`` (G, D) links of
-        each gap length per unit, and ``group_cp`` (G, J p, J p), ``J = 1 + 2 D``, the
-        cross-products of the stacked vectors ``[z*_1, E*_1..E*_D, S*_1..S*_D]`` laid
-        out over all D gap lengths (zero blocks where a group has no such link), so the
-        density is the same few array operations whatever the number of groups.
+        ``sum z*_k+1 z*_k'`` over links; ``groups``, the groups of units sharing a link
+        pattern, gathered by ``m``, their number of distinct gap lengths: a list of
+        dicts, one per ``m``, each with ``count`` (G,) units per group, ``T`` (G,),
+        ``index`` (G, m) positions of their gap lengths in ``gaps``, ``links`` (G, m) the
+        links of each of those lengths per unit, and ``cp`` (G, J p, J p), ``J = 1 + 2 m``,
+        the cross-products of the stacked vectors ``[z*_1, E*_1..E*_m, S*_1..S*_m]``. The
+        density is a few array operations per ``m`` whatever the number of groups, and the
+        arrays hold no blocks for gap lengths a group does not have.
         """
         p, D = self.p, len(self.gaps)
         c = np.zeros(p) if center is None else np.asarray(center, dtype=float)
@@ -422,27 +424,31 @@ class AR1Stats:
         start = np.empty((D, p, p))
         end = np.empty((D, p, p))
         cross = np.empty((D, p, p))
-        for j, m in enumerate(self.links):
-            P = m.about(np.concatenate([c, c])) / np.outer(np.tile(s, 2), np.tile(s, 2))
+        for j, mo in enumerate(self.links):
+            P = mo.about(np.concatenate([c, c])) / np.outer(np.tile(s, 2), np.tile(s, 2))
             start[j], end[j], cross[j] = P[:p, :p], P[p:, p:], P[p:, :p]
-        G, J = len(self.groups), 1 + 2 * D
-        links = np.zeros((G, D))
-        cp = np.zeros((G, J * p, J * p))
-        for i, grp in enumerate(self.groups):
-            lc = grp.link_counts.astype(float)
-            links[i, grp.index] = lc
-            shift = np.concatenate([c] + [n * c for n in lc] * 2)
-            sc = np.tile(s, 1 + 2 * len(lc))
-            slots = np.concatenate([[0], 1 + grp.index, 1 + D + grp.index])
-            at = (slots[:, None] * p + np.arange(p)).ravel()       # rows of the global layout
-            cp[i][np.ix_(at, at)] = grp.moments.about(shift) / np.outer(sc, sc)
+        by_m = {}
+        for grp in self.groups:
+            by_m.setdefault(len(grp.index), []).append(grp)
+        groups = []
+        for m in sorted(by_m):
+            gs = by_m[m]
+            sc = np.tile(s, 1 + 2 * m)
+            cp = np.empty((len(gs), len(sc), len(sc)))
+            for i, grp in enumerate(gs):
+                lc = grp.link_counts.astype(float)
+                shift = np.concatenate([c] + [n * c for n in lc] * 2)
+                cp[i] = grp.moments.about(shift) / np.outer(sc, sc)
+            groups.append({
+                "count": np.array([g.count for g in gs], dtype=float),
+                "T": np.array([g.T for g in gs], dtype=float),
+                "index": np.array([g.index for g in gs], dtype=np.int64).reshape(len(gs), m),
+                "links": np.array([g.link_counts for g in gs], dtype=float).reshape(len(gs), m),
+                "cp": cp})
         return {"n": self.n, "n_units": self.n_units, "gaps": self.gaps.copy(),
                 "link_count": self.link_count.astype(float),
                 "first": self.first.about(c) / ss, "link_start": start, "link_end": end,
-                "link_cross": cross,
-                "group_count": np.array([g.count for g in self.groups], dtype=float),
-                "group_T": np.array([g.T for g in self.groups], dtype=float),
-                "group_links": links, "group_cp": cp}
+                "link_cross": cross, "groups": groups}
 
 
 def finalize(part: AR1Partial, names=None) -> AR1Stats:
@@ -542,26 +548,32 @@ def loglik(v, arrays: dict, rho, sigma, tau, xp=np):
     if pooled:
         return -0.5 * (n * (_LOG_2PI + xp.log(s2)) + logdet + q / s2)
     # per group: c = 1' R^-1 1 and (w'r)^2 = L' cp L with L = l (x) v, l = [1, 1/(1+phi),
-    # -phi/(1+phi)] over the D gap lengths
-    count, T = arrays["group_count"], arrays["group_T"]
-    if len(gaps):
-        c = 1.0 + (arrays["group_links"] * ((1.0 - phi) / (1.0 + phi))[None, :]).sum(axis=1)
-        lvec = xp.concatenate([xp.ones((1,)), 1.0 / (1.0 + phi), -phi / (1.0 + phi)])
-    else:
-        c = np.ones(len(count))
-        lvec = xp.ones((1,))
-    L = (lvec[:, None] * v[None, :]).flatten()
-    wr2 = (arrays["group_cp"] * L[None, :, None] * L[None, None, :]).sum(axis=(1, 2))
-    if fixed:
-        log_c = (count * (xp.log(c) - np.log(T))).sum()
-        sub = (wr2 / c).sum()
-        m = n - N
-    else:
-        g = tau ** 2 / s2
-        h = 1.0 + g * c
-        log_c = (count * xp.log(h)).sum()
-        sub = (g * wr2 / h).sum()
-        m = n
+    # -phi/(1+phi)] over the group's gap lengths; groups with the same number of gap
+    # lengths are computed together
+    g = None if fixed else tau ** 2 / s2
+    log_c = 0.0
+    sub = 0.0
+    p = arrays["first"].shape[0]
+    for grp in arrays["groups"]:
+        count, T, idx = grp["count"], grp["T"], grp["index"]
+        G, m = idx.shape
+        if m:
+            ph = phi[idx]
+            c = 1.0 + (grp["links"] * (1.0 - ph) / (1.0 + ph)).sum(axis=1)
+            lvec = xp.concatenate([xp.ones((G, 1)), 1.0 / (1.0 + ph), -ph / (1.0 + ph)], axis=1)
+        else:
+            c = np.ones(G)
+            lvec = np.ones((G, 1))
+        L = (lvec[:, :, None] * v[None, None, :]).reshape((G, (1 + 2 * m) * p))
+        wr2 = (grp["cp"] * L[:, :, None] * L[:, None, :]).sum(axis=(1, 2))
+        if fixed:
+            log_c = log_c + (count * (xp.log(c) - np.log(T))).sum()
+            sub = sub + (wr2 / c).sum()
+        else:
+            h = 1.0 + g * c
+            log_c = log_c + (count * xp.log(h)).sum()
+            sub = sub + (g * wr2 / h).sum()
+    m = n - N if fixed else n
     return -0.5 * (m * (_LOG_2PI + xp.log(s2)) + logdet + log_c + (q - sub) / s2)
 
 
