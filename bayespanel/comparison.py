@@ -30,6 +30,8 @@ References
    doi:10.1214/17-BA1091
 .. [3] Sivula, T., Magnusson, M., Matamoros, A. A. and Vehtari, A. (2025). Uncertainty in
    Bayesian leave-one-out cross-validation based model comparison. arXiv:2008.10296
+.. [4] Magnusson, M., Andersen, M. R., Jonasson, J. and Vehtari, A. (2019). Bayesian
+   leave-one-out cross-validation for large data. ICML, PMLR 97, 4244-4253.
 """
 
 from __future__ import annotations
@@ -338,7 +340,8 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
         Seed of the reference K-fold folds.
     loo_kwargs : dict, optional
         Passed to :func:`bayespanel.loo.loo` for the posteriors (e.g.
-        ``{"refit_high_k": True}``).
+        ``{"refit_high_k": True}``). In a sub-sampled comparison (below),
+        ``{"subsample": m}`` sets the points sampled (default :data:`SUBSAMPLE_POINTS`).
     equivalent : list of list of str, optional
         Classes of equivalent models (default: :func:`equivalence_classes` of
         ``models``; give them when the models are LOOResults).
@@ -369,6 +372,12 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
 
     Notes
     -----
+    Posteriors of models on a design without rows at hand (a Dask panel:
+    ``Design.has_rows`` false), and sub-sampled LOOResults, are compared by sub-sampled
+    LOO (Magnusson et al. 2019): every posterior is scored on the same seeded sample of
+    points (``seed``), ``se_diff`` comes from the sampled points both models scored,
+    reference fits and stacking weights are left out (their rows say why).
+
     When some model cannot predict some points (fixed effects and units with a single
     row, at the occasion level), every model is scored on the points all can predict,
     and the note says how many were left out.
@@ -376,6 +385,8 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
     check_level(level)
     if not isinstance(models, dict) or not models:
         raise SpecificationError("models must be a non-empty dict of name -> fitted model")
+    if any(_sub_sampled(obj) for obj in models.values()):
+        return _compare_subsampled(models, level, seed, dict(loo_kwargs or {}))
     _check_same_question(models)
     classes = equivalence_classes(models) if equivalent is None else [
         [n for n in c if n in models] for c in equivalent]
@@ -439,6 +450,115 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
         out[c] = out[c].astype(int)
     out.attrs.update(level=level, n_points=len(common), n_points_all=n_all,
                      equivalent=[list(c) for c in classes],
+                     methods_note=methods_note(out["method"].tolist()))
+    return out
+
+
+# ---------------------------------------------------------------------------- sub-sampled
+#: points of the sub-sampled LOO when the rows are not at hand and no ``subsample`` is given
+SUBSAMPLE_POINTS = 400
+
+
+def _sub_sampled(obj) -> bool:
+    """Whether ``obj`` is scored by sub-sampled LOO: a sub-sampled LOOResult, or a
+    posterior whose design holds no rows (``Design.has_rows`` false: a partitioned
+    source, whose pointwise terms are never all formed)."""
+    if isinstance(obj, LOOResult):
+        return obj.subsampling_se is not None
+    return (_is_posterior(obj) and getattr(obj, "design", None) is not None
+            and not obj.design.has_rows)
+
+
+def _same_design(models):
+    """Refuse posteriors on designs with other rows or another outcome (checked on the
+    designs' sizes, units, occasions per unit and outcome unit means)."""
+    first = None
+    for name, obj in models.items():
+        d = getattr(obj, "design", None) if _is_posterior(obj) else None
+        if d is None:
+            continue
+        st = d.design_suffstats()
+        key = (d.outcome, d.n, list(d.units), np.asarray(st.unit_count),
+               np.asarray(st.unit_mean[:, -1]))
+        if first is None:
+            first = (name, key)
+            continue
+        n0, k0 = first
+        if (key[1] != k0[1] or key[2] != k0[2] or not np.array_equal(key[3], k0[3])
+                or not np.array_equal(key[4], k0[4])):
+            raise SpecificationError(
+                f"model {name!r} is not fitted on the same rows and outcome as {n0!r} "
+                f"({key[0]!r} on {key[1]} rows vs {k0[0]!r} on {k0[1]}); LOO values can "
+                "only be compared on the same rows")
+
+
+def _compare_subsampled(models, level, seed, loo_kwargs) -> pd.DataFrame:
+    """:func:`compare` with sub-sampled LOO (Magnusson et al. 2019).
+
+    Every posterior is scored by :func:`bayespanel.loo.loo_subsample` with the same seed,
+    so the models share their sampled points; ELPD differences are differences of the
+    estimates and their SE is ``sqrt(N var(d_j))`` over the sampled points ``j`` both
+    models scored, as for full LOO. Reference fits (cross-validated from rows) and
+    stacking (which needs every point) are left out, and their rows say why.
+    """
+    from .loo import loo_subsample
+
+    _same_design(models)
+    evaluated = {}
+    for name, obj in models.items():
+        if isinstance(obj, LOOResult):
+            if obj.level != level:
+                raise SpecificationError(
+                    f"model {name!r}: the LOO result is at the {obj.level} level, not {level!r}")
+            evaluated[name] = (obj, "")
+        elif _is_posterior(obj):
+            obs = loo_kwargs.get("subsample")
+            if obs is None:
+                points = obj.stats.n if level == "occasion" else obj.stats.n_units
+                obs = min(SUBSAMPLE_POINTS, points)
+            try:
+                evaluated[name] = (loo_subsample(obj, level, obs, seed=seed), "")
+            except EstimationError as exc:  # the level is undefined for this model
+                evaluated[name] = (None, str(exc))
+        elif _is_reference(obj):
+            evaluated[name] = (None, "reference fits are cross-validated from the rows, "
+                                     "which a sub-sampled comparison does not hold")
+        else:
+            raise SpecificationError(
+                f"model {name!r} is a {type(obj).__name__}; give a Posterior, a "
+                "ReferenceResult or a LOOResult")
+    scored = {n: r for n, (r, _) in evaluated.items() if r is not None}
+    if not scored:
+        raise SpecificationError(f"no model has a predictive density at the {level} level")
+    order = sorted(scored, key=lambda n: -scored[n].elpd)
+    best = order[0]
+    sampled = {n: r.pointwise.loc[np.isfinite(r.pointwise["elpd"].to_numpy(dtype=float))]
+               .set_index("position")["elpd"] for n, r in scored.items()}
+    rows = []
+    for name in order + [n for n in models if n not in scored]:
+        r, note = evaluated[name]
+        rec = dict(elpd=np.nan, se=np.nan, elpd_diff=np.nan, se_diff=np.nan, p_loo=np.nan,
+                   weight=np.nan, method="undefined", level=level, n_points=0,
+                   n_high_pareto_k=0, equivalent_to="", note=note)
+        if r is not None:
+            d = (sampled[name] - sampled[best]).dropna()
+            rec.update(elpd=r.elpd, se=r.se, p_loo=r.p_loo, method=r.method,
+                       n_points=r.n_points, n_high_pareto_k=int(r.n_high_pareto_k),
+                       elpd_diff=r.elpd - scored[best].elpd,
+                       se_diff=(0.0 if name == best else
+                                float(np.sqrt(r.n_points * np.var(d, ddof=1)))
+                                if len(d) > 1 else np.nan),
+                       note="" if name == best else
+                       f"{len(d)} sampled points shared with the best model")
+        rows.append(rec)
+    names = order + [n for n in models if n not in scored]
+    out = pd.DataFrame(rows, index=pd.Index(names, name="model"))[COMPARE_COLUMNS]
+    for c in ("elpd", "se", "elpd_diff", "se_diff", "p_loo", "weight"):
+        out[c] = out[c].astype(float)
+    for c in ("n_points", "n_high_pareto_k"):
+        out[c] = out[c].astype(int)
+    out.attrs.update(level=level, n_points=max(r.n_points for r in scored.values()),
+                     n_points_all=max(r.n_points for r in scored.values()), equivalent=[],
                      methods_note=methods_note(out["method"].tolist()))
     return out
 

@@ -245,8 +245,29 @@ def specification_tests(M, y, codes, labels, kind) -> dict:
             "Mundlak (cluster-robust)": mundlak_test(mres)}
 
 
+def design_tests(design, labels, kind) -> dict:
+    """The tests of :func:`specification_tests` from the reference fits of a design.
+
+    For a model on a design whose rows are not at hand (``Design.has_rows`` false): the
+    within, random-intercept (Swamy-Arora) and Mundlak (cluster-robust) equations are
+    fitted on the design's statistics (:func:`bayespanel.reference.fit_design`), on the
+    same columns as :func:`specification_tests` builds from the rows.
+    """
+    from .reference import hausman, mundlak_test
+    from .reference.estimators import fit_design
+
+    tb = [t for t in contrast_covariates(kind, labels) if t in design.time_varying]
+    if not tb:
+        return {}
+    fe = fit_design(design, "within")
+    re = fit_design(design, "random", method="swamy-arora")
+    mres = fit_design(design, "mundlak", method="swamy-arora", cov="cluster")
+    return {"Hausman (classical)": hausman(fe, re),
+            "Mundlak (cluster-robust)": mundlak_test(mres)}
+
+
 def within_between_contrasts(kind, labels, coef, time_varying, *, rope=None, prob=DEFAULT_INTERVAL,
-                             reference=None, rows=None) -> ContrastResult:
+                             reference=None, rows=None, design=None) -> ContrastResult:
     """Posterior of between-minus-within effects with the frequentist checks beside them.
 
     Parameters
@@ -269,6 +290,9 @@ def within_between_contrasts(kind, labels, coef, time_varying, *, rope=None, pro
         Mundlak test are computed (:func:`specification_tests`); when no covariate has
         both a within and a between part they do not apply, and ``tests_skipped`` of
         the result says so.
+    design : Design, optional
+        Without ``rows``: the design the model was built on, whose reference fits give
+        the same tests from its statistics (:func:`design_tests`).
 
     Returns
     -------
@@ -282,8 +306,10 @@ def within_between_contrasts(kind, labels, coef, time_varying, *, rope=None, pro
     if rows is not None:
         M, y, codes = rows
         found = specification_tests(M, y, codes, labels, kind)
+    elif design is not None:
+        found = design_tests(design, labels, kind)
     out = ContrastResult(D, terms, kind, rope=rope, prob=prob, reference=ref, tests=found)
-    if rows is not None and not terms:
+    if (rows is not None or design is not None) and not terms:
         out.tests_skipped = ("Hausman and Mundlak tests not run: no covariate has both a "
                              "within and a between part (a covariate whose unit means are "
                              "the same for every unit has no between part)")

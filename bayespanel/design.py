@@ -148,6 +148,11 @@ class Design:
     fields. All arrays are float64 and rows are sorted by unit, then occasion.
     """
 
+    #: whether the estimation rows are at hand (``X``, ``y``, ``unit_codes``, ``rows``,
+    #: ``time``); a design over a partitioned source (``engines.dask.DaskDesign``) holds
+    #: only statistics, and callers ask this rather than the design's type
+    has_rows = True
+
     def __init__(self, *, y, X, terms, unit_codes, units, time, rows, outcome, spec,
                  n_dropped=0, dropped_by_column=None, n_input_rows=None, stats=None):
         self.y = np.ascontiguousarray(y, dtype=float)

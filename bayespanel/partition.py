@@ -46,8 +46,9 @@ from .mathcore import partition_quantities
 from .resultshape import DEFAULT_INTERVAL, check_prob
 from .terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
 
-__all__ = ["PartitionResult", "coefficient_parts", "partition_draws", "variance_partition",
-           "reference_partition", "summarise_draws", "design_columns", "PARTITION_KINDS"]
+__all__ = ["PartitionResult", "coefficient_parts", "partition_draws", "partition_from_stats",
+           "variance_partition", "design_partition", "reference_partition", "summarise_draws",
+           "design_columns", "PARTITION_KINDS"]
 
 PARTITION_KINDS = ("pooled", "random", "within", "mundlak", "within_between")
 
@@ -188,7 +189,7 @@ def _row_cov(A):
 
 
 def partition_draws(X, codes, terms, time_varying, kind, labels, coef, sigma, tau=None) -> dict:
-    """Every quantity of the partition, per draw.
+    """Every quantity of the partition, per draw, from the estimation rows.
 
     Parameters
     ----------
@@ -209,7 +210,8 @@ def partition_draws(X, codes, terms, time_varying, kind, labels, coef, sigma, ta
         ``"unit SD"``, ``"occasion SD"``, ``"ICC"``, ``"theta (T=...)"`` for each distinct
         panel length, the variance parts ``"variance: ..."`` and the Rights-Sterba
         shares ``"total: ..."``, ``"within: ..."``, ``"between: ..."`` (Rights and Sterba
-        2019). Quantities a model does not define are ``nan``.
+        2019). Quantities a model does not define are ``nan``. The same quantities as
+        :func:`partition_from_stats` (the row covariances computed from the rows).
     """
     g_w, g_b = coefficient_parts(terms, time_varying, kind, labels, coef)
     X = np.asarray(X, dtype=float)
@@ -221,6 +223,32 @@ def partition_draws(X, codes, terms, time_varying, kind, labels, coef, sigma, ta
     Bc = np.column_stack([means, X[:, tc]])
     return partition_quantities(g_w, g_b, _row_cov(Wc), _row_cov(Bc), sigma, tau,
                                 np.unique(np.bincount(codes)))
+
+
+def partition_from_stats(stats, terms, time_varying, kind, labels, coef, sigma,
+                         tau=None) -> dict:
+    """The quantities of :func:`partition_draws` from the statistics of ``[X, y]``.
+
+    For a design whose rows are not at hand (``Design.has_rows`` false: a partitioned
+    source). The row covariances are ``within / n`` for the demeaned time-varying columns
+    and ``(total - within) / n`` for the unit means and the time-constant columns (the
+    analysis-of-variance decomposition of the cross-products), equal to the covariances
+    :func:`partition_draws` takes over the rows.
+
+    Parameters
+    ----------
+    stats : SuffStats
+        Of the design's own columns ``[X, y]`` (``Design.design_suffstats()``), columns in
+        ``terms`` order.
+    terms, time_varying, kind, labels, coef, sigma, tau
+        See :func:`partition_draws`.
+    """
+    g_w, g_b = coefficient_parts(terms, time_varying, kind, labels, coef)
+    i_w = [terms.index(t) for t in time_varying]
+    i_b = i_w + [j for j, t in enumerate(terms) if t not in time_varying and t != "Intercept"]
+    phi_w = stats.within[np.ix_(i_w, i_w)] / stats.n
+    phi_b = (stats.total - stats.within)[np.ix_(i_b, i_b)] / stats.n
+    return partition_quantities(g_w, g_b, phi_w, phi_b, sigma, tau, stats.lengths)
 
 
 def summarise_draws(draws: dict, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
@@ -301,8 +329,11 @@ def reference_partition(ref) -> dict:
     labels = list(coef.index)
     tau = None if kind == "within" else np.array([0.0 if kind == "pooled" else ref.sigma_unit])
     d = ref.design
-    return partition_draws(d.X, d.unit_codes, d.terms, d.time_varying, kind, labels,
-                           coef.to_numpy()[None, :], np.array([ref.sigma_obs]), tau)
+    args = (d.terms, d.time_varying, kind, labels, coef.to_numpy()[None, :],
+            np.array([ref.sigma_obs]), tau)
+    if d.has_rows:
+        return partition_draws(d.X, d.unit_codes, *args)
+    return partition_from_stats(d.design_suffstats(), *args)
 
 
 def variance_partition(M, codes, kind, labels, coef, sigma, tau=None, reference=None,
@@ -334,6 +365,37 @@ def variance_partition(M, codes, kind, labels, coef, sigma, tau=None, reference=
     ref = None
     if reference is not None:
         _check_same_rows(np.asarray(M).shape[0], np.asarray(codes), reference)
+        ref = reference_partition(reference)
+        reference_name = reference_name or reference.estimator
+    return PartitionResult(draws, kind, ref, reference_name)
+
+
+def design_partition(design, kind, labels, coef, sigma, tau=None, reference=None,
+                     reference_name=None) -> PartitionResult:
+    """The variance partition of a posterior from the statistics of its design.
+
+    For a model on a design whose rows are not at hand (``Design.has_rows`` false); the
+    quantities of :func:`variance_partition` through :func:`partition_from_stats`.
+
+    Parameters
+    ----------
+    design : Design
+        The design the model was built on (``terms``, ``time_varying``,
+        ``design_suffstats()``).
+    kind, labels, coef, sigma, tau, reference, reference_name
+        As for :func:`variance_partition`; a reference fit must be on the same design.
+    """
+    draws = partition_from_stats(design.design_suffstats(), list(design.terms),
+                                 list(design.time_varying), kind, labels, coef, sigma, tau)
+    ref = None
+    if reference is not None:
+        d = getattr(reference, "design", None)
+        if d is None or (d is not design and not (
+                d.n == design.n and np.array_equal(d.T, design.T)
+                and list(d.units) == list(design.units))):
+            raise SpecificationError(
+                "reference: the reference fit is not on the same estimation rows as the "
+                "posterior; fit both on the same panel and formula")
         ref = reference_partition(reference)
         reference_name = reference_name or reference.estimator
     return PartitionResult(draws, kind, ref, reference_name)

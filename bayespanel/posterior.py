@@ -180,6 +180,10 @@ class Posterior:
                 raise SpecificationError(f"{name} has {len(v)} values for {n} estimation rows")
         self.time = None if time is None else np.asarray(time)
         self.row_labels = None if row_labels is None else np.asarray(row_labels)
+        #: the design the model was built on (set by :meth:`from_model`; ``None`` after
+        #: :meth:`load`): without rows at hand, partitions, contrasts and LOO use its
+        #: statistics (``Design.has_rows``)
+        self.design = None
         self._cache = {}
         self.model, self.edits, self.graph = None, [], None
 
@@ -210,8 +214,9 @@ class Posterior:
     def _row_info(model) -> dict:
         """``time`` and ``row_labels`` of a model built from a Panel (else ``None``)."""
         d = getattr(model, "design", None)
-        return {"time": getattr(d, "time", None),
-                "row_labels": None if d is None else np.asarray(d.rows)}
+        if d is None or not getattr(d, "has_rows", True):
+            return {"time": None, "row_labels": None}
+        return {"time": getattr(d, "time", None), "row_labels": np.asarray(d.rows)}
 
     @classmethod
     def from_model(cls, model, idata, info) -> "Posterior":
@@ -219,6 +224,7 @@ class Posterior:
         rows = (lambda: model.rows) if pending else model.rows
         post = cls(idata, model.spec, model.stats, model.units, rows=rows, sampling=info,
                    scaling=model.scaling, **cls._row_info(model))
+        post.design = getattr(model, "design", None)
         return post._keep_model(model)
 
     def __repr__(self):
@@ -621,15 +627,17 @@ class Posterior:
     def variance_partition(self, reference=None):
         """Unit/occasion SDs, ICC, quasi-demeaning shares and Rights-Sterba (2019) shares
         per draw; see :func:`bayespanel.partition.variance_partition`."""
-        from .partition import variance_partition
+        from .partition import design_partition, variance_partition
 
-        if self.rows is None:
-            raise SpecificationError("the variance partition needs the estimation rows")
         tau = self._flat("sigma_unit") if self.spec.unit_effects == "random" else (
             None if self.spec.unit_effects == "fixed" else 0.0 * self._flat("sigma_obs"))
-        return variance_partition(self.rows[0], self.rows[2], self.spec.kind, self.labels,
-                                  self._flat("coef"), self._flat("sigma_obs"), tau,
-                                  reference=reference)
+        args = (self.spec.kind, self.labels, self._flat("coef"), self._flat("sigma_obs"), tau)
+        if self.rows is not None:
+            return variance_partition(self.rows[0], self.rows[2], *args, reference=reference)
+        if self.design is not None:  # a design without rows at hand: its statistics
+            return design_partition(self.design, *args, reference=reference)
+        raise SpecificationError("the variance partition needs the estimation rows or the "
+                                 "design the model was built on")
 
     def contrasts(self, rope=None, prob: float = DEFAULT_INTERVAL, reference=None,
                   tests: bool = True):
@@ -638,14 +646,16 @@ class Posterior:
         :func:`bayespanel.contrasts.within_between_contrasts`."""
         from .contrasts import contrast_covariates, within_between_contrasts
 
-        if self.rows is None:
-            raise SpecificationError("the contrasts need the estimation rows")
+        if self.rows is None and self.design is None:
+            raise SpecificationError("the contrasts need the estimation rows or the design "
+                                     "the model was built on")
         # the covariates with both a within and a between coefficient (an occasion
         # indicator of a balanced panel has no between part)
         tv = contrast_covariates(self.spec.kind, self.labels)
+        rows = self.rows if tests else None  # without rows at hand: the design's fits
         return within_between_contrasts(self.spec.kind, self.labels, self._flat("coef"), tv,
-                                        rope=rope, prob=prob, reference=reference,
-                                        rows=self.rows if tests else None)
+                                        rope=rope, prob=prob, reference=reference, rows=rows,
+                                        design=self.design if tests and rows is None else None)
 
     # ------------------------------------------------------------------ save / load
     def save(self, path, rows: bool = True) -> None:

@@ -665,6 +665,9 @@ class DaskDesign:
 
     #: reference fits and models check this to take the sufficient-statistics route
     out_of_core = True
+    #: no rows are held (``Design.has_rows``): partitions, contrasts and LOO of models on
+    #: this design work from its statistics (and one more pass at the occasion level)
+    has_rows = False
 
     def fit_reference(self, estimator: str, *, method=None, cov: str = "classical"):
         """A reference fit (:mod:`bayespanel.reference`) on this design's statistics; see

@@ -169,6 +169,11 @@ def from_posterior(post) -> FitDraws:
     if idata is None or spec is None or "posterior" not in idata.children:
         raise SpecificationError(
             f"expected a bayespanel Posterior with posterior draws, got {type(post).__name__}")
+    if post.rows is None and getattr(post, "design", None) is not None:
+        raise SpecificationError(
+            "full LOO needs every pointwise term, and the model's design holds no rows (a "
+            "partitioned source such as a Dask panel); use the sub-sampling estimator: "
+            "post.loo(level, subsample=400) or bp.loo.loo_subsample")
     if post.rows is None:
         raise SpecificationError(
             "LOO needs the estimation rows; this posterior was built from sufficient "

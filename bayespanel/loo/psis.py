@@ -466,6 +466,11 @@ def loo_subsample(post, level="occasion", observations=400, *, seed=0, reff=None
     from arviz_stats.base import array_stats
 
     check_level(level)
+    design = getattr(post, "design", None)
+    if getattr(post, "rows", None) is None and design is not None:
+        # a design without rows at hand: terms from its statistics (and, at the occasion
+        # level, one more pass over its source), the same sample and numbers
+        return design.loo_subsample(post, observations, level=level, seed=seed, reff=reff)
     fd = from_posterior(post)
     _refuse_latent(fd, "sub-sampled LOO (subsample=)")
     reason = undefined_reason(fd.unit_effects, level, fd.T)

@@ -191,7 +191,7 @@ class GaussianModel:
         self.design = design
         self._setup(stats, labels, outcome=design.outcome, units=design.units, priors=priors,
                     likelihood=likelihood, rows=None, design_spec=design.spec.to_dict(),
-                    rows_from=lambda: self._rows_of(design))
+                    rows_from=(lambda: self._rows_of(design)) if design.has_rows else None)
 
     def _design_stats(self, design):
         return design.model_suffstats(self.kind)
