@@ -59,7 +59,8 @@ from .errors import PanelDataError
 
 __all__ = [
     "occasion_times", "Timeline", "AR1Partial", "AR1Stats", "partial", "merge", "finalize",
-    "compute", "loglik", "unit_logdensity", "occasion_conditional", "occasion_logdensity",
+    "compute", "loglik", "unit_logdensity", "unit_effect_conditional", "occasion_conditional",
+    "occasion_logdensity",
 ]
 
 _LOG_2PI = float(np.log(2.0 * np.pi))
@@ -603,6 +604,47 @@ def _check_rho(rho, tl: Timeline):
         raise ValueError("a negative rho needs whole-number gaps between occasions")
 
 
+def _unit_terms(r, tl: Timeline, rho):
+    """Per unit (S, N): ``q = r'R^-1 r``, ``w'r = 1'R^-1 r``, ``c = 1'R^-1 1`` and
+    ``log|R|``, from the innovations of the AR(1) (module docstring), in O(rows)."""
+    _check_rho(rho, tl)
+    r = np.atleast_2d(np.asarray(r, dtype=float))[:, tl.order]
+    phi, prev = _link_terms(r, tl, rho)
+    innov = r - phi * prev
+    link = tl.linked
+    e2 = np.where(link, innov ** 2 / (1.0 - phi ** 2), r ** 2)
+    wr = np.where(link, innov / (1.0 + phi), r)
+    cc = np.where(link, (1.0 - phi) / (1.0 + phi), 1.0)
+    ld = np.where(link, np.log1p(-phi ** 2), 0.0)
+    return tuple(np.add.reduceat(a, tl.starts, axis=1) for a in (e2, wr, cc, ld))
+
+
+def unit_effect_conditional(r, tl: Timeline, rho, sigma, tau):
+    """Mean and SD of each unit's intercept given its rows and the parameters.
+
+    With ``r`` the residuals without the intercept, the normal update gives
+    ``u_i | y ~ N(tau^2 w'r_i / (sigma^2 + tau^2 c_i), tau^2 sigma^2 / (sigma^2 + tau^2 c_i))``
+    (``w'r`` and ``c`` as in the module docstring; at ``rho = 0`` ``c_i = T_i`` and
+    ``w'r_i`` the residual sum, design.md section 4). ``tau=None`` is the flat-prior
+    (fixed-effects) limit: the GLS mean ``w'r_i / c_i`` with variance ``sigma^2 / c_i``.
+
+    Returns
+    -------
+    mean, sd : arrays (N,) or (S, N), units in the order of ``tl.keys``.
+    """
+    one = np.ndim(r) == 1
+    _, wr, c, _ = _unit_terms(r, tl, rho)
+    s2 = _params(sigma) ** 2
+    if tau is None:
+        mean, var = wr / c, s2 / c
+    else:
+        t2 = _params(tau) ** 2
+        d = s2 + t2 * c
+        mean, var = t2 * wr / d, t2 * s2 / d
+    sd = np.sqrt(var)
+    return (mean[0], sd[0]) if one else (mean, sd)
+
+
 def unit_logdensity(r, tl: Timeline, rho, sigma, tau):
     """Marginal log density of each unit's rows, from the residuals ``r = y - x'b``.
 
@@ -621,18 +663,8 @@ def unit_logdensity(r, tl: Timeline, rho, sigma, tau):
     -------
     array (N,) or (S, N), units in the order of ``tl.keys``.
     """
-    _check_rho(rho, tl)
-    r = np.asarray(r, dtype=float)
-    one = r.ndim == 1
-    r = np.atleast_2d(r)[:, tl.order]
-    phi, prev = _link_terms(r, tl, rho)
-    innov = r - phi * prev
-    link = tl.linked
-    e2 = np.where(link, innov ** 2 / (1.0 - phi ** 2), r ** 2)
-    wr = np.where(link, innov / (1.0 + phi), r)
-    cc = np.where(link, (1.0 - phi) / (1.0 + phi), 1.0)
-    ld = np.where(link, np.log1p(-phi ** 2), 0.0)
-    q, wr, c, logdet = (np.add.reduceat(a, tl.starts, axis=1) for a in (e2, wr, cc, ld))
+    one = np.ndim(r) == 1
+    q, wr, c, logdet = _unit_terms(r, tl, rho)
     s2 = _params(sigma) ** 2
     T = tl.T.astype(float)
     if tau is None:

@@ -399,3 +399,24 @@ def test_dask_partitions_of_a_parquet_panel_give_the_same_statistics(panel, tmp_
     merged = pieces[0].compute(scheduler="sync")
     assert any(np.unique(df.iloc[a - 1:a + 1]["unit"]).size == 1 for a in cuts[1:-1])
     _assert_same(ar1.finalize(merged), whole)
+
+
+@pytest.mark.parametrize("rho,sigma,tau", [(0.6, 1.3, 0.8), (-0.7, 0.9, 1.1), (0.3, 1.0, None)])
+def test_unit_effect_conditional_equals_dense_normal(panel, rho, sigma, tau):
+    # reference: numpy's dense Gaussian update. Random: Cov(u, r) = tau^2 1',
+    # Var(r) = Sigma, so E[u | r] = tau^2 1'Sigma^-1 r, Var = tau^2 - tau^4 1'Sigma^-1 1.
+    # Fixed effects (flat prior): GLS of r on 1 with covariance sigma^2 R.
+    Z, keys, times, _ = panel
+    r = Z[:, -1] - Z[:, :-1] @ B
+    tl = ar1.Timeline.build(keys, times)
+    mean, sd = ar1.unit_effect_conditional(r, tl, rho, sigma, tau)
+    for j, (t, ri) in enumerate(_units(Z, keys, times, B)):
+        one = np.ones(len(t))
+        if tau is None:
+            a = np.linalg.solve(sigma ** 2 * _ar1_corr(t, rho), one)
+            m_ref, v_ref = a @ ri / (a @ one), 1.0 / (a @ one)
+        else:
+            a = np.linalg.solve(_dense_cov(t, rho, sigma, tau), one)
+            m_ref, v_ref = tau ** 2 * a @ ri, tau ** 2 - tau ** 4 * a @ one
+        assert mean[j] == pytest.approx(m_ref, abs=1e-10)
+        assert sd[j] == pytest.approx(np.sqrt(v_ref), abs=1e-10)
