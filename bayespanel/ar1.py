@@ -417,6 +417,11 @@ class AR1Stats:
         the cross-products of the stacked vectors ``[z*_1, E*_1..E*_m, S*_1..S*_m]``. The
         density is a few array operations per ``m`` whatever the number of groups, and the
         arrays hold no blocks for gap lengths a group does not have.
+
+        The moments are kept about their own means, so any ``center`` is exact in exact
+        arithmetic; in floating point the density's quadratic forms cancel least when
+        ``center`` is near the data's mean (pass it when columns carry large offsets, as
+        the samplers' standardisation does).
         """
         p, D = self.p, len(self.gaps)
         c = np.zeros(p) if center is None else np.asarray(center, dtype=float)

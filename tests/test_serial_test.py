@@ -129,3 +129,21 @@ def test_size_under_no_serial_correlation():
         X = np.column_stack([np.ones(N * T), x])
         power += serial_correlation_arrays(X, y, keys, times).f_p_value < 0.05
     assert power / 40 >= 0.8
+
+
+def test_occasion_effects_equal_statsmodels_with_year_indicators():
+    # linearmodels' wage panel with an indicator per year (1980 the reference), differenced
+    # like the other columns; statsmodels fits the same differenced indicators
+    from linearmodels.datasets import wage_panel
+
+    df = wage_panel.load()
+    years = [f"y{y}" for y in range(1981, 1988)]
+    dummies = df.assign(**{c: (df["year"] == int(c[1:])).astype(float) for c in years})
+    res, p, n = _statsmodels_version(dummies, "nr", "year", "lwage",
+                                     ["expersq", "union", "married"] + years)
+    test = serial_correlation_test(bp.Panel(df, unit="nr", time="year"),
+                                   "lwage ~ expersq + union + married", occasion_effects=True)
+    assert test.n_pairs == n
+    assert test.coef == pytest.approx(res.params["lag"], rel=1e-9)
+    assert test.se == pytest.approx(res.bse["lag"], rel=1e-9)
+    assert test.f_p_value == pytest.approx(p, rel=1e-8)
