@@ -76,8 +76,6 @@ KNOWN_CYCLE_EDGES: set[tuple[str, str]] = {
     ("bayespanel.posterior", "bayespanel.models.latent"),
     ("bayespanel.reference._results", "bayespanel.reference.estimators"),
     ("bayespanel.reference.estimators", "bayespanel.reference._results"),
-    ("bayespanel.report.family_report", "bayespanel.report.html"),
-    ("bayespanel.report.html", "bayespanel.report.family_report"),
     ("bayespanel.runner", "bayespanel.family_stage"),
 }
 

@@ -9,6 +9,7 @@ they return nothing and the report is as before.
 from __future__ import annotations
 
 from ..terms import BETWEEN, WITHIN, parse
+from .markup import Safe, esc, join, note, tag, table
 
 __all__ = ["family_of", "effects", "overview_text", "coefficient_note", "partition_lead",
            "contrast_scale", "AME_SCALE"]
@@ -44,8 +45,6 @@ def _link(r):
 
 def overview_text(r):
     """One sentence on the family and random slopes, or ''."""
-    from .html import Safe, esc
-
     f = family_of(r)
     if f["name"] == "gaussian" and not f["random_slopes"]:
         return ""
@@ -62,8 +61,6 @@ def overview_text(r):
 def coefficient_note(r):
     """What the coefficients measure for a non-identity link, and how the reference GLMs
     relate to them; '' for identity links."""
-    from .html import Safe, note
-
     link = _link(r)
     if link == "identity":
         if family_of(r)["random_slopes"] and r.get("reference"):
@@ -91,15 +88,12 @@ def _cells(est, u, lo, hi):
     """Estimate, SD/SE and interval cells by the report's digits rule
     (bayespanel.report.numbers)."""
     from . import numbers as num
-    from .html import esc
 
     return [esc(num.estimate(est, u)), esc(num.uncertainty(u)), esc(num.interval(lo, hi, u))]
 
 
 def effects(r):
     """The section on average marginal effects (a note when the link is the identity)."""
-    from .html import Safe, esc, join, note, tag, table  # noqa: F401
-
     models = [m for m in r.get("models", []) if m.get("average_marginal_effects")]
     refs = [f for f in r.get("reference", []) if f.get("average_marginal_effects")]
     if not models and not refs:
@@ -158,8 +152,6 @@ def effects(r):
 
 def partition_lead(r):
     """The partition section's opening for latent-effect runs (None: the Gaussian text)."""
-    from .html import tag
-
     f = family_of(r)
     if f["name"] == "gaussian" and not f["random_slopes"]:
         return None
