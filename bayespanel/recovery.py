@@ -63,7 +63,12 @@ BAYES, REFERENCE, ORACLE = "Bayesian", "reference", "GLS, known variances"
 def _builder(model):
     from . import kinds
     from .models import GaussianModel
+    from .models.latent import LatentModel
 
+    if isinstance(model, LatentModel):  # also an instance of its builder (latent_class)
+        raise SpecificationError(
+            f"the design check runs the Gaussian models; {model!r} has latent unit effects "
+            "(family= or random_slopes=)")
     if isinstance(model, GaussianModel):
         return model
     if isinstance(model, (str, kinds.ModelKind)):

@@ -194,3 +194,28 @@ def test_diagnostics_name_an_added_variable_that_did_not_converge(fits):
     diag = bad.diagnostics(warn=False)
     assert diag["max_rhat_parameter"] == "extra" and diag["max_rhat"] > 1.5
     assert any("extra" in p for p in diag["problems"])
+
+
+@pytest.mark.parametrize("builder, options", [
+    (bp.RandomIntercept, {"family": "student_t"}),
+    (bp.WithinBetween, {"random_slopes": ["value"]}),
+])
+def test_a_builder_with_latent_options_returns_its_own_kind(grunfeld, builder, options):
+    from bayespanel import kinds
+    from bayespanel.models.latent import LatentModel
+
+    panel = bp.Panel(grunfeld, unit="firm", time="year")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        m = builder(panel, FORMULA, None, **options)  # priors given by position, too
+        direct = LatentModel(panel, FORMULA, builder=builder.__name__, kind=builder.kind,
+                             **options)
+    assert isinstance(m, builder) and isinstance(m, LatentModel)
+    assert not isinstance(m, bp.CorrelatedEffects)
+    assert kinds.model(type(m)).class_name == builder.__name__
+    # the same model as the latent class builds: same log density at the initial point
+    point = m.pymc_model.initial_point()
+    assert m.pymc_model.compile_logp()(point) == pytest.approx(
+        direct.pymc_model.compile_logp()(direct.pymc_model.initial_point()), rel=1e-12)
+    with pytest.raises(SpecificationError, match="set_data"):
+        m.set_suffstats(m.stats)

@@ -59,7 +59,7 @@ from . import gaussian, slopes
 from .priors import Prior, _coerce, _fill, resolve_priors, standardised_params
 from .graph import mark_built
 
-__all__ = ["LatentSpec", "LatentModel", "latent_model", "LATENT_OPTIONS"]
+__all__ = ["LatentSpec", "LatentModel", "latent_model", "latent_class", "LATENT_OPTIONS"]
 
 #: options that send a builder to :class:`LatentModel`
 LATENT_OPTIONS = ("family", "random_slopes", "trials", "exposure", "centred")
@@ -108,7 +108,10 @@ def wants_latent(options: dict) -> bool:
 
 def latent_model(cls, panel, formula, priors=None, likelihood=None, occasion_effects=False,
                  **options):
-    """Entry used by the builders' hook: check the builder, then build a LatentModel."""
+    """Entry used by the builders' hook (``GaussianModel.__new__``): check the builder and
+    the options, and return a new, not yet initialised instance of
+    :func:`latent_class` ``(cls)``; Python then runs its ``__init__`` with the builder's
+    arguments."""
     unknown = [k for k in options if k not in LATENT_OPTIONS]
     if unknown:
         raise SpecificationError(f"{cls.__name__} got unknown option(s) {', '.join(map(repr, unknown))}")
@@ -116,8 +119,60 @@ def latent_model(cls, panel, formula, priors=None, likelihood=None, occasion_eff
         raise SpecificationError(
             f"{', '.join(k + '=' for k in options)} is available on RandomIntercept, "
             f"WithinBetween and CorrelatedEffects, not on {cls.__name__}")
-    return LatentModel(panel, formula, builder=cls.__name__, kind=cls.kind, priors=priors,
-                       likelihood=likelihood, occasion_effects=occasion_effects, **options)
+    return object.__new__(latent_class(cls))
+
+
+_LATENT_CLASSES: dict = {}
+
+
+def latent_class(builder) -> type:
+    """The class of the latent-effect models a builder makes (``family=`` other than
+    Gaussian, or ``random_slopes=``): a :class:`LatentModel` that is also an instance of
+    the builder, so ``isinstance(RandomIntercept(panel, f, family="poisson"),
+    RandomIntercept)`` holds and the registry of model kinds finds its kind. One class per
+    builder, made on first use."""
+    if issubclass(builder, LatentModel):
+        return builder
+    if builder not in _LATENT_CLASSES:
+        name = f"Latent{builder.__name__}"
+        _LATENT_CLASSES[builder] = type(name, (_BuiltThrough, LatentModel, builder), {
+            "__module__": __name__, "__qualname__": name, "_builder": builder,
+            "__doc__": f"A :class:`LatentModel` made by ``{builder.__name__}(...)`` with the "
+                       "latent options (see :func:`latent_class`)."})
+    return _LATENT_CLASSES[builder]
+
+
+class _BuiltThrough:
+    """What a latent-effect model made through a builder takes from it (its arguments)
+    and what it refuses: the Gaussian builders' data swaps and constructors work on
+    sufficient statistics, which a latent-effect likelihood does not read."""
+
+    _builder = None
+
+    def __init__(self, panel, formula, priors=None, likelihood=None, occasion_effects=False,
+                 **options):
+        LatentModel.__init__(self, panel, formula, builder=self._builder.__name__,
+                             kind=self._builder.kind, priors=priors, likelihood=likelihood,
+                             occasion_effects=occasion_effects, **options)
+
+    def _refuse(self, what, instead):
+        raise SpecificationError(
+            f"{what} is not available for latent-effect models (family="
+            f"{self.family.name!r}); {instead}")
+
+    def set_suffstats(self, stats, rows=None):
+        self._refuse("set_suffstats", "swap the outcome with set_data(y)")
+
+    def sample_prior_predictive(self, draws=500, seed=1):
+        self._refuse("sample_prior_predictive", "use pymc.sample_prior_predictive on "
+                     "m.pymc_model")
+
+    @classmethod
+    def from_design(cls, *args, **kwargs):
+        raise SpecificationError(f"{cls._builder.__name__} with the latent options is built "
+                                 "from a panel: call it with the panel and the formula")
+
+    from_suffstats = from_design
 
 
 def _column_values(panel, design, value, option):
