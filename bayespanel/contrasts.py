@@ -180,12 +180,22 @@ class ContrastResult:
                          "message": t.message})
         return pd.DataFrame(rows).set_index("test") if rows else pd.DataFrame()
 
-    def to_dict(self, prob: float | None = None) -> dict:
-        """JSON-ready form (nan becomes None)."""
+    #: record keys of :meth:`table` columns
+    _RECORD = {"mean": "mean", "sd": "sd", "lower": "lower", "upper": "upper",
+               "P(> 0)": "p_positive", "P(< 0)": "p_negative", "rope": "rope",
+               "P(in rope)": "p_rope", "reference estimate": "reference_estimate",
+               "reference lower": "reference_lower", "reference upper": "reference_upper",
+               "reference se": "reference_se"}
+
+    def to_record(self, prob: float | None = None) -> list:
+        """The ``contrasts`` records of a model in ``results.json`` (docs/results-schema.md):
+        one per covariate with the posterior summary of between minus within, the sign and
+        ROPE probabilities and the reference contrast (``None`` where absent). The
+        specification tests are recorded in the run's ``tests`` section."""
         t = self.table(prob)
-        return {"kind": self.kind, "prob": t.attrs["prob"], "contrast": "between minus within",
-                "covariates": {i: json_record(r) for i, r in t.iterrows()},
-                "tests": {k: json_record(v.to_dict()) for k, v in self.tests.items()}}
+        return [json_record({"covariate": cov, **{key: r.get(col) for col, key
+                                                   in self._RECORD.items()}})
+                for cov, r in t.iterrows()]
 
     def __repr__(self):
         s = f"<ContrastResult between minus within, {self.kind}>\n{self.table()}"

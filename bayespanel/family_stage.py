@@ -166,18 +166,11 @@ def reference_stage(settings, panel, design, say):
                          f"computed: {exc}")
             continue
         fits[name] = res
-        tab = res.table(prob)
         out.append(_floats({
             "name": name, "title": _glm_title(settings, name),
             "assumptions": _glm_assumptions(settings, res),
             "estimator": "glm", "method": f"{_glm_kind(settings)}, population-averaged",
-            "cov": res.cov_type,
-            "coefficients": [_floats({"term": t, "estimate": r["estimate"], "se": r["se"],
-                                      "df": r["df"], "p_value": r["p"], "lower": r["lower"],
-                                      "upper": r["upper"]}) for t, r in tab.iterrows()],
-            "sigma_unit": None, "sigma_obs": None, "icc": None,
-            "n_obs": res.n_obs, "n_units": res.n_units,
-            "not_estimated": {str(k): str(v) for k, v in res.dropped.items()},
+            **res.to_record(prob),
             "family": settings.family,
             "test_distribution": (f"t({res.n_units - 1})" if res.cov_type == "cluster"
                                   else "normal"),
@@ -305,7 +298,6 @@ def _ame_stage(post, name, settings, ref_fits, prob):
 def _partition_stage(post, design, kind, prob, settings):
     """The variance partition on the latent scale (outcome scale for identity links)."""
     from . import partition as part
-    from .runner import _floats, _thin_for
 
     fam = _family(settings)
     tau = post.flat_draws("sigma_unit")
@@ -317,25 +309,17 @@ def _partition_stage(post, design, kind, prob, settings):
     X, terms, tv = part.design_columns(M, codes, post.labels, kind)
     d = part.partition_draws(X, codes, terms, tv, kind, post.labels, post.coef_draws(),
                              sigma, tau)
-    tab = part.summarise_draws(d, prob)
+    rec = part.PartitionResult(d, kind).to_record(prob)
     scale = SCALE_TEXT[fam.link]
     if settings.random_slopes:
         scale += ("; with random slopes the unit SD and the ICC are those of the unit "
                   "intercepts at the covariate means, and the explained-variance shares are "
                   "left out (they would miss the slopes' variance)")
-    explained = [] if settings.random_slopes else [
-        _floats({"part": p, "total": tab.at[f"total: {p}", "mean"],
-                 "within": tab.at[f"within: {p}", "mean"] if f"within: {p}" in tab.index else None,
-                 "between": tab.at[f"between: {p}", "mean"] if f"between: {p}" in tab.index
-                 else None})
-        for p in ("within part", "between part", "unit intercepts", "occasion residual")]
-    icc = np.asarray(d["ICC"], dtype=float)
-    return {"summary": [_floats({"quantity": q, **{c: tab.at[q, c] for c in
-                                                   ("mean", "median", "sd", "lower", "upper")},
-                                 "reference": None}) for q in ("unit SD", "occasion SD", "ICC")],
-            "theta": [], "explained": explained,
-            "icc_draws": [float(v) for v in icc[::_thin_for(len(icc), 1000)] if np.isfinite(v)],
-            "scale": scale}
+    # no GLS quasi-demeaning share (theta) for latent effects
+    rec.update(theta=[], scale=scale)
+    if settings.random_slopes:
+        rec["explained"] = []
+    return rec
 
 
 def _ppc_stage(post, design, settings):
@@ -358,8 +342,7 @@ def _ppc_stage(post, design, settings):
 
 def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, progress_bars):
     """Sample one latent-effect model and build its ``results.json`` entry."""
-    from .runner import (_contrast_entries, _contrasts,
-                         _diagnostics_entry, _floats, _model_priors, _prior_text,
+    from .runner import (_contrasts, _floats, _model_priors, _prior_text,
                          _sample_timed)
 
     registered = kinds.model(name)
@@ -377,14 +360,7 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
         f"(+{settings.tune} tuning)")
     post, seconds = _sample_timed(m, settings, progress_bars)
     diag = post.diagnostics(warn=False)
-    summ = post.summary(prob)
-    lo, hi = summ.columns[2], summ.columns[3]
-    row = lambda key, r: _floats({key: r.name, "mean": r["mean"], "sd": r["sd"],  # noqa: E731
-                                  "lower": r[lo], "upper": r[hi], "rhat": r["rhat"],
-                                  "ess_bulk": r["ess_bulk"], "ess_tail": r["ess_tail"]})
-    coefs = [row("term", r) for _, r in summ.loc[post.labels].iterrows()]
-    scale = [{k: v for k, v in row("name", r).items() if k != "ess_tail"}
-             for q, r in summ.iterrows() if q not in post.labels]
+    record = post.to_record(prob)
     kind = registered.columns
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -393,8 +369,8 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
         vp = _partition_stage(post, m.design, kind, prob, settings)
         contrasts = []
         if kind in ("within_between", "mundlak"):
-            contrasts = _contrast_entries(
-                _contrasts(post, m.design, kind, post.coef_draws(), settings, None).table(prob))
+            contrasts = _contrasts(post, m.design, kind, post.coef_draws(), settings,
+                                   None).to_record(prob)
         ppc = _ppc_stage(post, m.design, settings)
     rel = None
     if out_dir is not None:
@@ -413,11 +389,11 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
                              "sampler": str(post.sampling.get("sampler", settings.sampler)),
                              "seconds": seconds}),
         "priors": {k: _prior_text(v) for k, v in priors_used.items()},
-        "coefficients": coefs,
-        "scale": scale,
+        "coefficients": record["coefficients"],
+        "scale": record["scale"],
         "variance_partition": vp,
         "contrasts": contrasts,
-        "diagnostics": _diagnostics_entry(diag),
+        "diagnostics": record["diagnostics"],
         "loo": None,
         "ppc": ppc,
         "family": family_record(settings),

@@ -43,7 +43,7 @@ from .design import group_means
 from .errors import SpecificationError, choices_error
 from .jsonsafe import json_record
 from .mathcore import partition_quantities
-from .resultshape import DEFAULT_INTERVAL, check_prob
+from .resultshape import DEFAULT_INTERVAL, check_prob, term_records
 from .terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
 
 __all__ = ["PartitionResult", "coefficient_parts", "partition_draws", "partition_from_stats",
@@ -300,13 +300,31 @@ class PartitionResult:
         out.attrs["kind"] = self.kind
         return out
 
-    def to_dict(self, prob: float = DEFAULT_INTERVAL) -> dict:
-        """JSON-ready summary (nan becomes None)."""
-        t = self.table(prob)
-        recs = {q: json_record(row)
-                for q, row in t.iterrows()}
-        return {"kind": self.kind, "prob": prob, "reference": self.reference_name,
-                "quantities": recs}
+    def to_record(self, prob: float = DEFAULT_INTERVAL) -> dict:
+        """The ``variance_partition`` record of a model in ``results.json``
+        (docs/results-schema.md): ``summary`` (unit SD, occasion SD, ICC: mean, median,
+        SD, interval and the reference's plug-in value), ``theta`` (per panel length),
+        ``explained`` (the Rights-Sterba shares of the total, within and between
+        variance) and ``icc_draws`` (at most about 1,000 evenly thinned finite draws).
+        Non-finite numbers are ``None``."""
+        tab = self.table(prob)
+        if "reference" not in tab:
+            tab["reference"] = np.nan
+        summary = term_records(tab.loc[["unit SD", "occasion SD", "ICC"]],
+                               ("mean", "median", "sd", "lower", "upper", "reference"),
+                               key="quantity")
+        theta = [json_record({"length": int(q.split("=")[1].rstrip(")")),
+                               "mean": tab.at[q, "mean"], "lower": tab.at[q, "lower"],
+                               "upper": tab.at[q, "upper"]})
+                 for q in tab.index if q.startswith("theta (T=")]
+        explained = [json_record({"part": p, **{
+            lev: tab.at[f"{lev}: {p}", "mean"] if f"{lev}: {p}" in tab.index else None
+            for lev in ("total", "within", "between")}})
+            for p in ("within part", "between part", "unit intercepts", "occasion residual")]
+        icc = self.draws["ICC"].to_numpy(dtype=float)
+        icc = icc[::max(1, int(np.ceil(len(icc) / 1000)))]
+        return {"summary": summary, "theta": theta, "explained": explained,
+                "icc_draws": [float(v) for v in icc if np.isfinite(v)]}
 
     def __repr__(self) -> str:
         return f"<PartitionResult {self.kind}, {len(self.draws)} draws>\n{self.table()}"

@@ -37,7 +37,8 @@ import xarray as xr
 from .errors import SamplingWarning, SpecificationError
 from .models import gaussian
 from .models.builders import ModelSpec
-from .resultshape import DEFAULT_INTERVAL, check_prob
+from .jsonsafe import jsonable
+from .resultshape import DEFAULT_INTERVAL, check_prob, term_records
 from .suffstats import SuffStats
 
 __all__ = ["Posterior", "PointwiseInputs", "simulate_outcome", "THRESHOLDS"]
@@ -404,6 +405,28 @@ class Posterior:
         out.columns = ["estimate", "sd", "lower", "upper"]
         out.attrs.update(prob=prob, error="sd")
         return out
+
+    def to_record(self, prob: float = DEFAULT_INTERVAL) -> dict:
+        """This posterior's part of its model entry in ``results.json`` (``models[]`` in
+        docs/results-schema.md): ``coefficients`` (one record per term of
+        :meth:`summary`: mean, SD, interval, R-hat, bulk and tail ESS), ``scale`` (the
+        other parameters of :meth:`summary`, e.g. ``sigma_unit``, ``sigma_obs``, ``icc``,
+        without the tail ESS) and ``diagnostics`` (:meth:`diagnostics` without warnings).
+        Non-finite numbers are ``None``."""
+        summ = self.summary(prob)
+        summ = summ.rename(columns=dict(zip(summ.columns[2:4], ("lower", "upper"))))
+        cols = ("mean", "sd", "lower", "upper", "rhat", "ess_bulk")
+        diag = self.diagnostics(warn=False)
+        return {
+            "coefficients": term_records(summ.loc[self.labels], cols + ("ess_tail",)),
+            "scale": term_records(summ.drop(index=self.labels), cols, key="name"),
+            "diagnostics": jsonable({
+                "divergences": diag["divergences"], "draws": diag["draws"],
+                "max_rhat": diag["max_rhat"], "min_ess_bulk": diag["min_ess_bulk"],
+                "min_ess_tail": diag["min_ess_tail"],
+                "min_bfmi": float(np.nanmin(diag["bfmi"])) if diag["bfmi"] else None,
+                "warnings": list(diag["problems"])}),
+        }
 
     def contextual_effects(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
         """The contextual effect (between minus within) of each time-varying covariate.

@@ -29,8 +29,10 @@ Every interval the package reports by default has the probability
 from __future__ import annotations
 
 from .errors import SpecificationError
+from .jsonsafe import json_record
 
-__all__ = ["DEFAULT_INTERVAL", "LEADING_COLUMNS", "check_prob", "leading_columns"]
+__all__ = ["DEFAULT_INTERVAL", "LEADING_COLUMNS", "check_prob", "leading_columns",
+           "term_records"]
 
 #: probability of every interval reported by default (summaries, tables, partitions,
 #: contrasts, ICC, average marginal effects, predictive checks, run settings)
@@ -51,3 +53,14 @@ def check_prob(prob) -> float:
 def leading_columns(error_name: str) -> list:
     """The leading columns of ``table()`` for a fit whose error column is ``error_name``."""
     return [error_name if c == "error" else c for c in LEADING_COLUMNS]
+
+
+#: record keys of table columns whose names are short in tables
+_RECORD_KEYS = {"p": "p_value"}
+
+
+def term_records(table, columns, key: str = "term") -> list:
+    """One record per row of a table: ``{key: row label, column: value, ...}`` for the
+    given columns (``p`` is recorded as ``p_value``), non-finite numbers ``None``."""
+    return [json_record({key: label, **{_RECORD_KEYS.get(c, c): row[c] for c in columns}})
+            for label, row in table[list(columns)].iterrows()]

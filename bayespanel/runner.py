@@ -781,33 +781,15 @@ def _reference_stage(settings, design, say, failed):
 def _reference_one(name, settings, design):
     from . import reference as ref
 
-    prob = settings.interval
     components = kinds.reference(name).variance_components
     kw = {"method": settings.re_method} if components else {}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         res = ref.fit_design(design, name, cov=settings.cov, **kw)
-    tab = res.table(prob)
-    entry = {
-        "name": name, "title": kinds.reference(name).title,
-        "assumptions": _assumptions(res, settings.cov) or kinds.reference(name).assumptions,
-        "estimator": name, "method": res.method, "cov": res.cov_type,
-        "coefficients": [{"term": t, "estimate": float(r["estimate"]), "se": float(r["se"]),
-                          "df": float(r["df"]) if np.isfinite(r["df"]) else None,
-                          "p_value": float(r["p"]), "lower": float(r["lower"]),
-                          "upper": float(r["upper"])} for t, r in tab.iterrows()],
-        "sigma_unit": res.sigma_unit, "sigma_obs": res.sigma_obs,
-        "icc": res.icc if components else None,
-        "n_obs": res.n_obs, "n_units": res.n_units,
-        "not_estimated": {str(k): str(v) for k, v in res.dropped.items()},
-        "test_distribution": res.test_distribution,
-    }
-    if components:
-        entry["unit_variance_at_zero"] = res.unit_variance_at_zero
-        entry["boundary_note"] = res.boundary_note() or None
-    if name == "within":
-        entry["unit_intercept_share"] = res.unit_intercept_share
-    return res, _floats(entry)
+    return res, {"name": name, "title": kinds.reference(name).title,
+                 "assumptions": (_assumptions(res, settings.cov)
+                                 or kinds.reference(name).assumptions),
+                 **res.to_record(settings.interval)}
 
 
 _TESTS = (("hausman", "Hausman (classical), fixed vs random effects"),
@@ -1023,27 +1005,6 @@ def _sample_timed(m, settings, progress_bars):
     return post, time.perf_counter() - t0
 
 
-def _diagnostics_entry(diag) -> dict:
-    """The ``diagnostics`` record of a model entry from ``post.diagnostics()``."""
-    return _floats({"divergences": diag["divergences"], "draws": diag["draws"],
-                    "max_rhat": diag["max_rhat"], "min_ess_bulk": diag["min_ess_bulk"],
-                    "min_ess_tail": diag["min_ess_tail"],
-                    "min_bfmi": float(np.nanmin(diag["bfmi"])) if diag["bfmi"] else None,
-                    "warnings": list(diag["problems"])})
-
-
-def _contrast_entries(ct) -> list:
-    """The ``contrasts`` records of a model entry from a contrasts table."""
-    return [_floats({
-        "covariate": cov_name, "mean": r["mean"], "sd": r["sd"], "lower": r["lower"],
-        "upper": r["upper"], "p_positive": r["P(> 0)"], "p_negative": r["P(< 0)"],
-        "rope": r.get("rope"), "p_rope": r.get("P(in rope)"),
-        "reference_estimate": r.get("reference estimate"),
-        "reference_lower": r.get("reference lower"),
-        "reference_upper": r.get("reference upper"),
-        "reference_se": r.get("reference se")}) for cov_name, r in ct.iterrows()]
-
-
 def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, progress_bars):
     if settings.latent:  # a family other than the Gaussian, or random slopes
         from .family_stage import bayes_one
@@ -1067,11 +1028,7 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
     diag = post.diagnostics(warn=False)
     say(f"  {name}: {seconds:.1f} s, max R-hat {diag['max_rhat']:.3f}, "
         f"{diag['divergences']} divergences")
-    summ = post.summary(prob)
-    lo, hi = summ.columns[2], summ.columns[3]
-    coefs = [_floats({"term": t, "mean": r["mean"], "sd": r["sd"], "lower": r[lo], "upper": r[hi],
-                      "rhat": r["rhat"], "ess_bulk": r["ess_bulk"], "ess_tail": r["ess_tail"]})
-             for t, r in summ.loc[post.labels].iterrows()]
+    record = post.to_record(prob)
     kind = kinds.model(name).columns
     coef_d = post._flat("coef")
     sigma_d = post._flat("sigma_obs")
@@ -1084,31 +1041,13 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             pr = _partition(post, design, kind, coef_d, sigma_d, tau_d, ref_for)
-        tab = pr.table(prob)
-        keep = ["unit SD", "occasion SD", "ICC"]
-        vp = {"summary": [_floats({"quantity": q, **{c: tab.at[q, c] for c in
-                                                     ("mean", "median", "sd", "lower", "upper")},
-                                   "reference": tab.at[q, "reference"] if "reference" in tab else None})
-                          for q in keep],
-              "theta": [_floats({"length": int(q.split("=")[1].rstrip(")")),
-                                 "mean": tab.at[q, "mean"], "lower": tab.at[q, "lower"],
-                                 "upper": tab.at[q, "upper"]})
-                        for q in tab.index if q.startswith("theta (T=")],
-              "explained": [_floats({"part": p, "total": tab.at[f"total: {p}", "mean"],
-                                     "within": tab.at[f"within: {p}", "mean"]
-                                     if f"within: {p}" in tab.index else None,
-                                     "between": tab.at[f"between: {p}", "mean"]
-                                     if f"between: {p}" in tab.index else None})
-                            for p in ("within part", "between part", "unit intercepts",
-                                      "occasion residual")],
-              "icc_draws": [float(v) for v in pr.draws["ICC"].to_numpy()[
-                  ::_thin_for(len(pr.draws), 1000)]]}
+        vp = pr.to_record(prob)
     contrasts = []
     if kind in ("within_between", "mundlak"):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             cr = _contrasts(post, design, kind, coef_d, settings, ref_for)
-        contrasts = _contrast_entries(cr.table(prob))
+        contrasts = cr.to_record(prob)
     ppc = [] if large else _ppc(post, design, settings.ppc_draws, settings.seed)
     rel = None
     if out_dir is not None:
@@ -1124,14 +1063,11 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
                              "sampler": str(post.sampling.get("sampler", settings.sampler)),
                              "seconds": seconds}),
         "priors": {k: _prior_text(v) for k, v in m.priors.items()},
-        "coefficients": coefs,
-        "scale": [_floats({"name": q, "mean": summ.at[q, "mean"], "sd": summ.at[q, "sd"],
-                           "lower": summ.at[q, lo], "upper": summ.at[q, hi],
-                           "rhat": summ.at[q, "rhat"], "ess_bulk": summ.at[q, "ess_bulk"]})
-                  for q in ("sigma_unit", "sigma_obs", "icc") if q in summ.index],
+        "coefficients": record["coefficients"],
+        "scale": record["scale"],
         "variance_partition": vp,
         "contrasts": contrasts,
-        "diagnostics": _diagnostics_entry(diag),
+        "diagnostics": record["diagnostics"],
         "loo": None,
         "ppc": ppc,
     }
@@ -1196,26 +1132,9 @@ def _loo_entry(post, level, design=None, settings=None):
     except BayespanelError as exc:
         return None, {"level": level, "elpd": None, "se": None, "p_loo": None,
                       "n_high_k": None, "max_k": None, "warning": str(exc)}
-    pw = lr.pointwise
-    entry = {"level": level, "elpd": lr.elpd, "se": lr.se, "p_loo": lr.p_loo,
-             "n_high_k": None, "max_k": None, "warning": "; ".join(lr.notes) or None,
-             "method": lr.method, "n_points": lr.n_points}
+    entry = lr.to_record()
     if large:
-        entry.update(observations=_loo_observations(settings, design),
-                     subsampling_se=lr.subsampling_se)
-    if "pareto_k" in pw:
-        k = pw["pareto_k"].to_numpy(dtype=float)
-        good = lr.good_k if lr.good_k is not None else 0.7
-        high = lr.high_k  # points above the threshold not replaced by exact refits
-        entry["max_k"] = float(np.nanmax(k)) if np.isfinite(k).any() else None
-        entry["good_k"] = good
-        entry["n_high_k"] = int(len(high))
-        if "refit" in pw:
-            entry["n_refits"] = int(pw["refit"].sum())
-        if len(high) and not entry["warning"]:
-            who = ", ".join(map(str, high["unit"].astype(str).unique()[:10]))
-            entry["warning"] = (f"{len(high)} point(s) with Pareto k above {good:.2f} "
-                                f"(units {who}); their LOO values are unreliable")
+        entry["observations"] = _loo_observations(settings, design)
     if refit_note:
         entry["refit_note"] = refit_note
     if refit_warnings:

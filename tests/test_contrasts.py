@@ -98,8 +98,9 @@ def test_wage_panel_contrast_agrees_with_linearmodels_and_hausman(wage, wage_pan
     rob = bp.reference.mundlak_test(wage, WAGE, cov="cluster")
     assert c.tests["Mundlak (cluster-robust)"].statistic == pytest.approx(rob.statistic, rel=1e-8)
     assert set(c.tests_table().index) == {"Hausman (classical)", "Mundlak (cluster-robust)"}
-    out = c.to_dict()
-    assert set(out["covariates"]) == set(WAGE_TV) and out["tests"]
+    out = c.to_record()
+    assert [r["covariate"] for r in out] == list(c.table().index)
+    assert set(r["covariate"] for r in out) == set(WAGE_TV)
 
 
 def test_mundlak_unit_mean_coefficient_is_the_contrast(wage):

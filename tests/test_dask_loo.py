@@ -50,7 +50,7 @@ def draws_for(design, kind, unit_effects, seed=3, C=2, D=100):
 def assert_same(ours, theirs):
     assert ours.level == theirs.level == "occasion" and ours.method == theirs.method
     assert ours.n_points == theirs.n_points  # every row, though only the sample is kept
-    assert ours.to_dict()["n_points"] == theirs.n_points
+    assert ours.to_record()["n_points"] == theirs.n_points
     for f in ("elpd", "se", "p_loo", "subsampling_se"):
         a, b = getattr(ours, f), getattr(theirs, f)
         assert abs(a - b) <= 1e-10 * abs(b), f

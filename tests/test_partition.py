@@ -165,7 +165,8 @@ def test_posterior_partition_per_draw_and_beside_reference(demo_posts):
     assert tab.loc["ICC", "lower"] < truth["icc"] < tab.loc["ICC", "upper"]
     assert tab.loc["ICC", "reference"] == pytest.approx(ref.icc)
     np.testing.assert_allclose(draws["occasion SD"], wb.draws("sigma_obs").ravel())
-    assert part.to_dict()["quantities"]["ICC"]["reference"] == pytest.approx(ref.icc)
+    rec = {r["quantity"]: r for r in part.to_record()["summary"]}
+    assert rec["ICC"]["reference"] == pytest.approx(ref.icc)
     df = demo_posts[3]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")

@@ -131,3 +131,26 @@ def test_one_interval_default(fits):
     assert {f"{100 * lo:.10g}%", f"{100 * hi:.10g}%"} <= set(s.columns)
     with pytest.raises(bp.errors.SpecificationError, match="prob=1.5"):
         fits["reference"].interval(1.5)
+
+
+def test_records_are_what_results_json_holds(fits, linearmodels_re):
+    """Each result's to_record() is its part of results.json: the schema's keys, the
+    numbers of its table (linearmodels for the reference fit's), nan as None."""
+    ref = fits["reference"].to_record(0.9)
+    assert [c["term"] for c in ref["coefficients"]] == ["Intercept", "value", "capital"]
+    np.testing.assert_allclose([c["estimate"] for c in ref["coefficients"]],
+                               linearmodels_re.params, rtol=1e-6)  # linearmodels
+    np.testing.assert_allclose([c["se"] for c in ref["coefficients"]],
+                               linearmodels_re.std_errors, rtol=1e-6)
+    assert ref["n_obs"] == 200 and ref["n_units"] == 10 and ref["icc"] == fits["reference"].icc
+    for which in ("gaussian", "latent"):
+        post = fits[which]
+        rec = post.to_record(0.9)
+        tab = post.table(0.9)
+        assert [c["term"] for c in rec["coefficients"]] == post.labels
+        for c in rec["coefficients"]:
+            assert c["mean"] == tab.at[c["term"], "estimate"]
+            assert c["lower"] == tab.at[c["term"], "lower"]
+        names = [q["name"] for q in rec["scale"]]
+        assert "icc" in names and "sigma_unit" in names
+        assert rec["diagnostics"]["draws"] == 400

@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from ..jsonsafe import json_scalar
+from ..jsonsafe import json_record
 
 __all__ = ["LOOResult"]
 
@@ -90,20 +90,32 @@ class LOOResult:
     def n_high_pareto_k(self) -> int:
         return int(len(self.high_k))
 
-    def to_dict(self, pointwise: bool = False) -> dict:
-        """JSON-ready form (nan becomes None)."""
-        out = {"level": self.level, "method": self.method, "elpd": json_scalar(self.elpd),
-               "se": json_scalar(self.se), "p_loo": json_scalar(self.p_loo), "n_points": self.n_points,
-               "good_k": json_scalar(self.good_k), "n_high_pareto_k": self.n_high_pareto_k,
-               "notes": list(self.notes)}
-        if self.family is not None:
-            out["family"] = self.family
+    def to_record(self) -> dict:
+        """The ``loo`` record of a model in ``results.json`` (docs/results-schema.md):
+        level, ELPD, SE, p_loo, method, points, the notes as ``warning``; with Pareto k the
+        threshold ``good_k``, ``max_k``, ``n_high_k`` (points above the threshold not
+        replaced by refits) and, after refits, ``n_refits``; sub-sampled, its
+        ``subsampling_se``. Non-finite numbers are ``None``."""
+        pw = self.pointwise
+        rec = {"level": self.level, "elpd": self.elpd, "se": self.se, "p_loo": self.p_loo,
+               "n_high_k": None, "max_k": None, "warning": "; ".join(self.notes) or None,
+               "method": self.method, "n_points": self.n_points}
         if self.subsampling_se is not None:
-            out["subsampling_se"] = json_scalar(self.subsampling_se)
-        if pointwise:
-            out["pointwise"] = [{k: json_scalar(v) for k, v in r.items()}
-                                for r in self.pointwise.to_dict(orient="records")]
-        return out
+            rec["subsampling_se"] = self.subsampling_se
+        if "pareto_k" in pw:
+            k = pw["pareto_k"].to_numpy(dtype=float)
+            good = self.good_k if self.good_k is not None else 0.7
+            high = self.high_k
+            rec["max_k"] = float(np.nanmax(k)) if np.isfinite(k).any() else None
+            rec["good_k"] = good
+            rec["n_high_k"] = int(len(high))
+            if "refit" in pw:
+                rec["n_refits"] = int(pw["refit"].sum())
+            if len(high) and not rec["warning"]:
+                who = ", ".join(map(str, high["unit"].astype(str).unique()[:10]))
+                rec["warning"] = (f"{len(high)} point(s) with Pareto k above {good:.2f} "
+                                  f"(units {who}); their LOO values are unreliable")
+        return json_record(rec)
 
     def __repr__(self) -> str:
         lines = [f"{self.method} at the {self.level} level ({self.n_points} points"

@@ -8,7 +8,8 @@ from scipy import stats
 
 from .. import kinds
 from ..mathcore import intraclass_correlation
-from ..resultshape import DEFAULT_INTERVAL, check_prob
+from ..jsonsafe import jsonable
+from ..resultshape import DEFAULT_INTERVAL, check_prob, term_records
 
 __all__ = ["ReferenceResult"]
 
@@ -167,6 +168,34 @@ class ReferenceResult:
         out.attrs.update(prob=prob, error="se", estimator=self.estimator,
                          cov_type=self.cov_type, method=self.method)
         return out
+
+    def to_record(self, prob: float = DEFAULT_INTERVAL) -> dict:
+        """This fit's entry of ``results.json`` (``reference[]`` in docs/results-schema.md,
+        without the run's ``name``, ``title`` and ``assumptions``): the estimator, its
+        covariance, one record per term of :meth:`table` (``p`` as ``p_value``), the
+        variance components (``icc`` only for random-intercept fits), rows, units, the
+        terms not estimated and the tests' distribution; random-intercept fits add whether
+        the unit variance sits at zero, fixed effects the unit-intercept share. Non-finite
+        numbers are ``None``."""
+        tab = self.table(prob)
+        random = (self.estimator in kinds.reference_names()
+                  and kinds.reference(self.estimator).variance_components)
+        rec = {
+            "estimator": self.estimator, "method": self.method, "cov": self.cov_type,
+            "coefficients": term_records(
+                tab, ("estimate", "se", "df", "p", "lower", "upper")),
+            "sigma_unit": self.sigma_unit, "sigma_obs": self.sigma_obs,
+            "icc": self.icc if random else None,
+            "n_obs": self.n_obs, "n_units": self.n_units,
+            "not_estimated": {str(k): str(v) for k, v in self.dropped.items()},
+            "test_distribution": self.test_distribution,
+        }
+        if random:
+            rec["unit_variance_at_zero"] = self.unit_variance_at_zero
+            rec["boundary_note"] = self.boundary_note() or None
+        if self.estimator == "within":
+            rec["unit_intercept_share"] = self.unit_intercept_share
+        return jsonable(rec)
 
     @property
     def test_distribution(self) -> str:

@@ -49,7 +49,8 @@ import pandas as pd
 from scipy import special, stats
 
 from ..errors import EstimationError, SpecificationError, choices_error
-from ..resultshape import DEFAULT_INTERVAL, check_prob
+from ..jsonsafe import jsonable
+from ..resultshape import DEFAULT_INTERVAL, check_prob, term_records
 
 __all__ = ["GLMResult", "fit_glm", "glm_design", "GLM_COVS", "GLM_KINDS", "glm_family"]
 
@@ -144,6 +145,20 @@ class GLMResult:
                            index=pd.Index(self.labels, name="term"))
         out.attrs.update(prob=prob, error="se")
         return out
+
+    def to_record(self, prob: float = DEFAULT_INTERVAL) -> dict:
+        """This fit's entry of ``results.json`` (``reference[]``, without the run's name,
+        title, assumptions and family texts): covariance, one record per term of
+        :meth:`table`, no variance components (population-averaged), rows, units and the
+        terms not estimated. Non-finite numbers are ``None``."""
+        tab = self.table(prob)
+        return jsonable({
+            "cov": self.cov_type,
+            "coefficients": term_records(
+                tab, ("estimate", "se", "df", "p", "lower", "upper")),
+            "sigma_unit": None, "sigma_obs": None, "icc": None,
+            "n_obs": self.n_obs, "n_units": self.n_units,
+            "not_estimated": {str(k): str(v) for k, v in self.dropped.items()}})
 
     def average_marginal_effects(self, names, weights,
                                  prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
