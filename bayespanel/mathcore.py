@@ -8,6 +8,7 @@ PyTensor variables where they say so) and return arrays; labels are added by cal
 * :func:`quasi_demeaning_share`: the GLS share ``theta_i = 1 - sqrt(sigma^2 / (sigma^2 +
   T_i tau^2))`` of the unit mean taken off every row (Baltagi 2021, section 2.3).
 * :func:`intraclass_correlation`: ``tau^2 / (tau^2 + sigma^2)``.
+* :func:`unit_sd_draws`: the unit-effect SD of each draw by the model's unit-effect rule.
 * :func:`partition_quantities`: unit and occasion SDs, ICC, the quasi-demeaning shares
   and the variance parts and shares of Rights and Sterba (2019) from the within and
   between coefficients and the covariances of their columns.
@@ -26,7 +27,7 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = ["quasi_demeaning_share", "intraclass_correlation", "quadratic_forms",
-           "partition_quantities", "SHARES"]
+           "partition_quantities", "SHARES", "unit_sd_draws"]
 
 
 def quasi_demeaning_share(lengths, var_unit, var_obs):
@@ -130,3 +131,32 @@ def partition_quantities(g_w, g_b, phi_w, phi_b, sigma, tau, lengths) -> dict:
         for name, part, lev in SHARES:
             out[name] = v[part] / level[lev]
     return out
+
+
+def unit_sd_draws(unit_effects: str, sigma_unit, shape):
+    """The SD of the unit effects for every draw, by the model's unit-effect rule.
+
+    Parameters
+    ----------
+    unit_effects : {"random", "none", "fixed"}
+        ``"random"``: the draws of ``sigma_unit``; ``"none"`` (pooled): zeros, the unit
+        intercepts have no variance; ``"fixed"``: ``None``, the flat-prior limit (the
+        densities treat ``tau = None`` as fixed effects).
+    sigma_unit : array or float or None
+        Draws (or one estimate) of the unit SD; read only for ``"random"``.
+    shape : tuple
+        Shape of the result (that of the ``sigma_obs`` draws, e.g. ``(S,)`` or ``(C, D)``).
+
+    Returns
+    -------
+    numpy.ndarray or None
+    """
+    if unit_effects == "fixed":
+        return None
+    if unit_effects == "none":
+        return np.zeros(shape)
+    if unit_effects != "random":
+        raise ValueError(f"unit_effects={unit_effects!r}: expected random, none or fixed")
+    if sigma_unit is None:
+        raise ValueError("a random-intercept model needs draws of sigma_unit")
+    return np.asarray(sigma_unit, dtype=float).reshape(shape)

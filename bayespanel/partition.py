@@ -39,10 +39,11 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from . import kinds
 from .design import group_means
 from .errors import SpecificationError, choices_error
 from .jsonsafe import json_record
-from .mathcore import partition_quantities
+from .mathcore import partition_quantities, unit_sd_draws
 from .resultshape import DEFAULT_INTERVAL, check_prob, term_records
 from .terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
 
@@ -345,7 +346,7 @@ def reference_partition(ref) -> dict:
         raise SpecificationError("the reference fit carries no design to partition")
     coef = ref.coef
     labels = list(coef.index)
-    tau = None if kind == "within" else np.array([0.0 if kind == "pooled" else ref.sigma_unit])
+    tau = unit_sd_draws(kinds.reference(kind).unit_effects, ref.sigma_unit, (1,))
     d = ref.design
     args = (d.terms, d.time_varying, kind, labels, coef.to_numpy()[None, :],
             np.array([ref.sigma_obs]), tau)

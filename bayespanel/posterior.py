@@ -35,6 +35,7 @@ import pandas as pd
 import xarray as xr
 
 from .errors import SamplingWarning, SpecificationError
+from .mathcore import unit_sd_draws
 from .models import gaussian
 from .models.builders import ModelSpec
 from .jsonsafe import jsonable
@@ -652,9 +653,10 @@ class Posterior:
         per draw; see :func:`bayespanel.partition.variance_partition`."""
         from .partition import design_partition, variance_partition
 
-        tau = self._flat("sigma_unit") if self.spec.unit_effects == "random" else (
-            None if self.spec.unit_effects == "fixed" else 0.0 * self._flat("sigma_obs"))
-        args = (self.spec.kind, self.labels, self._flat("coef"), self._flat("sigma_obs"), tau)
+        sigma = self._flat("sigma_obs")
+        tau = unit_sd_draws(self.spec.unit_effects, self._flat("sigma_unit")
+                            if self.spec.unit_effects == "random" else None, sigma.shape)
+        args = (self.spec.kind, self.labels, self._flat("coef"), sigma, tau)
         if self.rows is not None:
             return variance_partition(self.rows[0], self.rows[2], *args, reference=reference)
         if self.design is not None:  # a design without rows at hand: its statistics

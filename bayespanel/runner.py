@@ -40,6 +40,7 @@ from . import kinds
 from .errors import (BayespanelError, EstimationError, SamplingWarning, SpecificationError,
                      choices_error)
 from .jsonsafe import json_record as _floats  # flat records for results.json
+from .mathcore import unit_sd_draws
 from .models.families import FAMILIES
 from .models.sampling import MIN_DRAWS
 from .occasions import true_occasion_coef
@@ -975,8 +976,7 @@ def _partition_stats(design, kind, labels, coef_d, sigma_d, tau_d, ref):
 
     plug = None
     if ref is not None and ref.estimator in part.PARTITION_KINDS:
-        tau = None if ref.estimator == "within" else [
-            0.0 if ref.estimator == "pooled" else ref.sigma_unit]
+        tau = unit_sd_draws(kinds.reference(ref.estimator).unit_effects, ref.sigma_unit, (1,))
         plug = draws(ref.coef.to_numpy()[None, :], [ref.sigma_obs], tau)
     return part.PartitionResult(draws(coef_d, sigma_d, tau_d), kind, plug,
                                 None if plug is None else ref.estimator)
@@ -1032,8 +1032,8 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
     kind = kinds.model(name).columns
     coef_d = post._flat("coef")
     sigma_d = post._flat("sigma_obs")
-    tau_d = (post._flat("sigma_unit") if m.unit_effects == "random"
-             else (np.zeros_like(sigma_d) if m.unit_effects == "none" else None))
+    tau_d = unit_sd_draws(m.unit_effects, post._flat("sigma_unit")
+                          if m.unit_effects == "random" else None, sigma_d.shape)
     ref_for = ref_fits.get(kinds.model(name).reference)
     say(f"  {name}: summaries, variance partition, contrasts, predictive checks")
     vp = None

@@ -122,3 +122,30 @@ def test_jsonable_matches_pandas_own_json_writer():
               "t": pd.Timestamp("2026-01-02")}
     assert json.loads(json.dumps(jsonable(nested), allow_nan=False)) == {
         "1": [[0, 1], [None, {"k": None}]], "t": "2026-01-02T00:00:00"}
+
+
+def test_unit_sd_draws_follow_the_unit_effect_rule():
+    # published identity (design.md section 4): the marginal density of a unit with tau = 0
+    # is that of independent rows, so "none" must give zeros; checked through the density
+    # against scipy's multivariate normal with covariance sigma^2 I + tau^2 11'
+    from scipy import stats
+
+    from bayespanel.models import gaussian
+
+    s = np.array([0.7, 1.1, 2.0])
+    np.testing.assert_array_equal(mc.unit_sd_draws("random", s.reshape(1, 3), (3,)), s)
+    assert mc.unit_sd_draws("fixed", s, (3,)) is None
+    tau0 = mc.unit_sd_draws("none", None, (3,))
+    np.testing.assert_array_equal(tau0, np.zeros(3))
+    with pytest.raises(ValueError, match="sigma_unit"):
+        mc.unit_sd_draws("random", None, (3,))
+    with pytest.raises(ValueError, match="random, none or fixed"):
+        mc.unit_sd_draws("mixed", s, (3,))
+    rng = np.random.default_rng(3)
+    M, y = rng.normal(size=(4, 1)), rng.normal(size=4)
+    codes, b = np.zeros(4, dtype=np.int64), np.array([[0.3]] * 3)
+    for tau in (tau0, mc.unit_sd_draws("random", s[::-1], (3,))):
+        ours = gaussian.unit_loglik_rows(M, y, codes, b, s, tau)[:, 0]
+        want = [stats.multivariate_normal(M[:, 0] * 0.3, _unit_cov(4, si ** 2, ti ** 2)).logpdf(y)
+                for si, ti in zip(s, tau)]
+        np.testing.assert_allclose(ours, want, rtol=1e-10)

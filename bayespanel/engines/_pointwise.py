@@ -36,6 +36,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..mathcore import unit_sd_draws
+
 __all__ = ["unit_loglik_stats", "loo_subsample_units", "loo_subsample_occasions",
            "diff_estimator"]
 
@@ -128,10 +130,8 @@ def _draws(post) -> _Draws:
     coef = np.asarray(ds["coef"].values, dtype=float)
     C, D, _ = coef.shape
     sigma = np.asarray(ds["sigma_obs"].values, dtype=float).reshape(C, D)
-    if spec.unit_effects == "random":
-        tau = np.asarray(ds["sigma_unit"].values, dtype=float).reshape(C, D)
-    else:
-        tau = np.zeros((C, D)) if spec.unit_effects == "none" else None
+    tau = unit_sd_draws(spec.unit_effects, ds["sigma_unit"].values
+                        if spec.unit_effects == "random" else None, (C, D))
     return _Draws(spec.kind, spec.unit_effects, list(spec.labels), coef, sigma, tau, ds)
 
 

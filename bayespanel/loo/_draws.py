@@ -8,6 +8,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import SpecificationError, choices_error
+from ..mathcore import unit_sd_draws
 
 LEVELS = ("unit", "occasion")
 
@@ -134,14 +135,9 @@ def from_draws(*, kind, unit_effects, labels, M, y, codes, coef, sigma, tau=None
         coef = coef[None]
     C, D, k = coef.shape
     sigma = np.asarray(sigma, dtype=float).reshape(C, D)
-    if unit_effects == "none":
-        tau = np.zeros((C, D))
-    elif unit_effects == "fixed":
-        tau = None
-    else:
-        if tau is None:
-            raise SpecificationError("a random-intercept model needs draws of sigma_unit")
-        tau = np.asarray(tau, dtype=float).reshape(C, D)
+    if unit_effects == "random" and tau is None:
+        raise SpecificationError("a random-intercept model needs draws of sigma_unit")
+    tau = unit_sd_draws(unit_effects, tau, (C, D))
     codes = np.asarray(codes, dtype=np.int64)
     if np.any(np.diff(codes) < 0):
         raise SpecificationError("rows must be sorted by unit for the pointwise terms")

@@ -26,6 +26,7 @@ from scipy.special import logsumexp
 
 from .. import suffstats as _ss
 from ..errors import EstimationError, SamplingWarning, SpecificationError
+from ..mathcore import unit_sd_draws
 from ._draws import check_level, from_posterior, model_of
 from .pointwise import holdout_loglik, pointwise_loglik, undefined_reason
 from .result import LOOResult
@@ -184,12 +185,8 @@ def refit_draws(fd, train, *, what="the held-out points", **sample_kwargs):
     S = ds.sizes["chain"] * ds.sizes["draw"]
     b = np.asarray(ds["coef"].values, float).reshape(S, -1)
     sigma = np.asarray(ds["sigma_obs"].values, float).reshape(S)
-    if fd.unit_effects == "random":
-        tau = np.asarray(ds["sigma_unit"].values, float).reshape(S)
-    elif fd.unit_effects == "none":
-        tau = np.zeros(S)
-    else:
-        tau = None
+    tau = unit_sd_draws(fd.unit_effects, ds["sigma_unit"].values
+                        if fd.unit_effects == "random" else None, (S,))
     msgs = [str(w.message) for w in caught if issubclass(w.category, SamplingWarning)]
     for w in caught:
         if not issubclass(w.category, SamplingWarning):

@@ -28,6 +28,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import EstimationError, SpecificationError
+from ..mathcore import unit_sd_draws
 from ._draws import check_level, from_draws
 from ..models import gaussian
 from ._downdate import Downdates
@@ -71,7 +72,7 @@ def _score(ref, M, labels, test, level):
     b[0, cols] = fit.coef.to_numpy()
     sigma = np.array([fit.sigma_obs])
     ue = _UNIT_EFFECTS[ref.estimator]
-    tau = None if ue == "fixed" else np.array([0.0 if ue == "none" else fit.sigma_unit])
+    tau = unit_sd_draws(ue, fit.sigma_unit if ue == "random" else None, (1,))
     return holdout_loglik(M, d.y, d.unit_codes, test, b, sigma, tau, level)[0]
 
 
@@ -81,8 +82,9 @@ def _plugin(fit, k, unit_effects):
     v[np.asarray(fit.cols, dtype=np.int64)] = -fit.beta
     v[-1] = 1.0
     sigma = float(np.sqrt(fit.sigma2_obs))
-    tau = None if unit_effects == "fixed" else (
-        0.0 if unit_effects == "none" else float(np.sqrt(fit.sigma2_unit)))
+    tau = unit_sd_draws(unit_effects, np.sqrt(fit.sigma2_unit)
+                        if unit_effects == "random" else None, ())
+    tau = None if tau is None else float(tau)
     return v, sigma, tau
 
 
