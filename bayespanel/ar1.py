@@ -116,6 +116,19 @@ def _snap(d):
     return np.where(np.abs(d - r) <= 1e-9 * np.maximum(1.0, np.abs(d)), r, d)
 
 
+def _sorted_by_unit_and_time(keys, t):
+    """``(unit keys, codes)`` when the rows are already sorted by unit and then by time
+    (strictly within a unit), else None."""
+    if keys.dtype == object or len(keys) == 0:
+        return None
+    change = keys[1:] != keys[:-1]
+    if not (np.all(keys[1:] >= keys[:-1]) and np.all(change | (t[1:] > t[:-1]))):
+        return None
+    starts = np.flatnonzero(np.concatenate([[True], change]))
+    codes = np.cumsum(np.concatenate([[False], change])).astype(np.int64)
+    return keys[starts], codes
+
+
 @dataclass(frozen=True)
 class Timeline:
     """Rows of a panel ordered by unit and time, with the link of each row to the row
@@ -144,9 +157,14 @@ class Timeline:
         keys = np.asarray(keys)
         if keys.shape != t.shape:
             raise ValueError(f"{len(keys)} unit keys for {len(t)} times")
-        ukeys, codes = np.unique(keys, return_inverse=True)
-        codes = codes.ravel()
-        order = np.lexsort((t, codes))
+        sorted_rows = _sorted_by_unit_and_time(keys, t)
+        if sorted_rows is not None:        # the common layout of panel files: no sort
+            ukeys, codes = sorted_rows
+            order = np.arange(len(t))
+        else:
+            ukeys, codes = np.unique(keys, return_inverse=True)
+            codes = codes.ravel()
+            order = np.lexsort((t, codes))
         c, ts = codes[order], t[order]
         linked = np.zeros(len(c), dtype=bool)
         linked[1:] = c[1:] == c[:-1]
@@ -195,7 +213,9 @@ class _Moments:
             return cls(0, np.zeros(U.shape[1]), np.zeros((U.shape[1], U.shape[1])))
         mean = U.mean(axis=0)
         D = U - mean
-        return cls(int(len(U)), mean, D.T @ D)
+        # einsum, not BLAS: these matrices are thin (p to (1 + 2m) p columns), and a
+        # threaded BLAS product of that shape was measured 100x slower on a busy machine
+        return cls(int(len(U)), mean, np.einsum("ij,ik->jk", D, D))
 
     def __add__(self, other: "_Moments") -> "_Moments":
         if other.n == 0:
@@ -247,24 +267,37 @@ def _pattern(ukeys, uidx, g, E, S, p, counts=None):
     ``ukeys``; each entry counts ``counts`` links (1 by default)."""
     if len(uidx) == 0:
         return ukeys[:0], np.zeros(0), np.zeros(0, np.int64), np.zeros((0, p)), np.zeros((0, p))
-    gv, gi = np.unique(g, return_inverse=True)
-    combo = uidx.astype(np.int64) * len(gv) + gi.ravel()
+    gv, gi = _unique_gaps(g)
+    combo = uidx.astype(np.int64) * len(gv) + gi
     uc, inv = np.unique(combo, return_inverse=True)
     inv = inv.ravel()
     cnt = np.bincount(inv, weights=counts, minlength=len(uc)).astype(np.int64)
-    Es = np.zeros((len(uc), p))
-    Ss = np.zeros((len(uc), p))
-    np.add.at(Es, inv, E)
-    np.add.at(Ss, inv, S)
+    Es = np.empty((len(uc), p))
+    Ss = np.empty((len(uc), p))
+    for j in range(p):
+        Es[:, j] = np.bincount(inv, weights=E[:, j], minlength=len(uc))
+        Ss[:, j] = np.bincount(inv, weights=S[:, j], minlength=len(uc))
     return ukeys[uc // len(gv)], gv[uc % len(gv)], cnt, Es, Ss
 
 
 def _link_moments(g, start, end):
     """``(gaps, [moments of [start, end] per gap])``."""
-    gv, gi = np.unique(g, return_inverse=True)
-    gi = gi.ravel()
+    gv, gi = _unique_gaps(g)
     pairs = np.hstack([start, end])
     return gv, [_Moments.of(pairs[gi == j]) for j in range(len(gv))]
+
+
+def _unique_gaps(g):
+    """``np.unique(g, return_inverse=True)``, without a sort when the gaps are small
+    whole numbers (the usual case)."""
+    if len(g) and np.all(g == np.round(g)) and g.max() < 1 << 16:
+        gint = g.astype(np.int64)
+        present = np.bincount(gint) > 0
+        gv = np.flatnonzero(present)
+        lookup = np.cumsum(present) - 1
+        return gv.astype(float), lookup[gint]
+    gv, gi = np.unique(g, return_inverse=True)
+    return gv, gi.ravel()
 
 
 def partial(Z, keys, times, column: str = "time") -> AR1Partial:
@@ -464,8 +497,13 @@ def finalize(part: AR1Partial, names=None) -> AR1Stats:
     gidx = np.searchsorted(part.gaps, part.pg)
     C = np.zeros((N, D), dtype=np.int64)
     C[uidx, gidx] = part.pc
+    base = int(C.max()) + 1 if C.size else 1
     if D == 0:        # no unit has two rows
         patterns, unit_group = np.zeros((1, 0), dtype=np.int64), np.zeros(N, dtype=np.int64)
+    elif D * np.log2(base) < 62:     # each pattern as one integer (digits in base `base`)
+        code = C @ (base ** np.arange(D, dtype=np.int64))
+        _, first, unit_group = np.unique(code, return_index=True, return_inverse=True)
+        patterns = C[first]
     else:
         patterns, unit_group = np.unique(C, axis=0, return_inverse=True)
     unit_group = unit_group.ravel()
