@@ -230,7 +230,7 @@ def _signature(name, obj):
 def _same_span(A, B) -> bool:
     """Whether the columns of ``A`` and ``B`` (same rows) span the same space, judged on
     the cross-products with the reference fits' collinearity tolerance."""
-    from .reference._linalg import rank_of
+    from .reference.linalg import rank_of
 
     C = np.column_stack([A, B])
     norms = np.sqrt(np.einsum("ij,ij->j", C, C))

@@ -653,9 +653,9 @@ def check_stats(stats, terms, outcome, maxabs, stacklevel=5):
     column far from zero, such as a calendar year, is not taken for a multiple of it),
     raw otherwise; scaled to unit diagonal, a column is refused when its squared residual
     on the columns before it is below :data:`EXACT_COLLINEAR_TOL` of its size
-    (:func:`bayespanel.reference._linalg.independent_columns`).
+    (:func:`bayespanel.reference.linalg.independent_columns`).
     """
-    from .reference._linalg import independent_columns
+    from .reference.linalg import independent_columns
 
     if stats.total[-1, -1] == 0:
         raise PanelDataError(f"the outcome {outcome!r} is constant "

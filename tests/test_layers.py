@@ -37,7 +37,7 @@ LAYERS: list[tuple[str, tuple[str, ...]]] = [
     # them, the densities, shared mathematics, linear algebra, budgets and the output
     # folder: numpy and scipy at most, nothing of the package above them
     ("core", ("errors", "terms", "suffstats", "derived", "models.gaussian", "ar1",
-              "mathcore", "jsonsafe", "reference._linalg", "resultshape", "budget",
+              "mathcore", "jsonsafe", "reference.linalg", "resultshape", "budget",
               "outputs")),
     ("kinds", ("kinds",)),  # the registry of model kinds (reads its builders by name)
     ("data", ("panel", "formula", "io", "design", "engines", "datasets")),
@@ -105,8 +105,6 @@ KNOWN_UPWARD: set[tuple[str, str]] = {
 KNOWN_PRIVATE: set[tuple[str, str]] = {
     ("bayespanel.comparison", "bayespanel.loo.reference_cv:_UNIT_EFFECTS"),
     ("bayespanel.comparison", "bayespanel.loo:_draws"),
-    ("bayespanel.comparison", "bayespanel.reference:_linalg"),
-    ("bayespanel.design", "bayespanel.reference:_linalg"),
     ("bayespanel.engines._pointwise", "bayespanel.loo.psis:_describe_points"),
     ("bayespanel.engines._pointwise", "bayespanel.loo.psis:_lpd"),
     ("bayespanel.engines._reference", "bayespanel.reference.estimators:_check_options"),

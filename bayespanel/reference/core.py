@@ -33,7 +33,7 @@ from scipy import optimize
 
 from ..errors import EstimationError
 from ..mathcore import quasi_demeaning_share
-from ._linalg import independent_columns, inv_psd, solve_psd
+from .linalg import independent_columns, inv_psd, solve_psd
 
 __all__ = [
     "CoreFit",

@@ -31,7 +31,7 @@ from .. import suffstats
 from ..errors import DataHandlingWarning, EstimationError, SpecificationError, choices_error
 from ..terms import AS_IS, parse
 from . import core
-from ._linalg import COLLINEAR_TOL
+from .linalg import COLLINEAR_TOL
 from ._results import ReferenceResult
 from .covariance import COV_TYPES, classical, cluster_scores, cr1, cr2
 

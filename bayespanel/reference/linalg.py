@@ -1,4 +1,5 @@
-"""Small linear-algebra helpers shared by the reference estimators (arrays only)."""
+"""Small linear-algebra helpers (arrays only, numpy only): the reference estimators, the
+design's check for collinear columns and the comparison's rank count share them."""
 
 from __future__ import annotations
 
