@@ -398,6 +398,15 @@ def prior_presets(model, presets=UNIT_SD_PRESETS, *, draws=1000, tune=1000, chai
         raise SpecificationError(
             f"prior_presets varies the unit-SD prior; {type(model).__name__} has no unit SD "
             "(use RandomIntercept, WithinBetween or CorrelatedEffects)")
+    from .models.graph import graph_edits
+
+    edits = graph_edits(model)
+    if edits:  # each preset is a model rebuilt from the specification, without them
+        raise SpecificationError(
+            "prior_presets rebuilds the model once per preset from its specification, "
+            f"which would leave out what was added to its pymc_model ({', '.join(edits)}); "
+            "build one model per unit-SD prior (priors={'sigma_unit': ...}), add the same "
+            "to each and sample them")
     presets = list(presets)
     if not presets:
         raise SpecificationError("presets must name at least one unit-SD prior preset")

@@ -219,3 +219,24 @@ def test_a_builder_with_latent_options_returns_its_own_kind(grunfeld, builder, o
         direct.pymc_model.compile_logp()(direct.pymc_model.initial_point()), rel=1e-12)
     with pytest.raises(SpecificationError, match="set_data"):
         m.set_suffstats(m.stats)
+
+
+def test_refits_refuse_an_added_likelihood_they_cannot_leave_out(fits, grunfeld):
+    # a second likelihood over the rows, added by the user: the refits swap only the
+    # model's own statistics, so they would keep these rows whole
+    before = fits[("before", "pymc")]
+    panel = bp.Panel(grunfeld, unit="firm", time="year")
+    model = bp.Pooled(panel, FORMULA, priors=FLAT)
+    with model.pymc_model:
+        b = model.pymc_model["coef"]
+        pm.Normal("invest_again", mu=b[0], sigma=1.0, observed=grunfeld["invest"].to_numpy())
+    post = Posterior.from_model(model, before.idata, dict(before.sampling))
+    assert post.edits == ["invest_again"]
+    with pytest.raises(SpecificationError, match="invest_again"):
+        _draws.model_of(_draws.from_posterior(post))
+    # prior presets rebuild from the specification: refused for an edited model
+    ri = bp.RandomIntercept(panel, FORMULA)
+    with ri.pymc_model:
+        pm.Normal("extra", 0.0, 1.0)
+    with pytest.raises(SpecificationError, match="extra"):
+        bp.sensitivity.prior_presets(ri, draws=10, tune=10, chains=1)

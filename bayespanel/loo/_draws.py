@@ -210,6 +210,13 @@ def _refit_model(post):
     model, edits = getattr(post, "model", None), list(getattr(post, "edits", None) or [])
     if model is not None and same_graph(getattr(post, "graph", None),
                                         graph_identity(model.pymc_model)):
+        observed = {v.name for v in model.pymc_model.observed_RVs}
+        own = [name for name in edits if name in observed]
+        if own:  # a likelihood over data the refit does not swap: not a leave-out fit
+            return _Rebuild(post, refuse=(
+                "exact refits leave points out of the model's own data only; what was "
+                f"added to its pymc_model observes data of its own ({', '.join(own)}), "
+                "which the refits would keep whole, so they would not be leave-out fits"))
         return model
     if not edits:
         return _Rebuild(post)
