@@ -2,10 +2,10 @@
 terms from one more pass over the partitions.
 
 The unit-level LOO term of a Gaussian random-intercept model is the marginal density of
-the unit's rows (design.md section 4), which needs, per unit, only ``T_i``, the unit-mean
-residual ``rbar_i = zbar_i'v`` and the within residual sum of squares
-``W_i = v' W_i v`` with ``v = [-b, 1]`` and ``W_i`` the unit's within cross-products of
-``[X, y]``. All three come out of the one pass (``DaskPanel.design(..., cluster=True)``),
+the unit's rows (:func:`bayespanel.models.gaussian.unit_logdensity`), which needs, per
+unit, only ``T_i``, the unit-mean residual ``rbar_i = zbar_i'v`` and the within residual
+sum of squares ``W_i = v' W_i v`` with ``v = [-b, 1]`` and ``W_i`` the unit's within
+cross-products of ``[X, y]``. All three come out of the one pass (``DaskPanel.design(..., cluster=True)``),
 so the terms for any set of units and draws are computed without reading the rows again,
 a chunk of units at a time so memory stays bounded. This serves the sub-sampling LOO
 estimator of Magnusson et al. (2019), which needs the point-estimate approximation for

@@ -98,7 +98,7 @@ def marginal_logdensity(T, W, rbar_sq, sigma, tau, count=1, xp=np):
     """Log density of one unit's rows with its intercept integrated out.
 
     ``-1/2 [T log 2pi + (T-1) log s^2 + log(s^2 + T t^2) + W/s^2 + T rbar^2/(s^2 + T t^2)]``
-    (design.md section 4; Searle, Casella and McCulloch 1992). With ``count > 1`` the
+    (Searle, Casella and McCulloch 1992). With ``count > 1`` the
     arguments describe ``count`` units of the same length ``T`` whose ``W`` and
     ``rbar_sq`` are summed, and the result is their summed log density. ``tau = 0`` gives
     independent rows (the pooled regression).
@@ -141,8 +141,7 @@ def marginal_loglik(v, within, group_cp, group_mean, group_count, lengths, sigma
 
 def within_loglik(v, within, n, n_units, sigma, xp=np):
     """Within (fixed-effects) log-likelihood: the unit intercepts integrated out under flat
-    priors, ``-1/2 [(n - N) log(2 pi sigma^2) + v' within v / sigma^2]`` (design.md
-    section 4)."""
+    priors, ``-1/2 [(n - N) log(2 pi sigma^2) + v' within v / sigma^2]``."""
     W = ((v @ within) * v).sum(axis=-1)
     dof = n - n_units
     return -0.5 * (dof * (LOG_2PI + xp.log(sigma ** 2)) + W / sigma ** 2)
@@ -153,7 +152,7 @@ def unit_effect_conditional(rbar, T, sigma, tau=None, xp=np):
     """Mean and SD of a unit intercept given the data and ``(b, sigma, tau)``.
 
     ``u_i | y, b, sigma, tau ~ N(tau^2 T_i rbar_i / (sigma^2 + T_i tau^2),
-    tau^2 sigma^2 / (sigma^2 + T_i tau^2))`` (the normal-normal update; design.md section 4).
+    tau^2 sigma^2 / (sigma^2 + T_i tau^2))`` (the normal-normal update).
     ``tau=None`` is the flat-prior (fixed-effects) limit: ``N(rbar_i, sigma^2 / T_i)``.
     """
     s2 = sigma ** 2

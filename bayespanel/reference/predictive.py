@@ -13,8 +13,8 @@ rows with the plug-in predictive density at the level the question needs.
   ``sigma^2 I + tau^2 J`` for the random intercept; pooled is the product of normals;
   fixed effects have no such density.
 
-The formulas are those of ``design.md`` section 4, written once in
-:mod:`bayespanel.models.gaussian` (:func:`~bayespanel.models.gaussian.occasion_logpdf`,
+The formulas are written once in :mod:`bayespanel.models.gaussian`
+(:func:`~bayespanel.models.gaussian.occasion_logpdf`,
 :func:`~bayespanel.models.gaussian.unit_logdensity`); the functions here take the reference
 fits' variances and call them, so the Bayesian LOO terms and the plug-in densities are the
 same code.
