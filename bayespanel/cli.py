@@ -390,7 +390,7 @@ def _refuse_other_run(source: Path, target: Path) -> None:
             "write the report into an empty folder or into that run's own folder")
 
 
-def _print_summary(results, truth=None) -> None:
+def _print_summary(results) -> None:
     """Reference fits and tests, estimates per Bayesian model (truth beside them for
     simulated data) and the comparison."""
     _print_reference(results)

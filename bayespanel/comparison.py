@@ -204,7 +204,7 @@ def _stacking(results: dict, common, classes=()) -> dict:
 
 
 # ---------------------------------------------------------------------------- equivalence
-def _signature(name, obj):
+def _signature(obj):
     """``(likelihood key, columns)`` of a model, or ``None`` when unknown (a LOOResult).
 
     Two models with the same key and the same column span on the same rows have the same
@@ -266,7 +266,7 @@ def equivalence_classes(models: dict) -> list:
     """
     sigs = {}
     for name, obj in models.items():
-        sig = _signature(name, obj)
+        sig = _signature(obj)
         if sig is not None:
             sigs[name] = sig
     classes, seen = [], set()

@@ -383,16 +383,6 @@ class Design:
                 keep.remove(i)
         return keep
 
-    def subset_units(self, keep) -> "Design":
-        """A design on a subset of units (boolean mask or codes), e.g. for refits."""
-        keep = np.asarray(keep)
-        if keep.dtype == bool:
-            keep_codes = np.flatnonzero(keep)
-        else:
-            keep_codes = np.unique(keep)
-        rowmask = np.isin(self.unit_codes, keep_codes)
-        return self.subset_rows(rowmask)
-
     def subset_rows(self, rowmask) -> "Design":
         """A design on a subset of rows; unit means are recomputed on those rows."""
         rowmask = np.asarray(rowmask, dtype=bool)

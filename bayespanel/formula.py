@@ -67,16 +67,6 @@ _RESERVED_PATTERNS = (
 )
 
 
-def _center(x):
-    x = np.asarray(x, dtype=float)
-    return x - np.nanmean(x)
-
-
-def _scale(x):
-    x = np.asarray(x, dtype=float)
-    return (x - np.nanmean(x)) / np.nanstd(x, ddof=1)
-
-
 # Bare transform names usable in a formula. formulaic's own C, poly, I, center and scale are
 # kept (they are pure functions of the column); numeric ones map to numpy ufuncs.
 _NUMERIC = {

@@ -522,20 +522,3 @@ class Panel:
         from .errors import choices_error
 
         raise choices_error("engine", engine, ["pandas", "dask"])
-
-
-def warn_dropped(n_dropped: int, by_column: dict, n_total: int) -> None:
-    """Report listwise deletion: never silent."""
-    if n_dropped:
-        detail = ", ".join(f"{c}: {k}" for c, k in by_column.items() if k)
-        warnings.warn(
-            f"dropped {n_dropped} of {n_total} rows with missing values (missing per column: "
-            f"{detail}); unit means are taken over the remaining rows",
-            category=_dh_warning(), stacklevel=3,
-        )
-
-
-def _dh_warning():
-    from .errors import DataHandlingWarning
-
-    return DataHandlingWarning

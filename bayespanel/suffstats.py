@@ -92,11 +92,6 @@ class SuffStats:
     def k(self) -> int:
         return self.p - 1
 
-    def between_cp(self) -> np.ndarray:
-        """Cross-products of unit means about the global mean, weighted by ``T_i``."""
-        d = self.unit_mean - self.mean
-        return (d * self.unit_count[:, None]).T @ d
-
     def to_dict(self) -> dict:
         """Arrays and sizes, for saving (NetCDF attributes or JSON)."""
         out = {k: getattr(self, k) for k in ("n", "n_units", "mean", "total", "within",

@@ -138,6 +138,10 @@ class GaussianModel:
     likelihood : {"marginal", "latent"}
     occasion_effects : bool
         Add one indicator per occasion (the first is the reference).
+    family : str
+        ``"gaussian"``, the builders' own family (docs/families.md); the builder reads
+        ``family=`` before it is built, and any other family, or ``random_slopes=``,
+        builds a latent-effect model instead (``bayespanel.models.latent``).
 
     Attributes
     ----------

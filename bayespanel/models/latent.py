@@ -262,7 +262,7 @@ class LatentModel:
         expo_arr, expo_name = _column_values(panel, design, exposure, "exposure")
         fam_mod.check_outcome(fam, design.y, outcome=design.outcome, trials=trials_arr,
                               exposure=expo_arr, where=_where(design))
-        slope_labels = self._slope_labels(design, slopes_req, labels)
+        slope_labels = self._slope_labels(design, slopes_req)
         self.design = design
         self.labels = list(labels)
         self.outcome = design.outcome
@@ -318,7 +318,7 @@ class LatentModel:
                 "(the unit-level quadrature integrates over at most three effects)")
         return out
 
-    def _slope_labels(self, design, req, labels):
+    def _slope_labels(self, design, req):
         out = []
         for name in req:
             if name not in design.terms:
@@ -882,12 +882,14 @@ class LatentPosterior(_posterior_cls()):
         return fam_mod.ppc_summary(self, draws=draws, seed=seed, prob=prob)
 
     # ------------------------------------------------------------------ save / load
-    def save(self, path, rows: bool = True) -> None:
-        """As :meth:`Posterior.save`, plus group ``bayespanel_latent`` (the random-effect
-        columns, trials, log exposure) and the latent specification as JSON."""
+    def save(self, path) -> None:
+        """As :meth:`Posterior.save` with the estimation rows (a latent-effect posterior
+        always keeps them: its pointwise likelihoods and predictive draws need them), plus
+        group ``bayespanel_latent`` (the random-effect columns, trials, log exposure) and
+        the latent specification as JSON."""
         super().save(path, rows=True)
 
-    def _tree(self, rows: bool):
+    def _tree(self, rows: bool = True):
         import xarray as xr
 
         tree = super()._tree(rows=True)

@@ -17,7 +17,7 @@ Kinds:
 
 from __future__ import annotations
 
-__all__ = ["problems", "stored", "count_by_kind", "KINDS", "REFIT_OPTION"]
+__all__ = ["problems", "stored", "KINDS", "REFIT_OPTION"]
 
 KINDS = ("sampling", "comparison")
 
@@ -75,7 +75,3 @@ def stored(results: dict) -> list[dict]:
     found = results.get("problems")
     return problems(results) if found is None else list(found)
 
-
-def count_by_kind(items) -> dict:
-    """``{kind: count}`` in the order of ``KINDS`` (kinds with no problem left out)."""
-    return {k: n for k in KINDS if (n := sum(1 for p in items if p["kind"] == k))}
