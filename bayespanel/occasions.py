@@ -24,6 +24,7 @@ import pandas as pd
 
 from .errors import SpecificationError
 from .resultshape import DEFAULT_INTERVAL
+from .safetext import LITERAL_RC, literal
 from .terms import AS_IS, BETWEEN, UNIT_MEAN, WITHIN, parse
 
 __all__ = ["occasion_effects", "occasion_effects_figure", "true_occasion_coef"]
@@ -121,8 +122,6 @@ def occasion_effects_figure(fits, prob: float = DEFAULT_INTERVAL, reference_occa
     matplotlib.figure.Figure
     """
     import matplotlib.pyplot as plt
-
-    from .report.figures import LITERAL_RC, literal
 
     if not isinstance(fits, dict):
         fits = {"fit": fits}

@@ -48,6 +48,7 @@ from . import suffstats as _ss
 from .errors import EstimationError, SamplingWarning, SpecificationError, choices_error
 from .resultshape import DEFAULT_INTERVAL
 from .occasions import true_occasion_coef
+from .safetext import LITERAL_RC, literal
 from .terms import BETWEEN, CONTRAST, UNIT_MEAN, WITHIN, parse, part_label
 
 __all__ = ["design_check", "DesignCheckResult", "design_check_section", "REFERENCE_METHODS"]
@@ -591,15 +592,11 @@ class DesignCheckResult:
 def _figure(res, prob):
     import matplotlib.pyplot as plt
 
-    from .report.figures import LITERAL_RC
-
     with plt.rc_context(LITERAL_RC):  # labels are drawn as they are (no TeX, no mathtext)
         return _draw_figure(res, prob, plt)
 
 
 def _draw_figure(res, prob, plt):
-    from .report.figures import literal
-
     tab = res.table().reset_index()
     lab = f"{round(100 * prob):d}%"
     tab = tab[tab[f"coverage {lab}"].notna()] if f"coverage {lab}" in tab else tab.iloc[:0]

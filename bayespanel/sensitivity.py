@@ -39,6 +39,7 @@ from scipy import stats as _st
 
 from .errors import SpecificationError, choices_error
 from .resultshape import DEFAULT_INTERVAL
+from .safetext import LITERAL_RC, literal
 from .terms import BETWEEN, CONTRAST, UNIT_MEAN, WITHIN, parse
 
 __all__ = ["power_scaling", "power_scaling_arrays", "log_prior_draws", "log_likelihood_draws",
@@ -325,8 +326,6 @@ class PresetComparison:
         """Posterior median and interval of the unit SD and the ICC under each preset."""
         import matplotlib.pyplot as plt
 
-        from .report.figures import LITERAL_RC, literal
-
         with plt.rc_context(LITERAL_RC):  # labels drawn as they are
             part = self.partition()
             qs = [q for q in ("unit SD", "ICC") if q in part.index]
@@ -427,8 +426,6 @@ def sensitivity_section(posterior, comparison: PresetComparison | None = None):
     reports.
     """
     import matplotlib.pyplot as plt
-
-    from .report.figures import LITERAL_RC, literal
 
     tab = power_scaling(posterior)
     notes = [f"{i}: {f}" for i, f in tab["flag"].items() if f]

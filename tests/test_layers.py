@@ -34,11 +34,11 @@ ROOT = Path(__file__).resolve().parents[1] / PACKAGE
 # face). A new module that matches no entry fails test_every_module_has_a_layer.
 LAYERS: list[tuple[str, tuple[str, ...]]] = [
     # errors, term labels, the sufficient statistics (iid and AR(1)) and what derives from
-    # them, the densities, shared mathematics, linear algebra, budgets and the output
-    # folder: numpy and scipy at most, nothing of the package above them
+    # them, the densities, shared mathematics, linear algebra, text safe to print and draw,
+    # budgets and the output folder: numpy and scipy at most, nothing of the package above
     ("core", ("errors", "terms", "suffstats", "derived", "models.gaussian", "ar1",
-              "mathcore", "jsonsafe", "reference.linalg", "resultshape", "budget",
-              "outputs")),
+              "mathcore", "jsonsafe", "safetext", "reference.linalg", "resultshape",
+              "budget", "outputs")),
     ("kinds", ("kinds",)),  # the registry of model kinds (reads its builders by name)
     ("data", ("panel", "formula", "io", "design", "engines", "datasets")),
     ("reference", ("reference",)),
@@ -92,12 +92,9 @@ KNOWN_UPWARD: set[tuple[str, str]] = {
     ("bayespanel.engines.dask", "bayespanel.loo"),
     ("bayespanel.models.latent", "bayespanel.loo"),
     ("bayespanel.models.sampling", "bayespanel"),
-    ("bayespanel.occasions", "bayespanel.report.figures"),
     ("bayespanel.posterior", "bayespanel.contrasts"),
     ("bayespanel.posterior", "bayespanel.loo"),
     ("bayespanel.posterior", "bayespanel.partition"),
-    ("bayespanel.recovery", "bayespanel.report.figures"),
-    ("bayespanel.sensitivity", "bayespanel.report.figures"),
 }
 
 # Private names used outside their package today: ("importer", "owner:name"), where owner

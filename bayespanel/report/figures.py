@@ -18,6 +18,7 @@ import io
 
 import numpy as np
 
+from ..safetext import LITERAL_RC, literal
 from .tables import coefficient_grid
 from .text import label
 
@@ -42,26 +43,7 @@ _RC = {
     "legend.frameon": False, "legend.fontsize": 8.5,
 }
 
-#: settings under which :func:`literal` text is drawn as it is: no TeX (whose special
-#: characters ``_ % & #`` would break), and mathtext only between unescaped ``$``
-LITERAL_RC = {"text.usetex": False, "text.parse_math": True}
 _RC.update(LITERAL_RC)
-
-
-def literal(text) -> str:
-    """``text`` as a string matplotlib draws literally.
-
-    With mathtext on (matplotlib's default, and :data:`LITERAL_RC`), a string with an
-    even number of unescaped ``$`` is parsed as mathematics; with every ``$`` escaped
-    there is none, and matplotlib turns each ``\\$`` back into ``$`` when it draws the
-    text, so any string, backslashes included, comes out exactly as given. Figures made
-    by the package are built under :data:`LITERAL_RC` (usetex off), so TeX never sees
-    the text either. Control characters, which no font draws, are written as escapes
-    (``\\x1b``), as on the console.
-    """
-    from .text import printable
-
-    return printable(text).replace("$", r"\$")
 
 
 def _plt():

@@ -7,7 +7,7 @@ kind (:mod:`bayespanel.kinds`: ``title`` and ``assumptions``).
 
 from __future__ import annotations
 
-import re
+from ..safetext import printable
 
 __all__ = ["CAUTION", "LEVEL_TEXT", "LABELS", "HEADINGS", "label", "printable"]
 
@@ -59,15 +59,3 @@ CAUTION = (
     "units and carry every confounder that differs between them. A model that predicts "
     "better by LOO is not thereby closer to the causal truth."
 )
-
-
-_UNPRINTABLE = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u061c\u200b-\u200f\u2028-\u202e"
-                          "\u2060-\u2069\ufeff]")
-
-
-def printable(text) -> str:
-    """``text`` with control and direction-changing characters written as escapes
-    (``\\x1b``), so a column name or a label cannot drive the terminal (colours, cursor
-    moves, reversed text); line breaks and tabs stay."""
-    return _UNPRINTABLE.sub(lambda m: m.group().encode("unicode_escape").decode("ascii"),
-                            str(text))
