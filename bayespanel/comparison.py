@@ -39,6 +39,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from . import kinds
 from .errors import EstimationError, SpecificationError
 from .resultshape import DEFAULT_INTERVAL, check_prob, leading_columns
 from .loo import LOOResult, loo, reference_cv
@@ -218,12 +219,12 @@ def _signature(obj):
         key = ("posterior", fd.unit_effects, fd.family, slopes)
         return key, fd.M
     if _is_reference(obj):
-        from .loo.reference_cv import _UNIT_EFFECTS, reference_columns
+        from .loo.reference_cv import reference_columns
 
         if obj.estimator == "between" or obj.design is None:
             return None
         M, _ = reference_columns(obj)
-        return ("reference", _UNIT_EFFECTS[obj.estimator], obj.method), M
+        return ("reference", kinds.reference(obj.estimator).unit_effects, obj.method), M
     return None
 
 

@@ -20,12 +20,14 @@ from . import suffstats as _ss
 from .errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
                      SpecificationError, choices_error)
 from .formula import dependency_message, outcome_values, safe_context, screen
+from .kinds import COLUMNS
 from .terms import BETWEEN, UNIT_MEAN, WITHIN, Term, labels as term_labels, occasion, parse
 
 __all__ = ["Design", "DesignSpec", "KINDS", "group_means", "kind_transform", "check_stats",
            "check_terms", "check_flag", "refuse_complex", "occasion_label"]
 
-KINDS = ("pooled", "random", "within", "between", "mundlak", "within_between")
+#: the column maps of matrices(kind), as the registry of model kinds lists them
+KINDS = COLUMNS
 _VARY_TOL = 1e-10
 
 

@@ -368,7 +368,7 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
         ame = _ame_stage(post, name, settings, ref_fits, prob)
         vp = _partition_stage(post, m.design, kind, prob, settings)
         contrasts = []
-        if kind in ("within_between", "mundlak"):
+        if registered.contrasts:
             contrasts = _contrasts(post, m.design, kind, post.coef_draws(), settings,
                                    None).to_record(prob)
         ppc = _ppc_stage(post, m.design, settings)

@@ -131,6 +131,8 @@ class ReferenceKind:
     glm_title : str or None
         First word(s) of the title of the pooled GLM on these columns (the reference of
         the non-Gaussian families); None when there is none.
+    notes : tuple of str
+        What the estimator assumes, one sentence a point (the fit's ``assumptions``).
     """
 
     name: str
@@ -139,6 +141,7 @@ class ReferenceKind:
     unit_effects: str
     variance_components: bool = False
     glm_title: str | None = None
+    notes: tuple = ()
 
     def __post_init__(self):
         if self.name not in COLUMNS:
@@ -155,7 +158,8 @@ def register(kind):
     """Add a :class:`ModelKind` or :class:`ReferenceKind` to the registry.
 
     Raises :class:`~bayespanel.errors.SpecificationError` when its name (or, for a model,
-    its class name) is taken, or when a model's reference is not registered.
+    its class name) is taken, when a model's reference is not registered, or when a
+    model's builder class says otherwise about its name, columns or unit effects.
     """
     if isinstance(kind, ReferenceKind):
         if kind.name in _REFERENCES:
@@ -172,6 +176,15 @@ def register(kind):
     for ref in (kind.reference, kind.glm_reference):
         if ref is not None and ref not in _REFERENCES:
             raise choices_error("reference", ref, list(_REFERENCES))
+    if not isinstance(kind.builder, str):  # a class at hand: its own facts must agree
+        cls = kind.builder
+        said = {"class_name": cls.__name__, "columns": getattr(cls, "kind", kind.columns),
+                "unit_effects": getattr(cls, "unit_effects", kind.unit_effects)}
+        wrong = [f"{k}={v!r} but the class has {said[k]!r}" for k, v in
+                 (("class_name", kind.class_name), ("columns", kind.columns),
+                  ("unit_effects", kind.unit_effects)) if said[k] != v]
+        if wrong:
+            raise SpecificationError(f"model kind {kind.name!r}: " + "; ".join(wrong))
     _MODELS[kind.name] = kind
     return kind
 
@@ -277,25 +290,80 @@ def snake_name(which):
 
 # ---------------------------------------------------------------------- the built-in kinds
 for _ref in (
-    ReferenceKind("pooled", "Pooled OLS",
-                  "Least squares on all rows, cluster-robust errors by unit.",
-                  unit_effects="none", glm_title="Pooled"),
-    ReferenceKind("within", "Within (fixed effects)",
-                  "Least squares on unit-demeaned rows; degrees of freedom corrected for "
-                  "the absorbed unit means.", unit_effects="fixed"),
-    ReferenceKind("between", "Between",
-                  "Least squares on the unit means, one row per unit.", unit_effects="none"),
-    ReferenceKind("random", "Random effects (GLS)",
-                  "Feasible GLS with variance components estimated by the method named "
-                  "beside it.", unit_effects="random", variance_components=True),
-    ReferenceKind("mundlak", "Mundlak (GLS)",
-                  "Random-effects GLS with the unit means of the time-varying covariates "
-                  "added.", unit_effects="random", variance_components=True,
-                  glm_title="Mundlak"),
-    ReferenceKind("within_between", "Within-between (GLS)",
-                  "Random-effects GLS on the within and between parts of each time-varying "
-                  "covariate.", unit_effects="random", variance_components=True,
-                  glm_title="Within-between"),
+    ReferenceKind(
+        "pooled", "Pooled OLS", "Least squares on all rows, cluster-robust errors by unit.",
+        unit_effects="none", glm_title="Pooled",
+        notes=(
+            "One intercept for all units: unit-level differences are left in the "
+            "error term.",
+            "The covariates are uncorrelated with the whole error, unit part "
+            "included.",
+            "Classical errors: independent rows with one variance. Cluster-robust "
+            "errors: independent units, any correlation and variance within a unit.",
+        ),
+    ),
+    ReferenceKind(
+        "within", "Within (fixed effects)",
+        "Least squares on unit-demeaned rows; degrees of freedom corrected for the absorbed "
+        "unit means.", unit_effects="fixed",
+        notes=(
+            "Each unit has its own intercept, which may be correlated with the "
+            "covariates; only variation within units identifies the coefficients.",
+            "The covariates are strictly exogenous: uncorrelated with the "
+            "occasion-level error on every occasion of the unit.",
+            "Covariates constant within units cannot be estimated and are dropped.",
+            "Classical errors: independent occasions with one variance. "
+            "Cluster-robust errors: any correlation within a unit.",
+        ),
+    ),
+    ReferenceKind(
+        "between", "Between", "Least squares on the unit means, one row per unit.",
+        unit_effects="none",
+        notes=(
+            "Uses only the unit means (one row per unit): the unit means of the "
+            "covariates must be uncorrelated with the unit effect.",
+            "Answers a question about differences between units, not changes within "
+            "them.",
+        ),
+    ),
+    ReferenceKind(
+        "random", "Random effects (GLS)",
+        "Feasible GLS with variance components estimated by the method named beside it.",
+        unit_effects="random", variance_components=True,
+        notes=(
+            "The unit intercepts are random, with one variance, and uncorrelated with "
+            "every covariate on every occasion (the Hausman and Mundlak tests check "
+            "this).",
+            "Within and between effects of each covariate are equal (one "
+            "coefficient).",
+            "Classical errors: homoskedastic unit effects and occasion errors.",
+        ),
+    ),
+    ReferenceKind(
+        "mundlak", "Mundlak (GLS)",
+        "Random-effects GLS with the unit means of the time-varying covariates added.",
+        unit_effects="random", variance_components=True, glm_title="Mundlak",
+        notes=(
+            "The unit effect may be correlated with the covariates, but only through "
+            "the unit means of the time-varying covariates (Mundlak 1978); the rest "
+            "of it is random.",
+            "The coefficients of the time-varying covariates equal the fixed-effects "
+            "ones; the unit-mean terms are the between-minus-within differences.",
+            "Classical errors: homoskedastic unit effects and occasion errors.",
+        ),
+    ),
+    ReferenceKind(
+        "within_between", "Within-between (GLS)",
+        "Random-effects GLS on the within and between parts of each time-varying covariate.",
+        unit_effects="random", variance_components=True, glm_title="Within-between",
+        notes=(
+            "Each time-varying covariate has a within effect (its deviation from the "
+            "unit mean) and a between effect (the unit mean), estimated separately.",
+            "The random intercept is uncorrelated with the unit means and the "
+            "time-constant covariates given the other terms.",
+            "Classical errors: homoskedastic unit effects and occasion errors.",
+        ),
+    ),
 ):
     register(_ref)
 

@@ -331,17 +331,13 @@ class PartitionResult:
         return f"<PartitionResult {self.kind}, {len(self.draws)} draws>\n{self.table()}"
 
 
-_REF_KIND = {"pooled": "pooled", "within": "within", "random": "random",
-             "mundlak": "mundlak", "within_between": "within_between"}
-
-
 def reference_partition(ref) -> dict:
     """Plug-in partition of a frequentist reference fit (``ReferenceResult``)."""
-    kind = _REF_KIND.get(ref.estimator)
-    if kind is None:
+    kind = ref.estimator  # a reference kind is named by the columns it fits
+    if kind not in PARTITION_KINDS:
         raise SpecificationError(
-            f"a {ref.estimator!r} reference fit has no variance partition; use a pooled, "
-            "within, random, mundlak or within_between fit")
+            f"a {ref.estimator!r} reference fit has no variance partition; use a "
+            + ", ".join(PARTITION_KINDS) + " fit")
     if ref.design is None:
         raise SpecificationError("the reference fit carries no design to partition")
     coef = ref.coef

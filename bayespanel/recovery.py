@@ -44,6 +44,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats as _st
 
+from . import kinds
 from . import suffstats as _ss
 from .errors import EstimationError, SamplingWarning, SpecificationError, choices_error
 from .resultshape import DEFAULT_INTERVAL
@@ -54,15 +55,11 @@ from .terms import BETWEEN, CONTRAST, UNIT_MEAN, WITHIN, parse, part_label
 __all__ = ["design_check", "DesignCheckResult", "design_check_section", "REFERENCE_METHODS"]
 
 REFERENCE_METHODS = ("reml", "ml", "swamy-arora")
-#: model kind -> reference estimator fitted beside it on every replicate
-_REFERENCE_OF = {"pooled": "pooled", "random": "random", "within_between": "within_between",
-                 "mundlak": "mundlak", "within": "within"}
 BAYES, REFERENCE, ORACLE = "Bayesian", "reference", "GLS, known variances"
 
 
 # ---------------------------------------------------------------------------- inputs
 def _builder(model):
-    from . import kinds
     from .models import GaussianModel
     from .models.latent import LatentModel
 
@@ -253,12 +250,13 @@ def simulate_outcome(M, unit_codes, b, sigma_unit, sigma_obs, rng):
 def _fit_reference(model, M, y, codes, method):
     from .reference import fit_arrays
 
-    est = _REFERENCE_OF[model.kind]
-    meth = method if est in ("random", "within_between", "mundlak") else None
-    cov = "cluster" if est == "pooled" else "classical"
+    # the reference fit on the model's columns (a reference kind is named by its columns)
+    est = kinds.reference(model.kind)
+    meth = method if est.variance_components else None
+    cov = "cluster" if est.unit_effects == "none" else "classical"
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return fit_arrays(est, M, y, codes, list(model.labels), method=meth, cov=cov,
+        return fit_arrays(est.name, M, y, codes, list(model.labels), method=meth, cov=cov,
                           outcome=model.outcome)
 
 
@@ -511,8 +509,8 @@ class DesignCheckResult:
             row["replicates"] = int(one["estimate"].notna().sum())
             out.append(row)
         tab = pd.DataFrame(out)
-        if self.settings.get("reference_method") and self.settings["kind"] in (
-                "random", "within_between", "mundlak"):
+        if (self.settings.get("reference_method")
+                and kinds.reference(self.settings["kind"]).variance_components):
             info = self.replicate_info
             s = info["reference_sigma_unit"].dropna() if "reference_sigma_unit" in info else []
             ref = {"method": REFERENCE, "parameter": "sigma_unit",
@@ -734,8 +732,7 @@ def design_check(source, model="RandomIntercept", formula=None, *, truth="refere
     sampler = _Sampler(m, draws, tune, chains, target_accept) if bayes else None
     ctx = {"M": M, "codes": codes, "b": b, "su": su, "so": so, "names": names,
            "tvals": tvals, "C": C, "probs": probs, "labels": labels, "model": m,
-           "method": reference_method, "reference": bool(reference), "oracle": m.kind in ("random", "within_between",
-                                                               "mundlak"),
+           "method": reference_method, "reference": bool(reference), "oracle": m.unit_effects == "random",
            "sampler": sampler, "seeds": seeds, "spawned": spawned}
     results = [None] * replicates
     try:

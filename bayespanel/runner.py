@@ -1043,7 +1043,7 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
             pr = _partition(post, design, kind, coef_d, sigma_d, tau_d, ref_for)
         vp = pr.to_record(prob)
     contrasts = []
-    if kind in ("within_between", "mundlak"):
+    if kinds.model(name).contrasts:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             cr = _contrasts(post, design, kind, coef_d, settings, ref_for)

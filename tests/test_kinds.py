@@ -159,3 +159,23 @@ def test_a_registered_kind_runs_through_the_command_line_json_and_report(wide_ru
         assert c["estimate"] == pytest.approx(ols.params[c["term"]], rel=1e-9)
     html = (wide_run / "report.html").read_text("utf-8")
     assert WIDE.title in html and WIDE.assumptions in html
+
+
+class NarrowPooled(bp.Pooled):
+    """A second throwaway builder, never registered."""
+
+
+def test_registering_refuses_facts_that_contradict_the_builder_or_a_taken_name():
+    from dataclasses import replace
+
+    narrow = replace(WIDE, name="narrow_pooled", class_name="NarrowPooled",
+                     builder=NarrowPooled)
+    with pytest.raises(SpecificationError, match="columns='within' but the class has 'pooled'"):
+        kinds.register(replace(narrow, columns="within"))
+    with pytest.raises(SpecificationError, match="class_name='Other'"):
+        kinds.register(replace(narrow, class_name="Other"))
+    with pytest.raises(SpecificationError, match="'pooled' is registered"):
+        kinds.register(replace(narrow, name="pooled"))
+    with pytest.raises(SpecificationError, match="reference"):
+        kinds.register(replace(narrow, reference="nowhere"))
+    assert "narrow_pooled" not in kinds.model_names()

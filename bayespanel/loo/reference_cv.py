@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from .. import kinds
 from ..errors import EstimationError, SpecificationError
 from ..mathcore import unit_sd_draws
 from ._draws import check_level, from_draws
@@ -36,9 +37,6 @@ from .pointwise import holdout_loglik, undefined_reason
 from .result import LOOResult
 
 __all__ = ["reference_cv", "reference_columns", "exact_loo_values"]
-
-_UNIT_EFFECTS = {"pooled": "none", "within": "fixed", "random": "random", "mundlak": "random",
-                 "within_between": "random"}
 
 
 def reference_columns(ref):
@@ -71,7 +69,7 @@ def _score(ref, M, labels, test, level):
     b = np.zeros((1, M.shape[1]))
     b[0, cols] = fit.coef.to_numpy()
     sigma = np.array([fit.sigma_obs])
-    ue = _UNIT_EFFECTS[ref.estimator]
+    ue = kinds.reference(ref.estimator).unit_effects
     tau = unit_sd_draws(ue, fit.sigma_unit if ue == "random" else None, (1,))
     return holdout_loglik(M, d.y, d.unit_codes, test, b, sigma, tau, level)[0]
 
@@ -105,7 +103,7 @@ def exact_loo_values(ref, level="occasion", progress=None):
 
     M, labels = reference_columns(ref)
     d = ref.design
-    ue = _UNIT_EFFECTS[ref.estimator]
+    ue = kinds.reference(ref.estimator).unit_effects
     Z = np.column_stack([M, d.y])
     codes = np.asarray(d.unit_codes, dtype=np.int64)
     dd = Downdates(suffstats.compute(M, d.y, codes), Z, codes)
@@ -173,7 +171,7 @@ def reference_cv(ref, level="occasion", folds=None, seed=0, progress=None) -> LO
     check_level(level)
     M, labels = reference_columns(ref)
     d = ref.design
-    ue = _UNIT_EFFECTS[ref.estimator]
+    ue = kinds.reference(ref.estimator).unit_effects
     reason = undefined_reason(ue, level, d.T)
     if reason:
         raise EstimationError(reason)

@@ -27,7 +27,7 @@ import warnings
 
 import numpy as np
 
-from .. import suffstats
+from .. import kinds, suffstats
 from ..errors import DataHandlingWarning, EstimationError, SpecificationError, choices_error
 from ..terms import AS_IS, parse
 from . import core
@@ -38,55 +38,13 @@ from .covariance import COV_TYPES, classical, cluster_scores, cr1, cr2
 __all__ = ["ESTIMATORS", "METHODS", "pooled", "within", "between", "random", "mundlak",
            "within_between", "fit_design", "fit_arrays", "fit_stats"]
 
-ESTIMATORS = ("pooled", "within", "between", "random", "mundlak", "within_between")
+#: the registered reference fits (:mod:`bayespanel.kinds`)
+ESTIMATORS = kinds.reference_names()
 METHODS = ("swamy-arora", "ml", "reml")
 _PKG_DIR = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-_RANDOM_FAMILY = ("random", "mundlak", "within_between")
 _KIND = {"pooled": "pooled", "within": "random", "between": "random", "random": "random",
          "mundlak": "mundlak", "within_between": "within_between"}
 
-_ASSUME = {
-    "pooled": [
-        "One intercept for all units: unit-level differences are left in the error term.",
-        "The covariates are uncorrelated with the whole error, unit part included.",
-        "Classical errors: independent rows with one variance. Cluster-robust errors: "
-        "independent units, any correlation and variance within a unit.",
-    ],
-    "within": [
-        "Each unit has its own intercept, which may be correlated with the covariates; "
-        "only variation within units identifies the coefficients.",
-        "The covariates are strictly exogenous: uncorrelated with the occasion-level error "
-        "on every occasion of the unit.",
-        "Covariates constant within units cannot be estimated and are dropped.",
-        "Classical errors: independent occasions with one variance. Cluster-robust errors: "
-        "any correlation within a unit.",
-    ],
-    "between": [
-        "Uses only the unit means (one row per unit): the unit means of the covariates "
-        "must be uncorrelated with the unit effect.",
-        "Answers a question about differences between units, not changes within them.",
-    ],
-    "random": [
-        "The unit intercepts are random, with one variance, and uncorrelated with every "
-        "covariate on every occasion (the Hausman and Mundlak tests check this).",
-        "Within and between effects of each covariate are equal (one coefficient).",
-        "Classical errors: homoskedastic unit effects and occasion errors.",
-    ],
-    "mundlak": [
-        "The unit effect may be correlated with the covariates, but only through the unit "
-        "means of the time-varying covariates (Mundlak 1978); the rest of it is random.",
-        "The coefficients of the time-varying covariates equal the fixed-effects ones; the "
-        "unit-mean terms are the between-minus-within differences.",
-        "Classical errors: homoskedastic unit effects and occasion errors.",
-    ],
-    "within_between": [
-        "Each time-varying covariate has a within effect (its deviation from the unit "
-        "mean) and a between effect (the unit mean), estimated separately.",
-        "The random intercept is uncorrelated with the unit means and the time-constant "
-        "covariates given the other terms.",
-        "Classical errors: homoskedastic unit effects and occasion errors.",
-    ],
-}
 _METHOD_NOTE = {
     "swamy-arora": "Variance components by Swamy-Arora (unbalanced form of Baltagi and "
                    "Chang 1994), truncated at zero.",
@@ -102,13 +60,15 @@ def _check_options(estimator, method, cov):
         raise choices_error("estimator", estimator, ESTIMATORS)
     if cov not in COV_TYPES:
         raise choices_error("cov", cov, COV_TYPES)
-    if estimator in _RANDOM_FAMILY:
+    if kinds.reference(estimator).variance_components:
         method = "swamy-arora" if method is None else method
         if method not in METHODS:
             raise choices_error("method", method, METHODS)
     elif method is not None:
         raise SpecificationError(
-            f"method={method!r} applies to random, mundlak and within_between only; "
+            f"method={method!r} applies to "
+            + ", ".join(k.name for k in kinds.references() if k.variance_components)
+            + " only; "
             f"{estimator} has no variance components to estimate")
     return method
 
@@ -398,7 +358,7 @@ def fit_stats(estimator, ss, labels, *, method=None, outcome=None) -> ReferenceR
         s2e = float("nan")
     extra.update(unit_resid_mean=ubar, unit_count=ss.unit_count, cols=cols,
                  all_labels=labels, rss=fit.rss, sigma2=fit.sigma2, bread=fit.bread)
-    assumptions = list(_ASSUME[estimator])
+    assumptions = list(kinds.reference(estimator).notes)
     if method:
         assumptions.append(_METHOD_NOTE[method])
     return ReferenceResult(

@@ -48,15 +48,14 @@ import numpy as np
 import pandas as pd
 from scipy import special, stats
 
+from .. import kinds
 from ..errors import EstimationError, SpecificationError, choices_error
 from ..jsonsafe import jsonable
 from ..resultshape import DEFAULT_INTERVAL, check_prob, term_records
 
-__all__ = ["GLMResult", "fit_glm", "glm_design", "GLM_COVS", "GLM_KINDS", "glm_family"]
+__all__ = ["GLMResult", "fit_glm", "glm_design", "GLM_COVS", "glm_family"]
 
 GLM_COVS = ("cluster", "classical")
-#: reference names (as in the linear reference set) -> design kind of the GLM
-GLM_KINDS = {"pooled": "pooled", "mundlak": "mundlak", "within_between": "within_between"}
 
 
 def glm_family(family: str) -> str:
@@ -252,15 +251,15 @@ def fit_glm(design, name, family, *, trials=None, log_exposure=None, cov="cluste
         CR1 clustered by unit (``G/(G-1) (n-1)/(n-k)``, as statsmodels' default) or the
         inverse Fisher information.
     """
-    if name not in GLM_KINDS:
-        raise choices_error("reference", name, tuple(GLM_KINDS))
+    if name not in kinds.glm_reference_names():
+        raise choices_error("reference", name, kinds.glm_reference_names())
     if cov not in GLM_COVS:
         raise SpecificationError(
             f"cov={cov!r} is for the linear reference fits; the reference GLMs of "
             f"family={family!r} take {' or '.join(GLM_COVS)}")
     glm = glm_family(family)
     link = "logit" if glm == "logit" else "log"
-    kind = GLM_KINDS[name]
+    kind = name  # a reference kind's name is the Design.matrices kind of its columns
     M, labels, dropped = glm_design(design, kind)
     y = np.asarray(design.y, dtype=float)
     n, k = M.shape
