@@ -33,6 +33,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .errors import FormulaError
+from .terms import AS_IS, BETWEEN, UNIT_MEAN, WITHIN, parse
 
 __all__ = ["screen", "safe_context", "ScreenedFormula", "ALLOWED_TRANSFORMS", "LIMITS",
            "reserved_name", "outcome_values", "dependency_message"]
@@ -59,9 +60,9 @@ RESERVED_NAMES = {
     "corr_chol_unit": "the random effects' correlations",
     "nu": "a parameter of an outcome family", "shape": "a parameter of an outcome family",
 }
+#: the labels of the parts of a covariate and of occasion indicators are read by
+#: bayespanel.terms.parse (the one grammar of term labels); these are parameter names
 _RESERVED_PATTERNS = (
-    (re.compile(r".* \((within|between|unit mean)\)\Z", re.S), "the {0} part of a covariate"),
-    (re.compile(r"occasion\[.*\]\Z", re.S), "an occasion indicator"),
     (re.compile(r"sigma_slope\[.*\]\Z", re.S), "a random slope's SD"),
     (re.compile(r"corr\[.*\]\Z", re.S), "a correlation of random effects"),
 )
@@ -146,6 +147,11 @@ def reserved_name(name: str) -> str | None:
     name = str(name)
     if name in RESERVED_NAMES:
         return RESERVED_NAMES[name]
+    term = parse(name)
+    if term.part in (WITHIN, BETWEEN, UNIT_MEAN):
+        return f"the {term.part} part of a covariate"
+    if term.is_occasion and term.part == AS_IS:
+        return "an occasion indicator"
     for pattern, what in _RESERVED_PATTERNS:
         m = pattern.match(name)
         if m:

@@ -93,3 +93,21 @@ def test_occasion_indicators_are_structured(grunfeld):
     wb = d.term_parts("within_between")
     assert occasion(int(years[1])).with_part(WITHIN) in wb
     assert not any(t.is_occasion and t.part == BETWEEN for t in wb)
+
+
+@pytest.mark.parametrize("name,what", [
+    ("x (within)", "the within part of a covariate"),
+    ("x (between)", "the between part of a covariate"),
+    ("log(x) (unit mean)", "the unit mean part of a covariate"),
+    ("occasion[2003] (within)", "the within part of a covariate"),
+    ("occasion[2003]", "an occasion indicator"),
+    ("sigma_slope[x]", "a random slope's SD"),
+    ("x (between - within)", None),
+    ("x (within) y", None),
+    ("occasion[2003", None),
+    ("x", None),
+])
+def test_reserved_column_names_follow_the_label_grammar(name, what):
+    # a column may not take a label the package makes (formula.reserved_name reads the
+    # labels with terms.parse, so the two cannot disagree)
+    assert reserved_name(name) == what
