@@ -111,3 +111,27 @@ def test_reserved_column_names_follow_the_label_grammar(name, what):
     # a column may not take a label the package makes (formula.reserved_name reads the
     # labels with terms.parse, so the two cannot disagree)
     assert reserved_name(name) == what
+
+
+def test_only_terms_spells_out_label_shapes():
+    # the rule of bayespanel/terms.py: no other module writes (or slices by) the text of a
+    # part's label; they ask terms.label / part_label / parse. Docstrings may show labels.
+    import ast
+    from pathlib import Path
+
+    root = Path(bp.__file__).parent
+    shapes = [f" ({p})" for p in PARTS if p] + ["occasion["]
+    found = []
+    for path in sorted(root.rglob("*.py")):
+        if path.name == "terms.py":
+            continue
+        tree = ast.parse(path.read_text(encoding="utf-8"))
+        docs = {id(n.body[0].value) for n in ast.walk(tree)
+                if isinstance(n, (ast.Module, ast.ClassDef, ast.FunctionDef, ast.AsyncFunctionDef))
+                and n.body and isinstance(n.body[0], ast.Expr)
+                and isinstance(n.body[0].value, ast.Constant)}
+        for node in ast.walk(tree):
+            if (isinstance(node, ast.Constant) and isinstance(node.value, str)
+                    and id(node) not in docs and any(s in node.value for s in shapes)):
+                found.append(f"{path.relative_to(root)}:{node.lineno} {node.value!r}")
+    assert found == []
