@@ -149,3 +149,30 @@ def test_unit_sd_draws_follow_the_unit_effect_rule():
         want = [stats.multivariate_normal(M[:, 0] * 0.3, _unit_cov(4, si ** 2, ti ** 2)).logpdf(y)
                 for si, ti in zip(s, tau)]
         np.testing.assert_allclose(ours, want, rtol=1e-10)
+
+
+# ------------------------------------------------------------------ finishing a CR1 covariance
+@pytest.mark.parametrize("path", ["rows", "statistics"])
+def test_cr1_covariance_equals_statsmodels_cluster_ols(grunfeld, path):
+    # Source: Grunfeld investment panel (statsmodels.datasets.grunfeld); statsmodels' OLS
+    # with cov_type="cluster" applies the same G/(G-1) (n-1)/(n-k) factor and t(G - 1)
+    import statsmodels.formula.api as smf
+
+    import bayespanel as bp
+    from bayespanel.reference.estimators import cr1_covariance, fit_arrays
+
+    f = "invest ~ value + capital"
+    panel = bp.Panel(grunfeld, unit="firm", time="year")
+    if path == "rows":
+        d = panel.design(f)
+        res = fit_arrays("pooled", d.X, d.y, d.unit_codes, d.terms, cov="cluster")
+    else:
+        res = bp.reference.pooled(panel, f, cov="cluster")
+    sm = smf.ols(f, grunfeld).fit(cov_type="cluster",
+                                  cov_kwds={"groups": grunfeld["firm"].astype("category").cat.codes})
+    np.testing.assert_allclose(res.vcov.to_numpy(), sm.cov_params().to_numpy(), rtol=1e-9)
+    np.testing.assert_array_equal(res._df, np.full(3, grunfeld["firm"].nunique() - 1.0))
+    assert res.cov_type == "cluster" and res.extra["n_clusters"] == grunfeld["firm"].nunique()
+    # the function alone: one score row per cluster gives G - 1 degrees of freedom
+    V, df = cr1_covariance(res, "pooled", None, np.ones((4, 3)), 100)
+    assert V.shape == (3, 3) and np.all(df == 3.0)

@@ -90,9 +90,9 @@ def fit(design, estimator: str, *, method=None, cov: str = "classical"):
     :func:`unit_blocks` (:func:`bayespanel.reference.covariance.cr1` and
     :func:`~bayespanel.reference.covariance.cr2_from_blocks`).
     """
-    from ..reference import core, fit_stats
-    from ..reference.covariance import cr1, cr2_from_blocks
-    from ..reference.estimators import _check_options
+    from ..reference import fit_stats
+    from ..reference.covariance import cr2_from_blocks
+    from ..reference.estimators import _check_options, cr1_covariance, set_covariance
 
     method = _check_options(estimator, method, cov)
     kind = _KIND[estimator]
@@ -107,14 +107,8 @@ def fit(design, estimator: str, *, method=None, cov: str = "classical"):
     S, s, n_rows, keep = unit_blocks(res, estimator, ss, ucp)
     G = int(keep.sum())
     if cov == "cluster":
-        k = len(res._coef)
-        if estimator == "within" and core.intercept_column(ss) is not None:
-            k += 1
-        V, df = cr1(res.extra["bread"], s, n_rows, k), np.full(len(res._coef), G - 1.0)
+        V, df = cr1_covariance(res, estimator, ss, s, n_rows)
     else:
         V, df = cr2_from_blocks(S, s, res.extra["bread"])
-    res._vcov = V
-    res._df = np.asarray(df, dtype=float)
-    res.cov_type = cov
-    res.extra["n_clusters"] = G
+    set_covariance(res, cov, V, df, G)
     return res

@@ -205,15 +205,33 @@ def fit_design(design, estimator: str, *, method=None, cov="classical") -> Refer
     res.design = design
     if cov == "cluster":
         scores, n_rows, keep = design_scores(res, estimator, design, kind)
-        k = len(res._coef)
-        if estimator == "within" and core.intercept_column(ss) is not None:
-            k += 1
-        G = int(keep.sum())
-        res._vcov = cr1(res.extra["bread"], scores, n_rows, k)
-        res._df = np.full(len(res._coef), G - 1.0)
-        res.cov_type = cov
-        res.extra["n_clusters"] = G
+        set_covariance(res, cov, *cr1_covariance(res, estimator, ss, scores, n_rows),
+                       int(keep.sum()))
     return res
+
+
+def cr1_covariance(res, estimator, ss, scores, n_rows):
+    """The CR1 covariance of a fit from its per-cluster scores, and its degrees of freedom.
+
+    The small-sample factor charges the fit's coefficients plus, for fixed effects with an
+    intercept, the absorbed intercept; the reference distribution is t with ``G - 1``
+    degrees of freedom, ``G`` the clusters (rows of ``scores``) (Cameron and Miller 2015;
+    :func:`bayespanel.reference.covariance.cr1`). Returns ``(V, df)``.
+    """
+    k = len(res._coef)
+    if estimator == "within" and core.intercept_column(ss) is not None:
+        k += 1
+    G = scores.shape[0]
+    return cr1(res.extra["bread"], scores, n_rows, k), np.full(len(res._coef), G - 1.0)
+
+
+def set_covariance(res, cov, V, df, n_clusters) -> None:
+    """Give a fit its robust covariance ``V`` (``cov`` ``"cluster"`` or ``"cr2"``), the
+    degrees of freedom of its t tests and the number of clusters."""
+    res._vcov = V
+    res._df = np.asarray(df, dtype=float)
+    res.cov_type = cov
+    res.extra["n_clusters"] = n_clusters
 
 
 def design_scores(res, estimator, design, kind, chunk_rows: int = 1 << 12):
@@ -495,14 +513,7 @@ def _add_robust(res, estimator, cov, ss, X, y, codes):
     Xr, e, cl, G = regression_rows(res, estimator, ss, X, y, codes)
     bread = res.extra["bread"]
     if cov == "cluster":
-        k = Xr.shape[1]
-        if estimator == "within" and core.intercept_column(ss) is not None:
-            k += 1
-        V = cr1(bread, cluster_scores(Xr, e, cl, G), Xr.shape[0], k)
-        df = np.full(len(res._coef), G - 1.0)
+        V, df = cr1_covariance(res, estimator, ss, cluster_scores(Xr, e, cl, G), Xr.shape[0])
     else:
         V, df = cr2(Xr, e, cl, bread, G)
-    res._vcov = V
-    res._df = np.asarray(df, dtype=float)
-    res.cov_type = cov
-    res.extra["n_clusters"] = G
+    set_covariance(res, cov, V, df, G)

@@ -52,6 +52,7 @@ from .. import kinds
 from ..errors import EstimationError, SpecificationError, choices_error
 from ..jsonsafe import jsonable
 from ..resultshape import DEFAULT_INTERVAL, check_prob, term_records
+from .covariance import cr1
 
 __all__ = ["GLMResult", "fit_glm", "glm_design", "GLM_COVS", "glm_family"]
 
@@ -276,8 +277,7 @@ def fit_glm(design, name, family, *, trials=None, log_exposure=None, cov="cluste
         G = int(codes.max()) + 1
         scores = np.zeros((G, k))
         np.add.at(scores, codes, M * (y - mu)[:, None])
-        meat = scores.T @ scores
-        V = Hinv @ meat @ Hinv * (G / (G - 1)) * ((n - 1) / (n - k))
+        V = cr1(Hinv, scores, n, k)
     else:
         V = Hinv
     return GLMResult(estimator=name, kind=kind, link=link, family=family, labels=labels,
