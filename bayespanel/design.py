@@ -20,7 +20,7 @@ from . import suffstats as _ss
 from .errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
                      SpecificationError, choices_error)
 from .formula import dependency_message, outcome_values, safe_context, screen
-from .kinds import COLUMNS
+from .kinds import COLUMNS, builder as builder_of
 from .terms import BETWEEN, UNIT_MEAN, WITHIN, Term, labels as term_labels, occasion, parse
 
 __all__ = ["Design", "DesignSpec", "KINDS", "group_means", "kind_transform", "check_stats",
@@ -337,10 +337,11 @@ class Design:
         return select_columns(self._stats, tv + [self.k], names)
 
     def build(self, builder, priors=None, **kwargs):
-        """A Gaussian model (``bayespanel.models`` builder class, e.g. ``RandomIntercept``)
-        on this design: the builder's ``from_design``; the statistics come from the
-        design and the rows are made only if the model needs them."""
-        return builder.from_design(self, priors=priors, **kwargs)
+        """A Gaussian model on this design: the builder's ``from_design``; the statistics
+        come from the design and the rows are made only if the model needs them.
+        ``builder`` is a builder class (``RandomIntercept``), its name or its snake-case
+        name (``"random_intercept"``; :func:`bayespanel.kinds.builder`)."""
+        return builder_of(builder).from_design(self, priors=priors, **kwargs)
 
     def _with_between_part(self, tv):
         """Time-varying columns whose unit means enter the mundlak and within_between kinds.

@@ -34,7 +34,7 @@ from importlib import import_module
 
 from .errors import SpecificationError, choices_error
 
-__all__ = ["ModelKind", "ReferenceKind", "register", "unregister", "model", "reference",
+__all__ = ["ModelKind", "ReferenceKind", "register", "unregister", "model", "builder", "reference",
            "models", "references", "model_names", "reference_names",
            "latent_model_names", "glm_reference_names", "snake_name", "with_default_priors", "COLUMNS",
            "UNIT_EFFECTS"]
@@ -221,6 +221,14 @@ def model(which) -> ModelKind:
         if which in (k.name, k.class_name):
             return k
     raise choices_error("model", which, model_names())
+
+
+def builder(which) -> type:
+    """The builder class of a model kind given by its class (returned as it is, registered
+    or not), class name or snake-case name."""
+    if isinstance(which, type):
+        return which
+    return model(which).builder_class()
 
 
 def reference(name: str) -> ReferenceKind:

@@ -70,7 +70,7 @@ def _builder(model):
     if isinstance(model, GaussianModel):
         return model
     if isinstance(model, (str, kinds.ModelKind)):
-        return kinds.model(model).builder_class()
+        return kinds.builder(model)
     if isinstance(model, type) and issubclass(model, GaussianModel):
         return model
     raise SpecificationError(

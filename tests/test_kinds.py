@@ -40,7 +40,7 @@ def test_registered_facts_agree_with_the_builders_and_the_reference_functions():
                                           "correlated_effects")
 
 
-def test_every_name_of_a_kind_resolves_to_the_same_record():
+def test_every_name_of_a_kind_resolves_to_the_same_record(panel):
     for k in kinds.models():
         cls = k.builder_class()
         assert kinds.model(k.name) is kinds.model(k.class_name) is kinds.model(cls) is k
@@ -49,6 +49,11 @@ def test_every_name_of_a_kind_resolves_to_the_same_record():
     s = Settings(unit="firm", time="year", formula=FORMULA,
                  models=("RandomIntercept", bp.FixedEffects, "within_between"))
     assert s.models == ("random_intercept", "fixed_effects", "within_between")
+    design = panel.design(FORMULA)
+    by_name = design.build("within_between")
+    assert type(by_name) is bp.WithinBetween
+    assert by_name.spec == design.build(bp.WithinBetween).spec == design.build(
+        "WithinBetween").spec
 
 
 def test_design_check_takes_the_class_its_name_and_the_snake_name(panel, grunfeld):

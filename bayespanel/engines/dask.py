@@ -45,7 +45,7 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from .. import derived, suffstats
+from .. import derived, kinds, suffstats
 from ..design import (KINDS, Design, DesignSpec, check_flag, check_stats, check_terms,
                       occasion_label, refuse_complex)
 from ..errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
@@ -679,7 +679,9 @@ class DaskDesign:
     def build(self, builder, priors=None, **kwargs):
         """A Gaussian model (``bayespanel.models`` builder class, e.g. ``RandomIntercept``)
         on this design's statistics, as the builder would make from an in-memory Panel
-        (same labels, units and specification). Uses ``builder.from_suffstats``."""
+        (same labels, units and specification). Uses ``builder.from_suffstats``; ``builder``
+        may also be given by name (:func:`bayespanel.kinds.builder`)."""
+        builder = kinds.builder(builder)
         kind = builder.kind
         stats = self.model_suffstats(kind)
         return builder.from_suffstats(stats, list(stats.names[:-1]), outcome=self.outcome,
