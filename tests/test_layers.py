@@ -40,7 +40,7 @@ LAYERS: list[tuple[str, tuple[str, ...]]] = [
               "mathcore", "jsonsafe", "safetext", "reference.linalg", "resultshape",
               "budget", "outputs")),
     ("kinds", ("kinds",)),  # the registry of model kinds (reads its builders by name)
-    ("data", ("panel", "formula", "io", "design", "engines", "datasets")),
+    ("data", ("panel", "columns", "formula", "io", "design", "engines", "datasets")),
     ("reference", ("reference",)),
     ("bayes", ("models", "posterior")),
     ("analysis", ("partition", "contrasts", "loo", "comparison", "sensitivity", "recovery",
@@ -60,7 +60,6 @@ KNOWN_CYCLE_EDGES: set[tuple[str, str]] = {
     ("bayespanel.engines._pointwise", "bayespanel.loo.psis"),
     ("bayespanel.engines.dask", "bayespanel.engines._pointwise"),
     ("bayespanel.engines.dask", "bayespanel.loo"),
-    ("bayespanel.engines.dask", "bayespanel.panel"),
     ("bayespanel.family_stage", "bayespanel.runner"),
     ("bayespanel.loo", "bayespanel.loo.psis"),
     ("bayespanel.loo", "bayespanel.loo.reference_cv"),

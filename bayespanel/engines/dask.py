@@ -189,7 +189,7 @@ class DaskPanel:
     def __init__(self, df, unit: str, time: str, client=None):
         if not _is_dask_frame(df):
             raise PanelDataError(f"DaskPanel needs a Dask DataFrame, got {type(df).__name__}")
-        from ..panel import check_column_names
+        from ..columns import check_column_names
 
         check_column_names(df.columns, unit, time)
         cols = [str(c) for c in df.columns]
@@ -384,7 +384,7 @@ class DaskPanel:
 
     # ------------------------------------------------------------------ describe
     def numeric_columns(self) -> list[str]:
-        from ..panel import describable
+        from ..columns import describable
 
         dt = self._df.dtypes
         return [str(c) for c in self._df.columns if c not in (self.unit, self.time)
@@ -400,7 +400,7 @@ class DaskPanel:
         or vanish (the in-memory describe rescales them instead).
         """
         from ..design import MAGNITUDE_LIMITS
-        from ..panel import describe_frame, left_out_reason
+        from ..columns import describe_frame, left_out_reason
 
         dt = self._df.dtypes
         left_out = None
