@@ -85,7 +85,6 @@ KNOWN_UPWARD: set[tuple[str, str]] = {
     ("bayespanel.engines._pointwise", "bayespanel.loo.psis"),
     ("bayespanel.engines._pointwise", "bayespanel.loo.result"),
     ("bayespanel.engines._reference", "bayespanel.reference"),
-    ("bayespanel.engines._reference", "bayespanel.reference.core"),
     ("bayespanel.engines._reference", "bayespanel.reference.covariance"),
     ("bayespanel.engines._reference", "bayespanel.reference.estimators"),
     ("bayespanel.engines.dask", "bayespanel.loo"),
