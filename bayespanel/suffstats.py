@@ -701,7 +701,7 @@ def _group_pass(offsets, counts):
     return lengths, gcount, gmean, _unpack(upper, p)
 
 
-def compute_chunked(X, y, unit_codes, names=None, chunk_rows: int = 1 << 14) -> SuffStats:
+def compute_chunked(X, y, unit_codes, names=None) -> SuffStats:
     """:func:`compute` with bounded working memory: ``O(_ROW_BLOCK * p + N * p)``.
 
     ``X`` and ``y`` are only read, never stacked or copied. Rows sorted by unit (as a
@@ -714,10 +714,8 @@ def compute_chunked(X, y, unit_codes, names=None, chunk_rows: int = 1 << 14) -> 
     with bit-identical results. The total cross-products follow exactly from the within
     ones and the group statistics (``total = within + sum_i T_i (zbar_i - zbar)
     (zbar_i - zbar)'``, summed by panel length), so nothing is accumulated about the
-    global mean (Chan, Golub and LeVeque 1979).
-
-    ``chunk_rows`` is accepted for compatibility; the block size is fixed so that the
-    result does not depend on it.
+    global mean (Chan, Golub and LeVeque 1979). The block of rows is fixed, so the
+    result does not depend on a block size.
     """
     X = np.asarray(X, dtype=float)
     if X.ndim == 1:

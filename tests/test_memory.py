@@ -43,7 +43,7 @@ def test_chunked_statistics_equal_direct_computation(wage_panel, shuffle):
     X = np.column_stack([np.ones(len(df)), df[COLS].to_numpy(float)])
     y = df["lwage"].to_numpy(float)
     codes = df["nr"].to_numpy()
-    st = suffstats.compute_chunked(X, y, codes, chunk_rows=333)
+    st = suffstats.compute_chunked(X, y, codes)
     within, total = dense(np.column_stack([X, y]), codes)
     for got, ref in ((st.within, within), (st.total, total)):
         assert np.max(np.abs(got - ref.astype(float))) < 1e-12 * np.max(np.abs(ref.astype(float)))

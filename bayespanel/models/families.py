@@ -203,7 +203,7 @@ def check_outcome(family, y, *, outcome="y", trials=None, exposure=None, where=N
 
 
 # ---------------------------------------------------------------------------- densities
-def _log_offset(offset, eta):
+def _log_offset(offset):
     return 0.0 if offset is None else np.asarray(offset, dtype=float)
 
 
@@ -232,7 +232,7 @@ def logpdf(family, y, eta, params=None, *, trials=None, log_exposure=None):
         n = np.asarray(trials, dtype=float)
         return (special.gammaln(n + 1) - special.gammaln(y + 1) - special.gammaln(n - y + 1)
                 + y * eta - n * np.logaddexp(0.0, eta))
-    lm = eta + _log_offset(log_exposure, eta)
+    lm = eta + _log_offset(log_exposure)
     if fam.name == "poisson":
         return y * lm - np.exp(lm) - special.gammaln(y + 1)
     # negative binomial, mean mu = exp(lm), shape a: var = mu + mu^2 / a
@@ -264,7 +264,7 @@ def eta_derivatives(family, y, eta, params=None, *, trials=None, log_exposure=No
         n = 1.0 if fam.name == "bernoulli" else np.asarray(trials, dtype=float)
         pr = special.expit(eta)
         return y - n * pr, -n * pr * (1 - pr)
-    lm = eta + _log_offset(log_exposure, eta)
+    lm = eta + _log_offset(log_exposure)
     mu = np.exp(lm)
     if fam.name == "poisson":
         return y - mu, -mu
@@ -281,7 +281,7 @@ def mean_response(family, eta, params=None, *, trials=None, log_exposure=None):
     if fam.link == "logit":
         n = 1.0 if trials is None else np.asarray(trials, dtype=float)
         return n * special.expit(eta)
-    return np.exp(eta + _log_offset(log_exposure, eta))
+    return np.exp(eta + _log_offset(log_exposure))
 
 
 def dmean_deta(family, eta, params=None, *, trials=None, log_exposure=None):
