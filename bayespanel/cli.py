@@ -542,7 +542,7 @@ def cmd_design_check(args) -> int:
     from .panel import Panel
     from .recovery import design_check
 
-    if args.model not in kinds.model_names():
+    if kinds.snake_name(args.model) not in kinds.model_names():  # any of a kind's names
         raise choices_error("--model", args.model, kinds.model_names())
     coef = _pairs(args.coef, "--coef")
     if coef:

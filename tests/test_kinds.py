@@ -73,6 +73,25 @@ def test_design_check_takes_the_class_its_name_and_the_snake_name(panel, grunfel
     assert runs[0].truth["sigma_obs"] == pytest.approx(np.sqrt(ml.scale), rel=1e-4)
 
 
+def test_the_design_check_verb_takes_a_class_name(panel, grunfeld, tmp_path, capsys):
+    import pandas as pd
+
+    from bayespanel.cli import main
+
+    grunfeld.to_csv(tmp_path / "g.csv", index=False)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert main(["design-check", str(tmp_path / "g.csv"), "--unit", "firm", "--time",
+                     "year", "--formula", FORMULA, "--model", "WithinBetween",
+                     "--reference-only", "--replicates", "3", "--quiet",
+                     "--out", str(tmp_path / "dc")]) == 0
+    capsys.readouterr()
+    got = pd.read_csv(tmp_path / "dc" / "design_check.csv", index_col=[0, 1])
+    api = design_check(panel, "within_between", FORMULA, truth="reference", replicates=3,
+                       bayes=False, progress=False, seed=1).table()
+    np.testing.assert_allclose(got["bias"].to_numpy(), api["bias"].to_numpy(), rtol=1e-9)
+
+
 def test_a_reference_fit_has_one_title(panel, grunfeld):
     res = bp.reference.pooled(panel, FORMULA)
     assert res.summary().splitlines()[0] == kinds.reference("pooled").title == "Pooled OLS"

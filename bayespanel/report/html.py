@@ -12,6 +12,7 @@ from __future__ import annotations
 
 from importlib import resources
 
+from .. import kinds
 from . import family_report, figures, tables
 from . import numbers as num
 from .markup import Safe, esc, figure, fmt, join, note, pairs, table, tag
@@ -373,7 +374,9 @@ def _contrasts(r) -> Safe:
                          trs, numeric=[1, 3], foot=tables.footer(r)))
     if not rows and not tests:
         out.append(note("info", "No model with separate within and between effects was "
-                        "fitted (add within_between or correlated_effects)."))
+                        "fitted (add "
+                        + " or ".join(k.name for k in kinds.models() if k.contrasts)
+                        + ")."))
     return join(out)
 
 
