@@ -42,8 +42,7 @@ import pandas as pd
 from . import kinds
 from .errors import EstimationError, SpecificationError
 from .resultshape import DEFAULT_INTERVAL, check_prob, leading_columns
-from .loo import LOOResult, loo, reference_cv
-from .loo._draws import check_level, outcome_measure
+from .loo import LOOResult, check_level, loo, outcome_measure, reference_cv
 
 __all__ = ["compare", "coef_table", "equivalence_classes", "methods_note", "COMPARE_COLUMNS"]
 
@@ -211,7 +210,7 @@ def _signature(obj):
     Two models with the same key and the same column span on the same rows have the same
     likelihood up to a reparametrisation of the coefficients."""
     if _is_posterior(obj):
-        from .loo._draws import from_posterior
+        from .loo import from_posterior
 
         fd = from_posterior(obj)
         lspec = getattr(obj, "lspec", None)

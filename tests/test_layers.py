@@ -98,7 +98,6 @@ KNOWN_UPWARD: set[tuple[str, str]] = {
 # Private names used outside their package today: ("importer", "owner:name"), where owner
 # is the module or package that holds ``_name`` (a private module is "package:_module").
 KNOWN_PRIVATE: set[tuple[str, str]] = {
-    ("bayespanel.comparison", "bayespanel.loo:_draws"),
     ("bayespanel.engines._pointwise", "bayespanel.loo.psis:_describe_points"),
     ("bayespanel.engines._pointwise", "bayespanel.loo.psis:_lpd"),
     ("bayespanel.engines._reference", "bayespanel.reference.estimators:_check_options"),

@@ -12,8 +12,8 @@ from .pointwise import holdout_loglik, pointwise_loglik
 from .psis import kfold, loo, loo_subsample, plpd, psis_arrays, refit_draws
 from .reference_cv import reference_cv
 from .result import LOOResult
-from ._draws import LEVELS, FitDraws, from_draws, from_posterior
+from ._draws import LEVELS, FitDraws, check_level, from_draws, from_posterior, outcome_measure
 
 __all__ = ["loo", "kfold", "loo_subsample", "reference_cv", "pointwise_loglik",
            "holdout_loglik", "plpd", "psis_arrays", "refit_draws", "LOOResult", "LEVELS",
-           "FitDraws", "from_draws", "from_posterior"]
+           "FitDraws", "from_draws", "from_posterior", "check_level", "outcome_measure"]
