@@ -34,8 +34,9 @@ earlier block's last row to the later block's first, which each block carries), 
 :func:`finalize` groups the units. All moments are kept about their means and merged with
 the pairwise update of Chan, Golub and LeVeque (1979).
 
-Model wiring (``errors="ar1"`` on the builders, the command line and the report) is not
-done yet; this module is the lower layer it will call.
+The Gaussian builders call this module with ``errors="ar1"``
+(:class:`bayespanel.models.GaussianModel`); what does not work with AR(1) errors yet
+refuses through :func:`refuse_pending` (docs/serial-correlation.md lists it).
 
 References
 ----------
@@ -55,15 +56,32 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .errors import PanelDataError
+from .errors import PanelDataError, SpecificationError
 
 __all__ = [
     "occasion_times", "Timeline", "AR1Partial", "AR1Stats", "partial", "merge", "finalize",
     "compute", "loglik", "unit_logdensity", "unit_effect_conditional", "occasion_conditional",
-    "occasion_logdensity",
+    "occasion_logdensity", "ERRORS", "refuse_pending",
 ]
 
+#: the error structures of the Gaussian models: independent, or AR(1) within units
+ERRORS = ("iid", "ar1")
+
 _LOG_2PI = float(np.log(2.0 * np.pi))
+
+
+def refuse_pending(errors, what: str) -> None:
+    """Refuse ``what`` for a model with ``errors="ar1"`` (not available for it yet).
+
+    ``errors`` is the model's error structure (or anything with an ``errors`` attribute,
+    such as a model specification); nothing happens for ``"iid"``.
+    """
+    errors = getattr(errors, "errors", errors)
+    if errors == "ar1":
+        raise SpecificationError(
+            f"{what} is not available yet for models with errors='ar1' (AR(1) errors "
+            "within units); fit the model with errors='iid' for it, and see "
+            "docs/serial-correlation.md for what works with errors='ar1'")
 
 
 # ---------------------------------------------------------------------------- time

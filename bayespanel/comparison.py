@@ -40,6 +40,7 @@ import numpy as np
 import pandas as pd
 
 from . import kinds
+from .ar1 import refuse_pending
 from .errors import EstimationError, SpecificationError
 from .resultshape import DEFAULT_INTERVAL, check_prob, leading_columns
 from .loo import LOOResult, check_level, loo, outcome_measure, reference_cv
@@ -385,6 +386,8 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
     check_level(level)
     if not isinstance(models, dict) or not models:
         raise SpecificationError("models must be a non-empty dict of name -> fitted model")
+    for name, obj in models.items():
+        refuse_pending(getattr(obj, "spec", None), f"compare (model {name!r})")
     if any(_sub_sampled(obj) for obj in models.values()):
         return _compare_subsampled(models, level, seed, dict(loo_kwargs or {}))
     _check_same_question(models)

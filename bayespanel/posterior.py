@@ -34,6 +34,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+from . import ar1
 from .errors import SamplingWarning, SpecificationError
 from .mathcore import unit_sd_draws
 from .models import gaussian
@@ -252,6 +253,8 @@ class Posterior:
         """Rows of :meth:`summary`: coefficients, then the variance components."""
         extra = ["sigma_unit", "sigma_obs", "icc"] if self.spec.unit_effects == "random" \
             else ["sigma_obs"]
+        if self.spec.errors == "ar1":
+            extra.append("rho")
         return self.labels + extra
 
     def draws(self, name) -> np.ndarray:
@@ -544,6 +547,7 @@ class Posterior:
         if self.spec.unit_effects == "none":
             raise SpecificationError("Pooled has no unit intercepts; use RandomIntercept, "
                                      "WithinBetween, CorrelatedEffects or FixedEffects")
+        ar1.refuse_pending(self.spec, "unit_effects()")
         thin = self._thin(thin)
         idx = self._unit_index(units)
         mean, sd = self._unit_conditional(thin, idx)
@@ -604,6 +608,7 @@ class Posterior:
         if level not in ("occasion", "unit"):
             from .errors import choices_error
             raise choices_error("level", level, ("occasion", "unit"))
+        ar1.refuse_pending(self.spec, "posterior_predictive()")
         if self.rows is None:
             raise SpecificationError(
                 "the estimation rows are not available (model built from statistics only, or "
@@ -630,6 +635,7 @@ class Posterior:
 
     def pointwise_inputs(self, thin: int = 1) -> PointwiseInputs:
         """Draws and data for pointwise log-likelihoods at the unit and occasion level."""
+        ar1.refuse_pending(self.spec, "pointwise log-likelihoods (LOO at either level)")
         thin = self._thin(thin)
         M, y, codes = self.rows if self.rows is not None else (None, None, None)
         return PointwiseInputs(
@@ -650,7 +656,16 @@ class Posterior:
 
     def variance_partition(self, reference=None):
         """Unit/occasion SDs, ICC, quasi-demeaning shares and Rights-Sterba (2019) shares
-        per draw; see :func:`bayespanel.partition.variance_partition`."""
+        per draw; see :func:`bayespanel.partition.variance_partition`.
+
+        With ``errors="ar1"`` the occasion SD is the stationary SD of the errors, the ICC
+        stays the share of the unit variance, and the partition gains ``"correlation one
+        step apart"``: the correlation of a unit's outcomes on two occasions one time unit
+        apart given the covariates, ``(sigma_unit^2 + rho sigma_obs^2) / (sigma_unit^2 +
+        sigma_obs^2)`` (``rho`` for fixed effects, whose intercepts are held fixed). The
+        quasi-demeaning shares ``theta`` hold for independent errors only and are ``nan``
+        there.
+        """
         from .partition import design_partition, variance_partition
 
         sigma = self._flat("sigma_obs")
@@ -658,11 +673,15 @@ class Posterior:
                             if self.spec.unit_effects == "random" else None, sigma.shape)
         args = (self.spec.kind, self.labels, self._flat("coef"), sigma, tau)
         if self.rows is not None:
-            return variance_partition(self.rows[0], self.rows[2], *args, reference=reference)
-        if self.design is not None:  # a design without rows at hand: its statistics
-            return design_partition(self.design, *args, reference=reference)
-        raise SpecificationError("the variance partition needs the estimation rows or the "
-                                 "design the model was built on")
+            out = variance_partition(self.rows[0], self.rows[2], *args, reference=reference)
+        elif self.design is not None:  # a design without rows at hand: its statistics
+            out = design_partition(self.design, *args, reference=reference)
+        else:
+            raise SpecificationError("the variance partition needs the estimation rows or "
+                                     "the design the model was built on")
+        if self.spec.errors == "ar1":
+            out = _with_serial_correlation(out, sigma, tau, self._flat("rho"))
+        return out
 
     def contrasts(self, rope=None, prob: float = DEFAULT_INTERVAL, reference=None,
                   tests: bool = True):
@@ -789,6 +808,23 @@ class Posterior:
 
 
 _DIGEST = "bayespanel_digest"
+
+
+def _with_serial_correlation(part, sigma, tau, rho):
+    """``part`` with the correlation one step apart after the ICC and no ``theta``
+    (see :meth:`Posterior.variance_partition`)."""
+    d = part.draws
+    if tau is None:       # fixed effects: the errors' own correlation
+        lag1 = np.asarray(rho, dtype=float)
+    else:
+        t2, s2 = np.asarray(tau, float) ** 2, np.asarray(sigma, float) ** 2
+        lag1 = (t2 + rho * s2) / (t2 + s2)
+    at = list(d.columns).index("ICC") + 1 if "ICC" in d.columns else len(d.columns)
+    d.insert(at, "correlation one step apart", lag1)
+    for c in d.columns:
+        if c.startswith("theta (T="):
+            d[c] = np.nan
+    return part
 
 
 def _attrs_digest(tree) -> str:

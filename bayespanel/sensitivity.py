@@ -37,6 +37,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats as _st
 
+from .ar1 import refuse_pending
 from .errors import SpecificationError, choices_error
 from .resultshape import DEFAULT_INTERVAL
 from .safetext import LITERAL_RC, literal
@@ -218,6 +219,7 @@ def power_scaling(posterior, components=None, *, threshold=THRESHOLD, alphas=(0.
     Kallioinen, Paananen, Bürkner and Vehtari (2024), Statistics and Computing 34, 57.
     doi:10.1007/s11222-023-10366-5
     """
+    refuse_pending(getattr(posterior, "spec", None), "power_scaling (prior sensitivity)")
     lp_all = log_prior_draws(posterior)
     if components is None:
         components = list(lp_all)
@@ -393,6 +395,7 @@ def prior_presets(model, presets=UNIT_SD_PRESETS, *, draws=1000, tune=1000, chai
     """
     from .models.priors import SD_PRESETS
 
+    refuse_pending(getattr(model, "errors", "iid"), "prior_presets (prior sensitivity refits)")
     if getattr(model, "unit_effects", None) != "random":
         raise SpecificationError(
             f"prior_presets varies the unit-SD prior; {type(model).__name__} has no unit SD "

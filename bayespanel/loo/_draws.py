@@ -7,6 +7,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from ..ar1 import refuse_pending
 from ..errors import SpecificationError, choices_error
 from ..mathcore import unit_sd_draws
 
@@ -165,6 +166,7 @@ def from_posterior(post) -> FitDraws:
     if idata is None or spec is None or "posterior" not in idata.children:
         raise SpecificationError(
             f"expected a bayespanel Posterior with posterior draws, got {type(post).__name__}")
+    refuse_pending(spec, "LOO (at either level) and K-fold")
     if post.rows is None and getattr(post, "design", None) is not None:
         raise SpecificationError(
             "full LOO needs every pointwise term, and the model's design holds no rows (a "

@@ -45,7 +45,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .. import kinds
+from .. import ar1, kinds
 from ..errors import DataHandlingWarning, EstimationError, SpecificationError, choices_error
 from ..mathcore import intraclass_correlation
 from . import gaussian
@@ -78,6 +78,8 @@ class ModelSpec:
         Every prior, fully specified on the data scale.
     design : tuple of (key, value) or None
         The :class:`~bayespanel.design.DesignSpec` fields, when built from a panel.
+    errors : {"iid", "ar1"}
+        The occasion-level errors: independent, or AR(1) within units.
     """
 
     model: str
@@ -88,16 +90,20 @@ class ModelSpec:
     labels: tuple
     priors: tuple
     design: tuple | None = None
+    errors: str = "iid"
 
     @property
     def prior_dict(self) -> dict:
         return {k: Prior.from_dict(v) for k, v in self.priors}
 
     def to_dict(self) -> dict:
-        return {"model": self.model, "kind": self.kind, "unit_effects": self.unit_effects,
-                "likelihood": self.likelihood, "outcome": self.outcome,
-                "labels": list(self.labels), "priors": {k: dict(v) for k, v in self.priors},
-                "design": dict(self.design) if self.design is not None else None}
+        out = {"model": self.model, "kind": self.kind, "unit_effects": self.unit_effects,
+               "likelihood": self.likelihood, "outcome": self.outcome,
+               "labels": list(self.labels), "priors": {k: dict(v) for k, v in self.priors},
+               "design": dict(self.design) if self.design is not None else None}
+        if self.errors != "iid":   # iid specifications keep the form they always had
+            out["errors"] = self.errors
+        return out
 
     def to_json(self) -> str:
         return json.dumps(self.to_dict())
@@ -107,7 +113,8 @@ class ModelSpec:
         return cls(model=d["model"], kind=d["kind"], unit_effects=d["unit_effects"],
                    likelihood=d["likelihood"], outcome=d["outcome"], labels=tuple(d["labels"]),
                    priors=tuple((k, tuple(sorted(v.items()))) for k, v in d["priors"].items()),
-                   design=tuple(d["design"].items()) if d.get("design") else None)
+                   design=tuple(d["design"].items()) if d.get("design") else None,
+                   errors=d.get("errors", "iid"))
 
     @classmethod
     def from_json(cls, text: str) -> "ModelSpec":
@@ -142,6 +149,14 @@ class GaussianModel:
         ``"gaussian"``, the builders' own family (docs/families.md); the builder reads
         ``family=`` before it is built, and any other family, or ``random_slopes=``,
         builds a latent-effect model instead (``bayespanel.models.latent``).
+    errors : {"iid", "ar1"}
+        The occasion-level errors of a unit: independent (``"iid"``, the default) or a
+        stationary AR(1) on the panel's time column, ``Cov(e_it, e_is) = sigma_obs^2
+        rho^|time_t - time_s|`` (``"ar1"``; design.md section 4b, docs/serial-correlation.md).
+        With ``"ar1"`` the model gains the parameter ``rho`` (prior key ``"rho"``) and
+        reads the AR(1) statistics of :mod:`bayespanel.ar1`; the unit intercepts still
+        integrate out exactly. Only the marginal likelihood and a panel with its rows at
+        hand (not a partitioned source) are supported so far.
 
     Attributes
     ----------
@@ -155,6 +170,8 @@ class GaussianModel:
     kind = "random"
     unit_effects = "random"
     likelihoods = LIKELIHOODS
+    #: occasion-level errors ("iid" or "ar1"); set per model by ``errors=``
+    errors = "iid"
 
     def __new__(cls, *args, **kwargs):
         # issue 5 hook: family= (other than "gaussian") and random_slopes= build a
@@ -162,21 +179,31 @@ class GaussianModel:
         from .latent import latent_model, wants_latent
 
         if wants_latent(kwargs):
+            errors = kwargs.pop("errors", "iid")
+            if errors != "iid":
+                _check_errors(errors)
+                ar1.refuse_pending(errors, "family= other than 'gaussian' and random_slopes=")
             return latent_model(cls, *args, **kwargs)
         return super().__new__(cls)
 
     def __init__(self, panel, formula, priors=None, likelihood="marginal",
-                 occasion_effects=False, family="gaussian"):
+                 occasion_effects=False, family="gaussian", errors="iid"):
         self._check_likelihood(likelihood)
+        self._set_errors(errors, likelihood)
         if not isinstance(occasion_effects, (bool, np.bool_)):
             raise SpecificationError(
                 f"occasion_effects={occasion_effects!r} must be True or False")
         design = panel.design(formula, occasion_effects=bool(occasion_effects))
         self._init_design(design, priors, likelihood)
 
+    def _set_errors(self, errors, likelihood):
+        self.errors = _check_errors(errors)
+        if self.errors == "ar1" and likelihood != "marginal":
+            ar1.refuse_pending("ar1", f"likelihood={likelihood!r}")
+
     # ------------------------------------------------------------------ constructors
     @classmethod
-    def from_design(cls, design, priors=None, likelihood="marginal"):
+    def from_design(cls, design, priors=None, likelihood="marginal", errors="iid"):
         """Build the model on a ready :class:`~bayespanel.design.Design` (``design.build``).
 
         The likelihood reads the design's sufficient statistics
@@ -186,6 +213,7 @@ class GaussianModel:
         """
         obj = cls.__new__(cls)
         obj._check_likelihood(likelihood)
+        obj._set_errors(errors, likelihood)
         obj._init_design(design, priors, likelihood)
         return obj
 
@@ -193,12 +221,26 @@ class GaussianModel:
         stats = self._design_stats(design)
         labels = list(stats.names[:-1])
         self.design = design
+        self.ar1_stats = None
+        if self.errors == "ar1":
+            self.ar1_stats = self._ar1_stats(design, labels)
         self._setup(stats, labels, outcome=design.outcome, units=design.units, priors=priors,
                     likelihood=likelihood, rows=None, design_spec=design.spec.to_dict(),
                     rows_from=(lambda: self._rows_of(design)) if design.has_rows else None)
 
     def _design_stats(self, design):
         return design.model_suffstats(self.kind)
+
+    def _ar1_stats(self, design, labels):
+        """The AR(1) statistics of this model's columns ``[M, y]`` (:func:`ar1.compute`),
+        gaps read from the panel's time column."""
+        if not design.has_rows:
+            ar1.refuse_pending("ar1", "a panel whose rows are not in memory (a partitioned "
+                               "source such as a Dask panel)")
+        M, y, codes = self._rows_of(design)
+        column = dict(design.spec.to_dict()).get("time", "time")
+        return ar1.compute(M, y, codes, design.time, names=labels + [design.outcome],
+                           column=column)
 
     def _rows_of(self, design):
         # the pooled and random kinds use the design's columns as they are: share them
@@ -242,6 +284,7 @@ class GaussianModel:
         obj = cls.__new__(cls)
         obj._check_likelihood(likelihood)
         obj.design = None
+        obj.ar1_stats = None
         obj._setup(stats, list(labels), outcome=outcome, units=units, priors=priors,
                    likelihood=likelihood, rows=rows, design_spec=design_spec)
         return obj
@@ -289,17 +332,39 @@ class GaussianModel:
         priors = kinds.with_default_priors(type(self), priors)
         self.priors = resolve_priors(priors, labels, intercept=self.intercept, sd_y=sd[-1],
                                      mean_y=float(stats.mean[-1]), sd_x=sd[:-1],
-                                     has_unit_sd=self.unit_effects == "random")
+                                     has_unit_sd=self.unit_effects == "random",
+                                     rho=self._rho_range())
+        self._check_rho_prior()
         self.spec = ModelSpec(
             model=type(self).__name__, kind=self.kind, unit_effects=self.unit_effects,
             likelihood=likelihood, outcome=self.outcome, labels=tuple(labels),
             priors=tuple((k, tuple(sorted(p.to_dict().items())))
                          for k, p in self.priors.items()),
-            design=tuple(design_spec.items()) if design_spec else None)
+            design=tuple(design_spec.items()) if design_spec else None, errors=self.errors)
         self._nutpie = None
         self._pymc_logp = None  # compiled log density and gradient (models.sampling)
         self.pymc_model = self._build()
         mark_built(self)  # so that a user's additions to pymc_model are known
+
+    def _rho_range(self):
+        """Default range of ``rho``: (-1, 1), or [0, 1) when some gap between occasions
+        is not a whole number (``rho^d`` of a negative ``rho`` is not real); None
+        without AR(1) errors."""
+        if self.errors != "ar1":
+            return None
+        return (-1.0, 1.0) if self.ar1_stats.integer_gaps else (0.0, 1.0)
+
+    def _check_rho_prior(self):
+        if self.errors != "ar1" or self.ar1_stats.integer_gaps:
+            return
+        lower = self.priors["rho"].kwargs["lower"]
+        if lower < 0:
+            gaps = self.ar1_stats.gaps
+            odd = gaps[gaps != np.round(gaps)]
+            raise SpecificationError(
+                f"priors['rho'] allows negative rho (lower={lower:g}), but some gaps between "
+                f"occasions are not whole numbers (e.g. {odd[0]:g}), and rho^gap of a "
+                "negative rho has no real value; give the prior a lower bound of 0 or more")
 
     def _scaling(self, stats) -> gaussian.Scaling:
         sd = _column_sd(stats, self.kind)
@@ -344,6 +409,9 @@ class GaussianModel:
             par = standardised_params(self.priors[comp], loc_shift=0.0, factor=1.0 / sy)
             for name, val in par.items():
                 out[f"prior_{comp}_{name}"] = np.asarray(val, dtype=float)
+        if self.errors == "ar1":   # a correlation: the same on every scale
+            for name, val in self.priors["rho"].kwargs.items():
+                out[f"prior_rho_{name}"] = np.asarray(val, dtype=float)
         return out
 
     def _sd_names(self):
@@ -400,7 +468,10 @@ class GaussianModel:
                 sig[comp] = _sd_rv(pm, f"{comp}_std", self.priors[comp].family, par)
             sigma = sig["sigma_obs"]
             tau = sig.get("sigma_unit")
-            if self.likelihood == "marginal":
+            if self.errors == "ar1":
+                rho = pm.Uniform("rho", lower=d["prior_rho_lower"], upper=d["prior_rho_upper"])
+                self._ar1_potential(pm, pt, b_std, sigma, tau, rho)
+            elif self.likelihood == "marginal":
                 self._marginal_potential(pm, pt, d, b_std, sigma, tau)
             else:
                 self._latent_likelihood(pm, b_std, sigma, tau, d["scale_y"])
@@ -432,6 +503,14 @@ class GaussianModel:
                 tau if tau is not None else 0.0, xp=pt)
         pm.Potential("loglik", ll)
 
+    def _ar1_potential(self, pm, pt, b_std, sigma, tau, rho):
+        """The AR(1) marginal log-likelihood (:func:`bayespanel.ar1.loglik`) on the
+        standardised columns: the statistics enter as constants of the graph."""
+        arrays = self.ar1_stats.arrays(center=self.scaling.c, scale=self.scaling.s)
+        v = gaussian.residual_vector(b_std, xp=pt)
+        t = None if self.unit_effects == "fixed" else (tau if tau is not None else 0.0)
+        pm.Potential("loglik", ar1.loglik(v, arrays, rho, sigma, t, xp=pt))
+
     def _latent_likelihood(self, pm, b_std, sigma, tau, scale_y):
         M, y, codes = self.rows
         Ms, ys = self.scaling.standardise_rows(np.asarray(M, float), np.asarray(y, float))
@@ -461,6 +540,7 @@ class GaussianModel:
             The new rows (required for the latent likelihood); without them the model
             forgets its rows (predictive draws and LOO then need a panel).
         """
+        ar1.refuse_pending(self.errors, "set_suffstats (new data in a built model)")
         if stats.p != self.stats.p:
             raise SpecificationError(
                 f"the new statistics have {stats.k} covariate columns; this model has "
@@ -542,6 +622,7 @@ class GaussianModel:
         from .sampling import check_int
         from ..posterior import simulate_outcome
 
+        ar1.refuse_pending(self.errors, "sample_prior_predictive")
         check_int("draws", draws, 1)
         names = ["coef", "sigma_obs"] + (["sigma_unit", "icc"] if self.unit_effects == "random"
                                          else [])
@@ -566,8 +647,15 @@ class GaussianModel:
         return xr.DataTree.from_dict(groups)
 
     def __repr__(self):
+        errors = "" if self.errors == "iid" else f", errors={self.errors!r}"
         return (f"{type(self).__name__}({self.outcome} ~ {', '.join(self.labels)}; "
-                f"{self.stats.n} rows, {self.stats.n_units} units, {self.likelihood})")
+                f"{self.stats.n} rows, {self.stats.n_units} units, {self.likelihood}{errors})")
+
+
+def _check_errors(errors):
+    if not isinstance(errors, str) or errors not in ar1.ERRORS:
+        raise choices_error("errors", errors, ar1.ERRORS)
+    return errors
 
 
 def _ss_unit_mean_residual(stats, b):

@@ -14,7 +14,10 @@ standardised parameter, because every family offered here is a location-scale fa
 * ``sigma_unit``: half-normal with scale ``sd(y)``; presets ``"half_student_t"``
   (3 degrees of freedom, scale ``sd(y)``), ``"exponential"`` (mean ``sd(y)``) and
   ``"gamma2"``, the boundary-avoiding Gamma(2, rate) on the SD of Chung et al. (2013),
-  with mean ``sd(y)`` (rate ``2 / sd(y)``).
+  with mean ``sd(y)`` (rate ``2 / sd(y)``);
+* ``rho`` (models with ``errors="ar1"``): uniform on (-1, 1), the whole stationary range
+  (on [0, 1) when the gaps between occasions are not whole numbers, where a negative
+  ``rho`` has no meaning); ``Prior("uniform", lower=..., upper=...)`` narrows it.
 
 References
 ----------
@@ -34,7 +37,7 @@ import numpy as np
 from ..errors import SpecificationError, choices_error
 from ..terms import parse
 
-__all__ = ["Prior", "COEF_FAMILIES", "SD_FAMILIES", "resolve_priors", "default_priors",
+__all__ = ["Prior", "COEF_FAMILIES", "SD_FAMILIES", "RHO_FAMILIES", "resolve_priors", "default_priors",
            "check_prior"]
 
 #: coefficient families and their parameters (all on the data scale)
@@ -43,6 +46,9 @@ COEF_FAMILIES = {"normal": ("mu", "sigma"), "student_t": ("nu", "mu", "sigma"), 
 SD_FAMILIES = {"half_normal": ("scale",), "half_student_t": ("nu", "scale"),
                "exponential": ("scale",), "gamma2": ("scale",), "half_flat": ()}
 #: preset names accepted for a standard deviation, with defaults in units of sd(y)
+#: families for the AR(1) correlation ``rho`` (bounds inside [-1, 1])
+RHO_FAMILIES = {"uniform": ("lower", "upper")}
+RHO_KEY = "rho"
 SD_PRESETS = {"half_normal": {"scale": 1.0}, "half_student_t": {"nu": 3.0, "scale": 1.0},
               "exponential": {"scale": 1.0}, "gamma2": {"scale": 0.5}, "half_flat": {}}
 COEF_PRESETS = {"normal": {"mu": 0.0, "sigma": 2.5}, "student_t": {"nu": 3.0, "mu": 0.0, "sigma": 2.5},
@@ -81,7 +87,7 @@ class Prior:
 
     def __init__(self, family: str, **params):
         fam = str(family)
-        allowed = {**COEF_FAMILIES, **SD_FAMILIES}
+        allowed = {**COEF_FAMILIES, **SD_FAMILIES, **RHO_FAMILIES}
         if fam not in allowed:
             raise choices_error("prior family", family, sorted(allowed))
         for name in params:
@@ -145,7 +151,7 @@ def _coerce(key: str, value) -> Prior:
         "'normal' or 'gamma2', or a dict like {'family': 'normal', 'sigma': 10}")
 
 
-def default_priors(labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd) -> dict:
+def default_priors(labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd, rho=None) -> dict:
     """The default prior of every parameter, fully specified on the data scale."""
     out = {}
     for j, lab in enumerate(labels):
@@ -156,6 +162,8 @@ def default_priors(labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd) -> dic
     out["sigma_obs"] = Prior("exponential", scale=sd_y)
     if has_unit_sd:
         out["sigma_unit"] = Prior("half_normal", scale=sd_y)
+    if rho is not None:
+        out[RHO_KEY] = Prior("uniform", lower=rho[0], upper=rho[1])
     return out
 
 
@@ -182,6 +190,20 @@ def check_prior(key: str, value) -> Prior:
     and a coefficient family for every other key (so a mistake is caught before any
     sampling)."""
     prior = _coerce(key, value)
+    if key == RHO_KEY:
+        if prior.family not in RHO_FAMILIES:
+            raise SpecificationError(
+                f"priors['rho'] is the AR(1) correlation; family {prior.family!r} does not "
+                f"fit, choose one of {', '.join(map(repr, RHO_FAMILIES))}")
+        kw = {"lower": -1.0, "upper": 1.0, **prior.kwargs}
+        if not -1.0 <= kw["lower"] < kw["upper"] <= 1.0:
+            raise SpecificationError(
+                f"priors['rho'] uniform(lower={kw['lower']:g}, upper={kw['upper']:g}) needs "
+                "-1 <= lower < upper <= 1 (rho is a correlation)")
+        return Prior(prior.family, **kw)
+    if prior.family in RHO_FAMILIES:
+        raise SpecificationError(
+            f"priors[{key!r}]: family {prior.family!r} is for the AR(1) correlation 'rho' only")
     sd_prior = key in SD_NAMES
     if sd_prior != prior.is_sd:
         fams = SD_FAMILIES if sd_prior else COEF_FAMILIES
@@ -192,7 +214,8 @@ def check_prior(key: str, value) -> Prior:
     return prior
 
 
-def resolve_priors(user, labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd) -> dict:
+def resolve_priors(user, labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd,
+                   rho=None) -> dict:
     """Merge the user's priors with the defaults; every entry fully specified.
 
     Parameters
@@ -209,6 +232,9 @@ def resolve_priors(user, labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd) 
     sd_x : array
         SD of each column as it enters the likelihood.
     has_unit_sd : bool
+    rho : (float, float) or None
+        The default range of the AR(1) correlation (models with ``errors="ar1"``), which
+        then takes the key ``"rho"``; None: the model has no ``rho``.
 
     Raises
     ------
@@ -218,7 +244,7 @@ def resolve_priors(user, labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd) 
     """
     labels = list(labels)
     out = default_priors(labels, intercept=intercept, sd_y=sd_y, mean_y=mean_y, sd_x=sd_x,
-                         has_unit_sd=has_unit_sd)
+                         has_unit_sd=has_unit_sd, rho=rho)
     if user is None:
         return out
     if not isinstance(user, dict):
@@ -226,11 +252,14 @@ def resolve_priors(user, labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd) 
                                  f"{type(user).__name__}")
     occ = [lab for lab in labels if parse(lab).is_occasion]
     valid = (labels + [ALL_KEY] + ([OCCASION_KEY] if occ else [])
-             + (["sigma_obs", "sigma_unit"] if has_unit_sd else ["sigma_obs"]))
+             + (["sigma_obs", "sigma_unit"] if has_unit_sd else ["sigma_obs"])
+             + ([RHO_KEY] if rho is not None else []))
     for key in user:
         if key not in valid:
             extra = (" (this model has no unit intercepts, so no 'sigma_unit')"
-                     if key == "sigma_unit" else "")
+                     if key == "sigma_unit" else
+                     " (the AR(1) correlation exists only with errors='ar1')"
+                     if key == RHO_KEY else "")
             raise SpecificationError(
                 f"priors has an unknown key {key!r}{extra}; valid keys are "
                 + ", ".join(map(repr, valid)))
@@ -239,6 +268,9 @@ def resolve_priors(user, labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd) 
         if key not in user:
             continue
         prior = check_prior(key, user[key])
+        if key == RHO_KEY:
+            out[key] = prior
+            continue
         sd_prior = key in SD_NAMES
         if sd_prior:
             out[key] = _fill(prior, sd_prior=True, base_sd=sd_y)
