@@ -1,4 +1,4 @@
-"""AR(1) errors within units, on sufficient statistics (design.md section 4b).
+"""AR(1) errors within units, on sufficient statistics.
 
 Model: ``y_it = x_it'b + u_i + e_it`` with ``u_i ~ N(0, tau^2)`` and errors of one unit
 following a stationary AR(1) on the occasions' own time scale,
@@ -583,7 +583,7 @@ def loglik(v, arrays: dict, rho, sigma, tau, xp=np):
     Returns
     -------
     float or scalar expression
-        ``sum_i log p(y_i | b, rho, sigma, tau)`` (design.md section 4b).
+        ``sum_i log p(y_i | b, rho, sigma, tau)`` (the module docstring).
     """
     if xp is np:
         rho = float(rho)
@@ -686,8 +686,9 @@ def unit_effect_conditional(r, tl: Timeline, rho, sigma, tau):
     With ``r`` the residuals without the intercept, the normal update gives
     ``u_i | y ~ N(tau^2 w'r_i / (sigma^2 + tau^2 c_i), tau^2 sigma^2 / (sigma^2 + tau^2 c_i))``
     (``w'r`` and ``c`` as in the module docstring; at ``rho = 0`` ``c_i = T_i`` and
-    ``w'r_i`` the residual sum, design.md section 4). ``tau=None`` is the flat-prior
-    (fixed-effects) limit: the GLS mean ``w'r_i / c_i`` with variance ``sigma^2 / c_i``.
+    ``w'r_i`` the residual sum, as in :func:`bayespanel.models.gaussian.unit_effect_conditional`).
+    ``tau=None`` is the flat-prior (fixed-effects) limit: the GLS mean ``w'r_i / c_i`` with
+    variance ``sigma^2 / c_i``.
 
     Returns
     -------

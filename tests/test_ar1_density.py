@@ -127,7 +127,7 @@ def test_fixed_effects_is_the_flat_prior_integral(panel):
 
 
 def test_fixed_effects_at_rho_zero_is_the_iid_within_likelihood(panel):
-    # the iid within likelihood of design.md section 4 (itself checked elsewhere against
+    # the iid within likelihood of models.gaussian.within_loglik (itself checked elsewhere against
     # statsmodels); consistency of the two forms
     Z, keys, times, st = panel
     v = np.append(-B, 1.0)

@@ -107,7 +107,7 @@ def test_random_intercept_posterior_matches_memory_and_statsmodels(paths, memory
 @pytest.mark.slow
 def test_subsampled_unit_loo_from_statistics(paths, memory_posterior):
     # Source: wage panel (linearmodels.datasets). Identity: the unit-level terms from
-    # per-unit statistics equal those from the rows (design.md section 4); the check of
+    # per-unit statistics equal those from the rows (T_i, rbar_i, W_i suffice); the check of
     # the issue: sub-sampled LOO (Magnusson et al. 2019) agrees with full PSIS-LOO
     # (arviz-stats) within its reported standard error.
     from bayespanel.models import gaussian

@@ -125,7 +125,7 @@ def test_jsonable_matches_pandas_own_json_writer():
 
 
 def test_unit_sd_draws_follow_the_unit_effect_rule():
-    # published identity (design.md section 4): the marginal density of a unit with tau = 0
+    # published identity (the random-intercept marginal density): the marginal density of a unit with tau = 0
     # is that of independent rows, so "none" must give zeros; checked through the density
     # against scipy's multivariate normal with covariance sigma^2 I + tau^2 11'
     from scipy import stats

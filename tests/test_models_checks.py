@@ -128,7 +128,7 @@ def _mode(model):
 
 def test_flat_prior_mode_is_ml_random_effects(wage_panel):
     # Sources: statsmodels MixedLM (reml=False) and bayespanel.reference.random(method="ml")
-    # (issue 3, closed form profile likelihood); design.md section 8 identity.
+    # (issue 3, closed form profile likelihood).
     import statsmodels.formula.api as smf
 
     keep = np.sort(wage_panel["nr"].unique())[:150]

@@ -154,7 +154,7 @@ def test_summary_matches_arviz_stats(fits):
 
 
 def test_labels_and_components(fits):
-    # Our labels (design.md: "x (within)", "x (between)", "x (unit mean)").
+    # Our labels (DEVELOPERS.md: "x (within)", "x (between)", "x (unit mean)").
     s = fits["WithinBetween"][1].summary()
     assert "exper (within)" in s.index and "exper (between)" in s.index
     assert "educ" in s.index and "educ (within)" not in s.index

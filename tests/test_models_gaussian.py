@@ -145,7 +145,7 @@ def test_occasion_conditional_equals_schur_complement(rows):
 
 def test_occasion_conditional_fixed_effects(rows):
     # Source: scipy.stats.norm with mean R/m and variance sigma^2 (1 + 1/m) (flat-prior
-    # intercept, design.md section 4); undefined for single-row units.
+    # intercept integrated out); undefined for single-row units.
     X, y, codes = rows
     b, sigma = PARAMS[0][0], 0.7
     ours = gaussian.occasion_loglik_rows(X, y, codes, b[None], np.array([sigma]), None)[0]

@@ -124,7 +124,7 @@ def test_singleton_units_dropped_from_within_with_count(grunfeld):
 
 def test_only_time_constant_covariates_refused(grunfeld):
     """Fixed effects cannot estimate coefficients of covariates constant within units
-    (published identity, design.md section 8)."""
+    (published identity: demeaning removes them)."""
     df = grunfeld.copy()
     df["size"] = df.groupby("firm")["value"].transform("mean")
     with pytest.raises(bp.EstimationError, match="varies within"):
