@@ -152,7 +152,7 @@ class GaussianModel:
     errors : {"iid", "ar1"}
         The occasion-level errors of a unit: independent (``"iid"``, the default) or a
         stationary AR(1) on the panel's time column, ``Cov(e_it, e_is) = sigma_obs^2
-        rho^|time_t - time_s|`` (``"ar1"``; design.md section 4b, docs/serial-correlation.md).
+        rho^|time_t - time_s|`` (``"ar1"``; docs/serial-correlation.md).
         With ``"ar1"`` the model gains the parameter ``rho`` (prior key ``"rho"``) and
         reads the AR(1) statistics of :mod:`bayespanel.ar1`; the unit intercepts still
         integrate out exactly. Only the marginal likelihood and a panel with its rows at
