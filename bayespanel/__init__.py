@@ -25,7 +25,7 @@ from .errors import (
 )
 from .panel import Panel
 
-__version__ = "0.1.0"
+from .version import __version__  # noqa: E402,F401
 
 # name -> (module, attribute or None for the module itself)
 _LAZY = {

@@ -624,7 +624,7 @@ def build_parser() -> argparse.ArgumentParser:
                     "Exit codes: 0 success, 2 bad input, 1 failure or interrupted, 3 "
                     "sampling problems under --strict.",
     )
-    from . import __version__
+    from .version import __version__
     from .runner import Settings
 
     default = {f.name: f.default for f in fields(Settings)}

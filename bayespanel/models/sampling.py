@@ -417,7 +417,7 @@ def _cache_path(m, point=None):
     import pymc
     import pytensor
 
-    from .. import __version__
+    from ..version import __version__
 
     lines = _graph_text([m.logp(jacobian=True)] + list(m.value_vars))
     if lines is None:
