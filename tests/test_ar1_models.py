@@ -134,6 +134,8 @@ def test_iid_default_unchanged():
         B.RandomIntercept(PANEL, "y ~ x", priors={"rho": "uniform"})
     with pytest.raises(SpecificationError, match="errors="):
         B.RandomIntercept(PANEL, "y ~ x", errors="ar2")
+    # the latent options take errors="iid" like the builders (it was a TypeError)
+    assert B.RandomIntercept(PANEL, "y ~ x", random_slopes=["x"], errors="iid").errors == "iid"
 
 
 def test_rho_prior_changeable_and_non_integer_gaps():
@@ -215,3 +217,11 @@ def test_downstream_refuses_clearly(ar1_fit, tmp_path):
         ar1_fit.summary().loc["rho", "mean"])
     with pytest.raises(SpecificationError, match="errors='ar1'"):
         back.loo("occasion")
+
+
+def test_partitioned_source_refuses(tmp_path):
+    FRAME.to_parquet(tmp_path / "part0.parquet", index=False)
+    dp = bp.Panel.from_parquet(tmp_path, unit="unit", time="year", engine="dask",
+                               client="synchronous")
+    with pytest.raises(SpecificationError, match="errors='ar1'.*Dask|Dask.*errors='ar1'"):
+        B.RandomIntercept(dp, "y ~ x", errors="ar1")

@@ -150,7 +150,8 @@ class _BuiltThrough:
     _builder = None
 
     def __init__(self, panel, formula, priors=None, likelihood=None, occasion_effects=False,
-                 **options):
+                 errors="iid", **options):
+        # errors: the builders' option; anything but "iid" was refused by their __new__
         LatentModel.__init__(self, panel, formula, builder=self._builder.__name__,
                              kind=self._builder.kind, priors=priors, likelihood=likelihood,
                              occasion_effects=occasion_effects, **options)
