@@ -37,9 +37,10 @@ import pandas as pd
 from .errors import SpecificationError
 from .jsonsafe import json_record
 from .resultshape import DEFAULT_INTERVAL, check_prob
-from .terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
+from .terms import BETWEEN, CONTRAST, UNIT_MEAN, WITHIN, parse, part_label
 
 __all__ = ["ContrastResult", "contrast_draws", "contrast_matrix", "contrast_covariates",
+           "contrast_rows",
            "within_between_contrasts", "specification_tests"]
 
 CONTRAST_KINDS = ("within_between", "mundlak")
@@ -91,6 +92,19 @@ def contrast_covariates(kind: str, labels) -> list:
     terms = [parse(lab) for lab in labels]
     return [t.column.label for t in terms if t.part == part
             and (kind != "within_between" or t.with_part(WITHIN) in terms)]
+
+
+def contrast_rows(kind: str, labels) -> tuple[list, np.ndarray]:
+    """Every between-minus-within contrast the model's labels carry: their names
+    (``"x (between - within)"``) and the linear map ``L`` (``delta = coef @ L.T``) of
+    :func:`contrast_matrix`, rows in the order of :func:`contrast_covariates`. A kind
+    without contrasts (pooled, random intercept, fixed effects) has none: ``([], 0 x k)``.
+    """
+    labels = list(labels)
+    if kind not in CONTRAST_KINDS:
+        return [], np.zeros((0, len(labels)))
+    tv = contrast_covariates(kind, labels)
+    return [part_label(t, CONTRAST) for t in tv], contrast_matrix(kind, labels, tv)
 
 
 def contrast_draws(kind, labels, time_varying, coef) -> np.ndarray:

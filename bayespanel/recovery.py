@@ -46,6 +46,7 @@ from scipy import stats as _st
 
 from . import kinds
 from . import suffstats as _ss
+from .contrasts import contrast_rows
 from .errors import EstimationError, SamplingWarning, SpecificationError, choices_error
 from .resultshape import DEFAULT_INTERVAL
 from .occasions import true_occasion_coef
@@ -221,21 +222,10 @@ def _no_contrast(x, labels):
 
 
 def _contrasts(labels, kind):
-    """``(name, weight vector)`` for each between-minus-within contrast of the model."""
-    out = []
-    k = len(labels)
-    terms = [parse(lab) for lab in labels]
-    for j, t in enumerate(terms):
-        if (kind == "within_between" and t.part == WITHIN
-                and t.with_part(BETWEEN) in terms):
-            w = np.zeros(k)
-            w[j], w[terms.index(t.with_part(BETWEEN))] = -1.0, 1.0
-            out.append((t.with_part(CONTRAST).label, w))
-        elif kind == "mundlak" and t.part == UNIT_MEAN:
-            w = np.zeros(k)
-            w[j] = 1.0
-            out.append((t.with_part(CONTRAST).label, w))
-    return out
+    """``(name, weight vector)`` for each between-minus-within contrast of the model
+    (:func:`bayespanel.contrasts.contrast_rows`)."""
+    names, L = contrast_rows(kind, labels)
+    return list(zip(names, L))
 
 
 # ---------------------------------------------------------------------------- one replicate

@@ -38,10 +38,10 @@ import pandas as pd
 from scipy import stats as _st
 
 from .ar1 import refuse_pending
+from .contrasts import contrast_rows
 from .errors import SpecificationError, choices_error
 from .resultshape import DEFAULT_INTERVAL
 from .safetext import LITERAL_RC, literal
-from .terms import BETWEEN, CONTRAST, UNIT_MEAN, WITHIN, parse
 
 __all__ = ["power_scaling", "power_scaling_arrays", "log_prior_draws", "log_likelihood_draws",
            "prior_presets", "PresetComparison", "UNIT_SD_PRESETS", "THRESHOLD",
@@ -355,13 +355,8 @@ def _coef_rows(post, prob):
     labels = post.labels
     coef = post.draws("coef").reshape(-1, len(labels))
     rows = {lab: coef[:, j] for j, lab in enumerate(labels)}
-    terms = [parse(lab) for lab in labels]
-    for j, t in enumerate(terms):
-        if t.part == WITHIN and t.with_part(BETWEEN) in terms:
-            rows[t.with_part(CONTRAST).label] = (
-                coef[:, terms.index(t.with_part(BETWEEN))] - coef[:, j])
-        elif t.part == UNIT_MEAN:
-            rows[t.with_part(CONTRAST).label] = coef[:, j]
+    names, L = contrast_rows(post.spec.kind, labels)
+    rows.update(zip(names, (coef @ L.T).T))
     for name in post.parameter_names[len(labels):]:
         rows[name] = post.draws(name).reshape(-1)
     q = [(1 - prob) / 2, (1 + prob) / 2]

@@ -176,3 +176,26 @@ def test_cr1_covariance_equals_statsmodels_cluster_ols(grunfeld, path):
     # the function alone: one score row per cluster gives G - 1 degrees of freedom
     V, df = cr1_covariance(res, "pooled", None, np.ones((4, 3)), 100)
     assert V.shape == (3, 3) and np.all(df == 3.0)
+
+
+# ------------------------------------------------------------------ between-minus-within contrasts
+def test_contrast_rows_equal_the_mundlak_identity(grunfeld):
+    # Mundlak (1978): the coefficient of a covariate's unit mean in the correlated-effects
+    # model equals between minus within of the hybrid model on the same rows; both contrast
+    # maps applied to the reference fits (checked against linearmodels in
+    # test_reference_grunfeld) give the same numbers
+    import bayespanel as bp
+    from bayespanel.contrasts import contrast_rows
+
+    panel = bp.Panel(grunfeld, unit="firm", time="year")
+    f = "invest ~ value + capital"
+    wb = bp.reference.within_between(panel, f)
+    mu = bp.reference.mundlak(panel, f)
+    n_wb, L_wb = contrast_rows("within_between", wb.coef.index)
+    n_mu, L_mu = contrast_rows("mundlak", mu.coef.index)
+    assert n_wb == n_mu == ["value (between - within)", "capital (between - within)"]
+    np.testing.assert_allclose(L_wb @ wb.coef.to_numpy(), L_mu @ mu.coef.to_numpy(),
+                               rtol=1e-8)
+    assert set(L_wb.ravel()) == {-1.0, 0.0, 1.0} and set(L_mu.ravel()) == {0.0, 1.0}
+    names, L = contrast_rows("random", ["Intercept", "value"])
+    assert names == [] and L.shape == (0, 2)
