@@ -83,10 +83,10 @@ def check_run_memory(settings, design, available: int | None = None) -> None:
         return
     n, N = int(design.n), int(design.n_units)
     points = n if settings.level == "occasion" else N
-    if getattr(design, "out_of_core", False):
+    if not design.has_rows:  # sub-sampled LOO
         points = min(settings.loo_observations or 400, points)
     params = len(design.terms) * 2 + 3 + N  # hybrid terms at most double; unit effects
-    ppc = 0 if getattr(design, "out_of_core", False) else settings.ppc_draws
+    ppc = settings.ppc_draws if design.has_rows else 0
     need = estimate_bytes(settings.draws, settings.chains, params, points, ppc, n, N)
     if need <= available:
         return

@@ -727,7 +727,7 @@ def _data_record(settings, panel, design, source, n_read, say):
 
     used = [c for c in screen(settings.formula, panel.columns).columns
             if c not in (panel.unit, panel.time) and c in panel.numeric_columns()]
-    if getattr(design, "out_of_core", False):
+    if not design.has_rows:
         say(f"pass: describe ({len(used)} columns)")
     desc = panel.describe(columns=used)
     return {
@@ -941,9 +941,8 @@ def _ppc(post, design, n_draws, seed):
 
 
 def _partition(post, design, kind, coef_d, sigma_d, tau_d, ref):
-    """The variance partition of one posterior (bayespanel.partition, issue 6)."""
-    if getattr(design, "out_of_core", False):
-        return _partition_stats(design, kind, post.labels, coef_d, sigma_d, tau_d, ref)
+    """The variance partition of one posterior (bayespanel.partition, issue 6): the
+    posterior's own, from its rows or, without rows at hand, its design's statistics."""
     ref = ref if ref is not None and getattr(ref, "design", None) is not None else None
     if hasattr(post, "variance_partition"):
         return post.variance_partition(reference=ref)
@@ -954,37 +953,9 @@ def _partition(post, design, kind, coef_d, sigma_d, tau_d, ref):
                                    reference=ref)
 
 
-def _partition_stats(design, kind, labels, coef_d, sigma_d, tau_d, ref):
-    """The partition of :func:`bayespanel.partition.partition_draws` from the design's
-    statistics of ``[X, y]`` (out of core: no rows). The row covariances it needs are
-    ``within / n`` for the demeaned time-varying columns and ``(total - within) / n`` for
-    the unit means and time-constant columns (the analysis-of-variance decomposition);
-    the reference fit's plug-in partition is the same function at its estimates."""
-    from . import partition as part
-    from .mathcore import partition_quantities
-
-    st = design.design_suffstats()
-    terms, tv = list(design.terms), list(design.time_varying)
-    i_w = [terms.index(t) for t in tv]
-    i_b = i_w + [j for j, t in enumerate(terms) if t not in tv and t != "Intercept"]
-    phi_w = st.within[np.ix_(i_w, i_w)] / st.n
-    phi_b = (st.total - st.within)[np.ix_(i_b, i_b)] / st.n
-
-    def draws(coef, sigma, tau):
-        g_w, g_b = part.coefficient_parts(terms, tv, kind, labels, coef)
-        return partition_quantities(g_w, g_b, phi_w, phi_b, sigma, tau, st.lengths)
-
-    plug = None
-    if ref is not None and ref.estimator in part.PARTITION_KINDS:
-        tau = unit_sd_draws(kinds.reference(ref.estimator).unit_effects, ref.sigma_unit, (1,))
-        plug = draws(ref.coef.to_numpy()[None, :], [ref.sigma_obs], tau)
-    return part.PartitionResult(draws(coef_d, sigma_d, tau_d), kind, plug,
-                                None if plug is None else ref.estimator)
-
-
 def _contrasts(post, design, kind, coef_d, settings, ref):
     """Between-minus-within contrasts of one posterior (bayespanel.contrasts, issue 6)."""
-    if hasattr(post, "contrasts") and not getattr(design, "out_of_core", False):
+    if hasattr(post, "contrasts"):
         return post.contrasts(rope=settings.rope, prob=settings.interval, reference=ref,
                               tests=False)
     from . import contrasts as ctr
@@ -1012,16 +983,10 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
                          progress_bars)
     cls = kinds.model(name).builder_class()
     prob = settings.interval
-    large = getattr(design, "out_of_core", False)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # dropped rows were reported by the data stage
         priors = _model_priors(settings, cls, labels)
-        if large:  # the Gaussian model from the design pass's statistics
-            m = design.build(cls, priors=priors)
-        else:
-            m = cls(panel, settings.formula, priors=priors,
-                    occasion_effects=settings.occasion_effects)
-            design = m.design
+        m = design.build(cls, priors=priors)  # from the design's statistics
     say(f"sampling {name}: {settings.chains} chains x {settings.draws} draws "
         f"(+{settings.tune} tuning)")
     post, seconds = _sample_timed(m, settings, progress_bars)
@@ -1048,7 +1013,7 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
             warnings.simplefilter("ignore")
             cr = _contrasts(post, design, kind, coef_d, settings, ref_for)
         contrasts = cr.to_record(prob)
-    ppc = [] if large else _ppc(post, design, settings.ppc_draws, settings.seed)
+    ppc = _ppc(post, design, settings.ppc_draws, settings.seed) if design.has_rows else []
     rel = None
     if out_dir is not None:
         rel = f"posteriors/{name}.nc"
@@ -1116,12 +1081,14 @@ def _loo_entry(post, level, design=None, settings=None):
     """PSIS-LOO of one posterior (out of core: sub-sampled, Magnusson et al. 2019; with
     ``settings.refit_high_k``, high-k points refitted exactly), or None when the level is
     undefined for the model."""
-    large = getattr(design, "out_of_core", False)
+    from .loo import loo_subsample
+
+    large = design is not None and not design.has_rows
     refit_note, refit_warnings = None, []
     try:
         if large:
-            lr = design.loo_subsample(post, _loo_observations(settings, design), level=level,
-                                      seed=settings.seed)
+            lr = loo_subsample(post, level, _loo_observations(settings, design),
+                               seed=settings.seed)
         elif settings is not None and settings.refit_high_k:
             lr, refit_note, refit_warnings = _loo_refitted(post, level, settings)
         else:
@@ -1143,9 +1110,11 @@ def _loo_entry(post, level, design=None, settings=None):
 
 
 def _comparison_large(settings, design, posts, entries, say):
-    """Out of core: the Bayesian models' sub-sampled LOO side by side. ELPD differences
-    are differences of the estimates; their SE is ``sqrt(n var(d_j))`` over the sampled
-    points ``j`` both models scored (the same seeded sample), as for full LOO."""
+    """Without rows at hand: the Bayesian models' sub-sampled LOO side by side
+    (:func:`bayespanel.comparison.compare` on the sub-sampled results, which shares one
+    seeded sample of points between the models)."""
+    from .comparison import compare
+
     by_name = {e["name"]: e for e in entries}
     results = {}
     for name, post in posts.items():
@@ -1155,25 +1124,17 @@ def _comparison_large(settings, design, posts, entries, say):
         lr, by_name[name]["loo"] = _loo_entry(post, settings.level, design, settings)
         results[name] = lr
     scored = {n: r for n, r in results.items() if r is not None}
-    order = sorted(scored, key=lambda n: -scored[n].elpd)
-    sampled = {n: r.pointwise.loc[np.isfinite(r.pointwise["elpd"].to_numpy(dtype=float))]
-               .set_index("position")["elpd"] for n, r in scored.items()}
+    table = compare(scored, level=settings.level) if scored else None
     rows = []
-    for name in order + [n for n in results if n not in scored]:
-        r = scored.get(name)
+    for name in (list(table.index) if scored else []) + [n for n in results if n not in scored]:
         rec = {"model": name, "title": kinds.model(name).title, "kind": "bayesian",
                "elpd": None, "se": None, "elpd_diff": None, "se_diff": None,
                "method": "undefined", "level": settings.level,
                "note": by_name[name]["loo"]["warning"]}
-        if r is not None:
-            best = order[0]
-            d = (sampled[name] - sampled[best]).dropna()
-            rec.update(elpd=r.elpd, se=r.se, p_loo=r.p_loo, method=r.method,
-                       elpd_diff=r.elpd - scored[best].elpd,
-                       se_diff=float(np.sqrt(r.n_points * np.var(d, ddof=1)))
-                       if len(d) > 1 and name != best else (0.0 if name == best else None),
-                       note=f"{len(d)} sampled points shared with the best model"
-                       if name != best else None)
+        if name in scored:
+            r = table.loc[name]
+            rec.update(elpd=r["elpd"], se=r["se"], p_loo=r["p_loo"], method=r["method"],
+                       elpd_diff=r["elpd_diff"], se_diff=r["se_diff"], note=r["note"] or None)
         rows.append(_floats(rec))
     say(f"LOO comparison done: {len(rows)} Bayesian fits (reference fits are not scored "
         "out of core)")
@@ -1185,7 +1146,7 @@ def _comparison_stage(settings, design, posts, ref_fits, entries, say, failed=No
     LOO fails is left out of the table and recorded in ``failed``)."""
     from .comparison import compare, equivalence_classes
 
-    if getattr(design, "out_of_core", False):
+    if not design.has_rows:  # sub-sampled LOO, Magnusson et al. (2019)
         return _comparison_large(settings, design, posts, entries, say)
     fits, titles = {}, {}
     by_name = {e["name"]: e for e in entries}
@@ -1408,7 +1369,7 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
     }
     if failed:  # runs where everything was fitted keep the 1.0 layout
         results["failed"] = failed
-    if getattr(design, "out_of_core", False):
+    if not design.has_rows:
         results["out_of_core"] = _left_out(settings, panel, design)
     results["problems"] = problems(results)  # the one list every output prints
     validate(results)

@@ -215,7 +215,7 @@ def main(argv=None):
                       ("random", "swamy-arora"), ("random", "ml")]:
         name = est if meth is None else f"{est} ({meth})"
         refs[name] = timed(f"reference: {name}",
-                           lambda: design.fit_reference(est, method=meth))
+                           lambda: bp.reference.fit_design(design, est, method=meth))
     model = timed("bayes: build RandomIntercept from statistics",
                   lambda: design.build(bp.models.RandomIntercept))
     with warnings.catch_warnings():

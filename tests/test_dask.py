@@ -235,7 +235,7 @@ def test_reference_fits_match_memory(wage_designs, estimator, method, cov):
     dsk, mem = wage_designs
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", DataHandlingWarning)
-        a = dsk.fit_reference(estimator, method=method, cov=cov)
+        a = bp.reference.fit_design(dsk, estimator, method=method, cov=cov)
         b = bp.reference.fit_design(mem, estimator, method=method, cov=cov)
     assert list(a.coef.index) == list(b.coef.index)
     assert rel(a.coef, b.coef) < 1e-10
@@ -253,7 +253,7 @@ def test_likelihood_fits_match_memory(wage_designs, method):
     # analytic slope of the profile likelihood (bracketed Brent root to rtol 4 eps), so
     # statistics equal to 1e-15 give optima equal to about that: 1e-10 holds with room.
     dsk, mem = wage_designs
-    a = dsk.fit_reference("random", method=method)
+    a = bp.reference.fit_design(dsk, "random", method=method)
     b = bp.reference.fit_design(mem, "random", method=method)
     assert rel(a.coef, b.coef) < 1e-10 and rel(a.se, b.se) < 1e-10
     assert abs(a.sigma_unit - b.sigma_unit) < 1e-10 * b.sigma_unit
@@ -274,13 +274,13 @@ def test_against_linearmodels_directly(wage_designs, wage):
         warnings.simplefilter("ignore")
         fe = PanelOLS(d["lwage"], X, entity_effects=True, drop_absorbed=True).fit(
             cov_type="clustered", cluster_entity=True, group_debias=True)
-        ours = dsk.fit_reference("within", cov="cluster")
+        ours = bp.reference.fit_design(dsk, "within", cov="cluster")
         be = BetweenOLS(d["lwage"], X).fit()
         re_ = RandomEffects(d["lwage"], X).fit()
     np.testing.assert_allclose(ours.coef[TV], fe.params[TV], rtol=1e-8)
     np.testing.assert_allclose(ours.se[TV], fe.std_errors[TV], rtol=1e-6)
-    np.testing.assert_allclose(dsk.fit_reference("between").coef, be.params, rtol=1e-8)
-    np.testing.assert_allclose(dsk.fit_reference("random").coef, re_.params, rtol=1e-6)
+    np.testing.assert_allclose(bp.reference.fit_design(dsk, "between").coef, be.params, rtol=1e-8)
+    np.testing.assert_allclose(bp.reference.fit_design(dsk, "random").coef, re_.params, rtol=1e-6)
 
 
 def test_pooled_cluster_against_statsmodels(grunfeld_panels):
@@ -288,7 +288,7 @@ def test_pooled_cluster_against_statsmodels(grunfeld_panels):
     import statsmodels.api as sm
 
     df, panels = grunfeld_panels
-    ours = panels["one-unit-each"].design(GRUNFELD).fit_reference("pooled", cov="cluster")
+    ours = bp.reference.fit_design(panels["one-unit-each"].design(GRUNFELD), "pooled", cov="cluster")
     X = sm.add_constant(df[["value", "capital"]].to_numpy())
     ref = sm.OLS(df["invest"].to_numpy(), X).fit(
         cov_type="cluster", cov_kwds={"groups": pd.factorize(df["firm"])[0]})
@@ -312,7 +312,7 @@ def test_parquet_on_a_distributed_cluster(wage, tmp_path):
                       dashboard_address=":0") as cluster, Client(cluster) as client:
         dp = bp.Panel.from_parquet(folder, unit="nr", time="year", engine="dask", client=client)
         assert dp.n_rows == len(df)
-        a = dp.design(WAGE).fit_reference("random")
+        a = bp.reference.fit_design(dp.design(WAGE), "random")
     b = bp.reference.random(mem, WAGE)
     assert rel(a.coef, b.coef) < 1e-10
 
@@ -351,7 +351,7 @@ def test_bad_input_gets_clear_errors(wage, wage_dask):
         DaskPanel(as_dask(inf, spanning(inf)), "nr", "year", client="synchronous").design(WAGE)
     dsk = wage_dask.design("lwage ~ exper + union")
     with pytest.raises(SpecificationError, match="'sandwich'"):
-        dsk.fit_reference("within", cov="sandwich")
+        bp.reference.fit_design(dsk, "within", cov="sandwich")
 
 
 def test_public_reference_functions_take_a_dask_panel(wage, wage_dask):

@@ -73,9 +73,6 @@ KNOWN_UPWARD: set[tuple[str, str]] = {
     ("bayespanel.engines._pointwise", "bayespanel.loo.pointwise"),
     ("bayespanel.engines._pointwise", "bayespanel.loo.psis"),
     ("bayespanel.engines._pointwise", "bayespanel.loo.result"),
-    ("bayespanel.engines._reference", "bayespanel.reference"),
-    ("bayespanel.engines._reference", "bayespanel.reference.covariance"),
-    ("bayespanel.engines._reference", "bayespanel.reference.estimators"),
     ("bayespanel.engines.dask", "bayespanel.loo"),
     ("bayespanel.models.latent", "bayespanel.loo"),
     ("bayespanel.posterior", "bayespanel.contrasts"),
@@ -88,7 +85,6 @@ KNOWN_UPWARD: set[tuple[str, str]] = {
 KNOWN_PRIVATE: set[tuple[str, str]] = {
     ("bayespanel.engines._pointwise", "bayespanel.loo.psis:_describe_points"),
     ("bayespanel.engines._pointwise", "bayespanel.loo.psis:_lpd"),
-    ("bayespanel.engines._reference", "bayespanel.reference.estimators:_check_options"),
     ("bayespanel.family_stage", "bayespanel.models.latent:_column_values"),
     ("bayespanel.family_stage", "bayespanel.models.latent:_where"),
     ("bayespanel.models.latent", "bayespanel.posterior:_read_tree"),

@@ -45,7 +45,7 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from .. import derived, kinds, suffstats
+from .. import derived, suffstats
 from ..design import (KINDS, Design, DesignSpec, check_flag, check_stats, check_terms,
                       occasion_label, refuse_complex)
 from ..errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
@@ -663,30 +663,15 @@ class DaskDesign:
         return (f"DaskDesign({self.outcome!r} ~ {len(self.terms)} terms, {self.n} rows, "
                 f"{self.n_units} units, {self.n_dropped} rows dropped)")
 
-    #: reference fits and models check this to take the sufficient-statistics route
-    out_of_core = True
-    #: no rows are held (``Design.has_rows``): partitions, contrasts and LOO of models on
-    #: this design work from its statistics (and one more pass at the occasion level)
+    #: no rows are held (``Design.has_rows``): reference fits, partitions, contrasts and
+    #: LOO of models on this design work from its statistics (and one more pass at the
+    #: occasion level)
     has_rows = False
 
-    def fit_reference(self, estimator: str, *, method=None, cov: str = "classical"):
-        """A reference fit (:mod:`bayespanel.reference`) on this design's statistics; see
-        :func:`bayespanel.engines._reference.fit` for what ``cov`` supports here."""
-        from ._reference import fit
-
-        return fit(self, estimator, method=method, cov=cov)
-
-    def build(self, builder, priors=None, **kwargs):
-        """A Gaussian model (``bayespanel.models`` builder class, e.g. ``RandomIntercept``)
-        on this design's statistics, as the builder would make from an in-memory Panel
-        (same labels, units and specification). Uses ``builder.from_suffstats``; ``builder``
-        may also be given by name (:func:`bayespanel.kinds.builder`)."""
-        builder = kinds.builder(builder)
-        kind = builder.kind
-        stats = self.model_suffstats(kind)
-        return builder.from_suffstats(stats, list(stats.names[:-1]), outcome=self.outcome,
-                                      units=self.units, priors=priors,
-                                      design_spec=self.spec.to_dict(), **kwargs)
+    #: a Gaussian model on this design's statistics, as from an in-memory Panel (the
+    #: builder's ``from_design``: same labels, units and specification; the model and its
+    #: posterior keep this design, which has no rows; ``builder`` may be given by name)
+    build = Design.build
 
     def unit_loglik(self, kind, b, sigma, tau, units=None):
         """Per-unit marginal log density (draws x units) from the per-unit statistics;
@@ -752,8 +737,8 @@ class DaskDesign:
     def matrices(self, kind):
         raise EstimationError(
             "the Dask path keeps no rows in memory, so it has no design matrices; use "
-            "design.suffstats(kind) for the statistics, design.fit_reference(...) or "
-            "bp.reference.<estimator>(dask_panel, formula) for reference fits, and "
+            "design.suffstats(kind) for the statistics, bp.reference.fit_design(design, ...) "
+            "or bp.reference.<estimator>(dask_panel, formula) for reference fits, and "
             "design.build(bp.models.RandomIntercept) for a Bayesian model")
 
     # ------------------------------------------------------------------ statistics

@@ -33,7 +33,7 @@ from ..terms import AS_IS, parse
 from . import core
 from .linalg import COLLINEAR_TOL
 from ._results import ReferenceResult
-from .covariance import COV_TYPES, classical, cluster_scores, cr1, cr2
+from .covariance import COV_TYPES, classical, cluster_scores, cr1, cr2, cr2_from_blocks
 
 __all__ = ["ESTIMATORS", "METHODS", "pooled", "within", "between", "random", "mundlak",
            "within_between", "fit_design", "fit_arrays", "fit_stats"]
@@ -186,27 +186,41 @@ def within_between(data, formula=None, *, method="swamy-arora", cov="classical",
 
 
 def fit_design(design, estimator: str, *, method=None, cov="classical") -> ReferenceResult:
-    """Fit one reference estimator on a :class:`~bayespanel.design.Design`."""
-    if getattr(design, "out_of_core", False):  # a DaskDesign: statistics only
-        return design.fit_reference(estimator, method=method, cov=cov)
+    """Fit one reference estimator on a :class:`~bayespanel.design.Design`.
+
+    Estimates from the design's sufficient statistics. Cluster-robust covariances need
+    one score per unit: from the rows in slices (:func:`design_scores`) when the design
+    has them, else from the per-unit cross-products its pass collected
+    (:func:`unit_cp_blocks`; a design over a partitioned source, ``Design.has_rows``
+    false). CR2 on a design with rows is computed from the rows of the regression.
+    """
     method = _check_options(estimator, method, cov)
     kind = _KIND[estimator]
-    if cov == "cr2" or not hasattr(design, "suffstats"):
+    if design.has_rows and (cov == "cr2" or not hasattr(design, "suffstats")):
         # CR2 needs the rows of the regression (per-cluster k x k blocks of them)
         M, labels = design.matrices(kind)
         res = fit_arrays(estimator, M, design.y, design.unit_codes, labels, method=method,
                          cov=cov, outcome=design.outcome, units=design.units)
         res.design = design
         return res
-    # statistics only; the cluster-robust scores in one more pass over row slices
+    # statistics only; the cluster-robust scores in one more pass over row slices, or from
+    # the per-unit cross-products
     ss = design.suffstats(kind)
     res = fit_stats(estimator, ss, list(ss.names[:-1]), method=method, outcome=design.outcome)
     res.extra["unit_labels"] = np.asarray(design.units)
     res.design = design
-    if cov == "cluster":
+    if cov == "classical":
+        return res
+    if design.has_rows:
         scores, n_rows, keep = design_scores(res, estimator, design, kind)
-        set_covariance(res, cov, *cr1_covariance(res, estimator, ss, scores, n_rows),
-                       int(keep.sum()))
+    else:
+        ucp = None if estimator == "between" else design.unit_cross_products(kind)
+        blocks, scores, n_rows, keep = unit_cp_blocks(res, estimator, ss, ucp)
+    if cov == "cluster":
+        V, df = cr1_covariance(res, estimator, ss, scores, n_rows)
+    else:
+        V, df = cr2_from_blocks(blocks, scores, res.extra["bread"])
+    set_covariance(res, cov, V, df, int(keep.sum()))
     return res
 
 
@@ -232,6 +246,61 @@ def set_covariance(res, cov, V, df, n_clusters) -> None:
     res._df = np.asarray(df, dtype=float)
     res.cov_type = cov
     res.extra["n_clusters"] = n_clusters
+
+
+def unit_cp_blocks(res, estimator, ss, unit_cp):
+    """Per-unit blocks ``X*_g'X*_g`` and scores ``X*_g'e_g`` of the regression behind
+    ``res``, from per-unit within cross-products (no rows).
+
+    Every row of the regression that was solved is ``z* = z_gt - c_g zbar_g`` for a
+    constant ``c_g`` (1 for fixed effects, ``theta_g`` for the random-intercept GLS, 0 for
+    pooled), so ``sum_t z*_gt z*_gt' = W_g + T_g (1 - c_g)^2 zbar_g zbar_g'`` with ``W_g``
+    the unit's within cross-products of ``[M, y]``; the score ``s_g`` is that matrix times
+    ``v = [-b, 1]`` restricted to the estimated columns, and its ``k x k`` block is all
+    that CR2's leverage correction needs (Cameron and Miller 2015; Bell and McCaffrey
+    2002). The same scores as :func:`design_scores` computes from rows.
+
+    Parameters
+    ----------
+    res : ReferenceResult
+        From :func:`bayespanel.reference.fit_stats` on ``ss``.
+    estimator : str
+    ss : SuffStats
+        Of the estimator's columns (``[M, y]``).
+    unit_cp : (N, p, p) array or None
+        Per-unit within cross-products of ``[M, y]``, in the unit order of ``ss`` (not
+        needed for the between estimator).
+
+    Returns
+    -------
+    (S, s, n_rows, keep)
+        ``S`` (G x k x k), ``s`` (G x k) over the units that are clusters (``keep``;
+        fixed effects leave out single-row units) and the number of rows of the
+        regression that was solved.
+    """
+    cols = np.asarray(res.extra["cols"], dtype=np.int64)
+    v = np.zeros(ss.p)
+    v[cols] = -res._coef
+    v[-1] = 1.0
+    m = ss.unit_mean[:, cols]
+    T = ss.unit_count.astype(float)
+    rbar = ss.unit_mean @ v                              # unit-mean residual
+    if estimator == "between":
+        keep = np.ones(ss.n_units, bool)
+        return m[:, :, None] * m[:, None, :], m * rbar[:, None], ss.n_units, keep
+    ix = np.ix_(np.arange(len(T)), cols, cols)
+    Wxx = unit_cp[ix]
+    Wv = unit_cp[:, cols, :] @ v
+    if estimator == "within":
+        keep = ss.unit_count > 1
+        return Wxx[keep], Wv[keep], int(ss.unit_count[keep].sum()), keep
+    if estimator == "pooled":
+        c = np.zeros(ss.n_units)
+    else:
+        c = res.theta_by_length[np.searchsorted(ss.lengths, ss.unit_count)]
+    w = T * (1.0 - c) ** 2
+    S = Wxx + w[:, None, None] * m[:, :, None] * m[:, None, :]
+    return S, Wv + m * (w * rbar)[:, None], ss.n, np.ones(ss.n_units, bool)
 
 
 def design_scores(res, estimator, design, kind, chunk_rows: int = 1 << 12):
