@@ -144,7 +144,7 @@ def log_prior_draws(posterior) -> dict:
     -------
     dict of str -> array (chain, draw)
     """
-    from .models.priors import standardised_params
+    from .models.priors import prior_on_standard_scale
 
     spec, sc = posterior.spec, posterior.scaling
     if sc is None:
@@ -153,20 +153,17 @@ def log_prior_draws(posterior) -> dict:
     coef = posterior.draws("coef")                                   # chain, draw, k
     A, a0 = sc.coef_map()
     b_std = np.linalg.solve(A, (coef - a0)[..., None])[..., 0]
-    sy, cy = sc.scale_y, sc.center_y
+    sy = sc.scale_y
     labels = list(spec.labels)
     icpt = sc.intercept
     lp = np.zeros(coef.shape[:2])
     for j, lab in enumerate(labels):
-        if j == icpt:
-            par = standardised_params(priors[lab], loc_shift=cy, factor=1.0 / sy)
-        else:
-            par = standardised_params(priors[lab], loc_shift=0.0, factor=sc.s[j] / sy)
+        par = prior_on_standard_scale(priors[lab], sc, j, icpt)
         lp = lp + _logpdf(priors[lab], b_std[..., j], par)
     out = {"coef": lp}
     comps = ["sigma_obs"] + (["sigma_unit"] if spec.unit_effects == "random" else [])
     for comp in comps:
-        par = standardised_params(priors[comp], loc_shift=0.0, factor=1.0 / sy)
+        par = prior_on_standard_scale(priors[comp], sc)
         out[comp] = _logpdf(priors[comp], posterior.draws(comp) / sy, par)
     return out
 

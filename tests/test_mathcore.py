@@ -199,3 +199,26 @@ def test_contrast_rows_equal_the_mundlak_identity(grunfeld):
     assert set(L_wb.ravel()) == {-1.0, 0.0, 1.0} and set(L_mu.ravel()) == {0.0, 1.0}
     names, L = contrast_rows("random", ["Intercept", "value"])
     assert names == [] and L.shape == (0, 2)
+
+
+# ------------------------------------------------------------------ priors on the standardised scale
+def test_prior_on_standard_scale_is_a_change_of_variables():
+    # change of variables theta* = (theta - shift) * factor: scipy's density of theta under
+    # the data-scale prior equals the density of theta* under the mapped prior times factor
+    from scipy import stats
+
+    from bayespanel.models.gaussian import Scaling
+    from bayespanel.models.priors import Prior, prior_on_standard_scale
+
+    sc = Scaling((0.0, 3.0, 10.0), (1.0, 2.0, 5.0), intercept=0)   # [Intercept, x, y]
+    slope = prior_on_standard_scale(Prior("normal", mu=1.0, sigma=4.0), sc, 1, 0)
+    b = 2.7
+    f = sc.s[1] / sc.scale_y
+    assert stats.norm(1.0, 4.0).logpdf(b) == pytest.approx(
+        stats.norm(slope["mu"], slope["sigma"]).logpdf(b * f) + np.log(f), rel=1e-12)
+    icpt = prior_on_standard_scale(Prior("student_t", nu=3.0, mu=12.0, sigma=6.0), sc, 0, 0)
+    assert icpt == pytest.approx({"mu": (12.0 - 10.0) / 5.0, "sigma": 6.0 / 5.0, "nu": 3.0})
+    sd = prior_on_standard_scale(Prior("half_normal", scale=8.0), sc)
+    s = 3.3
+    assert stats.halfnorm(scale=8.0).logpdf(s) == pytest.approx(
+        stats.halfnorm(scale=sd["scale"]).logpdf(s / 5.0) - np.log(5.0), rel=1e-12)

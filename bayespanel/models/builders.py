@@ -49,7 +49,7 @@ from .. import ar1, kinds
 from ..errors import DataHandlingWarning, EstimationError, SpecificationError, choices_error
 from ..mathcore import intraclass_correlation
 from . import gaussian
-from .priors import Prior, resolve_priors, standardised_params
+from .priors import Prior, prior_on_standard_scale, resolve_priors
 from .graph import mark_built
 
 __all__ = ["ModelSpec", "GaussianModel", "Pooled", "RandomIntercept", "WithinBetween",
@@ -391,22 +391,17 @@ class GaussianModel:
     def _prior_values(self, scaling) -> dict:
         """Standardised prior parameters, keyed by their pm.Data names."""
         out = {}
-        sy, cy = scaling.scale_y, scaling.center_y
         for fam, idx in self._coef_groups().items():
             cols = {}
             for j in idx:
-                lab = self.labels[j]
-                if j == self.intercept:
-                    par = standardised_params(self.priors[lab], loc_shift=cy, factor=1.0 / sy)
-                else:
-                    par = standardised_params(self.priors[lab], loc_shift=0.0,
-                                              factor=scaling.s[j] / sy)
+                par = prior_on_standard_scale(self.priors[self.labels[j]], scaling, j,
+                                              self.intercept)
                 for name, val in par.items():
                     cols.setdefault(name, []).append(val)
             for name, vals in cols.items():
                 out[f"prior_coef_{fam}_{name}"] = np.asarray(vals, dtype=float)
         for comp in self._sd_names():
-            par = standardised_params(self.priors[comp], loc_shift=0.0, factor=1.0 / sy)
+            par = prior_on_standard_scale(self.priors[comp], scaling)
             for name, val in par.items():
                 out[f"prior_{comp}_{name}"] = np.asarray(val, dtype=float)
         if self.errors == "ar1":   # a correlation: the same on every scale

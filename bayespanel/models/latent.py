@@ -56,7 +56,8 @@ from ..resultshape import DEFAULT_INTERVAL
 from ..terms import WITHIN, part_label
 from . import families as fam_mod
 from . import gaussian, slopes
-from .priors import Prior, _coerce, _fill, resolve_priors, standardised_params
+from .priors import (Prior, _coerce, _fill, prior_on_standard_scale, resolve_priors,
+                     standardised_params)
 from .graph import mark_built
 
 __all__ = ["LatentSpec", "LatentModel", "latent_model", "latent_class", "LATENT_OPTIONS"]
@@ -411,11 +412,8 @@ class LatentModel:
 
     # ------------------------------------------------------------------ graph
     def _std_coef_params(self, j):
-        sc = self.scaling
-        prior = self.priors[self.labels[j]]
-        if j == self.intercept:
-            return standardised_params(prior, loc_shift=sc.center_y, factor=1.0 / sc.scale_y)
-        return standardised_params(prior, loc_shift=0.0, factor=sc.s[j] / sc.scale_y)
+        return prior_on_standard_scale(self.priors[self.labels[j]], self.scaling, j,
+                                       self.intercept)
 
     def _build(self):
         import pymc as pm
@@ -440,11 +438,11 @@ class LatentModel:
                 fam_j = self.priors[lab].family
                 parts.append(_coef_rv(pm, f"coef_std_{j}", fam_j, self._std_coef_params(j), None))
             b_std = pt.stack(parts)
-            tau_p = standardised_params(self.priors["sigma_unit"], loc_shift=0.0, factor=1 / sy)
+            tau_p = prior_on_standard_scale(self.priors["sigma_unit"], sc)
             sds = [_sd_rv(pm, "sigma_unit_std", self.priors["sigma_unit"].family, tau_p)]
             for j, lab in zip(self.slope_index, ls.slope_labels):
                 p = self.extra_priors[f"sigma_slope[{lab}]"]
-                par = standardised_params(p, loc_shift=0.0, factor=sc.s[j] / sy)
+                par = prior_on_standard_scale(p, sc, j, self.intercept)
                 sds.append(_sd_rv(pm, f"sigma_slope_std_{len(sds)}", p.family, par))
             sd_vec = pt.stack(sds)
             if q > 1:
@@ -454,7 +452,7 @@ class LatentModel:
                 L = sd_vec[:, None] * pt.ones((1, 1))
             sigma = None
             if "sigma_obs" in fam.params:
-                p = standardised_params(self.priors["sigma_obs"], loc_shift=0.0, factor=1 / sy)
+                p = prior_on_standard_scale(self.priors["sigma_obs"], sc)
                 sigma = _sd_rv(pm, "sigma_obs_std", self.priors["sigma_obs"].family, p)
                 pm.Deterministic("sigma_obs", sy * sigma)
             A, a0 = sc.coef_map()

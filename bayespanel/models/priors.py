@@ -290,6 +290,23 @@ def resolve_priors(user, labels, *, intercept, sd_y, mean_y, sd_x, has_unit_sd,
     return out
 
 
+def prior_on_standard_scale(prior: Prior, scaling, column=None, intercept=None) -> dict:
+    """Parameters of ``prior`` on the scale the sampler works on (outcome and covariates
+    standardised by ``scaling``: ``center_y``, ``scale_y`` and the column scales ``s``).
+
+    ``column=None``: a standard deviation of the outcome (``sigma_obs``, ``sigma_unit``),
+    divided by ``scale_y``. ``column=j``: coefficient ``j`` (or the SD of its random
+    slope): times ``s[j] / scale_y``, and when ``j`` is ``intercept`` shifted by
+    ``center_y`` and divided by ``scale_y``. See :func:`standardised_params`.
+    """
+    sy = scaling.scale_y
+    if column is None:
+        return standardised_params(prior, loc_shift=0.0, factor=1.0 / sy)
+    if column == intercept:
+        return standardised_params(prior, loc_shift=scaling.center_y, factor=1.0 / sy)
+    return standardised_params(prior, loc_shift=0.0, factor=scaling.s[column] / sy)
+
+
 def standardised_params(prior: Prior, *, loc_shift: float, factor: float) -> dict:
     """Parameters of ``prior`` after the change of variable ``theta* = (theta - shift) * factor``.
 
