@@ -402,14 +402,14 @@ def _print_summary(results) -> None:
         rows = []
         for c in m["coefficients"]:
             tv = known.get(c["term"])
-            rows.append((c["term"], c["mean"], c.get("sd"), c["lower"], c["upper"],
+            rows.append((c["term"], c["estimate"], c.get("sd"), c["lower"], c["upper"],
                          f"   true {_fmt(tv, c.get('sd'))}" if tv is not None else ""))
         for q in m.get("scale", []):
             # a model without unit effects has a residual SD that mixes both levels: no
             # true value to show
             tv = ((results.get("truth") or {}).get(q["name"])
                   if known and _has_unit_level(m["name"]) else None)
-            rows.append((q["name"], q["mean"], q.get("sd"), q["lower"], q["upper"],
+            rows.append((q["name"], q["estimate"], q.get("sd"), q["lower"], q["upper"],
                          f"   true {_fmt(tv, q.get('sd'))}" if tv is not None else ""))
         _print_terms(rows)
         ame = m.get("average_marginal_effects") or []

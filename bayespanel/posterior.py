@@ -413,13 +413,15 @@ class Posterior:
     def to_record(self, prob: float = DEFAULT_INTERVAL) -> dict:
         """This posterior's part of its model entry in ``results.json`` (``models[]`` in
         docs/results-schema.md): ``coefficients`` (one record per term of
-        :meth:`summary`: mean, SD, interval, R-hat, bulk and tail ESS), ``scale`` (the
+        :meth:`summary`: the posterior mean as ``estimate``, as in :meth:`table`, SD,
+        interval, R-hat, bulk and tail ESS), ``scale`` (the
         other parameters of :meth:`summary`, e.g. ``sigma_unit``, ``sigma_obs``, ``icc``,
         without the tail ESS) and ``diagnostics`` (:meth:`diagnostics` without warnings).
         Non-finite numbers are ``None``."""
         summ = self.summary(prob)
-        summ = summ.rename(columns=dict(zip(summ.columns[2:4], ("lower", "upper"))))
-        cols = ("mean", "sd", "lower", "upper", "rhat", "ess_bulk")
+        summ = summ.rename(columns={"mean": "estimate",
+                                    **dict(zip(summ.columns[2:4], ("lower", "upper")))})
+        cols = ("estimate", "sd", "lower", "upper", "rhat", "ess_bulk")
         diag = self.diagnostics(warn=False)
         return {
             "coefficients": term_records(summ.loc[self.labels], cols + ("ess_tail",)),

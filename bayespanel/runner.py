@@ -1098,7 +1098,7 @@ def _loo_entry(post, level, design=None, settings=None):
                 lr = post.loo(level)
     except BayespanelError as exc:
         return None, {"level": level, "elpd": None, "se": None, "p_loo": None,
-                      "n_high_k": None, "max_k": None, "warning": str(exc)}
+                      "n_high_pareto_k": None, "max_k": None, "warning": str(exc)}
     entry = lr.to_record()
     if large:
         entry["observations"] = _loo_observations(settings, design)

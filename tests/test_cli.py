@@ -98,12 +98,12 @@ def test_bayesian_fit_writes_a_posterior_that_reloads(wage_csv, wage_panel, tmp_
     post = Posterior.load(tmp_path / m["posterior_file"])
     summ = post.summary(res["settings"]["interval"])
     for c in m["coefficients"]:
-        assert summ.at[c["term"], "mean"] == c["mean"]  # saved draws give the same numbers
+        assert summ.at[c["term"], "mean"] == c["estimate"]  # saved draws give the same numbers
     y, exog = _lm_data(wage_panel)
     fe = PanelOLS(y, exog[["exper", "union", "married"]], entity_effects=True).fit()
     c = {x["term"]: x for x in m["coefficients"]}["union"]
     # outside check: linearmodels PanelOLS; flat-ish priors put the posterior on it
-    assert abs(c["mean"] - fe.params["union"]) < 4 * c["sd"]
+    assert abs(c["estimate"] - fe.params["union"]) < 4 * c["sd"]
 
 
 @pytest.mark.parametrize("argv, needle", [

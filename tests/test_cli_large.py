@@ -130,7 +130,7 @@ def test_posterior_means_agree_within_monte_carlo_error(runs):
                 # Monte Carlo SE of each mean: sd / sqrt(ESS); 4 joint SEs
                 mcse = np.hypot(cm[t]["sd"] / np.sqrt(cm[t]["ess_bulk"]),
                                 cl[t]["sd"] / np.sqrt(cl[t]["ess_bulk"]))
-                assert abs(cl[t]["mean"] - cm[t]["mean"]) < 4 * mcse, (mm["name"], t)
+                assert abs(cl[t]["estimate"] - cm[t]["estimate"]) < 4 * mcse, (mm["name"], t)
         # the plug-in variance partition of the reference fit: from the statistics out of
         # core, from the rows in memory (two independent computations)
         vm, vl = _by(mm["variance_partition"]["summary"], "quantity"), \

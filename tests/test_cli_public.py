@@ -145,7 +145,7 @@ def test_specification_tests_that_do_not_apply_are_skipped(wage_csv, tmp_path):
     fe = PanelOLS(w["lwage"], pd.DataFrame({"t": x}, index=w.index), entity_effects=True).fit()
     slope = res["models"][0]["coefficients"][1]
     assert slope["term"] == "I(year - 1980)"
-    assert abs(slope["mean"] - fe.params["t"]) < 4 * slope["sd"]
+    assert abs(slope["estimate"] - fe.params["t"]) < 4 * slope["sd"]
 
 
 def test_transformed_outcome_from_the_command_line_and_the_analysis_file(munnell_csv,
@@ -182,4 +182,4 @@ def test_transformed_outcome_from_the_command_line_and_the_analysis_file(munnell
     for c in res["models"][0]["coefficients"]:
         name = {"log(pcap)": "pcap", "log(pc)": "pc", "log(emp)": "emp"}.get(c["term"])
         if name:
-            assert abs(c["mean"] - re.params[name]) < 4 * c["sd"], c
+            assert abs(c["estimate"] - re.params[name]) < 4 * c["sd"], c

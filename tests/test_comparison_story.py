@@ -184,7 +184,7 @@ def test_refit_high_k_from_the_command_line(grunfeld_csv, grunfeld, tmp_path):
                      "--draws", 300, "--tune", 300, "--chains", 2, "--quiet", "--out", out)
     res = json.loads((out / "results.json").read_text("utf-8"))
     loo = res["models"][0]["loo"]
-    assert loo["n_refits"] >= 1 and loo["n_high_k"] == 0
+    assert loo["n_refits"] >= 1 and loo["n_high_pareto_k"] == 0
     # No Pareto-k problem is left; with 2 x 300 draws on 10 firms an R-hat of 1.01-1.02
     # in a chain (of the fit or of a refit) may be listed, and is not what this checks.
     assert not [p for p in res["problems"] if "Pareto" in p["text"]], res["problems"]

@@ -143,7 +143,7 @@ def test_problems_are_flagged_in_results_json(flawed_run):
     assert d["divergences"] == N_DIVERGENT
     assert f"{N_DIVERGENT} divergent transition(s)" in text
     assert "R-hat above 1.01" in text and "ESS below" in text
-    assert m["loo"]["n_high_k"] > 0  # Grunfeld's largest firms at the occasion level
+    assert m["loo"]["n_high_pareto_k"] > 0  # Grunfeld's largest firms at the occasion level
     # outside check: arviz-stats' R-hat and ESS of the saved draws are the numbers written
     post = Posterior.load(out / m["posterior_file"])
     coef = post.draws("coef")
@@ -174,7 +174,7 @@ def test_strict_mode_fails_the_run_and_still_writes(flawed_run):
     res = json.loads((out / "results.json").read_text("utf-8"))
     assert _strict_exit(res, strict=False) == 0  # without --strict: reported, exit 0
     clean = {**res, "models": [{**m, "diagnostics": {**m["diagnostics"], "warnings": []},
-                                "loo": {**m["loo"], "n_high_k": 0}} for m in res["models"]]}
+                                "loo": {**m["loo"], "n_high_pareto_k": 0}} for m in res["models"]]}
     assert _strict_exit(clean, strict=True) == EXIT_SAMPLING  # the stored list counts
     clean.pop("problems")  # an older results file: the list is computed the same way
     assert _strict_exit(clean, strict=True) == 0
@@ -243,4 +243,4 @@ def test_a_killed_fit_leaves_earlier_outputs(flawed_run, grunfeld_csv):
     assert proc.returncode == -9
     assert _snapshot(out) == before
     assert np.isfinite(json.loads(before["results.json"])["models"][0]["coefficients"][0]
-                       ["mean"])
+                       ["estimate"])

@@ -23,9 +23,9 @@ def test_the_comparison_finds_a_changed_reference_number_a_label_and_a_lost_entr
 def test_bayesian_means_move_by_half_an_sd_at_most_unless_strict():
     kept = json.loads(KEPT.read_text("utf-8"))
     new = copy.deepcopy(kept)
-    row = next(c for c in new["models"][1]["coefficients"] if "sd" in c and "mean" in c)
-    row["mean"] += 0.2 * row["sd"]
+    row = next(c for c in new["models"][1]["coefficients"] if "sd" in c and "estimate" in c)
+    row["estimate"] += 0.2 * row["sd"]
     assert compare(new, kept, strict=False) == []
     assert compare(new, kept, strict=True) != []
-    row["mean"] += 0.4 * row["sd"]
+    row["estimate"] += 0.4 * row["sd"]
     assert compare(new, kept, strict=False) != []

@@ -101,8 +101,8 @@ def test_bayesian_estimates_agree_with_linearmodels_within(folder):
     c = {x["term"]: x for x in wb["coefficients"]}["staffing (within)"]
     # outside check: with weak priors the within part's posterior centres on the
     # fixed-effects estimate (linearmodels), within four posterior SDs
-    assert abs(c["mean"] - fe.params["staffing"]) < 4 * c["sd"]
-    assert c["lower"] < c["mean"] < c["upper"]
+    assert abs(c["estimate"] - fe.params["staffing"]) < 4 * c["sd"]
+    assert c["lower"] < c["estimate"] < c["upper"]
     vp = wb["variance_partition"]
     icc = {q["quantity"]: q for q in vp["summary"]}["ICC"]
     assert 0 < icc["lower"] < icc["median"] < icc["upper"] < 1

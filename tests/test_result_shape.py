@@ -149,8 +149,35 @@ def test_records_are_what_results_json_holds(fits, linearmodels_re):
         tab = post.table(0.9)
         assert [c["term"] for c in rec["coefficients"]] == post.labels
         for c in rec["coefficients"]:
-            assert c["mean"] == tab.at[c["term"], "estimate"]
+            assert c["estimate"] == tab.at[c["term"], "estimate"]
             assert c["lower"] == tab.at[c["term"], "lower"]
         names = [q["name"] for q in rec["scale"]]
         assert "icc" in names and "sigma_unit" in names
         assert rec["diagnostics"]["draws"] == 400
+
+
+def test_older_results_files_are_read_with_todays_keys(tmp_path):
+    """A 1.1 results.json (keys before one name per quantity) loads with the 1.2 keys and
+    passes the schema (jsonschema); today's file loads unchanged."""
+    import copy
+    import json
+    from pathlib import Path
+
+    from bayespanel.report.results_json import SCHEMA_VERSION, load_results
+
+    kept = json.loads((Path(__file__).parent / "golden" / "demo_results.json").read_text())
+    assert kept["schema_version"] == SCHEMA_VERSION == "1.2.0"
+    old = copy.deepcopy(kept)
+    old["schema_version"] = "1.1.0"
+    for m in old["models"]:
+        for rec in m["coefficients"] + m["scale"]:
+            rec["mean"] = rec.pop("estimate")
+        m["loo"]["n_high_k"] = m["loo"].pop("n_high_pareto_k")
+    (tmp_path / "results.json").write_text(json.dumps(old), "utf-8")
+    got = load_results(tmp_path)
+    assert got["schema_version"] == "1.1.0"  # as written
+    for m, k in zip(got["models"], kept["models"]):
+        assert m["coefficients"] == k["coefficients"] and m["scale"] == k["scale"]
+        assert m["loo"] == k["loo"]
+    (tmp_path / "results.json").write_text(json.dumps(kept), "utf-8")
+    assert load_results(tmp_path) == kept

@@ -93,12 +93,12 @@ class LOOResult:
     def to_record(self) -> dict:
         """The ``loo`` record of a model in ``results.json`` (docs/results-schema.md):
         level, ELPD, SE, p_loo, method, points, the notes as ``warning``; with Pareto k the
-        threshold ``good_k``, ``max_k``, ``n_high_k`` (points above the threshold not
+        threshold ``good_k``, ``max_k``, ``n_high_pareto_k`` (points above the threshold not
         replaced by refits) and, after refits, ``n_refits``; sub-sampled, its
         ``subsampling_se``. Non-finite numbers are ``None``."""
         pw = self.pointwise
         rec = {"level": self.level, "elpd": self.elpd, "se": self.se, "p_loo": self.p_loo,
-               "n_high_k": None, "max_k": None, "warning": "; ".join(self.notes) or None,
+               "n_high_pareto_k": None, "max_k": None, "warning": "; ".join(self.notes) or None,
                "method": self.method, "n_points": self.n_points}
         if self.subsampling_se is not None:
             rec["subsampling_se"] = self.subsampling_se
@@ -108,7 +108,7 @@ class LOOResult:
             high = self.high_k
             rec["max_k"] = float(np.nanmax(k)) if np.isfinite(k).any() else None
             rec["good_k"] = good
-            rec["n_high_k"] = int(len(high))
+            rec["n_high_pareto_k"] = int(len(high))
             if "refit" in pw:
                 rec["n_refits"] = int(pw["refit"].sum())
             if len(high) and not rec["warning"]:

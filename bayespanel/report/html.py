@@ -453,8 +453,8 @@ def _diagnostics(r) -> Safe:
             num.count(d.get("divergences")), num.rhat(d.get("max_rhat")),
             num.count(d.get("min_ess_bulk")), num.count(d.get("min_ess_tail")),
             num.bfmi(d.get("min_bfmi")), num.pareto_k(loo.get("max_k")),
-            num.count(loo.get("n_high_k"))),
-            _status(not d.get("warnings") and not loo.get("n_high_k"))])
+            num.count(loo.get("n_high_pareto_k"))),
+            _status(not d.get("warnings") and not loo.get("n_high_pareto_k"))])
     out = [tag("p", "Thresholds (common practice): R-hat at most 1.01, bulk and tail ESS at "
                "least 100 per chain, no divergent transitions, energy BFMI at least 0.3, "
                "Pareto k at most 0.7.", cls="bp-lead"),
@@ -466,7 +466,7 @@ def _diagnostics(r) -> Safe:
                         f"{p['title']} ({p['kind']}):"))
     for m in r["models"]:
         loo = m.get("loo") or {}
-        if loo.get("warning") and not loo.get("n_high_k"):
+        if loo.get("warning") and not loo.get("n_high_pareto_k"):
             out.append(note("info", loo["warning"], f"{m['title']} (LOO):"))
     return join(out)
 

@@ -26,7 +26,7 @@ REFIT_OPTION = "--refit-high-k"
 
 
 def _high_k_text(loo) -> str:
-    n, pts = loo.get("n_high_k"), loo.get("n_points")
+    n, pts = loo.get("n_high_pareto_k"), loo.get("n_points")
     good = loo.get("good_k")
     good = 0.7 if good is None else good
     of = f" of {pts}" if pts else ""
@@ -62,7 +62,7 @@ def problems(results: dict) -> list[dict]:
     for m in results.get("models", []):
         who = {"model": m["name"], "title": m.get("title", m["name"])}
         loo = m.get("loo") or {}
-        if loo.get("n_high_k"):
+        if loo.get("n_high_pareto_k"):
             out.append({"kind": "comparison", **who, "text": _high_k_text(loo)})
         for w in loo.get("refit_warnings") or []:
             out.append({"kind": "comparison", **who,

@@ -19,11 +19,16 @@ from ..outputs import write_atomic
 
 __all__ = [
     "SCHEMA_NAME", "SCHEMA_VERSION", "jsonable", "dumps", "write_atomic", "write_json",
-    "load_results", "schema", "validate",
+    "load_results", "schema", "validate", "upgrade", "RENAMED",
 ]
 
 SCHEMA_NAME = "bayespanel-results"
-SCHEMA_VERSION = "1.1.0"
+SCHEMA_VERSION = "1.2.0"
+
+#: keys renamed by a minor version (1.2: one key per quantity), as (path, old, new) where
+#: path reaches the records under ``models[]`` that hold the key
+RENAMED = {(1, 2): ((("coefficients",), "mean", "estimate"), (("scale",), "mean", "estimate"),
+                    (("loo",), "n_high_k", "n_high_pareto_k"))}
 
 
 def dumps(results: dict) -> str:
@@ -110,5 +115,27 @@ def load_results(path) -> dict:
                                  "results file") from None
     except OSError as exc:
         raise SpecificationError(f"cannot read {str(path)!r}: {exc.strerror or exc}") from None
-    validate(data)
+    validate(upgrade(data))
+    return data
+
+
+def upgrade(data: dict) -> dict:
+    """A results file of an older 1.y version with the keys :data:`RENAMED` since (in
+    place; returned; its ``schema_version`` stays as written). Files of this version, and anything that is not a 1.y results file,
+    are returned as they are (:func:`validate` then says what is wrong)."""
+    try:
+        major, minor = (int(x) for x in str(data.get("schema_version")).split(".")[:2])
+    except (ValueError, AttributeError):
+        return data
+    if major != int(SCHEMA_VERSION.split(".")[0]):
+        return data
+    for (_, since), renames in sorted(RENAMED.items()):
+        if minor >= since:
+            continue
+        for model in data.get("models") or []:
+            for (where,), old, new in renames:
+                part = model.get(where) if isinstance(model, dict) else None
+                for rec in part if isinstance(part, list) else [part]:
+                    if isinstance(rec, dict) and old in rec and new not in rec:
+                        rec[new] = rec.pop(old)
     return data

@@ -50,7 +50,7 @@ def coefficient_grid(results: dict):
 
     for m in results.get("models", []):
         cols.append({"key": m["name"], "title": m["title"], "kind": "bayesian",
-                     "cells": {c["term"]: {"estimate": c["mean"], "lower": c["lower"],
+                     "cells": {c["term"]: {"estimate": c["estimate"], "lower": c["lower"],
                                            "upper": c["upper"], "sd": c.get("sd")}
                                for c in m["coefficients"]}})
         cp = m.get("reference_counterpart")

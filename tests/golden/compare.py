@@ -82,7 +82,7 @@ def compare(new: dict, kept: dict, strict: bool | None = None) -> list[str]:
         if p[0] in EXACT_SECTIONS or strict:
             if not close:
                 out.append(f"{where}: {x!r} != {y!r}")
-        elif p[0] == "models" and p[-1] == "mean" and p[:-1] in sds:
+        elif p[0] == "models" and p[-1] in ("mean", "estimate") and p[:-1] in sds:
             if abs(x - y) > 0.5 * sds[p[:-1]] + 1e-12:
                 out.append(f"{where}: mean {x!r} is more than half an SD "
                            f"({sds[p[:-1]]!r}) from {y!r}")
