@@ -297,19 +297,8 @@ def _ame_stage(post, name, settings, ref_fits, prob):
 
 def _partition_stage(post, design, kind, prob, settings):
     """The variance partition on the latent scale (outcome scale for identity links)."""
-    from . import partition as part
-
     fam = _family(settings)
-    tau = post.flat_draws("sigma_unit")
-    params = {k: post.flat_draws(k) for k in fam.params}
-    intercept = post.latent_intercept_draws() if fam.link == "log" else None
-    s2 = fam_mod.latent_residual_variance(fam, params, intercept=intercept, tau=tau)
-    sigma = np.sqrt(np.broadcast_to(s2, tau.shape).astype(float))
-    M, _, codes = post.rows
-    X, terms, tv = part.design_columns(M, codes, post.labels, kind)
-    d = part.partition_draws(X, codes, terms, tv, kind, post.labels, post.coef_draws(),
-                             sigma, tau)
-    rec = part.PartitionResult(d, kind).to_record(prob)
+    rec = post.variance_partition().to_record(prob)  # on the latent scale
     scale = SCALE_TEXT[fam.link]
     if settings.random_slopes:
         scale += ("; with random slopes the unit SD and the ICC are those of the unit "

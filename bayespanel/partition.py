@@ -42,9 +42,8 @@ import pandas as pd
 from . import kinds
 from .design import group_means
 from .errors import SpecificationError, choices_error
-from .jsonsafe import json_record
 from .mathcore import partition_quantities, unit_sd_draws
-from .resultshape import DEFAULT_INTERVAL, check_prob, term_records
+from .resultshape import PartitionResult, summarise_draws  # noqa: F401 (public here)
 from .terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
 
 __all__ = ["PartitionResult", "coefficient_parts", "partition_draws", "partition_from_stats",
@@ -252,83 +251,6 @@ def partition_from_stats(stats, terms, time_varying, kind, labels, coef, sigma,
     return partition_quantities(g_w, g_b, phi_w, phi_b, sigma, tau, stats.lengths)
 
 
-def summarise_draws(draws: dict, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
-    """Mean, median, SD and the central (equal-tailed) interval of each quantity."""
-    prob = check_prob(prob)
-    lo, hi = (1 - prob) / 2, (1 + prob) / 2
-    rows = {}
-    for name, x in draws.items():
-        x = np.asarray(x, dtype=float).ravel()
-        if not np.all(np.isfinite(x)):
-            rows[name] = [np.nan] * 5
-            continue
-        rows[name] = [x.mean(), np.median(x), x.std(ddof=1) if x.size > 1 else 0.0,
-                      np.quantile(x, lo), np.quantile(x, hi)]
-    out = pd.DataFrame.from_dict(rows, orient="index",
-                                 columns=["mean", "median", "sd", "lower", "upper"])
-    out.index.name = "quantity"
-    out.attrs["prob"] = prob
-    return out
-
-
-# ---------------------------------------------------------------------------- labelled skin
-class PartitionResult:
-    """The variance partition of one fit: per-draw values and their summary.
-
-    Attributes
-    ----------
-    draws : pandas.DataFrame
-        One row per posterior draw (chains stacked), one column per quantity.
-    reference : pandas.Series or None
-        The same quantities, plug-in, from a frequentist reference fit.
-    kind : str
-    """
-
-    def __init__(self, draws: dict, kind: str, reference: dict | None = None,
-                 reference_name: str | None = None):
-        self.draws = pd.DataFrame(draws)
-        self.kind = kind
-        self.reference = None if reference is None else pd.Series(
-            {k: float(np.asarray(v).ravel()[0]) for k, v in reference.items()}, name="reference")
-        self.reference_name = reference_name
-
-    def table(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
-        """Summary per quantity (mean, median, SD, interval) with the reference beside it."""
-        out = summarise_draws({c: self.draws[c].to_numpy() for c in self.draws}, prob)
-        if self.reference is not None:
-            out["reference"] = self.reference.reindex(out.index).to_numpy()
-            out.attrs["reference"] = self.reference_name
-        out.attrs["kind"] = self.kind
-        return out
-
-    def to_record(self, prob: float = DEFAULT_INTERVAL) -> dict:
-        """The ``variance_partition`` record of a model in ``results.json``
-        (docs/results-schema.md): ``summary`` (unit SD, occasion SD, ICC: mean, median,
-        SD, interval and the reference's plug-in value), ``theta`` (per panel length),
-        ``explained`` (the Rights-Sterba shares of the total, within and between
-        variance) and ``icc_draws`` (at most about 1,000 evenly thinned finite draws).
-        Non-finite numbers are ``None``."""
-        tab = self.table(prob)
-        if "reference" not in tab:
-            tab["reference"] = np.nan
-        summary = term_records(tab.loc[["unit SD", "occasion SD", "ICC"]],
-                               ("mean", "median", "sd", "lower", "upper", "reference"),
-                               key="quantity")
-        theta = [json_record({"length": int(q.split("=")[1].rstrip(")")),
-                               "mean": tab.at[q, "mean"], "lower": tab.at[q, "lower"],
-                               "upper": tab.at[q, "upper"]})
-                 for q in tab.index if q.startswith("theta (T=")]
-        explained = [json_record({"part": p, **{
-            lev: tab.at[f"{lev}: {p}", "mean"] if f"{lev}: {p}" in tab.index else None
-            for lev in ("total", "within", "between")}})
-            for p in ("within part", "between part", "unit intercepts", "occasion residual")]
-        icc = self.draws["ICC"].to_numpy(dtype=float)
-        icc = icc[::max(1, int(np.ceil(len(icc) / 1000)))]
-        return {"summary": summary, "theta": theta, "explained": explained,
-                "icc_draws": [float(v) for v in icc if np.isfinite(v)]}
-
-    def __repr__(self) -> str:
-        return f"<PartitionResult {self.kind}, {len(self.draws)} draws>\n{self.table()}"
 
 
 def reference_partition(ref) -> dict:

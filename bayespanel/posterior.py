@@ -670,9 +670,7 @@ class Posterior:
         """
         from .partition import design_partition, variance_partition
 
-        sigma = self._flat("sigma_obs")
-        tau = unit_sd_draws(self.spec.unit_effects, self._flat("sigma_unit")
-                            if self.spec.unit_effects == "random" else None, sigma.shape)
+        tau, sigma = self._partition_scale()
         args = (self.spec.kind, self.labels, self._flat("coef"), sigma, tau)
         if self.rows is not None:
             out = variance_partition(self.rows[0], self.rows[2], *args, reference=reference)
@@ -684,6 +682,14 @@ class Posterior:
         if self.spec.errors == "ar1":
             out = _with_serial_correlation(out, sigma, tau, self._flat("rho"))
         return out
+
+    def _partition_scale(self):
+        """``(tau, sigma)``: draws of the unit SD (0 for pooled, None for fixed effects)
+        and of the occasion-level SD the variance partition divides."""
+        sigma = self._flat("sigma_obs")
+        tau = unit_sd_draws(self.spec.unit_effects, self._flat("sigma_unit")
+                            if self.spec.unit_effects == "random" else None, sigma.shape)
+        return tau, sigma
 
     def contrasts(self, rope=None, prob: float = DEFAULT_INTERVAL, reference=None,
                   tests: bool = True):

@@ -37,10 +37,13 @@ LAYERS: list[tuple[str, tuple[str, ...]]] = [
     # them, the densities, shared mathematics, linear algebra, text safe to print and draw,
     # budgets and the output folder: numpy and scipy at most, nothing of the package above
     ("core", ("errors", "terms", "suffstats", "derived", "models.gaussian", "ar1",
-              "mathcore", "jsonsafe", "safetext", "reference.linalg", "resultshape",
-              "budget", "outputs", "version")),
+              "mathcore", "jsonsafe", "safetext", "reference.linalg", "budget",
+              "outputs", "version")),
     ("kinds", ("kinds",)),  # the registry of model kinds (reads its builders by name)
-    ("data", ("panel", "columns", "formula", "io", "design", "engines", "datasets")),
+    # (resultshape: the names every result answers with and the partition result type,
+    # which reference fits and posteriors both return; it needs pandas)
+    ("data", ("panel", "columns", "formula", "io", "design", "engines", "datasets",
+              "resultshape")),
     ("reference", ("reference",)),
     ("bayes", ("models", "posterior")),
     ("analysis", ("partition", "contrasts", "loo", "comparison", "sensitivity", "recovery",

@@ -111,7 +111,7 @@ def test_mundlak_and_within_between_partitions_coincide_on_wage_panel(wage):
                            np.ones(1), np.ones(1), reference=wb).reference
     pd.testing.assert_series_equal(a, b, rtol=1e-6)
     # the plug-in ICC and quasi-demeaning share agree with the reference module's own
-    own = wb.variance_partition()["estimate"]
+    own = wb.variance_partition().estimates
     assert b["ICC"] == pytest.approx(own["ICC"], rel=1e-10)
     assert b["theta (T=8)"] == pytest.approx(own["theta (T=8)"], rel=1e-10)
     for names in SHARE_GROUPS.values():

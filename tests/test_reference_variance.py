@@ -40,7 +40,7 @@ def test_icc_one_way_equals_shrout_fleiss(ratings_panel):
     icc11 = (bms - wms) / (bms + (k - 1) * wms)
     assert res.icc == pytest.approx(icc11, rel=1e-12)
     assert round(res.icc, 2) == 0.17
-    vp = res.variance_partition()
+    vp = res.variance_partition().table()
     assert vp.loc["ICC", "estimate"] == pytest.approx(icc11)
     assert vp.loc["occasion SD", "estimate"] == pytest.approx(np.sqrt(wms))
 
@@ -52,7 +52,9 @@ def test_variance_partition_theta_per_panel_length(grunfeld):
     df = df[~((df.firm == "Chrysler") & (df.year < 1940))]
     res = bp.reference.random(bp.Panel(df, unit="firm", time="year"),
                               "invest ~ value + capital")
-    vp = res.variance_partition()
+    part = res.variance_partition()
+    assert isinstance(part, bp.partition.PartitionResult)  # the type posteriors return
+    vp = part.table()
     rows = [r for r in vp.index if r.startswith("theta")]
     assert rows == ["theta (T=15)", "theta (T=20)"]
     s2u, s2e = res.sigma_unit ** 2, res.sigma_obs ** 2

@@ -370,7 +370,7 @@ def test_fixed_effects_describe_their_intercepts_by_a_share(grunfeld):
     text = fe.summary()
     assert "ICC" not in text and "unit SD" not in text
     assert "unit intercepts account for" in text
-    assert list(fe.variance_partition().index) == [
+    assert list(fe.variance_partition().table().index) == [
         "occasion SD", "share of outcome variance in unit intercepts"]
 
 

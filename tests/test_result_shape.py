@@ -83,6 +83,15 @@ def test_same_names_and_types(fits, which, linearmodels_re):
     # linearmodels counts the same rows and units
     assert fit.n_obs == int(linearmodels_re.nobs) == 200
     assert fit.n_units == int(linearmodels_re.entity_info["total"]) == 10
+    # variance_partition(): one type; its ICC is the fit's icc (posteriors: per draw, the
+    # latent model's on the latent scale)
+    part = fit.variance_partition()
+    assert isinstance(part, resultshape.PartitionResult)
+    assert part.estimates["ICC"] == pytest.approx(fit.icc, rel=1e-9, abs=1e-12)
+    assert {"unit SD", "occasion SD", "ICC"} <= set(part.table().index)
+    if which != "reference":
+        np.testing.assert_allclose(part.draws["ICC"], fit.draws("icc").ravel(), rtol=1e-9,
+                                   atol=1e-12)
 
 
 def test_reference_numbers_match_linearmodels(fits, linearmodels_re):

@@ -684,6 +684,18 @@ class LatentPosterior(_posterior_cls()):
         self.idata["posterior"] = ds.assign(icc=(("chain", "draw"), icc))
         self._cache.clear()
 
+    def _partition_scale(self):
+        """The unit SD and the occasion-level SD on the latent scale (the outcome scale
+        for identity links; :func:`~bayespanel.models.families.latent_residual_variance`),
+        so that :meth:`variance_partition` is the partition on that scale, with random
+        slopes that of the unit intercepts at the covariate means."""
+        fam = fam_mod.get_family(self.family)
+        tau = self.flat_draws("sigma_unit")
+        intercept = self.latent_intercept_draws() if fam.link == "log" else None
+        s2 = fam_mod.latent_residual_variance(fam, self._family_params(), intercept=intercept,
+                                              tau=tau)
+        return tau, np.sqrt(np.broadcast_to(s2, tau.shape).astype(float))
+
     def unit_L(self, max_draws=None) -> np.ndarray:
         """Lower Cholesky factor of the unit-effect covariance per draw, ``(S, q, q)``,
         on the data scale (effects on ``[1, x - c]``)."""

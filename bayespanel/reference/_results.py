@@ -9,7 +9,7 @@ from scipy import stats
 from .. import kinds
 from ..mathcore import intraclass_correlation
 from ..jsonsafe import jsonable
-from ..resultshape import DEFAULT_INTERVAL, check_prob, term_records
+from ..resultshape import DEFAULT_INTERVAL, PartitionResult, check_prob, term_records
 
 __all__ = ["ReferenceResult"]
 
@@ -255,25 +255,30 @@ class ReferenceResult:
         return float(intraclass_correlation(self._s2u, self._s2e)) \
             if np.isfinite(tot) and tot > 0 else float("nan")
 
-    def variance_partition(self) -> pd.DataFrame:
-        """Unit SD, occasion SD, ICC and the GLS quasi-demeaning share per panel length.
+    def variance_partition(self) -> PartitionResult:
+        """Unit SD, occasion SD, ICC and the GLS quasi-demeaning share per panel length,
+        as a :class:`~bayespanel.resultshape.PartitionResult` (the type a posterior's
+        ``variance_partition()`` returns) holding this fit's estimates.
 
-        Returns a DataFrame indexed by quantity (``"unit SD"``, ``"occasion SD"``,
+        Its ``table()`` is indexed by quantity (``"unit SD"``, ``"occasion SD"``,
         ``"ICC"``, then ``"theta (T=...)"`` for each distinct panel length of a
-        random-intercept fit) with columns ``estimate`` and ``units`` (the number of
-        units with that panel length, for the theta rows).
+        random-intercept fit; fixed effects: the occasion SD and the share of outcome
+        variance in the unit intercepts) with columns ``estimate`` and ``units`` (the
+        number of units with that panel length, for the theta rows). The Rights-Sterba
+        shares of a reference fit sit beside a posterior's, in
+        ``post.variance_partition(reference=fit)``.
         """
-        rows = [("unit SD", self.sigma_unit, np.nan), ("occasion SD", self.sigma_obs, np.nan),
-                ("ICC", self.icc, np.nan)]
+        values = {"unit SD": self.sigma_unit, "occasion SD": self.sigma_obs, "ICC": self.icc}
         if self.estimator == "within":
-            rows = [rows[1], ("share of outcome variance in unit intercepts",
-                              self.unit_intercept_share, np.nan)]
+            values = {"occasion SD": self.sigma_obs,
+                      "share of outcome variance in unit intercepts":
+                          self.unit_intercept_share}
+        units = {}
         if self.theta_by_length is not None:
             for T, th, c in zip(self.lengths, self.theta_by_length, self.group_count):
-                rows.append((f"theta (T={int(T)})", float(th), float(c)))
-        out = pd.DataFrame(rows, columns=["quantity", "estimate", "units"]).set_index("quantity")
-        out.attrs.update(estimator=self.estimator, method=self.method)
-        return out
+                values[f"theta (T={int(T)})"] = float(th)
+                units[f"theta (T={int(T)})"] = float(c)
+        return PartitionResult.from_estimates(values, self.estimator, units)
 
     # ------------------------------------------------------------------ refits
     def refit(self, rows, cov: str | None = None) -> "ReferenceResult":
