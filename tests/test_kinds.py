@@ -177,7 +177,7 @@ def test_a_registered_kind_runs_through_the_command_line_json_and_report(wide_ru
     # outside check: statsmodels OLS on the same rows (the pooled reference fit agrees)
     ols = smf.ols(FORMULA, grunfeld).fit()
     for c in entry["coefficients"]:
-        assert abs(c["mean"] - ols.params[c["term"]]) < 0.25 * c["sd"], c["term"]
+        assert abs(c["estimate"] - ols.params[c["term"]]) < 0.25 * c["sd"], c["term"]
     (ref,) = res["reference"]
     for c in ref["coefficients"]:
         assert c["estimate"] == pytest.approx(ols.params[c["term"]], rel=1e-9)
