@@ -32,7 +32,7 @@ def main(out="clinic-report"):
     results = run(settings, df=df, out=out, truth=truth)
     wb = next(m for m in results["models"] if m["name"] == "within_between")
     for c in wb["coefficients"]:
-        print(f"{c['term']:<22} {c['mean']:8.3f}  [{c['lower']:.3f}, {c['upper']:.3f}]")
+        print(f"{c['term']:<22} {c['estimate']:8.3f}  [{c['lower']:.3f}, {c['upper']:.3f}]")
     print(f"report: {out}/report.html")
     return results
 
