@@ -176,8 +176,6 @@ def test_refit_high_k_from_the_command_line(grunfeld_csv, grunfeld, tmp_path):
     from the command line; a brute-force refit, the random intercept sampled anew on the
     panel without that row (same priors, 4 x 1000 draws), gives the same log predictive
     density within Monte Carlo error, and the PSIS value is replaced."""
-    from bayespanel.models import RandomIntercept, gaussian
-
     out = tmp_path / "refit"
     stdout, _ = _cli("fit", grunfeld_csv, "--unit", "firm", "--time", "year", "--formula", F,
                      "--models", "random_intercept", "--reference", "none", "--refit-high-k",
@@ -197,11 +195,26 @@ def test_refit_high_k_from_the_command_line(grunfeld_csv, grunfeld, tmp_path):
     pw = psis.pointwise
     j = int(pw["pareto_k"].idxmax())
     assert pw.loc[j, "unit"] == "General Motors" and pw.loc[j, "time"] == 1954
-    assert loo["n_refits"] == int((pw["pareto_k"] > loo["good_k"]).sum())
-    assert loo["n_refits"] == 1  # only that row, so the ELPD moved by its term alone
-    exact_j = loo["elpd"] - (psis.elpd - pw.loc[j, "elpd"])
-    assert exact_j != pytest.approx(pw.loc[j, "elpd"], abs=0.05)  # the PSIS value is gone
-    row = grunfeld[(grunfeld["firm"] == "General Motors") & (grunfeld["year"] == 1954)]
+    high = list(pw.index[pw["pareto_k"] > loo["good_k"]])
+    assert loo["n_refits"] == len(high) >= 1  # which others pass the k bound varies by run
+    # outside check: each refitted row sampled anew without it (brute force); the ELPD
+    # moved by the refitted terms alone, so the shift equals the sum of their changes
+    shift_exact, shift_psis, var = loo["elpd"] - psis.elpd, 0.0, 0.0
+    for i in high:
+        value, mcse = _brute_force_term(grunfeld, pw.loc[i, "unit"], pw.loc[i, "time"], post)
+        shift_psis += value - pw.loc[i, "elpd"]
+        var += mcse ** 2 * (1 + 4000 / 600)  # brute force (4 x 1000) and the CLI's 2 x 300
+    if j in high:
+        assert abs(shift_exact) > 0.05  # the PSIS value of General Motors 1954 is gone
+    assert abs(shift_exact - shift_psis) < 4 * np.sqrt(var)
+
+
+def _brute_force_term(grunfeld, firm, year, post):
+    """log p(y_row | other rows) by sampling the random intercept anew without the row
+    (same priors, 4 x 1000 draws), with its Monte Carlo SE (iid draws)."""
+    from bayespanel.models import RandomIntercept, gaussian
+
+    row = grunfeld[(grunfeld["firm"] == firm) & (grunfeld["year"] == year)]
     rest = grunfeld.drop(index=row.index)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -209,16 +222,13 @@ def test_refit_high_k_from_the_command_line(grunfeld_csv, grunfeld, tmp_path):
                                 priors=post.spec.prior_dict).sample(
             draws=1000, tune=500, chains=4, seed=3, progress=False)
     b, s, t = brute._flat("coef"), brute._flat("sigma_obs"), brute._flat("sigma_unit")
-    unit = rest[rest["firm"] == "General Motors"]
+    unit = rest[rest["firm"] == firm]
     X = np.column_stack([np.ones(len(unit)), unit[["value", "capital"]]])
     R = (unit["invest"].to_numpy()[None] - b @ X.T).sum(axis=1)
     r = row["invest"].iloc[0] - b @ np.r_[1.0, row[["value", "capital"]].iloc[0]]
     ll = gaussian.occasion_logpdf(r, R, float(len(unit)), s, t)
-    value = logsumexp(ll) - np.log(len(ll))
     w = np.exp(ll - ll.max())
-    mcse = w.std() / (np.sqrt(len(w)) * w.mean())  # of the brute-force value (iid draws)
-    mcse_cli = mcse * np.sqrt(len(w) / 600)  # the command line's refit: 2 x 300 draws
-    assert abs(exact_j - value) < 4 * np.hypot(mcse, mcse_cli)
+    return logsumexp(ll) - np.log(len(ll)), w.std() / (np.sqrt(len(w)) * w.mean())
 
 
 def test_reference_fits_are_scored_by_exact_loo_at_every_size(wage_panel, tmp_path):
