@@ -20,6 +20,21 @@ def test_the_comparison_finds_a_changed_reference_number_a_label_and_a_lost_entr
     assert any(d.startswith("missing: models/0/loo") for d in diff)
 
 
+def test_the_closed_form_tolerance_is_the_standard_librarys_isclose():
+    # Outside reference: math.isclose(rel_tol=1e-9, abs_tol=1e-12) from the standard
+    # library decides, for each changed reference estimate, whether compare() reports it.
+    import math
+
+    kept = json.loads(KEPT.read_text("utf-8"))
+    for factor in (1 + 1e-11, 1 + 5e-10, 1 + 2e-9, 1 + 1e-6):
+        new = copy.deepcopy(kept)
+        row = new["reference"][0]["coefficients"][1]
+        old = row["estimate"]
+        row["estimate"] = old * factor
+        expected = not math.isclose(row["estimate"], old, rel_tol=1e-9, abs_tol=1e-12)
+        assert bool(compare(new, kept, strict=False)) == expected, factor
+
+
 def test_bayesian_means_move_by_half_an_sd_at_most_unless_strict():
     kept = json.loads(KEPT.read_text("utf-8"))
     new = copy.deepcopy(kept)

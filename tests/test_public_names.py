@@ -15,6 +15,8 @@ import bayespanel as bp
 
 
 def test_no_exported_function_or_class_shares_its_name_with_a_submodule():
+    # Outside source: the Python Language Reference, "The import system", section 5.4.2
+    # (Submodules): loading a submodule binds it as an attribute of its parent package.
     submodules = {m.name for m in pkgutil.iter_modules(bp.__path__)}
     clashes = [name for name, (_, attr) in bp._LAZY.items()
                if attr is not None and name in submodules]
@@ -22,6 +24,8 @@ def test_no_exported_function_or_class_shares_its_name_with_a_submodule():
 
 
 def test_exported_callables_stay_callable_after_every_submodule_is_imported():
+    # Outside reference: CPython's own import machinery (importlib.import_module) in a
+    # fresh interpreter binds each submodule on the package (Language Reference 5.4.2).
     # In a fresh interpreter: import every submodule first, then use the lazy names.
     code = (
         "import importlib, pkgutil, bayespanel as bp\n"
