@@ -1343,8 +1343,9 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
     _check_prior_keys(settings, labels)
     for name in settings.models:
         if kinds.model(name).columns == "within" and design.time_constant:
-            notes = notes + [f"{name} leaves out {', '.join(map(repr, design.time_constant))}"
-                             ": constant within units, absorbed by the unit intercepts"]
+            left = ", ".join(map(repr, design.time_constant))
+            notes = notes + [f"{kinds.model(name).title} leaves out {left}: constant within "
+                             "units, absorbed by the unit intercepts"]
     posts, entries = {}, []
     for name in settings.models:
         with _isolated(failed, say, name, kinds.model(name).title, "Bayesian fit"):
