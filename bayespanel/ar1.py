@@ -61,7 +61,8 @@ from .errors import PanelDataError, SpecificationError
 __all__ = [
     "occasion_times", "Timeline", "AR1Partial", "AR1Stats", "partial", "merge", "finalize",
     "compute", "loglik", "unit_logdensity", "unit_effect_conditional", "occasion_conditional",
-    "occasion_logdensity", "ERRORS", "refuse_pending",
+    "occasion_logdensity", "holdout_logdensity", "simulate_errors", "data_values",
+    "with_values", "structure", "ERRORS", "refuse_pending",
 ]
 
 #: the error structures of the Gaussian models: independent, or AR(1) within units
@@ -797,3 +798,149 @@ def occasion_logdensity(r, tl: Timeline, rho, sigma, tau):
     mean, sd = occasion_conditional(r, tl, rho, sigma, tau)
     z = (np.asarray(r, dtype=float) - mean) / sd
     return -0.5 * (_LOG_2PI + z ** 2) - np.log(sd)
+
+
+def holdout_logdensity(r, keys, times, test, rho, sigma, tau, column: str = "time"):
+    """``log p(r_t | training rows of its unit)`` of every held-out row, per draw.
+
+    For exact refits and K-fold at the occasion level: each held-out row is scored given
+    the rows of its unit that are *not* held out (several rows of one unit may be held
+    out together; each is scored on its own given the training rows). A subset of the
+    occasions of a continuous-time AR(1) is again one (``rho^a rho^b = rho^(a + b)``), so
+    the conditional is a ratio of two marginals of :func:`unit_logdensity`:
+    ``log p(r_B, r_t) - log p(r_B)`` (``B``: the training rows of the unit), in
+    O(rows) per held-out row of a unit. Fixed effects (``tau=None``): the same ratio of
+    flat-prior integrals, ``nan`` when the unit has no training row.
+
+    Parameters
+    ----------
+    r : array (n,) or (S, n)
+        Residuals of all rows (training and held out), per draw.
+    keys, times : arrays (n,)
+        Unit and occasion of each row.
+    test : bool array (n,)
+    rho, sigma, tau : float or array (S,)
+
+    Returns
+    -------
+    array (points,) or (S, points), the held-out rows in row order.
+    """
+    one = np.ndim(r) == 1
+    r = np.atleast_2d(np.asarray(r, dtype=float))
+    keys, times = np.asarray(keys), occasion_times(times, column)
+    test = np.asarray(test, dtype=bool)
+    fixed = tau is None
+    train = np.flatnonzero(~test)
+    held = np.flatnonzero(test)
+    out = np.empty((r.shape[0], len(held)))
+
+    def marginal(rows):
+        """``{unit key: (S,) log density of these rows}`` (fixed effects: the flat-prior
+        integral itself, without the ``sqrt(T)`` of :func:`unit_logdensity`)."""
+        if len(rows) == 0:
+            return keys[:0], np.zeros((r.shape[0], 1))      # (never indexed as found)
+        tl = Timeline.build(keys[rows], times[rows], column)
+        lp = unit_logdensity(r[:, rows], tl, rho, sigma, tau)
+        lp = np.atleast_2d(lp)
+        if fixed:
+            lp = lp - 0.5 * np.log(tl.T.astype(float))
+        return tl.keys, lp
+
+    base_keys, base = marginal(train)
+    # the j-th held-out row of every unit at once: one Timeline per rank j
+    tl_held = Timeline.build(keys[held], times[held], column)
+    rank = np.arange(len(held)) - tl_held.starts[tl_held.codes]
+    sorted_held = held[tl_held.order]
+    for j in range(int(rank.max()) + 1 if len(held) else 0):
+        pick = sorted_held[rank == j]
+        k_j, joint = marginal(np.concatenate([train, pick]))
+        lp = joint[:, np.searchsorted(k_j, keys[pick])]
+        pos, has = _lookup(base_keys, keys[pick])
+        lp = lp - np.where(has, base[:, pos], 0.0)
+        if fixed:
+            lp = np.where(has, lp, np.nan)
+        out[:, np.searchsorted(held, pick)] = lp
+    return out[0] if one else out
+
+
+def _lookup(sorted_keys, query):
+    """``(positions, found)`` of ``query`` in ``sorted_keys`` (positions clipped to a
+    valid index where not found)."""
+    if len(sorted_keys) == 0:
+        return np.zeros(len(query), dtype=np.int64), np.zeros(len(query), dtype=bool)
+    pos = np.minimum(np.searchsorted(sorted_keys, query), len(sorted_keys) - 1)
+    return pos, sorted_keys[pos] == query
+
+
+def simulate_errors(tl: Timeline, rho, sigma, rng):
+    """Draws of stationary AR(1) errors on the rows of ``tl``, in the row order ``tl`` was
+    built on: a unit's first row ``N(0, sigma^2)``, each later row
+    ``phi e_prev + sigma sqrt(1 - phi^2) z`` with ``phi = rho^gap`` (the exact transition
+    of the continuous-time AR(1) over the gap).
+
+    Parameters
+    ----------
+    tl : Timeline
+    rho, sigma : float or array (S,)
+    rng : numpy Generator
+
+    Returns
+    -------
+    array (S, n) (``S = 1`` for scalar parameters).
+    """
+    _check_rho(rho, tl)
+    rho, sigma = _params(rho), _params(sigma)
+    S = max(np.size(rho), np.size(sigma))
+    z = rng.standard_normal((S, tl.n))
+    phi = np.atleast_2d(np.where(tl.linked, np.power(rho, np.where(tl.linked, tl.gap, 1.0)),
+                                 0.0)) * np.ones((S, 1))
+    e = np.empty((S, tl.n))
+    rank = np.arange(tl.n) - tl.starts[tl.codes]          # position within the unit
+    first = rank == 0
+    e[:, first] = z[:, first]
+    for j in range(1, int(tl.T.max()) if tl.n else 0):
+        at = np.flatnonzero(rank == j)
+        ph = phi[:, at]
+        e[:, at] = ph * e[:, at - 1] + np.sqrt(1.0 - ph ** 2) * z[:, at]
+    e *= sigma
+    back = np.empty_like(tl.order)
+    back[tl.order] = np.arange(tl.n)
+    return e[:, back]
+
+
+# ---------------------------------------------------------------------------- data swap
+_DATA_LEAVES = ("first", "link_start", "link_end", "link_cross")
+
+
+def data_values(arrays: dict) -> dict:
+    """The numbers of :meth:`AR1Stats.arrays` that change with the outcome, by name
+    (``ar1_first``, ``ar1_link_start``, ..., ``ar1_cp_<i>`` per group): what a model may
+    hold as shared data and swap for new data on the same rows (:func:`structure` equal)."""
+    out = {f"ar1_{k}": np.asarray(arrays[k], dtype=float) for k in _DATA_LEAVES}
+    for i, grp in enumerate(arrays["groups"]):
+        out[f"ar1_cp_{i}"] = np.asarray(grp["cp"], dtype=float)
+    return out
+
+
+def with_values(arrays: dict, values: dict) -> dict:
+    """``arrays`` with the entries of :func:`data_values` replaced by ``values`` (for
+    example PyTensor shared variables of the same names)."""
+    out = dict(arrays)
+    for k in _DATA_LEAVES:
+        out[k] = values[f"ar1_{k}"]
+    out["groups"] = [{**grp, "cp": values[f"ar1_cp_{i}"]}
+                     for i, grp in enumerate(arrays["groups"])]
+    return out
+
+
+def structure(arrays: dict) -> tuple:
+    """What the shape of the density's expression depends on (rows, units, gap lengths,
+    link patterns): two sets of statistics with the same structure differ only in
+    :func:`data_values`, so a compiled model can swap one for the other."""
+    def key(a):
+        a = np.asarray(a)
+        return (a.shape, a.tobytes())
+    groups = tuple((key(g["count"]), key(g["T"]), key(g["index"]), key(g["links"]))
+                   for g in arrays["groups"])
+    return (int(arrays["n"]), int(arrays["n_units"]), key(arrays["gaps"]),
+            key(arrays["link_count"]), groups)
