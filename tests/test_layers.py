@@ -47,7 +47,7 @@ LAYERS: list[tuple[str, tuple[str, ...]]] = [
     ("reference", ("reference",)),
     ("bayes", ("models", "posterior")),
     ("analysis", ("partition", "contrasts", "loo", "comparison", "sensitivity", "recovery",
-                  "occasions")),
+                  "occasions", "serialcheck", "narrowcheck")),
     ("report", ("report",)),
     ("app", ("runner", "family_stage", "cli", "__main__", "")),
 ]
