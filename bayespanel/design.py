@@ -156,7 +156,8 @@ class Design:
     has_rows = True
 
     def __init__(self, *, y, X, terms, unit_codes, units, time, rows, outcome, spec,
-                 n_dropped=0, dropped_by_column=None, n_input_rows=None, stats=None):
+                 n_dropped=0, dropped_by_column=None, n_input_rows=None, stats=None,
+                 lags=None):
         self.y = np.ascontiguousarray(y, dtype=float)
         self.X = np.ascontiguousarray(X, dtype=float)
         self.terms = list(terms)
@@ -169,6 +170,9 @@ class Design:
         self.n_dropped = int(n_dropped)
         self.dropped_by_column = dict(dropped_by_column or {})
         self.n_input_rows = int(n_input_rows if n_input_rows is not None else len(self.y))
+        #: the lags of the formula and the rows they left out (bayespanel.lags.LagReport),
+        #: None when the formula has no lag(...)
+        self.lags = lags
         if np.any(self.unit_codes[1:] < self.unit_codes[:-1]):
             raise ValueError("Design rows must be sorted by unit")
         self.T = np.bincount(self.unit_codes, minlength=len(self.units)).astype(np.int64)
@@ -393,7 +397,8 @@ class Design:
         present, new_codes = np.unique(codes, return_inverse=True)
         return Design(y=self.y[rowmask], X=self.X[rowmask], terms=self.terms,
                       unit_codes=new_codes, units=self.units[present], time=self.time[rowmask],
-                      rows=self.rows[rowmask], outcome=self.outcome, spec=self.spec)
+                      rows=self.rows[rowmask], outcome=self.outcome, spec=self.spec,
+                      lags=self.lags)
 
     # ------------------------------------------------------------------ builders
     @classmethod
@@ -410,9 +415,16 @@ class Design:
         """
         from formulaic import Formula
 
+        from .lags import expand
+
         occasion_effects = check_flag("occasion_effects", occasion_effects)
         frame = panel._df
-        screened = screen(formula, panel.columns)
+        lagged = expand(formula, panel)  # lag(x): columns of their own, made on the table
+        if lagged is None:
+            screened = screen(formula, panel.columns)
+        else:
+            frame = lagged.frame
+            screened = screen(lagged.formula, lagged.columns)
         used = [c for c in screened.columns if c not in (panel.unit, panel.time)]
         if set(screened.outcome_columns) & {panel.unit, panel.time}:
             raise FormulaError(
@@ -501,6 +513,8 @@ class Design:
                                    f"{dependency_message(exc)}") from None
             del sub
             terms = [str(c) for c in mm.columns]
+            for lag in ([] if lagged is None else lagged.report.terms):  # log(`lag(x)`)
+                terms = [t.replace(f"`{lag.label}`", lag.label) for t in terms]
             check_terms(terms, formula)
             X = np.empty((n, len(terms) + len(extra)))
             for j, t in enumerate(terms):
@@ -529,7 +543,8 @@ class Design:
         return cls(y=y, X=X, terms=terms, unit_codes=units_codes, units=units,
                    time=time, rows=rows, outcome=screened.outcome,
                    spec=spec, n_dropped=n_dropped, dropped_by_column=dropped_by_column,
-                   n_input_rows=len(frame), stats=stats)
+                   n_input_rows=len(frame), stats=stats,
+                   lags=None if lagged is None else lagged.report)
 
 
 def _check_finite(values, what, frame, panel, idx):

@@ -284,6 +284,11 @@ def screen(formula: str, columns) -> ScreenedFormula:
             if name in ("np", "numpy") and nxt == ".":
                 continue
             if nxt == "(":
+                if name == "lag":  # made a column before screening (bayespanel.lags)
+                    raise FormulaError(
+                        f"lag(...) in formula {formula!r} is only available on a panel "
+                        "whose rows are in memory (bayespanel.Panel): lags are taken "
+                        "within units on the time axis before the formula is read")
                 if name not in ALLOWED_TRANSFORMS:
                     raise FormulaError(
                         f"call to '{name}(...)' is not allowed in a formula; allowed "
