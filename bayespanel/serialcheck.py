@@ -33,7 +33,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .ar1 import Timeline
+from .ar1 import Timeline, simulate_errors
 
 __all__ = ["STATISTIC", "LABEL", "lag1_statistic", "lag1_check"]
 
@@ -70,23 +70,12 @@ def lag1_statistic(R, tl, pairs=None) -> np.ndarray:
 
 def _errors(rng, tl, sigma, rho):
     """Replicated errors (draws x sorted rows): independent with SD ``sigma``, or a
-    stationary AR(1) on the occasions' own time scale, ``corr = rho^gap`` between a unit's
-    consecutive rows."""
+    stationary AR(1) on the occasions' own time scale (:func:`bayespanel.ar1.simulate_errors`,
+    ``corr = rho^gap`` between a unit's consecutive rows)."""
+    if rho is not None:
+        return simulate_errors(tl, rho, sigma, rng)[:, tl.order]
     sigma = np.asarray(sigma, dtype=float)[:, None]
-    Z = rng.standard_normal((sigma.shape[0], tl.n))
-    if rho is None:
-        return sigma * Z
-    rho = np.asarray(rho, dtype=float)[:, None]
-    E = np.empty_like(Z)
-    first = ~tl.linked
-    E[:, first] = Z[:, first]
-    # position of each sorted row within its unit; one vector step per position
-    pos = np.arange(tl.n) - np.repeat(tl.starts, tl.T)
-    for k in range(1, int(tl.T.max()) if tl.n else 1):
-        rows = np.flatnonzero(pos == k)
-        phi = rho ** tl.gap[rows]   # whole gaps allow a negative rho (numpy's power)
-        E[:, rows] = phi * E[:, rows - 1] + np.sqrt(1.0 - phi ** 2) * Z[:, rows]
-    return sigma * E
+    return sigma * rng.standard_normal((sigma.shape[0], tl.n))
 
 
 def lag1_check(M, y, unit_codes, times, coef, sigma, rho=None, *, seed: int = 0,
