@@ -24,6 +24,7 @@ BENCHES = [
     ("bench_scale.py", [], ["--rows", "1000000"]),
     ("bench_memory.py", [], ["--reps", "15,60"]),
     ("bench_speed.py", [], ["--quick"]),
+    ("bench_ar1.py", [], ["--quick"]),
 ]
 
 
