@@ -34,51 +34,31 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from . import kinds
 from .errors import SpecificationError
 from .jsonsafe import json_record
 from .resultshape import DEFAULT_INTERVAL, check_prob
-from .terms import BETWEEN, CONTRAST, UNIT_MEAN, WITHIN, parse, part_label
+from .terms import CONTRAST, UNIT_MEAN, part_label
 
 __all__ = ["ContrastResult", "contrast_draws", "contrast_matrix", "contrast_covariates",
            "contrast_rows",
            "within_between_contrasts", "specification_tests"]
-
-CONTRAST_KINDS = ("within_between", "mundlak")
-
 
 def contrast_matrix(kind: str, labels, time_varying):
     """Linear map ``L`` with ``delta = coef @ L.T`` (one row per time-varying covariate).
 
     Parameters
     ----------
-    kind : {"within_between", "mundlak"}
+    kind : str
+        The model's column map (``"within_between"`` or ``"mundlak"``; the others have no
+        contrast and are refused, naming the models to fit instead). The contrast is the
+        map's :attr:`~bayespanel.kinds.ColumnMap.contrast`.
     labels : list of str
         Coefficient labels of the model.
     time_varying : list of str
         The time-varying covariates (``Design.time_varying``).
     """
-    if kind not in CONTRAST_KINDS:
-        hint = {"random": "it assumes the within and between effects are equal",
-                "pooled": "it assumes the within and between effects are equal",
-                "within": "it estimates no between effect"}.get(kind, "it has no such terms")
-        raise SpecificationError(
-            f"a {kind!r} model has no within/between contrast ({hint}); fit WithinBetween "
-            "or CorrelatedEffects (Mundlak) to estimate it")
-    pos = {lab: j for j, lab in enumerate(labels)}
-    L = np.zeros((len(time_varying), len(labels)))
-    for r, t in enumerate(time_varying):
-        if kind == "within_between":
-            names = (part_label(t, BETWEEN), part_label(t, WITHIN))
-            signs = (1.0, -1.0)
-        else:
-            names, signs = (part_label(t, UNIT_MEAN),), (1.0,)
-        for name, s in zip(names, signs):
-            if name not in pos:
-                raise SpecificationError(
-                    f"the model has no coefficient {name!r}; its terms are "
-                    f"{', '.join(map(repr, labels))}")
-            L[r, pos[name]] = s
-    return L
+    return kinds.column_map(kind).contrast_matrix(labels, time_varying)
 
 
 def contrast_covariates(kind: str, labels) -> list:
@@ -86,12 +66,7 @@ def contrast_covariates(kind: str, labels) -> list:
     ``x`` for every ``"x (between)"`` with a matching ``"x (within)"`` (within-between) or
     every ``"x (unit mean)"`` (Mundlak). Other kinds are refused as in
     :func:`contrast_matrix`."""
-    if kind not in CONTRAST_KINDS:
-        contrast_matrix(kind, labels, [])  # raises, saying which model to fit instead
-    part = BETWEEN if kind == "within_between" else UNIT_MEAN
-    terms = [parse(lab) for lab in labels]
-    return [t.column.label for t in terms if t.part == part
-            and (kind != "within_between" or t.with_part(WITHIN) in terms)]
+    return kinds.column_map(kind).contrast_covariates(labels)
 
 
 def contrast_rows(kind: str, labels) -> tuple[list, np.ndarray]:
@@ -101,7 +76,7 @@ def contrast_rows(kind: str, labels) -> tuple[list, np.ndarray]:
     without contrasts (pooled, random intercept, fixed effects) has none: ``([], 0 x k)``.
     """
     labels = list(labels)
-    if kind not in CONTRAST_KINDS:
+    if not kinds.column_map(kind).contrast:
         return [], np.zeros((0, len(labels)))
     tv = contrast_covariates(kind, labels)
     return [part_label(t, CONTRAST) for t in tv], contrast_matrix(kind, labels, tv)
@@ -224,7 +199,7 @@ def _reference_contrast(ref, terms, prob):
     """Contrast estimate and SE from a within_between or mundlak reference fit."""
     from scipy import stats
 
-    if ref.estimator not in CONTRAST_KINDS:
+    if not kinds.column_map(ref.estimator).contrast:
         raise SpecificationError(
             f"reference: a {ref.estimator!r} fit has no within/between contrast; pass a "
             "within_between or mundlak reference fit")

@@ -44,13 +44,14 @@ from .design import group_means
 from .errors import SpecificationError, choices_error
 from .mathcore import partition_quantities, unit_sd_draws
 from .resultshape import PartitionResult, summarise_draws  # noqa: F401 (public here)
-from .terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
+from .terms import BETWEEN, UNIT_MEAN, WITHIN, parse
 
 __all__ = ["PartitionResult", "coefficient_parts", "partition_draws", "partition_from_stats",
            "variance_partition", "design_partition", "reference_partition", "summarise_draws",
            "design_columns", "PARTITION_KINDS"]
 
-PARTITION_KINDS = ("pooled", "random", "within", "mundlak", "within_between")
+#: the column maps whose coefficients carry within effects (all but the between fit's)
+PARTITION_KINDS = tuple(n for n in kinds.COLUMNS if kinds.column_map(n).within is not None)
 
 
 # ---------------------------------------------------------------------------- array core
@@ -120,64 +121,14 @@ def _varies_within(M, codes, labels):
 def coefficient_parts(terms, time_varying, kind, labels, coef):
     """Within and between coefficients of every draw, on the Rights-Sterba split.
 
-    Parameters
-    ----------
-    terms : list of str
-        The original covariates (``Design.terms``).
-    time_varying : list of str
-        Those that vary within units (``Design.time_varying``).
-    kind : {"pooled", "random", "within", "mundlak", "within_between"}
-        How the model's columns were built (:meth:`Design.matrices`).
-    labels : list of str
-        The model's coefficient labels.
-    coef : array (S, k)
-        Coefficient draws (or one estimate, ``S = 1``), columns in ``labels`` order.
-
-    Returns
-    -------
-    g_w : array (S, p_w)
-        Coefficients of the within columns (the time-varying terms, unit-demeaned).
-    g_b : array (S, p_b) or None
-        Coefficients of the between columns (unit means of the time-varying terms, then
-        the time-constant terms); ``None`` for fixed effects.
+    Parameters and returns as :meth:`bayespanel.kinds.ColumnMap.effects` of the column map
+    ``kind`` (one of :data:`PARTITION_KINDS`, how the model's columns were built by
+    :meth:`Design.matrices`): which coefficients carry each covariate's within and
+    between effect is a fact of the registry. ``g_b`` is None for fixed effects.
     """
     if kind not in PARTITION_KINDS:
         raise choices_error("kind", kind, PARTITION_KINDS)
-    coef = np.atleast_2d(np.asarray(coef, dtype=float))
-    pos = {lab: j for j, lab in enumerate(labels)}
-
-    def col(name):
-        if name not in pos:
-            raise SpecificationError(
-                f"the {kind} model has no coefficient {name!r}; its terms are "
-                f"{', '.join(map(repr, labels))}")
-        return coef[:, pos[name]]
-
-    tv = list(time_varying)
-    tc = [t for t in terms if t not in tv and t != "Intercept"]
-    zero = np.zeros(coef.shape[0])
-    # a time-varying term without a between (unit-mean) column, such as an occasion
-    # indicator in a balanced panel whose unit means are all equal, has no between
-    # coefficient of its own: the hybrid model's between part leaves it out (0) and
-    # Mundlak's carries its one coefficient
-    if kind == "within_between":
-        g_w = [col(part_label(t, WITHIN)) for t in tv]
-        g_b = [col(part_label(t, BETWEEN)) if part_label(t, BETWEEN) in pos else zero
-               for t in tv] + [col(t) for t in tc]
-    elif kind == "mundlak":
-        g_w = [col(t) for t in tv]
-        g_b = [col(t) + (col(part_label(t, UNIT_MEAN)) if part_label(t, UNIT_MEAN) in pos
-                         else zero) for t in tv] + [col(t) for t in tc]
-    elif kind == "within":
-        g_w = [col(t) if t in pos else zero for t in tv]
-        g_b = None
-    else:
-        g_w = [col(t) for t in tv]
-        g_b = [col(t) for t in tv] + [col(t) for t in tc]
-    g_w = np.column_stack(g_w) if g_w else np.zeros((coef.shape[0], 0))
-    if g_b is not None:
-        g_b = np.column_stack(g_b) if g_b else np.zeros((coef.shape[0], 0))
-    return g_w, g_b
+    return kinds.column_map(kind).effects(terms, time_varying, labels, coef)
 
 
 def _row_cov(A):

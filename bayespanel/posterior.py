@@ -34,7 +34,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from . import ar1
+from . import ar1, kinds
 from .errors import SamplingWarning, SpecificationError
 from .mathcore import unit_sd_draws
 from .models import gaussian
@@ -442,7 +442,7 @@ class Posterior:
         """
         from .contrasts import contrast_covariates, contrast_draws
 
-        if self.spec.kind not in ("within_between", "mundlak"):
+        if not kinds.column_map(self.spec.kind).contrast:
             raise SpecificationError(
                 f"{self.spec.model} does not separate within and between effects; contextual "
                 "effects come from WithinBetween or CorrelatedEffects")

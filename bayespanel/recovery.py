@@ -51,7 +51,7 @@ from .errors import EstimationError, SamplingWarning, SpecificationError, choice
 from .resultshape import DEFAULT_INTERVAL
 from .occasions import true_occasion_coef
 from .safetext import LITERAL_RC, literal
-from .terms import BETWEEN, CONTRAST, UNIT_MEAN, WITHIN, parse, part_label
+from .terms import CONTRAST, parse
 
 __all__ = ["design_check", "DesignCheckResult", "design_check_section", "REFERENCE_METHODS"]
 
@@ -164,53 +164,33 @@ def _truth_vector(truth, model, difference):
 
 
 def _coef_from_components(truth, labels, kind):
-    """Map the demo layout (within / between / constant effects) onto the model's terms."""
-    w, bt = truth.get("within", {}), truth.get("between", {})
-    const = dict(truth.get("constant", {}))
+    """Map the demo layout (within / between / constant effects) onto the model's terms
+    (the column map's :meth:`~bayespanel.kinds.ColumnMap.true_coefficients`; occasion
+    terms from :func:`~bayespanel.occasions.true_occasion_coef`)."""
+    values = kinds.column_map(kind).true_coefficients(
+        truth.get("within", {}), truth.get("between", {}), dict(truth.get("constant", {})),
+        truth.get("intercept", 0.0))
     out = {}
     for lab in labels:
-        t = parse(lab)
-        if lab == "Intercept":
-            out[lab] = truth.get("intercept", 0.0)
-        elif (occ := true_occasion_coef(lab, truth)) is not None:
-            out[lab] = occ  # before the within/between parts: occasion terms carry them
-        elif t.part == WITHIN:
-            out[lab] = w.get(t.base)
-        elif t.part == BETWEEN:
-            out[lab] = bt.get(t.base)
-        elif t.part == UNIT_MEAN:
-            x = t.base
-            out[lab] = bt[x] - w[x] if x in bt and x in w else None
-        elif lab in w:
-            if kind in ("random", "pooled") and not np.isclose(w[lab], bt.get(lab, w[lab])):
-                raise SpecificationError(
-                    f"truth has different within ({w[lab]}) and between ({bt[lab]}) effects "
-                    f"of {lab!r}; a {kind} model has one coefficient for it: give truth="
-                    "{'coef': {...}} or choose WithinBetween / CorrelatedEffects")
-            out[lab] = w[lab]
-        elif lab in const:
-            out[lab] = const[lab]
-    return {k: v for k, v in out.items() if v is not None}
+        occ = true_occasion_coef(lab, truth)
+        value = occ if occ is not None else values.get(lab)
+        if value is not None:
+            out[lab] = value
+    return out
 
 
 def _apply_difference(b, labels, kind, difference):
-    """Set the between effect of each named covariate to its within effect plus the size."""
-    if kind not in ("within_between", "mundlak"):
+    """Set the between effect of each named covariate to its within effect plus the size
+    (the column map's contrast set to the size)."""
+    columns = kinds.column_map(kind)
+    if not columns.contrast:
         raise SpecificationError(
             f"difference= needs separate within and between effects; the {kind} model has "
             "one coefficient per covariate: use WithinBetween or CorrelatedEffects")
-    b = b.copy()
     for x, size in dict(difference).items():
-        if kind == "within_between":
-            wl, bl = part_label(x, WITHIN), part_label(x, BETWEEN)
-            if wl not in labels or bl not in labels:
-                raise SpecificationError(_no_contrast(x, labels))
-            b[labels.index(bl)] = b[labels.index(wl)] + float(size)
-        else:
-            ml = part_label(x, UNIT_MEAN)
-            if ml not in labels:
-                raise SpecificationError(_no_contrast(x, labels))
-            b[labels.index(ml)] = float(size)
+        b = columns.set_contrast(b, labels, x, size)
+        if b is None:
+            raise SpecificationError(_no_contrast(x, labels))
     return b
 
 

@@ -45,7 +45,7 @@ from .models.families import FAMILIES
 from .models.sampling import MIN_DRAWS
 from .occasions import true_occasion_coef
 from .resultshape import DEFAULT_INTERVAL
-from .terms import BETWEEN, UNIT_MEAN, WITHIN, part_label
+from .terms import UNIT_MEAN
 
 __all__ = ["Settings", "run", "load_settings", "LEVELS", "software_versions"]
 
@@ -1206,23 +1206,15 @@ def _comparison_stage(settings, design, posts, ref_fits, entries, say, failed=No
 
 
 def _truth_by_model(truth, entries, ref_entries):
-    """The true value of each term under each model's parametrisation (demo only)."""
-    w, b, c = truth["within"], truth["between"], truth.get("constant", {})
-    equal = {k: w[k] for k in w if np.isclose(w[k], b[k])}
-    param = {
-        "within_between": {"Intercept": truth["intercept"],
-                           **{part_label(k, WITHIN): v for k, v in w.items()},
-                           **{part_label(k, BETWEEN): v for k, v in b.items()}, **c},
-        "mundlak": {"Intercept": truth["intercept"], **w,
-                    **{part_label(k, UNIT_MEAN): b[k] - w[k] for k in w}, **c},
-        "within": dict(w),
-        "between": {"Intercept": truth["intercept"], **b, **c},
-        "random": dict(equal), "pooled": dict(equal),
-    }
+    """The true value of each term under each model's parametrisation (demo only): the
+    column map's :meth:`~bayespanel.kinds.ColumnMap.true_coefficients`, leaving out what a
+    model with one coefficient for unequal within and between effects cannot carry."""
     out = {}
     for key, kind, e in ([(e["name"], kinds.model(e["name"]).columns, e) for e in entries]
                          + [(f"ref:{e['name']}", e["name"], e) for e in ref_entries]):
-        out[key] = dict(param[kind])
+        out[key] = kinds.column_map(kind).true_coefficients(
+            truth["within"], truth["between"], truth.get("constant", {}),
+            truth["intercept"], strict=False)
         for row in e["coefficients"]:  # occasion terms (0 when the simulation has none)
             occ = true_occasion_coef(row["term"], truth)
             if occ is not None:

@@ -4,6 +4,7 @@ Outside sources, named beside each check: the Grunfeld investment panel shipped 
 statsmodels.datasets; statsmodels' OLS and MixedLM (REML) fitted on it.
 """
 
+import sys
 import warnings
 
 import numpy as np
@@ -203,3 +204,118 @@ def test_registering_refuses_facts_that_contradict_the_builder_or_a_taken_name()
     with pytest.raises(SpecificationError, match="reference"):
         kinds.register(replace(narrow, reference="nowhere"))
     assert "narrow_pooled" not in kinds.model_names()
+
+
+# ---------------------------------------------------------------------- installed kinds
+TOY_MODULE = '''
+import bayespanel as bp
+from bayespanel import kinds
+
+
+class ToyPooled(bp.Pooled):
+    """A pooled model an installed package adds."""
+
+
+KIND = kinds.ModelKind(
+    "toy_pooled", "ToyPooled", "toy_kinds:ToyPooled", columns="pooled",
+    unit_effects="none", reference="pooled", title="Toy pooled regression",
+    assumptions="As the pooled regression.")
+'''
+
+
+@pytest.fixture
+def installed_toy(tmp_path, monkeypatch):
+    """A package installed the way pip leaves one (a module and its dist-info folder with
+    an entry_points.txt, the format of the Python packaging specification "Entry points
+    specification"), found on sys.path by importlib.metadata."""
+    (tmp_path / "toy_kinds.py").write_text(TOY_MODULE, "utf-8")
+    info = tmp_path / "toy_kinds-0.1.dist-info"
+    info.mkdir()
+    (info / "METADATA").write_text("Metadata-Version: 2.1\nName: toy-kinds\nVersion: 0.1\n",
+                                   "utf-8")
+    (info / "entry_points.txt").write_text(
+        "[bayespanel.kinds]\ntoy = toy_kinds:KIND\nbroken = toy_kinds:MISSING\n", "utf-8")
+    monkeypatch.syspath_prepend(str(tmp_path))
+    monkeypatch.setattr(kinds.registry, "_PLUGINS_LOADED", False)
+    yield
+    if "toy_pooled" in kinds.registry._MODELS:
+        kinds.unregister("toy_pooled")
+    sys.modules.pop("toy_kinds", None)
+
+
+def test_a_kind_from_an_installed_package_reaches_the_command_line(installed_toy, capsys):
+    from bayespanel.cli import main
+
+    with pytest.warns(UserWarning, match="'broken'.*not loaded"):  # skipped, named
+        names = kinds.model_names()  # the first question loads the entry points
+    assert names[-1] == "toy_pooled"
+    toy = kinds.model("ToyPooled")
+    assert toy.builder_class().__module__ == "toy_kinds"
+    assert kinds.model(toy.builder_class()) is toy
+    assert Settings(unit="firm", time="year", formula=FORMULA,
+                    models=("ToyPooled",)).models == ("toy_pooled",)
+    with pytest.raises(SystemExit) as stop:
+        main(["fit", "--help"])
+    assert stop.value.code == 0
+    assert "toy_pooled" in capsys.readouterr().out
+    assert schema()["$defs"]["model"]["properties"]["name"]["enum"][-1] == "toy_pooled"
+
+
+# ---------------------------------------------------------------------- column maps
+@pytest.mark.parametrize("columns", kinds.COLUMNS)
+def test_true_coefficients_are_what_least_squares_finds_on_noiseless_data(columns):
+    """Outside check: statsmodels OLS on each column map's columns of an outcome made
+    without noise from known within, between and time-constant effects returns exactly
+    the coefficients the registry's truth mapping gives, and its effects() maps them back."""
+    import pandas as pd
+
+    rng = np.random.default_rng(4)
+    N, T = 12, 5
+    unit = np.repeat(np.arange(N), T)
+    df = pd.DataFrame({"unit": unit, "time": np.tile(np.arange(T), N),
+                       "x": rng.normal(size=N * T) + rng.normal(size=N)[unit],
+                       "z": rng.normal(size=N * T), "r": rng.normal(size=N)[unit]})
+    equal = columns in ("pooled", "random")  # one coefficient for both effects
+    w = {"x": 1.5, "z": -0.8}
+    b = {"x": 1.5 if equal else 4.0, "z": -0.8}
+    c, intercept = {"r": 2.0}, 3.0
+    y = np.full(len(df), intercept) + c["r"] * df["r"]
+    for x in w:
+        mean = df.groupby("unit")[x].transform("mean")
+        y = y + w[x] * (df[x] - mean) + b[x] * mean
+    df["y"] = y
+    design = bp.Panel(df, unit="unit", time="time").design("y ~ x + z + r")
+    M, labels = design.matrices(columns)
+    target = design.y if columns != "between" else design.y_unit_means()
+    if columns == "within":
+        target = design.y_within()
+    ols = sm_ols(target, M)
+    cmap = kinds.column_map(columns)
+    truth = cmap.true_coefficients(w, b, c, intercept)
+    assert set(truth) == set(labels)
+    np.testing.assert_allclose([truth[lab] for lab in labels], ols, atol=1e-9)
+    if cmap.within is not None:
+        g_w, g_b = cmap.effects(design.terms, design.time_varying, labels, ols)
+        np.testing.assert_allclose(g_w[0], [w["x"], w["z"]], atol=1e-9)
+        if g_b is not None:
+            np.testing.assert_allclose(g_b[0], [b["x"], b["z"], c["r"]], atol=1e-9)
+    if cmap.contrast:  # between minus within, from the same fit
+        L = cmap.contrast_matrix(labels, ["x", "z"])
+        np.testing.assert_allclose(L @ ols, [b["x"] - w["x"], 0.0], atol=1e-9)
+
+
+def sm_ols(y, M):
+    import statsmodels.api as sm
+
+    return sm.OLS(np.asarray(y), np.asarray(M)).fit().params
+
+
+def test_one_coefficient_cannot_carry_unequal_effects():
+    random = kinds.column_map("random")
+    with pytest.raises(SpecificationError, match="different within .* of 'x'"):
+        random.true_coefficients({"x": 1.0}, {"x": 2.0}, {"r": 1.0}, 0.5)
+    # not strict: that covariate, the intercept and the time-constant ones are left out
+    assert random.true_coefficients({"x": 1.0, "z": 3.0}, {"x": 2.0, "z": 3.0}, {"r": 1.0},
+                                    0.5, strict=False) == {"z": 3.0}
+    with pytest.raises(SpecificationError, match="no within/between contrast"):
+        random.contrast_matrix(["x"], ["x"])

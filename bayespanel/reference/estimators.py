@@ -42,8 +42,6 @@ __all__ = ["ESTIMATORS", "METHODS", "pooled", "within", "between", "random", "mu
 ESTIMATORS = kinds.reference_names()
 METHODS = ("swamy-arora", "ml", "reml")
 _PKG_DIR = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-_KIND = {"pooled": "pooled", "within": "random", "between": "random", "random": "random",
-         "mundlak": "mundlak", "within_between": "within_between"}
 
 _METHOD_NOTE = {
     "swamy-arora": "Variance components by Swamy-Arora (unbalanced form of Baltagi and "
@@ -195,7 +193,7 @@ def fit_design(design, estimator: str, *, method=None, cov="classical") -> Refer
     false). CR2 on a design with rows is computed from the rows of the regression.
     """
     method = _check_options(estimator, method, cov)
-    kind = _KIND[estimator]
+    kind = kinds.reference(estimator).statistics_of
     if design.has_rows and (cov == "cr2" or not hasattr(design, "suffstats")):
         # CR2 needs the rows of the regression (per-cluster k x k blocks of them)
         M, labels = design.matrices(kind)
