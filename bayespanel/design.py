@@ -23,7 +23,7 @@ from .formula import dependency_message, outcome_values, safe_context, screen
 from .kinds import COLUMNS, builder as builder_of
 from .terms import BETWEEN, UNIT_MEAN, WITHIN, Term, labels as term_labels, occasion, parse
 
-__all__ = ["Design", "DesignSpec", "KINDS", "group_means", "kind_transform", "check_stats",
+__all__ = ["Design", "DesignSpec", "RowBlock", "KINDS", "group_means", "kind_transform", "check_stats",
            "check_terms", "check_flag", "refuse_complex", "occasion_label"]
 
 #: the column maps of matrices(kind), as the registry of model kinds lists them
@@ -42,6 +42,18 @@ class DesignSpec:
 
     def to_dict(self) -> dict:
         return asdict(self)
+
+
+@dataclass(frozen=True)
+class RowBlock:
+    """Some estimation rows of a design, as a block function over its rows receives them
+    (:meth:`Design.run_rows`): the unit key of each row (the keys of the design's
+    statistics, ``design_suffstats().unit_keys``), its occasion, and ``Z = [X, y]`` in the
+    design's columns (after listwise deletion)."""
+
+    units: np.ndarray
+    time: np.ndarray
+    Z: np.ndarray
 
 
 def _plain(v):
@@ -339,6 +351,40 @@ class Design:
             self._transform("within")  # raises the message of a design with no within part
         names = [self.terms[i] for i in tv] + [self.outcome]
         return select_columns(self._stats, tv + [self.k], names)
+
+    def design_suffstats(self) -> _ss.SuffStats:
+        """The statistics of the design's own columns ``[X, y]`` (terms as in ``terms``)."""
+        return self._stats
+
+    def row_map(self, kind: str):
+        """``(A, B)`` with the rows of ``[M, y]`` of ``kind`` equal to ``A z + B zbar_i``
+        for a design row ``z = [x, y]`` and its unit mean ``zbar_i`` (``M`` as in
+        ``matrices(kind)``; ``"within"``: the demeaned time-varying columns)."""
+        if kind not in KINDS:
+            raise choices_error("kind", kind, KINDS)
+        p = self.k + 1
+        if kind in ("mundlak", "within_between"):
+            A, B, _ = self._transform(kind)
+            return A, B
+        if kind == "within":
+            tv = [i for i, t in enumerate(self.terms) if self.varies_within[t]]
+            A = np.eye(p)[tv + [self.k]]
+            B = -A.copy()
+            B[-1] = 0.0
+            return A, B
+        return np.eye(p), np.zeros((p, p))
+
+    def run_rows(self, block, merge, shared=None):
+        """Run ``block(rows, shared)`` over the estimation rows (:class:`RowBlock`) and
+        merge the pieces with ``merge`` (a list of pieces -> one piece). The rows are at
+        hand here: one block."""
+        rows = RowBlock(units=self.unit_codes, time=self.time,
+                        Z=np.column_stack([self.X, self.y]))
+        return merge([block(rows, shared)])
+
+    def row_times(self, units, ranks):
+        """The occasions of the rows ``ranks`` (0 = first) of units ``units`` (codes)."""
+        return self.time[self.starts[np.asarray(units)] + np.asarray(ranks)]
 
     def build(self, builder, priors=None, **kwargs):
         """A Gaussian model on this design: the builder's ``from_design``; the statistics

@@ -223,7 +223,7 @@ def main(argv=None):
         post = timed("bayes: sample (2 chains)", lambda: model.sample(
             draws=args.draws, tune=args.draws, chains=2, seed=1, progress=False, cores=2))
         loo_o = timed("pass: occasion-level LOO (sub-sampled, 400 rows)",
-                      lambda: design.loo_subsample(post, 400, level="occasion", seed=1))
+                      lambda: bp.loo.loo_subsample(post, "occasion", 400, seed=1))
 
     print()
     print(desc.round(3).to_string())

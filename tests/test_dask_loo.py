@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 
 import bayespanel as bp
-from bayespanel.engines._pointwise import diff_estimator
+from bayespanel.loo.subsample import diff_estimator
 from bayespanel.engines.dask import DaskPanel
 from bayespanel.errors import DataHandlingWarning, SamplingWarning, SpecificationError
 from bayespanel.loo import from_draws, loo_subsample
@@ -80,7 +80,7 @@ def test_occasion_loo_matches_memory_for_every_kind(wage, kind, unit_effects):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", SamplingWarning)
         theirs = loo_subsample(fd, "occasion", 80, seed=5, reff=1.0)
-        ours = dsk.loo_subsample(fd, 80, level="occasion", seed=5, reff=1.0)
+        ours = loo_subsample(fd, "occasion", 80, seed=5, reff=1.0, design=dsk)
     assert_same(ours, theirs)
     times = mem.time[ours.subsample_indices]  # the rows picked are the in-memory rows
     np.testing.assert_array_equal(ours.pointwise["time"], times)
@@ -105,7 +105,7 @@ def test_occasion_loo_with_dropped_rows_and_occasion_effects(wage_panel):
         fd = draws_for(mem, kind, ue, seed=8)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", SamplingWarning)
-            assert_same(dsk.loo_subsample(fd, 120, level="occasion", seed=2, reff=1.0),
+            assert_same(loo_subsample(fd, "occasion", 120, seed=2, reff=1.0, design=dsk),
                         loo_subsample(fd, "occasion", 120, seed=2, reff=1.0))
 
 
@@ -122,7 +122,7 @@ def test_occasion_loo_on_a_distributed_cluster(wage):
                         client=client).design(FORMULA)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", SamplingWarning)
-            ours = dsk.loo_subsample(fd, 60, level="occasion", seed=1, reff=1.0)
+            ours = loo_subsample(fd, "occasion", 60, seed=1, reff=1.0, design=dsk)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", SamplingWarning)
         assert_same(ours, loo_subsample(fd, "occasion", 60, seed=1, reff=1.0))
@@ -145,10 +145,10 @@ def test_occasion_loo_bad_options(wage):
     _, mem, dsk = wage
     fd = draws_for(mem, "random", "random")
     with pytest.raises(SpecificationError, match="level"):
-        dsk.loo_subsample(fd, 50, level="row")
+        loo_subsample(fd, "row", 50, design=dsk)
     with pytest.raises(SpecificationError, match="observations=5000"):
-        dsk.loo_subsample(fd, 5000, level="occasion")
+        loo_subsample(fd, "occasion", 5000, design=dsk)
     other = draws_for(bp.Panel(wage[0], "nr", "year").design("lwage ~ exper"), "random",
                       "random")
     with pytest.raises(SpecificationError, match="terms do not match"):
-        dsk.loo_subsample(other, 50, level="occasion")
+        loo_subsample(other, "occasion", 50, design=dsk)

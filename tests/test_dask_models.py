@@ -120,9 +120,11 @@ def test_subsampled_unit_loo_from_statistics(paths, memory_posterior):
     tau = ds["sigma_unit"].values.ravel()[:50]
     M, y, codes = post.rows
     rows = gaussian.unit_loglik_rows(M, y, codes, b, sig, tau)
-    stats = design.unit_loglik("random", b, sig, tau)
+    ss = design.model_suffstats("random")
+    stats = gaussian.unit_loglik_stats(design.unit_cross_products("random"), ss.unit_mean,
+                                       ss.unit_count, b, sig, tau)
     assert np.max(np.abs(stats - rows)) < 1e-10 * np.max(np.abs(rows))
-    ours = design.loo_subsample(post, 150, seed=1)
+    ours = bp.loo.loo_subsample(post, "unit", 150, seed=1, design=design)
     theirs = bp.loo.loo_subsample(post, "unit", 150, seed=1)
     assert abs(ours.elpd - theirs.elpd) < 1e-9 * abs(theirs.elpd)
     assert abs(ours.se - theirs.se) < 1e-8 * theirs.se
@@ -139,7 +141,7 @@ def test_subsampled_occasion_loo_in_one_more_pass(paths, memory_posterior):
     # within its reported standard error.
     design, mem, _ = paths
     post = memory_posterior
-    ours = design.loo_subsample(post, 300, level="occasion", seed=3)
+    ours = bp.loo.loo_subsample(post, "occasion", 300, seed=3, design=design)
     theirs = bp.loo.loo_subsample(post, "occasion", 300, seed=3)
     assert abs(ours.elpd - theirs.elpd) < 1e-10 * abs(theirs.elpd)
     assert abs(ours.se - theirs.se) < 1e-10 * theirs.se

@@ -72,11 +72,6 @@ KNOWN_CYCLE_EDGES: set[tuple[str, str]] = {
 
 # Imports ("importer", "imported") from a lower layer to a higher one today.
 KNOWN_UPWARD: set[tuple[str, str]] = {
-    ("bayespanel.engines._pointwise", "bayespanel.loo"),
-    ("bayespanel.engines._pointwise", "bayespanel.loo.pointwise"),
-    ("bayespanel.engines._pointwise", "bayespanel.loo.psis"),
-    ("bayespanel.engines._pointwise", "bayespanel.loo.result"),
-    ("bayespanel.engines.dask", "bayespanel.loo"),
     ("bayespanel.models.latent", "bayespanel.loo"),
     ("bayespanel.posterior", "bayespanel.contrasts"),
     ("bayespanel.posterior", "bayespanel.loo"),
@@ -86,8 +81,6 @@ KNOWN_UPWARD: set[tuple[str, str]] = {
 # Private names used outside their package today: ("importer", "owner:name"), where owner
 # is the module or package that holds ``_name`` (a private module is "package:_module").
 KNOWN_PRIVATE: set[tuple[str, str]] = {
-    ("bayespanel.engines._pointwise", "bayespanel.loo.psis:_describe_points"),
-    ("bayespanel.engines._pointwise", "bayespanel.loo.psis:_lpd"),
     ("bayespanel.family_stage", "bayespanel.models.latent:_column_values"),
     ("bayespanel.family_stage", "bayespanel.models.latent:_where"),
     ("bayespanel.models.latent", "bayespanel.posterior:_read_tree"),

@@ -348,6 +348,19 @@ def complete_rows(pdf: pd.DataFrame, spec: BlockSpec):
     return sub, keep, missing, Z
 
 
+def rows_block(pdf: pd.DataFrame, spec: BlockSpec, columns, block, shared):
+    """``block(rows, shared)`` on the complete rows of one partition, as a
+    :class:`~bayespanel.design.RowBlock` in the design's kept ``columns`` of ``[X, y]``
+    (all when ``None``)."""
+    from ..design import RowBlock
+
+    sub, _, _, Z = complete_rows(pdf, spec)
+    if columns is not None:
+        Z = np.ascontiguousarray(Z[:, list(columns)])
+    return block(RowBlock(units=sub[spec.unit].to_numpy(), time=sub[spec.time].to_numpy(),
+                          Z=Z), shared)
+
+
 def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
     """Rows of one partition: listwise deletion, ``[X, y]``, its :class:`Partial` (and the
     partition's structure, over all its rows, when ``spec.structure``)."""

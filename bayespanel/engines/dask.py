@@ -46,7 +46,7 @@ import numpy as np
 import pandas as pd
 
 from .. import derived, suffstats
-from ..design import (KINDS, Design, DesignSpec, check_flag, check_stats, check_terms,
+from ..design import (Design, DesignSpec, check_flag, check_stats, check_terms,
                       occasion_label, refuse_complex)
 from ..errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
                       SpecificationError, choices_error)
@@ -673,66 +673,34 @@ class DaskDesign:
     #: posterior keep this design, which has no rows; ``builder`` may be given by name)
     build = Design.build
 
-    def unit_loglik(self, kind, b, sigma, tau, units=None):
-        """Per-unit marginal log density (draws x units) from the per-unit statistics;
-        see :func:`bayespanel.engines._pointwise.unit_loglik_stats`."""
-        from ._pointwise import unit_loglik_stats
-
-        ss = self.model_suffstats(kind)
-        return unit_loglik_stats(self.unit_cross_products(kind), ss.unit_mean, ss.unit_count,
-                                 b, sigma, tau, units=units)
-
-    def loo_subsample(self, post, observations: int = 400, *, level: str = "unit",
-                      seed: int = 0, reff=None):
-        """Sub-sampled LOO of a posterior fitted on this design (Magnusson et al. 2019).
-
-        ``level="unit"``: terms from the per-unit statistics, no pass over the rows
-        (:func:`bayespanel.engines._pointwise.loo_subsample_units`). ``level="occasion"``:
-        one more pass over the partitions
-        (:func:`bayespanel.engines._pointwise.loo_subsample_occasions`). Same seed, same
-        sampled points and the same numbers as :func:`bayespanel.loo.loo_subsample` in
-        memory.
-        """
-        from ..loo import LEVELS
-        from ._pointwise import loo_subsample_occasions, loo_subsample_units
-
-        if level not in LEVELS:
-            raise choices_error("level", level, LEVELS)
-        fn = loo_subsample_units if level == "unit" else loo_subsample_occasions
-        return fn(post, self, observations, seed=seed, reff=reff)
-
     def design_suffstats(self) -> suffstats.SuffStats:
         """The statistics of the design's own columns ``[X, y]`` (terms as in ``terms``)."""
         return self._stats
 
-    def row_map(self, kind: str):
-        """``(A, B)`` with the rows of ``[M, y]`` of ``kind`` equal to ``A z + B zbar_i``
-        for a design row ``z = [x, y]`` and its unit mean ``zbar_i`` (``M`` as in
-        ``Design.matrices(kind)``; ``"within"``: the demeaned time-varying columns)."""
-        if kind not in KINDS:
-            raise choices_error("kind", kind, KINDS)
-        p = self.k + 1
-        if kind in ("mundlak", "within_between"):
-            A, B, _ = self._transform(kind)
-            return A, B
-        if kind == "within":
-            tv = [i for i, t in enumerate(self.terms) if self.varies_within[t]]
-            A = np.eye(p)[tv + [self.k]]
-            B = -A.copy()
-            B[-1] = 0.0
-            return A, B
-        return np.eye(p), np.zeros((p, p))
+    row_map = Design.row_map
 
-    def run_rows(self, block, merge, shared):
-        """One more pass over the rows of this design: ``block(partition, spec, shared)``
-        on every partition (listwise deletion as in the design pass:
-        :func:`bayespanel.engines._blocks.complete_rows`), reduced with ``merge``."""
+    def run_rows(self, block, merge, shared=None):
+        """One more pass over the rows of this design: ``block(rows, shared)`` on the
+        :class:`~bayespanel.design.RowBlock` of every partition (listwise deletion as in
+        the design pass, the design's kept columns), reduced with ``merge``."""
         from dataclasses import replace
 
         p = self.panel
         spec = replace(self._block_spec, unit_cp=False, structure=False)
         cols = list(dict.fromkeys([p.unit, p.time] + list(spec.used)))
-        return p.run(cols, block, merge, spec, shared=shared)
+        return p.run(cols, blk.rows_block, merge, spec, self.kept_columns, block,
+                     shared=shared)
+
+    def row_times(self, units, ranks):
+        """The occasions of the rows ``ranks`` (0 = first) of units ``units`` (codes),
+        from the structure pass when no row was dropped; else ``None`` (not known without
+        reading the rows)."""
+        st = self.panel._structure
+        if self.n_dropped or st is None or not np.array_equal(st.keys, self._stats.unit_keys):
+            return None
+        pos = np.array([blk.occasion_positions(st.masks[g])[r] for g, r in zip(units, ranks)],
+                       dtype=np.int64)
+        return st.occasions[pos]
 
     def matrices(self, kind):
         raise EstimationError(

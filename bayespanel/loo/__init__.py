@@ -9,7 +9,8 @@ docs/comparison.md.
 """
 
 from .pointwise import holdout_loglik, pointwise_loglik
-from .psis import kfold, loo, loo_subsample, plpd, psis_arrays, refit_draws
+from .psis import kfold, loo, loo_subsample, psis_arrays, refit_draws
+from .subsample import plpd
 from .reference_cv import reference_cv
 from .result import LOOResult
 from ._draws import LEVELS, FitDraws, check_level, from_draws, from_posterior, outcome_measure

@@ -425,96 +425,78 @@ def kfold(post, level="occasion", K=10, *, seed=0, refit_kwargs=None):
 
 
 # ---------------------------------------------------------------------------- sub-sampling
-def _point_rows(fd, level, points):
-    """Unit codes whose rows are needed to evaluate the given points."""
-    return np.unique(points if level == "unit" else fd.codes[points])
-
-
-def plpd(fd, level):
-    """Point log predictive density at the posterior means of ``(b, sigma, tau)``, every
-    point (the cheap approximation of Magnusson et al. 2019)."""
-    from ..models import gaussian
-
-    b, sigma, tau = fd.flat()
-    bm, sm = b.mean(axis=0)[None], np.array([sigma.mean()])
-    tm = None if tau is None else np.array([tau.mean()])
-    if level == "unit":
-        return gaussian.unit_loglik_rows(fd.M, fd.y, fd.codes, bm, sm, tm)[0]
-    return gaussian.occasion_loglik_rows(fd.M, fd.y, fd.codes, bm, sm, tm)[0]
-
-
-def loo_subsample(post, level="occasion", observations=400, *, seed=0, reff=None):
+def loo_subsample(post, level="occasion", observations=400, *, seed=0, reff=None,
+                  design=None):
     """PSIS-LOO on a sub-sample of points with the difference estimator (Magnusson et al.
     2019), for panels too large for the full ``draws x points`` matrix.
 
-    Every point gets the cheap point-estimate approximation (:func:`plpd`); the full
-    per-draw terms and PSIS are computed only for a simple random sample (without
-    replacement) of ``observations`` points, so memory is ``draws x`` (rows of the sampled
-    units). The totals and both standard errors use arviz-stats' difference and SRS
-    estimators.
+    Every point gets the cheap point-estimate approximation; the full per-draw terms and
+    PSIS are computed only for a simple random sample (without replacement) of
+    ``observations`` points, so memory is ``draws x`` (rows of the sampled units). The
+    totals and both standard errors use the difference and SRS estimators (arviz-stats').
+    One implementation for every source of the terms (:mod:`bayespanel.loo.subsample`):
+    the rows when they are at hand; on a design without rows (a partitioned source,
+    ``Design.has_rows`` false) the per-unit statistics at the unit level and one more pass
+    over the source at the occasion level, with the same seeded sample and the same
+    numbers.
+
+    Parameters
+    ----------
+    post : Posterior or FitDraws
+        Of a Gaussian model (latent-effect models are refused).
+    level : {"unit", "occasion"}
+    observations : int
+        Points in the sample (2 up to the number of defined points).
+    seed : int
+        Seed of the sample.
+    reff : float, optional
+        Relative efficiency for PSIS (default from the posterior's ESS, as arviz does).
+    design : Design, optional
+        The design to score the draws on (default the posterior's own).
 
     Returns
     -------
     LOOResult
         ``se`` includes the sub-sampling error; ``subsampling_se`` is that part alone.
         Unsampled points have ``nan`` ELPD in ``pointwise`` and ``approx`` holds the
-        approximation for every point.
+        approximation for every point (at the occasion level without rows, ``pointwise``
+        lists the sampled rows only).
     """
     from arviz_stats.base import array_stats
 
+    from .subsample import check_observations, points_for
+
     check_level(level)
-    design = getattr(post, "design", None)
-    if getattr(post, "rows", None) is None and design is not None:
-        # a design without rows at hand: terms from its statistics (and, at the occasion
-        # level, one more pass over its source), the same sample and numbers
-        return design.loo_subsample(post, observations, level=level, seed=seed, reff=reff)
-    fd = from_posterior(post)
+    fd, make = points_for(post, level, design)
     _refuse_latent(fd, "sub-sampled LOO (subsample=)")
-    reason = undefined_reason(fd.unit_effects, level, fd.T)
-    if reason:
-        raise EstimationError(reason)
-    labels = fd.point_index(level)
-    approx = plpd(fd, level)
-    valid = np.flatnonzero(np.isfinite(approx))
-    N = len(valid)
-    if not isinstance(observations, (int, np.integer)) or not 1 < observations <= N:
-        raise SpecificationError(
-            f"observations={observations!r} must be an integer between 2 and {N} points")
+    points = make()
+    N = points.N
+    check_observations(observations, N)
     rng = np.random.default_rng(seed)
-    idx = np.sort(valid[rng.choice(N, size=int(observations), replace=False)])
-    need = _point_rows(fd, level, idx)
-    ll_units = pointwise_loglik(fd, level, units=need)
-    if level == "unit":
-        ll = ll_units
-    else:
-        local = np.flatnonzero(np.isin(fd.codes, need))
-        ll = ll_units[..., np.searchsorted(local, idx)]
+    idx = points.positions(rng.choice(N, size=int(observations), replace=False))
+    ll, approx_s = points.score(idx)
     res = psis_arrays(ll, level, fd.posterior, reff)
     elpd_s = np.asarray(res.elpd_i.values, dtype=float)
     k_s = np.asarray(res.pareto_k.values, dtype=float)
-    est, sub_se, se = array_stats.diff_srs_estimator(elpd_s, approx[idx], approx[valid], N)
+    est, sub_se, se = points.estimate(elpd_s, approx_s)
     p_loo, _, _ = array_stats.srs_estimator(_lpd(ll) - elpd_s, N)
-    pw = labels.copy()
-    pw["approx"] = approx
-    pw["elpd"] = np.nan
-    pw["pareto_k"] = np.nan
-    pw.loc[idx, "elpd"] = elpd_s
-    pw.loc[idx, "pareto_k"] = k_s
-    pw = pw.loc[valid].reset_index(drop=True)
+    pw, sampled = points.pointwise(idx, approx_s, elpd_s, k_s)
     good_k = float(res.good_k)
-    notes = [f"sub-sampled: PSIS on {len(idx)} of {N} points (seed {seed}), difference "
-             "estimator with the point-estimate approximation (Magnusson et al. 2019)"]
+    note = (f"sub-sampled: PSIS on {len(idx)} of {N} {points.noun} (seed {seed}), "
+            "difference estimator with the point-estimate approximation (Magnusson et al. "
+            "2019)")
+    notes = [note + (f"; {points.where}" if points.where else "")]
     high = k_s > good_k
     if high.any():
-        who = _describe_points(labels.iloc[idx[high]], level, names=fd.names)
+        who = _describe_points(sampled[high], level, names=fd.names)
         warnings.warn(f"Pareto k above {good_k:.2f} for {int(high.sum())} sampled points at "
                       f"the {level} level ({who})", SamplingWarning, stacklevel=2)
         notes.append(f"{int(high.sum())} sampled point(s) with Pareto k > {good_k:.2f}: {who}")
-    if len(valid) < len(labels):
-        notes.append(f"{len(labels) - len(valid)} undefined point(s) left out")
+    if N < points.n_points:
+        notes.append(f"{points.n_points - N} undefined point(s) left out")
     out = LOOResult(level=level, method=f"PSIS-LOO, sub-sampled ({len(idx)} of {N})",
                     elpd=est, se=se, p_loo=p_loo, pointwise=pw, good_k=good_k, notes=notes,
                     n_draws=fd.n_chains * fd.n_draws, elpd_data=res, subsampling_se=sub_se,
-                    family=fd.family)
+                    family=fd.family, n_points=N)
     out.subsample_indices = idx
     return out

@@ -50,6 +50,7 @@ __all__ = [
     "occasion_logpdf",
     "unit_logdensity",
     "unit_loglik_rows",
+    "unit_loglik_stats",
     "occasion_loglik_rows",
 ]
 
@@ -361,6 +362,56 @@ def unit_loglik_rows(M, y, unit_codes, b, sigma, tau):
     out = np.empty((b.shape[0], N))
     for sl in _chunks(b.shape[0], len(y)):
         out[sl] = unit_logdensity(_residuals(M, y, b[sl]), unit_codes, sigma[sl], tau[sl], N)
+    return out
+
+
+def unit_loglik_stats(unit_cp, unit_mean, unit_count, b, sigma, tau, units=None,
+                      budget: int = 1 << 22):
+    """Per-unit marginal log density for every draw, from per-unit statistics.
+
+    The unit-level term needs, per unit, only ``T_i``, the unit-mean residual
+    ``rbar_i = zbar_i'v`` and the within residual sum of squares ``W_i = v' W_i v`` with
+    ``v = [-b, 1]`` and ``W_i`` the unit's within cross-products of ``[M, y]``; so the
+    terms of any set of units and draws come without the rows, a chunk of units at a
+    time so memory stays bounded.
+
+    Parameters
+    ----------
+    unit_cp : (N, p, p) array
+        Per-unit within cross-products of ``[M, y]``.
+    unit_mean : (N, p) array
+        Unit means of ``[M, y]``.
+    unit_count : (N,) array
+        Rows per unit.
+    b : (S, k) array; sigma, tau : (S,) arrays
+        Draws (``tau = 0`` for the pooled model). Fixed effects have no unit-level
+        density and are refused by the callers.
+    units : array of int, optional
+        Codes of the units to evaluate (default all), in the order wanted.
+    budget : int
+        About how many ``draws x units`` numbers to hold at once.
+
+    Returns
+    -------
+    (S, len(units)) array
+        :func:`marginal_logdensity` of each unit; equal to :func:`unit_loglik_rows` on
+        the rows.
+    """
+    b = np.atleast_2d(np.asarray(b, dtype=float))
+    sigma = np.atleast_1d(np.asarray(sigma, dtype=float))
+    tau = np.atleast_1d(np.asarray(tau, dtype=float))
+    units = np.arange(len(unit_count)) if units is None else np.asarray(units, dtype=np.int64)
+    v = residual_vector(b)
+    S = v.shape[0]
+    out = np.empty((S, len(units)))
+    step = max(1, budget // max(S, 1))
+    for a in range(0, len(units), step):
+        g = units[a:a + step]
+        W = np.einsum("si,gij,sj->sg", v, unit_cp[g], v, optimize=True)
+        rbar = v @ unit_mean[g].T
+        T = unit_count[g].astype(float)
+        out[:, a:a + step] = marginal_logdensity(
+            T, np.maximum(W, 0.0), rbar ** 2, sigma[:, None], tau[:, None])
     return out
 
 
