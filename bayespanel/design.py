@@ -169,7 +169,7 @@ class Design:
 
     def __init__(self, *, y, X, terms, unit_codes, units, time, rows, outcome, spec,
                  n_dropped=0, dropped_by_column=None, n_input_rows=None, stats=None,
-                 lags=None):
+                 lags=None, maxabs=None):
         self.y = np.ascontiguousarray(y, dtype=float)
         self.X = np.ascontiguousarray(X, dtype=float)
         self.terms = list(terms)
@@ -199,7 +199,7 @@ class Design:
         self._cache = {}
         # within variation from the within block of the statistics of [X, y]
         within_sd = np.sqrt(np.maximum(np.diag(stats.within)[:-1], 0.0) / max(self.n, 1))
-        scale = np.maximum(_maxabs(self.X), 1.0)
+        scale = np.maximum(_maxabs(self.X) if maxabs is None else maxabs, 1.0)
         self.varies_within = pd.Series(within_sd > _VARY_TOL * scale, index=self.terms)
 
     # ------------------------------------------------------------------ sizes
@@ -539,11 +539,14 @@ class Design:
             terms = ["Intercept" if c is None else c for c in plain]
             check_terms(terms, formula)
             X = np.empty((n, len(terms) + len(extra)))
-            for j, c in enumerate(plain):
-                if c is None:
-                    X[:, j] = 1.0
-                else:
-                    X[:, j] = take(frame[c].to_numpy(dtype=float, na_value=np.nan))
+            src = [None if c is None else frame[c].to_numpy(dtype=float, na_value=np.nan)
+                   for c in plain]
+            for a in range(0, n, _FILL_ROWS):  # row blocks: each block of X stays in cache
+                b = min(a + _FILL_ROWS, n)
+                part = slice(a, b) if idx is None else idx[a:b]
+                for j, v in enumerate(src):
+                    X[a:b, j] = 1.0 if v is None else v[part]
+            del src
         else:
             cols = list(dict.fromkeys([panel.unit, panel.time] + used))
             sub = frame[cols] if idx is None else frame[cols].take(idx)
@@ -579,18 +582,26 @@ class Design:
         else:  # a transform of columns (log(gsp)), on the estimation rows
             cols = list(screened.outcome_columns)
             y = outcome_values(screened, frame[cols] if idx is None else frame[cols].take(idx))
+        # one sweep gives every column's range and finiteness for the checks below
+        lo, hi, finite = _ss.column_range(X, y)
+        if screened.outcome_expr is not None and not finite[-1]:
             _check_finite(y, f"the outcome {screened.outcome!r}", frame, panel, idx)
-        for j in range(X.shape[1]):
+        for j in np.flatnonzero(~finite[:-1]):
             _check_finite(X[:, j], f"term {terms[j]!r}", frame, panel, idx)
-        stats = _check_columns(X, y, terms, screened.outcome, units_codes)
+        stats, maxabs = _check_columns(X, y, terms, screened.outcome, units_codes, (lo, hi))
         spec = DesignSpec(formula=formula, unit=panel.unit, time=panel.time,
                           occasion_effects=bool(occasion_effects))
         rows = frame.index if idx is None else frame.index.take(idx)
         return cls(y=y, X=X, terms=terms, unit_codes=units_codes, units=units,
                    time=time, rows=rows, outcome=screened.outcome,
                    spec=spec, n_dropped=n_dropped, dropped_by_column=dropped_by_column,
-                   n_input_rows=len(frame), stats=stats,
+                   n_input_rows=len(frame), stats=stats, maxabs=maxabs[:-1],
                    lags=None if lagged is None else lagged.report)
+
+
+#: rows per block when the columns of a design are written into X (a block of X stays in
+#: the processor's cache while its columns are written one by one)
+_FILL_ROWS = 8192
 
 
 def _check_finite(values, what, frame, panel, idx):
@@ -678,23 +689,27 @@ def _plain_terms(rhs: str, frame: pd.DataFrame, used) -> list | None:
     return out
 
 
-def _check_columns(X, y, terms, outcome, unit_codes):
+def _check_columns(X, y, terms, outcome, unit_codes, ranges):
     """Refuse a constant outcome, constant covariates and exactly collinear columns; warn
-    about nearly collinear ones. Returns the statistics of ``[X, y]`` (computed in row
-    slices) on which the collinearity checks are made."""
-    if np.ptp(y) == 0:
+    about nearly collinear ones. ``ranges`` is ``(lo, hi)`` of the columns of ``[X, y]``
+    (:func:`bayespanel.suffstats.column_range`). Returns the statistics of ``[X, y]``
+    (computed in row slices) on which the collinearity checks are made, and the largest
+    absolute value of each column of ``[X, y]``."""
+    lo, hi = ranges
+    if hi[-1] - lo[-1] == 0:
         raise PanelDataError(
             f"the outcome {outcome!r} is constant ({float(y[0])!r}) on every row used")
     for j, t in enumerate(terms):
-        if t != "Intercept" and np.ptp(X[:, j]) == 0:
+        if t != "Intercept" and hi[j] - lo[j] == 0:
             raise PanelDataError(
                 f"covariate {t!r} is constant ({float(X[0, j])!r}) on every row used; it cannot be "
                 "told apart from the intercept"
             )
-    _check_magnitudes(X, y, terms, outcome)
+    maxabs = np.maximum(np.abs(hi), np.abs(lo))
+    _check_magnitudes(maxabs, terms, outcome)
     stats = _ss.compute_chunked(X, y, unit_codes, names=list(terms) + [outcome])
-    check_stats(stats, terms, outcome, np.append(_maxabs(X), np.abs(y).max()), stacklevel=6)
-    return stats
+    check_stats(stats, terms, outcome, maxabs, stacklevel=6)
+    return stats, maxabs
 
 
 def check_stats(stats, terms, outcome, maxabs, stacklevel=5):
@@ -752,18 +767,19 @@ EXACT_COLLINEAR_TOL = 1e-12
 MAGNITUDE_LIMITS = (1e-100, 1e100)
 
 
-def _check_magnitudes(X, y, terms, outcome):
+def _check_magnitudes(maxabs, terms, outcome):
     """Refuse columns whose values are too large or too small for double precision.
 
-    The models standardise every column internally, so any scale inside
-    :data:`MAGNITUDE_LIMITS` gives the same answer after back-transformation; beyond it
-    the one-pass cross-products overflow (or vanish), so the column must be rescaled.
+    ``maxabs`` is the largest absolute value of each column of ``[X, y]``. The models
+    standardise every column internally, so any scale inside :data:`MAGNITUDE_LIMITS`
+    gives the same answer after back-transformation; beyond it the one-pass
+    cross-products overflow (or vanish), so the column must be rescaled.
     """
     lo, hi = MAGNITUDE_LIMITS
-    for name, col in [(outcome, y)] + [(t, X[:, j]) for j, t in enumerate(terms)]:
-        size = float(_maxabs(col.reshape(-1, 1))[0]) if len(col) else 0.0
+    for j, name in [(-1, outcome)] + list(enumerate(terms)):
+        size = float(maxabs[j])
         if size > hi or 0 < size < lo:
-            what = "the outcome" if col is y else "term"
+            what = "the outcome" if j < 0 else "term"
             fault = "overflow" if size > hi else "underflow"
             raise PanelDataError(
                 f"{what} {name!r} has values of magnitude {size:.3g}, outside {lo:g}..{hi:g}: "

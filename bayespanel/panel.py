@@ -118,6 +118,22 @@ def _first_pair(df: pd.DataFrame, mask, unit: str, time: str) -> str:
     return f"{unit}={_plain(sel[unit].iloc[0])!r}, {time}={_plain(sel[time].iloc[0])!r}"
 
 
+def _replay(caught):
+    """Give again warnings recorded by ``warnings.catch_warnings(record=True)``, each
+    attributed to the module, file and line that gave it and filtered as
+    ``warnings.warn`` would have filtered it there (that module's registry)."""
+    import sys
+
+    for w in caught:
+        module = registry = None
+        for name, mod in list(sys.modules.items()):
+            if getattr(mod, "__file__", None) == w.filename:
+                module, registry = name, mod.__dict__.setdefault("__warningregistry__", {})
+                break
+        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno,
+                               module=module, registry=registry, source=w.source)
+
+
 def _sort_order(df: pd.DataFrame, unit: str, time: str) -> np.ndarray | None:
     """Positions that sort ``df`` by unit, then occasion (stable); None if it is sorted.
 
@@ -253,6 +269,9 @@ class Panel:
                 f"the panel has {len(counts)} unit in column {unit!r}; at least 2 are needed"
             )
         self._counts = counts
+        # the last design built on this panel, its key and the warnings its build gave
+        # (reused by the next call with the same formula; see design())
+        self._last_design = None
 
     # ------------------------------------------------------------------ structure
     @property
@@ -450,10 +469,36 @@ class Panel:
 
     # ------------------------------------------------------------------ design
     def design(self, formula: str, occasion_effects: bool = False):
-        """Build the design matrices for ``formula`` on this panel (see :class:`Design`)."""
+        """Build the design matrices for ``formula`` on this panel (see :class:`Design`).
+
+        The panel keeps the last design it built: a second call with the same formula and
+        ``occasion_effects`` (as the reference fits and builders of one formula make)
+        returns that design again, with the warnings its build gave repeated, instead of
+        reading the rows again. A panel's table cannot change (pandas' copy-on-write keeps
+        the caller's edits out of it), and a design is not changed by its users, so the
+        result is the one a new build gives. One design is kept, so the memory held is
+        at most one design's.
+        """
         from .design import Design
 
-        return Design.from_panel(self, formula, occasion_effects=occasion_effects)
+        key = (formula, occasion_effects) if (
+            isinstance(formula, str) and type(occasion_effects) is bool) else None
+        last = self._last_design
+        if key is None or last is None or last[0] != key:
+            self._last_design = None  # the old design is not held while a new one is built
+            caught = []
+            try:
+                with warnings.catch_warnings(record=True) as caught:
+                    warnings.simplefilter("always")
+                    design = Design.from_panel(self, formula, occasion_effects=occasion_effects)
+            except BaseException:
+                _replay(caught)  # the warnings given before the error, as without the cache
+                raise
+            last = (key, design, caught)
+            if key is not None:
+                self._last_design = last
+        _replay(last[2])
+        return last[1]
 
     @classmethod
     def from_file(cls, path, unit: str, time: str, **read_kwargs) -> "Panel":

@@ -454,6 +454,93 @@ def _nb_runs(keys, starts):  # pragma: no cover (compiled)
     return m
 
 
+def _nb_range(X, Y, lo, hi, finite):  # pragma: no cover (compiled)
+    """Smallest and largest value of each column of ``[X, Y]`` and whether all its values
+    are finite, in one sweep over the rows (compiled by numba). A NaN is not compared,
+    an infinity is; either clears ``finite``."""
+    k = X.shape[1]
+    for r in range(X.shape[0]):
+        for j in range(k):
+            v = X[r, j]
+            if v < lo[j]:
+                lo[j] = v
+            if v > hi[j]:
+                hi[j] = v
+            if v - v != 0.0:  # NaN for NaN and for an infinity
+                finite[j] = False
+        for j in range(Y.shape[1]):
+            v = Y[r, j]
+            if v < lo[k + j]:
+                lo[k + j] = v
+            if v > hi[k + j]:
+                hi[k + j] = v
+            if v - v != 0.0:
+                finite[k + j] = False
+
+
+def _nb_unit_scores(X, Y, codes, centre, A, v, out):  # pragma: no cover (compiled)
+    """``out[c] += (A d) (v' d)`` over the rows, ``d = [x, y] - centre[c]`` of each row's
+    unit ``c`` (compiled by numba)."""
+    k = X.shape[1]
+    p = k + Y.shape[1]
+    q = A.shape[0]
+    d = np.empty(p)
+    for r in range(X.shape[0]):
+        c = codes[r]
+        s = 0.0
+        for j in range(k):
+            d[j] = X[r, j] - centre[c, j]
+        for j in range(k, p):
+            d[j] = Y[r, j - k] - centre[c, j]
+        for j in range(p):
+            s += v[j] * d[j]
+        for i in range(q):
+            a = 0.0
+            for j in range(p):
+                a += A[i, j] * d[j]
+            out[c, i] += a * s
+
+
+def unit_scores(X, y, codes, centre, A, v):
+    """Per-unit sums ``sum_t (A d_t)(v' d_t)`` with ``d_t = [x_t, y_t] - centre[c_t]`` (the
+    scores of a regression whose rows are linear in the deviations), in one compiled
+    sweep over the rows; None when the compiled kernels are not used for this many rows
+    (:data:`USE_NUMBA`), so that the caller runs its numpy version."""
+    X = np.asarray(X, dtype=float)
+    kern = _kernels_for(X.shape[0])
+    if kern is None:
+        return None
+    A = np.ascontiguousarray(A, dtype=np.float64)
+    out = np.zeros((len(centre), A.shape[0]))
+    kern["scores"](np.ascontiguousarray(X), np.asarray(y, dtype=float).reshape(-1, 1),
+                   np.asarray(codes, dtype=np.int64), np.ascontiguousarray(centre, dtype=float),
+                   A, np.ascontiguousarray(v, dtype=np.float64), out)
+    return out
+
+
+def column_range(X, y):
+    """``(lo, hi, finite)`` of each column of ``[X, y]``: the smallest and largest value
+    and whether every value is finite, read once and never stacked (one compiled sweep
+    over the rows when the kernels are used, see :data:`USE_NUMBA`; else numpy, column by
+    column). Where a column is not finite, ``lo`` and ``hi`` are those of numpy's
+    ``min`` and ``max`` only if it holds no NaN; callers look at ``finite`` first."""
+    X = np.asarray(X, dtype=float)
+    y = np.asarray(y, dtype=float).ravel()
+    n, k = X.shape
+    if n == 0:
+        return np.zeros(k + 1), np.zeros(k + 1), np.ones(k + 1, dtype=bool)
+    kern = _kernels_for(n)
+    if kern is not None:
+        lo, hi = np.full(k + 1, np.inf), np.full(k + 1, -np.inf)
+        finite = np.ones(k + 1, dtype=bool)
+        kern["range"](np.ascontiguousarray(X), y[:, None], lo, hi, finite)
+        return lo, hi, finite
+    cols = [X[:, j] for j in range(k)] + [y]
+    lo = np.array([c.min() for c in cols])
+    hi = np.array([c.max() for c in cols])
+    return lo, hi, np.isfinite(lo) & np.isfinite(hi)  # min and max carry a NaN or an inf
+
+
 def _numba_kernels():
     """The compiled kernels (numba caches them on disk: compiled once per machine), or
     None when numba is not installed or the environment sets ``BAYESPANEL_NUMBA=0``."""
@@ -470,7 +557,8 @@ def _numba_kernels():
                 jit = numba.njit(cache=True, nogil=True)
                 _nb_flush = jit(_nb_flush)  # the kernels below call the compiled version
                 _kernels = {"sorted": jit(_nb_sorted_pass), "sums": jit(_nb_unit_sums),
-                            "within": jit(_nb_within), "runs": jit(_nb_runs)}
+                            "within": jit(_nb_within), "runs": jit(_nb_runs),
+                            "range": jit(_nb_range), "scores": jit(_nb_unit_scores)}
     return _kernels or None
 
 

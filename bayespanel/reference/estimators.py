@@ -337,18 +337,20 @@ def design_scores(res, estimator, design, kind, chunk_rows: int = 1 << 12):
     Ac, Av = A[cols], A.T @ v
     zbar = base.unit_mean
     codes = design.unit_codes
-    scores = np.zeros((ss.n_units, len(cols)))
-    k = design.k
-    for a in range(0, design.n, chunk_rows):
-        b = min(a + chunk_rows, design.n)
-        c = codes[a:b]
-        D = np.empty((b - a, k + 1))
-        D[:, :k] = design.X[a:b]
-        D[:, k] = design.y[a:b]
-        D -= zbar[c]
-        P = (D @ Ac.T) * (D @ Av)[:, None]
-        local = np.flatnonzero(np.concatenate([[True], c[1:] != c[:-1]]))
-        scores[c[local]] += np.add.reduceat(P, local, axis=0)
+    scores = suffstats.unit_scores(design.X, design.y, codes, zbar, Ac, Av)
+    if scores is None:  # the numpy version, in row slices
+        scores = np.zeros((ss.n_units, len(cols)))
+        k = design.k
+        for a in range(0, design.n, chunk_rows):
+            b = min(a + chunk_rows, design.n)
+            c = codes[a:b]
+            D = np.empty((b - a, k + 1))
+            D[:, :k] = design.X[a:b]
+            D[:, k] = design.y[a:b]
+            D -= zbar[c]
+            P = (D @ Ac.T) * (D @ Av)[:, None]
+            local = np.flatnonzero(np.concatenate([[True], c[1:] != c[:-1]]))
+            scores[c[local]] += np.add.reduceat(P, local, axis=0)
     if estimator == "within":
         keep = ss.unit_count > 1
         return scores[keep], int(ss.unit_count[keep].sum()), keep
