@@ -12,6 +12,7 @@ density the model keeps. Sampling is small (2 chains x 500 draws) and each model
 built once per module.
 """
 
+import os
 import warnings
 
 import numpy as np
@@ -189,3 +190,21 @@ def test_a_data_swap_reaches_the_kept_log_density(wage_fits):
         second = model.sample(start="mode", **KW)
     assert abs(first.coef["x1"] - 0.5) < 0.1
     assert abs(second.coef["x1"] - 2.5) < 0.1
+
+
+def test_marginal_chains_run_in_process_with_the_same_draws(grunfeld):
+    """A marginal model's chains run one after another in this process by default
+    (``default_cores``), and the draws for a seed are those of 2 worker processes: PyMC
+    seeds each chain alike in both modes. Grunfeld's investment panel (statsmodels)."""
+    panel = bp.Panel(grunfeld, unit="firm", time="year")
+    model = RandomIntercept(panel, "invest ~ value + capital")
+    kw = dict(draws=100, tune=100, chains=2, seed=11, progress=False, sampler="pymc")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", SamplingWarning)  # small runs; draws compared only
+        default = model.sample(**kw)
+        workers = model.sample(cores=2, **kw)
+    assert default.sampling["cores"] == 1 and workers.sampling["cores"] == 2
+    for name in default.idata.posterior.data_vars:
+        np.testing.assert_array_equal(default.idata.posterior[name].values,
+                                      workers.idata.posterior[name].values)
+    assert smp.default_cores(model, "nutpie", 4) == min(4, os.cpu_count() or 1)

@@ -577,7 +577,10 @@ class GaussianModel:
             bench/bench_models.py).
         progress : bool
         cores : int, optional
-            Chains run in parallel on up to this many cores (default ``min(chains, CPUs)``).
+            Chains run in parallel on up to this many processes (default: 1 for PyMC's
+            sampler with the marginal likelihood, whose chains cost less than starting
+            processes; else ``min(chains, CPUs)``;
+            :func:`bayespanel.models.sampling.default_cores`). The draws do not depend on it.
         target_accept : float
         start : {"mode", "jitter"}, optional
             Where the chains start: ``"mode"`` (the default for the marginal likelihood)

@@ -115,6 +115,23 @@ def _seed(seed):
     return int(seed)
 
 
+def default_cores(model, sampler, chains) -> int:
+    """Processes the chains run in when ``cores`` is not given.
+
+    PyMC's sampler with a marginal model: 1, the chains one after another in this
+    process. Their log density reads a few small matrices (microseconds per gradient at
+    any number of rows), so starting worker processes and sending every draw between
+    processes costs more than the chains themselves: on the demo's random-intercept
+    model, 4 chains x 2,000 iterations took 2.3 times as long in 2 worker processes as in
+    this one (bench/bench_demo.py measures the whole demo). Otherwise ``min(chains,
+    CPUs)``. PyMC seeds each chain the same way in both modes, so the draws for a seed do
+    not depend on ``cores`` (tests/test_warm_start.py checks it).
+    """
+    if sampler == "pymc" and model.likelihood == "marginal":
+        return 1
+    return min(chains, os.cpu_count() or 1)
+
+
 def run(model, *, draws, tune, chains, seed, sampler, progress, cores, target_accept,
         start=None):
     """Sample ``model.pymc_model``; returns ``(DataTree, info)``.
@@ -136,17 +153,17 @@ def run(model, *, draws, tune, chains, seed, sampler, progress, cores, target_ac
         raise choices_error("start", start, STARTS)
     if not (isinstance(target_accept, float) and 0.5 <= target_accept < 1.0):
         raise SpecificationError(f"target_accept={target_accept!r} must be a float in [0.5, 1)")
-    if cores is None:
-        cores = min(chains, os.cpu_count() or 1)
-    cores = check_int("cores", cores, 1)
     seed = _seed(seed)
     chosen = choose_sampler(model) if sampler == "auto" else sampler
+    if cores is None:
+        cores = default_cores(model, chosen, chains)
+    cores = check_int("cores", cores, 1)
     if chosen == "nutpie" and not nutpie_available():
         raise SpecificationError(
             "sampler='nutpie' needs the nutpie package (pip install 'bayespanel[fast]'); "
             "or choose sampler='pymc'")
     info = {"sampler": chosen, "requested_sampler": sampler, "seed": seed, "draws": draws,
-            "tune": tune, "chains": chains, "target_accept": target_accept}
+            "tune": tune, "chains": chains, "target_accept": target_accept, "cores": cores}
     # a start at the mode needs a gradient in every free variable: not with discrete ones
     # (which a user may add to the graph; PyMC's sampler then gives them their own step)
     warm = start != "jitter" and _dense(model) and not model.pymc_model.discrete_value_vars
