@@ -39,9 +39,15 @@ class DesignSpec:
     unit: str
     time: str
     occasion_effects: bool = False
+    #: whether the initial conditions of a lagged outcome are modelled (bayespanel.initial);
+    #: None when the formula does not lag the outcome (and then left out of to_dict)
+    initial_conditions: bool | None = None
 
     def to_dict(self) -> dict:
-        return asdict(self)
+        d = asdict(self)
+        if d["initial_conditions"] is None:
+            del d["initial_conditions"]
+        return d
 
 
 @dataclass(frozen=True)
@@ -185,6 +191,8 @@ class Design:
         #: the lags of the formula and the rows they left out (bayespanel.lags.LagReport),
         #: None when the formula has no lag(...)
         self.lags = lags
+        #: the initial-conditions columns (bayespanel.initial.InitialConditions), or None
+        self.initial = None
         if np.any(self.unit_codes[1:] < self.unit_codes[:-1]):
             raise ValueError("Design rows must be sorted by unit")
         self.T = np.bincount(self.unit_codes, minlength=len(self.units)).astype(np.int64)
@@ -314,8 +322,14 @@ class Design:
                 f"no covariate in {self.spec.formula!r} varies within units, so a "
                 f"{kind.replace('_', '-')} model has no within part to estimate"
             )
-        tb = tv if kind == "within" else self._with_between_part(tv)
-        A, B, terms = kind_transform(self.terms, tv, tb, kind)
+        if self.initial is not None:  # the lagged outcome kept whole (bayespanel.initial)
+            from .initial import transform_columns
+
+            names, tv, tb = transform_columns(self, kind, tv)
+        else:
+            names = self.terms
+            tb = tv if kind == "within" else self._with_between_part(tv)
+        A, B, terms = kind_transform(names, tv, tb, kind)
         return A, B, (terms if structured else term_labels(terms))
 
     def suffstats(self, kind: str = "random") -> _ss.SuffStats:
@@ -441,15 +455,23 @@ class Design:
         rowmask = np.asarray(rowmask, dtype=bool)
         codes = self.unit_codes[rowmask]
         present, new_codes = np.unique(codes, return_inverse=True)
-        return Design(y=self.y[rowmask], X=self.X[rowmask], terms=self.terms,
+        out = Design(y=self.y[rowmask], X=self.X[rowmask], terms=self.terms,
                       unit_codes=new_codes, units=self.units[present], time=self.time[rowmask],
                       rows=self.rows[rowmask], outcome=self.outcome, spec=self.spec,
                       lags=self.lags)
+        out.initial = self.initial  # its columns stay those of the whole sample
+        return out
 
     # ------------------------------------------------------------------ builders
     @classmethod
-    def from_panel(cls, panel, formula: str, occasion_effects: bool = False) -> "Design":
+    def from_panel(cls, panel, formula: str, occasion_effects: bool = False,
+                   initial_conditions: bool = True) -> "Design":
         """Screen the formula, drop incomplete rows (reported), and build the matrices.
+
+        ``lag(x)`` and ``lag(x, k)`` are made columns first (:mod:`bayespanel.lags`).
+        When the formula lags the outcome and ``initial_conditions`` is True (the
+        default), the design carries the initial-conditions columns of Wooldridge (2005)
+        (:func:`bayespanel.initial.apply`); False leaves them out, with a warning.
 
         Reads only the columns the formula uses, in the panel's (unit, occasion) order.
         Plain numeric terms and the intercept are written column by column into one
@@ -464,6 +486,7 @@ class Design:
         from .lags import expand
 
         occasion_effects = check_flag("occasion_effects", occasion_effects)
+        initial_conditions = check_flag("initial_conditions", initial_conditions)
         frame = panel._df
         lagged = expand(formula, panel)  # lag(x): columns of their own, made on the table
         if lagged is None:
@@ -589,14 +612,47 @@ class Design:
         for j in np.flatnonzero(~finite[:-1]):
             _check_finite(X[:, j], f"term {terms[j]!r}", frame, panel, idx)
         stats, maxabs = _check_columns(X, y, terms, screened.outcome, units_codes, (lo, hi))
+        dynamic = lagged is not None and lagged.report.has_lagged_outcome
         spec = DesignSpec(formula=formula, unit=panel.unit, time=panel.time,
-                          occasion_effects=bool(occasion_effects))
+                          occasion_effects=bool(occasion_effects),
+                          initial_conditions=initial_conditions if dynamic else None)
         rows = frame.index if idx is None else frame.index.take(idx)
-        return cls(y=y, X=X, terms=terms, unit_codes=units_codes, units=units,
-                   time=time, rows=rows, outcome=screened.outcome,
-                   spec=spec, n_dropped=n_dropped, dropped_by_column=dropped_by_column,
-                   n_input_rows=len(frame), stats=stats, maxabs=maxabs[:-1],
-                   lags=None if lagged is None else lagged.report)
+        design = cls(y=y, X=X, terms=terms, unit_codes=units_codes, units=units,
+                     time=time, rows=rows, outcome=screened.outcome,
+                     spec=spec, n_dropped=n_dropped, dropped_by_column=dropped_by_column,
+                     n_input_rows=len(frame), stats=stats, maxabs=maxabs[:-1],
+                     lags=None if lagged is None else lagged.report)
+        if dynamic:
+            if initial_conditions:
+                return design.with_initial_conditions()
+            from .initial import notes
+
+            warnings.warn(notes(design, [])[0], DataHandlingWarning, stacklevel=3)
+        return design
+
+    def with_initial_conditions(self) -> "Design":
+        """This design with the initial-conditions columns of a lagged outcome
+        (:func:`bayespanel.initial.columns`: the lagged outcome on each unit's first row
+        and the unit means of the other time-varying covariates), on the same rows; the
+        design itself when its formula does not lag the outcome."""
+        from .initial import columns
+
+        added = None if self.initial is not None else columns(self)
+        if added is None:
+            return self
+        M, labels, info = added
+        X = np.column_stack([self.X, M])
+        terms = list(self.terms) + labels
+        stats, maxabs = _check_columns(X, self.y, terms, self.outcome, self.unit_codes,
+                                       _ss.column_range(X, self.y)[:2])
+        out = Design(y=self.y, X=X, terms=terms, unit_codes=self.unit_codes,
+                     units=self.units, time=self.time, rows=self.rows, outcome=self.outcome,
+                     spec=self.spec, n_dropped=self.n_dropped,
+                     dropped_by_column=self.dropped_by_column,
+                     n_input_rows=self.n_input_rows, stats=stats, lags=self.lags,
+                     maxabs=maxabs[:-1])
+        out.initial = info
+        return out
 
 
 #: rows per block when the columns of a design are written into X (a block of X stays in

@@ -468,7 +468,8 @@ class Panel:
         return describe_frame(rows, left_out)
 
     # ------------------------------------------------------------------ design
-    def design(self, formula: str, occasion_effects: bool = False):
+    def design(self, formula: str, occasion_effects: bool = False,
+               initial_conditions: bool = True):
         """Build the design matrices for ``formula`` on this panel (see :class:`Design`).
 
         The panel keeps the last design it built: a second call with the same formula and
@@ -481,8 +482,9 @@ class Panel:
         """
         from .design import Design
 
-        key = (formula, occasion_effects) if (
-            isinstance(formula, str) and type(occasion_effects) is bool) else None
+        key = (formula, occasion_effects, initial_conditions) if (
+            isinstance(formula, str) and type(occasion_effects) is bool
+            and type(initial_conditions) is bool) else None
         last = self._last_design
         if key is None or last is None or last[0] != key:
             self._last_design = None  # the old design is not held while a new one is built
@@ -490,7 +492,8 @@ class Panel:
             try:
                 with warnings.catch_warnings(record=True) as caught:
                     warnings.simplefilter("always")
-                    design = Design.from_panel(self, formula, occasion_effects=occasion_effects)
+                    design = Design.from_panel(self, formula, occasion_effects=occasion_effects,
+                                               initial_conditions=initial_conditions)
             except BaseException:
                 _replay(caught)  # the warnings given before the error, as without the cache
                 raise

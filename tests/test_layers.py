@@ -43,7 +43,7 @@ LAYERS: list[tuple[str, tuple[str, ...]]] = [
     # (resultshape: the names every result answers with and the partition result type,
     # which reference fits and posteriors both return; it needs pandas)
     ("data", ("panel", "columns", "formula", "io", "design", "engines", "datasets",
-              "resultshape", "lags")),
+              "resultshape", "lags", "initial")),
     ("reference", ("reference",)),
     ("bayes", ("models", "posterior")),
     ("analysis", ("partition", "contrasts", "loo", "comparison", "sensitivity", "recovery",

@@ -180,6 +180,7 @@ class GaussianModel:
 
         if wants_latent(kwargs):
             errors = kwargs.pop("errors", "iid")
+            kwargs.pop("initial_conditions", None)  # read by the design (bayespanel.initial)
             if errors != "iid":
                 _check_errors(errors)
                 ar1.refuse_pending(errors, "family= other than 'gaussian' and random_slopes=")
@@ -187,13 +188,17 @@ class GaussianModel:
         return super().__new__(cls)
 
     def __init__(self, panel, formula, priors=None, likelihood="marginal",
-                 occasion_effects=False, family="gaussian", errors="iid"):
+                 occasion_effects=False, family="gaussian", errors="iid",
+                 initial_conditions=True):
         self._check_likelihood(likelihood)
         self._set_errors(errors, likelihood)
         if not isinstance(occasion_effects, (bool, np.bool_)):
             raise SpecificationError(
                 f"occasion_effects={occasion_effects!r} must be True or False")
-        design = panel.design(formula, occasion_effects=bool(occasion_effects))
+        # initial_conditions is passed only when not the default (a partitioned source's
+        # design has no lags, nor the option)
+        extra = {} if initial_conditions is True else {"initial_conditions": initial_conditions}
+        design = panel.design(formula, occasion_effects=bool(occasion_effects), **extra)
         self._init_design(design, priors, likelihood)
 
     def _set_errors(self, errors, likelihood):
@@ -218,6 +223,10 @@ class GaussianModel:
         return obj
 
     def _init_design(self, design, priors, likelihood):
+        from ..initial import notes
+
+        for text in notes(design, [type(self).__name__])[1:]:  # fixed effects, pooled
+            warnings.warn(text, DataHandlingWarning, stacklevel=4)
         stats = self._design_stats(design)
         labels = list(stats.names[:-1])
         self.design = design

@@ -151,11 +151,12 @@ class _BuiltThrough:
     _builder = None
 
     def __init__(self, panel, formula, priors=None, likelihood=None, occasion_effects=False,
-                 errors="iid", **options):
+                 errors="iid", initial_conditions=True, **options):
         # errors: the builders' option; anything but "iid" was refused by their __new__
         LatentModel.__init__(self, panel, formula, builder=self._builder.__name__,
                              kind=self._builder.kind, priors=priors, likelihood=likelihood,
-                             occasion_effects=occasion_effects, **options)
+                             occasion_effects=occasion_effects,
+                             initial_conditions=initial_conditions, **options)
 
     def _refuse(self, what, instead):
         raise SpecificationError(
@@ -240,7 +241,8 @@ class LatentModel:
 
     def __init__(self, panel, formula, *, builder="RandomIntercept", kind="random",
                  priors=None, likelihood=None, occasion_effects=False, family="gaussian",
-                 random_slopes=None, trials=None, exposure=None, centred=False):
+                 random_slopes=None, trials=None, exposure=None, centred=False,
+                 initial_conditions=True):
         fam = fam_mod.get_family(family)
         if not isinstance(centred, (bool, np.bool_)):
             raise SpecificationError(f"centred={centred!r} must be True or False")
@@ -258,7 +260,8 @@ class LatentModel:
                 f"call {builder} without the latent options")
         self.builder, self.kind, self.family = builder, kind, fam
         self.likelihood = likelihood
-        design = panel.design(formula, occasion_effects=occasion_effects)
+        extra = {} if initial_conditions is True else {"initial_conditions": initial_conditions}
+        design = panel.design(formula, occasion_effects=occasion_effects, **extra)
         M, labels = design.matrices(kind)
         trials_arr, trials_name = _column_values(panel, design, trials, "trials")
         expo_arr, expo_name = _column_values(panel, design, exposure, "exposure")
