@@ -13,9 +13,8 @@ and describing a table stays quick.
 
 from importlib import import_module
 
-from . import datasets, errors, suffstats
-from .design import Design, DesignSpec
-from .errors import (
+from .core import errors, suffstats
+from .core.errors import (
     BayespanelError,
     EstimationError,
     FormulaError,
@@ -23,32 +22,34 @@ from .errors import (
     SamplingWarning,
     SpecificationError,
 )
-from .panel import Panel
+from .data import datasets
+from .data.design import Design, DesignSpec
+from .data.panel import Panel
 
-from .version import __version__  # noqa: E402,F401
+from .core.version import __version__  # noqa: E402,F401
 
 # name -> (module, attribute or None for the module itself)
 _LAZY = {
     "reference": ("reference", None),
-    "models": ("models", None),
-    "posterior": ("posterior", None),
-    "loo": ("loo", None),
-    "partition": ("partition", None),
-    "contrasts": ("contrasts", None),
+    "models": ("bayes", None),
+    "posterior": ("bayes.posterior", None),
+    "loo": ("analysis.loo", None),
+    "partition": ("analysis.partition", None),
+    "contrasts": ("analysis.contrasts", None),
     "report": ("report", None),
-    "runner": ("runner", None),
-    "engines": ("engines", None),
-    "sensitivity": ("sensitivity", None),
-    "Pooled": ("models", "Pooled"),
-    "RandomIntercept": ("models", "RandomIntercept"),
-    "WithinBetween": ("models", "WithinBetween"),
-    "CorrelatedEffects": ("models", "CorrelatedEffects"),
-    "FixedEffects": ("models", "FixedEffects"),
-    "Prior": ("models", "Prior"),
-    "Posterior": ("posterior", "Posterior"),
-    "compare": ("comparison", "compare"),
-    "coef_table": ("comparison", "coef_table"),
-    "design_check": ("recovery", "design_check"),
+    "runner": ("app.runner", None),
+    "engines": ("data.sources", None),
+    "sensitivity": ("analysis.sensitivity", None),
+    "Pooled": ("bayes", "Pooled"),
+    "RandomIntercept": ("bayes", "RandomIntercept"),
+    "WithinBetween": ("bayes", "WithinBetween"),
+    "CorrelatedEffects": ("bayes", "CorrelatedEffects"),
+    "FixedEffects": ("bayes", "FixedEffects"),
+    "Prior": ("bayes", "Prior"),
+    "Posterior": ("bayes.posterior", "Posterior"),
+    "compare": ("analysis.comparison", "compare"),
+    "coef_table": ("analysis.comparison", "coef_table"),
+    "design_check": ("analysis.recovery", "design_check"),
 }
 
 __all__ = [

@@ -36,7 +36,7 @@ def main(argv=None):
     args = ap.parse_args(argv)
 
     import bayespanel as bp
-    from bayespanel.recovery import design_check, simulate_outcome
+    from bayespanel.analysis.recovery import design_check, simulate_outcome
 
     warnings.simplefilter("ignore")
     df, truth = bp.datasets.clinic_panel(n_clinics=args.units, seed=7)

@@ -61,8 +61,8 @@ def job_marginal(n_rows, sampler, draws, tune, chains):
     import pandas as pd
 
     import bayespanel as bp
-    from bayespanel import suffstats
-    from bayespanel.models import RandomIntercept
+    from bayespanel.core import suffstats
+    from bayespanel.bayes import RandomIntercept
 
     X, y, codes = simulate(n_rows)
     df = pd.DataFrame(X, columns=[f"x{j}" for j in range(5)])

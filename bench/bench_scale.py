@@ -161,7 +161,7 @@ def main(argv=None):
 
     sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
     import bayespanel as bp
-    from bayespanel.engines.dask import close_local_client, local_client
+    from bayespanel.data.sources.dask import close_local_client, local_client
 
     path = Path(args.path) / f"rows{args.rows}-g{args.partition_rows}"
     files = args.files or max(2, args.rows // 1_000_000)

@@ -63,7 +63,7 @@ def _cpu_best(fn, repeat=3):
 
 # ---------------------------------------------------------------------------- jobs
 def job_pass(args):
-    from bayespanel import suffstats
+    from bayespanel.core import suffstats
 
     X, y, codes = simulate(args.rows)
     N = int(codes[-1]) + 1
@@ -96,8 +96,8 @@ def job_pass(args):
 def job_sample(args):
     import warnings
 
-    from bayespanel import suffstats
-    from bayespanel.models import RandomIntercept
+    from bayespanel.core import suffstats
+    from bayespanel.bayes import RandomIntercept
 
     X, y, codes = simulate(args.rows)
     stats = suffstats.compute(np.column_stack([np.ones(len(y)), X]), y, codes)

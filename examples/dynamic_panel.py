@@ -25,7 +25,7 @@ import numpy as np
 import pandas as pd
 
 import bayespanel as bp
-from bayespanel.models import RandomIntercept
+from bayespanel.bayes import RandomIntercept
 
 try:
     from _common import sampling

@@ -15,8 +15,8 @@ import numpy as np
 import pandas as pd
 
 import bayespanel as bp
-from bayespanel.comparison import compare
-from bayespanel.models import FixedEffects, RandomIntercept
+from bayespanel.analysis.comparison import compare
+from bayespanel.bayes import FixedEffects, RandomIntercept
 
 try:
     from _common import sampling

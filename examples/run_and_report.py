@@ -11,7 +11,7 @@ import sys
 import warnings
 
 import bayespanel as bp
-from bayespanel.runner import Settings, run
+from bayespanel.app.runner import Settings, run
 
 try:
     from _common import sampling

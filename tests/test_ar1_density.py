@@ -13,9 +13,9 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from bayespanel import ar1
-from bayespanel.errors import PanelDataError
-from bayespanel.models.gaussian import within_loglik
+from bayespanel.core import ar1
+from bayespanel.core.errors import PanelDataError
+from bayespanel.core.gaussian import within_loglik
 
 
 def _panel(seed, n_units=23, k=3, integer=True, max_t=7):
@@ -127,7 +127,7 @@ def test_fixed_effects_is_the_flat_prior_integral(panel):
 
 
 def test_fixed_effects_at_rho_zero_is_the_iid_within_likelihood(panel):
-    # the iid within likelihood of models.gaussian.within_loglik (itself checked elsewhere against
+    # the iid within likelihood of core.gaussian.within_loglik (itself checked elsewhere against
     # statsmodels); consistency of the two forms
     Z, keys, times, st = panel
     v = np.append(-B, 1.0)

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from bayespanel import ar1
+from bayespanel.core import ar1
 
 
 def _panel(seed=4, n_units=17, max_t=6):

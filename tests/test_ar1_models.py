@@ -19,8 +19,8 @@ from pytensor.graph.replace import clone_replace
 from scipy import linalg, stats
 
 import bayespanel as bp
-from bayespanel.errors import DataHandlingWarning, SpecificationError
-from bayespanel.models import builders as B
+from bayespanel.core.errors import DataHandlingWarning, SpecificationError
+from bayespanel.bayes import builders as B
 
 
 def _frame(seed=3, n_units=14, integer=True):
@@ -200,7 +200,7 @@ def test_downstream_refuses_clearly(ar1_fit, tmp_path):
         with pytest.raises(SpecificationError, match="errors='ar1'.*not available yet|"
                                                      "not available yet.*errors='ar1'"):
             call()
-    from bayespanel import sensitivity
+    from bayespanel.analysis import sensitivity
     with pytest.raises(SpecificationError, match="errors='ar1'"):
         sensitivity.power_scaling(ar1_fit)
     with pytest.raises(SpecificationError, match="errors='ar1'"):

@@ -3,7 +3,7 @@ own error naming the problem (exit code 2 at the command line), or handled in a 
 and reported way. None returns numbers, none shows a traceback from a dependency.
 
 Each row of :data:`CASES` is one kind of bad input, run through the Python API and, where
-the command line has the option, through ``bayespanel.cli.main`` in-process (one case also
+the command line has the option, through ``bayespanel.app.cli.main`` in-process (one case also
 through a real ``python -m bayespanel`` subprocess). The sampler is replaced by a tripwire
 for the whole module, so a case that reaches sampling fails.
 
@@ -29,12 +29,12 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel import models
-from bayespanel.cli import main
-from bayespanel.contrasts import ContrastResult
-from bayespanel.errors import (BayespanelError, DataHandlingWarning, EstimationError,
+from bayespanel import bayes as models
+from bayespanel.app.cli import main
+from bayespanel.analysis.contrasts import ContrastResult
+from bayespanel.core.errors import (BayespanelError, DataHandlingWarning, EstimationError,
                                FormulaError, PanelDataError, SpecificationError)
-from bayespanel.runner import Settings
+from bayespanel.app.runner import Settings
 
 F = "invest ~ value + capital"
 UNIT, TIME = "firm", "year"
@@ -55,7 +55,7 @@ def base(grunfeld) -> pd.DataFrame:
 @pytest.fixture(autouse=True)
 def no_sampling(monkeypatch):
     """A tripwire: bad input must be refused before the sampler starts."""
-    import bayespanel.models.sampling as sampling
+    import bayespanel.bayes.sampling as sampling
 
     def tripwire(*args, **kwargs):
         raise AssertionError("sampling started on bad input")

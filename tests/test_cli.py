@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from bayespanel.cli import build_parser, main
+from bayespanel.app.cli import build_parser, main
 
 FORMULA = "lwage ~ exper + expersq + union + married + educ + black"
 
@@ -84,7 +84,7 @@ def test_analysis_file_repeats_the_run(ref_run, tmp_path, wage_panel):
 def test_bayesian_fit_writes_a_posterior_that_reloads(wage_csv, wage_panel, tmp_path):
     from linearmodels.panel import PanelOLS
 
-    from bayespanel.posterior import Posterior
+    from bayespanel.bayes.posterior import Posterior
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -140,7 +140,7 @@ def test_bad_files_exit_two(tmp_path, capsys):
 
 
 def test_failure_exits_one(tmp_path, capsys, monkeypatch):
-    import bayespanel.runner as runner
+    import bayespanel.app.runner as runner
 
     def boom(*a, **k):
         raise RuntimeError("disk on fire")

@@ -119,7 +119,7 @@ def test_binary_marginal_effects_are_the_derivative_of_the_marginal_mean(union_r
     probability, the unit effect integrated on a fine grid (not the quadrature used)."""
     from scipy.special import expit
 
-    from bayespanel.models.latent import LatentPosterior
+    from bayespanel.bayes.latent import LatentPosterior
 
     out, res, _ = union_run
     m = res["models"][0]
@@ -179,7 +179,7 @@ def test_binary_outputs_tell_one_story(union_run):
     # the analysis file holds the family and repeats the run's settings
     toml = tomllib.loads((out / "analysis.toml").read_text("utf-8"))
     assert toml["model"]["family"] == "bernoulli"
-    from bayespanel.runner import load_settings
+    from bayespanel.app.runner import load_settings
 
     again = load_settings(out / "analysis.toml")
     assert again.family == "bernoulli" and again.models == ("within_between",)
@@ -279,7 +279,7 @@ def test_count_in_the_hundreds(employ_run, jobs_csv):
 ])
 def test_options_that_do_not_fit_the_family_are_refused_up_front(wage_csv, tmp_path, extra,
                                                                    words, capsys):
-    from bayespanel.cli import main  # in process: the refusal comes before any work
+    from bayespanel.app.cli import main  # in process: the refusal comes before any work
 
     rc = main(["fit", str(wage_csv), "--unit", "nr", "--time", "year", "--formula", UNION_F,
                *extra, "--out", str(tmp_path / "x")])
@@ -310,7 +310,7 @@ def test_zero_one_outcome_fitted_as_gaussian_gets_a_note(wage_csv, tmp_path):
 
 
 def test_analysis_file_round_trip_of_family_settings(tmp_path):
-    from bayespanel.runner import Settings, load_settings
+    from bayespanel.app.runner import Settings, load_settings
 
     s = Settings(unit="fcode", time="year", formula="totrain ~ grant", data="jobs.csv",
                  family="negative_binomial", exposure="employ", random_slopes=("grant",),
@@ -327,7 +327,7 @@ def test_analysis_file_round_trip_of_family_settings(tmp_path):
 def test_ppc_statistics_fit_the_outcome_range(jobs, wage_panel):
     """Counts in the hundreds get no shares of small values; binary outcomes get the
     switching rate, computed here directly with pandas on the public panels."""
-    from bayespanel.models.families import ppc_statistics
+    from bayespanel.bayes.families import ppc_statistics
 
     d = jobs.sort_values(["fcode", "year"])
     codes = pd.factorize(d["fcode"])[0]

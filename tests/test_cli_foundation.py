@@ -6,7 +6,7 @@ import sys
 
 import pytest
 
-from bayespanel.cli import main
+from bayespanel.app.cli import main
 
 
 def test_describe_cli_on_grunfeld_csv(tmp_path, grunfeld, capsys):

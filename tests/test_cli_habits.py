@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pytest
 
-from bayespanel.cli import build_parser, format_warning
+from bayespanel.app.cli import build_parser, format_warning
 
 sys.path.insert(0, str(Path(__file__).parent))
 from test_cli_public import run_cli  # noqa: E402

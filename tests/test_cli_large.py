@@ -16,7 +16,7 @@ import warnings
 import numpy as np
 import pytest
 
-from bayespanel.cli import main
+from bayespanel.app.cli import main
 
 FORMULA = "lwage ~ exper + expersq + union + married + educ + black"
 
@@ -154,7 +154,7 @@ def test_out_of_core_results_validate_and_say_what_is_left_out(runs, wage_files)
     import jsonschema  # outside check: the jsonschema library's Draft 2020-12 validator
 
     import bayespanel as bp
-    from bayespanel.runner import load_settings
+    from bayespanel.app.runner import load_settings
 
     memory, large = runs
     schema = bp.report.results_json.schema()
@@ -190,7 +190,7 @@ def test_a_parquet_folder_is_fingerprinted_for_reruns(tmp_path, wage_panel):
     # rerun of the analysis file warn.
     import hashlib
 
-    from bayespanel.runner import Settings, _source
+    from bayespanel.app.runner import Settings, _source
 
     folder = tmp_path / "parts"
     folder.mkdir()

@@ -30,7 +30,7 @@ SMALL = ["--draws", "100", "--tune", "150", "--chains", "2"]
 def run_cli(*args, code=None, env=None):
     """``python -m bayespanel ARGS`` in a subprocess (``code``: Python run before main)."""
     cmd = [sys.executable, "-m", "bayespanel", *map(str, args)] if code is None else [
-        sys.executable, "-c", code + "\nfrom bayespanel.cli import main\n"
+        sys.executable, "-c", code + "\nfrom bayespanel.app.cli import main\n"
         "sys.exit(main(sys.argv[1:]))", *map(str, args)]
     return subprocess.run(cmd, capture_output=True, text=True,
                           env={**os.environ, **(env or {})}, timeout=900)
@@ -93,7 +93,7 @@ def test_occasion_effects_with_hybrid_and_mundlak_from_the_command_line(munnell_
 
 def test_a_failed_model_does_not_lose_the_others(grunfeld_csv, tmp_path):
     # a fault injected into one builder's sampler (the run must go on without it)
-    inject = ("import sys, bayespanel.models as m\n"
+    inject = ("import sys, bayespanel.bayes as m\n"
               "def boom(self, *a, **k):\n"
               "    raise FloatingPointError('log density is not finite at the start')\n"
               "m.WithinBetween.sample = boom")

@@ -18,15 +18,15 @@ import numpy as np
 import pytest
 
 import bayespanel as bp
-from bayespanel.comparison import COMPARE_COLUMNS, coef_table, compare
-from bayespanel.errors import SpecificationError
+from bayespanel.analysis.comparison import COMPARE_COLUMNS, coef_table, compare
+from bayespanel.core.errors import SpecificationError
 
 KW = dict(draws=300, tune=300, chains=2, seed=9, progress=False, cores=1)
 
 
 @pytest.fixture(scope="module")
 def fits(demo):
-    from bayespanel.models import RandomIntercept, WithinBetween
+    from bayespanel.bayes import RandomIntercept, WithinBetween
 
     df, truth = demo
     with warnings.catch_warnings():
@@ -135,7 +135,7 @@ def test_coef_table_aligns_terms(fits):
 @pytest.mark.slow
 def test_psis_unit_loo_agrees_with_exact_refits():
     """PSIS-LOO vs exact leave-one-unit-out refits (K-fold with K = number of units)."""
-    from bayespanel.models import RandomIntercept
+    from bayespanel.bayes import RandomIntercept
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -148,7 +148,7 @@ def test_psis_unit_loo_agrees_with_exact_refits():
     assert exact.n_points == 6 and exact.method == "grouped K-fold (K=6)"
     assert abs(psis.elpd - exact.elpd) < psis.se
     # the exact refit used for high Pareto k is the same computation as a one-unit fold
-    from bayespanel.loo.psis import _exact_points
+    from bayespanel.analysis.loo.psis import _exact_points
 
     j = int(exact.pointwise["position"].iloc[0])
     one = _exact_points(bp.loo.from_posterior(post), "unit", [j], {})

@@ -7,7 +7,7 @@ The command line runs as a subprocess, as a researcher runs it. Outside checks:
   built anew on the panel without the point, sampled with many draws) gives the same
   log predictive density within Monte Carlo error;
 * exact cross-validation of the reference fits at every size: 4,360 rows are scored by
-  exact leave-one-out, equal to :func:`bayespanel.loo.reference_cv`;
+  exact leave-one-out, equal to :func:`bayespanel.analysis.loo.reference_cv`;
 * stacking weights of equivalent models: the class weights equal a direct maximisation
   of the stacking objective (Yao et al. 2018) with scipy.optimize on the same pointwise
   values, and equivalent members share their class's weight equally.
@@ -28,8 +28,8 @@ from scipy import optimize
 from scipy.special import logsumexp
 
 import bayespanel as bp
-from bayespanel.comparison import compare, equivalence_classes
-from bayespanel.posterior import Posterior
+from bayespanel.analysis.comparison import compare, equivalence_classes
+from bayespanel.bayes.posterior import Posterior
 from bayespanel.report.problems import problems
 
 F = "invest ~ value + capital"
@@ -212,7 +212,8 @@ def test_refit_high_k_from_the_command_line(grunfeld_csv, grunfeld, tmp_path):
 def _brute_force_term(grunfeld, firm, year, post):
     """log p(y_row | other rows) by sampling the random intercept anew without the row
     (same priors, 4 x 1000 draws), with its Monte Carlo SE (iid draws)."""
-    from bayespanel.models import RandomIntercept, gaussian
+    from bayespanel.bayes import RandomIntercept
+    from bayespanel.core import gaussian
 
     row = grunfeld[(grunfeld["firm"] == firm) & (grunfeld["year"] == year)]
     rest = grunfeld.drop(index=row.index)

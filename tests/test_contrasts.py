@@ -18,8 +18,8 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel.contrasts import contrast_draws, specification_tests
-from bayespanel.errors import SpecificationError
+from bayespanel.analysis.contrasts import contrast_draws, specification_tests
+from bayespanel.core.errors import SpecificationError
 
 WAGE = "lwage ~ exper + hours + married + union + educ + black"
 WAGE_TV = ["exper", "hours", "married", "union"]
@@ -33,7 +33,7 @@ def wage(wage_panel):
 
 @pytest.fixture(scope="module")
 def wage_post(wage):
-    from bayespanel.models import WithinBetween
+    from bayespanel.bayes import WithinBetween
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -43,7 +43,7 @@ def wage_post(wage):
 @pytest.fixture(scope="module")
 def equal_effects_post():
     """Simulated panel (known truth) with within effect = between effect = 1.0."""
-    from bayespanel.models import WithinBetween
+    from bayespanel.bayes import WithinBetween
 
     rng = np.random.default_rng(11)
     N, T = 40, 5
@@ -107,7 +107,7 @@ def test_mundlak_unit_mean_coefficient_is_the_contrast(wage):
     # Mundlak (1978): same contrast and SE from either parametrisation
     mu = bp.reference.mundlak(wage, WAGE, method="reml", cov="cluster")
     wb = bp.reference.within_between(wage, WAGE, method="reml", cov="cluster")
-    from bayespanel.contrasts import _reference_contrast
+    from bayespanel.analysis.contrasts import _reference_contrast
 
     a = _reference_contrast(mu, WAGE_TV, 0.95)
     b = _reference_contrast(wb, WAGE_TV, 0.95)
@@ -126,7 +126,7 @@ def test_contrast_options_and_refusals(wage):
     np.testing.assert_allclose(D[:, 3], coef[:, j_b] - coef[:, j_w])
     with pytest.raises(SpecificationError, match="WithinBetween or CorrelatedEffects"):
         contrast_draws("random", d.terms, WAGE_TV, coef[:, :len(d.terms)])
-    from bayespanel.contrasts import ContrastResult
+    from bayespanel.analysis.contrasts import ContrastResult
 
     with pytest.raises(SpecificationError, match="rope"):
         ContrastResult(D, WAGE_TV, "within_between", rope=-1)

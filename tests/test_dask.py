@@ -17,9 +17,9 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel import derived
-from bayespanel.engines.dask import DaskPanel
-from bayespanel.errors import (DataHandlingWarning, FormulaError, PanelDataError,
+from bayespanel.core import derived
+from bayespanel.data.sources.dask import DaskPanel
+from bayespanel.core.errors import (DataHandlingWarning, FormulaError, PanelDataError,
                                SpecificationError)
 
 dd = pytest.importorskip("dask.dataframe")

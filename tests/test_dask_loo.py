@@ -1,6 +1,6 @@
 """Occasion-level sub-sampled LOO out of core equals the in-memory estimator.
 
-The Dask path chooses the same seeded sample of rows as bayespanel.loo.loo_subsample,
+The Dask path chooses the same seeded sample of rows as bayespanel.analysis.loo.loo_subsample,
 scores every row at the posterior means in one pass (keeping only the sum and the sum of
 squares) and the sampled rows per draw; with the same draws it must give the same
 estimate, standard errors, effective number of parameters and pointwise values (to 1e-10
@@ -20,10 +20,10 @@ import numpy as np
 import pytest
 
 import bayespanel as bp
-from bayespanel.loo.subsample import diff_estimator
-from bayespanel.engines.dask import DaskPanel
-from bayespanel.errors import DataHandlingWarning, SamplingWarning, SpecificationError
-from bayespanel.loo import from_draws, loo_subsample
+from bayespanel.analysis.loo.subsample import diff_estimator
+from bayespanel.data.sources.dask import DaskPanel
+from bayespanel.core.errors import DataHandlingWarning, SamplingWarning, SpecificationError
+from bayespanel.analysis.loo import from_draws, loo_subsample
 
 dd = pytest.importorskip("dask.dataframe")
 

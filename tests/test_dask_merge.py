@@ -1,7 +1,7 @@
 """The low-memory merges of the Dask pass give what the in-memory path gives.
 
 Files sorted by unit leave pieces whose units do not overlap, or share only the unit split
-between consecutive partitions; those are merged by concatenation (bayespanel.engines.
+between consecutive partitions; those are merged by concatenation (bayespanel.data.sources.
 _merge.chain). Any other overlap takes the general merge. Every layout is checked against
 the in-memory path on the same rows (to 1e-10 relative), and the per-unit cross-products
 against a direct per-unit computation in extended precision (numpy longdouble).
@@ -14,9 +14,9 @@ import numpy as np
 import pytest
 
 import bayespanel as bp
-from bayespanel import derived, suffstats
-from bayespanel.engines import _merge
-from bayespanel.engines.dask import DaskPanel
+from bayespanel.core import derived, suffstats
+from bayespanel.data.sources import _merge
+from bayespanel.data.sources.dask import DaskPanel
 
 dd = pytest.importorskip("dask.dataframe")
 
@@ -177,7 +177,7 @@ def test_sorted_files_with_dropped_rows_match_memory(wage, count_general):
     # all rows, the statistics the kept ones, both merged by concatenation.
     import warnings
 
-    from bayespanel.errors import DataHandlingWarning
+    from bayespanel.core.errors import DataHandlingWarning
 
     df, _, _ = wage
     df = df.copy()

@@ -20,8 +20,8 @@ import numpy as np
 import pytest
 
 import bayespanel as bp
-from bayespanel.engines.dask import DaskPanel
-from bayespanel.errors import DataHandlingWarning
+from bayespanel.data.sources.dask import DaskPanel
+from bayespanel.core.errors import DataHandlingWarning
 
 dd = pytest.importorskip("dask.dataframe")
 
@@ -110,7 +110,7 @@ def test_subsampled_unit_loo_from_statistics(paths, memory_posterior):
     # per-unit statistics equal those from the rows (T_i, rbar_i, W_i suffice); the check of
     # the issue: sub-sampled LOO (Magnusson et al. 2019) agrees with full PSIS-LOO
     # (arviz-stats) within its reported standard error.
-    from bayespanel.models import gaussian
+    from bayespanel.core import gaussian
 
     design, mem, _ = paths
     post = memory_posterior
@@ -136,7 +136,7 @@ def test_subsampled_unit_loo_from_statistics(paths, memory_posterior):
 @pytest.mark.slow
 def test_subsampled_occasion_loo_in_one_more_pass(paths, memory_posterior):
     # Source: wage panel (linearmodels.datasets). Same seed, same rows and the same
-    # numbers as the in-memory sub-sampled LOO (bayespanel.loo.loo_subsample); the check
+    # numbers as the in-memory sub-sampled LOO (bayespanel.analysis.loo.loo_subsample); the check
     # of the estimator: it agrees with full PSIS-LOO at the occasion level (arviz-stats)
     # within its reported standard error.
     design, mem, _ = paths

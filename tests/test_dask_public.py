@@ -17,8 +17,8 @@ import numpy as np
 import pytest
 
 import bayespanel as bp
-from bayespanel.errors import SpecificationError
-from bayespanel.posterior import Posterior
+from bayespanel.core.errors import SpecificationError
+from bayespanel.bayes.posterior import Posterior
 
 pytest.importorskip("dask.dataframe")
 

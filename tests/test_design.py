@@ -13,7 +13,7 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel.errors import DataHandlingWarning, EstimationError, FormulaError, PanelDataError
+from bayespanel.core.errors import DataHandlingWarning, EstimationError, FormulaError, PanelDataError
 
 
 def test_within_and_between_columns_match_linearmodels(grunfeld):

@@ -19,8 +19,8 @@ import pytest
 from scipy import stats
 
 import bayespanel as bp
-from bayespanel.recovery import ORACLE, REFERENCE, BAYES, design_check, design_check_section
-from bayespanel.errors import SpecificationError
+from bayespanel.analysis.recovery import ORACLE, REFERENCE, BAYES, design_check, design_check_section
+from bayespanel.core.errors import SpecificationError
 
 FORMULA = "invest ~ value + capital"
 
@@ -227,7 +227,7 @@ def test_bad_input_names_the_fault(short_panel):
 def test_command_line_verb(tmp_path, grunfeld, capsys):
     # the verb runs on a file; the truth from --coef is used as given (Grunfeld panel,
     # statsmodels.datasets, written to CSV)
-    from bayespanel.cli import main
+    from bayespanel.app.cli import main
 
     path = tmp_path / "grunfeld.csv"
     grunfeld.to_csv(path, index=False)

@@ -15,8 +15,8 @@ import numpy as np
 import pytest
 
 import bayespanel as bp
-from bayespanel import suffstats
-from bayespanel.errors import DataHandlingWarning
+from bayespanel.core import suffstats
+from bayespanel.core.errors import DataHandlingWarning
 
 FORMULA = "lwage ~ exper + expersq + union + married"
 

@@ -16,8 +16,8 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel import derived, suffstats
-from bayespanel.errors import DataHandlingWarning
+from bayespanel.core import derived, suffstats
+from bayespanel.core.errors import DataHandlingWarning
 
 WAGE = "lwage ~ exper + expersq + union + married + hours"
 

@@ -34,11 +34,11 @@ import scipy.stats
 import statsmodels.api as sm
 
 import bayespanel as bp
-from bayespanel.errors import SamplingWarning, SpecificationError
-from bayespanel.loo import _draws
-from bayespanel.loo.psis import refit_draws
-from bayespanel.models import sampling as smp
-from bayespanel.posterior import Posterior
+from bayespanel.core.errors import SamplingWarning, SpecificationError
+from bayespanel.analysis.loo import _draws
+from bayespanel.analysis.loo.psis import refit_draws
+from bayespanel.bayes import sampling as smp
+from bayespanel.bayes.posterior import Posterior
 
 FORMULA = "invest ~ value + capital"
 FLAT = {"coef": "flat", "Intercept": "flat", "sigma_obs": "half_flat"}
@@ -202,7 +202,7 @@ def test_diagnostics_name_an_added_variable_that_did_not_converge(fits):
 ])
 def test_a_builder_with_latent_options_returns_its_own_kind(grunfeld, builder, options):
     from bayespanel import kinds
-    from bayespanel.models.latent import LatentModel
+    from bayespanel.bayes.latent import LatentModel
 
     panel = bp.Panel(grunfeld, unit="firm", time="year")
     with warnings.catch_warnings():

@@ -15,8 +15,8 @@ import pytest
 from scipy import stats
 
 import bayespanel as bp
-from bayespanel.errors import PanelDataError, SpecificationError
-from bayespanel.models import families as F
+from bayespanel.core.errors import PanelDataError, SpecificationError
+from bayespanel.bayes import families as F
 
 DRAWS = dict(draws=300, tune=300, chains=2, seed=3, progress=False, sampler="pymc")
 

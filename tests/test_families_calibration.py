@@ -18,8 +18,8 @@ import pytest
 from scipy import stats
 
 import bayespanel as bp
-from bayespanel.models import families as F
-from bayespanel.models.sampling import nutpie_available
+from bayespanel.bayes import families as F
+from bayespanel.bayes.sampling import nutpie_available
 
 TRUTH = {"Intercept": -0.2, "x (within)": 0.7, "x (between)": 0.2, "sigma_unit": 0.8}
 REPS = 6

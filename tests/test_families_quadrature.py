@@ -6,9 +6,9 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from bayespanel.errors import SpecificationError
-from bayespanel.models import families as F
-from bayespanel.models import quadrature as Q
+from bayespanel.core.errors import SpecificationError
+from bayespanel.bayes import families as F
+from bayespanel.bayes import quadrature as Q
 
 CASES = {
     "bernoulli": {},
@@ -100,8 +100,8 @@ def test_aghq_random_slope_matches_brute_force_integral():
 
 def test_gaussian_aghq_equals_closed_form_marginal():
     """For a Gaussian outcome the rule is exact: it equals the closed-form random-intercept
-    marginal density (Searle, Casella and McCulloch 1992, via models.gaussian)."""
-    from bayespanel.models import gaussian
+    marginal density (Searle, Casella and McCulloch 1992, via core.gaussian)."""
+    from bayespanel.core import gaussian
 
     y, eta, codes, _, _ = _data("gaussian")
     sigma, tau = np.array([0.6, 1.1]), np.array([0.5, 1.7])

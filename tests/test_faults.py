@@ -22,7 +22,7 @@ import numpy as np
 import pytest
 
 import bayespanel as bp
-from bayespanel.cli import EXIT_SAMPLING, _strict_exit, main
+from bayespanel.app.cli import EXIT_SAMPLING, _strict_exit, main
 from bayespanel.report.results_json import write_atomic
 
 UNIT, TIME = "firm", "year"
@@ -60,7 +60,7 @@ def flawed_run(grunfeld_csv, tmp_path_factory):
     chain 1 of ``coef`` is shifted, so R-hat is high. 80 draws also leave ESS low, and
     Pareto k at the occasion level is high for Grunfeld's largest firms.
     """
-    import bayespanel.models.sampling as sampling
+    import bayespanel.bayes.sampling as sampling
 
     real = sampling._run_pymc
 
@@ -133,7 +133,7 @@ def test_atomic_files_get_the_usual_permissions(tmp_path):
 def test_problems_are_flagged_in_results_json(flawed_run):
     import arviz_stats as azs
 
-    from bayespanel.posterior import Posterior
+    from bayespanel.bayes.posterior import Posterior
 
     out, rc, _, _ = flawed_run
     res = json.loads((out / "results.json").read_text("utf-8"))
@@ -183,7 +183,7 @@ def test_strict_mode_fails_the_run_and_still_writes(flawed_run):
 # ---------------------------------------------------------------------- interruptions
 def test_keyboard_interrupt_in_sampling_leaves_earlier_outputs(flawed_run, grunfeld_csv,
                                                                monkeypatch, capsys):
-    import bayespanel.models.sampling as sampling
+    import bayespanel.bayes.sampling as sampling
 
     out = flawed_run[0]
     before = _snapshot(out)

@@ -23,8 +23,8 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel.cli import main
-from bayespanel.errors import FormulaError, SpecificationError
+from bayespanel.app.cli import main
+from bayespanel.core.errors import FormulaError, SpecificationError
 
 UNIT, TIME = "firm", "year"
 
@@ -206,7 +206,7 @@ HOSTILE_TITLE = "<img src=x onerror=alert(1)> & \"quotes\""
 
 @pytest.fixture(scope="module")
 def hostile_run(grunfeld, tmp_path_factory):
-    from bayespanel.runner import Settings, run
+    from bayespanel.app.runner import Settings, run
 
     df = grunfeld.rename(columns={"value": HOSTILE_COLUMN})
     out = tmp_path_factory.mktemp("hostile_report")
@@ -257,7 +257,7 @@ def saved_posterior(panel, tmp_path_factory):
 
 
 def test_loading_a_posterior_never_unpickles(saved_posterior, monkeypatch, grunfeld):
-    from bayespanel.posterior import Posterior
+    from bayespanel.bayes.posterior import Posterior
 
     import statsmodels.formula.api as smf  # imported before pickle is patched below
 
@@ -277,7 +277,7 @@ def test_loading_a_posterior_never_unpickles(saved_posterior, monkeypatch, grunf
 
 
 def test_loading_a_pickle_is_refused_and_runs_nothing(tmp_path, marker):
-    from bayespanel.posterior import Posterior
+    from bayespanel.bayes.posterior import Posterior
     from bayespanel.report import load_results
 
     evil = pickle.dumps(_Evil(marker), protocol=4)
@@ -292,7 +292,7 @@ def test_loading_a_pickle_is_refused_and_runs_nothing(tmp_path, marker):
 def test_a_netcdf_file_of_someone_else_is_refused(tmp_path):
     import xarray as xr
 
-    from bayespanel.posterior import Posterior
+    from bayespanel.bayes.posterior import Posterior
 
     path = tmp_path / "other.nc"
     xr.Dataset({"a": ("x", np.arange(3.0))}).to_netcdf(path, engine="h5netcdf")
@@ -311,8 +311,8 @@ def test_the_package_source_has_no_unpickling_and_no_eval():
     # The one exception: the compile cache stores compiled log densities (code, as
     # PyTensor's own compile folder does) and reads them only from a folder and files of
     # this user that nobody else can write (test_a_cache_entry_others_could_write_is_not_read).
-    assert hits == ["models/sampling.py: import pickle"] * 2
-    cache = (root / "models" / "sampling.py").read_text("utf-8")
+    assert hits == ["bayes/sampling.py: import pickle"] * 2
+    cache = (root / "bayes" / "sampling.py").read_text("utf-8")
     assert "if not (_private(path.parent) and _private(path)):" in cache
 
 
@@ -322,7 +322,7 @@ def test_a_cache_entry_others_could_write_is_not_read(tmp_path, monkeypatch):
     import os
     import pickle
 
-    from bayespanel.models import sampling
+    from bayespanel.bayes import sampling
 
     if not hasattr(os, "getuid"):
         pytest.skip("no file owners on this system")

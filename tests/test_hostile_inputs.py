@@ -71,7 +71,7 @@ def test_literal_text_draws_exactly_what_matplotlib_draws_literally(text):
 @pytest.fixture(scope="module")
 def dollar_run(grunfeld, tmp_path_factory):
     """A small run whose terms carry ``$``: ``spend_$``, ``cost_$`` and their product."""
-    from bayespanel.runner import Settings, run
+    from bayespanel.app.runner import Settings, run
 
     df = grunfeld.rename(columns={"value": "spend_$", "capital": "cost_$"})
     out = tmp_path_factory.mktemp("dollar_run")
@@ -146,10 +146,10 @@ def test_design_check_occasion_and_sensitivity_figures_render_dollars(dollar_run
     """Figures returned to the caller save to PNG with ``$`` in every label."""
     import matplotlib.pyplot as plt
 
-    from bayespanel.recovery import design_check
-    from bayespanel.occasions import occasion_effects_figure
-    from bayespanel.posterior import Posterior
-    from bayespanel.sensitivity import sensitivity_section
+    from bayespanel.analysis.recovery import design_check
+    from bayespanel.analysis.occasions import occasion_effects_figure
+    from bayespanel.bayes.posterior import Posterior
+    from bayespanel.analysis.sensitivity import sensitivity_section
 
     df = grunfeld.rename(columns={"value": "spend_$", "capital": "cost_$"})
     df[TIME] = "$" + df[TIME].astype(str) + "$"
@@ -179,8 +179,8 @@ warnings.simplefilter("ignore")
 import dask.dataframe as dd
 import pandas as pd
 import bayespanel as bp
-from bayespanel.cli import main
-from bayespanel.errors import FormulaError
+from bayespanel.app.cli import main
+from bayespanel.core.errors import FormulaError
 
 csv, formulas = sys.argv[2], json.loads(open(sys.argv[3]).read())
 df = pd.read_csv(csv)
@@ -264,7 +264,7 @@ def test_limits_leave_real_formulas_alone_and_count_terms_as_formulaic_does():
     own expansion (outside check: ``formulaic.Formula``) on formulas up to the limits."""
     from formulaic import Formula
 
-    from bayespanel.formula import LIMITS, _check_cost, screen
+    from bayespanel.data.formula import LIMITS, _check_cost, screen
 
     cols = ["y"] + list("abcdefgh")
     for rhs in ["a + b", "a*b*c", "(a + b + c + d)**3", "(a + b + c + d)**6", "a/b",
@@ -295,7 +295,7 @@ def _routes(df, formula):
 
 
 def _cli_fit(df, formula, tmp_path, capsys):
-    from bayespanel.cli import main
+    from bayespanel.app.cli import main
 
     path = tmp_path / "panel.csv"
     df.to_csv(path, index=False)
@@ -307,7 +307,7 @@ def _cli_fit(df, formula, tmp_path, capsys):
 @pytest.mark.parametrize("name", CLASHING)
 def test_a_column_named_like_a_generated_label_is_refused_on_every_route(grunfeld, name,
                                                                          tmp_path, capsys):
-    from bayespanel.errors import FormulaError
+    from bayespanel.core.errors import FormulaError
 
     df = grunfeld.rename(columns={"value": name})
     formula = f"invest ~ `{name}` + capital"
@@ -358,7 +358,7 @@ def test_a_column_named_like_an_inner_posterior_variable_gets_its_own_draws(grun
 
 
 def test_a_column_equal_to_a_term_formulaic_builds_is_refused(grunfeld):
-    from bayespanel.errors import FormulaError
+    from bayespanel.core.errors import FormulaError
 
     df = grunfeld.assign(**{"np.log(value)": np.log(grunfeld["value"]) + 1.0})
     with pytest.raises(FormulaError, match=r"uses the column `np\.log\(value\)` and the transform"):
@@ -371,7 +371,7 @@ def test_the_outcome_among_the_covariates_is_refused_on_every_route(grunfeld, fo
                                                                    tmp_path, capsys):
     """Today's answer was a coefficient of 1 with a standard error of 0 (statsmodels OLS
     of a variable on itself gives the same: the fit is perfect and says nothing)."""
-    from bayespanel.errors import FormulaError
+    from bayespanel.core.errors import FormulaError
 
     expected = "the outcome's column 'invest' is also among the covariates"
     for route, call in _routes(grunfeld, formula).items():
@@ -390,7 +390,7 @@ INJECTED = {"value": "=HYPERLINK(\"http://example.invalid\",\"x\")",
 def injected_run(grunfeld, tmp_path_factory):
     """A reference-only run whose covariates are named like a spreadsheet formula and
     like HTML with a Markdown link."""
-    from bayespanel.runner import Settings, run
+    from bayespanel.app.runner import Settings, run
 
     df = grunfeld.rename(columns=INJECTED)
     df["@sum"] = -np.sqrt(grunfeld["value"])  # negative values: must stay numbers
@@ -475,7 +475,7 @@ def test_markdown_escape_round_trips():
 
 
 def test_describe_prints_no_terminal_codes(grunfeld, tmp_path, capsys):
-    from bayespanel.cli import main
+    from bayespanel.app.cli import main
 
     name = "\x1b[31mred\x1b[0m\u202egnp"
     path = tmp_path / "g.csv"
@@ -500,7 +500,7 @@ def test_describe_of_huge_values_is_finite_and_exact(grunfeld, tmp_path, capsys)
     assert row["sd_between"] == pytest.approx(statistics.stdev(means), rel=1e-12)
     assert row["share_within"] == pytest.approx(
         bp.Panel(grunfeld, UNIT, TIME).describe().loc["value", "share_within"], rel=1e-12)
-    from bayespanel.cli import main
+    from bayespanel.app.cli import main
 
     path = tmp_path / "big.csv"
     df.to_csv(path, index=False)
@@ -510,7 +510,7 @@ def test_describe_of_huge_values_is_finite_and_exact(grunfeld, tmp_path, capsys)
 
 
 def test_describe_names_the_columns_it_leaves_out(grunfeld, tmp_path, capsys):
-    from bayespanel.cli import main
+    from bayespanel.app.cli import main
 
     df = grunfeld.copy()
     df["note"] = "x"
@@ -534,7 +534,7 @@ def test_dates_written_month_first_are_read_as_dates(grunfeld):
     effects)."""
     from linearmodels.panel import PanelOLS
 
-    from bayespanel.errors import DataHandlingWarning
+    from bayespanel.core.errors import DataHandlingWarning
 
     df = grunfeld.assign(date=[f"{y % 12 + 1}/{13 + y % 15}/{y}" for y in grunfeld[TIME]])
     with pytest.warns(DataHandlingWarning, match=r"read as dates, month first"):
@@ -552,8 +552,8 @@ def test_dates_written_month_first_are_read_as_dates(grunfeld):
 
 
 def test_a_parquet_folder_without_parquet_files_is_named(tmp_path, capsys):
-    from bayespanel.cli import main
-    from bayespanel.errors import PanelDataError
+    from bayespanel.app.cli import main
+    from bayespanel.core.errors import PanelDataError
 
     (tmp_path / "data").mkdir()
     (tmp_path / "data" / "notes.txt").write_text("not a table")
@@ -568,7 +568,7 @@ def test_a_parquet_folder_without_parquet_files_is_named(tmp_path, capsys):
 def test_messages_on_the_out_of_core_route_show_plain_numbers(grunfeld):
     import dask.dataframe as dd
 
-    from bayespanel.errors import PanelDataError
+    from bayespanel.core.errors import PanelDataError
 
     df = grunfeld.assign(capital=7.0)
     dpanel = bp.Panel(dd.from_pandas(df, npartitions=2), UNIT, TIME, client="synchronous")
@@ -583,7 +583,7 @@ def test_dask_reading_notices_do_not_reach_the_record_of_a_run(wage_panel, tmp_p
     every warning of its data stage (as here) into results.json. Outside check: pandas
     itself warns on that call (shown first), so the test would see the notice if the
     engine let it through."""
-    from bayespanel.engines.dask import DaskPanel
+    from bayespanel.data.sources.dask import DaskPanel
 
     with pytest.warns(Warning, match="inplace keyword in DataFrame.reset_index"):
         pd.DataFrame({"a": [1]}).reset_index(drop=True, inplace=True)
@@ -620,7 +620,7 @@ def test_control_characters_in_labels_are_drawn_as_escapes():
 def test_the_console_says_what_the_data_stage_did(grunfeld, tmp_path, capsys):
     """Occasions read as dates and rows dropped are printed after the estimates, not only
     written to results.json."""
-    from bayespanel.cli import main
+    from bayespanel.app.cli import main
 
     df = grunfeld.assign(date=[f"{y % 12 + 1}/{13 + y % 15}/{y}" for y in grunfeld[TIME]])
     df.loc[[3, 4], "value"] = np.nan
@@ -644,7 +644,7 @@ def test_names_that_contain_keywords_or_double_underscores_are_columns(grunfeld)
     res = bp.reference.pooled(bp.Panel(df, UNIT, TIME), "invest ~ lambda_hat + k__stock")
     ols = sm.OLS(df["invest"], sm.add_constant(df[["lambda_hat", "k__stock"]])).fit()
     np.testing.assert_allclose(res.coef.to_numpy(), ols.params.to_numpy(), rtol=1e-10)
-    from bayespanel.errors import FormulaError
+    from bayespanel.core.errors import FormulaError
 
     with pytest.raises(FormulaError, match="lambda expressions"):
         bp.Panel(df, UNIT, TIME).design("invest ~ (lambda: lambda_hat)()")

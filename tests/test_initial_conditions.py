@@ -20,7 +20,7 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel.errors import DataHandlingWarning
+from bayespanel.core.errors import DataHandlingWarning
 
 PHI, BETA = 0.5, 1.0
 

@@ -27,8 +27,8 @@ from io import StringIO
 import numpy as np
 import pytest
 
-from bayespanel.cli import main
-from bayespanel.errors import EstimationError, SpecificationError
+from bayespanel.app.cli import main
+from bayespanel.core.errors import EstimationError, SpecificationError
 
 UNIT, TIME = "firm", "year"
 F = "invest ~ value + capital"
@@ -56,7 +56,7 @@ def grunfeld_csv(tmp_path_factory, grunfeld):
 
 @pytest.fixture
 def no_sampling(monkeypatch):
-    import bayespanel.models.sampling as sampling
+    import bayespanel.bayes.sampling as sampling
 
     def tripwire(*args, **kwargs):
         raise AssertionError("sampling started on bad input")
@@ -92,7 +92,7 @@ def test_devices_and_pipes_are_refused_without_reading(tmp_path, kind):
 
 
 def test_a_device_is_not_a_posterior_file():
-    from bayespanel.posterior import Posterior
+    from bayespanel.bayes.posterior import Posterior
 
     with pytest.raises(SpecificationError, match="not a regular file"):
         Posterior.load("/dev/zero")
@@ -108,7 +108,7 @@ def test_an_unreadable_data_file_exits_two(grunfeld_csv, tmp_path, monkeypatch, 
         def denied(*a, **k):
             raise PermissionError(13, "Permission denied", str(path))
         monkeypatch.setattr(pd, "read_csv", denied)
-        monkeypatch.setattr("bayespanel.runner._sha256", denied)
+        monkeypatch.setattr("bayespanel.app.runner._sha256", denied)
     rc, _, err = _main(_fit(path, tmp_path / "o"))
     assert rc == 2, err
     assert "locked.csv" in err and "ermission denied" in err
@@ -194,15 +194,15 @@ def test_a_run_with_too_few_draws_finishes_with_its_loo_flagged(tiny_run):
 def test_psis_refuses_fewer_draws_than_it_can_smooth(tiny_run):
     import arviz_stats
 
-    from bayespanel.loo.psis import MIN_PSIS_DRAWS, psis_arrays
-    from bayespanel.posterior import Posterior
+    from bayespanel.analysis.loo.psis import MIN_PSIS_DRAWS, psis_arrays
+    from bayespanel.bayes.posterior import Posterior
 
     post = Posterior.load(tiny_run[0] / "posteriors/pooled.nc")
     with pytest.raises(EstimationError, match="at least 25 draws in all"):
         post.loo("occasion")
     # outside check: arviz-stats itself fails below the minimum and works at it
     ll = np.random.default_rng(1).normal(size=(1, MIN_PSIS_DRAWS - 1, 3))
-    from bayespanel.loo.psis import _datatree
+    from bayespanel.analysis.loo.psis import _datatree
 
     with pytest.raises(ValueError, match="at least 5"):
         arviz_stats.loo(_datatree(ll, "occasion", None), var_name="occasion", reff=1.0)
@@ -229,7 +229,7 @@ def _flip(data: bytes, pos: int, bit: int) -> bytes:
 
 
 def test_a_posterior_with_flipped_bits_is_refused_or_read_unchanged(tiny_run, tmp_path):
-    from bayespanel.posterior import Posterior
+    from bayespanel.bayes.posterior import Posterior
 
     src = tiny_run[0] / "posteriors/pooled.nc"
     ref = Posterior.load(src).draws("coef")
@@ -252,7 +252,7 @@ def test_a_posterior_with_flipped_bits_is_refused_or_read_unchanged(tiny_run, tm
 def test_a_flipped_bit_in_the_draws_is_caught_by_the_checksum(tiny_run, tmp_path):
     import h5py
 
-    from bayespanel.posterior import Posterior
+    from bayespanel.bayes.posterior import Posterior
 
     src = tiny_run[0] / "posteriors/pooled.nc"
     with h5py.File(src, "r") as f:  # outside tool: HDF5 says where the draws are stored
@@ -272,7 +272,7 @@ def test_a_flipped_bit_in_the_draws_is_caught_by_the_checksum(tiny_run, tmp_path
 def test_a_posterior_with_an_edited_attribute_is_refused(tiny_run, tmp_path, group, attr, value):
     import h5py
 
-    from bayespanel.posterior import Posterior
+    from bayespanel.bayes.posterior import Posterior
 
     path = tmp_path / "edited.nc"
     path.write_bytes((tiny_run[0] / "posteriors/pooled.nc").read_bytes())
@@ -283,7 +283,7 @@ def test_a_posterior_with_an_edited_attribute_is_refused(tiny_run, tmp_path, gro
 
 
 def test_a_posterior_saved_before_checksums_still_loads(tiny_run, tmp_path):
-    from bayespanel.posterior import Posterior
+    from bayespanel.bayes.posterior import Posterior
 
     post = Posterior.load(tiny_run[0] / "posteriors/pooled.nc")
     post._tree(True).to_netcdf(tmp_path / "plain.nc", engine="h5netcdf")  # as before
@@ -295,7 +295,7 @@ def test_a_posterior_saved_before_checksums_still_loads(tiny_run, tmp_path):
                                            ("--chains", "100000")])
 def test_draws_and_chains_beyond_memory_are_refused_up_front(grunfeld_csv, tmp_path,
                                                              no_sampling, option, value):
-    from bayespanel.budget import available_bytes
+    from bayespanel.core.budget import available_bytes
 
     rc, _, err = _main(_fit(grunfeld_csv, tmp_path / "o", "--models", "pooled",
                             "--reference", "pooled", option, value))
@@ -311,8 +311,8 @@ def test_draws_and_chains_beyond_memory_are_refused_up_front(grunfeld_csv, tmp_p
 
 
 def test_the_largest_draws_named_fit_and_one_more_does_not(grunfeld, tmp_path):
-    from bayespanel.budget import check_run_memory
-    from bayespanel.runner import Settings
+    from bayespanel.core.budget import check_run_memory
+    from bayespanel.app.runner import Settings
 
     import bayespanel as bp
 

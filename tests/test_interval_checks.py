@@ -1,6 +1,6 @@
 """The checks that say when a model's intervals are too narrow (issue 17, item 4):
 the posterior predictive check of the lag-one autocorrelation of within residuals
-(bayespanel.serialcheck) and the narrow-interval warning (bayespanel.narrowcheck).
+(bayespanel.analysis.serialcheck) and the narrow-interval warning (bayespanel.analysis.narrowcheck).
 
 Outside references: the observed statistic is recomputed directly with pandas (groupby
 demeaning and a shift within units); the replicated statistic's mean is compared with the
@@ -18,9 +18,9 @@ import pytest
 from scipy import linalg
 
 import bayespanel as bp
-from bayespanel.narrowcheck import (RATIO_THRESHOLD, compare_uncertainty,
+from bayespanel.analysis.narrowcheck import (RATIO_THRESHOLD, compare_uncertainty,
                                     narrow_interval_check)
-from bayespanel.serialcheck import LABEL, lag1_check
+from bayespanel.analysis.serialcheck import LABEL, lag1_check
 
 DRAWS = dict(draws=150, tune=150, chains=2, seed=3)
 

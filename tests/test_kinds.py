@@ -13,11 +13,11 @@ import statsmodels.formula.api as smf
 
 import bayespanel as bp
 from bayespanel import kinds
-from bayespanel.design import KINDS as DESIGN_KINDS
-from bayespanel.errors import SpecificationError
-from bayespanel.recovery import design_check
+from bayespanel.data.design import KINDS as DESIGN_KINDS
+from bayespanel.core.errors import SpecificationError
+from bayespanel.analysis.recovery import design_check
 from bayespanel.report.results_json import schema
-from bayespanel.runner import Settings
+from bayespanel.app.runner import Settings
 
 FORMULA = "invest ~ value + capital"
 
@@ -77,7 +77,7 @@ def test_design_check_takes_the_class_its_name_and_the_snake_name(panel, grunfel
 def test_the_design_check_verb_takes_a_class_name(panel, grunfeld, tmp_path, capsys):
     import pandas as pd
 
-    from bayespanel.cli import main
+    from bayespanel.app.cli import main
 
     grunfeld.to_csv(tmp_path / "g.csv", index=False)
     with warnings.catch_warnings():
@@ -136,7 +136,7 @@ def wide():
 
 @pytest.fixture(scope="module")
 def wide_run(wide, grunfeld, tmp_path_factory):
-    from bayespanel.cli import main
+    from bayespanel.app.cli import main
 
     folder = tmp_path_factory.mktemp("wide")
     grunfeld.to_csv(folder / "grunfeld.csv", index=False)
@@ -244,7 +244,7 @@ def installed_toy(tmp_path, monkeypatch):
 
 
 def test_a_kind_from_an_installed_package_reaches_the_command_line(installed_toy, capsys):
-    from bayespanel.cli import main
+    from bayespanel.app.cli import main
 
     with pytest.warns(UserWarning, match="'broken'.*not loaded"):  # skipped, named
         names = kinds.model_names()  # the first question loads the entry points

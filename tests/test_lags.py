@@ -13,8 +13,8 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel.errors import FormulaError, PanelDataError
-from bayespanel.lags import lag_values
+from bayespanel.core.errors import FormulaError, PanelDataError
+from bayespanel.data.lags import lag_values
 
 
 def _gappy_panel(seed=3, n_units=12, years=range(2001, 2011), drop=0.2):
@@ -40,7 +40,7 @@ def _pandas_lag(df, column, k, unit="unit", time="year"):
 def test_lag_values_equal_pandas_groupby_shift_on_a_grid(k):
     df = _gappy_panel()
     panel = bp.Panel(df, unit="unit", time="year")
-    from bayespanel.lags import expand
+    from bayespanel.data.lags import expand
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -145,7 +145,7 @@ def test_lag_values_reasons():
 
 def test_screen_alone_refuses_lag_with_the_reason():
     # a formula read without the panel's rows (a partitioned source) cannot take lags
-    from bayespanel.formula import screen
+    from bayespanel.data.formula import screen
 
     with pytest.raises(FormulaError, match="rows are in memory"):
         screen("y ~ lag(x)", ["y", "x"])

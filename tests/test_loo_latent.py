@@ -22,9 +22,9 @@ import pytest
 from scipy import integrate, stats
 
 import bayespanel as bp
-from bayespanel.comparison import compare
-from bayespanel.errors import SamplingWarning, SpecificationError
-from bayespanel.posterior import Posterior
+from bayespanel.analysis.comparison import compare
+from bayespanel.core.errors import SamplingWarning, SpecificationError
+from bayespanel.bayes.posterior import Posterior
 
 KW = dict(draws=200, tune=200, chains=2, seed=3, progress=False, sampler="pymc")
 

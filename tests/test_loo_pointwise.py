@@ -18,8 +18,8 @@ import pytest
 from scipy import stats
 
 import bayespanel as bp
-from bayespanel.errors import EstimationError, SpecificationError
-from bayespanel.loo import (from_draws, holdout_loglik, loo_subsample, pointwise_loglik,
+from bayespanel.core.errors import EstimationError, SpecificationError
+from bayespanel.analysis.loo import (from_draws, holdout_loglik, loo_subsample, pointwise_loglik,
                             reference_cv)
 
 FORMULA = "invest ~ value + capital"
@@ -246,7 +246,7 @@ def test_reference_cv_equals_reference_module_holdout(design, estimator):
 def test_folds_spread_units_and_reference_kfold_equals_statsmodels_loop(design):
     import statsmodels.api as sm
 
-    from bayespanel.loo.psis import _folds
+    from bayespanel.analysis.loo.psis import _folds
 
     fd = _fd(design, np.zeros((1, 3)), np.ones(1), np.ones(1))
     fold = _folds(fd, "occasion", 6, seed=2)
@@ -268,7 +268,7 @@ def test_folds_spread_units_and_reference_kfold_equals_statsmodels_loop(design):
 
 
 def test_loo_refuses_a_pointwise_matrix_too_large(design, fake_draws, monkeypatch):
-    import bayespanel.loo.psis as psis
+    import bayespanel.analysis.loo.psis as psis
 
     b, sigma, tau = fake_draws
     monkeypatch.setattr(psis, "MAX_POINTWISE_BYTES", 1000)

@@ -1,4 +1,4 @@
-"""The mathematics written once (bayespanel.mathcore), each function against an outside
+"""The mathematics written once (bayespanel.core.mathcore), each function against an outside
 reference: a published identity checked with scipy / numpy linear algebra, or statsmodels.
 """
 
@@ -7,7 +7,7 @@ import pytest
 from scipy import linalg
 from statsmodels.stats.moment_helpers import cov2corr
 
-from bayespanel import mathcore as mc
+from bayespanel.core import mathcore as mc
 
 
 def _unit_cov(T, s2, t2):
@@ -95,7 +95,7 @@ def test_json_scalar_and_record_give_strict_json():
     # the standard library's strict encoder (RFC 8259 has no NaN or infinity) is the check
     import json
 
-    from bayespanel.jsonsafe import json_record, json_scalar
+    from bayespanel.core.jsonsafe import json_record, json_scalar
 
     rec = json_record({"a": np.float64(np.nan), "b": np.float32(1.5), "c": np.int64(3),
                        "d": np.bool_(True), "e": float("inf"), "f": "text", "g": None})
@@ -112,7 +112,7 @@ def test_jsonable_matches_pandas_own_json_writer():
 
     import pandas as pd
 
-    from bayespanel.jsonsafe import jsonable
+    from bayespanel.core.jsonsafe import jsonable
 
     df = pd.DataFrame({"x": [0.5, np.nan, -2.25], "n": [1, 2, 3], "s": ["a", "b", "c"]},
                       index=pd.Index(["u1", "u2", "u3"], name="unit"))
@@ -130,7 +130,7 @@ def test_unit_sd_draws_follow_the_unit_effect_rule():
     # against scipy's multivariate normal with covariance sigma^2 I + tau^2 11'
     from scipy import stats
 
-    from bayespanel.models import gaussian
+    from bayespanel.core import gaussian
 
     s = np.array([0.7, 1.1, 2.0])
     np.testing.assert_array_equal(mc.unit_sd_draws("random", s.reshape(1, 3), (3,)), s)
@@ -185,7 +185,7 @@ def test_contrast_rows_equal_the_mundlak_identity(grunfeld):
     # maps applied to the reference fits (checked against linearmodels in
     # test_reference_grunfeld) give the same numbers
     import bayespanel as bp
-    from bayespanel.contrasts import contrast_rows
+    from bayespanel.analysis.contrasts import contrast_rows
 
     panel = bp.Panel(grunfeld, unit="firm", time="year")
     f = "invest ~ value + capital"
@@ -207,8 +207,8 @@ def test_prior_on_standard_scale_is_a_change_of_variables():
     # the data-scale prior equals the density of theta* under the mapped prior times factor
     from scipy import stats
 
-    from bayespanel.models.gaussian import Scaling
-    from bayespanel.models.priors import Prior, prior_on_standard_scale
+    from bayespanel.core.gaussian import Scaling
+    from bayespanel.bayes.priors import Prior, prior_on_standard_scale
 
     sc = Scaling((0.0, 3.0, 10.0), (1.0, 2.0, 5.0), intercept=0)   # [Intercept, x, y]
     slope = prior_on_standard_scale(Prior("normal", mu=1.0, sigma=4.0), sc, 1, 0)

@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from bayespanel import suffstats
+from bayespanel.core import suffstats
 
 COLS = ["exper", "expersq", "union", "married", "hours"]
 

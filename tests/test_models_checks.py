@@ -20,8 +20,8 @@ import scipy.optimize
 import scipy.stats
 
 import bayespanel as bp
-from bayespanel import suffstats
-from bayespanel.models import Prior, RandomIntercept
+from bayespanel.core import suffstats
+from bayespanel.bayes import Prior, RandomIntercept
 
 FLAT = {"Intercept": "flat", "coef": "flat", "sigma_obs": "half_flat", "sigma_unit": "half_flat"}
 

@@ -17,10 +17,10 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel.errors import SamplingWarning, SpecificationError
-from bayespanel.models import (CorrelatedEffects, FixedEffects, Pooled, RandomIntercept,
+from bayespanel.core.errors import SamplingWarning, SpecificationError
+from bayespanel.bayes import (CorrelatedEffects, FixedEffects, Pooled, RandomIntercept,
                                WithinBetween)
-from bayespanel.posterior import Posterior
+from bayespanel.bayes.posterior import Posterior
 
 TV = "exper + expersq + union + married"
 FORMULA = f"lwage ~ {TV} + educ + black"

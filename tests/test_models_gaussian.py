@@ -1,4 +1,4 @@
-"""The Gaussian likelihood core (bayespanel.models.gaussian) against outside references.
+"""The Gaussian likelihood core (bayespanel.core.gaussian) against outside references.
 
 No sampling here: every check evaluates the one implementation of the mathematics (numpy
 and the pytensor graph the sampler uses) against scipy's multivariate normal density,
@@ -12,8 +12,9 @@ import pytest
 import scipy.integrate
 import scipy.stats
 
-from bayespanel import suffstats
-from bayespanel.models import FixedEffects, Pooled, RandomIntercept, gaussian
+from bayespanel.core import suffstats
+from bayespanel.bayes import FixedEffects, Pooled, RandomIntercept
+from bayespanel.core import gaussian
 
 
 def _unbalanced(seed=0, n_units=25, k=3):
@@ -225,7 +226,7 @@ def test_scaling_round_trip(stats):
 
 def test_fixed_effects_needs_within_variation():
     # A covariate constant within every unit cannot enter the within likelihood.
-    from bayespanel.errors import EstimationError
+    from bayespanel.core.errors import EstimationError
 
     rng = np.random.default_rng(3)
     codes = np.repeat(np.arange(6), 3)

@@ -11,8 +11,8 @@ import pytest
 import scipy.stats
 
 import bayespanel as bp
-from bayespanel.errors import SpecificationError
-from bayespanel.models import (FixedEffects, Pooled, Prior, RandomIntercept, WithinBetween)
+from bayespanel.core.errors import SpecificationError
+from bayespanel.bayes import (FixedEffects, Pooled, Prior, RandomIntercept, WithinBetween)
 
 FORMULA = "invest ~ value + capital"
 

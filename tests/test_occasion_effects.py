@@ -19,9 +19,9 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel.errors import SpecificationError
-from bayespanel.models import Prior
-from bayespanel.occasions import occasion_effects, occasion_effects_figure
+from bayespanel.core.errors import SpecificationError
+from bayespanel.bayes import Prior
+from bayespanel.analysis.occasions import occasion_effects, occasion_effects_figure
 
 FORMULA = "invest ~ value + capital"
 DROP = [3, 17, 30, 44, 45, 61]

@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel.errors import PanelDataError
+from bayespanel.core.errors import PanelDataError
 
 
 def test_describe_matches_direct_pandas_on_wage_panel(wage_panel):

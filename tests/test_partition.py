@@ -18,8 +18,8 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel.errors import SpecificationError
-from bayespanel.partition import design_columns, partition_draws, variance_partition
+from bayespanel.core.errors import SpecificationError
+from bayespanel.analysis.partition import design_columns, partition_draws, variance_partition
 
 SHARE_GROUPS = {
     "total": ["total: within part", "total: between part", "total: unit intercepts",
@@ -140,7 +140,7 @@ def test_design_columns_rebuild_the_original_covariates(wage):
 
 @pytest.fixture(scope="module")
 def demo_posts(demo):
-    from bayespanel.models import WithinBetween
+    from bayespanel.bayes import WithinBetween
 
     df, truth = demo
     with warnings.catch_warnings():

@@ -20,7 +20,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import bayespanel as bp
-from bayespanel import derived
+from bayespanel.core import derived
 
 FORMULA = "y ~ x + z + w"
 

@@ -20,7 +20,7 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel.partition import reference_partition
+from bayespanel.analysis.partition import reference_partition
 
 MUNNELL = "gsp ~ log(pcap) + log(pc) + log(emp) + unemp"
 SLOPES = ["log(pcap)", "log(pc)", "log(emp)", "unemp"]
@@ -202,7 +202,7 @@ def test_transformed_outcome_on_the_dask_path_equals_memory(munnell, munnell_pan
     ("C(gsp) ~ unemp", "C() makes several columns"),
 ])
 def test_transformed_outcome_refusals_name_the_problem(munnell, formula, needle):
-    from bayespanel.errors import BayespanelError
+    from bayespanel.core.errors import BayespanelError
 
     d = munnell.copy()
     d.loc[5, "gsp"] = 0
@@ -216,7 +216,7 @@ def test_transformed_outcome_refusals_name_the_problem(munnell, formula, needle)
 def test_glm_mundlak_test_is_skipped_with_its_reason_and_nothing_fails(wage_panel):
     import statsmodels.api as sm
 
-    from bayespanel.runner import Settings, run
+    from bayespanel.app.runner import Settings, run
 
     s = Settings(unit="nr", time="year", formula="union ~ I(year - 1980)", family="bernoulli",
                  models=(), reference=("pooled",))
@@ -238,7 +238,7 @@ def test_hausman_rank_and_the_units_used_on_jobtraining(tmp_path):
     from linearmodels.datasets import jobtraining
     from linearmodels.panel import PanelOLS, RandomEffects
 
-    from bayespanel.runner import Settings, run
+    from bayespanel.app.runner import Settings, run
 
     df = jobtraining.load()
     s = Settings(unit="fcode", time="year", formula="lscrap ~ d88 + d89 + grant + grant_1",

@@ -13,7 +13,7 @@ import pytest
 from scipy import stats
 
 import bayespanel as bp
-from bayespanel import suffstats
+from bayespanel.core import suffstats
 
 FORMULA = "invest ~ value + capital"
 

@@ -15,7 +15,7 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel.reference.linalg import psd_power
+from bayespanel.core.linalg import psd_power
 from bayespanel.reference.covariance import cr2
 
 

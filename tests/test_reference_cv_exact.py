@@ -20,7 +20,7 @@ import pytest
 from scipy import stats
 
 import bayespanel as bp
-from bayespanel.loo.reference_cv import _score, exact_loo_values, reference_columns
+from bayespanel.analysis.loo.reference_cv import _score, exact_loo_values, reference_columns
 
 CASES = [("pooled", None), ("within", None), ("random", "swamy-arora"), ("random", "reml"),
          ("random", "ml"), ("mundlak", "swamy-arora"), ("mundlak", "reml"),

@@ -14,7 +14,7 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel.errors import DataHandlingWarning
+from bayespanel.core.errors import DataHandlingWarning
 
 # Shrout and Fleiss (1979), Table 2: 6 targets rated by 4 judges (RECALLED FROM MEMORY)
 RATINGS = np.array([[9, 2, 5, 8], [6, 1, 3, 2], [8, 4, 6, 8], [7, 1, 2, 6], [10, 5, 6, 9],

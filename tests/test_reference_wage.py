@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 import bayespanel as bp
-from bayespanel.errors import DataHandlingWarning
+from bayespanel.core.errors import DataHandlingWarning
 
 FORMULA = "lwage ~ exper + expersq + union + married + black + educ"
 TV = ["exper", "expersq", "union", "married"]

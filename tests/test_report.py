@@ -24,7 +24,7 @@ import pytest
 import bayespanel as bp
 from bayespanel.report import html as rhtml
 from bayespanel.report import load_results, validate
-from bayespanel.runner import Settings, run
+from bayespanel.app.runner import Settings, run
 
 BAD_X = 'case<img src=x onerror="document.title=\'pwned\'">load'
 BAD_UNIT = "clinic<script>document.title='pwned'</script>"
@@ -111,7 +111,7 @@ def test_bayesian_estimates_agree_with_linearmodels_within(folder):
 
 
 def test_report_rebuilt_from_saved_results_is_identical(folder, tmp_path):
-    from bayespanel.cli import main
+    from bayespanel.app.cli import main
 
     run_dir, results, _ = folder
     assert main(["report", str(run_dir), "--out", str(tmp_path)]) == 0

@@ -17,8 +17,8 @@ import numpy as np
 import pytest
 
 import bayespanel as bp
-from bayespanel.cli import main
-from bayespanel.posterior import Posterior
+from bayespanel.app.cli import main
+from bayespanel.bayes.posterior import Posterior
 
 UNIT, TIME = "firm", "year"
 F = "invest ~ value + capital"

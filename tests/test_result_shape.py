@@ -1,5 +1,5 @@
 """One result shape: a reference fit, a Gaussian posterior and a latent-effect posterior
-answer the same questions with the same names and types (bayespanel.resultshape).
+answer the same questions with the same names and types (bayespanel.data.resultshape).
 
 Outside checks, each named beside its assertion:
 - linearmodels RandomEffects (Swamy-Arora) on the same rows: coefficients, standard errors,
@@ -15,7 +15,7 @@ import pytest
 from scipy import stats
 
 import bayespanel as bp
-from bayespanel import resultshape
+from bayespanel.data import resultshape
 
 FORMULA = "invest ~ value + capital"
 

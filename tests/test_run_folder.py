@@ -34,9 +34,9 @@ from pathlib import Path
 
 import pytest
 
-from bayespanel import outputs
-from bayespanel.cli import main
-from bayespanel.outputs import FAULT_ENV, settle
+from bayespanel.core import outputs
+from bayespanel.app.cli import main
+from bayespanel.core.outputs import FAULT_ENV, settle
 from bayespanel.report import load_results, render, write_tables
 
 UNIT, TIME = "firm", "year"
@@ -176,7 +176,7 @@ def test_a_kill_at_any_publish_step_leaves_one_whole_run(folder, old_run, grunfe
         assert (folder / ".bayespanel/publish.json").is_file()
         # a reader of the analysis file (fit --config OUT/analysis.toml) finishes the publish
         # first and so reads the new run's settings, the ones results.json describes
-        from bayespanel.runner import load_settings
+        from bayespanel.app.runner import load_settings
 
         assert load_settings(folder / "analysis.toml").reference == ("random",)
     load_results(folder)  # a reader: recovery is deterministic, whatever step was cut
@@ -337,7 +337,7 @@ def test_a_posterior_on_a_full_disk_leaves_no_file_and_no_hdf5_noise(old_run, tm
     """The file-size limit makes the write fail for real (EFBIG), in a fresh process: the
     posterior is made in memory, so HDF5 never sees the failure and prints nothing."""
     script = ("import errno, sys\n"
-              "from bayespanel.posterior import Posterior\n"
+              "from bayespanel.bayes.posterior import Posterior\n"
               "post = Posterior.load(sys.argv[1])\n"
               "try:\n"
               "    post.save(sys.argv[2])\n"

@@ -19,8 +19,8 @@ import pytest
 from scipy import stats
 
 import bayespanel as bp
-from bayespanel import sensitivity as S
-from bayespanel.errors import SpecificationError
+from bayespanel.analysis import sensitivity as S
+from bayespanel.core.errors import SpecificationError
 
 FORMULA = "invest ~ value + capital"
 
@@ -151,7 +151,7 @@ def weak_unit_model(grunfeld):
     """The first four Grunfeld years (statsmodels.datasets) with a simulated outcome whose
     unit SD (5) is small beside the occasion SD (40): the data say little about the unit
     SD near zero, which is where the presets differ."""
-    from bayespanel.recovery import simulate_outcome
+    from bayespanel.analysis.recovery import simulate_outcome
 
     df = grunfeld[grunfeld["year"] <= 1938].copy()
     panel = bp.Panel(df, unit="firm", time="year")

@@ -13,7 +13,7 @@ import pytest
 import statsmodels.api as sm
 
 import bayespanel as bp
-from bayespanel.errors import PanelDataError
+from bayespanel.core.errors import PanelDataError
 from bayespanel.reference.serial import serial_correlation_arrays, serial_correlation_test
 
 

@@ -16,8 +16,8 @@ import pytest
 from scipy import linalg, stats
 
 import bayespanel as bp
-from bayespanel.errors import SpecificationError
-from bayespanel.models import slopes
+from bayespanel.core.errors import SpecificationError
+from bayespanel.bayes import slopes
 
 SAMPLE = dict(tune=300, chains=2, seed=5, progress=False, sampler="pymc")
 

@@ -10,7 +10,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from bayespanel import suffstats as ss
+from bayespanel.core import suffstats as ss
 
 
 def dense(Z, codes):

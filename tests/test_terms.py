@@ -1,4 +1,4 @@
-"""Structured term labels (bayespanel.terms): one label function and its inverse.
+"""Structured term labels (bayespanel.core.terms): one label function and its inverse.
 
 Outside check: the columns each term names are compared with the unit means and the
 demeaned columns linearmodels' PanelData makes on the Grunfeld panel (statsmodels'
@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 
 import bayespanel as bp
-from bayespanel.formula import reserved_name
-from bayespanel.terms import (AS_IS, BETWEEN, CONTRAST, PARTS, UNIT_MEAN, WITHIN, Term, label,
+from bayespanel.data.formula import reserved_name
+from bayespanel.core.terms import (AS_IS, BETWEEN, CONTRAST, PARTS, UNIT_MEAN, WITHIN, Term, label,
                               labels, occasion, parse)
 
 CASES = [
@@ -114,7 +114,7 @@ def test_reserved_column_names_follow_the_label_grammar(name, what):
 
 
 def test_only_terms_spells_out_label_shapes():
-    # the rule of bayespanel/terms.py: no other module writes (or slices by) the text of a
+    # the rule of bayespanel/core/terms.py: no other module writes (or slices by) the text of a
     # part's label; they ask terms.label / part_label / parse. Docstrings may show labels.
     import ast
     from pathlib import Path

@@ -20,9 +20,9 @@ import pandas as pd
 import pytest
 
 import bayespanel as bp
-from bayespanel.errors import SamplingWarning, SpecificationError
-from bayespanel.models import RandomIntercept
-from bayespanel.models import sampling as smp
+from bayespanel.core.errors import SamplingWarning, SpecificationError
+from bayespanel.bayes import RandomIntercept
+from bayespanel.bayes import sampling as smp
 
 KW = dict(draws=500, tune=500, chains=2, seed=3, progress=False, sampler="pymc")
 WAGE = "lwage ~ exper + expersq + union + married + educ + black"
@@ -177,7 +177,7 @@ def test_start_option_is_checked_and_latent_models_keep_the_old_start(wage_panel
 
 def test_a_data_swap_reaches_the_kept_log_density(wage_fits):
     # the compiled log density is kept with the model; new statistics must move the mode
-    from bayespanel import derived
+    from bayespanel.core import derived
 
     df = _simulate(300, seed=5)
     model = RandomIntercept(bp.Panel(df, unit="unit", time="occ"), "y ~ x1 + x2 + z")

@@ -3,7 +3,7 @@
 One file of the registry (:mod:`bayespanel.kinds`): its column map and reference fit.
 """
 
-from ..terms import AS_IS
+from ..core.terms import AS_IS
 from .registry import ColumnMap, ReferenceKind
 
 # the unit means carry the between effects only

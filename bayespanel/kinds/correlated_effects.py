@@ -5,7 +5,7 @@ same columns.
 One file of the registry (:mod:`bayespanel.kinds`): its column map, reference fit and model.
 """
 
-from ..terms import AS_IS, UNIT_MEAN
+from ..core.terms import AS_IS, UNIT_MEAN
 from .registry import ColumnMap, ModelKind, ReferenceKind
 
 # the coefficient of x is the within effect; the between effect adds that of
@@ -27,7 +27,7 @@ REFERENCE = ReferenceKind(
 )
 
 MODEL = ModelKind(
-    "correlated_effects", "CorrelatedEffects", "bayespanel.models.builders:CorrelatedEffects",
+    "correlated_effects", "CorrelatedEffects", "bayespanel.bayes.builders:CorrelatedEffects",
     columns="mundlak", unit_effects="random", reference="mundlak",
     title="Correlated random effects (Mundlak)",
     assumptions="The random-intercept model with the unit means of the time-varying "

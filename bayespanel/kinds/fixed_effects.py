@@ -4,7 +4,7 @@ within estimator.
 One file of the registry (:mod:`bayespanel.kinds`): its column map, reference fit and model.
 """
 
-from ..terms import AS_IS
+from ..core.terms import AS_IS
 from .registry import ColumnMap, ModelKind, ReferenceKind
 
 # the demeaned columns carry the within effects only
@@ -28,7 +28,7 @@ REFERENCE = ReferenceKind(
 )
 
 MODEL = ModelKind(
-    "fixed_effects", "FixedEffects", "bayespanel.models.builders:FixedEffects",
+    "fixed_effects", "FixedEffects", "bayespanel.bayes.builders:FixedEffects",
     columns="within", unit_effects="fixed", reference="within", title="Fixed effects",
     assumptions="Every unit has its own free baseline, so only changes within units "
     "inform the coefficients; covariates that never change within a unit cannot be "

@@ -3,7 +3,7 @@
 One file of the registry (:mod:`bayespanel.kinds`): its column map, reference fit and model.
 """
 
-from ..terms import AS_IS
+from ..core.terms import AS_IS
 from .registry import ColumnMap, ModelKind, ReferenceKind
 
 # one coefficient carries both effects
@@ -23,7 +23,7 @@ REFERENCE = ReferenceKind(
 )
 
 MODEL = ModelKind(
-    "pooled", "Pooled", "bayespanel.models.builders:Pooled", columns="pooled", unit_effects="none",
+    "pooled", "Pooled", "bayespanel.bayes.builders:Pooled", columns="pooled", unit_effects="none",
     reference="pooled", title="Pooled regression",
     assumptions="One intercept for every unit: units differ only through the covariates. "
     "Rows of the same unit are treated as independent, which overstates precision when "

@@ -3,7 +3,7 @@
 One file of the registry (:mod:`bayespanel.kinds`): its column map, reference fit and model.
 """
 
-from ..terms import AS_IS
+from ..core.terms import AS_IS
 from .registry import ColumnMap, ModelKind, ReferenceKind
 
 # one coefficient carries both effects
@@ -24,7 +24,7 @@ REFERENCE = ReferenceKind(
 )
 
 MODEL = ModelKind(
-    "random_intercept", "RandomIntercept", "bayespanel.models.builders:RandomIntercept",
+    "random_intercept", "RandomIntercept", "bayespanel.bayes.builders:RandomIntercept",
     columns="random", unit_effects="random", reference="random",
     title="Random intercept",
     assumptions="Each unit has its own baseline, drawn from a normal distribution whose "

@@ -41,8 +41,8 @@ from importlib import import_module, metadata
 
 import numpy as np
 
-from ..errors import SpecificationError, choices_error
-from ..terms import AS_IS, parse, part_label
+from ..core.errors import SpecificationError, choices_error
+from ..core.terms import AS_IS, parse, part_label
 
 __all__ = ["ColumnMap", "ModelKind", "ReferenceKind", "register", "unregister", "model",
            "builder", "reference", "column_map", "models", "references", "model_names",
@@ -66,7 +66,7 @@ class ColumnMap:
     A covariate that varies within units has a within effect (of its deviation from the
     unit mean) and a between effect (of its unit mean). ``within`` and ``between`` give
     each as a sum of the coefficients of parts of the covariate, ``((part, sign), ...)``
-    (parts of :mod:`bayespanel.terms`), or None where the columns estimate no such effect.
+    (parts of :mod:`bayespanel.core.terms`), or None where the columns estimate no such effect.
     For the Mundlak columns, for example, the within effect is the coefficient of ``x``
     and the between effect that of ``x`` plus that of ``x (unit mean)`` (Mundlak 1978);
     for the hybrid columns they are the coefficients of ``x (within)`` and
@@ -443,7 +443,7 @@ def register(kind):
     """Add a :class:`ColumnMap`, :class:`ModelKind` or :class:`ReferenceKind` to the
     registry.
 
-    Raises :class:`~bayespanel.errors.SpecificationError` when its name (or, for a model,
+    Raises :class:`~bayespanel.core.errors.SpecificationError` when its name (or, for a model,
     its class name) is taken, when a model's reference or column map is not registered,
     or when a model's builder class says otherwise about its name, columns or unit
     effects.

@@ -4,7 +4,7 @@ the deviation from it; its reference fit is random-effects GLS on the same colum
 One file of the registry (:mod:`bayespanel.kinds`): its column map, reference fit and model.
 """
 
-from ..terms import BETWEEN, WITHIN
+from ..core.terms import BETWEEN, WITHIN
 from .registry import ColumnMap, ModelKind, ReferenceKind
 
 # the coefficient of x (within) is the within effect, that of x (between) the
@@ -25,7 +25,7 @@ REFERENCE = ReferenceKind(
 )
 
 MODEL = ModelKind(
-    "within_between", "WithinBetween", "bayespanel.models.builders:WithinBetween",
+    "within_between", "WithinBetween", "bayespanel.bayes.builders:WithinBetween",
     columns="within_between", unit_effects="random", reference="within_between",
     title="Within-between (hybrid)",
     assumptions="Each time-varying covariate is split into the unit's mean (between "

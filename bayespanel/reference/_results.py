@@ -7,9 +7,9 @@ import pandas as pd
 from scipy import stats
 
 from .. import kinds
-from ..mathcore import intraclass_correlation
-from ..jsonsafe import jsonable
-from ..resultshape import DEFAULT_INTERVAL, PartitionResult, check_prob, term_records
+from ..core.mathcore import intraclass_correlation
+from ..core.jsonsafe import jsonable
+from ..data.resultshape import DEFAULT_INTERVAL, PartitionResult, check_prob, term_records
 
 __all__ = ["ReferenceResult"]
 
@@ -25,7 +25,7 @@ class ReferenceResult:
 
     Built by :func:`bayespanel.reference.pooled`, :func:`within`, :func:`between`,
     :func:`random`, :func:`mundlak` and :func:`within_between`; all share this class and
-    answer with the names a :class:`~bayespanel.posterior.Posterior` uses (``coef``,
+    answer with the names a :class:`~bayespanel.bayes.posterior.Posterior` uses (``coef``,
     ``se``, ``interval``, ``table``, ``sigma_unit``, ``sigma_obs``).
 
     Attributes
@@ -68,7 +68,7 @@ class ReferenceResult:
         Terms that were not estimated, with the reason.
     assumptions : list of str
         What the estimator assumes, in plain language.
-    design : bayespanel.design.Design or None
+    design : bayespanel.data.design.Design or None
         The design the fit was computed on (``None`` for :func:`fit_arrays`).
     """
 
@@ -116,7 +116,7 @@ class ReferenceResult:
 
     sd = se  # the name a Posterior uses
 
-    #: name of the error column of :meth:`table` (:mod:`bayespanel.resultshape`)
+    #: name of the error column of :meth:`table` (:mod:`bayespanel.data.resultshape`)
     error_name = "se"
 
     @property
@@ -158,7 +158,7 @@ class ReferenceResult:
 
     def table(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
         """Estimates, standard errors and intervals (the leading columns every fit's
-        table shares, :mod:`bayespanel.resultshape`), then t, reference df and p-values."""
+        table shares, :mod:`bayespanel.data.resultshape`), then t, reference df and p-values."""
         ci = self.interval(prob)
         out = pd.DataFrame({
             "estimate": self._coef, "se": self.se.to_numpy(),
@@ -257,7 +257,7 @@ class ReferenceResult:
 
     def variance_partition(self) -> PartitionResult:
         """Unit SD, occasion SD, ICC and the GLS quasi-demeaning share per panel length,
-        as a :class:`~bayespanel.resultshape.PartitionResult` (the type a posterior's
+        as a :class:`~bayespanel.data.resultshape.PartitionResult` (the type a posterior's
         ``variance_partition()`` returns) holding this fit's estimates.
 
         Its ``table()`` is indexed by quantity (``"unit SD"``, ``"occasion SD"``,
@@ -294,7 +294,7 @@ class ReferenceResult:
             when only point estimates and variance components are needed.
         """
         if self.design is None:
-            from ..errors import SpecificationError
+            from ..core.errors import SpecificationError
             raise SpecificationError("this result has no design (it came from fit_arrays); "
                                      "call fit_arrays on the subset of rows instead")
         from .estimators import fit_design

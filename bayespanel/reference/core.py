@@ -1,6 +1,6 @@
 """Closed-form cores of the reference estimators on sufficient statistics.
 
-Every function here takes a :class:`bayespanel.suffstats.SuffStats` (``Z = [X, y]``, ``y``
+Every function here takes a :class:`bayespanel.core.suffstats.SuffStats` (``Z = [X, y]``, ``y``
 last) and nothing else, so the point estimates, the variance components and the
 classical covariances run unchanged wherever only the statistics exist (an out-of-core
 pass, for example). Cluster-robust covariances need rows and live in
@@ -31,9 +31,9 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import optimize
 
-from ..errors import EstimationError
-from ..mathcore import quasi_demeaning_share
-from .linalg import independent_columns, inv_psd, solve_psd
+from ..core.errors import EstimationError
+from ..core.mathcore import quasi_demeaning_share
+from ..core.linalg import independent_columns, inv_psd, solve_psd
 
 __all__ = [
     "CoreFit",

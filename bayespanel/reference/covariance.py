@@ -38,7 +38,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .linalg import psd_power
+from ..core.linalg import psd_power
 
 __all__ = ["COV_TYPES", "classical", "cluster_scores", "cr1", "cr2", "cr2_from_blocks"]
 

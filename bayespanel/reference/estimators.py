@@ -1,8 +1,8 @@
 """The reference estimators: labelled entry points over the closed-form cores.
 
 ``pooled``, ``within``, ``between``, ``random``, ``mundlak`` and ``within_between`` take a
-:class:`~bayespanel.panel.Panel` and a formula (or a ready
-:class:`~bayespanel.design.Design`), build the model's columns with
+:class:`~bayespanel.data.panel.Panel` and a formula (or a ready
+:class:`~bayespanel.data.design.Design`), build the model's columns with
 ``Design.matrices(kind)``, compute the sufficient statistics once, solve in closed form
 (:mod:`bayespanel.reference.core`) and add the requested covariance
 (:mod:`bayespanel.reference.covariance`). :func:`fit_arrays` is the same fit on plain
@@ -27,11 +27,12 @@ import warnings
 
 import numpy as np
 
-from .. import kinds, suffstats
-from ..errors import DataHandlingWarning, EstimationError, SpecificationError, choices_error
-from ..terms import AS_IS, parse
+from .. import kinds
+from ..core import suffstats
+from ..core.errors import DataHandlingWarning, EstimationError, SpecificationError, choices_error
+from ..core.terms import AS_IS, parse
 from . import core
-from .linalg import COLLINEAR_TOL
+from ..core.linalg import COLLINEAR_TOL
 from ._results import ReferenceResult
 from .covariance import COV_TYPES, classical, cluster_scores, cr1, cr2, cr2_from_blocks
 
@@ -72,7 +73,7 @@ def _check_options(estimator, method, cov):
 
 
 def _design_of(data, formula, occasion_effects):
-    from ..design import Design, check_flag
+    from ..data.design import Design, check_flag
 
     occasion_effects = check_flag("occasion_effects", occasion_effects)
     if isinstance(data, Design):
@@ -120,7 +121,7 @@ def within(data, formula=None, *, cov="classical", occasion_effects=False) -> Re
 
     The residual degrees of freedom are ``n - N - k`` (the unit means absorbed by
     demeaning are charged). Covariates constant within units are dropped with a
-    :class:`~bayespanel.errors.DataHandlingWarning` naming them (also in
+    :class:`~bayespanel.core.errors.DataHandlingWarning` naming them (also in
     ``result.dropped``), as are units with a single row (counted in the warning). The
     intercept is absorbed and not reported. CR1 charges ``k + 1`` coefficients in its
     small-sample factor when the formula has an intercept (the usual convention for
@@ -184,7 +185,7 @@ def within_between(data, formula=None, *, method="swamy-arora", cov="classical",
 
 
 def fit_design(design, estimator: str, *, method=None, cov="classical") -> ReferenceResult:
-    """Fit one reference estimator on a :class:`~bayespanel.design.Design`.
+    """Fit one reference estimator on a :class:`~bayespanel.data.design.Design`.
 
     Estimates from the design's sufficient statistics. Cluster-robust covariances need
     one score per unit: from the rows in slices (:func:`design_scores`) when the design
@@ -407,7 +408,7 @@ def fit_arrays(estimator, X, y, unit_codes, labels, *, method=None, cov="classic
 
 def fit_stats(estimator, ss, labels, *, method=None, outcome=None) -> ReferenceResult:
     """Point estimates, variance components and classical covariance from sufficient
-    statistics alone (:class:`bayespanel.suffstats.SuffStats` of ``[X, y]``, with ``X``
+    statistics alone (:class:`bayespanel.core.suffstats.SuffStats` of ``[X, y]``, with ``X``
     as in :func:`fit_arrays`)."""
     method = _check_options(estimator, method, "classical")
     labels = list(labels)
@@ -476,7 +477,7 @@ def _intercept_share(ss, ubar) -> float:
 def core_fit(estimator, ss, labels, method=None, near=None) -> core.CoreFit:
     """The closed-form core of one estimator on statistics (no labels, no checks):
     what :func:`fit_stats` and the exact cross-validation of the reference fits
-    (:func:`bayespanel.loo.reference_cv`) both run. ``near`` is a starting value of
+    (:func:`bayespanel.analysis.loo.reference_cv`) both run. ``near`` is a starting value of
     ``gamma = tau^2 / sigma^2`` for the ML/REML search (see
     :func:`~bayespanel.reference.core.likelihood_core`)."""
     pr = _priority(labels)

@@ -49,9 +49,9 @@ import pandas as pd
 from scipy import special, stats
 
 from .. import kinds
-from ..errors import EstimationError, SpecificationError, choices_error
-from ..jsonsafe import jsonable
-from ..resultshape import DEFAULT_INTERVAL, check_prob, term_records
+from ..core.errors import EstimationError, SpecificationError, choices_error
+from ..core.jsonsafe import jsonable
+from ..data.resultshape import DEFAULT_INTERVAL, check_prob, term_records
 from .covariance import cr1
 
 __all__ = ["GLMResult", "fit_glm", "glm_design", "GLM_COVS", "glm_family"]
@@ -115,7 +115,7 @@ class GLMResult:
         z = np.abs(np.asarray(z, dtype=float))
         return 2 * (stats.t.sf(z, self.df) if np.isfinite(self.df) else stats.norm.sf(z))
 
-    #: name of the error column of :meth:`table` (:mod:`bayespanel.resultshape`)
+    #: name of the error column of :meth:`table` (:mod:`bayespanel.data.resultshape`)
     error_name = "se"
 
     @property
@@ -164,7 +164,7 @@ class GLMResult:
                                  prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
         """``d E[y] / d x`` averaged over the rows, with delta-method standard errors.
 
-        ``names``/``weights`` as :func:`bayespanel.models.families.effect_weights`
+        ``names``/``weights`` as :func:`bayespanel.bayes.families.effect_weights`
         (each effect a combination of coefficients, e.g. ``b_x + b_{x (unit mean)}``).
         """
         W = np.asarray(weights, dtype=float).reshape(len(names), -1)

@@ -13,9 +13,9 @@ rows with the plug-in predictive density at the level the question needs.
   ``sigma^2 I + tau^2 J`` for the random intercept; pooled is the product of normals;
   fixed effects have no such density.
 
-The formulas are written once in :mod:`bayespanel.models.gaussian`
-(:func:`~bayespanel.models.gaussian.occasion_logpdf`,
-:func:`~bayespanel.models.gaussian.unit_logdensity`); the functions here take the reference
+The formulas are written once in :mod:`bayespanel.core.gaussian`
+(:func:`~bayespanel.core.gaussian.occasion_logpdf`,
+:func:`~bayespanel.core.gaussian.unit_logdensity`); the functions here take the reference
 fits' variances and call them, so the Bayesian LOO terms and the plug-in densities are the
 same code.
 
@@ -31,9 +31,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from ..errors import EstimationError, SpecificationError, choices_error
-from ..models import gaussian
-from ..terms import BETWEEN, UNIT_MEAN, WITHIN, parse
+from ..core.errors import EstimationError, SpecificationError, choices_error
+from ..core import gaussian
+from ..core.terms import BETWEEN, UNIT_MEAN, WITHIN, parse
 
 __all__ = ["occasion_logpdf", "fixed_occasion_logpdf", "unit_logpdf", "log_predictive",
            "exact_holdout"]
@@ -41,7 +41,7 @@ __all__ = ["occasion_logpdf", "fixed_occasion_logpdf", "unit_logpdf", "log_predi
 def occasion_logpdf(resid, R, m, sigma2, tau2):
     """Random intercept: ``log p(y_it | other m rows of the unit)``; ``resid = y - x'b``,
     ``R`` the sum of the unit's other residuals (arrays broadcast).
-    :func:`bayespanel.models.gaussian.occasion_logpdf` on variances."""
+    :func:`bayespanel.core.gaussian.occasion_logpdf` on variances."""
     return gaussian.occasion_logpdf(np.asarray(resid, dtype=float), np.asarray(R, dtype=float),
                                     np.asarray(m, dtype=float), np.sqrt(sigma2), np.sqrt(tau2))
 
@@ -54,7 +54,7 @@ def fixed_occasion_logpdf(resid, R, m, sigma2):
 
 def unit_logpdf(resid, codes, sigma2, tau2, n_units=None):
     """Random intercept: ``log p(y_i)`` per unit from the residuals of its rows
-    (:func:`bayespanel.models.gaussian.unit_logdensity` on variances)."""
+    (:func:`bayespanel.core.gaussian.unit_logdensity` on variances)."""
     return gaussian.unit_logdensity(np.asarray(resid, dtype=float), codes, np.sqrt(sigma2),
                                     np.sqrt(tau2), n_units)
 

@@ -33,8 +33,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-from ..ar1 import Timeline
-from ..errors import EstimationError
+from ..core.ar1 import Timeline
+from ..core.errors import EstimationError
 from .covariance import cluster_scores, cr1
 from .specification import SpecificationTest
 
@@ -82,7 +82,7 @@ def serial_correlation_arrays(X, y, keys, times, labels=None, column: str = "tim
     keys : array (n,)
         Unit of each row.
     times : array (n,)
-        Occasion of each row, numbers (see :func:`bayespanel.ar1.occasion_times`);
+        Occasion of each row, numbers (see :func:`bayespanel.core.ar1.occasion_times`);
         ``column`` names the time column in errors.
     labels : list of str, optional
         Names of the columns of ``X``, to report which differenced columns were used.

@@ -18,8 +18,8 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 from scipy import stats
 
-from ..errors import SpecificationError, choices_error
-from ..terms import UNIT_MEAN, parse
+from ..core.errors import SpecificationError, choices_error
+from ..core.terms import UNIT_MEAN, parse
 from ._results import ReferenceResult
 from .estimators import _PKG_DIR
 

@@ -8,7 +8,7 @@ they return nothing and the report is as before.
 
 from __future__ import annotations
 
-from ..terms import BETWEEN, WITHIN, parse
+from ..core.terms import BETWEEN, WITHIN, parse
 from .markup import Safe, esc, join, note, tag, table
 
 __all__ = ["family_of", "effects", "overview_text", "coefficient_note", "partition_lead",

@@ -18,7 +18,7 @@ import io
 
 import numpy as np
 
-from ..safetext import LITERAL_RC, literal
+from ..core.safetext import LITERAL_RC, literal
 from .tables import coefficient_grid
 from .text import label
 

@@ -13,9 +13,9 @@ from importlib import resources
 from pathlib import Path
 
 from .. import kinds
-from ..errors import SpecificationError
-from ..jsonsafe import jsonable
-from ..outputs import write_atomic
+from ..core.errors import SpecificationError
+from ..core.jsonsafe import jsonable
+from ..core.outputs import write_atomic
 
 __all__ = [
     "SCHEMA_NAME", "SCHEMA_VERSION", "jsonable", "dumps", "write_atomic", "write_json",
@@ -96,8 +96,8 @@ def _validate(data: dict) -> None:
 
 def load_results(path) -> dict:
     """Read a ``results.json`` (or the folder holding one) and check its schema version."""
-    from ..io import regular_file
-    from ..outputs import settle_for
+    from ..data.io import regular_file
+    from ..core.outputs import settle_for
 
     path = Path(path)
     if path.is_dir():

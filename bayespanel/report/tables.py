@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..terms import PARTS, parse
+from ..core.terms import PARTS, parse
 from . import numbers as num
 from .results_json import write_atomic
 from .text import HEADINGS, label
@@ -24,7 +24,7 @@ __all__ = ["coefficient_grid", "result_tables", "display_tables", "display_frame
 
 def _split(term: str):
     """``(covariate label, rank of the part)``: a covariate's rows, then its parts in the
-    order of :data:`bayespanel.terms.PARTS`."""
+    order of :data:`bayespanel.core.terms.PARTS`."""
     t = parse(term)
     return t.column.label, PARTS.index(t.part)
 

@@ -7,7 +7,7 @@ kind (:mod:`bayespanel.kinds`: ``title`` and ``assumptions``).
 
 from __future__ import annotations
 
-from ..safetext import printable
+from ..core.safetext import printable
 
 __all__ = ["CAUTION", "LEVEL_TEXT", "LABELS", "HEADINGS", "label", "printable"]
 

@@ -1,0 +1,1369 @@
+"""The whole job, shared by the command line and the Python API.
+
+settings -> panel -> reference fits -> Bayesian fits -> variance partition, contrasts,
+LOO -> comparison -> ``results.json``, posteriors, tables and ``report.html``.
+
+>>> import bayespanel as bp
+>>> from bayespanel.app.runner import Settings, run
+>>> df, truth = bp.datasets.clinic_panel(seed=1)
+>>> s = Settings(unit="clinic", time="quarter", formula=truth["formula"],
+...              models=("random_intercept",), draws=300, tune=300, chains=2)
+>>> results = run(s, df=df, out="clinic-run")                  # doctest: +SKIP
+
+:class:`Settings` is a frozen record of every choice; it is written to the output folder
+as ``analysis.toml`` so ``bayespanel fit --config analysis.toml`` repeats the run
+exactly (same data file, checked by its SHA-256, same seeds).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+import os
+import platform
+import re
+import sys
+import threading
+import time
+import tomllib
+import warnings
+import weakref
+from contextlib import contextmanager
+from dataclasses import asdict, dataclass, field, fields, replace
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+
+from .. import kinds
+from ..core.errors import (BayespanelError, EstimationError, SamplingWarning, SpecificationError,
+                     choices_error)
+from ..core.jsonsafe import json_record as _floats  # flat records for results.json
+from ..core.mathcore import unit_sd_draws
+from ..bayes.families import FAMILIES
+from ..bayes.sampling import MIN_DRAWS
+from ..analysis.occasions import true_occasion_coef
+from ..data.resultshape import DEFAULT_INTERVAL
+from ..core.terms import UNIT_MEAN
+
+__all__ = ["Settings", "run", "load_settings", "LEVELS", "software_versions"]
+
+LEVELS = ("occasion", "unit")
+SAMPLERS = ("auto", "pymc", "nutpie")
+COVS = ("classical", "cluster", "cr2")
+RE_METHODS = ("swamy-arora", "ml", "reml")
+_PACKAGES = ("bayespanel", "numpy", "scipy", "pandas", "xarray", "pymc", "pytensor", "arviz",
+             "arviz-base", "arviz-stats", "formulaic", "matplotlib", "h5netcdf", "nutpie")
+_LOG = logging.getLogger("bayespanel")
+LOO_OBSERVATIONS = 400
+MAX_REFITS = 10
+
+
+@dataclass(frozen=True)
+class Settings:
+    """Every choice of a run (see docs/cli.md for the analysis-file form).
+
+    Parameters
+    ----------
+    unit, time, formula : str
+        Panel columns and the Wilkinson formula.
+    data : str, optional
+        CSV or Parquet file (``None`` when a DataFrame is passed to :func:`run`).
+    models : tuple of str
+        Bayesian models by snake-case name (:func:`bayespanel.kinds.model_names`):
+        ``pooled``, ``random_intercept``, ``within_between``, ``correlated_effects``,
+        ``fixed_effects`` and any kind registered later; default all of them.
+    reference : tuple of str
+        Reference fits: ``pooled``, ``within``, ``between``, ``random``, ``mundlak``,
+        ``within_between``.
+    priors : dict
+        Prior overrides by term label or ``coef``, ``sigma_obs``, ``sigma_unit`` (see
+        docs/priors.md); applied to every model where the key exists.
+    draws, tune, chains, seed, sampler : sampling controls (the seed fixes every draw).
+    cov, re_method : reference covariance (default CR1 by unit) and variance-component
+        method of the random-intercept reference fits.
+    level : {"occasion", "unit"}
+        The LOO level of the comparison.
+    rope : float, optional
+        Half-width of the region of practical equivalence for the contrasts.
+    interval : float
+        Probability of every interval reported.
+    occasion_effects : bool
+        One indicator per occasion in every model.
+    ppc_draws : int
+        Posterior draws used for the predictive checks.
+    reference_folds : int, optional
+        How reference fits enter the LOO table: ``None`` or ``0`` exact leave-one-out
+        refits at every size (closed form, from downdated statistics); ``K >= 2`` grouped
+        K-fold (the comparison then says what mixing methods means for the ranking).
+    refit_high_k : bool
+        Replace the PSIS-LOO points whose Pareto k is above the threshold by exact refits
+        (one posterior sample each, the compiled model reused), at most ``max_refits``
+        per model.
+    max_refits : int
+        Most exact refits per model (default ``MAX_REFITS``); with more high-k points the
+        PSIS values stay and the problem list says so.
+    title : str, optional
+    delimiter : str, optional
+        Field delimiter of a CSV file (one character); default ``,`` (tab for ``.tsv``).
+    out_of_core : bool
+        Read the Parquet file or folder on Dask and work from one-pass statistics
+        (docs/cli.md lists what is left out and why).
+    loo_observations : int, optional
+        Out of core: points sampled by the sub-sampled LOO (default ``LOO_OBSERVATIONS``).
+    family : str
+        Outcome family (docs/families.md): ``gaussian`` (default), ``student_t``,
+        ``bernoulli``, ``binomial``, ``poisson``, ``negative_binomial``. Families other
+        than ``gaussian``, and random slopes, are fitted by the kinds with latent effects
+        only (:func:`bayespanel.kinds.latent_model_names`); their reference fits are
+        pooled GLMs (:func:`bayespanel.kinds.glm_reference_names`) for the logit and log
+        links.
+    trials : str, optional
+        Column with the binomial trials of every row (``family="binomial"`` only).
+    exposure : str, optional
+        Column with the exposure of every row, entering counts as ``log(exposure)``
+        (``poisson`` and ``negative_binomial`` only).
+    random_slopes : tuple of str
+        Time-varying covariates whose (within) slope varies by unit (at most two).
+    centred : bool
+        Centred instead of non-centred latent unit effects (docs/families.md).
+
+    ``models`` and ``reference`` default to every model and reference fit that applies
+    to the family: all five and all six for the Gaussian family without random slopes.
+    """
+
+    unit: str
+    time: str
+    formula: str
+    data: str | None = None
+    models: tuple | None = None
+    reference: tuple | None = None
+    priors: dict = field(default_factory=dict)
+    draws: int = 1000
+    tune: int = 1000
+    chains: int = 4
+    seed: int = 1
+    sampler: str = "auto"
+    cov: str = "cluster"
+    re_method: str = "swamy-arora"
+    level: str = "occasion"
+    rope: float | None = None
+    interval: float = DEFAULT_INTERVAL
+    occasion_effects: bool = False
+    ppc_draws: int = 200
+    reference_folds: int | None = None
+    refit_high_k: bool = False
+    max_refits: int = MAX_REFITS
+    title: str | None = None
+    data_sha256: str | None = None
+    delimiter: str | None = None
+    out_of_core: bool = False
+    loo_observations: int | None = None
+    family: str = "gaussian"
+    trials: str | None = None
+    exposure: str | None = None
+    random_slopes: tuple = ()
+    centred: bool = False
+
+    def __post_init__(self):
+        # values of the wrong type are kept as they are for check() to refuse by name
+        defaults = {"models": (kinds.latent_model_names() if self.latent
+                               else kinds.model_names()),
+                    "reference": (kinds.glm_reference_names() if self.glm_reference
+                                  else kinds.reference_names())}
+        for name in ("models", "reference", "random_slopes"):
+            v = getattr(self, name)
+            if v is None:
+                v = defaults[name]
+            if isinstance(v, str):
+                v = tuple(x.strip() for x in v.split(",") if x.strip())
+            if isinstance(v, (list, tuple)):
+                if name == "models":  # class names and classes become snake-case names
+                    v = [kinds.snake_name(m) for m in v]
+                object.__setattr__(self, name, tuple(v))
+        if isinstance(self.data, os.PathLike):
+            object.__setattr__(self, "data", os.fspath(self.data))
+        if self.priors is None or isinstance(self.priors, dict):
+            object.__setattr__(self, "priors", dict(self.priors or {}))
+        lkj = self.priors.get("lkj_eta") if isinstance(self.priors, dict) else None
+        if isinstance(lkj, str):
+            try:
+                self.priors["lkj_eta"] = float(lkj)
+            except ValueError:
+                pass  # refused by check() with the option named
+
+    @property
+    def latent(self) -> bool:
+        """True when the models have latent unit effects: a family other than the
+        Gaussian, or random slopes."""
+        return self.family != "gaussian" or bool(self.random_slopes)
+
+    @property
+    def glm_reference(self) -> bool:
+        """True when the reference fits are pooled GLMs (logit and log-link families)."""
+        return self.family not in ("gaussian", "student_t")
+
+    # ------------------------------------------------------------------ checks
+    def check(self) -> "Settings":
+        """Check every option before any work; messages name the option and the choices."""
+        for name in ("unit", "time", "formula"):
+            v = getattr(self, name)
+            if not isinstance(v, str) or not v.strip():
+                raise SpecificationError(f"{name} is required (got {v!r})")
+        for name in ("models", "reference"):
+            v = getattr(self, name)
+            if not isinstance(v, tuple) or not all(isinstance(x, str) for x in v):
+                raise SpecificationError(f"{name}={v!r} must be a list of names (or a "
+                                         "comma-separated string)")
+        for name in ("data", "title", "data_sha256"):
+            v = getattr(self, name)
+            if v is not None and not isinstance(v, str):
+                raise SpecificationError(f"{name}={v!r} must be text")
+        if not isinstance(self.priors, dict):
+            raise SpecificationError(f"priors={self.priors!r} must be a mapping of prior keys "
+                                     "to families")
+        for m in self.models:
+            if m not in kinds.model_names():
+                raise choices_error("models", m, kinds.model_names())
+        for r in self.reference:
+            if r not in kinds.reference_names():
+                raise choices_error("reference", r, kinds.reference_names())
+        if len(set(self.models)) != len(self.models):
+            raise SpecificationError(f"models={list(self.models)!r} names a model twice")
+        if not self.models and not self.reference:
+            raise SpecificationError("nothing to fit: models and reference are both empty")
+        for name, lo in (("draws", MIN_DRAWS), ("tune", 0), ("chains", 1), ("ppc_draws", 1)):
+            v = getattr(self, name)
+            if isinstance(v, bool) or not isinstance(v, int) or v < lo:
+                raise SpecificationError(f"{name}={v!r} must be an integer >= {lo}")
+        if isinstance(self.seed, bool) or not isinstance(self.seed, int) or self.seed < 0:
+            raise SpecificationError(f"seed={self.seed!r} must be a non-negative integer")
+        if self.sampler not in SAMPLERS:
+            raise choices_error("sampler", self.sampler, SAMPLERS)
+        if self.cov not in COVS:
+            raise choices_error("cov", self.cov, COVS)
+        if self.re_method not in RE_METHODS:
+            raise choices_error("re_method", self.re_method, RE_METHODS)
+        if self.level not in LEVELS:
+            raise choices_error("level", self.level, LEVELS)
+        if not isinstance(self.interval, (int, float)) or not 0 < self.interval < 1:
+            raise SpecificationError(f"interval={self.interval!r} must be a number in (0, 1)")
+        if self.reference_folds is not None and (
+                isinstance(self.reference_folds, bool) or not isinstance(self.reference_folds, int)
+                or self.reference_folds == 1 or self.reference_folds < 0):
+            raise SpecificationError(f"reference_folds={self.reference_folds!r} must be 0 "
+                                     "(exact leave-one-out) or an integer K >= 2")
+        if not isinstance(self.refit_high_k, bool):
+            raise SpecificationError(f"refit_high_k={self.refit_high_k!r} must be true or false")
+        if isinstance(self.max_refits, bool) or not isinstance(self.max_refits, int) \
+                or self.max_refits < 1:
+            raise SpecificationError(f"max_refits={self.max_refits!r} must be an integer >= 1")
+        if self.out_of_core and self.refit_high_k:
+            raise SpecificationError(
+                "refit_high_k: exact refits need the rows, which the out-of-core route does "
+                "not load; drop refit_high_k or out_of_core")
+        if self.rope is not None and (isinstance(self.rope, bool) or not isinstance(
+                self.rope, (int, float)) or not 0 < self.rope < float("inf")):
+            raise SpecificationError(f"rope={self.rope!r} must be a finite positive number")
+        if self.delimiter is not None and (not isinstance(self.delimiter, str)
+                                           or len(self.delimiter) != 1):
+            raise SpecificationError(
+                f"delimiter={self.delimiter!r} must be one character, such as ';' or '|' "
+                "(a tab: 'tab' on the command line, \"\\t\" in an analysis file)")
+        if self.delimiter is not None and self.out_of_core:
+            raise SpecificationError("delimiter applies to CSV files; out_of_core reads Parquet")
+        if not isinstance(self.out_of_core, bool):
+            raise SpecificationError(f"out_of_core={self.out_of_core!r} must be true or false")
+        if self.loo_observations is not None and (
+                isinstance(self.loo_observations, bool)
+                or not isinstance(self.loo_observations, int) or self.loo_observations < 2):
+            raise SpecificationError(f"loo_observations={self.loo_observations!r} must be an "
+                                     "integer >= 2")
+        if self.out_of_core and self.reference_folds is not None:
+            raise SpecificationError(
+                "reference_folds: the reference fits' cross-validation refits need the rows, "
+                "which the out-of-core route does not load; drop reference_folds or "
+                "out_of_core")
+        if not isinstance(self.occasion_effects, bool):
+            raise SpecificationError(f"occasion_effects={self.occasion_effects!r} must be "
+                                     "true or false")
+        self._check_family()
+        from ..bayes.latent import EXTRA_PRIOR_KEYS
+        from ..bayes.priors import check_prior
+
+        for k, v in self.priors.items():
+            if k == "lkj_eta":
+                if isinstance(v, bool) or not isinstance(v, (int, float)) or not v > 0:
+                    raise SpecificationError(f"priors['lkj_eta']={v!r} must be a positive "
+                                             "number (the LKJ shape of the random-slope "
+                                             "correlations)")
+                continue
+            if not isinstance(v, (str, dict)):
+                raise SpecificationError(
+                    f"priors[{k!r}]={v!r}: give a family name such as 'gamma2' or a table "
+                    "like {family = 'normal', sigma = 10}")
+            if k not in EXTRA_PRIOR_KEYS:
+                check_prior(k, v)  # family and parameters, before any data is read
+        return self
+
+    def _check_family(self):
+        """The family, its columns and the models and reference fits that apply to it."""
+        if self.family not in FAMILIES:
+            raise choices_error("family", self.family, FAMILIES)
+        for name in ("trials", "exposure"):
+            v = getattr(self, name)
+            if v is not None and (not isinstance(v, str) or not v.strip()):
+                raise SpecificationError(f"{name}={v!r} must be a column name")
+        if self.family == "binomial" and self.trials is None:
+            raise SpecificationError("family='binomial' needs trials: the column with the "
+                                     "number of trials of every row (--trials COL)")
+        if self.trials is not None and self.family != "binomial":
+            raise SpecificationError(f"trials={self.trials!r} is used by family='binomial' "
+                                     f"only, not {self.family!r}")
+        if self.exposure is not None and self.family not in ("poisson", "negative_binomial"):
+            raise SpecificationError(f"exposure={self.exposure!r} is used by the count "
+                                     "families ('poisson', 'negative_binomial') only, not "
+                                     f"{self.family!r}")
+        if not all(isinstance(x, str) and x for x in self.random_slopes):
+            raise SpecificationError(f"random_slopes={list(self.random_slopes)!r} must be "
+                                     "covariate names")
+        if len(set(self.random_slopes)) != len(self.random_slopes):
+            raise SpecificationError(f"random_slopes={list(self.random_slopes)!r} names a "
+                                     "covariate twice")
+        if len(self.random_slopes) > 2:
+            raise SpecificationError(f"random_slopes={list(self.random_slopes)!r}: at most "
+                                     "two random slopes are supported")
+        if not isinstance(self.centred, bool):
+            raise SpecificationError(f"centred={self.centred!r} must be true or false")
+        if not self.latent:
+            if self.centred:
+                raise SpecificationError("centred applies to latent unit effects only (a "
+                                         "family other than gaussian, or random slopes)")
+            return
+        what = (f"family={self.family!r}" if self.family != "gaussian" else "random slopes")
+        bad = [m for m in self.models if m not in kinds.latent_model_names()]
+        if bad:
+            raise SpecificationError(
+                f"models: {', '.join(bad)} cannot fit {what}; the models that can are "
+                f"{', '.join(kinds.latent_model_names())}")
+        if self.glm_reference:
+            bad = [r for r in self.reference if r not in kinds.glm_reference_names()]
+            if bad:
+                raise SpecificationError(
+                    f"reference: {', '.join(bad)} has no counterpart for family="
+                    f"{self.family!r} (a linear fit of a {self.family} outcome would not match "
+                    f"the models); the reference fits for it are pooled GLMs on the columns "
+                    f"of {', '.join(kinds.glm_reference_names())}")
+            if self.cov == "cr2":
+                raise SpecificationError(
+                    f"cov='cr2' is for the linear reference fits; the reference GLMs of "
+                    f"family={self.family!r} take 'cluster' or 'classical'")
+        if self.out_of_core:
+            raise SpecificationError(
+                f"out_of_core: {what} needs the rows (latent unit effects are sampled row by "
+                "row); drop out_of_core or use the Gaussian family without random slopes")
+
+    # ------------------------------------------------------------------ files
+    def to_dict(self) -> dict:
+        d = asdict(self)
+        for k in ("models", "reference", "random_slopes"):
+            d[k] = list(getattr(self, k))
+        return d
+
+    def to_toml(self) -> str:
+        """The analysis file that repeats this run (``bayespanel fit --config FILE``)."""
+        lines = ["# bayespanel analysis file: `bayespanel fit --config THIS_FILE --out DIR`",
+                 "# repeats the run exactly (same data, checked by SHA-256, same seeds)."]
+        if self.title is not None:
+            lines.append(f"title = {_toml_value(self.title)}")
+        lines += ["", "[data]"]
+        for k in ("data", "unit", "time", "data_sha256", "delimiter"):
+            v = getattr(self, k)
+            if v is not None:
+                lines.append(f"{'file' if k == 'data' else 'sha256' if k == 'data_sha256' else k}"
+                             f" = {_toml_value(v)}")
+        if self.out_of_core:
+            lines.append("out_of_core = true")
+        lines += ["", "[model]", f"formula = {_toml_value(self.formula)}",
+                  f"models = {_toml_value(list(self.models))}",
+                  f"occasion_effects = {_toml_value(self.occasion_effects)}",
+                  f"family = {_toml_value(self.family)}"]
+        for k in ("trials", "exposure"):
+            if getattr(self, k) is not None:
+                lines.append(f"{k} = {_toml_value(getattr(self, k))}")
+        if self.random_slopes:
+            lines.append(f"random_slopes = {_toml_value(list(self.random_slopes))}")
+        if self.centred:
+            lines.append("centred = true")
+        lines += ["", "[priors]"]
+        lines += [f"{_toml_key(k)} = {_toml_value(v)}" for k, v in self.priors.items()]
+        lines += ["", "[sampling]"] + [f"{k} = {_toml_value(getattr(self, k))}" for k in
+                                       ("draws", "tune", "chains", "seed", "sampler", "ppc_draws")]
+        lines += ["", "[reference]", f"fits = {_toml_value(list(self.reference))}",
+                  f"cov = {_toml_value(self.cov)}", f"method = {_toml_value(self.re_method)}",
+                  "", "[comparison]", f"level = {_toml_value(self.level)}"]
+        if self.reference_folds is not None:
+            lines.append(f"reference_folds = {_toml_value(self.reference_folds)}")
+        if self.refit_high_k:
+            lines.append("refit_high_k = true")
+        if self.max_refits != MAX_REFITS:
+            lines.append(f"max_refits = {_toml_value(self.max_refits)}")
+        if self.rope is not None:
+            lines.append(f"rope = {_toml_value(self.rope)}")
+        if self.loo_observations is not None:
+            lines.append(f"loo_observations = {_toml_value(self.loo_observations)}")
+        lines += ["", "[report]", f"interval = {_toml_value(self.interval)}"]
+        return "\n".join(lines) + "\n"
+
+
+_TOML_LAYOUT = {  # section -> {key in file: Settings field}
+    "": {"title": "title"},
+    "data": {"file": "data", "unit": "unit", "time": "time", "sha256": "data_sha256",
+             "out_of_core": "out_of_core", "delimiter": "delimiter"},
+    "model": {"formula": "formula", "models": "models", "occasion_effects": "occasion_effects",
+              "family": "family", "trials": "trials", "exposure": "exposure",
+              "random_slopes": "random_slopes", "centred": "centred"},
+    "sampling": {k: k for k in ("draws", "tune", "chains", "seed", "sampler", "ppc_draws")},
+    "reference": {"fits": "reference", "cov": "cov", "method": "re_method"},
+    "comparison": {"level": "level", "rope": "rope", "reference_folds": "reference_folds",
+                   "loo_observations": "loo_observations", "refit_high_k": "refit_high_k",
+                   "max_refits": "max_refits"},
+    "report": {"interval": "interval", "title": "title"},
+}
+
+
+def _toml_key(k: str) -> str:
+    return k if re.fullmatch(r"[A-Za-z0-9_-]+", k) else json.dumps(k)
+
+
+def _toml_value(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (int, float)):
+        return repr(v)
+    if isinstance(v, str):
+        return json.dumps(v, ensure_ascii=False)
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    if isinstance(v, dict):
+        return "{" + ", ".join(f"{_toml_key(k)} = {_toml_value(x)}" for k, x in v.items()) + "}"
+    raise SpecificationError(f"cannot write {v!r} to an analysis file")
+
+
+#: the TOML types each setting may have in an analysis file (the values are checked
+#: further by :meth:`Settings.check`)
+_FILE_TYPES = {
+    **dict.fromkeys(("title", "data", "unit", "time", "formula", "data_sha256", "sampler",
+                     "cov", "re_method", "level"), (str,)),
+    **dict.fromkeys(("models", "reference"), (list, str)),
+}  # numbers and switches are checked, with their ranges, by Settings.check
+_TYPE_NAMES = {str: "text", list: "a list of names"}
+
+
+def _check_file_type(path, name, value):
+    """Refuse a value of the wrong TOML type, naming the key as the file spells it."""
+    want = _FILE_TYPES.get(name)
+    ok = want is None or isinstance(value, want)
+    if ok and name in ("models", "reference") and isinstance(value, list):
+        ok = all(isinstance(x, str) for x in value)
+    if not ok:
+        key = next(f"[{sec}] {k}" if sec else k for sec, keys in _TOML_LAYOUT.items()
+                   for k, f in keys.items() if f == name)
+        raise SpecificationError(
+            f"analysis file {str(path)!r}: {key} = {value!r} must be "
+            + " or ".join(_TYPE_NAMES[t] for t in want))
+
+
+def load_settings(path, **overrides) -> Settings:
+    """Read an analysis file (TOML); ``overrides`` (not None) replace its values.
+
+    A relative data path is taken relative to the analysis file's folder. Unknown
+    sections or keys are errors naming them, so a typo never passes silently.
+    """
+    from ..data.io import regular_file
+    from ..core.outputs import settle_for
+
+    path = regular_file(path, "analysis file", SpecificationError)
+    settle_for(path)  # an analysis.toml of a run folder: finish an interrupted publish first
+    try:
+        doc = tomllib.loads(path.read_text("utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise SpecificationError(f"analysis file {str(path)!r} is not valid TOML: {exc}") from None
+    except RecursionError:
+        raise SpecificationError(f"analysis file {str(path)!r} nests tables or arrays too "
+                                 "deeply to be an analysis file") from None
+    except OSError as exc:
+        raise SpecificationError(f"cannot read analysis file {str(path)!r}: "
+                                 f"{exc.strerror or exc}") from None
+    values = {}
+    for key, val in doc.items():
+        if isinstance(val, dict):
+            if key == "priors":
+                values["priors"] = dict(val)
+                continue
+            if key not in _TOML_LAYOUT or key == "":
+                raise SpecificationError(
+                    f"analysis file {str(path)!r}: unknown section [{key}]; sections are "
+                    + ", ".join(f"[{s}]" for s in list(_TOML_LAYOUT)[1:] + ["priors"]))
+            for k, v in val.items():
+                if k not in _TOML_LAYOUT[key]:
+                    raise SpecificationError(
+                        f"analysis file {str(path)!r}: unknown key {k!r} in [{key}]; valid "
+                        f"keys are {', '.join(_TOML_LAYOUT[key])}")
+                values[_TOML_LAYOUT[key][k]] = v
+        elif key in _TOML_LAYOUT[""]:
+            values[_TOML_LAYOUT[""][key]] = val
+        else:
+            raise SpecificationError(f"analysis file {str(path)!r}: unknown top-level key {key!r}")
+    for name, v in values.items():
+        _check_file_type(path, name, v)
+    if values.get("data") is not None and not Path(values["data"]).is_absolute():
+        values["data"] = str((path.parent / values["data"]).resolve())
+    values.update({k: v for k, v in overrides.items() if v is not None})
+    missing = [f for f in ("unit", "time", "formula") if f not in values]
+    if missing:
+        raise SpecificationError(f"analysis file {str(path)!r} does not give "
+                                 f"{', '.join(missing)} (in [data] and [model])")
+    names = {f.name for f in fields(Settings)}
+    return Settings(**{k: v for k, v in values.items() if k in names}).check()
+
+
+# ---------------------------------------------------------------------- helpers
+def software_versions() -> dict:
+    from importlib import metadata
+
+    pk = {}
+    for name in _PACKAGES:
+        try:
+            pk[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            continue
+    return {"python": platform.python_version(), "platform": platform.platform(),
+            "packages": pk}
+
+
+def _sha256(path) -> str:
+    """SHA-256 of a file; of a folder (a Parquet dataset), the SHA-256 of its files'
+    relative paths and digests in path order (hidden files left out), so a rerun notices
+    a file changed, added, removed or renamed."""
+    path = Path(path)
+    if path.is_dir():
+        h = hashlib.sha256()
+        files = sorted(f for f in path.rglob("*") if f.is_file() and not any(
+            part.startswith(".") for part in f.relative_to(path).parts))
+        for f in files:
+            h.update(f.relative_to(path).as_posix().encode() + b"\0")
+            h.update(bytes.fromhex(_sha256(f)))
+        return h.hexdigest()
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+#: seconds without a progress line after which the last stage is said to be still running
+HEARTBEAT = 10.0
+
+
+class _Progress:
+    """Stage lines with elapsed time, to a stream (stderr on the command line).
+
+    A stage that runs longer than :data:`HEARTBEAT` seconds without a line of its own
+    (sampling a model, LOO of many points, drawing the figures) gets a line saying it is
+    still running, every ``HEARTBEAT`` seconds, from a daemon thread that ends with the
+    object (it holds only a weak reference).
+    """
+
+    def __init__(self, stream=None, quiet=False, heartbeat=HEARTBEAT):
+        self.stream = stream if stream is not None else sys.stderr
+        self.quiet = quiet
+        self.t0 = time.perf_counter()
+        self.heartbeat = heartbeat
+        self._stage = None  # the last stage line, when it began, when a line was printed
+        self._began = self._printed = self.t0
+        self._lock = threading.Lock()
+        self._beat = None
+
+    def __call__(self, msg: str):
+        if self.quiet:
+            return
+        with self._lock:
+            self._print(msg)
+            self._stage, self._began = _stage_name(msg), self._printed
+        if self._beat is None and self.heartbeat:
+            self._beat = threading.Thread(target=_heartbeat, args=(weakref.ref(self),),
+                                          name="bayespanel-progress", daemon=True)
+            self._beat.start()
+
+    def _print(self, msg: str):
+        self._printed = time.perf_counter()
+        print(f"[{self._printed - self.t0:6.1f} s] {msg}", file=self.stream, flush=True)
+
+    def _idle(self):
+        """A line saying the last stage is still running, after ``heartbeat`` silent s."""
+        with self._lock:
+            if self._stage is not None and time.perf_counter() - self._printed >= self.heartbeat:
+                self._print(f"  ... still running: {self._stage} "
+                            f"({time.perf_counter() - self._began:.0f} s)")
+
+
+def _stage_name(msg: str) -> str:
+    """A stage line shortened for the heartbeat: ``sampling pooled: 4 chains x ...`` ->
+    ``sampling pooled``; a closing parenthesis dropped (``LOO of x ... (PSIS, 816 points)``)."""
+    text = re.sub(r"\s*\([^()]*\)$", "", msg.strip())
+    head, sep, _ = text.partition(": ")
+    return head if sep and " " in head else text
+
+
+def _heartbeat(ref):
+    """Loop of the heartbeat thread: ends when its :class:`_Progress` is gone."""
+    while True:
+        time.sleep(1.0)
+        progress = ref()
+        if progress is None:
+            return
+        progress._idle()
+        del progress
+
+
+def _records(df, index_name=None):
+    out = []
+    for idx, row in df.iterrows():
+        rec = {index_name or (df.index.name or "name"): idx}
+        rec.update({str(k): v for k, v in row.items()})
+        out.append(rec)
+    return out
+
+
+# ---------------------------------------------------------------------- out of core
+#: environment variable choosing where the out-of-core passes run (docs/cli.md)
+SCHEDULER_ENV = "BAYESPANEL_DASK_SCHEDULER"
+
+
+def open_out_of_core(path, unit, time_col, say):
+    """A :class:`~bayespanel.data.sources.dask.DaskPanel` on a Parquet file or folder.
+
+    CSV is refused (it cannot be split into partitions by row groups and read by
+    column); the scheduler is ``$BAYESPANEL_DASK_SCHEDULER`` (``local``, the default: a
+    local cluster of two thread workers; ``threads``; ``synchronous``).
+    """
+    from ..data.sources.dask import SCHEDULERS
+    from ..data.io import regular_file
+    from ..data.panel import Panel
+
+    p = regular_file(path, folder=True)
+    if not (p.is_dir() or p.suffix.lower() in (".parquet", ".pq")):
+        raise SpecificationError(
+            f"out_of_core: {str(p)!r} is not Parquet; the out-of-core route reads a Parquet "
+            "file or a folder of Parquet files (write the CSV to Parquet first, or drop "
+            "--out-of-core to read it into memory)")
+    client = os.environ.get(SCHEDULER_ENV, "local").strip() or "local"
+    if client not in SCHEDULERS:
+        raise choices_error(SCHEDULER_ENV, client, SCHEDULERS)
+    panel = Panel.from_parquet(str(p), unit=unit, time=time_col, engine="dask", client=client)
+    say(f"opened {p.name} out of core: {panel.npartitions} partitions, "
+        f"{len(panel.columns)} columns, scheduler {client}")
+    return panel
+
+
+# ---------------------------------------------------------------------- stages
+def _source(settings, what):
+    """The data file's record (path, SHA-256 of the file or folder); warns if it changed."""
+    from ..core.errors import PanelDataError
+    from ..data.io import regular_file
+
+    if not settings.data:
+        raise SpecificationError(f"no data: {what} (data = ...)")
+    regular_file(settings.data, folder=True)  # never open a device or a pipe
+    try:
+        digest = _sha256(settings.data)
+    except OSError as exc:
+        raise PanelDataError(f"cannot read {settings.data!r}: {exc.strerror or exc}") from None
+    source = {"file": str(settings.data), "sha256": digest}
+    if settings.data_sha256 and source["sha256"] and settings.data_sha256 != source["sha256"]:
+        warnings.warn(f"the data file {settings.data!r} has changed since the analysis "
+                      "file was written (SHA-256 differs); results will differ", UserWarning)
+    return source
+
+
+def _data_stage(settings, df, say):
+    from ..data.io import read_table
+    from ..data.panel import Panel
+
+    source = {"file": None, "sha256": None}
+    if df is None:
+        source = _source(settings, "give a CSV or Parquet file")
+        df = read_table(settings.data, sep=settings.delimiter)
+    say(f"read {len(df)} rows x {df.shape[1]} columns")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")  # occasions read as dates are reported too
+        panel = Panel(df, unit=settings.unit, time=settings.time)
+        design = panel.design(settings.formula, occasion_effects=settings.occasion_effects)
+    return panel, design, _data_record(settings, panel, design, source, len(df), say), \
+        [str(w.message) for w in caught]
+
+
+def _data_stage_large(settings, say):
+    """The out-of-core data stage: the design pass (statistics, structure and per-unit
+    cross-products) and the describe pass over the Parquet partitions."""
+    source = _source(settings, "out_of_core needs a Parquet file or folder")
+    panel = open_out_of_core(settings.data, settings.unit, settings.time, say)
+    say(f"pass: design (statistics, structure, per-unit cross-products; "
+        f"{panel.npartitions} partitions)")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        design = panel.design(settings.formula, occasion_effects=settings.occasion_effects,
+                              cluster=True)
+    say(f"  {design.n_input_rows} rows read, {design.n} used, {design.n_units} units")
+    data = _data_record(settings, panel, design, source, design.n_input_rows, say)
+    return panel, design, data, [str(w.message) for w in caught]
+
+
+def _data_record(settings, panel, design, source, n_read, say):
+    """The ``data`` part of results.json (the describe pass, on the formula's columns)."""
+    from ..data.formula import screen
+
+    used = [c for c in screen(settings.formula, panel.columns).columns
+            if c not in (panel.unit, panel.time) and c in panel.numeric_columns()]
+    if not design.has_rows:
+        say(f"pass: describe ({len(used)} columns)")
+    desc = panel.describe(columns=used)
+    return {
+        "source": {**source, "n_rows_read": int(n_read)},
+        "unit": panel.unit, "time": panel.time, "formula": settings.formula,
+        "outcome": design.outcome,
+        "structure": _floats(panel.structure()),
+        "variables": [_floats(r) for r in _records(desc, "variable")],
+        "sample": {"n_rows": design.n, "n_units": design.n_units, "n_dropped": design.n_dropped,
+                   "dropped_by_column": dict(design.dropped_by_column)},
+        "terms": [{"term": t, "varies_within": bool(design.varies_within[t])}
+                  for t in design.terms],
+    }
+
+
+@contextmanager
+def _isolated(failed, say, name, title, what, refuse=()):
+    """Run one fit or stage; on an error, record it in ``failed`` and go on, so one
+    model's failure never loses the others (``results["failed"]``, the console and the
+    report list it; the command line exits with 1). Interrupts are not caught, nor the
+    errors in ``refuse`` (the reference fits come first and take milliseconds, so data
+    they cannot be fitted to is refused as bad input before anything is sampled). The
+    traceback goes to the ``bayespanel`` logger (``--debug`` shows it)."""
+    try:
+        yield
+    except refuse:
+        raise
+    except Exception as exc:  # noqa: BLE001 - any failure of one fit is recorded, not raised
+        from ..core.outputs import cannot_write
+
+        if cannot_write(exc):  # a full disk stops the run; the folder keeps its earlier run
+            raise
+        text = f"{type(exc).__name__}: {exc}" if str(exc) else type(exc).__name__
+        failed.append({"name": name, "title": title, "stage": what, "error": text})
+        _LOG.debug("%s of %s failed", what, name, exc_info=True)
+        say(f"{what if name in (what, 'tests') else f'{what} of {name}'} failed ({text}); "
+            "the run goes on without it")
+
+
+def _reference_stage(settings, design, say, failed):
+    fits, out = {}, []
+    for name in settings.reference:
+        with _isolated(failed, say, name, kinds.reference(name).title, "reference fit",
+                       refuse=BayespanelError):
+            res, entry = _reference_one(name, settings, design)
+            fits[name] = res
+            out.append(entry)
+    say(f"reference fits ({settings.cov} covariance): {', '.join(fits) or 'none'}")
+    return fits, out
+
+
+def _reference_one(name, settings, design):
+    from .. import reference as ref
+
+    components = kinds.reference(name).variance_components
+    kw = {"method": settings.re_method} if components else {}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = ref.fit_design(design, name, cov=settings.cov, **kw)
+    return res, {"name": name, "title": kinds.reference(name).title,
+                 "assumptions": (_assumptions(res, settings.cov)
+                                 or kinds.reference(name).assumptions),
+                 **res.to_record(settings.interval)}
+
+
+_TESTS = (("hausman", "Hausman (classical), fixed vs random effects"),
+          ("mundlak", "Mundlak unit-mean terms (cluster-robust Wald)"))
+
+
+def tests_skip_reason(design) -> str | None:
+    """Why the Hausman and Mundlak tests do not apply to a design, or None when they do.
+
+    Both ask whether a covariate's within and between effects differ, so they need at
+    least one covariate that varies within units and whose unit means differ between
+    units (a fixed schedule, such as years since baseline observed on the same occasions
+    for every unit, or occasion indicators in a balanced panel, has no between variation).
+    """
+    if not design.time_varying:
+        return ("no covariate varies within units, so there is no within effect to "
+                "compare with a between effect")
+    if not any(t.part == UNIT_MEAN for t in design.term_parts("mundlak")):
+        return ("no time-varying covariate varies between units (every unit has the same "
+                f"unit mean of {', '.join(map(repr, design.time_varying))}), so within "
+                "and between effects cannot be told apart")
+    return None
+
+
+def _tests_stage(design, say):
+    """Classical Hausman and cluster-robust Mundlak tests, each when it applies; a test
+    that does not apply is recorded with the reason (``skipped``)."""
+    from .. import reference as ref
+
+    why = tests_skip_reason(design)
+    if why is not None:
+        say(f"specification tests skipped: {why}")
+        return [{"name": key, "title": title, "statistic": None, "df": None, "p_value": None,
+                 "null": None, "conclusion": f"not run: {why}", "message": None,
+                 "skipped": why} for key, title in _TESTS]
+    tests = []
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        fe = ref.fit_design(design, "within", cov="classical")
+        re_ = ref.fit_design(design, "random", cov="classical", method="swamy-arora")
+        found = (ref.hausman(fe, re_), ref.mundlak_test(ref.fit_design(
+            design, "mundlak", method="swamy-arora", cov="cluster")))
+        for (key, title), t in zip(_TESTS, found):
+            # the cluster-robust Wald test is read on F(q, G - 1), as the coefficients'
+            # tests use t(G - 1); the chi-squared form stays in statistic/df/p_value
+            use_f = bool(np.isfinite(t.f_p_value))
+            p_used = t.f_p_value if use_f else t.p_value
+            reject = np.isfinite(p_used) and p_used < 0.05
+            tests.append(_floats({
+                "name": key, "title": title, "statistic": t.statistic, "df": t.df,
+                "p_value": t.p_value, "null": t.null,
+                "distribution": (f"F({t.df}, {t.f_df_denom:.0f})" if use_f
+                                 else f"chi-squared({t.df})"),
+                "reported_statistic": t.f_statistic if use_f else t.statistic,
+                "reported_p_value": p_used,
+                "conclusion": ("within and between effects differ (p < 0.05): the random-"
+                               "intercept assumption is doubtful" if reject else
+                               "no evidence at the 5% level that within and between "
+                               "effects differ") + _rank_note(t),
+                "message": t.message}))
+    say("specification tests: Hausman, Mundlak")
+    return tests
+
+
+def _rank_note(t) -> str:
+    """Said beside a test's reading when its df is below the number of terms compared (the
+    Hausman covariance difference is often not positive definite; Hausman 1978)."""
+    q = len(t.terms or [])
+    if not q or t.df >= q:
+        return ""
+    return (f" (on {t.df} of {q} df: the difference of the covariance matrices is not "
+            "positive definite, so its generalised inverse was used)")
+
+
+def _extra_prior_keys(settings) -> set:
+    """Prior keys of the latent-effect models beyond the Gaussian ones (docs/families.md)."""
+    from ..bayes.families import get_family
+
+    if not settings.latent:
+        return set()
+    params = get_family(settings.family).params
+    keys = {"sigma_slope", "lkj_eta"} if settings.random_slopes else set()
+    keys |= {"nu"} if "nu" in params else set()
+    keys |= {"inv_sqrt_shape"} if settings.family == "negative_binomial" else set()
+    return keys
+
+
+def _model_priors(settings, model_cls, labels):
+    has_unit = model_cls.unit_effects == "random"
+    valid = set(labels) | {"coef", "sigma_obs"} | ({"sigma_unit"} if has_unit else set())
+    valid |= _extra_prior_keys(settings)
+    return {k: v for k, v in settings.priors.items() if k in valid} or None
+
+
+def _check_prior_keys(settings, label_sets):
+    from ..bayes.families import get_family
+
+    known = set().union(*label_sets.values()) if label_sets else set()
+    known |= {"coef", "sigma_unit"} | _extra_prior_keys(settings)
+    if "sigma_obs" in get_family(settings.family).params:
+        known.add("sigma_obs")
+    for k in settings.priors:
+        if k not in known:
+            raise SpecificationError(
+                f"priors has an unknown key {k!r}; valid keys for these models are "
+                + ", ".join(map(repr, sorted(known))))
+
+
+def _prior_text(p) -> str:
+    kw = getattr(p, "kwargs", None)
+    if kw is None:
+        return str(p)
+    return f"{p.family}(" + ", ".join(f"{k}={v:.4g}" for k, v in kw.items()) + ")"
+
+
+def _assumptions(res, cov) -> str:
+    """The reference fit's assumptions, without the sentence on a covariance not used."""
+    keep = [a for a in res.assumptions
+            if not (cov != "classical" and a.startswith("Classical errors"))]
+    return " ".join(keep)
+
+
+def _thin_for(n_total, target):
+    return max(1, int(np.ceil(n_total / max(target, 1))))
+
+
+def _ppc(post, design, n_draws, seed):
+    """Panel statistics of replicated outcomes (same units, new occasion noise)."""
+    thin = _thin_for(post.n_chains * post.n_draws, n_draws)
+    yrep = np.asarray(post.posterior_predictive(level="occasion", thin=thin, seed=seed).values)
+    yrep = yrep.reshape(-1, yrep.shape[-1])
+    codes, T, starts = design.unit_codes, design.T, design.starts
+
+    def stats(y):
+        y = np.atleast_2d(y)
+        means = np.add.reduceat(y, starts, axis=1) / T
+        dev = y - means[:, codes]
+        return {"mean": y.mean(axis=1), "sd_between": means.std(axis=1, ddof=1),
+                "sd_within": np.sqrt((dev ** 2).sum(axis=1) / (y.shape[1] - 1)),
+                "max_unit_mean": means.max(axis=1), "min_unit_mean": means.min(axis=1)}
+
+    obs, rep = stats(design.y), stats(yrep)
+    labels = {"mean": "mean", "sd_between": "SD between units", "sd_within": "SD within units",
+              "min_unit_mean": "lowest unit mean", "max_unit_mean": "highest unit mean"}
+    return [{"statistic": k, "label": labels[k], "observed": float(obs[k][0]),
+             "replicated_mean": float(rep[k].mean()), "p_value": float((rep[k] >= obs[k][0]).mean()),
+             "replicated": [float(v) for v in rep[k]]} for k in labels]
+
+
+def _partition(post, design, kind, coef_d, sigma_d, tau_d, ref):
+    """The variance partition of one posterior (bayespanel.analysis.partition, issue 6): the
+    posterior's own, from its rows or, without rows at hand, its design's statistics."""
+    ref = ref if ref is not None and getattr(ref, "design", None) is not None else None
+    if hasattr(post, "variance_partition"):
+        return post.variance_partition(reference=ref)
+    from ..analysis import partition as part
+
+    M, _, codes = post.rows
+    return part.variance_partition(M, codes, kind, post.labels, coef_d, sigma_d, tau_d,
+                                   reference=ref)
+
+
+def _contrasts(post, design, kind, coef_d, settings, ref):
+    """Between-minus-within contrasts of one posterior (bayespanel.analysis.contrasts, issue 6)."""
+    if hasattr(post, "contrasts"):
+        return post.contrasts(rope=settings.rope, prob=settings.interval, reference=ref,
+                              tests=False)
+    from ..analysis import contrasts as ctr
+
+    return ctr.within_between_contrasts(kind, post.labels, coef_d,
+                                        ctr.contrast_covariates(kind, post.labels),
+                                        rope=settings.rope, prob=settings.interval,
+                                        reference=ref)
+
+
+def _sample_timed(m, settings, progress_bars):
+    """Sample a built model with the run's settings; returns the posterior and seconds."""
+    t0 = time.perf_counter()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # problems are collected from diagnostics() later
+        post = m.sample(draws=settings.draws, tune=settings.tune, chains=settings.chains,
+                        seed=settings.seed, sampler=settings.sampler, progress=progress_bars)
+    return post, time.perf_counter() - t0
+
+
+def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, progress_bars):
+    if settings.latent:  # a family other than the Gaussian, or random slopes
+        from .family_stage import bayes_one
+        return bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say,
+                         progress_bars)
+    cls = kinds.model(name).builder_class()
+    prob = settings.interval
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # dropped rows were reported by the data stage
+        priors = _model_priors(settings, cls, labels)
+        m = design.build(cls, priors=priors)  # from the design's statistics
+    say(f"sampling {name}: {settings.chains} chains x {settings.draws} draws "
+        f"(+{settings.tune} tuning)")
+    post, seconds = _sample_timed(m, settings, progress_bars)
+    diag = post.diagnostics(warn=False)
+    say(f"  {name}: {seconds:.1f} s, max R-hat {diag['max_rhat']:.3f}, "
+        f"{diag['divergences']} divergences")
+    record = post.to_record(prob)
+    kind = kinds.model(name).columns
+    coef_d = post._flat("coef")
+    sigma_d = post._flat("sigma_obs")
+    tau_d = unit_sd_draws(m.unit_effects, post._flat("sigma_unit")
+                          if m.unit_effects == "random" else None, sigma_d.shape)
+    ref_for = ref_fits.get(kinds.model(name).reference)
+    say(f"  {name}: summaries, variance partition, contrasts, predictive checks")
+    vp = None
+    if m.unit_effects == "random":
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            pr = _partition(post, design, kind, coef_d, sigma_d, tau_d, ref_for)
+        vp = pr.to_record(prob)
+    contrasts = []
+    if kinds.model(name).contrasts:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            cr = _contrasts(post, design, kind, coef_d, settings, ref_for)
+        contrasts = cr.to_record(prob)
+    ppc = _ppc(post, design, settings.ppc_draws, settings.seed) if design.has_rows else []
+    rel = None
+    if out_dir is not None:
+        rel = f"posteriors/{name}.nc"
+        (Path(out_dir) / "posteriors").mkdir(parents=True, exist_ok=True)
+        post.save(Path(out_dir) / rel)  # the staging folder: published when the run completes
+    entry = {
+        "name": name, "builder": kinds.model(name).class_name, "title": kinds.model(name).title,
+        "assumptions": kinds.model(name).assumptions, "reference_counterpart": kinds.model(name).reference,
+        "posterior_file": rel,
+        "sampling": _floats({"draws": settings.draws, "tune": settings.tune,
+                             "chains": settings.chains, "seed": settings.seed,
+                             "sampler": str(post.sampling.get("sampler", settings.sampler)),
+                             "seconds": seconds}),
+        "priors": {k: _prior_text(v) for k, v in m.priors.items()},
+        "coefficients": record["coefficients"],
+        "scale": record["scale"],
+        "variance_partition": vp,
+        "contrasts": contrasts,
+        "diagnostics": record["diagnostics"],
+        "loo": None,
+        "ppc": ppc,
+    }
+    return post, entry
+
+
+def _reference_folds(settings):
+    """Exact LOO for the reference fits at every size (downdated closed-form refits),
+    grouped K-fold when the settings ask for it."""
+    return settings.reference_folds or None
+
+
+def _loo_observations(settings, design):
+    """Points of the out-of-core sub-sampled LOO: the setting (default LOO_OBSERVATIONS),
+    at most every point of the level."""
+    points = design.n if settings.level == "occasion" else design.n_units
+    return min(settings.loo_observations or LOO_OBSERVATIONS, points)
+
+
+def _loo_refitted(post, level, settings):
+    """PSIS-LOO with the high-k points replaced by exact refits (``refit_high_k``):
+    ``(LOOResult, note or None, refit warnings)``. With more high-k points than
+    ``max_refits``, or a model that cannot be refitted, the PSIS values stay and the note
+    says why."""
+    from ..analysis.loo.psis import MANY_REFITS
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", SamplingWarning)
+        try:
+            lr = post.loo(level, refit_high_k=True, max_refits=settings.max_refits)
+            n = int(lr.pointwise["refit"].sum()) if "refit" in lr.pointwise else 0
+            note = (f"{n} point(s) with high Pareto k replaced by exact refits" if n else None)
+        except SpecificationError as exc:  # latent-effect models have no exact refits
+            lr, note = post.loo(level), f"not refitted: {exc}"
+        except EstimationError:  # more high-k points than max_refits
+            lr = post.loo(level)
+            n_high = int(lr.n_high_pareto_k)
+            note = (f"not refitted: {n_high} points exceed max_refits = {settings.max_refits}"
+                    f" (--max-refits N; from {MANY_REFITS} refits on they use nutpie, "
+                    "compiled once) or compare by grouped K-fold")
+    found = [str(w.message) for w in caught if issubclass(w.category, SamplingWarning)]
+    return lr, note, [w for w in found if w.startswith("refit without")]
+
+
+def _loo_entry(post, level, design=None, settings=None):
+    """PSIS-LOO of one posterior (out of core: sub-sampled, Magnusson et al. 2019; with
+    ``settings.refit_high_k``, high-k points refitted exactly), or None when the level is
+    undefined for the model."""
+    from ..analysis.loo import loo_subsample
+
+    large = design is not None and not design.has_rows
+    refit_note, refit_warnings = None, []
+    try:
+        if large:
+            lr = loo_subsample(post, level, _loo_observations(settings, design),
+                               seed=settings.seed)
+        elif settings is not None and settings.refit_high_k:
+            lr, refit_note, refit_warnings = _loo_refitted(post, level, settings)
+        else:
+            with warnings.catch_warnings():
+                # high Pareto k enters the run's problem list (report.problems), once
+                warnings.simplefilter("ignore", SamplingWarning)
+                lr = post.loo(level)
+    except BayespanelError as exc:
+        return None, {"level": level, "elpd": None, "se": None, "p_loo": None,
+                      "n_high_pareto_k": None, "max_k": None, "warning": str(exc)}
+    entry = lr.to_record()
+    if large:
+        entry["observations"] = _loo_observations(settings, design)
+    if refit_note:
+        entry["refit_note"] = refit_note
+    if refit_warnings:
+        entry["refit_warnings"] = refit_warnings
+    return lr, _floats(entry)
+
+
+def _comparison_large(settings, design, posts, entries, say):
+    """Without rows at hand: the Bayesian models' sub-sampled LOO side by side
+    (:func:`bayespanel.analysis.comparison.compare` on the sub-sampled results, which shares one
+    seeded sample of points between the models)."""
+    from ..analysis.comparison import compare
+
+    by_name = {e["name"]: e for e in entries}
+    results = {}
+    for name, post in posts.items():
+        say(f"LOO of {name}: sub-sampled at the {settings.level} level "
+            f"({_loo_observations(settings, design)} points"
+            + ("; one more pass over the rows)" if settings.level == "occasion" else ")"))
+        lr, by_name[name]["loo"] = _loo_entry(post, settings.level, design, settings)
+        results[name] = lr
+    scored = {n: r for n, r in results.items() if r is not None}
+    table = compare(scored, level=settings.level) if scored else None
+    rows = []
+    for name in (list(table.index) if scored else []) + [n for n in results if n not in scored]:
+        rec = {"model": name, "title": kinds.model(name).title, "kind": "bayesian",
+               "elpd": None, "se": None, "elpd_diff": None, "se_diff": None,
+               "method": "undefined", "level": settings.level,
+               "note": by_name[name]["loo"]["warning"]}
+        if name in scored:
+            r = table.loc[name]
+            rec.update(elpd=r["elpd"], se=r["se"], p_loo=r["p_loo"], method=r["method"],
+                       elpd_diff=r["elpd_diff"], se_diff=r["se_diff"], note=r["note"] or None)
+        rows.append(_floats(rec))
+    say(f"LOO comparison done: {len(rows)} Bayesian fits (reference fits are not scored "
+        "out of core)")
+    return {"level": settings.level, "reference_folds": None, "rows": rows}
+
+
+def _comparison_stage(settings, design, posts, ref_fits, entries, say, failed=None):
+    """LOO at the chosen level for every Bayesian model and reference fit (a model whose
+    LOO fails is left out of the table and recorded in ``failed``)."""
+    from ..analysis.comparison import compare, equivalence_classes
+
+    if not design.has_rows:  # sub-sampled LOO, Magnusson et al. (2019)
+        return _comparison_large(settings, design, posts, entries, say)
+    fits, titles = {}, {}
+    by_name = {e["name"]: e for e in entries}
+    models = {}
+    for name, post in posts.items():
+        if settings.refit_high_k:
+            say(f"LOO of {name}: PSIS at the {settings.level} level, exact refits of points "
+                f"with high Pareto k (at most {settings.max_refits})")
+        else:
+            say(f"LOO of {name} at the {settings.level} level (PSIS, "
+                f"{design.n if settings.level == 'occasion' else design.n_units} points)")
+        with _isolated(failed if failed is not None else [], say, name, kinds.model(name).title,
+                       "LOO"):
+            lr, by_name[name]["loo"] = _loo_entry(post, settings.level, settings=settings)
+            fits[name] = lr if lr is not None else post
+            models[name] = post
+            titles[name] = kinds.model(name).title
+    for name, res in ref_fits.items():
+        if name == "between" or settings.glm_reference:
+            continue  # between: one row per unit; GLMs: no cross-validation (docs/families.md)
+        fits[f"ref:{name}"] = models[f"ref:{name}"] = res
+        titles[f"ref:{name}"] = kinds.reference(name).title + " (ref.)"
+    if not fits:  # e.g. only the between fit, or only GLM references: nothing to score
+        say("LOO comparison skipped: no fit is scored by LOO (the between fit has one row "
+            "per unit; reference GLMs are not cross-validated)")
+        return None
+    folds = _reference_folds(settings)
+    say(f"LOO at the {settings.level} level; reference fits by "
+        + ("exact leave-one-out refits" if folds is None else f"grouped {folds}-fold CV"))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        classes = equivalence_classes(models)
+        table = compare(fits, level=settings.level, reference_folds=folds, seed=settings.seed,
+                        equivalent=classes, progress=say)
+    rows = []
+    for key, r in table.iterrows():
+        rec = _floats({str(k): v for k, v in r.items()})
+        rec["model"] = str(key)
+        rec["title"] = titles.get(str(key), str(key))
+        if rec.get("equivalent_to") and rec.get("note"):  # titles, not internal names
+            names = rec["equivalent_to"].split(", ")
+            rec["note"] = rec["note"].replace(
+                f"equivalent to {rec['equivalent_to']} (",
+                f"equivalent to {', '.join(titles.get(n, n) for n in names)} (", 1)
+        rec["kind"] = "reference" if str(key).startswith("ref:") else "bayesian"
+        rows.append(rec)
+    say(f"LOO comparison done: {len(rows)} fits")
+    out = {"level": settings.level, "reference_folds": folds, "rows": rows,
+           "methods_note": table.attrs.get("methods_note") or None,
+           "equivalent": table.attrs.get("equivalent", [])}
+    if settings.glm_reference and ref_fits:
+        out["note"] = ("the reference GLMs are not scored: they have no cross-validation "
+                       "here, and a pooled GLM's plug-in density would not predict a known "
+                       "unit's occasions as the models do; compare them by their average "
+                       "marginal effects")
+    return out
+
+
+def _truth_by_model(truth, entries, ref_entries):
+    """The true value of each term under each model's parametrisation (demo only): the
+    column map's :meth:`~bayespanel.kinds.ColumnMap.true_coefficients`, leaving out what a
+    model with one coefficient for unequal within and between effects cannot carry."""
+    out = {}
+    for key, kind, e in ([(e["name"], kinds.model(e["name"]).columns, e) for e in entries]
+                         + [(f"ref:{e['name']}", e["name"], e) for e in ref_entries]):
+        out[key] = kinds.column_map(kind).true_coefficients(
+            truth["within"], truth["between"], truth.get("constant", {}),
+            truth["intercept"], strict=False)
+        for row in e["coefficients"]:  # occasion terms (0 when the simulation has none)
+            occ = true_occasion_coef(row["term"], truth)
+            if occ is not None:
+                out[key][row["term"]] = occ
+    return {"icc": truth["icc"], "sigma_unit": truth["sigma_unit"],
+            "sigma_obs": truth["sigma_obs"], "by_model": out}
+
+
+# ---------------------------------------------------------------------- the job
+def run(settings: Settings, df=None, out=None, truth=None, progress=None, quiet=False,
+        progress_bars=False) -> dict:
+    """Run the whole job and, when ``out`` is given, write every output there.
+
+    Parameters
+    ----------
+    settings : Settings
+    df : pandas.DataFrame, optional
+        The table (otherwise read from ``settings.data``).
+    out : path, optional
+        Output folder: ``results.json``, ``analysis.toml``, ``posteriors/*.nc``,
+        ``tables/*.{md,tex,csv}`` and ``report.html``, published together when the run
+        completes (:mod:`bayespanel.core.outputs`); the folder is locked against other runs
+        meanwhile (:class:`~bayespanel.core.errors.FolderInUseError`).
+    truth : dict, optional
+        Known true values (simulated data), shown beside the estimates.
+    progress : callable, optional
+        Receives one line per stage; default prints to stderr with elapsed time.
+    progress_bars : bool
+        Show the sampler's own progress bars.
+
+    Returns
+    -------
+    dict
+        The contents of ``results.json`` (see docs/results-schema.md).
+    """
+    from contextlib import nullcontext
+
+    from ..core.budget import check_run_memory
+    from ..core.outputs import RunFolder, write_atomic
+    from ..report import write_report
+    from ..report.results_json import write_json
+
+    settings = settings.check()
+    say = progress or _Progress(quiet=quiet)
+    if settings.out_of_core and df is not None:
+        raise SpecificationError("out_of_core reads settings.data on Dask; pass no DataFrame")
+    # the folder is locked for the whole run and every output is written to its staging
+    # folder, then published at once (bayespanel.core.outputs): an error, an interrupt or a kill
+    # leaves the earlier run or the new one, complete
+    with RunFolder(out) if out is not None else nullcontext() as folder:
+        panel, design, data, notes = (_data_stage_large(settings, say) if settings.out_of_core
+                                      else _data_stage(settings, df, say))
+        if settings.data and data["source"]["sha256"]:
+            settings = replace(settings, data=str(Path(settings.data).resolve()),
+                               data_sha256=data["source"]["sha256"])
+        check_run_memory(settings, design)  # draws x chains that fit, before any fit
+        stage = folder.stage if folder is not None else None
+        results = _fit_stages(settings, panel, design, data, notes, stage, truth, say,
+                              progress_bars)
+        if folder is not None:
+            say("writing results.json, tables, figures and report.html")
+            write_atomic(stage / "analysis.toml", settings.to_toml())
+            write_report(results, stage)
+            write_json(stage / "results.json", results)
+            folder.publish()
+            say(f"wrote {Path(out) / 'report.html'}")
+    return results
+
+
+def _left_out(settings, panel, design) -> dict:
+    """What the out-of-core route leaves out and why (results.json and the report)."""
+    why_rows = "needs the rows, which the out-of-core route does not load"
+    items = [
+        {"item": "posterior predictive checks",
+         "reason": f"drawing replicated panels {why_rows}"},
+        {"item": "figures of predictive checks", "reason": "no predictive draws"},
+        {"item": "reference fits in the LOO comparison",
+         "reason": "their exact or K-fold cross-validation refits the estimator without "
+                   f"each point, and each refit {why_rows}; the comparison holds the "
+                   "Bayesian models"},
+        {"item": "full PSIS-LOO", "reason": "replaced by the sub-sampling estimator "
+                 "(Magnusson et al. 2019): the approximation at the posterior means for every "
+                 "point, full PSIS on a seeded simple random sample of "
+                 f"{_loo_observations(settings, design)} points"},
+        {"item": "exact refits of high Pareto-k points", "reason": f"each refit {why_rows}"},
+        {"item": "design check (simulated replicates)", "reason": f"it {why_rows}"},
+        {"item": "saved estimation rows in posteriors/*.nc",
+         "reason": "the files hold the sufficient statistics only"},
+    ]
+    return {"scheduler": panel.client if isinstance(panel.client, str) else "distributed",
+            "partitions": panel.npartitions, "rows_read": design.n_input_rows,
+            "loo_observations": _loo_observations(settings, design), "left_out": items}
+
+
+def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progress_bars):
+    """Reference fits, tests, Bayesian fits and the comparison -> the results dict."""
+    from ..report.problems import problems
+    from ..report.results_json import SCHEMA_NAME, SCHEMA_VERSION, validate
+
+    from . import family_stage
+
+    failed = []
+    notes = notes + family_stage.data_checks(settings, panel, design)
+    tests = []
+    if settings.glm_reference:  # logit and log links: pooled GLMs, their Mundlak test
+        ref_fits, ref_entries, more = family_stage.reference_stage(settings, panel, design, say)
+        notes = notes + more
+        with _isolated(failed, say, "tests", "Mundlak test (GLM)", "specification tests"):
+            tests = family_stage.tests_stage(ref_fits, panel, design, settings, say)
+    else:
+        ref_fits, ref_entries = _reference_stage(settings, design, say, failed)
+        with _isolated(failed, say, "tests", "Hausman and Mundlak tests",
+                       "specification tests"):
+            tests = _tests_stage(design, say)
+    # a model this design cannot hold (fixed effects without a covariate that varies
+    # within units) is refused as bad input here, before anything is sampled
+    labels = {name: design.labels(kinds.model(name).columns) for name in settings.models}
+    _check_prior_keys(settings, labels)
+    for name in settings.models:
+        if kinds.model(name).columns == "within" and design.time_constant:
+            left = ", ".join(map(repr, design.time_constant))
+            notes = notes + [f"{kinds.model(name).title} leaves out {left}: constant within "
+                             "units, absorbed by the unit intercepts"]
+    posts, entries = {}, []
+    for name in settings.models:
+        with _isolated(failed, say, name, kinds.model(name).title, "Bayesian fit"):
+            post, entry = _bayes_one(name, settings, panel, design, labels[name], ref_fits,
+                                     out_dir, say, progress_bars)
+            posts[name] = post
+            entries.append(entry)
+    comparison = None
+    if posts or ref_fits:
+        with _isolated(failed, say, "comparison", "LOO comparison", "comparison"):
+            comparison = _comparison_stage(settings, design, posts, ref_fits, entries, say,
+                                           failed)
+    results = {
+        "schema": SCHEMA_NAME, "schema_version": SCHEMA_VERSION,
+        "created": datetime.now(timezone.utc).replace(microsecond=0).isoformat(),
+        "title": settings.title or f"Panel analysis of {data['outcome']}",
+        "settings": {**settings.to_dict(), "toml": settings.to_toml()},
+        "software": software_versions(),
+        "data": data, "models": entries, "reference": ref_entries, "tests": tests,
+        "comparison": comparison, "warnings": notes,
+        "truth": _truth_by_model(truth, entries, ref_entries) if truth else None,
+    }
+    if failed:  # runs where everything was fitted keep the 1.0 layout
+        results["failed"] = failed
+    if not design.has_rows:
+        results["out_of_core"] = _left_out(settings, panel, design)
+    results["problems"] = problems(results)  # the one list every output prints
+    validate(results)
+    return results

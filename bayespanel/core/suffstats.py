@@ -1,0 +1,839 @@
+"""Sufficient statistics of the Gaussian panel likelihood, in one pass.
+
+With ``Z = [X, y]`` (``p = k + 1`` columns, y last) the Gaussian random-intercept,
+within-between, Mundlak, fixed-effects and pooled likelihoods depend on the data only
+through
+
+* ``within``: ``sum_i sum_t (z_it - zbar_i)(z_it - zbar_i)'`` (p x p),
+* per distinct panel length ``T_d``: the number of units, the mean of their unit means and
+  the centred cross-products of their unit means,
+* ``n``, the global mean and the centred total cross-products.
+
+Out of core the pass is a map-reduce. :func:`partial` summarises any block of rows (units
+may be split across blocks) as a :class:`Partial`; :func:`merge` combines two blocks with
+the pairwise update of Chan, Golub and LeVeque (1979), applied to the totals and to every
+unit split between blocks; :func:`finalize` turns the merged result into
+:class:`SuffStats`. In memory, :func:`compute` (= :func:`compute_chunked`) reads the rows
+once, centred first on a reference point and then on their unit means, with a kernel
+compiled by numba when it pays and bit-identical numpy otherwise (see "the in-memory
+pass" below).
+
+References
+----------
+.. [1] Chan, T. F., Golub, G. H. and LeVeque, R. J. (1979). Updating formulae and a pairwise
+   algorithm for computing sample variances. Technical report STAN-CS-79-773, Stanford.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+import threading
+from dataclasses import dataclass, field
+
+import numpy as np
+
+__all__ = ["SuffStats", "Partial", "partial", "merge", "finalize", "compute", "quad_terms"]
+
+
+@dataclass
+class Partial:
+    """Moments of a block of rows; mergeable with other blocks in any order.
+
+    Everything is stored relative to a reference point ``ref`` (a row mean, rounded),
+    so that large common offsets in the data do not cost precision: ``shift`` is the
+    block mean minus ``ref``, ``m2`` the cross-products about the block mean. ``keys`` are
+    the units present in the block (sorted, unique) with their row ``counts`` and the
+    ``offsets`` of their block means from ``ref``. ``within_m2`` holds the cross-products
+    of the rows about their block-unit means.
+    """
+
+    n: int
+    ref: np.ndarray
+    shift: np.ndarray
+    m2: np.ndarray
+    within_m2: np.ndarray
+    keys: np.ndarray
+    counts: np.ndarray
+    offsets: np.ndarray
+
+    @property
+    def p(self) -> int:
+        return int(self.ref.shape[0])
+
+    @property
+    def mean(self) -> np.ndarray:
+        return self.ref + self.shift
+
+
+@dataclass
+class SuffStats:
+    """Everything the Gaussian marginal likelihood needs (see module docstring)."""
+
+    n: int
+    n_units: int
+    mean: np.ndarray
+    total: np.ndarray
+    within: np.ndarray
+    unit_count: np.ndarray
+    unit_mean: np.ndarray
+    lengths: np.ndarray
+    group_count: np.ndarray
+    group_mean: np.ndarray
+    group_cp: np.ndarray
+    unit_keys: np.ndarray = field(default=None)
+    names: list = field(default=None)
+
+    @property
+    def p(self) -> int:
+        return int(self.mean.shape[0])
+
+    @property
+    def k(self) -> int:
+        return self.p - 1
+
+    def to_dict(self) -> dict:
+        """Arrays and sizes, for saving (NetCDF attributes or JSON)."""
+        out = {k: getattr(self, k) for k in ("n", "n_units", "mean", "total", "within",
+                                             "lengths", "group_count", "group_mean", "group_cp")}
+        return {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in out.items()}
+
+
+def _group_sums(codes: np.ndarray, Z: np.ndarray, n_groups: int) -> np.ndarray:
+    out = np.empty((n_groups, Z.shape[1]))
+    for j in range(Z.shape[1]):
+        out[:, j] = np.bincount(codes, weights=Z[:, j], minlength=n_groups)
+    return out
+
+
+def partial(Z: np.ndarray, keys: np.ndarray) -> Partial:
+    """Summarise one block of rows. ``keys`` gives each row's unit (any sortable type)."""
+    Z = np.asarray(Z, dtype=float)
+    if Z.ndim != 2:
+        raise ValueError("Z must be a 2-d array (rows x columns)")
+    n, p = Z.shape
+    keys = np.asarray(keys)
+    if n == 0:
+        return Partial(0, np.zeros(p), np.zeros(p), np.zeros((p, p)), np.zeros((p, p)),
+                       keys[:0], np.zeros(0, dtype=np.int64), np.zeros((0, p)))
+    ukeys, codes = np.unique(keys, return_inverse=True)
+    codes = codes.ravel()
+    ref = Z.mean(axis=0)
+    Zc = Z - ref  # centre first so that large offsets do not eat precision
+    shift = Zc.mean(axis=0)
+    counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
+    offsets = _group_sums(codes, Zc, len(ukeys)) / counts[:, None]
+    D = Zc - offsets[codes]
+    within_m2 = D.T @ D
+    D = Zc - shift
+    m2 = D.T @ D
+    del D, Zc
+    return Partial(int(n), ref, shift, m2, within_m2, ukeys, counts, offsets)
+
+
+def merge(a: Partial, b: Partial) -> Partial:
+    """Combine two blocks (pairwise update of Chan, Golub and LeVeque 1979).
+
+    Units present in both blocks are merged too: their within cross-products gain the
+    between-fragment part, ``sum_f n_f (mean_f - mean_unit)(mean_f - mean_unit)'``.
+    """
+    if a.n == 0:
+        return b
+    if b.n == 0:
+        return a
+    n = a.n + b.n
+    d = b.ref - a.ref  # b re-expressed about a's reference point
+    delta = (b.shift + d) - a.shift
+    shift = a.shift + delta * (b.n / n)
+    m2 = a.m2 + b.m2 + np.outer(delta, delta) * (a.n * b.n / n)
+    keys = np.concatenate([a.keys, b.keys])
+    counts = np.concatenate([a.counts, b.counts])
+    offsets = np.concatenate([a.offsets, b.offsets + d])
+    ukeys, inv = np.unique(keys, return_inverse=True)
+    inv = inv.ravel()
+    within = a.within_m2 + b.within_m2
+    if len(ukeys) == len(keys):
+        order = np.argsort(inv)
+        return Partial(n, a.ref, shift, m2, within, ukeys, counts[order], offsets[order])
+    # units split between the blocks: merge each set of fragments
+    new_counts = np.bincount(inv, weights=counts, minlength=len(ukeys)).astype(np.int64)
+    new_offsets = _group_sums(inv, offsets * counts[:, None], len(ukeys)) / new_counts[:, None]
+    dev = offsets - new_offsets[inv]
+    within = within + (dev * counts[:, None]).T @ dev
+    return Partial(n, a.ref, shift, m2, within, ukeys, new_counts, new_offsets)
+
+
+#: units per slice when unit-level arrays are swept (bounds the temporaries to
+#: ``_UNIT_STEP x p`` whatever the number of units)
+_UNIT_STEP = 1 << 13
+
+
+def finalize(part: Partial, names=None) -> SuffStats:
+    """Turn merged block moments into :class:`SuffStats` (groups by panel length).
+
+    The group statistics are one sweep over the unit offsets (``_group_pass``), so the
+    only ``N x p`` array made here is the result's ``unit_mean``.
+    """
+    counts = part.counts
+    lengths, gcount, gmean_o, gcp = _group_pass(part.offsets, counts)
+    return SuffStats(
+        n=int(part.n), n_units=int(len(counts)), mean=part.mean, total=part.m2.copy(),
+        within=part.within_m2.copy(), unit_count=counts.copy(), unit_mean=part.offsets + part.ref,
+        lengths=lengths.astype(np.int64), group_count=gcount,
+        group_mean=(gmean_o - part.shift) + part.mean,
+        group_cp=gcp, unit_keys=part.keys.copy(), names=list(names) if names is not None else None,
+    )
+
+
+def compute(X, y, unit_codes, names=None) -> SuffStats:
+    """Sufficient statistics of ``Z = [X, y]`` grouped by ``unit_codes`` (one pass).
+
+    The same as :func:`compute_chunked` (kept as the short name).
+    """
+    return compute_chunked(X, y, unit_codes, names=names)
+
+
+def quad_terms(stats: SuffStats, b: np.ndarray):
+    """Residual quadratic forms for coefficients ``b``: ``(sum_i W_i, S_d)`` where
+    ``S_d = sum over units of length T_d of rbar_i^2``.
+
+    ``b`` may have shape ``(k,)`` or ``(draws, k)``.
+    """
+    b = np.atleast_2d(np.asarray(b, dtype=float))
+    v = np.hstack([-b, np.ones((b.shape[0], 1))])
+    W = np.einsum("si,ij,sj->s", v, stats.within, v)
+    S = (np.einsum("si,dij,sj->sd", v, stats.group_cp, v)
+         + stats.group_count[None, :] * (v @ stats.group_mean.T) ** 2)
+    return W, S
+
+
+def _sorted_groups(keys):
+    """``(ukeys, counts, starts)`` when ``keys`` are sorted, else ``None``."""
+    if keys.dtype == object or not bool(np.all(keys[1:] >= keys[:-1])):
+        return None
+    starts = np.flatnonzero(np.concatenate([[True], keys[1:] != keys[:-1]]))
+    counts = np.diff(np.append(starts, len(keys))).astype(np.int64)
+    return keys[starts], counts, starts
+
+
+def _finish(n, ref, counts, offsets, within_m2, ukeys) -> Partial:
+    """Block moments from the unit offsets and the within cross-products, with the exact
+    decomposition ``total = within + sum_i T_i (zbar_i - zbar)(zbar_i - zbar)'``."""
+    shift = (counts @ offsets) / n
+    m2 = within_m2.copy()
+    for a in range(0, len(counts), _UNIT_STEP):  # unit slices: no N x p temporaries
+        dev = offsets[a:a + _UNIT_STEP] - shift
+        m2 += (dev * counts[a:a + _UNIT_STEP, None]).T @ dev
+    return Partial(int(n), ref, shift, m2, within_m2, ukeys, counts, offsets)
+
+
+def partial_inplace(Z: np.ndarray, keys: np.ndarray) -> Partial:
+    """:func:`partial` computed in place: ``Z`` (float64, C-ordered) is overwritten.
+
+    The same moments with no working copy of the block beyond ``Z`` itself (``partial``
+    makes three), for passes that build ``Z`` themselves (the out-of-core engines). Rows
+    sorted by unit (the common layout of panel files) skip the sort of the keys. The
+    reference point is the mean of the first rows (any point near the data will do);
+    rows are centred on it, then on their unit means, before any product is taken
+    (Chan, Golub and LeVeque 1979).
+    """
+    if Z.dtype != np.float64 or Z.ndim != 2 or not Z.flags.c_contiguous:
+        raise ValueError("partial_inplace needs a C-ordered 2-d float64 array")
+    n, p = Z.shape
+    keys = np.asarray(keys)
+    if n == 0:
+        return partial(Z, keys)
+    groups = _sorted_groups(keys)
+    if groups is not None:
+        ukeys, counts, starts = groups
+        codes = np.repeat(np.arange(len(starts)), counts)
+    else:
+        ukeys, codes = np.unique(keys, return_inverse=True)
+        codes = codes.ravel()
+        counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
+    ref = Z[:4096].mean(axis=0)
+    Z -= ref
+    if groups is not None:
+        offsets = np.add.reduceat(Z, starts, axis=0) / counts[:, None]
+    else:
+        offsets = _group_sums(codes, Z, len(ukeys)) / counts[:, None]
+    step = 1 << 16  # subtract the unit means in cache-sized slices
+    for a in range(0, n, step):
+        Z[a:a + step] -= offsets[codes[a:a + step]]
+    return _finish(n, ref, counts, offsets, Z.T @ Z, ukeys)
+
+
+# ---------------------------------------------------------------------------- the in-memory pass
+#
+# The pass computes, for the columns ``z = [x, y]`` of each row about a reference point
+# ``ref``, each unit's offset (the unit mean of ``z - ref``) and the within cross-products
+# ``sum_it d_it d_it'`` with ``d_it = (z_it - ref) - offset_i``; the same code then takes
+# the unit offsets as rows and the panel lengths as units, which gives the group means
+# and cross-products. It exists twice, with the same floating-point operations in the
+# same order, so the two give bit-identical results: compiled by numba (rows sorted by
+# unit are read once from memory) and in numpy (the fallback when numba is missing, and
+# for small inputs). The order is fixed by these rules:
+#
+# * a unit's sum adds its rows ``z - ref`` one at a time, in row order, from zero; the
+#   offset is that sum divided by the unit's row count;
+# * rows are taken in blocks of :data:`_ROW_BLOCK` consecutive rows (from row 0; the last
+#   block padded with zero rows to a multiple of :data:`_LANES`). In a block, the product
+#   ``d_j d_l`` (``j <= l``) of the row at position ``t`` is added to lane ``t mod
+#   _LANES``, rows in order, each lane from zero; the lanes are then added in order
+#   (lane 0 first) and that sum is added to the result, block after block;
+# * for the groups by panel length, the rows are the unit offsets of the units of one
+#   length, in unit order, the units are those groups, and the same two rules apply.
+#
+# The lanes let the compiled loop use the processor's vector units without reassociating
+# any sum (numba compiles without ``fastmath``), so nothing depends on the machine. The
+# sums are short (at most ``_ROW_BLOCK / _LANES`` products per lane, ``_LANES`` lanes per
+# block), and the rows are centred on the reference point and on their unit means before
+# any product is taken (Chan, Golub and LeVeque 1979), which keeps the accuracy of the
+# two-pass algorithm with large common offsets in the data.
+
+#: rows per block of the within cross-products
+_ROW_BLOCK = 4096
+#: independent partial sums per block (a multiple of the vector width of any machine)
+_LANES = 64
+#: units of at most this many rows are read once into the block buffer (longer ones twice)
+_SLACK = 1024
+#: when numba is already loaded in the process (PyTensor's default backend loads it for
+#: any PyMC model), inputs from this many rows use the compiled kernels
+_NUMBA_MIN_ROWS = 50_000
+#: when it is not, only inputs from this many rows load it: numba's import and
+#: start-up (about a second) cost more than the numpy version spends below this size
+_NUMBA_COLD_ROWS = 5_000_000
+#: None: choose as above; True: always the compiled kernels; False: always numpy
+USE_NUMBA = None
+_kernels = None  # the compiled kernels once loaded; False when numba is unavailable
+_kernels_lock = threading.Lock()
+
+
+# The kernels read the columns of a row from two arrays, X (n x k) and Y (n x m), so
+# that ``[X, y]`` is never stacked (Y is ``y[:, None]``; for the unit offsets m = 0).
+
+def _nb_flush(D, m, lanes, upper):  # pragma: no cover (compiled)
+    """Add the products of the first ``m`` rows of the block ``D`` (p x _ROW_BLOCK,
+    one column per row) to ``upper`` (rules above)."""
+    p = D.shape[0]
+    L = lanes.shape[0]
+    nb = (m + L - 1) // L
+    for t in range(m, nb * L):
+        for j in range(p):
+            D[j, t] = 0.0
+    q = 0
+    for j in range(p):
+        for l in range(j, p):
+            for t in range(L):
+                lanes[t] = 0.0
+            for c in range(nb):
+                u = D[j, c * L:(c + 1) * L]
+                v = D[l, c * L:(c + 1) * L]
+                for t in range(L):
+                    lanes[t] += u[t] * v[t]
+            s = lanes[0]
+            for t in range(1, L):
+                s += lanes[t]
+            upper[q] += s
+            q += 1
+
+
+def _nb_sorted_pass(X, Y, starts, counts, ref, offsets, upper, D, lanes, S):  # pragma: no cover
+    """Rows sorted by unit, read once (compiled by numba). A unit of at most the buffer's
+    slack (``D.shape[1] - S``) rows is copied into the block buffer as ``z - ref`` and
+    summed on the way, column by column, then its offset is taken off in the buffer;
+    full blocks of ``S`` rows go to :func:`_nb_flush` and the rows past them move to the
+    front. A longer unit is summed first and then copied in pieces. Either way each
+    row's deviation is ``(z - ref) - offset`` and each sum runs in row order."""
+    k = X.shape[1]
+    p = k + Y.shape[1]
+    slack = D.shape[1] - S
+    m = 0
+    for i in range(starts.shape[0]):
+        a = starts[i]
+        T = counts[i]
+        if T <= slack:
+            for j in range(p):
+                rj = ref[j]
+                acc = 0.0
+                if j < k:
+                    for t in range(T):
+                        v = X[a + t, j] - rj
+                        D[j, m + t] = v
+                        acc += v
+                else:
+                    for t in range(T):
+                        v = Y[a + t, j - k] - rj
+                        D[j, m + t] = v
+                        acc += v
+                o = acc / T
+                offsets[i, j] = o
+                for t in range(m, m + T):
+                    D[j, t] -= o
+            m += T
+            if m >= S:
+                _nb_flush(D, S, lanes, upper)
+                m -= S
+                for j in range(p):
+                    for t in range(m):
+                        D[j, t] = D[j, S + t]
+            continue
+        for j in range(p):
+            rj = ref[j]
+            acc = 0.0
+            if j < k:
+                for r in range(a, a + T):
+                    acc += X[r, j] - rj
+            else:
+                for r in range(a, a + T):
+                    acc += Y[r, j - k] - rj
+            offsets[i, j] = acc / T
+        r0 = a
+        while r0 < a + T:  # the unit's rows, in pieces that fit the block
+            if m == S:
+                _nb_flush(D, m, lanes, upper)
+                m = 0
+            r1 = min(a + T, r0 + (S - m))
+            for j in range(p):
+                rj = ref[j]
+                o = offsets[i, j]
+                if j < k:
+                    for r in range(r0, r1):
+                        D[j, m + r - r0] = (X[r, j] - rj) - o
+                else:
+                    for r in range(r0, r1):
+                        D[j, m + r - r0] = (Y[r, j - k] - rj) - o
+            m += r1 - r0
+            r0 = r1
+    _nb_flush(D, m, lanes, upper)
+
+
+def _nb_unit_sums(X, Y, codes, ref, sums):  # pragma: no cover (compiled)
+    """Sum of ``z - ref`` per unit, rows in any order (compiled by numba)."""
+    k = X.shape[1]
+    p = k + Y.shape[1]
+    for r in range(X.shape[0]):
+        c = codes[r]
+        for j in range(k):
+            sums[c, j] += X[r, j] - ref[j]
+        for j in range(k, p):
+            sums[c, j] += Y[r, j - k] - ref[j]
+
+
+def _nb_within(X, Y, codes, ref, offsets, upper, D, lanes):  # pragma: no cover (compiled)
+    """The within products of rows in any order, given the unit offsets (numba)."""
+    k = X.shape[1]
+    p = k + Y.shape[1]
+    n = X.shape[0]
+    S = D.shape[1]
+    for a in range(0, n, S):
+        m = 0
+        for r in range(a, min(a + S, n)):
+            c = codes[r]
+            for j in range(k):
+                D[j, m] = (X[r, j] - ref[j]) - offsets[c, j]
+            for j in range(k, p):
+                D[j, m] = (Y[r, j - k] - ref[j]) - offsets[c, j]
+            m += 1
+        _nb_flush(D, m, lanes, upper)
+
+
+def _nb_runs(keys, starts):  # pragma: no cover (compiled)
+    """Number of runs of equal keys written to ``starts``, or -1 if ``keys`` decrease."""
+    prev = keys[0]
+    starts[0] = 0
+    m = 1
+    for r in range(1, keys.shape[0]):
+        kr = keys[r]
+        if kr != prev:
+            if kr < prev:
+                return -1
+            starts[m] = r
+            m += 1
+            prev = kr
+    return m
+
+
+def _nb_range(X, Y, lo, hi, finite):  # pragma: no cover (compiled)
+    """Smallest and largest value of each column of ``[X, Y]`` and whether all its values
+    are finite, in one sweep over the rows (compiled by numba). A NaN is not compared,
+    an infinity is; either clears ``finite``."""
+    k = X.shape[1]
+    for r in range(X.shape[0]):
+        for j in range(k):
+            v = X[r, j]
+            if v < lo[j]:
+                lo[j] = v
+            if v > hi[j]:
+                hi[j] = v
+            if v - v != 0.0:  # NaN for NaN and for an infinity
+                finite[j] = False
+        for j in range(Y.shape[1]):
+            v = Y[r, j]
+            if v < lo[k + j]:
+                lo[k + j] = v
+            if v > hi[k + j]:
+                hi[k + j] = v
+            if v - v != 0.0:
+                finite[k + j] = False
+
+
+def _nb_unit_scores(X, Y, codes, centre, A, v, out):  # pragma: no cover (compiled)
+    """``out[c] += (A d) (v' d)`` over the rows, ``d = [x, y] - centre[c]`` of each row's
+    unit ``c`` (compiled by numba)."""
+    k = X.shape[1]
+    p = k + Y.shape[1]
+    q = A.shape[0]
+    d = np.empty(p)
+    for r in range(X.shape[0]):
+        c = codes[r]
+        s = 0.0
+        for j in range(k):
+            d[j] = X[r, j] - centre[c, j]
+        for j in range(k, p):
+            d[j] = Y[r, j - k] - centre[c, j]
+        for j in range(p):
+            s += v[j] * d[j]
+        for i in range(q):
+            a = 0.0
+            for j in range(p):
+                a += A[i, j] * d[j]
+            out[c, i] += a * s
+
+
+def unit_scores(X, y, codes, centre, A, v):
+    """Per-unit sums ``sum_t (A d_t)(v' d_t)`` with ``d_t = [x_t, y_t] - centre[c_t]`` (the
+    scores of a regression whose rows are linear in the deviations), in one compiled
+    sweep over the rows; None when the compiled kernels are not used for this many rows
+    (:data:`USE_NUMBA`), so that the caller runs its numpy version."""
+    X = np.asarray(X, dtype=float)
+    kern = _kernels_for(X.shape[0])
+    if kern is None:
+        return None
+    A = np.ascontiguousarray(A, dtype=np.float64)
+    out = np.zeros((len(centre), A.shape[0]))
+    kern["scores"](np.ascontiguousarray(X), np.asarray(y, dtype=float).reshape(-1, 1),
+                   np.asarray(codes, dtype=np.int64), np.ascontiguousarray(centre, dtype=float),
+                   A, np.ascontiguousarray(v, dtype=np.float64), out)
+    return out
+
+
+def column_range(X, y):
+    """``(lo, hi, finite)`` of each column of ``[X, y]``: the smallest and largest value
+    and whether every value is finite, read once and never stacked (one compiled sweep
+    over the rows when the kernels are used, see :data:`USE_NUMBA`; else numpy, column by
+    column). Where a column is not finite, ``lo`` and ``hi`` are those of numpy's
+    ``min`` and ``max`` only if it holds no NaN; callers look at ``finite`` first."""
+    X = np.asarray(X, dtype=float)
+    y = np.asarray(y, dtype=float).ravel()
+    n, k = X.shape
+    if n == 0:
+        return np.zeros(k + 1), np.zeros(k + 1), np.ones(k + 1, dtype=bool)
+    kern = _kernels_for(n)
+    if kern is not None:
+        lo, hi = np.full(k + 1, np.inf), np.full(k + 1, -np.inf)
+        finite = np.ones(k + 1, dtype=bool)
+        kern["range"](np.ascontiguousarray(X), y[:, None], lo, hi, finite)
+        return lo, hi, finite
+    cols = [X[:, j] for j in range(k)] + [y]
+    lo = np.array([c.min() for c in cols])
+    hi = np.array([c.max() for c in cols])
+    return lo, hi, np.isfinite(lo) & np.isfinite(hi)  # min and max carry a NaN or an inf
+
+
+def _numba_kernels():
+    """The compiled kernels (numba caches them on disk: compiled once per machine), or
+    None when numba is not installed or the environment sets ``BAYESPANEL_NUMBA=0``."""
+    global _kernels, _nb_flush
+    with _kernels_lock:
+        if _kernels is None:
+            try:
+                if os.environ.get("BAYESPANEL_NUMBA", "1") == "0":
+                    raise ImportError
+                import numba
+            except ImportError:
+                _kernels = False
+            else:
+                jit = numba.njit(cache=True, nogil=True)
+                _nb_flush = jit(_nb_flush)  # the kernels below call the compiled version
+                _kernels = {"sorted": jit(_nb_sorted_pass), "sums": jit(_nb_unit_sums),
+                            "within": jit(_nb_within), "runs": jit(_nb_runs),
+                            "range": jit(_nb_range), "scores": jit(_nb_unit_scores)}
+    return _kernels or None
+
+
+def _kernels_for(n):
+    """The compiled kernels if they are to be used for ``n`` rows, else None (numpy)."""
+    if USE_NUMBA is None:
+        if n < _NUMBA_MIN_ROWS or (n < _NUMBA_COLD_ROWS and "numba" not in sys.modules):
+            return None
+    elif not USE_NUMBA:
+        return None
+    kern = _numba_kernels()
+    if USE_NUMBA and kern is None:
+        raise RuntimeError("USE_NUMBA is True but numba is not available")
+    return kern
+
+
+#: rows per slice in the numpy version (bounds its temporaries)
+_NP_STEP = 1 << 14
+
+
+def _np_block(X, Y, ref, step):
+    """``block(a, b)``: rows a..b of ``Z - ref``, transposed (p x rows), written into a
+    buffer of ``step`` rows that is reused (fresh arrays of this size cost page faults)."""
+    k, p = X.shape[1], X.shape[1] + Y.shape[1]
+    buf = np.empty((p, step))
+    ref = ref[:, None]
+
+    def block(a, b):
+        Z = buf[:, :b - a]
+        Z[:k] = X[a:b].T
+        Z[k:] = Y[a:b].T
+        Z -= ref
+        return Z
+    return block
+
+
+#: runs longer than this are summed by np.add.accumulate in the numpy version
+_NP_LONG_RUN = 32
+
+
+def _np_sums(block, runs_of, n, p, N):
+    """The unit sums of :func:`_nb_sorted_pass` / :func:`_nb_unit_sums` in numpy: each
+    unit's rows added one at a time, in row order, from zero. ``runs_of(a, b)`` gives
+    the runs of rows of one unit in the slice (``units, first, size``; first relative to
+    ``a``), or ``codes`` for rows in any order."""
+    sums = np.zeros((p, N))
+    for a in range(0, n, _NP_STEP):
+        b = min(a + _NP_STEP, n)
+        Z, runs = block(a, b), runs_of(a, b)
+        if not isinstance(runs, tuple):  # rows in any order
+            np.add.at(sums.T, runs, Z.T)  # one row at a time, in row order
+            continue
+        units, first, size = runs
+        short = np.flatnonzero(size <= _NP_LONG_RUN)
+        short = short[np.argsort(-size[short], kind="stable")]  # longest first
+        neg = -size[short]
+        su, sf = units[short], first[short]
+        acc = sums[:, su]  # what the previous slice left for these units
+        for t in range(int(-neg[0]) if len(short) else 0):
+            m = int(np.searchsorted(neg, -t, side="left"))  # the runs longer than t
+            acc[:, :m] += Z[:, sf[:m] + t]
+        sums[:, su] = acc
+        for r in np.flatnonzero(size > _NP_LONG_RUN):
+            u, f = units[r], first[r]
+            rows = np.concatenate([sums[:, u:u + 1], Z[:, f:f + size[r]]], axis=1)
+            sums[:, u] = np.add.accumulate(rows, axis=1)[:, -1]  # one at a time, in order
+    return np.ascontiguousarray(sums.T)  # the layout of the kernels' result
+
+
+def _np_within(block, codes_of, offsets, n, p, upper):
+    """:func:`_nb_flush` over every block, in numpy (same operations, same order),
+    added to ``upper``. ``block`` must hold :data:`_ROW_BLOCK` rows."""
+    npair, nc = p * (p + 1) // 2, _ROW_BLOCK // _LANES
+    D = np.zeros((p, nc, _LANES))  # a block, its rows in chunks of _LANES
+    P = np.empty((nc, npair, _LANES))  # the products of each chunk
+    for a in range(0, n, _ROW_BLOCK):
+        b = min(a + _ROW_BLOCK, n)
+        m = b - a
+        flat = D.reshape(p, -1)
+        flat[:, :m] = block(a, b)
+        flat[:, :m] -= offsets[codes_of(a, b)].T
+        flat[:, m:] = 0.0  # as the kernel pads the last chunk
+        used = -(-m // _LANES)
+        q = 0
+        for j in range(p):
+            np.multiply(D[j, :used, None], D[j:, :used].transpose(1, 0, 2),
+                        out=P[:used, q:q + p - j])
+            q += p - j
+        lanes = P[0].copy()
+        for c in range(1, used):  # lane t gets the rows t, t + L, ... in order
+            lanes += P[c]
+        upper += np.add.accumulate(lanes, axis=1)[:, -1]  # the lanes in order
+    return upper
+
+
+def _sorted_slices(starts, counts):
+    """``(runs_of, codes_of)`` for rows sorted by unit with run ``starts``."""
+    ends = starts + counts
+
+    def runs_of(a, b):  # units meeting rows a..b, their first row (from a), their size
+        u0 = int(np.searchsorted(starts, a, side="right")) - 1
+        u1 = int(np.searchsorted(starts, b, side="left"))
+        first = np.maximum(starts[u0:u1], a)
+        return np.arange(u0, u1), first - a, np.minimum(ends[u0:u1], b) - first
+
+    def codes_of(a, b):
+        units, _, size = runs_of(a, b)
+        return np.repeat(units, size)
+    return runs_of, codes_of
+
+
+def _unpack(upper, p):
+    """Symmetric ``p x p`` matrices from their upper triangles (last axis)."""
+    J, L = np.triu_indices(p)
+    W = np.empty(upper.shape[:-1] + (p, p))
+    W[..., J, L] = upper
+    W[..., L, J] = upper
+    return W
+
+
+def _sorted_runs(keys, kern):
+    """``(ukeys, counts, starts)`` when ``keys`` are sorted, else ``None``."""
+    if kern is None or keys.dtype.kind not in "iu" or len(keys) == 0:
+        return _sorted_groups(keys)
+    starts = np.empty(len(keys), dtype=np.int64)
+    m = kern["runs"](keys, starts)
+    if m < 0:
+        return None
+    starts = starts[:m].copy()
+    counts = np.diff(np.append(starts, len(keys))).astype(np.int64)
+    return keys[starts], counts, starts
+
+
+def _pass(X, Y, keys, ref):
+    """``(ukeys, counts, offsets, within)`` of the rows ``[X, Y]`` grouped by ``keys``,
+    about ``ref`` (rules above; numba or numpy as :data:`USE_NUMBA` says)."""
+    n, k = X.shape
+    p = k + Y.shape[1]
+    kern = _kernels_for(n)
+    groups = _sorted_runs(keys, kern)
+    if groups is not None:
+        ukeys, counts, starts = groups
+        codes = None
+    else:
+        ukeys, codes = np.unique(keys, return_inverse=True)
+        codes = codes.ravel().astype(np.int64)
+        counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
+    N = len(ukeys)
+    if kern is not None:
+        X = np.ascontiguousarray(X, dtype=np.float64)
+        Y = np.ascontiguousarray(Y, dtype=np.float64)
+        upper = np.zeros(p * (p + 1) // 2)
+        lanes = np.empty(_LANES)
+        if codes is None:
+            offsets = np.empty((N, p))
+            D = np.empty((p, _ROW_BLOCK + _SLACK))
+            kern["sorted"](X, Y, starts, counts, ref, offsets, upper, D, lanes, _ROW_BLOCK)
+        else:
+            sums = np.zeros((N, p))
+            kern["sums"](X, Y, codes, ref, sums)
+            offsets = sums / counts[:, None]
+            kern["within"](X, Y, codes, ref, offsets, upper, np.empty((p, _ROW_BLOCK)), lanes)
+        return ukeys, counts, offsets, _unpack(upper, p)
+    if codes is None:
+        runs_of, codes_of = _sorted_slices(starts, counts)
+    else:
+        def codes_of(a, b):
+            return codes[a:b]
+        runs_of = codes_of
+    offsets = _np_sums(_np_block(X, Y, ref, _NP_STEP), runs_of, n, p, N) / counts[:, None]
+    upper = _np_within(_np_block(X, Y, ref, _ROW_BLOCK), codes_of, offsets, n, p,
+                       np.zeros(p * (p + 1) // 2))
+    return ukeys, counts, offsets, _unpack(upper, p)
+
+
+def _length_groups(counts):
+    """``(lengths, ginv)``: the distinct panel lengths and each unit's index among them."""
+    top = int(counts.max()) if len(counts) else 0
+    if top > 4 * len(counts) + 1024:  # few long units: sort instead of a long table
+        lengths, ginv = np.unique(counts, return_inverse=True)
+        return lengths, ginv.ravel().astype(np.int64)
+    seen = np.bincount(counts, minlength=top + 1)
+    lengths = np.flatnonzero(seen)
+    where = np.zeros(top + 1, dtype=np.int64)
+    where[lengths] = np.arange(len(lengths))
+    return lengths, where[counts]
+
+
+#: units per slice of a length group gathered for its cross-products (a multiple of
+#: _ROW_BLOCK, so that the slices do not move the blocks)
+_GROUP_STEP = 16 * _ROW_BLOCK
+
+
+def _group_pass(offsets, counts):
+    """``(lengths, gcount, gmean, gcp)`` of the unit offsets grouped by panel length:
+    the mean of the offsets of the units of each length and their centred
+    cross-products (rules above; numba or numpy, bit-identical)."""
+    lengths, ginv = _length_groups(counts)
+    D, (N, p) = len(lengths), offsets.shape
+    gcount = np.bincount(ginv, minlength=D).astype(np.int64)
+    kern = _kernels_for(N)
+    Y, zero = np.empty((N, 0)), np.zeros(p)
+    if kern is not None:
+        offsets = np.ascontiguousarray(offsets, dtype=np.float64)
+        sums = np.zeros((D, p))
+        kern["sums"](offsets, Y, ginv, zero, sums)
+    else:
+        sums = _np_sums(_np_block(offsets, Y, zero, _NP_STEP), lambda a, b: ginv[a:b], N, p, D)
+    gmean = sums / gcount[:, None]
+    upper = np.zeros((D, p * (p + 1) // 2))
+    if D == 1:
+        slices = [(0, None)]
+    else:  # the units of each length in unit order (stable sort), in slices
+        order = np.argsort(ginv.astype(np.uint16 if D < 65536 else np.int64), kind="stable")
+        bounds = np.concatenate([[0], np.cumsum(gcount)])
+        slices = [(d, order[a:min(a + _GROUP_STEP, bounds[d + 1])])
+                  for d in range(D) for a in range(bounds[d], bounds[d + 1], _GROUP_STEP)]
+    buf = (np.empty((p, _ROW_BLOCK)), np.empty(_LANES)) if kern is not None else None
+    for d, idx in slices:
+        M = offsets if idx is None else offsets[idx]
+        m = len(M)
+        codes = np.zeros(m, dtype=np.int64)
+        if kern is not None:
+            kern["within"](M, Y[:m], codes, zero, gmean[d:d + 1], upper[d], *buf)
+        else:
+            _np_within(_np_block(M, Y[:m], zero, _ROW_BLOCK), lambda a, b: codes[a:b],
+                       gmean[d:d + 1], m, p, upper[d])
+    return lengths, gcount, gmean, _unpack(upper, p)
+
+
+def compute_chunked(X, y, unit_codes, names=None) -> SuffStats:
+    """:func:`compute` with bounded working memory: ``O(_ROW_BLOCK * p + N * p)``.
+
+    ``X`` and ``y`` are only read, never stacked or copied. Rows sorted by unit (as a
+    :class:`~bayespanel.data.design.Design` holds them) are read once by a kernel compiled
+    with numba: each unit's rows are summed about a reference point, then their
+    cross-products about the unit mean are accumulated while the rows are still in
+    cache; rows in any other order take two sweeps (unit sums, then cross-products).
+    The groups by panel length are the same computation on the unit means. Without
+    numba (or under 50,000 rows) the same arithmetic runs in numpy, in the same order,
+    with bit-identical results. The total cross-products follow exactly from the within
+    ones and the group statistics (``total = within + sum_i T_i (zbar_i - zbar)
+    (zbar_i - zbar)'``, summed by panel length), so nothing is accumulated about the
+    global mean (Chan, Golub and LeVeque 1979). The block of rows is fixed, so the
+    result does not depend on a block size.
+    """
+    X = np.asarray(X, dtype=float)
+    if X.ndim == 1:
+        X = X[:, None]
+    y = np.asarray(y, dtype=float).ravel()
+    keys = np.asarray(unit_codes)
+    n, k = X.shape
+    if len(y) != n or len(keys) != n:
+        raise ValueError("X, y and unit_codes must have the same number of rows")
+    if n == 0:
+        return finalize(partial(np.zeros((0, k + 1)), keys), names=names)
+    head = min(n, 4096)
+    ref = np.append(X[:head].mean(axis=0), y[:head].mean())
+    ukeys, counts, offsets, within = _pass(X, y[:, None], keys, ref)
+    lengths, gcount, gmean, gcp = _group_pass(offsets, counts)
+    # by panel length: sum_i T_i dev_i dev_i' = T_d [gcp_d + c_d (gmean_d - shift)(...)'],
+    # in elementwise steps over the few lengths (a matrix product could round differently
+    # for different memory layouts, and the result is to be the same on both paths)
+    weight = (lengths * gcount).astype(float)
+    shift = np.zeros(k + 1)
+    for d in range(len(lengths)):
+        shift += weight[d] * gmean[d]
+    shift /= n
+    total = within.copy()
+    for d in range(len(lengths)):
+        dev = gmean[d] - shift
+        total += float(lengths[d]) * gcp[d] + weight[d] * (dev[:, None] * dev[None, :])
+    mean = ref + shift
+    return SuffStats(
+        n=int(n), n_units=int(len(counts)), mean=mean, total=total, within=within,
+        unit_count=counts, unit_mean=offsets + ref, lengths=lengths.astype(np.int64),
+        group_count=gcount, group_mean=gmean + ref, group_cp=gcp, unit_keys=ukeys,
+        names=list(names) if names is not None else None)

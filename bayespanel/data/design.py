@@ -1,0 +1,899 @@
+"""Design: from a formula to the matrices every estimator uses.
+
+The design is built on the *estimation sample*: rows with a missing value in any variable
+the formula uses are dropped first (listwise deletion, reported), and unit means are
+taken over the rows that remain. Within (unit-demeaned), between (unit-mean) and original
+columns are all derived from that one sample so that every model, Bayesian or reference,
+sees exactly the same rows.
+"""
+
+from __future__ import annotations
+
+import re
+import warnings
+from dataclasses import asdict, dataclass
+
+import numpy as np
+import pandas as pd
+
+from ..core import suffstats as _ss
+from ..core.errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
+                     SpecificationError, choices_error)
+from .formula import dependency_message, outcome_values, safe_context, screen
+from ..kinds import COLUMNS, builder as builder_of
+from ..core.terms import BETWEEN, UNIT_MEAN, WITHIN, Term, labels as term_labels, occasion, parse
+
+__all__ = ["Design", "DesignSpec", "RowBlock", "KINDS", "group_means", "kind_transform", "check_stats",
+           "check_terms", "check_flag", "refuse_complex", "occasion_label"]
+
+#: the column maps of matrices(kind), as the registry of model kinds lists them
+KINDS = COLUMNS
+_VARY_TOL = 1e-10
+
+
+@dataclass(frozen=True)
+class DesignSpec:
+    """How a design was built (not the data it was built on); saved with every result."""
+
+    formula: str
+    unit: str
+    time: str
+    occasion_effects: bool = False
+    #: whether the initial conditions of a lagged outcome are modelled (bayespanel.data.initial);
+    #: None when the formula does not lag the outcome (and then left out of to_dict)
+    initial_conditions: bool | None = None
+
+    def to_dict(self) -> dict:
+        d = asdict(self)
+        if d["initial_conditions"] is None:
+            del d["initial_conditions"]
+        return d
+
+
+@dataclass(frozen=True)
+class RowBlock:
+    """Some estimation rows of a design, as a block function over its rows receives them
+    (:meth:`Design.run_rows`): the unit key of each row (the keys of the design's
+    statistics, ``design_suffstats().unit_keys``), its occasion, and ``Z = [X, y]`` in the
+    design's columns (after listwise deletion)."""
+
+    units: np.ndarray
+    time: np.ndarray
+    Z: np.ndarray
+
+
+def _plain(v):
+    return v.item() if isinstance(v, np.generic) else v
+
+
+def occasion_label(o) -> str:
+    """The label of an occasion's indicator: ``occasion[2003]``; dates without a time of
+    day as ``occasion[2003-01-13]`` (numpy would write ``2003-01-13T00:00:00.000000``)."""
+    if isinstance(o, (np.datetime64, pd.Timestamp)) or hasattr(o, "isoformat"):
+        t = pd.Timestamp(o)
+        o = t.date().isoformat() if t == t.normalize() else t.isoformat()
+    return occasion(_plain(o)).label
+
+
+def check_flag(option: str, value) -> bool:
+    """``value`` as a bool if it is one (Python or numpy); anything else, such as the
+    text ``"no"`` (which is true in Python), is a :class:`SpecificationError`."""
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    raise SpecificationError(f"{option}={value!r} must be True or False")
+
+
+def refuse_complex(column: str, dtype) -> None:
+    """Refuse a column of complex numbers (converting it to real would drop a part)."""
+    if pd.api.types.is_complex_dtype(dtype):
+        raise PanelDataError(
+            f"column {column!r} holds complex numbers (dtype {dtype}); the models need real "
+            "numbers: use its real part, its modulus or two columns")
+
+
+def check_terms(terms, formula: str) -> None:
+    """Refuse a design whose term labels repeat or take a label the package makes.
+
+    Column names are screened (:func:`bayespanel.data.formula.reserved_name`); this catches
+    labels formulaic builds that equal a column's name (a column named ``log(x)`` beside
+    the transform ``log(x)``), which would give two coefficients one name.
+    """
+    from .formula import reserved_name
+
+    seen = set()
+    for j, t in enumerate(terms):
+        if t in seen:
+            raise FormulaError(
+                f"formula {formula!r} gives two terms the label {t!r} (a column of that "
+                "name and a term formulaic builds); rename the column")
+        seen.add(t)
+        if reserved_name(t) is not None and not (t == "Intercept" and j == 0):
+            raise FormulaError(
+                f"formula {formula!r} makes a term labelled {t!r}, the label bayespanel "
+                f"gives to {reserved_name(t)}; rename the column or the level behind it")
+
+
+def group_means(M: np.ndarray, starts: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """Means of the rows of ``M`` over contiguous groups starting at ``starts``."""
+    M = np.asarray(M, dtype=float)
+    if M.ndim == 1:
+        return np.add.reduceat(M, starts) / counts
+    return np.add.reduceat(M, starts, axis=0) / counts[:, None]
+
+
+def _maxabs(X: np.ndarray) -> np.ndarray:
+    """Largest absolute value of each column (no n x k temporary)."""
+    if X.shape[0] == 0:
+        return np.zeros(X.shape[1:])
+    return np.maximum(np.abs(X.max(axis=0)), np.abs(X.min(axis=0)))
+
+
+def kind_transform(terms, tv, tb, kind):
+    """The columns of a design kind as linear maps of a row and of its unit mean.
+
+    With ``z = [X, y]`` (``p = k + 1``), every column of ``"within"``, ``"mundlak"`` and
+    ``"within_between"`` is ``a' z_it + b' zbar_i``; returns ``(A, B, terms)`` with one
+    row of ``A`` and ``B`` and one :class:`~bayespanel.core.terms.Term` per column, and a last
+    row that keeps ``y``. ``terms`` are the labels (or terms) of the columns of ``X``;
+    ``tv`` the indices of the time-varying ones, ``tb`` those whose unit means enter
+    (``"mundlak"``, ``"within_between"``; see ``Design._with_between_part``). Labels as in
+    DEVELOPERS.md: ``x (within)``, ``x (between)``, ``x (unit mean)``.
+    """
+    k = len(terms)
+    cols = [parse(t) for t in terms]
+    eye = np.eye(k + 1)
+    zero = np.zeros(k + 1)
+    if kind == "within":
+        rows = [(eye[i], -eye[i], cols[i]) for i in tv]
+    elif kind == "mundlak":
+        rows = ([(eye[j], zero, cols[j]) for j in range(k)]
+                + [(zero, eye[i], cols[i].with_part(UNIT_MEAN)) for i in tb])
+    elif kind == "within_between":
+        rows = [(eye[i], zero, t) for i, t in enumerate(cols) if t == Term("Intercept")]
+        rows += [(eye[i], -eye[i], cols[i].with_part(WITHIN)) for i in tv]
+        rows += [(zero, eye[i], cols[i].with_part(BETWEEN)) for i in tb]
+        rows += [(eye[i], zero, t) for i, t in enumerate(cols)
+                 if t != Term("Intercept") and i not in tv]
+    else:
+        raise ValueError(f"kind {kind!r} uses the columns of X as they are")
+    A = np.vstack([r[0] for r in rows] + [eye[k]])
+    B = np.vstack([r[1] for r in rows] + [zero])
+    return A, B, [r[2] for r in rows]
+
+
+class Design:
+    """Outcome, covariates and unit structure of one formula on one panel.
+
+    Build with :meth:`Panel.design` or :meth:`Design.from_panel`. See DEVELOPERS.md for the
+    fields. All arrays are float64 and rows are sorted by unit, then occasion.
+    """
+
+    #: whether the estimation rows are at hand (``X``, ``y``, ``unit_codes``, ``rows``,
+    #: ``time``); a design over a partitioned source (``data.sources.dask.DaskDesign``) holds
+    #: only statistics, and callers ask this rather than the design's type
+    has_rows = True
+
+    def __init__(self, *, y, X, terms, unit_codes, units, time, rows, outcome, spec,
+                 n_dropped=0, dropped_by_column=None, n_input_rows=None, stats=None,
+                 lags=None, maxabs=None):
+        self.y = np.ascontiguousarray(y, dtype=float)
+        self.X = np.ascontiguousarray(X, dtype=float)
+        self.terms = list(terms)
+        self.unit_codes = np.asarray(unit_codes, dtype=np.int64)
+        self.units = pd.Index(units)
+        self.time = np.asarray(time)
+        self.rows = pd.Index(rows)
+        self.outcome = outcome
+        self.spec = spec
+        self.n_dropped = int(n_dropped)
+        self.dropped_by_column = dict(dropped_by_column or {})
+        self.n_input_rows = int(n_input_rows if n_input_rows is not None else len(self.y))
+        #: the lags of the formula and the rows they left out (bayespanel.data.lags.LagReport),
+        #: None when the formula has no lag(...)
+        self.lags = lags
+        #: the initial-conditions columns (bayespanel.data.initial.InitialConditions), or None
+        self.initial = None
+        if np.any(self.unit_codes[1:] < self.unit_codes[:-1]):
+            raise ValueError("Design rows must be sorted by unit")
+        self.T = np.bincount(self.unit_codes, minlength=len(self.units)).astype(np.int64)
+        if np.any(self.T == 0):
+            raise ValueError("every unit in a Design needs at least one row")
+        self.starts = np.concatenate([[0], np.cumsum(self.T)[:-1]]).astype(np.int64)
+        self._means = None
+        if stats is None:
+            stats = _ss.compute_chunked(self.X, self.y, self.unit_codes,
+                                        names=self.terms + [self.outcome])
+        self._stats = stats
+        self._cache = {}
+        # within variation from the within block of the statistics of [X, y]
+        within_sd = np.sqrt(np.maximum(np.diag(stats.within)[:-1], 0.0) / max(self.n, 1))
+        scale = np.maximum(_maxabs(self.X) if maxabs is None else maxabs, 1.0)
+        self.varies_within = pd.Series(within_sd > _VARY_TOL * scale, index=self.terms)
+
+    # ------------------------------------------------------------------ sizes
+    @property
+    def n(self) -> int:
+        return int(len(self.y))
+
+    @property
+    def n_units(self) -> int:
+        return int(len(self.units))
+
+    @property
+    def k(self) -> int:
+        return int(self.X.shape[1])
+
+    @property
+    def has_intercept(self) -> bool:
+        return "Intercept" in self.terms
+
+    @property
+    def time_varying(self) -> list[str]:
+        return [t for t in self.terms if self.varies_within[t]]
+
+    @property
+    def time_constant(self) -> list[str]:
+        return [t for t in self.terms if not self.varies_within[t] and t != "Intercept"]
+
+    def __repr__(self) -> str:
+        return (f"Design({self.outcome!r} ~ {len(self.terms)} terms, {self.n} rows, "
+                f"{self.n_units} units, {self.n_dropped} rows dropped)")
+
+    # ------------------------------------------------------------------ parts
+    def unit_means(self) -> np.ndarray:
+        """Unit means of the columns of X (N x k), over the estimation sample."""
+        if self._means is None:
+            self._means = group_means(self.X, self.starts, self.T)
+        return self._means
+
+    def between_rows(self) -> np.ndarray:
+        """The unit mean of each column on every row (n x k)."""
+        return self.unit_means()[self.unit_codes]
+
+    def within(self) -> np.ndarray:
+        """X minus its unit means (n x k)."""
+        return self.X - self.between_rows()
+
+    def unit_labels(self) -> tuple:
+        """The unit labels as a tuple (made once; the models built on this design share
+        it as their ``unit`` coordinate)."""
+        if "unit_labels" not in self._cache:
+            self._cache["unit_labels"] = tuple(self.units)
+        return self._cache["unit_labels"]
+
+    def y_unit_means(self) -> np.ndarray:
+        return group_means(self.y, self.starts, self.T)
+
+    def y_within(self) -> np.ndarray:
+        return self.y - self.y_unit_means()[self.unit_codes]
+
+    def matrices(self, kind: str):
+        """The covariate matrix and its labels for one kind of model.
+
+        Parameters
+        ----------
+        kind : {"pooled", "random", "within", "between", "mundlak", "within_between"}
+
+        Returns
+        -------
+        (M, labels) : (ndarray, list of str)
+            ``M`` has one row per estimation row, except for ``"between"`` (one per unit).
+            A new array on every call (``n x columns`` float64): code that needs only
+            statistics uses :meth:`suffstats` instead.
+        """
+        if kind not in KINDS:
+            raise choices_error("kind", kind, KINDS)
+        if kind in ("pooled", "random"):
+            return self.X.copy(), list(self.terms)
+        if kind == "between":
+            return self.unit_means().copy(), list(self.terms)
+        A, B, labels = self._transform(kind)
+        M = np.empty((self.n, len(labels)))
+        means = self.unit_means()
+        for j in range(len(labels)):
+            col = np.zeros(self.n)
+            for i in np.flatnonzero(A[j, :self.k]):
+                col = col + A[j, i] * self.X[:, i]
+            for i in np.flatnonzero(B[j, :self.k]):
+                col = col + B[j, i] * means[self.unit_codes, i]
+            M[:, j] = col
+        return M, labels
+
+    def labels(self, kind: str) -> list[str]:
+        """Column labels of ``kind``, as ``matrices(kind)[1]``, without building the rows."""
+        return term_labels(self.term_parts(kind))
+
+    def term_parts(self, kind: str) -> list[Term]:
+        """The columns of ``kind`` as :class:`~bayespanel.core.terms.Term` (covariate, part),
+        in the order of :meth:`labels`."""
+        if kind not in KINDS:
+            raise choices_error("kind", kind, KINDS)
+        if kind in ("pooled", "random", "between"):
+            return [parse(t) for t in self.terms]
+        return self._transform(kind, structured=True)[2]
+
+    def _transform(self, kind, structured=False):
+        """``(A, B, labels)``: the rows of ``kind`` are ``A z_it + B zbar_i`` with
+        ``z = [X, y]`` (the last row of ``A`` and ``B`` keeps ``y``); with ``structured``
+        the columns as terms instead of labels."""
+        tv = [i for i, t in enumerate(self.terms) if self.varies_within[t]]
+        if not tv:
+            raise EstimationError(
+                f"no covariate in {self.spec.formula!r} varies within units, so a "
+                f"{kind.replace('_', '-')} model has no within part to estimate"
+            )
+        if self.initial is not None:  # the lagged outcome kept whole (bayespanel.data.initial)
+            from .initial import transform_columns
+
+            names, tv, tb = transform_columns(self, kind, tv)
+        else:
+            names = self.terms
+            tb = tv if kind == "within" else self._with_between_part(tv)
+        A, B, terms = kind_transform(names, tv, tb, kind)
+        return A, B, (terms if structured else term_labels(terms))
+
+    def suffstats(self, kind: str = "random") -> _ss.SuffStats:
+        """Sufficient statistics of ``[M, y]`` with ``M`` the columns of ``kind``.
+
+        ``"pooled"``, ``"random"``, ``"within"`` and ``"between"`` (whose estimators use the
+        original columns): the statistics of ``[X, y]``, computed once with the design.
+        ``"mundlak"`` and ``"within_between"``: derived exactly from them
+        (:func:`bayespanel.core.derived.augment`) and kept: reference fits and models of
+        that kind share them (each holds ``N x columns`` unit means). The same accessor as the
+        out-of-core design's, so reference fits and models read one interface.
+        """
+        if kind not in KINDS:
+            raise choices_error("kind", kind, KINDS)
+        if kind in ("pooled", "random", "within", "between"):
+            return self._stats
+        if kind not in self._cache:
+            from ..core.derived import augment
+
+            A, B, labels = self._transform(kind)
+            self._cache[kind] = augment(self._stats, A, B, names=labels + [self.outcome])
+        return self._cache[kind]
+
+    def model_suffstats(self, kind: str) -> _ss.SuffStats:
+        """Statistics a Bayesian builder of ``kind`` reads: as :meth:`suffstats`, except
+        ``"within"`` keeps only the time-varying columns (what ``FixedEffects`` uses)."""
+        if kind != "within":
+            return self.suffstats(kind)
+        from ..core.derived import select_columns
+
+        tv = [i for i, t in enumerate(self.terms) if self.varies_within[t]]
+        if not tv:
+            self._transform("within")  # raises the message of a design with no within part
+        names = [self.terms[i] for i in tv] + [self.outcome]
+        return select_columns(self._stats, tv + [self.k], names)
+
+    def design_suffstats(self) -> _ss.SuffStats:
+        """The statistics of the design's own columns ``[X, y]`` (terms as in ``terms``)."""
+        return self._stats
+
+    def row_map(self, kind: str):
+        """``(A, B)`` with the rows of ``[M, y]`` of ``kind`` equal to ``A z + B zbar_i``
+        for a design row ``z = [x, y]`` and its unit mean ``zbar_i`` (``M`` as in
+        ``matrices(kind)``; ``"within"``: the demeaned time-varying columns)."""
+        if kind not in KINDS:
+            raise choices_error("kind", kind, KINDS)
+        p = self.k + 1
+        if kind in ("mundlak", "within_between"):
+            A, B, _ = self._transform(kind)
+            return A, B
+        if kind == "within":
+            tv = [i for i, t in enumerate(self.terms) if self.varies_within[t]]
+            A = np.eye(p)[tv + [self.k]]
+            B = -A.copy()
+            B[-1] = 0.0
+            return A, B
+        return np.eye(p), np.zeros((p, p))
+
+    def run_rows(self, block, merge, shared=None):
+        """Run ``block(rows, shared)`` over the estimation rows (:class:`RowBlock`) and
+        merge the pieces with ``merge`` (a list of pieces -> one piece). The rows are at
+        hand here: one block."""
+        rows = RowBlock(units=self.unit_codes, time=self.time,
+                        Z=np.column_stack([self.X, self.y]))
+        return merge([block(rows, shared)])
+
+    def row_times(self, units, ranks):
+        """The occasions of the rows ``ranks`` (0 = first) of units ``units`` (codes)."""
+        return self.time[self.starts[np.asarray(units)] + np.asarray(ranks)]
+
+    def build(self, builder, priors=None, **kwargs):
+        """A Gaussian model on this design: the builder's ``from_design``; the statistics
+        come from the design and the rows are made only if the model needs them.
+        ``builder`` is a builder class (``RandomIntercept``), its name or its snake-case
+        name (``"random_intercept"``; :func:`bayespanel.kinds.builder`)."""
+        return builder_of(builder).from_design(self, priors=priors, **kwargs)
+
+    def _with_between_part(self, tv):
+        """Time-varying columns whose unit means enter the mundlak and within_between kinds.
+
+        With an intercept, a column whose unit means are all equal (an occasion indicator
+        in a balanced panel, a trend observed on the same occasions everywhere) has no
+        between part to estimate: its unit mean is a multiple of the intercept, so it
+        enters through its within part only. In unbalanced panels the unit means of the
+        occasion indicators vary and are kept, which makes the correlated random-effects
+        within estimates equal the two-way fixed-effects ones (Wooldridge 2019, Journal
+        of Econometrics 211, 137-150, doi:10.1016/j.jeconom.2018.12.010); those of them
+        that are linear combinations of the other unit-level columns (few distinct
+        patterns of missing occasions) are left out too, which leaves the within
+        estimates unchanged.
+        """
+        if not self.has_intercept:
+            return list(tv)
+        um = self._stats.unit_mean[:, :self.k]
+        keep = []
+        for i in tv:
+            scale = max(float(np.abs(um[:, i]).max()), 1.0)
+            if np.ptp(um[:, i]) > _VARY_TOL * scale:
+                keep.append(i)
+        occ = [i for i in keep if parse(self.terms[i]).is_occasion]
+        if not occ:
+            return keep
+        base = [i for i in range(self.k) if i not in occ and (i not in tv or i in keep)]
+        cols = [um[:, i] for i in base]
+
+        def rank(columns):
+            A = np.column_stack(columns)
+            A = A - A.mean(axis=0) * (np.ptp(A, axis=0) > 0)
+            A = A / np.maximum(np.sqrt((A ** 2).mean(axis=0)), 1e-300)
+            return int(np.linalg.matrix_rank(A, tol=1e-8 * max(A.shape)))
+
+        r = rank(cols)
+        for i in occ:
+            if rank(cols + [um[:, i]]) > r:
+                cols.append(um[:, i])
+                r += 1
+            else:
+                keep.remove(i)
+        return keep
+
+    def subset_rows(self, rowmask) -> "Design":
+        """A design on a subset of rows; unit means are recomputed on those rows."""
+        rowmask = np.asarray(rowmask, dtype=bool)
+        codes = self.unit_codes[rowmask]
+        present, new_codes = np.unique(codes, return_inverse=True)
+        out = Design(y=self.y[rowmask], X=self.X[rowmask], terms=self.terms,
+                      unit_codes=new_codes, units=self.units[present], time=self.time[rowmask],
+                      rows=self.rows[rowmask], outcome=self.outcome, spec=self.spec,
+                      lags=self.lags)
+        out.initial = self.initial  # its columns stay those of the whole sample
+        return out
+
+    # ------------------------------------------------------------------ builders
+    @classmethod
+    def from_panel(cls, panel, formula: str, occasion_effects: bool = False,
+                   initial_conditions: bool = True) -> "Design":
+        """Screen the formula, drop incomplete rows (reported), and build the matrices.
+
+        ``lag(x)`` and ``lag(x, k)`` are made columns first (:mod:`bayespanel.data.lags`).
+        When the formula lags the outcome and ``initial_conditions`` is True (the
+        default), the design carries the initial-conditions columns of Wooldridge (2005)
+        (:func:`bayespanel.data.initial.apply`); False leaves them out, with a warning.
+
+        Reads only the columns the formula uses, in the panel's (unit, occasion) order.
+        Plain numeric terms and the intercept are written column by column into one
+        float64 array; transforms, interactions and ``C()`` go through formulaic. The
+        statistics of ``[X, y]`` are computed once, in row slices
+        (:func:`bayespanel.core.suffstats.compute_chunked`): the checks for constant and
+        collinear columns, the within variation and every consumer that needs no rows
+        read them (:meth:`suffstats`).
+        """
+        from formulaic import Formula
+
+        from .lags import expand
+
+        occasion_effects = check_flag("occasion_effects", occasion_effects)
+        initial_conditions = check_flag("initial_conditions", initial_conditions)
+        frame = panel._df
+        lagged = expand(formula, panel)  # lag(x): columns of their own, made on the table
+        if lagged is None:
+            screened = screen(formula, panel.columns)
+        else:
+            frame = lagged.frame
+            screened = screen(lagged.formula, lagged.columns)
+        used = [c for c in screened.columns if c not in (panel.unit, panel.time)]
+        if set(screened.outcome_columns) & {panel.unit, panel.time}:
+            raise FormulaError(
+                f"the outcome {screened.outcome!r} is the panel's unit or time column")
+        if panel.unit in screened.columns:
+            raise FormulaError(
+                f"column {panel.unit!r} identifies the units; unit effects come from the model "
+                "(FixedEffects, RandomIntercept), not from the formula")
+        if panel.time in screened.columns:
+            used.append(panel.time)  # a trend or C(time) is allowed
+        for c in used:
+            refuse_complex(c, frame[c].dtype)
+            if _numeric(frame[c]) or pd.api.types.is_bool_dtype(frame[c]):
+                continue
+            in_c = re.search(r"C\(\s*`?" + re.escape(c) + r"`?\s*[,)]", screened.rhs)
+            if c in screened.outcome_columns or not in_c:
+                _refuse_text(panel, c, screened.outcome_columns)
+        used = list(dict.fromkeys(used))
+        order = panel._order
+        miss = {}
+        for c in used:
+            m = frame[c].isna().to_numpy()
+            miss[c] = m if order is None else m[order]
+        dropped_by_column = {c: int(m.sum()) for c, m in miss.items() if m.any()}
+        keep = np.ones(len(frame), dtype=bool)
+        for c in dropped_by_column:
+            keep &= ~miss[c]
+        n_dropped = int((~keep).sum())
+        for c in used:
+            if miss[c].all():
+                raise PanelDataError(f"column {c!r} is missing on every row")
+        del miss
+        if n_dropped:
+            detail = ", ".join(f"{c}: {k}" for c, k in dropped_by_column.items())
+            warnings.warn(
+                f"dropped {n_dropped} of {len(frame)} rows with missing values ({detail}); "
+                "unit means are taken over the remaining rows",
+                DataHandlingWarning, stacklevel=3,
+            )
+        if not keep.any():
+            raise PanelDataError("no complete rows remain after dropping missing values")
+        # positions in the input of the estimation rows, in (unit, occasion) order
+        if order is None:
+            idx = None if not n_dropped else np.flatnonzero(keep)
+        else:
+            idx = order if not n_dropped else order[keep]
+        del keep
+
+        def take(values):
+            return values if idx is None else values[idx]
+
+        unit_col = frame[panel.unit] if idx is None else frame[panel.unit].take(idx)
+        units_codes, units = _unit_codes(unit_col)
+        del unit_col
+        if len(units) < 2:
+            raise PanelDataError(
+                f"only {len(units)} unit of {panel.unit!r} has complete rows; at least 2 are needed"
+            )
+        time = take(frame[panel.time].to_numpy())
+        n = len(units_codes)
+        plain = _plain_terms(screened.rhs, frame, used)
+        extra = []
+        if occasion_effects:
+            extra = list(np.sort(pd.unique(time))[1:])
+        if plain is not None:
+            terms = ["Intercept" if c is None else c for c in plain]
+            check_terms(terms, formula)
+            X = np.empty((n, len(terms) + len(extra)))
+            src = [None if c is None else frame[c].to_numpy(dtype=float, na_value=np.nan)
+                   for c in plain]
+            for a in range(0, n, _FILL_ROWS):  # row blocks: each block of X stays in cache
+                b = min(a + _FILL_ROWS, n)
+                part = slice(a, b) if idx is None else idx[a:b]
+                for j, v in enumerate(src):
+                    X[a:b, j] = 1.0 if v is None else v[part]
+            del src
+        else:
+            cols = list(dict.fromkeys([panel.unit, panel.time] + used))
+            sub = frame[cols] if idx is None else frame[cols].take(idx)
+            try:
+                mm = Formula(screened.rhs).get_model_matrix(
+                    sub.reset_index(drop=True), context=safe_context(), ensure_full_rank=True,
+                    na_action="ignore",  # incomplete rows are gone; NaN from a transform is named below
+                )
+            except FormulaError:
+                raise
+            except Exception as exc:
+                raise FormulaError(f"cannot build the design for {formula!r}: "
+                                   f"{dependency_message(exc)}") from None
+            del sub
+            terms = [str(c) for c in mm.columns]
+            for lag in ([] if lagged is None else lagged.report.terms):  # log(`lag(x)`)
+                terms = [t.replace(f"`{lag.label}`", lag.label) for t in terms]
+            check_terms(terms, formula)
+            X = np.empty((n, len(terms) + len(extra)))
+            for j, t in enumerate(terms):
+                try:
+                    X[:, j] = np.asarray(mm.iloc[:, j], dtype=float)
+                except (TypeError, ValueError) as exc:
+                    raise FormulaError(f"term {t!r} of formula {formula!r} is not numeric: "
+                                       f"{exc}") from None
+            del mm
+        k0 = len(terms)
+        for j, o in enumerate(extra):
+            X[:, k0 + j] = time == o
+        terms += [occasion_label(o) for o in extra]
+        if screened.outcome_expr is None:
+            y = take(frame[screened.outcome].to_numpy(dtype=float, na_value=np.nan))
+        else:  # a transform of columns (log(gsp)), on the estimation rows
+            cols = list(screened.outcome_columns)
+            y = outcome_values(screened, frame[cols] if idx is None else frame[cols].take(idx))
+        # one sweep gives every column's range and finiteness for the checks below
+        lo, hi, finite = _ss.column_range(X, y)
+        if screened.outcome_expr is not None and not finite[-1]:
+            _check_finite(y, f"the outcome {screened.outcome!r}", frame, panel, idx)
+        for j in np.flatnonzero(~finite[:-1]):
+            _check_finite(X[:, j], f"term {terms[j]!r}", frame, panel, idx)
+        stats, maxabs = _check_columns(X, y, terms, screened.outcome, units_codes, (lo, hi))
+        dynamic = lagged is not None and lagged.report.has_lagged_outcome
+        spec = DesignSpec(formula=formula, unit=panel.unit, time=panel.time,
+                          occasion_effects=bool(occasion_effects),
+                          initial_conditions=initial_conditions if dynamic else None)
+        rows = frame.index if idx is None else frame.index.take(idx)
+        design = cls(y=y, X=X, terms=terms, unit_codes=units_codes, units=units,
+                     time=time, rows=rows, outcome=screened.outcome,
+                     spec=spec, n_dropped=n_dropped, dropped_by_column=dropped_by_column,
+                     n_input_rows=len(frame), stats=stats, maxabs=maxabs[:-1],
+                     lags=None if lagged is None else lagged.report)
+        if dynamic:
+            if initial_conditions:
+                return design.with_initial_conditions()
+            from .initial import notes
+
+            warnings.warn(notes(design, [])[0], DataHandlingWarning, stacklevel=3)
+        return design
+
+    def with_initial_conditions(self) -> "Design":
+        """This design with the initial-conditions columns of a lagged outcome
+        (:func:`bayespanel.data.initial.columns`: the lagged outcome on each unit's first row
+        and the unit means of the other time-varying covariates), on the same rows; the
+        design itself when its formula does not lag the outcome."""
+        from .initial import columns
+
+        added = None if self.initial is not None else columns(self)
+        if added is None:
+            return self
+        M, labels, info = added
+        X = np.column_stack([self.X, M])
+        terms = list(self.terms) + labels
+        stats, maxabs = _check_columns(X, self.y, terms, self.outcome, self.unit_codes,
+                                       _ss.column_range(X, self.y)[:2])
+        out = Design(y=self.y, X=X, terms=terms, unit_codes=self.unit_codes,
+                     units=self.units, time=self.time, rows=self.rows, outcome=self.outcome,
+                     spec=self.spec, n_dropped=self.n_dropped,
+                     dropped_by_column=self.dropped_by_column,
+                     n_input_rows=self.n_input_rows, stats=stats, lags=self.lags,
+                     maxabs=maxabs[:-1])
+        out.initial = info
+        return out
+
+
+#: rows per block when the columns of a design are written into X (a block of X stays in
+#: the processor's cache while its columns are written one by one)
+_FILL_ROWS = 8192
+
+
+def _check_finite(values, what, frame, panel, idx):
+    """Name the first row where a term or the outcome is not finite (a transform such as
+    the log of a value that is not positive)."""
+    bad = ~np.isfinite(values)
+    if bad.any():
+        r = int(np.flatnonzero(bad)[0])
+        pos = r if idx is None else int(idx[r])
+        raise PanelDataError(
+            f"{what} is not finite at {panel.unit}={_plain(frame[panel.unit].iloc[pos])!r}, "
+            f"{panel.time}={_plain(frame[panel.time].iloc[pos])!r}"
+            " (a transform such as log of a non-positive value?)")
+
+
+def _numeric(s) -> bool:
+    return pd.api.types.is_numeric_dtype(s) and not pd.api.types.is_bool_dtype(s)
+
+
+def _refuse_text(panel, c, outcome_columns):
+    """The error for a column that is not numeric (named, with its first bad value)."""
+    s = panel.sorted_column(c)
+    sample = s.dropna().astype(str).head(3).tolist()
+    text = s.dropna()
+    bad = text[pd.to_numeric(text, errors="coerce").isna()]
+    first = ""
+    if not bad.empty:
+        ids = panel.sorted_columns([panel.unit, panel.time])
+        first = (f"; {_plain(bad.iloc[0])!r} at {panel.unit}="
+                 f"{_plain(ids.at[bad.index[0], panel.unit])!r}, {panel.time}="
+                 f"{_plain(ids.at[bad.index[0], panel.time])!r} is not a number")
+    raise PanelDataError(
+        f"column {c!r} is not numeric (dtype {s.dtype}, values like {sample}{first}); "
+        + ("the outcome must be numeric" if c in outcome_columns else
+           f"convert it to numbers, or write C({c}) to use it as categories")
+    )
+
+
+def _unit_codes(units: pd.Series):
+    """Codes ``0..N-1`` and the unit labels of rows sorted by unit.
+
+    Equal labels are adjacent, so a code is the number of label changes before the row;
+    the labels of the runs go through ``pd.factorize`` (N values, not n) so that they
+    keep the type it gives. Falls back to factorising every row if the runs are not in
+    factorize's order.
+    """
+    vals = units.cat.codes.to_numpy() if isinstance(units.dtype, pd.CategoricalDtype) \
+        else units.to_numpy()
+    n = len(vals)
+    change = vals[1:] != vals[:-1]
+    codes = np.empty(n, dtype=np.int64)
+    codes[0] = 0
+    np.cumsum(change, out=codes[1:])
+    starts = np.flatnonzero(np.concatenate([[True], change]))
+    del change
+    run_codes, labels = pd.factorize(units.iloc[starts], sort=True)
+    if not np.array_equal(run_codes, np.arange(len(starts))):
+        return pd.factorize(units, sort=True)
+    return codes, labels
+
+
+def _plain_terms(rhs: str, frame: pd.DataFrame, used) -> list | None:
+    """The terms of ``rhs`` as column names (None for the intercept), in formulaic's order,
+    when every term is the intercept or a numeric column as it is; else None (the model
+    matrix then comes from formulaic)."""
+    from formulaic import Formula
+    from formulaic.parser.types import Factor
+
+    try:
+        terms = list(Formula(rhs))
+    except Exception:
+        return None  # formulaic reports the problem when it builds the matrix
+    out = []
+    for term in terms:
+        if len(term.factors) != 1:
+            return None
+        f = term.factors[0]
+        if f.eval_method == Factor.EvalMethod.LITERAL and f.expr == "1":
+            out.append(None)
+        elif (f.eval_method == Factor.EvalMethod.LOOKUP and f.expr in used
+              and _numeric(frame[f.expr])):
+            out.append(f.expr)
+        else:
+            return None
+    return out
+
+
+def _check_columns(X, y, terms, outcome, unit_codes, ranges):
+    """Refuse a constant outcome, constant covariates and exactly collinear columns; warn
+    about nearly collinear ones. ``ranges`` is ``(lo, hi)`` of the columns of ``[X, y]``
+    (:func:`bayespanel.core.suffstats.column_range`). Returns the statistics of ``[X, y]``
+    (computed in row slices) on which the collinearity checks are made, and the largest
+    absolute value of each column of ``[X, y]``."""
+    lo, hi = ranges
+    if hi[-1] - lo[-1] == 0:
+        raise PanelDataError(
+            f"the outcome {outcome!r} is constant ({float(y[0])!r}) on every row used")
+    for j, t in enumerate(terms):
+        if t != "Intercept" and hi[j] - lo[j] == 0:
+            raise PanelDataError(
+                f"covariate {t!r} is constant ({float(X[0, j])!r}) on every row used; it cannot be "
+                "told apart from the intercept"
+            )
+    maxabs = np.maximum(np.abs(hi), np.abs(lo))
+    _check_magnitudes(maxabs, terms, outcome)
+    stats = _ss.compute_chunked(X, y, unit_codes, names=list(terms) + [outcome])
+    check_stats(stats, terms, outcome, maxabs, stacklevel=6)
+    return stats, maxabs
+
+
+def check_stats(stats, terms, outcome, maxabs, stacklevel=5):
+    """The checks of a design on the statistics of ``[X, y]`` alone: constant outcome or
+    covariate, exact collinearity (refused, naming the terms) and near collinearity
+    (:func:`collinearity_warning`). One rule for the in-memory and out-of-core designs.
+
+    Collinearity is judged on the cross-products of the covariates, centred about their
+    means when there is an intercept (so the intercept is projected out exactly and a
+    column far from zero, such as a calendar year, is not taken for a multiple of it),
+    raw otherwise; scaled to unit diagonal, a column is refused when its squared residual
+    on the columns before it is below :data:`EXACT_COLLINEAR_TOL` of its size
+    (:func:`bayespanel.core.linalg.independent_columns`).
+    """
+    from ..core.linalg import independent_columns
+
+    if stats.total[-1, -1] == 0:
+        raise PanelDataError(f"the outcome {outcome!r} is constant "
+                             f"({float(stats.mean[-1])!r}) on every row used")
+    for j, t in enumerate(terms):
+        if t != "Intercept" and stats.total[j, j] <= stats.n * (1e-14 * maxabs[j]) ** 2:
+            raise PanelDataError(
+                f"covariate {t!r} is constant ({float(stats.mean[j])!r}) on every row used; it "
+                "cannot be told apart from the intercept")
+    k = len(terms)
+    if k == 0:
+        return
+    if stats.n < k:
+        raise PanelDataError(f"{stats.n} rows cannot identify {k} terms")
+    raw = stats.total[:k, :k] + stats.n * np.outer(stats.mean[:k], stats.mean[:k])
+    cols = [j for j, t in enumerate(terms) if t != "Intercept"]
+    C = stats.total[np.ix_(cols, cols)] if len(cols) < k else raw
+    if len(cols):
+        scale = np.sqrt(np.maximum(np.diag(C), np.finfo(float).tiny))
+        keep = set(np.asarray(cols)[independent_columns(C / np.outer(scale, scale),
+                                                        tol=EXACT_COLLINEAR_TOL)].tolist())
+        if len(keep) < len(cols):
+            bad = [terms[j] for j in cols if j not in keep]
+            raise PanelDataError(
+                f"covariates are exactly collinear: {', '.join(map(repr, bad))} can be written "
+                "as a combination of the other terms; drop or recode them")
+    collinearity_warning(stats.total[:k, :k] if len(cols) < k else raw, terms,
+                         cross_products=True, stacklevel=stacklevel)
+
+
+#: squared residual, relative to the column's size, below which a column of a design
+#: counts as an exact combination of the columns before it (cross-products in double
+#: precision resolve about 1e-15 of this scale; near collinearity above it is warned
+#: about by the condition number instead)
+EXACT_COLLINEAR_TOL = 1e-12
+
+
+#: magnitudes outside this range are refused: squares and cross-products of such values
+#: overflow or lose precision in double precision (about 1e308 .. 1e-308)
+MAGNITUDE_LIMITS = (1e-100, 1e100)
+
+
+def _check_magnitudes(maxabs, terms, outcome):
+    """Refuse columns whose values are too large or too small for double precision.
+
+    ``maxabs`` is the largest absolute value of each column of ``[X, y]``. The models
+    standardise every column internally, so any scale inside :data:`MAGNITUDE_LIMITS`
+    gives the same answer after back-transformation; beyond it the one-pass
+    cross-products overflow (or vanish), so the column must be rescaled.
+    """
+    lo, hi = MAGNITUDE_LIMITS
+    for j, name in [(-1, outcome)] + list(enumerate(terms)):
+        size = float(maxabs[j])
+        if size > hi or 0 < size < lo:
+            what = "the outcome" if j < 0 else "term"
+            fault = "overflow" if size > hi else "underflow"
+            raise PanelDataError(
+                f"{what} {name!r} has values of magnitude {size:.3g}, outside {lo:g}..{hi:g}: "
+                f"its squares and cross-products {fault} in double precision; rescale the "
+                "column (e.g. change its units)"
+            )
+
+
+#: warn when the condition number of the centred, standardised covariates exceeds this;
+#: common practice after Belsley, Kuh and Welsch (1980), for whom condition indices above
+#: 30 signal moderate to strong dependencies among the columns
+COLLINEARITY_WARN = 30.0
+
+
+def condition_number(C) -> tuple[float, np.ndarray]:
+    """Condition number of a design from its cross-product matrix ``C`` (k x k).
+
+    ``C`` is scaled to unit diagonal (a correlation matrix when the columns are centred)
+    and the result is ``sqrt(lambda_max / lambda_min)``, the condition number of the
+    column-scaled design itself. Also returns the eigenvector of ``lambda_min``: its large
+    entries are the columns that take part in the near dependency.
+    """
+    C = np.asarray(C, dtype=float)
+    d = np.sqrt(np.maximum(np.diag(C), np.finfo(float).tiny))
+    w, v = np.linalg.eigh(C / np.outer(d, d))
+    return float(np.sqrt(w[-1] / max(w[0], np.finfo(float).tiny))), v[:, 0]
+
+
+def collinearity_warning(X_or_C, terms, *, cross_products=False, stacklevel=4) -> float | None:
+    """Warn (``DataHandlingWarning``) when the covariates are nearly collinear.
+
+    The condition number is that of the covariates after centring and scaling each to
+    unit variance, the scale on which the models work internally (the intercept is
+    left out, so a covariate far from zero such as a calendar year does not count as
+    collinear with it); without an intercept the columns are only scaled. Pass the rows
+    ``X`` or, with ``cross_products=True``, the cross-products of all ``terms`` (centred
+    about the means when ``terms`` has an intercept, raw otherwise).
+    Returns the condition number (None with fewer than two covariates).
+    """
+    keep = [j for j, t in enumerate(terms) if t != "Intercept"]
+    if len(keep) < 2:
+        return None
+    if cross_products:
+        C = np.asarray(X_or_C, dtype=float)[np.ix_(keep, keep)]
+    else:
+        Z = np.asarray(X_or_C, dtype=float)[:, keep]
+        if len(keep) < len(terms):
+            Z = Z - Z.mean(axis=0)
+        Z = Z / np.maximum(np.abs(Z).max(axis=0), np.finfo(float).tiny)
+        C = Z.T @ Z
+    cond, vec = condition_number(C)
+    if cond > COLLINEARITY_WARN:
+        order = np.argsort(-np.abs(vec))
+        involved = [terms[keep[i]] for i in order if abs(vec[i]) > 0.3][:4]
+        warnings.warn(
+            f"the design is nearly collinear (condition number {cond:.3g} of the centred, "
+            f"standardised covariates, above {COLLINEARITY_WARN:g}); terms involved: "
+            f"{', '.join(map(repr, involved))}; their separate estimates will be unstable",
+            DataHandlingWarning, stacklevel=stacklevel,
+        )
+    return cond

@@ -1,0 +1,416 @@
+"""Per-partition work of the out-of-core pass, and the merges of its pieces (numpy only).
+
+Everything here runs on one pandas partition at a time (or on the small summaries two
+partitions leave behind), so it is the same code whatever scheduler runs it. The
+mathematics of the sufficient statistics is :mod:`bayespanel.core.suffstats`; this module
+adds what a partitioned pass needs around it:
+
+* the panel's structure (occasions per unit, duplicates, gaps) as per-unit bit masks over
+  the occasions, merged with OR (a unit-occasion pair seen twice shows up as a row count
+  above the number of distinct occasions);
+* listwise deletion counted per column, and the covariate matrix built per partition
+  (plain columns directly, row-wise transforms through formulaic);
+* optional per-unit within cross-products of ``[X, y]``, for cluster-robust scores,
+  merged across partitions with the same pairwise update as the totals (Chan, Golub and
+  LeVeque 1979);
+* the sufficient statistics of designs that add unit means of columns (Mundlak,
+  within-between) are derived exactly from those of ``[X, y]``, with no second pass, by
+  :func:`bayespanel.core.derived.augment`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from ...core import suffstats
+from ...core.errors import PanelDataError
+from . import _merge
+
+__all__ = ["StructurePiece", "DesignPiece"]
+
+
+def _plain(v):
+    return v.item() if isinstance(v, np.generic) else v
+
+
+# ---------------------------------------------------------------------------- structure
+def _check_ids(pdf, unit, time):
+    for role, col in (("unit", unit), ("time", time)):
+        miss = pdf[col].isna().to_numpy()
+        if miss.any():
+            where = int(np.flatnonzero(miss)[0])
+            raise PanelDataError(
+                f"{role} column {col!r} has missing value(s); first at row "
+                f"{_plain(pdf.index[where])!r}. Every row needs a unit and an occasion.")
+
+
+def _sorted_unique(values, what):
+    try:
+        return np.unique(values)
+    except TypeError as exc:
+        raise PanelDataError(f"cannot order the {what} (mixed types?): {exc}") from None
+
+
+@dataclass
+class StructurePiece:
+    """Per-unit row counts and bit masks over ``occasions`` (``words`` uint64 per unit)."""
+
+    n_rows: int
+    keys: np.ndarray
+    counts: np.ndarray
+    occasions: np.ndarray
+    masks: np.ndarray  # (units, words) uint64; bit j <-> occasions[j]
+
+
+def _codes(keys):
+    try:
+        ukeys, codes = np.unique(keys, return_inverse=True)
+    except TypeError as exc:
+        raise PanelDataError(f"cannot order the units (mixed types?): {exc}") from None
+    return ukeys, codes.ravel()
+
+
+def _words(n_occasions):
+    return max(1, -(-n_occasions // 64))
+
+
+def structure_block(pdf, unit, time) -> StructurePiece:
+    """Units, row counts and occasion masks of one partition (refuses missing ids)."""
+    _check_ids(pdf, unit, time)
+    keys = pdf[unit].to_numpy()
+    tvals = pdf[time].to_numpy()
+    occ = _sorted_unique(tvals, "occasions")
+    masks = np.zeros((0, _words(len(occ))), dtype=np.uint64)
+    if len(keys) == 0:
+        return StructurePiece(0, keys, np.zeros(0, np.int64), occ, masks)
+    ukeys, codes = _codes(keys)
+    pos = np.searchsorted(occ, tvals)
+    counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
+    masks = np.zeros((len(ukeys), _words(len(occ))), dtype=np.uint64)
+    for w in range(masks.shape[1]):
+        sel = (pos // 64) == w
+        bits = np.left_shift(np.uint64(1), (pos[sel] % 64).astype(np.uint64))
+        np.bitwise_or.at(masks[:, w], codes[sel], bits)
+    return StructurePiece(len(keys), ukeys, counts, occ, masks)
+
+
+def _remap(piece: StructurePiece, occasions: np.ndarray) -> np.ndarray:
+    """The piece's masks re-expressed over a larger sorted set of occasions."""
+    if len(piece.occasions) == len(occasions):
+        return piece.masks
+    pos = np.searchsorted(occasions, piece.occasions)
+    out = np.zeros((len(piece.keys), _words(len(occasions))), dtype=np.uint64)
+    one = np.uint64(1)
+    for j, g in enumerate(pos):
+        bit = (piece.masks[:, j // 64] >> np.uint64(j % 64)) & one
+        out[:, g // 64] |= bit << np.uint64(g % 64)
+    return out
+
+
+def merge_structure(pieces, shared=None) -> StructurePiece:
+    """Merge structure pieces: counts add and masks OR per unit (units may be split
+    between pieces; pieces of files sorted by unit are concatenated, see _merge.chain).
+
+    ``shared``: the merged ``(keys, counts)`` of design pieces whose structure shares its
+    keys and counts with their statistics (no row dropped); used as they are.
+    """
+    full = [p for p in pieces if p.n_rows]
+    if not full:
+        return pieces[0]
+    if len(full) == 1:
+        return full[0]
+    same = all(len(p.occasions) == len(full[0].occasions)
+               and np.array_equal(p.occasions, full[0].occasions) for p in full[1:])
+    occ = full[0].occasions if same else _sorted_unique(
+        np.concatenate([p.occasions for p in full]), "occasions")
+    n_rows = sum(p.n_rows for p in full)
+    plan = _merge.chain([p.keys for p in full])
+    if plan is not None:
+        remapped = [_remap(p, occ) for p in full]
+        masks = plan.concat(remapped)
+        keys, counts = shared or (plan.concat([p.keys for p in full]),
+                                  plan.concat([p.counts for p in full]))
+        for j, r in plan.joined():
+            if shared is None:
+                counts[r] += full[j].counts[0]
+            masks[r] |= remapped[j][0]
+        return StructurePiece(n_rows, keys, counts, occ, masks)
+    keys = np.concatenate([p.keys for p in full])
+    ukeys, inv = _codes(keys)
+    counts = np.bincount(inv, weights=np.concatenate([p.counts for p in full]),
+                         minlength=len(ukeys)).astype(np.int64)
+    allm = np.concatenate([_remap(p, occ) for p in full])
+    masks = np.zeros((len(ukeys), allm.shape[1]), dtype=np.uint64)
+    for w in range(allm.shape[1]):
+        np.bitwise_or.at(masks[:, w], inv, allm[:, w])
+    return StructurePiece(n_rows, ukeys, counts, occ, masks)
+
+
+def observed_occasions(masks: np.ndarray) -> np.ndarray:
+    """Number of distinct occasions per unit (popcount of the masks)."""
+    return np.bitwise_count(masks).sum(axis=1).astype(np.int64)
+
+
+def occasion_positions(mask_row: np.ndarray) -> np.ndarray:
+    """Positions (into the sorted occasions) of the bits set in one unit's mask."""
+    bits = np.unpackbits(mask_row.astype("<u8").view(np.uint8), bitorder="little")
+    return np.flatnonzero(bits)
+
+
+# ---------------------------------------------------------------------------- describe
+@dataclass
+class DescribePiece:
+    """Per-column moments of a block of rows: ``groups`` of ``(columns, Partial)``, where
+    the columns of one group were observed on the same rows, so they share one set of
+    unit keys and counts (columns without missing values form one group)."""
+
+    n_missing: np.ndarray
+    groups: list
+    maxabs: np.ndarray
+    structure: StructurePiece | None = None
+
+    def column(self, j: int) -> suffstats.Partial:
+        """The moments of column ``j`` alone (its unit means copied out of its group)."""
+        for cols, part in self.groups:
+            if j in cols:
+                i = cols.index(j)
+                if len(cols) == 1:
+                    return part
+                c = [i]
+                return suffstats.Partial(part.n, part.ref[c], part.shift[c],
+                                         part.m2[np.ix_(c, c)], part.within_m2[np.ix_(c, c)],
+                                         part.keys, part.counts, part.offsets[:, c])
+        raise KeyError(j)
+
+    def layout(self) -> tuple:
+        return tuple(cols for cols, _ in self.groups)
+
+    def singletons(self) -> list:
+        return [((j,), self.column(j)) for j in range(len(self.n_missing))]
+
+
+def describe_block(pdf, unit, columns, time=None) -> DescribePiece:
+    """Per-column moments of one partition (and its structure when ``time`` is given)."""
+    st = None if time is None else structure_block(pdf, unit, time)
+    keys = pdf[unit].to_numpy()
+    n_missing, maxabs, complete, groups = [], [], [], []
+    X = np.empty((len(pdf), len(columns)))
+    for j, c in enumerate(columns):
+        x = X[:, j]
+        x[:] = pdf[c].to_numpy(dtype=float, na_value=np.nan)
+        ok = ~np.isnan(x)
+        if np.isinf(x).any():
+            _check_inf(x[ok], pdf.loc[ok], c, unit)
+        n_missing.append(int((~ok).sum()))
+        maxabs.append(float(np.abs(x[ok]).max()) if ok.any() else 0.0)
+        if ok.all():
+            complete.append(j)
+        else:
+            with np.errstate(over="ignore", invalid="ignore", under="ignore"):
+                groups.append(((j,), suffstats.partial_inplace(x[ok][:, None].copy(),
+                                                               keys[ok])))
+    if complete:
+        Z = np.ascontiguousarray(X[:, complete]) if len(complete) < len(columns) else X
+        # a column beyond 1e100 in magnitude overflows here; describe leaves it out by name
+        with np.errstate(over="ignore", invalid="ignore", under="ignore"):
+            groups.append((tuple(complete), suffstats.partial_inplace(Z, keys)))
+    groups.sort(key=lambda g: g[0])
+    return DescribePiece(np.asarray(n_missing, np.int64), groups, np.asarray(maxabs), st)
+
+
+def _merge_optional(pieces):
+    sts = [p.structure for p in pieces]
+    return None if sts[0] is None else merge_structure(sts)
+
+
+def merge_describe(pieces) -> DescribePiece:
+    """Merge describe pieces group by group when their columns group alike in every
+    piece (the usual case: no missing values), else column by column."""
+    layout = pieces[0].layout()
+    if all(p.layout() == layout for p in pieces[1:]):
+        per_piece = [p.groups for p in pieces]
+    else:
+        layout = tuple((j,) for j in range(len(pieces[0].n_missing)))
+        per_piece = [p.singletons() for p in pieces]
+    with np.errstate(over="ignore", invalid="ignore", under="ignore"):  # see describe_block
+        groups = [(cols, _merge.merge_parts([g[i][1] for g in per_piece])[0])
+                  for i, cols in enumerate(layout)]
+    return DescribePiece(sum(p.n_missing for p in pieces), groups,
+                         np.max([p.maxabs for p in pieces], axis=0), _merge_optional(pieces))
+
+
+def _check_inf(x, sub, column, unit, time=None):
+    bad = np.isinf(x)
+    if bad.any():
+        r = int(np.flatnonzero(bad)[0])
+        where = f"{unit}={_plain(sub[unit].iloc[r])!r}"
+        if time is not None:
+            where += f", {time}={_plain(sub[time].iloc[r])!r}"
+        raise PanelDataError(
+            f"column {column!r} has {int(bad.sum())} infinite value(s) in this partition; the "
+            f"first at {where}. Replace them by missing values or fix the source.")
+
+
+# ---------------------------------------------------------------------------- design pass
+@dataclass(frozen=True)
+class BlockSpec:
+    """What every partition needs to build its rows of ``[X, y]`` (picklable)."""
+
+    unit: str
+    time: str
+    outcome: str
+    used: tuple            # columns whose missing values drop a row
+    terms: tuple           # covariate names, in order
+    plain: tuple | None    # per term: column name or None for the intercept (fast path)
+    rhs: str               # formula right-hand side (slow path through formulaic)
+    occasions: tuple = ()  # occasions given an indicator (occasion effects)
+    unit_cp: bool = False  # collect per-unit within cross-products
+    structure: bool = False  # also summarise the panel's structure (all rows)
+    outcome_expr: str | None = None  # a transformed outcome (log(gsp)); None: the column
+
+
+@dataclass
+class DesignPiece:
+    """What one partition (or a merge of several) leaves behind."""
+
+    n_input: int
+    missing: np.ndarray     # per used column
+    n_dropped: int
+    maxabs: np.ndarray      # per column of [X, y]
+    part: suffstats.Partial
+    unit_cp: np.ndarray | None = field(default=None)  # (units, p, p) within cross-products
+    structure: StructurePiece | None = None
+
+
+def _build_Z(sub: pd.DataFrame, spec: BlockSpec) -> np.ndarray:
+    """``[X, y]`` of the kept rows as one C-ordered float64 array."""
+    n, k = len(sub), len(spec.terms)
+    Z = np.empty((n, k + 1))
+    if spec.plain is not None:
+        for j, c in enumerate(spec.plain):
+            Z[:, j] = 1.0 if c is None else sub[c].to_numpy(dtype=float)
+    else:
+        from formulaic import Formula
+
+        from ..formula import safe_context
+
+        mm = Formula(spec.rhs).get_model_matrix(
+            sub.reset_index(drop=True), context=safe_context(), ensure_full_rank=False,
+            na_action="raise")
+        got = [str(c) for c in mm.columns]
+        if got != list(spec.terms[:len(got)]) or len(got) + len(spec.occasions) != k:
+            raise PanelDataError(f"the formula gave columns {got} on one partition, expected "
+                                 f"{list(spec.terms)}")
+        Z[:, :len(got)] = np.asarray(mm, dtype=float)
+    if spec.occasions:
+        tv = sub[spec.time].to_numpy()
+        k0 = k - len(spec.occasions)
+        for j, o in enumerate(spec.occasions):
+            Z[:, k0 + j] = tv == o
+    if spec.outcome_expr is None:
+        Z[:, k] = sub[spec.outcome].to_numpy(dtype=float)
+    else:
+        from ..formula import outcome_values
+
+        Z[:, k] = outcome_values(spec.outcome_expr, sub)
+    return Z
+
+
+def complete_rows(pdf: pd.DataFrame, spec: BlockSpec):
+    """Listwise deletion and ``[X, y]`` of one partition: ``(sub, keep, missing, Z)`` with
+    the kept rows ``sub``, the mask ``keep``, missing values per used column, and ``Z``
+    (one C-ordered float64 array); refuses infinite or non-finite covariates."""
+    used = list(spec.used)
+    miss = pdf[used].isna().to_numpy() if used else np.zeros((len(pdf), 0), bool)
+    missing = miss.sum(axis=0).astype(np.int64)
+    keep = ~miss.any(axis=1)
+    sub = pdf if keep.all() else pdf.loc[keep]
+    for c in used:
+        if c != spec.time and pd.api.types.is_numeric_dtype(sub[c]):
+            _check_inf(sub[c].to_numpy(dtype=float), sub, c, spec.unit, spec.time)
+    Z = _build_Z(sub, spec)
+    if spec.outcome_expr is not None and not np.all(np.isfinite(Z[:, -1])):
+        r = int(np.flatnonzero(~np.isfinite(Z[:, -1]))[0])
+        raise PanelDataError(
+            f"the outcome {spec.outcome!r} is not finite ({float(Z[r, -1])!r}) at {spec.unit}="
+            f"{_plain(sub[spec.unit].iloc[r])!r}, {spec.time}={_plain(sub[spec.time].iloc[r])!r}"
+            " (a transform such as log of a value that is not positive?)")
+    if Z.size and not np.all(np.isfinite(Z[:, :-1])):
+        bad = int(np.flatnonzero(~np.isfinite(Z[:, :-1]).all(axis=0))[0])
+        r = int(np.flatnonzero(~np.isfinite(Z[:, bad]))[0])
+        raise PanelDataError(
+            f"term {spec.terms[bad]!r} is not finite at {spec.unit}="
+            f"{_plain(sub[spec.unit].iloc[r])!r}, {spec.time}={_plain(sub[spec.time].iloc[r])!r}"
+            " (a transform such as log of a non-positive value?)")
+    return sub, keep, missing, Z
+
+
+def rows_block(pdf: pd.DataFrame, spec: BlockSpec, columns, block, shared):
+    """``block(rows, shared)`` on the complete rows of one partition, as a
+    :class:`~bayespanel.data.design.RowBlock` in the design's kept ``columns`` of ``[X, y]``
+    (all when ``None``)."""
+    from ..design import RowBlock
+
+    sub, _, _, Z = complete_rows(pdf, spec)
+    if columns is not None:
+        Z = np.ascontiguousarray(Z[:, list(columns)])
+    return block(RowBlock(units=sub[spec.unit].to_numpy(), time=sub[spec.time].to_numpy(),
+                          Z=Z), shared)
+
+
+def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
+    """Rows of one partition: listwise deletion, ``[X, y]``, its :class:`Partial` (and the
+    partition's structure, over all its rows, when ``spec.structure``)."""
+    st = structure_block(pdf, spec.unit, spec.time) if spec.structure else None
+    sub, keep, missing, Z = complete_rows(pdf, spec)
+    keys = sub[spec.unit].to_numpy()
+    maxabs = np.abs(Z).max(axis=0) if len(Z) else np.zeros(Z.shape[1])
+    Zrows = Z.copy() if spec.unit_cp else None
+    part = suffstats.partial_inplace(Z, keys)
+    if st is not None and keep.all() and len(st.keys) == len(part.keys):
+        st.keys, st.counts = part.keys, part.counts  # the same units and counts: share them
+    ucp = None if Zrows is None else _unit_cp(Zrows, keys, part)
+    return DesignPiece(len(pdf), missing, int((~keep).sum()), maxabs, part, ucp, st)
+
+
+def _unit_cp(Z, keys, part) -> np.ndarray:
+    """Per-unit within cross-products ``sum_t (z_t - zbar_i)(z_t - zbar_i)'`` (units, p, p)."""
+    p = Z.shape[1]
+    out = np.zeros((len(part.keys), p, p))
+    if len(Z) == 0:
+        return out
+    codes = np.searchsorted(part.keys, keys)
+    D = (Z - part.ref) - part.offsets[codes]
+    for a in range(p):
+        for b in range(a, p):
+            v = np.bincount(codes, weights=D[:, a] * D[:, b], minlength=len(part.keys))
+            out[:, a, b] = v
+            out[:, b, a] = v
+    return out
+
+
+def merge_design(pieces) -> DesignPiece:
+    """Merge the pieces of several partitions (units may be split between them)."""
+    cps = [p.unit_cp for p in pieces] if pieces[0].unit_cp is not None else None
+    part, ucp = _merge.merge_parts([p.part for p in pieces], cps)
+    st = None
+    if pieces[0].structure is not None:
+        sts = [p.structure for p in pieces]
+        same = all(_shares_units(p) for p in pieces) and _merge.chain(
+            [p.part.keys for p in pieces if p.part.n]) is not None
+        st = merge_structure(sts, shared=(part.keys, part.counts) if same else None)
+    return DesignPiece(sum(p.n_input for p in pieces), sum(p.missing for p in pieces),
+                       sum(p.n_dropped for p in pieces),
+                       np.max([p.maxabs for p in pieces], axis=0), part, ucp, st)
+
+
+def _shares_units(piece: DesignPiece) -> bool:
+    """Whether the piece's structure holds the very key and count arrays of its
+    statistics (every row kept), or both are empty."""
+    st, part = piece.structure, piece.part
+    if part.n == 0:
+        return st.n_rows == 0
+    return st.keys is part.keys and st.counts is part.counts
