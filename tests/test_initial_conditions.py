@@ -166,3 +166,10 @@ def test_what_each_kind_makes_of_the_design():
         bp.FixedEffects.from_design(d)
     with pytest.warns(DataHandlingWarning, match="biased upward"):
         bp.Pooled.from_design(d)
+
+
+def test_ar1_errors_with_a_lagged_outcome_are_flagged():
+    df = simulate(n_units=30, seed=6)
+    d = _quiet(bp.Panel(df, unit="unit", time="t").design, "y ~ lag(y) + x")
+    with pytest.warns(DataHandlingWarning, match="errors='ar1' with a lagged outcome"):
+        bp.RandomIntercept.from_design(d, errors="ar1")

@@ -224,10 +224,13 @@ class GaussianModel:
         return obj
 
     def _init_design(self, design, priors, likelihood):
-        from ..data.initial import notes
+        from ..data.initial import WITH_AR1, notes
 
-        for text in notes(design, [type(self).__name__])[1:]:  # fixed effects, pooled
+        said = notes(design, [type(self).__name__])
+        for text in said[1:]:  # fixed effects, pooled
             warnings.warn(text, DataHandlingWarning, stacklevel=4)
+        if said and self.errors == "ar1":
+            warnings.warn(WITH_AR1, DataHandlingWarning, stacklevel=4)
         stats = self._design_stats(design)
         labels = list(stats.names[:-1])
         self.design = design

@@ -51,8 +51,8 @@ import numpy as np
 
 from ..core.terms import BETWEEN, UNIT_MEAN, parse
 
-__all__ = ["InitialConditions", "columns", "notes", "ASSUMPTION", "dynamic_terms",
-           "transform_columns"]
+__all__ = ["InitialConditions", "columns", "notes", "ASSUMPTION", "WITH_AR1",
+           "dynamic_terms", "transform_columns"]
 
 #: what the initial-conditions model assumes, and why (report and console)
 ASSUMPTION = (
@@ -140,6 +140,15 @@ def transform_columns(design, kind, tv):
         terms = [parse(t).column.with_part(BETWEEN) if t in ic.means else t for t in terms]
     tv = [i for i in tv if design.terms[i] not in ic.dynamic]
     return terms, tv, []
+
+
+#: a lagged outcome with AR(1) errors (bayespanel.models, errors="ar1")
+WITH_AR1 = (
+    "errors='ar1' with a lagged outcome among the covariates: the first estimation error "
+    "is correlated with the initial outcome through the error before it, which the model "
+    "does not condition on; a lagged outcome and AR(1) errors both describe persistence, "
+    "so prefer one of them unless you have checked the combination "
+    "(docs/serial-correlation.md).")
 
 
 def notes(design, model_names) -> list[str]:
