@@ -63,8 +63,6 @@ KNOWN_CYCLE_EDGES: set[tuple[str, str]] = {
     ("bayespanel.bayes.latent", "bayespanel.bayes.posterior"),
     ("bayespanel.bayes.posterior", "bayespanel.bayes.builders"),
     ("bayespanel.bayes.posterior", "bayespanel.bayes.latent"),
-    ("bayespanel.reference._results", "bayespanel.reference.estimators"),
-    ("bayespanel.reference.estimators", "bayespanel.reference._results"),
     ("bayespanel.app.runner", "bayespanel.app.family_stage"),
 }
 

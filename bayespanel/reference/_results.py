@@ -297,7 +297,7 @@ class ReferenceResult:
             from ..core.errors import SpecificationError
             raise SpecificationError("this result has no design (it came from fit_arrays); "
                                      "call fit_arrays on the subset of rows instead")
-        from .estimators import fit_design
+        fit_design = self._refit["fit"]  # the estimator that made this result
 
         mask = np.asarray(rows)
         if mask.dtype != bool:

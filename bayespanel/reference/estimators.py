@@ -456,7 +456,7 @@ def fit_stats(estimator, ss, labels, *, method=None, outcome=None) -> ReferenceR
         n_units=fit.n_units, dropped=dropped, assumptions=assumptions,
         lengths=fit.lengths, theta=fit.theta,
         group_count=None if fit.lengths is None else ss.group_count.copy(),
-        loglik=fit.loglik, outcome=outcome, extra=extra, refit_info={"method": method},
+        loglik=fit.loglik, outcome=outcome, extra=extra, refit_info={"method": method, "fit": fit_design},
     )
 
 
