@@ -175,7 +175,7 @@ def test_older_results_files_are_read_with_todays_keys(tmp_path):
     from bayespanel.report.results_json import SCHEMA_VERSION, load_results
 
     kept = json.loads((Path(__file__).parent / "golden" / "demo_results.json").read_text())
-    assert kept["schema_version"] == SCHEMA_VERSION == "1.2.0"
+    assert kept["schema_version"] == SCHEMA_VERSION == "1.3.0"
     old = copy.deepcopy(kept)
     old["schema_version"] = "1.1.0"
     for m in old["models"]:

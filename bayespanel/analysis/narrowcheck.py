@@ -139,33 +139,31 @@ def narrow_message(rows, *, threshold: float = RATIO_THRESHOLD, errors: str = "i
         return None
     worst = min(flagged, key=lambda r: r["ratio"])
     models = list(dict.fromkeys(r["title"] for r in flagged))
-    covariates = list(dict.fromkeys(parse(r["term"]).base for r in flagged
-                                    if parse(r["term"]).part in (AS_IS, WITHIN)))
     text = (f"Intervals too narrow: in {len(flagged)} coefficient(s) of "
             f"{', '.join(models)} the posterior SD is less than {threshold:g} times the "
             "cluster-robust SE of the matching reference fit (worst: "
             f"{worst['term']} in {worst['title']}, SD {_num(worst['posterior_sd'])} against "
-            f"SE {_num(worst['reference_se'])}, ratio {worst['ratio']:.2f}). The models' "
-            "intervals rely on two assumptions the data seem not to meet; treat them as too "
-            "narrow until one of these remedies brings the two closer. ")
+            f"SE {_num(worst['reference_se'])}, ratio {worst['ratio']:.2f}). Treat those "
+            "intervals as too narrow until a remedy brings the two closer.")
+    # the pooled model has a cause of its own: no unit intercepts at all
+    with_units = [r for r in flagged if r["model"] != "pooled"]
+    covariates = list(dict.fromkeys(parse(r["term"]).base for r in with_units
+                                    if parse(r["term"]).part in (AS_IS, WITHIN)))
     slope = (f"add a random slope for {', '.join(covariates)} (--random-slopes)"
              if covariates else "add a random slope for that covariate (--random-slopes)")
-    if errors == "ar1":
-        text += ("The models already allow AR(1) errors within units, so the likelier cause "
-                 "is within effects that differ between units: " + slope + "; leaving such "
-                 "slopes out makes within-effect intervals too narrow (Bell, Fairbrother and "
-                 "Jones 2019, Quality & Quantity 53(2)).")
-    else:
-        text += ("Two usual causes: (1) errors correlated over time within units: refit "
+    bell = ("; leaving such slopes out makes within-effect intervals too narrow (Bell, "
+            "Fairbrother and Jones 2019, Quality & Quantity 53(2)).")
+    if with_units and errors == "ar1":
+        text += (" The models already allow AR(1) errors within units, so the likelier cause "
+                 "is within effects that differ between units: " + slope + bell)
+    elif with_units:
+        text += (" Two usual causes: (1) errors correlated over time within units: refit "
                  "with AR(1) errors (errors = \"ar1\" in the analysis file, --errors ar1) and "
                  "see the serial-correlation test; (2) within effects that differ between "
-                 "units: " + slope + "; leaving such slopes out makes within-effect "
-                 "intervals too narrow (Bell, Fairbrother and Jones 2019, Quality & Quantity "
-                 "53(2)).")
-    if any(r["model"] == "pooled" for r in flagged):
-        text += (" For the pooled model the first cause is simpler: it has no unit "
-                 "intercepts, so lasting differences between units count as independent "
-                 "noise; prefer a model with unit intercepts.")
+                 "units: " + slope + bell)
+    if len(with_units) < len(flagged):
+        text += (" The pooled model has no unit intercepts, so lasting differences between "
+                 "units count as independent noise; prefer a model with unit intercepts.")
     if n_units is not None and n_units < FEW_UNITS:
         text += (f" With {n_units} units the cluster-robust SE is itself imprecise (few "
                  "clusters), so read the ratio as a warning sign, not a measurement.")

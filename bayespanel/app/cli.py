@@ -198,6 +198,7 @@ def _settings_from_args(args):
         "family": args.family, "trials": args.trials, "exposure": args.exposure,
         "random_slopes": _names(args.random_slopes),
         "centred": True if args.centred_effects else None,
+        "errors": args.errors,
     }
     if args.config:
         s = load_settings(args.config, **over)
@@ -361,10 +362,11 @@ def _print_reference(results) -> None:
             print(f"  not estimated: {_not_estimated(f['not_estimated'])}")
     tests = results.get("tests") or []
     if tests:
-        print("\nSpecification tests (are within and between effects equal?):")
+        print("\nSpecification tests (are within and between effects equal? are a unit's "
+              "errors correlated over time?):")
     reasons = {t["skipped"] for t in tests if t.get("skipped")}
-    if len(reasons) == 1 and all(t.get("skipped") for t in tests):  # one line for both
-        print(f"  not run: {reasons.pop()}")
+    if len(tests) > 1 and len(reasons) == 1 and all(t.get("skipped") for t in tests):
+        print(f"  not run: {reasons.pop()}")  # one line for all
         tests = []
     for t in tests:
         if t.get("skipped"):
@@ -420,6 +422,7 @@ def _print_summary(results) -> None:
                        f"   ref. {_fmt(a['reference_estimate'])} (SE {_fmt(a['reference_se'])})")
                 print(f"    {a['effect']:<26} {_fmt(a['mean'])!s:>9}  [{_fmt(a['lower'])}, "
                       f"{_fmt(a['upper'])}]{ref}")
+        _print_serial(m)
         for w in m["diagnostics"]["warnings"]:
             print(f"  warning: {w}")
     for w in results.get("warnings") or []:  # rows dropped, occasions read as dates, ...
@@ -448,6 +451,33 @@ def _print_summary(results) -> None:
         for text in (comp.get("note"), comp.get("methods_note")):
             if text:
                 print(f"  note: {text}")
+    check = results.get("interval_check") or {}
+    if check.get("message"):  # last, where a reader looks when the run ends
+        print(f"\nwarning: {check['message']}")
+
+
+def _print_serial(m) -> None:
+    """A model's correlation over time: the correlation of two occasions one time unit
+    apart (AR(1) errors) and the lag-one predictive check of its within residuals."""
+    from ..analysis.serialcheck import STATISTIC
+    from ..data.resultshape import LAG_ONE
+    from ..report import numbers
+
+    vp = m.get("variance_partition") or {}
+    for q in vp.get("summary") or []:
+        if q["quantity"] == LAG_ONE:
+            print(f"  {LAG_ONE}: {_fmt(q['mean'], q['sd'])} "
+                  f"{numbers.interval(q['lower'], q['upper'], q['sd'])}")
+    for c in m.get("ppc") or []:
+        if c["statistic"] == STATISTIC:
+            p = c["p_value"]
+            reading = ("" if 0.025 <= p <= 0.975 else
+                       "; the residuals are more correlated over time than the model allows"
+                       if p < 0.025 else
+                       "; the residuals are less correlated over time than the model allows")
+            print(f"  {c['label']}: observed {numbers.plain(c['observed'])}, replicated "
+                  f"{numbers.plain(c['replicated_mean'])} on average, P(replicated >= "
+                  f"observed) {numbers.probability(p)}{reading}")
 
 
 def cmd_demo(args) -> int:
@@ -686,10 +716,15 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--occasion-effects", action="store_true",
                    help="add one indicator per occasion to every model")
     g.add_argument("--out-of-core", action="store_true", help=_OOC_HELP)
+    g.add_argument("--errors", choices=["iid", "ar1"], default=None,
+                   help="occasion-level errors of the Gaussian models: iid (default: "
+                        "independent given the unit intercept) or ar1 (correlated over time "
+                        "within units, rho^gap for occasions a gap apart on the time column's "
+                        "own scale; docs/serial-correlation.md)")
     _family_args(p)
     g.add_argument("--prior", action="append", metavar="KEY=SPEC",
                    help="prior override, repeatable: KEY is a term label, 'coef' (all slopes), "
-                        "'sigma_obs' or 'sigma_unit'; SPEC is a family (normal, student_t, "
+                        "'sigma_obs', 'sigma_unit' or 'rho' (with --errors ar1); SPEC is a family (normal, student_t, "
                         "flat, half_normal, half_student_t, exponential, gamma2, half_flat) "
                         "optionally with parameters, e.g. sigma_unit=gamma2 or "
                         "'coef=normal:sigma=10'")

@@ -37,6 +37,7 @@ from pathlib import Path
 import numpy as np
 
 from .. import kinds
+from ..core.ar1 import ERRORS
 from ..core.errors import (BayespanelError, EstimationError, SamplingWarning, SpecificationError,
                      choices_error)
 from ..core.jsonsafe import json_record as _floats  # flat records for results.json
@@ -128,6 +129,11 @@ class Settings:
         Time-varying covariates whose (within) slope varies by unit (at most two).
     centred : bool
         Centred instead of non-centred latent unit effects (docs/families.md).
+    errors : {"iid", "ar1"}
+        Occasion-level errors of the Gaussian models: independent given the unit
+        intercept (default), or AR(1) within units on the time column's own spacing
+        (docs/serial-correlation.md). AR(1) errors apply to the Gaussian family without
+        random slopes, with the rows in memory.
 
     ``models`` and ``reference`` default to every model and reference fit that applies
     to the family: all five and all six for the Gaussian family without random slopes.
@@ -165,6 +171,7 @@ class Settings:
     exposure: str | None = None
     random_slopes: tuple = ()
     centred: bool = False
+    errors: str = "iid"
 
     def __post_init__(self):
         # values of the wrong type are kept as they are for check() to refuse by name
@@ -289,6 +296,7 @@ class Settings:
             raise SpecificationError(f"occasion_effects={self.occasion_effects!r} must be "
                                      "true or false")
         self._check_family()
+        self._check_errors()
         from ..bayes.latent import EXTRA_PRIOR_KEYS
         from ..bayes.priors import check_prior
 
@@ -364,6 +372,23 @@ class Settings:
                 f"out_of_core: {what} needs the rows (latent unit effects are sampled row by "
                 "row); drop out_of_core or use the Gaussian family without random slopes")
 
+    def _check_errors(self):
+        """The occasion-level errors and the routes that can fit them."""
+        if self.errors not in ERRORS:
+            raise choices_error("errors", self.errors, ERRORS)
+        if self.errors == "iid":
+            return
+        if self.latent:
+            what = (f"family={self.family!r}" if self.family != "gaussian"
+                    else "random slopes")
+            raise SpecificationError(
+                f"errors='ar1' applies to the Gaussian models without random slopes, not to "
+                f"{what}; drop errors='ar1' (--errors) or fit the Gaussian family")
+        if self.out_of_core:
+            raise SpecificationError(
+                "errors='ar1' needs the rows in memory (the out-of-core route does not fit "
+                "AR(1) errors yet); drop out_of_core or errors='ar1'")
+
     # ------------------------------------------------------------------ files
     def to_dict(self) -> dict:
         d = asdict(self)
@@ -396,6 +421,7 @@ class Settings:
             lines.append(f"random_slopes = {_toml_value(list(self.random_slopes))}")
         if self.centred:
             lines.append("centred = true")
+        lines.append(f"errors = {_toml_value(self.errors)}")
         lines += ["", "[priors]"]
         lines += [f"{_toml_key(k)} = {_toml_value(v)}" for k, v in self.priors.items()]
         lines += ["", "[sampling]"] + [f"{k} = {_toml_value(getattr(self, k))}" for k in
@@ -423,7 +449,7 @@ _TOML_LAYOUT = {  # section -> {key in file: Settings field}
              "out_of_core": "out_of_core", "delimiter": "delimiter"},
     "model": {"formula": "formula", "models": "models", "occasion_effects": "occasion_effects",
               "family": "family", "trials": "trials", "exposure": "exposure",
-              "random_slopes": "random_slopes", "centred": "centred"},
+              "random_slopes": "random_slopes", "centred": "centred", "errors": "errors"},
     "sampling": {k: k for k in ("draws", "tune", "chains", "seed", "sampler", "ppc_draws")},
     "reference": {"fits": "reference", "cov": "cov", "method": "re_method"},
     "comparison": {"level": "level", "rope": "rope", "reference_folds": "reference_folds",
@@ -455,7 +481,7 @@ def _toml_value(v) -> str:
 #: further by :meth:`Settings.check`)
 _FILE_TYPES = {
     **dict.fromkeys(("title", "data", "unit", "time", "formula", "data_sha256", "sampler",
-                     "cov", "re_method", "level"), (str,)),
+                     "cov", "re_method", "level", "errors"), (str,)),
     **dict.fromkeys(("models", "reference"), (list, str)),
 }  # numbers and switches are checked, with their ranges, by Settings.check
 _TYPE_NAMES = {str: "text", list: "a list of names"}
@@ -855,6 +881,104 @@ def _tests_stage(design, say):
     return tests
 
 
+def _time_reason(settings, design) -> str | None:
+    """Why the time column cannot order a unit's occasions on a numeric scale (the
+    serial-correlation test and the lag-one check then do not run), or None. With AR(1)
+    errors the same fault is bad input, refused here before anything is sampled."""
+    from ..core.ar1 import occasion_times
+    from ..core.errors import PanelDataError
+
+    try:
+        occasion_times(design.time, design.spec.time)
+    except PanelDataError as exc:
+        if settings.errors == "ar1":
+            raise
+        return str(exc)
+    return None
+
+
+#: title of the serial-correlation test among the run's tests
+SERIAL_TITLE = "Serial correlation of the errors (first differences, cluster-robust)"
+
+
+def _serial_test(design, time_reason, say) -> dict:
+    """The serial-correlation test of Wooldridge (2002, 10.5.4) as a ``tests`` record,
+    its reading in plain words; a test that cannot run is recorded with the reason."""
+    from ..reference.serial import serial_correlation_arrays
+
+    def skipped(why):
+        say(f"serial-correlation test skipped: {why}")
+        return {"name": "serial_correlation", "title": SERIAL_TITLE, "statistic": None,
+                "df": None, "p_value": None, "null": None, "conclusion": f"not run: {why}",
+                "message": None, "skipped": why}
+
+    if time_reason is not None:
+        return skipped(time_reason)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            t = serial_correlation_arrays(design.X, design.y, design.unit_codes, design.time,
+                                          labels=design.terms, column=design.spec.time)
+    except EstimationError as exc:
+        return skipped(str(exc).removeprefix("serial-correlation test: "))
+    reject = np.isfinite(t.f_p_value) and t.f_p_value < 0.05
+    if not reject:
+        reading = ("no evidence at the 5% level that a unit's errors are correlated over "
+                   f"time (coefficient {t.coef:.3g}; -0.5 means uncorrelated)")
+    elif t.coef > -0.5:
+        reading = ("a unit's errors are positively correlated over time (p < 0.05; "
+                   f"coefficient {t.coef:.3g}, where -0.5 means uncorrelated): intervals of "
+                   "models that assume independent occasions are too narrow; refit with AR(1) "
+                   "errors (--errors ar1)")
+    else:
+        reading = ("a unit's errors are negatively correlated over time (p < 0.05; "
+                   f"coefficient {t.coef:.3g}, where -0.5 means uncorrelated): models that "
+                   "assume independent occasions misstate their intervals; refit with AR(1) "
+                   "errors (--errors ar1)")
+    say("serial-correlation test: first-differenced residuals on their lag")
+    return _floats({
+        "name": "serial_correlation", "title": SERIAL_TITLE, "statistic": t.statistic,
+        "df": t.df, "p_value": t.p_value, "null": t.null,
+        "distribution": f"F(1, {t.f_df_denom:.0f})", "reported_statistic": t.f_statistic,
+        "reported_p_value": t.f_p_value, "conclusion": reading, "message": t.message})
+
+
+def _interval_check(settings, design, posts, ref_fits, tests, say):
+    """Posterior SDs against the matching reference fits' cluster-robust SEs
+    (:func:`bayespanel.narrowcheck.narrow_interval_check`); a reference fit the run did
+    not make, or made with classical errors, is fitted here with CR1 by unit."""
+    from .. import reference as ref
+    from ..analysis.narrowcheck import narrow_interval_check
+
+    cov = settings.cov if settings.cov in ("cluster", "cr2") else "cluster"
+    fits = []
+    for name, post in posts.items():
+        rname = kinds.model(name).reference
+        res = ref_fits.get(rname) if settings.cov == cov else None
+        if res is None:
+            kw = {"method": settings.re_method} if kinds.reference(rname).variance_components \
+                else {}
+            try:
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore")
+                    res = ref.fit_design(design, rname, cov=cov, **kw)
+            except BayespanelError:
+                continue
+        fits.append({"model": name, "title": kinds.model(name).title, "reference": rname,
+                     "reference_title": kinds.reference(rname).title, "sd": post.error,
+                     "se": res.error})
+    out = narrow_interval_check(fits, errors=settings.errors, n_units=design.n_units, cov=cov)
+    serial = next((t for t in tests if t.get("name") == "serial_correlation"
+                   and not t.get("skipped")), None)
+    if out["message"] and serial and (serial.get("reported_p_value") or 1) < 0.05:
+        out["message"] += (" The serial-correlation test points the same way ("
+                           + serial["conclusion"].split(" (")[0] + ").")
+    flagged = sum(r["narrow"] for r in out["rows"])
+    say(f"narrow-interval check: {flagged} of {len(out['rows'])} posterior SDs below "
+        f"{out['threshold']:g} x the cluster-robust SE")
+    return out
+
+
 def _rank_note(t) -> str:
     """Said beside a test's reading when its df is below the number of terms compared (the
     Hausman covariance difference is often not positive definite; Hausman 1978)."""
@@ -882,6 +1006,7 @@ def _model_priors(settings, model_cls, labels):
     has_unit = model_cls.unit_effects == "random"
     valid = set(labels) | {"coef", "sigma_obs"} | ({"sigma_unit"} if has_unit else set())
     valid |= _extra_prior_keys(settings)
+    valid |= {"rho"} if settings.errors == "ar1" else set()
     return {k: v for k, v in settings.priors.items() if k in valid} or None
 
 
@@ -890,6 +1015,7 @@ def _check_prior_keys(settings, label_sets):
 
     known = set().union(*label_sets.values()) if label_sets else set()
     known |= {"coef", "sigma_unit"} | _extra_prior_keys(settings)
+    known |= {"rho"} if settings.errors == "ar1" else set()
     if "sigma_obs" in get_family(settings.family).params:
         known.add("sigma_obs")
     for k in settings.priors:
@@ -976,7 +1102,22 @@ def _sample_timed(m, settings, progress_bars):
     return post, time.perf_counter() - t0
 
 
-def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, progress_bars):
+def _lag1_ppc(post, design, settings):
+    """The posterior predictive check of the lag-one autocorrelation of within residuals
+    (:func:`bayespanel.serialcheck.lag1_check`), on ``ppc_draws`` evenly thinned draws;
+    None when no unit has two occasions one time unit apart."""
+    from ..analysis.serialcheck import lag1_check
+
+    thin = _thin_for(post.n_chains * post.n_draws, settings.ppc_draws)
+    M, y, codes = post.rows
+    rho = post._flat("rho", thin) if post.spec.errors == "ar1" else None
+    return lag1_check(M, y, codes, design.time, post._flat("coef", thin),
+                      post._flat("sigma_obs", thin), rho, seed=settings.seed,
+                      column=design.spec.time)
+
+
+def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, progress_bars,
+               lag1=False):
     if settings.latent:  # a family other than the Gaussian, or random slopes
         from .family_stage import bayes_one
         return bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say,
@@ -986,7 +1127,7 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # dropped rows were reported by the data stage
         priors = _model_priors(settings, cls, labels)
-        m = design.build(cls, priors=priors)  # from the design's statistics
+        m = design.build(cls, priors=priors, errors=settings.errors)  # from the statistics
     say(f"sampling {name}: {settings.chains} chains x {settings.draws} draws "
         f"(+{settings.tune} tuning)")
     post, seconds = _sample_timed(m, settings, progress_bars)
@@ -1013,7 +1154,14 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
             warnings.simplefilter("ignore")
             cr = _contrasts(post, design, kind, coef_d, settings, ref_for)
         contrasts = cr.to_record(prob)
-    ppc = _ppc(post, design, settings.ppc_draws, settings.seed) if design.has_rows else []
+    ppc = []
+    if design.has_rows:
+        try:
+            ppc = _ppc(post, design, settings.ppc_draws, settings.seed)
+        except SpecificationError:  # predictive draws not offered for this model (AR(1))
+            ppc = []
+        if lag1:
+            ppc += [r for r in [_lag1_ppc(post, design, settings)] if r is not None]
     rel = None
     if out_dir is not None:
         rel = f"posteriors/{name}.nc"
@@ -1161,6 +1309,8 @@ def _comparison_stage(settings, design, posts, ref_fits, entries, say, failed=No
         with _isolated(failed if failed is not None else [], say, name, kinds.model(name).title,
                        "LOO"):
             lr, by_name[name]["loo"] = _loo_entry(post, settings.level, settings=settings)
+            if lr is None and getattr(getattr(post, "spec", None), "errors", "iid") == "ar1":
+                continue  # not scored (its LOO entry says why): left out of the table
             fits[name] = lr if lr is not None else post
             models[name] = post
             titles[name] = kinds.model(name).title
@@ -1300,6 +1450,8 @@ def _left_out(settings, panel, design) -> dict:
                  "point, full PSIS on a seeded simple random sample of "
                  f"{_loo_observations(settings, design)} points"},
         {"item": "exact refits of high Pareto-k points", "reason": f"each refit {why_rows}"},
+        {"item": "serial-correlation test and lag-one predictive check",
+         "reason": f"differencing and pairing consecutive occasions {why_rows}"},
         {"item": "design check (simulated replicates)", "reason": f"it {why_rows}"},
         {"item": "saved estimation rows in posteriors/*.nc",
          "reason": "the files hold the sufficient statistics only"},
@@ -1329,6 +1481,12 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
         with _isolated(failed, say, "tests", "Hausman and Mundlak tests",
                        "specification tests"):
             tests = _tests_stage(design, say)
+    # AR(1) errors refuse a time column without numeric spacing as bad input, here
+    time_reason = _time_reason(settings, design) if design.has_rows else None
+    if not settings.glm_reference and design.has_rows:
+        with _isolated(failed, say, "serial_correlation", "Serial-correlation test",
+                       "serial-correlation test"):
+            tests = tests + [_serial_test(design, time_reason, say)]
     # a model this design cannot hold (fixed effects without a covariate that varies
     # within units) is refused as bad input here, before anything is sampled
     labels = {name: design.labels(kinds.model(name).columns) for name in settings.models}
@@ -1338,13 +1496,21 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
             left = ", ".join(map(repr, design.time_constant))
             notes = notes + [f"{kinds.model(name).title} leaves out {left}: constant within "
                              "units, absorbed by the unit intercepts"]
+    if time_reason is not None:
+        notes = notes + [f"the serial-correlation test and the lag-one predictive check need "
+                         f"a numeric time column: {time_reason}"]
     posts, entries = {}, []
     for name in settings.models:
         with _isolated(failed, say, name, kinds.model(name).title, "Bayesian fit"):
             post, entry = _bayes_one(name, settings, panel, design, labels[name], ref_fits,
-                                     out_dir, say, progress_bars)
+                                     out_dir, say, progress_bars, lag1=time_reason is None)
             posts[name] = post
             entries.append(entry)
+    interval_check = None
+    if posts and not settings.glm_reference:
+        with _isolated(failed, say, "interval_check", "Narrow-interval check",
+                       "narrow-interval check"):
+            interval_check = _interval_check(settings, design, posts, ref_fits, tests, say)
     comparison = None
     if posts or ref_fits:
         with _isolated(failed, say, "comparison", "LOO comparison", "comparison"):
@@ -1357,7 +1523,7 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
         "settings": {**settings.to_dict(), "toml": settings.to_toml()},
         "software": software_versions(),
         "data": data, "models": entries, "reference": ref_entries, "tests": tests,
-        "comparison": comparison, "warnings": notes,
+        "comparison": comparison, "interval_check": interval_check, "warnings": notes,
         "truth": _truth_by_model(truth, entries, ref_entries) if truth else None,
     }
     if failed:  # runs where everything was fitted keep the 1.0 layout

@@ -34,12 +34,16 @@ import pandas as pd
 from ..core.errors import SpecificationError
 from ..core.jsonsafe import json_record
 
-__all__ = ["DEFAULT_INTERVAL", "LEADING_COLUMNS", "check_prob", "leading_columns",
+__all__ = ["DEFAULT_INTERVAL", "LAG_ONE", "LEADING_COLUMNS", "check_prob", "leading_columns",
            "term_records", "summarise_draws", "PartitionResult"]
 
 #: probability of every interval reported by default (summaries, tables, partitions,
 #: contrasts, ICC, average marginal effects, predictive checks, run settings)
 DEFAULT_INTERVAL = 0.95
+
+#: the partition's quantity under AR(1) errors: the correlation of one unit's outcomes on
+#: two occasions one time unit apart, given the covariates
+LAG_ONE = "correlation one step apart"
 
 #: the first columns of every ``table()``; ``"error"`` stands for ``sd`` or ``se``
 LEADING_COLUMNS = ("estimate", "error", "lower", "upper")
@@ -150,8 +154,9 @@ class PartitionResult:
 
     def to_record(self, prob: float = DEFAULT_INTERVAL) -> dict:
         """The ``variance_partition`` record of a model in ``results.json``
-        (docs/results-schema.md): ``summary`` (unit SD, occasion SD, ICC: mean, median,
-        SD, interval and the reference's plug-in value), ``theta`` (per panel length),
+        (docs/results-schema.md): ``summary`` (unit SD, occasion SD, ICC and, with
+        AR(1) errors, :data:`LAG_ONE`: mean, median, SD, interval and the reference's
+        plug-in value), ``theta`` (per panel length),
         ``explained`` (the Rights-Sterba shares of the total, within and between
         variance) and ``icc_draws`` (at most about 1,000 evenly thinned finite draws).
         Non-finite numbers are ``None``. A reference fit's record holds its estimates
@@ -167,7 +172,9 @@ class PartitionResult:
                               for q in tab.index if q.startswith("theta (T=")]}
         if "reference" not in tab:
             tab["reference"] = np.nan
-        summary = term_records(tab.loc[["unit SD", "occasion SD", "ICC"]],
+        # AR(1) errors add the correlation of two occasions one time unit apart
+        rows = [q for q in ("unit SD", "occasion SD", "ICC", LAG_ONE) if q in tab.index]
+        summary = term_records(tab.loc[rows],
                                ("mean", "median", "sd", "lower", "upper", "reference"),
                                key="quantity")
         theta = [json_record({"length": int(q.split("=")[1].rstrip(")")),

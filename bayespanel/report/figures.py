@@ -15,14 +15,17 @@ from __future__ import annotations
 
 import base64
 import io
+import textwrap
 
 import numpy as np
 
+from ..analysis.serialcheck import STATISTIC as LAG1_STATISTIC
 from ..core.safetext import LITERAL_RC, literal
 from .tables import coefficient_grid
 from .text import label
 
-__all__ = ["coefficient_figure", "icc_figure", "loo_figure", "ppc_figure", "PALETTE", "literal",
+__all__ = ["coefficient_figure", "icc_figure", "loo_figure", "ppc_figure", "serial_figure",
+           "PALETTE", "literal",
            "LITERAL_RC"]
 
 PALETTE = {
@@ -199,18 +202,24 @@ def loo_figure(results: dict):
         return _uri(fig)
 
 
+def _panel_checks(m) -> list:
+    """A model's predictive checks of panel statistics (the lag-one check has its own
+    figure, :func:`serial_figure`)."""
+    return [s for s in m.get("ppc") or [] if s["statistic"] != LAG1_STATISTIC]
+
+
 def ppc_figure(results: dict):
     """Replicated panel statistics against the observed value, one row per model."""
-    models = [m for m in results.get("models", []) if m.get("ppc")]
+    models = [m for m in results.get("models", []) if _panel_checks(m)]
     if not models:
         return None
     plt = _plt()
-    stats = [s["label"] for s in models[0]["ppc"]]
+    stats = list(dict.fromkeys(s["label"] for m in models for s in _panel_checks(m)))
     with plt.rc_context(_RC):
         fig, axes = plt.subplots(len(models), len(stats), figsize=(2.5 * len(stats), 1.55 * len(models) + 0.4),
                                  squeeze=False)
         for i, m in enumerate(models):
-            by = {s["label"]: s for s in m["ppc"]}
+            by = {s["label"]: s for s in _panel_checks(m)}
             for j, lab in enumerate(stats):
                 ax = axes[i, j]
                 s = by.get(lab)
@@ -228,4 +237,28 @@ def ppc_figure(results: dict):
                     ax.set_ylabel(literal(m["title"]), fontsize=8, rotation=0, ha="right",
                                   va="center")
         fig.tight_layout(w_pad=0.8, h_pad=0.6)
+        return _uri(fig)
+
+
+def serial_figure(results: dict):
+    """The lag-one autocorrelation of within residuals: each model's replicated values
+    (histogram) against the observed one (line), one small panel per model."""
+    found = [(m, s) for m in results.get("models", []) for s in m.get("ppc") or []
+             if s["statistic"] == LAG1_STATISTIC]
+    if not found:
+        return None
+    plt = _plt()
+    with plt.rc_context(_RC):
+        fig, axes = plt.subplots(1, len(found), figsize=(2.3 * len(found) + 0.3, 1.9),
+                                 squeeze=False, sharex=True)
+        for i, (m, s) in enumerate(found):
+            ax = axes[0, i]
+            ax.hist(np.asarray(s["replicated"], dtype=float), bins=20,
+                    color=_colour("bayesian", i), alpha=0.75, lw=0)
+            ax.axvline(s["observed"], color=PALETTE["ref"][0], lw=1.8)
+            ax.set_yticks([])
+            ax.grid(visible=False)
+            ax.set_title(literal(textwrap.fill(m["title"], 24)), fontsize=8)
+            ax.set_xlabel("lag-one autocorrelation", fontsize=8)
+        fig.tight_layout(w_pad=0.6)
         return _uri(fig)

@@ -13,6 +13,7 @@ from __future__ import annotations
 from importlib import resources
 
 from .. import kinds
+from ..data.resultshape import LAG_ONE
 from . import family_report, figures, tables
 from . import numbers as num
 from .markup import Safe, esc, figure, fmt, join, note, pairs, table, tag
@@ -26,6 +27,7 @@ SECTIONS = [
     ("data", "The data"),
     ("models", "The models and what they assume"),
     ("coefficients", "Coefficients side by side"),
+    ("serial", "Correlation over time within units"),
     ("effects", "Effects on the outcome scale"),
     ("partition", "Variance between and within units"),
     ("contrasts", "Within versus between"),
@@ -74,8 +76,11 @@ def _overview(r) -> Safe:
     ]
     box = tag("div", *[tag("div", tag("b", fmt(v)), tag("small", k), cls="bp-fact")
                        for v, k in facts], cls="bp-keyfacts")
+    ar1 = (r["settings"].get("errors") == "ar1")
     parts = [box, tag("p", "Outcome ", tag("code", d["outcome"]), ", formula ",
-                      tag("code", d["formula"]), ".", family_report.overview_text(r))]
+                      tag("code", d["formula"]), ".", family_report.overview_text(r),
+                      " The Bayesian models allow AR(1) errors within units." if ar1 else "")]
+    parts += _interval_note(r)
     items = stored_problems(r)
     comp = r.get("comparison") or {}
     best = [row for row in comp.get("rows", []) if row.get("elpd_diff") == 0]
@@ -102,6 +107,24 @@ def _overview(r) -> Safe:
             join([join([tag("b", x["item"]), f" ({x['reason']})"]) for x in ooc["left_out"]],
                  "; "), "."]), "Out of core."))
     return join(parts)
+
+
+def _interval_note(r) -> list:
+    """The first screen's word on the width of the intervals (results.json
+    ``interval_check``): a caution naming the causes and remedies when a posterior SD is
+    well below the cluster-robust SE, else one line that none is."""
+    check = r.get("interval_check") or {}
+    if not check.get("rows"):
+        return []
+    more = join([" Each coefficient's ratio, the serial-correlation test and the lag-one "
+                 "check are under ", tag("a", "Correlation over time within units",
+                                         href="#serial"), "."])
+    if check.get("message"):
+        return [note("caution", join([check["message"], more]), "Intervals.")]
+    return [note("fine", join([
+        f"Every posterior SD is at least {check['threshold']:g} times the cluster-robust SE "
+        "of the matching reference fit, so the intervals are not narrower than the data "
+        "support by that rule of thumb.", more]), "Intervals.")]
 
 
 def _failed_note(f) -> Safe:
@@ -438,6 +461,100 @@ def _comparison(r) -> Safe:
     return join(out)
 
 
+def _serial(r) -> Safe:
+    """Correlation over time within units: the errors the models assume, the
+    serial-correlation test, the lag-one predictive check and the interval check."""
+    from ..analysis.serialcheck import STATISTIC
+
+    ar1 = r["settings"].get("errors") == "ar1"
+    out = [tag("p", "A unit's errors are often correlated over time: a good year is "
+               "followed by another. Models that take a unit's occasions as independent "
+               "then report intervals that are too narrow, because the data hold less "
+               "independent information than their number of rows suggests. "
+               + ("The Bayesian models here allow for it (AR(1) errors: errors one time unit "
+                  "apart correlate rho, d units apart rho^d)." if ar1 else
+                  "The Bayesian models here assume independent occasions (--errors ar1 "
+                  "allows AR(1) errors)."), cls="bp-lead")]
+    if ar1:
+        rows = []
+        for m in r["models"]:
+            rho = next((q for q in m.get("scale") or [] if q["name"] == "rho"), None)
+            lag = next((q for q in (m.get("variance_partition") or {}).get("summary") or []
+                        if q["quantity"] == LAG_ONE), None)
+            if rho is None:
+                continue
+            rows.append([m["title"], _est(rho["estimate"], rho["sd"]),
+                         esc(_interval(rho["lower"], rho["upper"], rho["sd"])),
+                         _est(lag["mean"], lag["sd"]) if lag else esc(num.MISSING)])
+        if rows:
+            out.append(table(["model", "rho", f"{_pct(r['settings']['interval'])} interval",
+                              "outcomes one step apart: correlation"], rows,
+                             caption="rho: the correlation of a unit's errors one time unit "
+                             "apart. The last column adds the unit intercept: the correlation "
+                             "of a unit's outcomes on two occasions one time unit apart, "
+                             "given the covariates (models with a unit variance)."))
+    test = next((t for t in r.get("tests") or [] if t["name"] == "serial_correlation"), None)
+    if test is not None:
+        p = test.get("reported_p_value")
+        kind = "info" if test.get("skipped") else ("caution" if p is not None and p < 0.05
+                                                   else "fine")
+        out.append(note(kind, join([
+            test["conclusion"][0].upper() + test["conclusion"][1:] + ". ",
+            "" if test.get("skipped") else
+            f"Wooldridge's test (2002, section 10.5.4): residuals of the first-differenced "
+            f"equation regressed on their own lag, with an SE clustered by unit; "
+            f"{test.get('distribution')}, p {num.p_value(p)}. With independent errors the "
+            "coefficient is -0.5; towards 0 and above, errors persist over time."]),
+            "Serial-correlation test."))
+    checks = [(m, s) for m in r["models"] for s in m.get("ppc") or []
+              if s["statistic"] == STATISTIC]
+    if checks:
+        rows = [[m["title"], *_nums(num.plain(s["observed"]), num.plain(s["replicated_mean"]),
+                                    num.probability(s["p_value"]))] for m, s in checks]
+        out.append(table(["model", "observed", "replicated (mean)",
+                          "P(replicated ≥ observed)"], rows,
+                         caption="Lag-one autocorrelation of within residuals (each unit's "
+                         "residuals minus their mean; pairs of occasions one time unit apart), "
+                         "observed against replicated errors drawn from each posterior. "
+                         "Removing unit means makes it slightly negative even for "
+                         "independent errors, so read the observed value against the "
+                         "replicated ones, not against 0. A tail probability near 0: the "
+                         "residuals persist more than the model's errors can. The statistic "
+                         "does not depend on the scale of the errors, so with independent "
+                         "errors every model's replicated values are alike."))
+        out.append(figure(figures.serial_figure(r), "lag-one autocorrelation check",
+                          "Replicated lag-one autocorrelations (histogram) and the observed "
+                          "one (clay line), per model.", "fig-serial"))
+        low = [m["title"] for m, s in checks if s["p_value"] < 0.025]
+        if low:
+            out.append(note("caution", f"{', '.join(low)}: the within residuals are more "
+                            "correlated over time than these models' errors allow"
+                            + ("." if ar1 else "; refit with --errors ar1."),
+                            "Lag-one check."))
+    check = r.get("interval_check") or {}
+    if check.get("rows"):
+        rows = [[f"{label(x['term'])} · {x['title']}",
+                 *_nums(num.plain(x["posterior_sd"]), num.plain(x["reference_se"]),
+                        num.plain(x["ratio"])),
+                 _status(not x["narrow"], "too narrow")] for x in check["rows"]]
+        cov = "CR2" if check.get("cov") == "cr2" else "CR1"
+        out.append(table(["coefficient · model", "posterior SD",
+                          f"cluster-robust SE ({cov})", "ratio", "status"], rows,
+                         numeric=[1, 2, 3],
+                         caption="Each Bayesian model's posterior SD beside the SE of its "
+                         "matching reference fit clustered by unit, which allows any "
+                         "correlation within a unit. A ratio below "
+                         f"{check['threshold']:g} (a rule of thumb: the robust variance more "
+                         f"than {1 / check['threshold'] ** 2:.0f} times the model's) is "
+                         "flagged."))
+        if check.get("message"):
+            out.append(note("caution", check["message"], "Intervals."))
+    if len(out) == 1:
+        out.append(note("info", "No check of correlation over time was run (it needs the "
+                        "rows and a numeric time column)."))
+    return join(out)
+
+
 def _status(ok: bool, warn_text="check") -> Safe:
     return tag("span", "fine" if ok else warn_text, cls=f"bp-status {'ok' if ok else 'warn'}")
 
@@ -473,7 +590,7 @@ def _diagnostics(r) -> Safe:
 
 def _checks(r) -> Safe:
     uri = figures.ppc_figure(r)
-    if not uri:
+    if not any(m.get("ppc") for m in r["models"]):
         return note("info", "No posterior predictive draws were made.")
     rows = []
     for m in r["models"]:
@@ -520,6 +637,7 @@ def _rerun(r) -> Safe:
 
 _BUILDERS = {
     "overview": _overview, "data": _data, "models": _models, "coefficients": _coefficients,
+    "serial": _serial,
     "effects": lambda r: family_report.effects(r),
     "partition": _partition, "contrasts": _contrasts, "comparison": _comparison,
     "diagnostics": _diagnostics, "checks": _checks,

@@ -23,7 +23,7 @@ __all__ = [
 ]
 
 SCHEMA_NAME = "bayespanel-results"
-SCHEMA_VERSION = "1.2.0"
+SCHEMA_VERSION = "1.3.0"
 
 #: keys renamed by a minor version (1.2: one key per quantity), as (path, old, new) where
 #: path reaches the records under ``models[]`` that hold the key

@@ -22,6 +22,7 @@ LABELS = {
     "occasion SD": "occasion SD",
     "ICC": "ICC",
     "theta": "quasi-demeaning share",
+    "rho": "error correlation one time unit apart (rho)",
 }
 
 
