@@ -18,13 +18,20 @@ from bayespanel.app.cli import build_parser, main
 FORMULA = "lwage ~ exper + expersq + union + married + educ + black"
 
 
+# These runs check estimates, tables, saved posteriors and reruns, not the LOO table: the
+# reference fits are scored by 2-fold CV (a few refits) instead of the default exact
+# leave-one-out of all 4,360 rows (thousands of refits, about half a minute per run),
+# which tests/test_comparison_story.py checks from the command line on this panel.
+FOLDS = ["--reference-folds", "2"]
+
+
 @pytest.fixture(scope="module")
 def ref_run(wage_csv, tmp_path_factory):
     out = tmp_path_factory.mktemp("wage_ref")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         rc = main(["fit", str(wage_csv), "--unit", "nr", "--time", "year", "--formula", FORMULA,
-                   "--models", "none", "--out", str(out), "--quiet"])
+                   "--models", "none", *FOLDS, "--out", str(out), "--quiet"])
     assert rc == 0
     return out, json.loads((out / "results.json").read_text("utf-8"))
 
@@ -64,6 +71,7 @@ def test_analysis_file_repeats_the_run(ref_run, tmp_path, wage_panel):
     out, res = ref_run
     toml = (out / "analysis.toml").read_text()
     assert 'formula = "lwage ~ exper' in toml and "sha256 = " in toml
+    assert "reference_folds = 2" in toml  # the rerun scores its reference fits alike
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         assert main(["fit", "--config", str(out / "analysis.toml"), "--out", str(tmp_path),
@@ -90,8 +98,9 @@ def test_bayesian_fit_writes_a_posterior_that_reloads(wage_csv, wage_panel, tmp_
         warnings.simplefilter("ignore")
         rc = main(["fit", str(wage_csv), "--unit", "nr", "--time", "year", "--formula",
                    "lwage ~ exper + union + married", "--models", "fixed_effects",
-                   "--reference", "within", "--draws", "150", "--tune", "150", "--chains", "2",
-                   "--seed", "7", "--ppc-draws", "50", "--out", str(tmp_path), "--quiet"])
+                   "--reference", "within", *FOLDS, "--draws", "150", "--tune", "150",
+                   "--chains", "2", "--seed", "7", "--ppc-draws", "50", "--out", str(tmp_path),
+                   "--quiet"])
     assert rc == 0
     res = json.loads((tmp_path / "results.json").read_text("utf-8"))
     m = res["models"][0]

@@ -1,7 +1,10 @@
-"""Command-line habits (issue 15, item 6), each checked in a subprocess as a user meets it:
-the version, help that states the defaults a run uses, priors checked before any work, a
-delimiter option, docs/cli.md in step with the parser, progress lines without long
-silences, and warnings on one line each.
+"""Command-line habits (issue 15, item 6), each checked as a user meets it: the version,
+help that states the defaults a run uses, priors checked before any work, a delimiter
+option, docs/cli.md in step with the parser, progress lines without long silences, and
+warnings on one line each. The version, the progress lines and the warnings are read from
+a real ``python -m bayespanel`` subprocess (what a fresh interpreter prints and when);
+help, priors and the delimiter from ``bayespanel.app.cli.main``'s exit code and output in
+this process (tests/conftest.py ``run_main``), without an interpreter start-up each.
 
 Outside sources, named beside each check: the Grunfeld investment panel shipped by
 statsmodels.datasets and the wage panel of Vella and Verbeek (1998) shipped by
@@ -19,6 +22,7 @@ import pytest
 from bayespanel.app.cli import build_parser, format_warning
 
 sys.path.insert(0, str(Path(__file__).parent))
+from conftest import run_main  # noqa: E402
 from test_cli_public import run_cli  # noqa: E402
 
 DOCS = Path(__file__).resolve().parents[1] / "docs" / "cli.md"
@@ -69,18 +73,18 @@ def test_version_and_help_state_the_real_defaults():
     p = run_cli("--version")
     # outside check: the installed package's metadata
     assert p.returncode == 0 and p.stdout.strip() == f"bayespanel {version('bayespanel')}"
-    fit = run_cli("fit", "--help").stdout
+    fit = run_main("fit", "--help").stdout
     text = " ".join(fit.split())
     # said "default None" before (the options stay None so analysis files are not overridden)
     assert "draws per chain (default 1000)" in text
     assert "discarded (default 1000)" in text and "chains (default 4)" in text
     for verb in _verbs()[1]:
-        assert "default None" not in " ".join(run_cli(verb, "--help").stdout.split()), verb
+        assert "default None" not in " ".join(run_main(verb, "--help").stdout.split()), verb
 
 
 def test_a_mistyped_prior_family_is_refused_before_any_work(grunfeld_csv, tmp_path):
-    p = run_cli("fit", grunfeld_csv, *GRUNFELD, "--prior", "sigma_unit=gama2",
-                "--out", tmp_path / "o")
+    p = run_main("fit", grunfeld_csv, *GRUNFELD, "--prior", "sigma_unit=gama2",
+                 "--out", tmp_path / "o")
     assert p.returncode == 2
     assert "prior family='gama2' is not valid" in p.stderr
     # before: caught only after the first model had sampled
@@ -91,17 +95,17 @@ def test_a_mistyped_prior_family_is_refused_before_any_work(grunfeld_csv, tmp_pa
 def test_delimiter_option(grunfeld_csv, grunfeld, tmp_path):
     semi = tmp_path / "grunfeld_semicolon.csv"
     grunfeld.to_csv(semi, index=False, sep=";")
-    p = run_cli("describe", semi, "--unit", "firm", "--time", "year")
+    p = run_main("describe", semi, "--unit", "firm", "--time", "year")
     assert p.returncode == 2 and "(--delimiter ';')" in p.stderr  # the hint names the option
-    got = run_cli("describe", semi, "--unit", "firm", "--time", "year", "--delimiter", ";")
-    want = run_cli("describe", grunfeld_csv, "--unit", "firm", "--time", "year")
+    got = run_main("describe", semi, "--unit", "firm", "--time", "year", "--delimiter", ";")
+    want = run_main("describe", grunfeld_csv, "--unit", "firm", "--time", "year")
     assert got.returncode == 0 and got.stdout == want.stdout
     out = tmp_path / "run"
-    p = run_cli("fit", semi, *GRUNFELD, "--delimiter", "semicolon", "--models", "none",
-                "--reference", "within", "--out", out)
+    p = run_main("fit", semi, *GRUNFELD, "--delimiter", "semicolon", "--models", "none",
+                 "--reference", "within", "--out", out)
     assert p.returncode == 0, p.stderr
     assert 'delimiter = ";"' in (out / "analysis.toml").read_text("utf-8")
-    again = run_cli("fit", "--config", out / "analysis.toml", "--out", tmp_path / "again")
+    again = run_main("fit", "--config", out / "analysis.toml", "--out", tmp_path / "again")
     assert again.returncode == 0, again.stderr
     # outside check: the within fit on the semicolon file is linearmodels' PanelOLS
     from linearmodels.panel import PanelOLS

@@ -1,7 +1,10 @@
-"""The command line on public panels, as a researcher runs it (issue 15), each path in a
-subprocess: occasion effects with the within-between and Mundlak models, a failed model
-that does not lose the others, specification tests that do not apply, transformed
-outcomes, and the command line's habits (version, help, delimiter, progress, warnings).
+"""The command line on public panels, as a researcher runs it (issue 15), each path through
+``bayespanel.app.cli.main`` with its exit code and printed output (in this process, see
+tests/conftest.py ``run_main``; ``run_cli`` below is the real subprocess that
+tests/test_cli_habits.py uses): occasion effects with the within-between and Mundlak
+models, a failed model that does not lose the others, specification tests that do not
+apply, transformed outcomes, and the command line's habits (version, help, delimiter,
+progress, warnings).
 
 Outside sources, named beside each check:
 
@@ -27,11 +30,9 @@ from test_public_panels import MUNNELL, SLOPES, munnell_frame  # noqa: E402
 SMALL = ["--draws", "100", "--tune", "150", "--chains", "2"]
 
 
-def run_cli(*args, code=None, env=None):
-    """``python -m bayespanel ARGS`` in a subprocess (``code``: Python run before main)."""
-    cmd = [sys.executable, "-m", "bayespanel", *map(str, args)] if code is None else [
-        sys.executable, "-c", code + "\nfrom bayespanel.app.cli import main\n"
-        "sys.exit(main(sys.argv[1:]))", *map(str, args)]
+def run_cli(*args, env=None):
+    """``python -m bayespanel ARGS`` in a subprocess."""
+    cmd = [sys.executable, "-m", "bayespanel", *map(str, args)]
     return subprocess.run(cmd, capture_output=True, text=True,
                           env={**os.environ, **(env or {})}, timeout=900)
 
@@ -51,12 +52,12 @@ def grunfeld_csv(tmp_path_factory, grunfeld):
 
 
 @pytest.fixture(scope="module")
-def munnell_run(munnell_csv, tmp_path_factory):
+def munnell_run(munnell_csv, tmp_path_factory, cli_in_process):
     out = tmp_path_factory.mktemp("munnell_run")
-    p = run_cli("fit", munnell_csv, "--unit", "state", "--time", "year", "--formula", MUNNELL,
-                "--occasion-effects", "--models", "within_between,correlated_effects",
-                "--reference", "within_between,mundlak", "--level", "unit", *SMALL,
-                "--out", out)
+    p = cli_in_process("fit", munnell_csv, "--unit", "state", "--time", "year", "--formula",
+                       MUNNELL, "--occasion-effects", "--models",
+                       "within_between,correlated_effects", "--reference",
+                       "within_between,mundlak", "--level", "unit", *SMALL, "--out", out)
     return p, out, json.loads((out / "results.json").read_text("utf-8"))
 
 
@@ -91,15 +92,18 @@ def test_occasion_effects_with_hybrid_and_mundlak_from_the_command_line(munnell_
     assert "Mundlak unit-mean terms (cluster-robust Wald): statistic" in p.stdout
 
 
-def test_a_failed_model_does_not_lose_the_others(grunfeld_csv, tmp_path):
+def test_a_failed_model_does_not_lose_the_others(grunfeld_csv, tmp_path, cli_in_process,
+                                                  monkeypatch):
     # a fault injected into one builder's sampler (the run must go on without it)
-    inject = ("import sys, bayespanel.bayes as m\n"
-              "def boom(self, *a, **k):\n"
-              "    raise FloatingPointError('log density is not finite at the start')\n"
-              "m.WithinBetween.sample = boom")
-    p = run_cli("fit", grunfeld_csv, "--unit", "firm", "--time", "year", "--formula",
-                "invest ~ value + capital", "--models", "random_intercept,within_between",
-                "--reference", "within", *SMALL, "--out", tmp_path, code=inject)
+    import bayespanel.bayes as m
+
+    def boom(self, *a, **k):
+        raise FloatingPointError("log density is not finite at the start")
+
+    monkeypatch.setattr(m.WithinBetween, "sample", boom)
+    p = cli_in_process("fit", grunfeld_csv, "--unit", "firm", "--time", "year", "--formula",
+                       "invest ~ value + capital", "--models", "random_intercept,within_between",
+                       "--reference", "within", *SMALL, "--out", tmp_path)
     assert p.returncode == 1, p.stderr  # docs/cli.md: 1 when a fit failed
     res = json.loads((tmp_path / "results.json").read_text("utf-8"))
     assert res["failed"] == [{"name": "within_between", "title": "Within-between (hybrid)",
@@ -122,11 +126,12 @@ def test_a_failed_model_does_not_lose_the_others(grunfeld_csv, tmp_path):
     assert "Failed." in html and "log density is not finite at the start" in html
 
 
-def test_specification_tests_that_do_not_apply_are_skipped(wage_csv, tmp_path):
+def test_specification_tests_that_do_not_apply_are_skipped(wage_csv, tmp_path,
+                                                            cli_in_process):
     # years since 1980: the same schedule for every unit, so no between variation
-    p = run_cli("fit", wage_csv, "--unit", "nr", "--time", "year", "--formula",
-                "lwage ~ I(year - 1980)", "--reference", "none", "--models",
-                "random_intercept", *SMALL, "--level", "unit", "--out", tmp_path)
+    p = cli_in_process("fit", wage_csv, "--unit", "nr", "--time", "year", "--formula",
+                       "lwage ~ I(year - 1980)", "--reference", "none", "--models",
+                       "random_intercept", *SMALL, "--level", "unit", "--out", tmp_path)
     # refused before with "error: the fit has no unit-mean terms to test"
     assert p.returncode == 0, p.stderr
     res = json.loads((tmp_path / "results.json").read_text("utf-8"))
@@ -149,21 +154,23 @@ def test_specification_tests_that_do_not_apply_are_skipped(wage_csv, tmp_path):
 
 
 def test_transformed_outcome_from_the_command_line_and_the_analysis_file(munnell_csv,
-                                                                          tmp_path):
+                                                                          tmp_path,
+                                                                          cli_in_process):
     import statsmodels.formula.api as smf
 
     formula = "log(gsp) ~ log(pcap) + log(pc) + log(emp) + unemp"
     first = tmp_path / "first"
-    p = run_cli("fit", munnell_csv, "--unit", "state", "--time", "year", "--formula", formula,
-                "--models", "random_intercept", "--reference", "pooled", "--level", "unit",
-                *SMALL, "--out", first)
+    p = cli_in_process("fit", munnell_csv, "--unit", "state", "--time", "year", "--formula",
+                       formula, "--models", "random_intercept", "--reference", "pooled",
+                       "--level", "unit", *SMALL, "--out", first)
     assert p.returncode == 0, p.stderr  # refused before: "must be a single column"
     res = json.loads((first / "results.json").read_text("utf-8"))
     assert res["data"]["outcome"] == "log(gsp)" and res["title"] == "Panel analysis of log(gsp)"
     assert "Outcome <code>log(gsp)</code>" in (first / "report.html").read_text("utf-8")
     # the analysis file route repeats the formula as written
     again = tmp_path / "again"
-    p2 = run_cli("fit", "--config", first / "analysis.toml", "--models", "none", "--out", again)
+    p2 = cli_in_process("fit", "--config", first / "analysis.toml", "--models", "none",
+                        "--out", again)
     assert p2.returncode == 0, p2.stderr
     res2 = json.loads((again / "results.json").read_text("utf-8"))
     assert res2["reference"] == res["reference"]

@@ -1,8 +1,10 @@
 """The compiled log density kept on disk across processes is never reused for another
 graph, and a reused one reads the current data.
 
-Each run is a fresh interpreter that fits RandomIntercept to the wage panel of Vella and
-Verbeek (1998, linearmodels.datasets) with the compile cache in a private folder:
+Each run fits RandomIntercept to the wage panel of Vella and Verbeek (1998,
+linearmodels.datasets) with the compile cache in a private folder; run 1 is one fresh
+interpreter, runs 2 to 5 another, so every entry they find was written by another
+process (and each run builds its model anew, so it can only find an entry on disk):
 
 1. a model: compiled and stored (a miss);
 2. the same model again: found (a hit), and the same draws bit for bit as run 1;
@@ -26,38 +28,44 @@ import numpy as np
 import pytest
 
 SCRIPT = textwrap.dedent("""
-    import json, sys, warnings
+    import json, os, sys, warnings
     import numpy as np
     import bayespanel as bp
     from linearmodels.datasets import wage_panel
-    formula, priors = sys.argv[1], json.loads(sys.argv[2])
     warnings.simplefilter("ignore")
     panel = bp.Panel(wage_panel.load(), "nr", "year")
-    m = bp.models.RandomIntercept(panel, formula, priors=priors or None)
-    post = m.sample(draws=100, tune=100, chains=2, seed=5, progress=False, sampler="pymc",
-                    cores=1)
-    print("RESULT " + json.dumps({
-        "cache": post.sampling["compile_cache"], "coef": post.coef.to_dict(),
-        "draws": post.draws("coef").ravel().tolist()}))
+    for formula, priors in json.loads(sys.argv[1]):
+        m = bp.models.RandomIntercept(panel, formula, priors=priors or None)
+        post = m.sample(draws=100, tune=100, chains=2, seed=5, progress=False,
+                        sampler="pymc", cores=1)
+        entries = [f for f in os.listdir(os.environ["BAYESPANEL_COMPILE_CACHE"])
+                   if f.endswith(".pkl")]
+        print("RESULT " + json.dumps({
+            "cache": post.sampling["compile_cache"], "coef": post.coef.to_dict(),
+            "draws": post.draws("coef").ravel().tolist(), "entries": len(entries)}),
+            flush=True)
 """)
 
 
-def _run(cache, formula, priors=None):
+def _run(cache, *jobs):
+    """One fresh interpreter fitting each ``(formula, priors)`` of ``jobs`` in turn."""
     env = dict(os.environ, BAYESPANEL_COMPILE_CACHE=str(cache))
-    res = subprocess.run([sys.executable, "-c", SCRIPT, formula, json.dumps(priors or {})],
+    res = subprocess.run([sys.executable, "-c", SCRIPT,
+                          json.dumps([[f, p or {}] for f, p in jobs])],
                          capture_output=True, text=True, timeout=900, env=env)
     assert res.returncode == 0, res.stderr[-3000:]
-    line = [x for x in res.stdout.splitlines() if x.startswith("RESULT ")][-1]
-    return json.loads(line[7:])
+    out = [json.loads(x[7:]) for x in res.stdout.splitlines() if x.startswith("RESULT ")]
+    assert len(out) == len(jobs), res.stdout[-3000:]
+    return out
 
 
-@pytest.mark.slow  # five fresh interpreters, each importing PyMC and compiling
+@pytest.mark.slow  # two fresh interpreters importing PyMC, five compiled or found models
 def test_cache_entries_follow_the_graph_and_the_data(tmp_path):
     base = "lwage ~ exper + union"
-    first = _run(tmp_path, base)
+    (first,) = _run(tmp_path, (base, None))
     assert first["cache"] == "miss"
     entries = list(tmp_path.glob("*.pkl"))
-    assert len(entries) == 1
+    assert len(entries) == 1 and first["entries"] == 1
     # the entry holds no data: not the model's cross-products (nor any statistic)
     from linearmodels.datasets import wage_panel
 
@@ -69,16 +77,18 @@ def test_cache_entries_follow_the_graph_and_the_data(tmp_path):
         value = np.asarray(value, dtype=float)
         if value.size > 1 and np.any(value != 0):
             assert value.tobytes() not in stored, name
-    again = _run(tmp_path, base)
+    again, tight, other, wider = _run(
+        tmp_path, (base, None),
+        (base, {"union": {"family": "normal", "mu": 3.0, "sigma": 0.001}}),
+        (base, {"union": "student_t"}), (base + " + married", None))
     assert again["cache"] == "hit"
     assert again["draws"] == first["draws"]  # the stored function computes the same numbers
-    tight = _run(tmp_path, base, {"union": {"family": "normal", "mu": 3.0, "sigma": 0.001}})
     assert tight["cache"] == "hit"  # prior parameters are data of the same graph ...
     assert abs(first["coef"]["union"] - 3.0) > 2.0
     assert tight["coef"]["union"] == pytest.approx(3.0, abs=0.01)  # ... and are read anew
-    other = _run(tmp_path, base, {"union": "student_t"})
+    assert tight["entries"] == 1
     assert other["cache"] == "miss"
-    assert len(list(tmp_path.glob("*.pkl"))) == 2
-    wider = _run(tmp_path, base + " + married")
+    assert other["entries"] == 2
     assert wider["cache"] == "miss" and "married" in wider["coef"]
+    assert wider["entries"] == 3
     assert len(list(tmp_path.glob("*.pkl"))) == 3
