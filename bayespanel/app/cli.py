@@ -199,6 +199,7 @@ def _settings_from_args(args):
         "random_slopes": _names(args.random_slopes),
         "centred": True if args.centred_effects else None,
         "errors": args.errors,
+        "initial_conditions": False if args.no_initial_conditions else None,
     }
     if args.config:
         s = load_settings(args.config, **over)
@@ -715,6 +716,9 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--models", help=_models_help())
     g.add_argument("--occasion-effects", action="store_true",
                    help="add one indicator per occasion to every model")
+    g.add_argument("--no-initial-conditions", action="store_true",
+                   help="with the lagged outcome among the covariates (lag(y)), do not model "
+                        "the unit effect given the first outcome (docs/serial-correlation.md)")
     g.add_argument("--out-of-core", action="store_true", help=_OOC_HELP)
     g.add_argument("--errors", choices=["iid", "ar1"], default=None,
                    help="occasion-level errors of the Gaussian models: iid (default: "

@@ -341,7 +341,8 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
         warnings.simplefilter("ignore")  # dropped rows were reported by the data stage
         priors = _model_priors(settings, cls, labels)
         m = cls(panel, settings.formula, priors=priors, occasion_effects=settings.occasion_effects,
-                **latent_options(settings))
+                **latent_options(settings),
+                **({} if settings.initial_conditions else {"initial_conditions": False}))
     fam = _family(settings)
     say(f"sampling {name} ({fam.name}"
         + (f", random slopes {', '.join(settings.random_slopes)}" if settings.random_slopes

@@ -92,6 +92,9 @@ class Settings:
         Probability of every interval reported.
     occasion_effects : bool
         One indicator per occasion in every model.
+    initial_conditions : bool
+        With the lagged outcome among the covariates (``lag(y)``), model the unit effect
+        given the first outcome (Wooldridge 2005; bayespanel.data.initial). Default True.
     ppc_draws : int
         Posterior draws used for the predictive checks.
     reference_folds : int, optional
@@ -157,6 +160,7 @@ class Settings:
     rope: float | None = None
     interval: float = DEFAULT_INTERVAL
     occasion_effects: bool = False
+    initial_conditions: bool = True
     ppc_draws: int = 200
     reference_folds: int | None = None
     refit_high_k: bool = False
@@ -295,6 +299,9 @@ class Settings:
         if not isinstance(self.occasion_effects, bool):
             raise SpecificationError(f"occasion_effects={self.occasion_effects!r} must be "
                                      "true or false")
+        if not isinstance(self.initial_conditions, bool):
+            raise SpecificationError(f"initial_conditions={self.initial_conditions!r} must be "
+                                     "true or false")
         self._check_family()
         self._check_errors()
         from ..bayes.latent import EXTRA_PRIOR_KEYS
@@ -394,6 +401,8 @@ class Settings:
         d = asdict(self)
         for k in ("models", "reference", "random_slopes"):
             d[k] = list(getattr(self, k))
+        if self.initial_conditions:  # the default: runs without it keep their settings
+            del d["initial_conditions"]
         return d
 
     def to_toml(self) -> str:
@@ -422,6 +431,8 @@ class Settings:
         if self.centred:
             lines.append("centred = true")
         lines.append(f"errors = {_toml_value(self.errors)}")
+        if not self.initial_conditions:
+            lines.append("initial_conditions = false")
         lines += ["", "[priors]"]
         lines += [f"{_toml_key(k)} = {_toml_value(v)}" for k, v in self.priors.items()]
         lines += ["", "[sampling]"] + [f"{k} = {_toml_value(getattr(self, k))}" for k in
@@ -449,7 +460,8 @@ _TOML_LAYOUT = {  # section -> {key in file: Settings field}
              "out_of_core": "out_of_core", "delimiter": "delimiter"},
     "model": {"formula": "formula", "models": "models", "occasion_effects": "occasion_effects",
               "family": "family", "trials": "trials", "exposure": "exposure",
-              "random_slopes": "random_slopes", "centred": "centred", "errors": "errors"},
+              "random_slopes": "random_slopes", "centred": "centred", "errors": "errors",
+              "initial_conditions": "initial_conditions"},
     "sampling": {k: k for k in ("draws", "tune", "chains", "seed", "sampler", "ppc_draws")},
     "reference": {"fits": "reference", "cov": "cov", "method": "re_method"},
     "comparison": {"level": "level", "rope": "rope", "reference_folds": "reference_folds",
@@ -726,7 +738,8 @@ def _data_stage(settings, df, say):
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")  # occasions read as dates are reported too
         panel = Panel(df, unit=settings.unit, time=settings.time)
-        design = panel.design(settings.formula, occasion_effects=settings.occasion_effects)
+        design = panel.design(settings.formula, occasion_effects=settings.occasion_effects,
+                              initial_conditions=settings.initial_conditions)
     return panel, design, _data_record(settings, panel, design, source, len(df), say), \
         [str(w.message) for w in caught]
 
@@ -750,8 +763,10 @@ def _data_stage_large(settings, say):
 def _data_record(settings, panel, design, source, n_read, say):
     """The ``data`` part of results.json (the describe pass, on the formula's columns)."""
     from ..data.formula import screen
+    from ..data.lags import without_lags
 
-    used = [c for c in screen(settings.formula, panel.columns).columns
+    formula, lagged = without_lags(settings.formula, panel.columns)
+    used = [c for c in dict.fromkeys(list(screen(formula, panel.columns).columns) + lagged)
             if c not in (panel.unit, panel.time) and c in panel.numeric_columns()]
     if not design.has_rows:
         say(f"pass: describe ({len(used)} columns)")
@@ -766,7 +781,22 @@ def _data_record(settings, panel, design, source, n_read, say):
                    "dropped_by_column": dict(design.dropped_by_column)},
         "terms": [{"term": t, "varies_within": bool(design.varies_within[t])}
                   for t in design.terms],
+        **_dynamic_record(design),
     }
+
+
+def _dynamic_record(design) -> dict:
+    """``lags`` (rows left without a lag, by reason) and ``initial_conditions`` (the
+    columns of the initial-conditions model, or that it was switched off) for a formula
+    with ``lag(...)``; nothing otherwise, so other runs keep their record."""
+    lags = getattr(design, "lags", None)
+    if lags is None:
+        return {}
+    out = {"lags": lags.to_record()}
+    if lags.has_lagged_outcome:
+        ic = getattr(design, "initial", None)
+        out["initial_conditions"] = ic.to_record() if ic is not None else {"applied": False}
+    return out
 
 
 @contextmanager
@@ -1461,6 +1491,28 @@ def _left_out(settings, panel, design) -> dict:
             "loo_observations": _loo_observations(settings, design), "left_out": items}
 
 
+def _dynamic_notes(settings, design) -> list[str]:
+    """What a lagged outcome means for this run's models (bayespanel.data.initial.notes):
+    the initial-conditions assumption and why, the fixed-effects and pooled biases, and the
+    moment estimator of the reference's variance components."""
+    from ..data.initial import notes as initial_notes
+
+    said = initial_notes(design, settings.models)
+    if not said:
+        return []
+    if getattr(design, "initial", None) is None:
+        said = said[1:]  # the design's own warning said it (the data stage's notes)
+    components = [n for n in settings.reference if kinds.reference(n).variance_components]
+    if components and settings.re_method == "swamy-arora":
+        said.append(
+            "The random-effects reference fits estimate the variance components by Swamy-"
+            "Arora moments, which take the within residuals; a lagged outcome biases those "
+            "(Nickell 1981), so the unit variance may come out at zero and the fit fall back "
+            "to pooled least squares: with a lagged outcome prefer method = 'ml' or 'reml' "
+            "(--method).")
+    return said
+
+
 def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progress_bars):
     """Reference fits, tests, Bayesian fits and the comparison -> the results dict."""
     from ..report.problems import problems
@@ -1491,6 +1543,7 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
     # within units) is refused as bad input here, before anything is sampled
     labels = {name: design.labels(kinds.model(name).columns) for name in settings.models}
     _check_prior_keys(settings, labels)
+    notes = notes + _dynamic_notes(settings, design)
     for name in settings.models:
         if kinds.model(name).columns == "within" and design.time_constant:
             left = ", ".join(map(repr, design.time_constant))

@@ -29,7 +29,7 @@ import pandas as pd
 from ..core.errors import DataHandlingWarning, FormulaError, PanelDataError
 
 __all__ = ["LagTerm", "LagReport", "Lagged", "find", "expand", "lag_values", "has_lag",
-           "lag_label"]
+           "lag_label", "without_lags"]
 
 _CALL = re.compile(r"(?<![\w.`])lag\s*\(")
 _NAME = re.compile(r"[A-Za-z_]\w*\Z")
@@ -216,6 +216,18 @@ def find(formula: str, columns) -> list[tuple[int, int, str, int]]:
             k = int(text)
         out.append((m.start(), end + 1, name, k))
     return out
+
+
+def without_lags(formula: str, columns) -> tuple[str, list[str]]:
+    """``formula`` with each ``lag(...)`` replaced by ``1``, and the columns the lags read:
+    the columns a formula uses, for code that screens it without making the lags."""
+    if not has_lag(formula):
+        return formula, []
+    calls = find(formula, columns)
+    text = formula
+    for start, end, _, _ in reversed(calls):
+        text = text[:start] + "1" + text[end:]
+    return text, list(dict.fromkeys(name for _, _, name, _ in calls))
 
 
 # ----------------------------------------------------------------------------- values
