@@ -173,3 +173,22 @@ def test_ar1_errors_with_a_lagged_outcome_are_flagged():
     d = _quiet(bp.Panel(df, unit="unit", time="t").design, "y ~ lag(y) + x")
     with pytest.warns(DataHandlingWarning, match="errors='ar1' with a lagged outcome"):
         bp.RandomIntercept.from_design(d, errors="ar1")
+
+
+def test_reference_variance_partition_on_the_initial_conditions_design():
+    # every kind with unit effects partitions its fit on this design (the within-between
+    # columns keep the lagged outcome whole); the ICC is sigma_unit^2 / (sigma_unit^2 +
+    # sigma_obs^2) of the fit (its definition), and the random-intercept and
+    # correlated-effects forms, the same model here, partition alike
+    from bayespanel.analysis.partition import reference_partition
+
+    df = simulate(n_units=40, seed=4)
+    d = _quiet(bp.Panel(df, unit="unit", time="t").design, "y ~ lag(y) + x")
+    parts = {}
+    for kind in ("random", "mundlak", "within_between"):
+        ref = bp.reference.fit_design(d, kind, method="ml")
+        parts[kind] = reference_partition(ref)
+        icc = ref.sigma_unit ** 2 / (ref.sigma_unit ** 2 + ref.sigma_obs ** 2)
+        assert float(parts[kind]["ICC"][0]) == pytest.approx(icc, rel=1e-9)
+    for key, value in parts["random"].items():
+        np.testing.assert_allclose(parts["mundlak"][key], value, rtol=1e-8)

@@ -219,6 +219,11 @@ def reference_partition(ref) -> dict:
     d = ref.design
     args = (d.terms, d.time_varying, kind, labels, coef.to_numpy()[None, :],
             np.array([ref.sigma_obs]), tau)
+    if d.has_rows and getattr(d, "initial", None) is not None:
+        # a lagged outcome's initial-conditions columns (bayespanel.data.initial): the
+        # covariates are read back from the fit's own columns, as for a posterior
+        X, terms, tv = design_columns(d.matrices(kind)[0], d.unit_codes, labels, kind)
+        return partition_draws(X, d.unit_codes, terms, tv, *args[2:])
     if d.has_rows:
         return partition_draws(d.X, d.unit_codes, *args)
     return partition_from_stats(d.design_suffstats(), *args)

@@ -1495,11 +1495,13 @@ def _dynamic_notes(settings, design) -> list[str]:
     """What a lagged outcome means for this run's models (bayespanel.data.initial.notes):
     the initial-conditions assumption and why, the fixed-effects and pooled biases, and the
     moment estimator of the reference's variance components."""
-    from ..data.initial import notes as initial_notes
+    from ..data.initial import WITH_AR1, notes as initial_notes
 
     said = initial_notes(design, settings.models)
     if not said:
         return []
+    if getattr(settings, "errors", "iid") == "ar1":
+        said.append(WITH_AR1)
     if getattr(design, "initial", None) is None:
         said = said[1:]  # the design's own warning said it (the data stage's notes)
     components = [n for n in settings.reference if kinds.reference(n).variance_components]
