@@ -40,7 +40,6 @@ import numpy as np
 import pandas as pd
 
 from .. import kinds
-from ..core.ar1 import refuse_pending
 from ..core.errors import EstimationError, SpecificationError
 from ..data.resultshape import DEFAULT_INTERVAL, check_prob, leading_columns
 from .loo import LOOResult, check_level, loo, outcome_measure, reference_cv
@@ -216,7 +215,9 @@ def _signature(obj):
         fd = from_posterior(obj)
         lspec = getattr(obj, "lspec", None)
         slopes = tuple(getattr(lspec, "slope_labels", ()) or ())
-        key = ("posterior", fd.unit_effects, fd.family, slopes)
+        # independent and AR(1) errors are different likelihoods on the same columns
+        errors = "ar1" if fd.rho is not None else "iid"
+        key = ("posterior", fd.unit_effects, fd.family, slopes, errors)
         return key, fd.M
     if _is_reference(obj):
         from .loo.reference_cv import reference_columns
@@ -247,7 +248,8 @@ def equivalence_classes(models: dict) -> list:
     """Groups of models that are reparametrisations of each other.
 
     Two models are equivalent when they have the same likelihood family, the same kind of
-    unit effects (none, random, fixed) and, for posteriors, the same random slopes, or for
+    unit effects (none, random, fixed) and, for posteriors, the same random slopes and
+    occasion-level errors (independent or AR(1)), or for
     reference fits the same estimator family and variance-component method, and their
     columns span the same space on the same rows. The within-between and Mundlak models
     always are (``x = x_within + x_between``); the random intercept joins them when no
@@ -386,8 +388,6 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
     check_level(level)
     if not isinstance(models, dict) or not models:
         raise SpecificationError("models must be a non-empty dict of name -> fitted model")
-    for name, obj in models.items():
-        refuse_pending(getattr(obj, "spec", None), f"compare (model {name!r})")
     if any(_sub_sampled(obj) for obj in models.values()):
         return _compare_subsampled(models, level, seed, dict(loo_kwargs or {}))
     _check_same_question(models)

@@ -46,6 +46,7 @@ from scipy import stats as _st
 
 from .. import kinds
 from ..core import suffstats as _ss
+from ..core.ar1 import refuse_pending
 from .contrasts import contrast_rows
 from ..core.errors import EstimationError, SamplingWarning, SpecificationError, choices_error
 from ..data.resultshape import DEFAULT_INTERVAL
@@ -686,6 +687,10 @@ def design_check(source, model="RandomIntercept", formula=None, *, truth="refere
         tune = check_int("tune", tune, 1)
         chains = check_int("chains", chains, 1)
     m = _make_model(source, model, formula, priors, occasion_effects)
+    # the replicates are draws of the iid random-intercept model: not a check of an
+    # AR(1) model's intervals (its own coverage study is tests/test_ar1_coverage.py)
+    refuse_pending(getattr(m, "errors", "iid"), "design_check (its replicates simulate "
+                   "independent errors)")
     M, _, codes = m.rows
     M = np.asarray(M, dtype=float)
     codes = np.asarray(codes, dtype=np.int64)

@@ -37,7 +37,6 @@ import numpy as np
 import pandas as pd
 from scipy import stats as _st
 
-from ..core.ar1 import refuse_pending
 from .contrasts import contrast_rows
 from ..core.errors import SpecificationError, choices_error
 from ..data.resultshape import DEFAULT_INTERVAL
@@ -165,18 +164,24 @@ def log_prior_draws(posterior) -> dict:
     for comp in comps:
         par = prior_on_standard_scale(priors[comp], sc)
         out[comp] = _logpdf(priors[comp], posterior.draws(comp) / sy, par)
+    if "rho" in priors and getattr(spec, "errors", "iid") == "ar1":   # uniform, any scale
+        lo, hi = priors["rho"].kwargs["lower"], priors["rho"].kwargs["upper"]
+        out["rho"] = _st.uniform.logpdf(posterior.draws("rho"), lo, hi - lo)
     return out
 
 
 def log_likelihood_draws(posterior) -> np.ndarray:
     """Total Gaussian marginal log-likelihood of every draw (chain, draw), on the data scale,
     from the sufficient statistics (:func:`bayespanel.core.gaussian.marginal_loglik`;
-    fixed effects: :func:`~bayespanel.core.gaussian.within_loglik`)."""
+    fixed effects: :func:`~bayespanel.core.gaussian.within_loglik`); with
+    ``errors="ar1"`` from the rows (:meth:`~bayespanel.bayes.posterior.PointwiseInputs.ar1_loglik`)."""
     from ..core import gaussian
 
     st = posterior.stats
     coef = posterior.draws("coef")
     shape = coef.shape[:2]
+    if getattr(posterior.spec, "errors", "iid") == "ar1":
+        return posterior.pointwise_inputs().ar1_loglik().reshape(shape)
     v = gaussian.residual_vector(coef.reshape(-1, coef.shape[-1]))
     sigma = posterior.draws("sigma_obs").reshape(-1)
     if posterior.spec.unit_effects == "fixed":
@@ -199,8 +204,9 @@ def power_scaling(posterior, components=None, *, threshold=THRESHOLD, alphas=(0.
     posterior : bayespanel.bayes.posterior.Posterior
     components : list of str, optional
         Which priors to power-scale: any of ``"coef"``, ``"sigma_obs"``,
-        ``"sigma_unit"`` (default all). ``["sigma_unit"]`` asks how much the results owe
-        to the unit-SD prior alone.
+        ``"sigma_unit"`` and, with ``errors="ar1"``, ``"rho"`` (its uniform prior has a
+        constant log density, so power-scaling it changes nothing) (default all).
+        ``["sigma_unit"]`` asks how much the results owe to the unit-SD prior alone.
     threshold : float, default 0.05
     alphas : (float, float)
         Power-scaling amounts for the finite-difference derivative.
@@ -216,7 +222,6 @@ def power_scaling(posterior, components=None, *, threshold=THRESHOLD, alphas=(0.
     Kallioinen, Paananen, Bürkner and Vehtari (2024), Statistics and Computing 34, 57.
     doi:10.1007/s11222-023-10366-5
     """
-    refuse_pending(getattr(posterior, "spec", None), "power_scaling (prior sensitivity)")
     lp_all = log_prior_draws(posterior)
     if components is None:
         components = list(lp_all)
@@ -239,11 +244,13 @@ def _refit(model, preset, draws, tune, chains, seed, sampler):
     """The same model and data with another unit-SD prior, sampled."""
     priors = {k: v for k, v in model.priors.items() if k != "sigma_unit"}
     priors["sigma_unit"] = preset
+    serial = ({"errors": "ar1", "time": model.ar1_time}
+              if getattr(model, "errors", "iid") == "ar1" else {})
     new = type(model).from_suffstats(model.stats, model.labels, outcome=model.outcome,
                                      units=model.units, priors=priors,
                                      likelihood=model.likelihood, rows=model.rows,
                                      design_spec=dict(model.spec.design) if model.spec.design
-                                     else None)
+                                     else None, **serial)
     return new.sample(draws=draws, tune=tune, chains=chains, seed=seed, progress=False,
                       sampler=sampler)
 
@@ -387,7 +394,6 @@ def prior_presets(model, presets=UNIT_SD_PRESETS, *, draws=1000, tune=1000, chai
     """
     from ..bayes.priors import SD_PRESETS
 
-    refuse_pending(getattr(model, "errors", "iid"), "prior_presets (prior sensitivity refits)")
     if getattr(model, "unit_effects", None) != "random":
         raise SpecificationError(
             f"prior_presets varies the unit-SD prior; {type(model).__name__} has no unit SD "

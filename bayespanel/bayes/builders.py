@@ -234,7 +234,7 @@ class GaussianModel:
         stats = self._design_stats(design)
         labels = list(stats.names[:-1])
         self.design = design
-        self.ar1_stats = None
+        self.ar1_stats = self.ar1_time = None
         if self.errors == "ar1":
             self.ar1_stats = self._ar1_stats(design, labels)
         self._setup(stats, labels, outcome=design.outcome, units=design.units, priors=priors,
@@ -252,7 +252,9 @@ class GaussianModel:
                                "source such as a Dask panel)")
         M, y, codes = self._rows_of(design)
         column = dict(design.spec.to_dict()).get("time", "time")
-        return ar1.compute(M, y, codes, design.time, names=labels + [design.outcome],
+        #: the occasion of every estimation row as a number (gaps are its differences)
+        self.ar1_time = ar1.occasion_times(design.time, column)
+        return ar1.compute(M, y, codes, self.ar1_time, names=labels + [design.outcome],
                            column=column)
 
     def _rows_of(self, design):
@@ -277,7 +279,8 @@ class GaussianModel:
 
     @classmethod
     def from_suffstats(cls, stats, labels, *, outcome="y", units=None, priors=None,
-                       likelihood="marginal", rows=None, design_spec=None):
+                       likelihood="marginal", rows=None, design_spec=None, errors="iid",
+                       time=None):
         """Build the model from precomputed sufficient statistics (no rows needed).
 
         Parameters
@@ -293,11 +296,18 @@ class GaussianModel:
             The rows, needed only for ``likelihood="latent"``, predictive draws and LOO.
         design_spec : dict, optional
             Saved with the model specification.
+        errors : {"iid", "ar1"}
+            With ``"ar1"`` the AR(1) statistics are computed from ``rows`` and ``time``
+            (both required): the occasion of every row as a number
+            (:func:`bayespanel.core.ar1.occasion_times`).
         """
         obj = cls.__new__(cls)
         obj._check_likelihood(likelihood)
+        obj._set_errors(errors, likelihood)
         obj.design = None
-        obj.ar1_stats = None
+        obj.ar1_stats = obj.ar1_time = None
+        if obj.errors == "ar1":
+            obj.ar1_stats, obj.ar1_time = _ar1_of_rows(rows, time, list(labels) + [outcome])
         obj._setup(stats, list(labels), outcome=outcome, units=units, priors=priors,
                    likelihood=likelihood, rows=rows, design_spec=design_spec)
         return obj
@@ -434,7 +444,9 @@ class GaussianModel:
     def _data_values(self) -> dict:
         """Every pm.Data value of the marginal graph for the current statistics."""
         vals = {}
-        if self.likelihood == "marginal":
+        if self.errors == "ar1":
+            vals.update(ar1.data_values(self._ar1_arrays()))
+        elif self.likelihood == "marginal":
             std = self.scaling.standardise(self.stats)
             vals.update({f"stats_{k}": v for k, v in std.items()})
             vals["stats_n"] = np.asarray(float(self.stats.n))
@@ -478,7 +490,7 @@ class GaussianModel:
             tau = sig.get("sigma_unit")
             if self.errors == "ar1":
                 rho = pm.Uniform("rho", lower=d["prior_rho_lower"], upper=d["prior_rho_upper"])
-                self._ar1_potential(pm, pt, b_std, sigma, tau, rho)
+                self._ar1_potential(pm, pt, d, b_std, sigma, tau, rho)
             elif self.likelihood == "marginal":
                 self._marginal_potential(pm, pt, d, b_std, sigma, tau)
             else:
@@ -511,10 +523,16 @@ class GaussianModel:
                 tau if tau is not None else 0.0, xp=pt)
         pm.Potential("loglik", ll)
 
-    def _ar1_potential(self, pm, pt, b_std, sigma, tau, rho):
+    def _ar1_arrays(self):
+        """The AR(1) statistics on the standardised columns (:meth:`ar1.AR1Stats.arrays`)."""
+        return self.ar1_stats.arrays(center=self.scaling.c, scale=self.scaling.s)
+
+    def _ar1_potential(self, pm, pt, d, b_std, sigma, tau, rho):
         """The AR(1) marginal log-likelihood (:func:`bayespanel.core.ar1.loglik`) on the
-        standardised columns: the statistics enter as constants of the graph."""
-        arrays = self.ar1_stats.arrays(center=self.scaling.c, scale=self.scaling.s)
+        standardised columns: the numbers that change with the outcome are ``pm.Data``
+        (``ar1_*``, :func:`bayespanel.core.ar1.data_values`), the link structure is fixed."""
+        arrays = ar1.with_values(self._ar1_arrays(), d)
+        self._ar1_structure = ar1.structure(arrays)
         v = gaussian.residual_vector(b_std, xp=pt)
         t = None if self.unit_effects == "fixed" else (tau if tau is not None else 0.0)
         pm.Potential("loglik", ar1.loglik(v, arrays, rho, sigma, t, xp=pt))
@@ -534,7 +552,7 @@ class GaussianModel:
         pm.Normal("y_std", mu=Xd @ b_std + u[cd], sigma=sigma, observed=yd)
 
     # ------------------------------------------------------------------ data swap
-    def set_suffstats(self, stats, rows=None):
+    def set_suffstats(self, stats, rows=None, time=None):
         """Swap in new sufficient statistics without rebuilding or recompiling the graph.
 
         The priors stay as resolved at build time (fixed on the data scale); the internal
@@ -545,10 +563,29 @@ class GaussianModel:
         ----------
         stats : SuffStats
         rows : tuple (M, y, unit_codes), optional
-            The new rows (required for the latent likelihood); without them the model
-            forgets its rows (predictive draws and LOO then need a panel).
+            The new rows (required for the latent likelihood and for ``errors="ar1"``);
+            without them the model forgets its rows (predictive draws and LOO then need a
+            panel).
+        time : array (n,), optional
+            ``errors="ar1"``: the occasion of every new row as a number (default: the
+            model's, for new outcomes on the same rows). The new rows must have the same
+            link structure (units, occasions and gaps; :func:`bayespanel.core.ar1.structure`)
+            as the model's: other rows need a new model (``from_suffstats(...,
+            errors="ar1", time=...)``), as exact refits and K-fold build.
         """
-        ar1.refuse_pending(self.errors, "set_suffstats (new data in a built model)")
+        new_ar1 = None
+        if self.errors == "ar1":
+            if rows is None:
+                raise SpecificationError(
+                    "set_suffstats of a model with errors='ar1' needs rows= (M, y, "
+                    "unit_codes): the AR(1) statistics are computed from the rows")
+            if time is None:
+                if self.ar1_time is None or len(self.ar1_time) != len(rows[1]):
+                    raise SpecificationError(
+                        "set_suffstats of a model with errors='ar1' needs time= (the "
+                        "occasion of every new row) when the rows are not the model's")
+                time = self.ar1_time
+            new_ar1, time = _ar1_of_rows(rows, time, self.labels + [self.outcome])
         if stats.p != self.stats.p:
             raise SpecificationError(
                 f"the new statistics have {stats.k} covariate columns; this model has "
@@ -559,6 +596,15 @@ class GaussianModel:
                     "a latent-intercept model needs rows= with the same units to swap data")
         if stats.n_units != self.stats.n_units:
             self.units = pd.Index(np.arange(stats.n_units))
+        if new_ar1 is not None:
+            scaling = self._scaling(stats)
+            arrays = new_ar1.arrays(center=scaling.c, scale=scaling.s)
+            if ar1.structure(arrays) != self._ar1_structure:
+                raise SpecificationError(
+                    "the new rows of this errors='ar1' model have another link structure "
+                    "(units, occasions or gaps between them) than the rows it was built on; "
+                    "build a new model on them (from_suffstats(..., errors='ar1', time=...))")
+            self.ar1_stats, self.ar1_time = new_ar1, time
         self.stats = stats
         self.rows = rows
         self.scaling = self._scaling(stats)
@@ -623,7 +669,8 @@ class GaussianModel:
         xarray.DataTree
             Group ``prior`` (``coef``, ``sigma_obs``, ``sigma_unit``, ``icc`` on the data
             scale) and, with rows, ``prior_predictive`` with ``y`` on every estimation row:
-            ``y = M b + u_i + e`` with ``u_i ~ N(0, sigma_unit^2)`` (none for ``Pooled``;
+            ``y = M b + u_i + e`` with ``u_i ~ N(0, sigma_unit^2)`` and ``e`` independent or,
+            with ``errors="ar1"``, AR(1) on the rows' occasions (none for ``Pooled``;
             :class:`FixedEffects` has no proper prior for the intercepts, so its outcome
             draws hold the unit means of the data fixed).
         """
@@ -633,10 +680,9 @@ class GaussianModel:
         from .sampling import check_int
         from .posterior import simulate_outcome
 
-        ar1.refuse_pending(self.errors, "sample_prior_predictive")
         check_int("draws", draws, 1)
         names = ["coef", "sigma_obs"] + (["sigma_unit", "icc"] if self.unit_effects == "random"
-                                         else [])
+                                         else []) + (["rho"] if self.errors == "ar1" else [])
         with warnings.catch_warnings():
             warnings.filterwarnings("ignore", message=".*Potential.*")
             dt = pm.sample_prior_predictive(draws=draws, model=self.pymc_model,
@@ -652,7 +698,12 @@ class GaussianModel:
             fixed = None
             if self.unit_effects == "fixed":
                 fixed = _ss_unit_mean_residual(self.stats, b)
-            yrep = simulate_outcome(M, codes, b, sig, tau, rng, unit_shift=fixed)
+            errors = None
+            if self.errors == "ar1":     # AR(1) errors on the rows' own occasions
+                tl = ar1.Timeline.build(codes, self.ar1_time)
+                errors = ar1.simulate_errors(tl, prior["rho"].values.ravel(), sig, rng)
+            yrep = simulate_outcome(M, codes, b, sig, tau, rng, unit_shift=fixed,
+                                    errors=errors)
             groups["prior_predictive"] = xr.DataTree(xr.Dataset(
                 {"y": (("chain", "draw", "row"), yrep[None])}))
         return xr.DataTree.from_dict(groups)
@@ -661,6 +712,20 @@ class GaussianModel:
         errors = "" if self.errors == "iid" else f", errors={self.errors!r}"
         return (f"{type(self).__name__}({self.outcome} ~ {', '.join(self.labels)}; "
                 f"{self.stats.n} rows, {self.stats.n_units} units, {self.likelihood}{errors})")
+
+
+def _ar1_of_rows(rows, time, names):
+    """``(AR1Stats, numeric times)`` of rows ``(M, y, unit_codes)`` at occasions ``time``."""
+    if rows is None or time is None:
+        raise SpecificationError(
+            "a model with errors='ar1' built from statistics needs rows= (M, y, unit_codes) "
+            "and time= (the occasion of every row): the AR(1) statistics come from the rows "
+            "in time order")
+    M, y, codes = rows
+    t = ar1.occasion_times(time)
+    if len(t) != len(y):
+        raise SpecificationError(f"time has {len(t)} values for {len(y)} rows")
+    return ar1.compute(M, y, codes, t, names=names), t
 
 
 def _check_errors(errors):

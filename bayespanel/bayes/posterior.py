@@ -53,7 +53,8 @@ _STATS_FIELDS = ("mean", "total", "within", "unit_count", "unit_mean", "lengths"
 _FORMAT_VERSION = 1
 
 
-def simulate_outcome(M, unit_codes, b, sigma, tau, rng, unit_shift=None, unit_draws=None):
+def simulate_outcome(M, unit_codes, b, sigma, tau, rng, unit_shift=None, unit_draws=None,
+                     errors=None):
     """Outcome draws ``y = M b + u_i + e`` for every draw of ``(b, sigma, tau)``.
 
     Parameters
@@ -65,6 +66,9 @@ def simulate_outcome(M, unit_codes, b, sigma, tau, rng, unit_shift=None, unit_dr
         Fixed unit intercepts per draw, used instead of drawing new ones.
     unit_draws : array (S, N), optional
         Unit intercepts already drawn (e.g. from their conditional posterior).
+    errors : array (S, n), optional
+        Errors already drawn (AR(1) errors, :func:`bayespanel.core.ar1.simulate_errors`),
+        used instead of independent ``N(0, sigma^2)`` ones.
 
     Returns
     -------
@@ -79,6 +83,8 @@ def simulate_outcome(M, unit_codes, b, sigma, tau, rng, unit_shift=None, unit_dr
         mu += unit_shift[:, codes]
     elif tau is not None:
         mu += (tau[:, None] * rng.standard_normal((mu.shape[0], n_units)))[:, codes]
+    if errors is not None:
+        return mu + errors
     return mu + sigma[:, None] * rng.standard_normal(mu.shape)
 
 
@@ -100,6 +106,23 @@ class PointwiseInputs:
     stats: SuffStats
     chains: int
     draws: int
+    rho: np.ndarray | None = None
+    timeline: object = None
+
+    def _tau(self):
+        """Draws of the unit SD as the density functions take it (0 pooled, None fixed)."""
+        if self.unit_effects == "fixed":
+            return None
+        return self.sigma_unit if self.sigma_unit is not None else np.zeros_like(self.sigma_obs)
+
+    def _ar1_terms(self, fn):
+        """``fn(r, timeline, rho, sigma, tau)`` of :mod:`bayespanel.core.ar1` over the draws,
+        in blocks so that the residuals never hold more than about 2^24 numbers."""
+        tau = self._tau()
+        return ar1.by_draw_blocks(
+            lambda sl: fn(self.y[None, :] - self.coef[sl] @ self.M.T, self.timeline,
+                          self.rho[sl], self.sigma_obs[sl], None if tau is None else tau[sl]),
+            len(self.sigma_obs), len(self.y))
 
     def _need_rows(self):
         if self.M is None:
@@ -114,21 +137,28 @@ class PointwiseInputs:
             raise SpecificationError(
                 "fixed effects have no unit-level predictive density: a new unit's intercept "
                 "is not identified; use level='occasion'")
+        if self.rho is not None:       # AR(1) errors: the unit's marginal density
+            return self._ar1_terms(ar1.unit_logdensity)
         tau = self.sigma_unit if self.sigma_unit is not None else np.zeros_like(self.sigma_obs)
         return gaussian.unit_loglik_rows(self.M, self.y, self.unit_codes, self.coef,
                                          self.sigma_obs, tau)
 
+    def ar1_loglik(self) -> np.ndarray:
+        """Per draw, the log-likelihood of a model with ``errors="ar1"`` (S,): the sum over
+        units of :func:`bayespanel.core.ar1.unit_logdensity` (fixed effects: the density of
+        the within-transformed rows, as the model's likelihood), from the rows."""
+        self._need_rows()
+        if self.rho is None:
+            raise SpecificationError("ar1_loglik is for models with errors='ar1'")
+        return self._ar1_terms(ar1.unit_logdensity).sum(axis=1)
+
     def occasion_loglik(self) -> np.ndarray:
         """``log p(y_it | y_i,-t, theta)`` per draw and row, shape (S, n)."""
         self._need_rows()
-        if self.unit_effects == "fixed":
-            tau = None
-        elif self.sigma_unit is None:
-            tau = np.zeros_like(self.sigma_obs)
-        else:
-            tau = self.sigma_unit
+        if self.rho is not None:       # AR(1) errors: given the unit's other rows, O(T_i)
+            return self._ar1_terms(ar1.occasion_logdensity)
         return gaussian.occasion_loglik_rows(self.M, self.y, self.unit_codes, self.coef,
-                                             self.sigma_obs, tau)
+                                             self.sigma_obs, self._tau())
 
 
 def _percent(q) -> str:
@@ -167,7 +197,7 @@ class Posterior:
     """
 
     def __init__(self, idata, spec: ModelSpec, stats: SuffStats, units, rows=None,
-                 sampling=None, scaling=None, time=None, row_labels=None):
+                 sampling=None, scaling=None, time=None, row_labels=None, ar1_time=None):
         self.idata = idata
         self.spec = spec
         self.stats = stats
@@ -179,11 +209,14 @@ class Posterior:
         self.sampling = dict(sampling or {})
         self.scaling = scaling
         n = None if rows is None else int(stats.n)
-        for name, v in (("time", time), ("row_labels", row_labels)):
+        for name, v in (("time", time), ("row_labels", row_labels), ("ar1_time", ar1_time)):
             if v is not None and n is not None and len(v) != n:
                 raise SpecificationError(f"{name} has {len(v)} values for {n} estimation rows")
         self.time = None if time is None else np.asarray(time)
         self.row_labels = None if row_labels is None else np.asarray(row_labels)
+        #: ``errors="ar1"``: the occasion of every estimation row as a number (the gaps
+        #: of the AR(1) are its differences; :func:`bayespanel.core.ar1.occasion_times`)
+        self.ar1_time = None if ar1_time is None else np.asarray(ar1_time, dtype=float)
         #: the design the model was built on (set by :meth:`from_model`; ``None`` after
         #: :meth:`load`): without rows at hand, partitions, contrasts and LOO use its
         #: statistics (``Design.has_rows``)
@@ -227,7 +260,8 @@ class Posterior:
         pending = getattr(model, "_rows", None) is None and getattr(model, "_rows_from", None)
         rows = (lambda: model.rows) if pending else model.rows
         post = cls(idata, model.spec, model.stats, model.units, rows=rows, sampling=info,
-                   scaling=model.scaling, **cls._row_info(model))
+                   scaling=model.scaling, ar1_time=getattr(model, "ar1_time", None),
+                   **cls._row_info(model))
         post.design = getattr(model, "design", None)
         return post._keep_model(model)
 
@@ -550,7 +584,6 @@ class Posterior:
         if self.spec.unit_effects == "none":
             raise SpecificationError("Pooled has no unit intercepts; use RandomIntercept, "
                                      "WithinBetween, CorrelatedEffects or FixedEffects")
-        ar1.refuse_pending(self.spec, "unit_effects()")
         thin = self._thin(thin)
         idx = self._unit_index(units)
         mean, sd = self._unit_conditional(thin, idx)
@@ -579,7 +612,36 @@ class Posterior:
             out[:, sel] = z[np.ix_(keep, idx[sel] - bk * block)]
         return out
 
+    def _ar1_timeline(self):
+        """The :class:`bayespanel.core.ar1.Timeline` of the estimation rows (``errors="ar1"``)."""
+        if "ar1_timeline" not in self._cache:
+            if self.rows is None or self.ar1_time is None:
+                raise SpecificationError(
+                    "this errors='ar1' posterior has no estimation rows with their occasions "
+                    "(built from statistics only, or saved with rows=False); unit effects, "
+                    "predictive draws and LOO need them")
+            self._cache["ar1_timeline"] = ar1.Timeline.build(self.rows[2], self.ar1_time)
+        return self._cache["ar1_timeline"]
+
+    def _ar1_unit_conditional(self, thin, idx):
+        """Mean and SD of the unit intercepts given the rows, per draw, with AR(1) errors
+        (:func:`bayespanel.core.ar1.unit_effect_conditional`: the GLS weights of the AR(1)
+        replace the unit means)."""
+        M, y, _ = self.rows
+        tl = self._ar1_timeline()
+        b, sigma, rho = (self._flat(n, thin) for n in ("coef", "sigma_obs", "rho"))
+        tau = self._flat("sigma_unit", thin) if self.spec.unit_effects == "random" else None
+
+        def block(sl):
+            mean, sd = ar1.unit_effect_conditional(y[None, :] - b[sl] @ M.T, tl, rho[sl],
+                                                   sigma[sl], None if tau is None else tau[sl])
+            return np.stack([mean[:, idx], sd[:, idx]])
+        out = ar1.by_draw_blocks(block, len(sigma), len(y), axis=1)
+        return out[0], out[1]
+
     def _unit_conditional(self, thin, idx):
+        if self.spec.errors == "ar1":
+            return self._ar1_unit_conditional(thin, idx)
         b = self._flat("coef", thin)
         sigma = self._flat("sigma_obs", thin)[:, None]
         rbar = gaussian.residual_vector(b) @ self.stats.unit_mean[idx].T
@@ -599,7 +661,8 @@ class Posterior:
             ``"occasion"``: new occasions of the same units, ``y = x'b + u_i + e`` with
             ``u_i`` from its conditional posterior (:meth:`unit_effects`). ``"unit"``: new
             units with the same covariates, ``u_i ~ N(0, sigma_unit^2)`` (not defined for
-            fixed effects).
+            fixed effects). With ``errors="ar1"`` the errors ``e`` are new AR(1) draws on
+            the rows' occasions (:func:`bayespanel.core.ar1.simulate_errors`).
         thin : int
         seed : int
 
@@ -611,7 +674,6 @@ class Posterior:
         if level not in ("occasion", "unit"):
             from ..core.errors import choices_error
             raise choices_error("level", level, ("occasion", "unit"))
-        ar1.refuse_pending(self.spec, "posterior_predictive()")
         if self.rows is None:
             raise SpecificationError(
                 "the estimation rows are not available (model built from statistics only, or "
@@ -629,7 +691,12 @@ class Posterior:
             every = np.arange(len(self.units))
             mean, sd = self._unit_conditional(thin, every)
             unit_draws = mean + sd * self._unit_normals(seed, every, thin)
-        yrep = simulate_outcome(M, codes, b, sigma, tau, rng, unit_draws=unit_draws)
+        errors = None
+        if self.spec.errors == "ar1":      # new AR(1) errors on the rows' occasions
+            errors = ar1.simulate_errors(self._ar1_timeline(), self._flat("rho", thin), sigma,
+                                         rng)
+        yrep = simulate_outcome(M, codes, b, sigma, tau, rng, unit_draws=unit_draws,
+                                errors=errors)
         coef = self.idata["posterior"]["coef"]
         return xr.DataArray(yrep.reshape(self.n_chains, -1, len(y)),
                             dims=("chain", "draw", "row"),
@@ -638,16 +705,18 @@ class Posterior:
 
     def pointwise_inputs(self, thin: int = 1) -> PointwiseInputs:
         """Draws and data for pointwise log-likelihoods at the unit and occasion level."""
-        ar1.refuse_pending(self.spec, "pointwise log-likelihoods (LOO at either level)")
         thin = self._thin(thin)
         M, y, codes = self.rows if self.rows is not None else (None, None, None)
+        serial = {}
+        if self.spec.errors == "ar1":
+            serial = {"rho": self._flat("rho", thin), "timeline": self._ar1_timeline()}
         return PointwiseInputs(
             unit_effects=self.spec.unit_effects, coef=self._flat("coef", thin),
             sigma_obs=self._flat("sigma_obs", thin),
             sigma_unit=(self._flat("sigma_unit", thin) if self.spec.unit_effects == "random"
                         else None),
             M=M, y=y, unit_codes=codes, units=self.units, stats=self.stats,
-            chains=self.n_chains, draws=len(range(0, self.n_draws, thin)))
+            chains=self.n_chains, draws=len(range(0, self.n_draws, thin)), **serial)
 
     # ------------------------------------------------------------------ comparison
     # (thin entries; the work is in bayespanel.analysis.loo, .partition and .contrasts)
@@ -754,6 +823,8 @@ class Posterior:
                 if v is not None:
                     arr, kind = _encode_labels(v)
                     data[name] = (("row",), arr, {"bayespanel_kind": kind})
+            if self.ar1_time is not None:
+                data["ar1_time"] = (("row",), self.ar1_time)
             groups["bayespanel_rows"] = xr.Dataset(data)
         tree = xr.DataTree.from_dict({"/": xr.Dataset(attrs={
             "bayespanel_format": _FORMAT_VERSION,
@@ -807,6 +878,8 @@ class Posterior:
             for name, key in (("time", "time"), ("row_label", "row_labels")):
                 if name in rd:
                     labels[key] = _decode_labels(rd[name])
+            if "ar1_time" in rd:
+                labels["ar1_time"] = np.asarray(rd["ar1_time"].values, dtype=float)
         keep = {k: v.to_dataset() for k, v in tree.children.items()
                 if not k.startswith("bayespanel_")}
         idata = xr.DataTree.from_dict(keep)

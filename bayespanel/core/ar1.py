@@ -61,7 +61,7 @@ from .errors import PanelDataError, SpecificationError
 __all__ = [
     "occasion_times", "Timeline", "AR1Partial", "AR1Stats", "partial", "merge", "finalize",
     "compute", "loglik", "unit_logdensity", "unit_effect_conditional", "occasion_conditional",
-    "occasion_logdensity", "holdout_logdensity", "simulate_errors", "data_values",
+    "occasion_logdensity", "holdout_logdensity", "simulate_errors", "by_draw_blocks", "data_values",
     "with_values", "structure", "ERRORS", "refuse_pending",
 ]
 
@@ -906,6 +906,15 @@ def simulate_errors(tl: Timeline, rho, sigma, rng):
     back = np.empty_like(tl.order)
     back[tl.order] = np.arange(tl.n)
     return e[:, back]
+
+
+def by_draw_blocks(fn, n_draws: int, n_rows: int, axis: int = 0, budget: int = 1 << 24):
+    """``fn(slice)`` over consecutive blocks of draws, joined along ``axis``: the row-level
+    functions of this module hold a (draws, rows) residual array, kept near ``budget``
+    numbers per block."""
+    step = max(1, budget // max(n_rows, 1))
+    parts = [fn(slice(a, min(a + step, n_draws))) for a in range(0, n_draws, step)]
+    return parts[0] if len(parts) == 1 else np.concatenate(parts, axis=axis)
 
 
 # ---------------------------------------------------------------------------- data swap

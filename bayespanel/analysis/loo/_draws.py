@@ -7,7 +7,6 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from ...core.ar1 import refuse_pending
 from ...core.errors import SpecificationError, choices_error
 from ...core.mathcore import unit_sd_draws
 
@@ -32,7 +31,9 @@ class FitDraws:
     :class:`~bayespanel.bayes.latent.LatentPosterior` of a latent-effect model (another
     family, or random slopes), whose pointwise terms come from its own
     :meth:`~bayespanel.bayes.latent.LatentPosterior.pointwise_loglik`; ``family`` names
-    its outcome family (``"gaussian"`` for the marginal models).
+    its outcome family (``"gaussian"`` for the marginal models). ``rho`` ``(C, D)`` are
+    the draws of the AR(1) correlation of a model with ``errors="ar1"`` (``None``
+    otherwise) and ``ar1_time`` the occasion of every row as a number.
     """
 
     kind: str
@@ -55,6 +56,8 @@ class FitDraws:
     time_name: str | None = None
     family: str = "gaussian"
     latent: object = None
+    rho: np.ndarray | None = None
+    ar1_time: np.ndarray | None = None
 
     @property
     def n_chains(self) -> int:
@@ -93,6 +96,10 @@ class FitDraws:
         tau = None if self.tau is None else self.tau.reshape(S)
         return self.coef.reshape(S, -1), self.sigma.reshape(S), tau
 
+    def flat_rho(self):
+        """Draws of ``rho`` with chains stacked (S,), or None without AR(1) errors."""
+        return None if self.rho is None else self.rho.reshape(-1)
+
     def point_index(self, level) -> pd.DataFrame:
         """Labels of the pointwise terms: one row per unit, or per estimation row.
 
@@ -129,7 +136,7 @@ def _values(ds, name):
 def from_draws(*, kind, unit_effects, labels, M, y, codes, coef, sigma, tau=None, units=None,
                time=None, rows=None, posterior=None, model=None, design=None,
                sample_kwargs=None, unit_name=None, time_name=None, family="gaussian",
-               latent=None) -> FitDraws:
+               latent=None, rho=None, ar1_time=None) -> FitDraws:
     """Assemble :class:`FitDraws` from arrays (``coef`` may be ``(S, k)`` or ``(C, D, k)``)."""
     coef = np.asarray(coef, dtype=float)
     if coef.ndim == 2:
@@ -146,6 +153,12 @@ def from_draws(*, kind, unit_effects, labels, M, y, codes, coef, sigma, tau=None
     M = np.asarray(M, dtype=float)
     if M.shape[1] != k:
         raise SpecificationError(f"M has {M.shape[1]} columns for {k} coefficients")
+    if rho is not None:
+        rho = np.asarray(rho, dtype=float).reshape(C, D)
+        if ar1_time is None or len(ar1_time) != len(codes):
+            raise SpecificationError("AR(1) draws (rho) need the occasion of every row "
+                                     "(ar1_time)")
+        ar1_time = np.asarray(ar1_time, dtype=float)
     return FitDraws(
         kind=kind, unit_effects=unit_effects, labels=list(labels), M=M,
         y=np.asarray(y, dtype=float), codes=codes,
@@ -154,7 +167,7 @@ def from_draws(*, kind, unit_effects, labels, M, y, codes, coef, sigma, tau=None
         rows=pd.Index(rows if rows is not None else np.arange(len(codes))),
         coef=coef, sigma=sigma, tau=tau, posterior=posterior, model=model, design=design,
         sample_kwargs=dict(sample_kwargs or {}), unit_name=unit_name, time_name=time_name,
-        family=family, latent=latent)
+        family=family, latent=latent, rho=rho, ar1_time=ar1_time)
 
 
 def from_posterior(post) -> FitDraws:
@@ -166,7 +179,14 @@ def from_posterior(post) -> FitDraws:
     if idata is None or spec is None or "posterior" not in idata.children:
         raise SpecificationError(
             f"expected a bayespanel Posterior with posterior draws, got {type(post).__name__}")
-    refuse_pending(spec, "LOO (at either level) and K-fold")
+    serial = {}
+    if getattr(spec, "errors", "iid") == "ar1":
+        ar1_time = getattr(post, "ar1_time", None)
+        if post.rows is not None and ar1_time is None:
+            raise SpecificationError(
+                "LOO of an errors='ar1' model needs the occasion of every estimation row; "
+                "this posterior does not carry them (build the model from a Panel)")
+        serial = {"rho": idata["posterior"]["rho"].values, "ar1_time": ar1_time}
     if post.rows is None and getattr(post, "design", None) is not None:
         raise SpecificationError(
             "full LOO needs every pointwise term, and the model's design holds no rows (a "
@@ -199,7 +219,7 @@ def from_posterior(post) -> FitDraws:
         posterior=ds, model=None if latent is not None else _refit_model(post),
         design=design, sample_kwargs=sample_kwargs, unit_name=names.get("unit"),
         time_name=names.get("time"),
-        family=latent.family if latent is not None else "gaussian", latent=latent)
+        family=latent.family if latent is not None else "gaussian", latent=latent, **serial)
 
 
 def _refit_model(post):
@@ -247,10 +267,13 @@ class _Rebuild:
             raise SpecificationError(self.refuse)
         post, spec = self.post, self.post.spec
         cls = kinds.model(spec.model).builder_class()
+        serial = {}
+        if getattr(spec, "errors", "iid") == "ar1":
+            serial = {"errors": "ar1", "time": post.ar1_time}
         return cls.from_suffstats(
             post.stats, list(spec.labels), outcome=spec.outcome, units=post.units,
             priors=spec.prior_dict, likelihood=spec.likelihood, rows=post.rows,
-            design_spec=dict(spec.design) if spec.design else None)
+            design_spec=dict(spec.design) if spec.design else None, **serial)
 
 
 def model_of(fd):

@@ -25,11 +25,12 @@ from __future__ import annotations
 import numpy as np
 from scipy import sparse
 
+from ...core import ar1
 from ...core.errors import EstimationError, SpecificationError
 from ...core import gaussian
 from ._draws import check_level
 
-__all__ = ["pointwise_loglik", "holdout_loglik", "undefined_reason"]
+__all__ = ["pointwise_loglik", "holdout_loglik", "undefined_reason", "ar1_pointwise"]
 
 
 def undefined_reason(unit_effects, level, T=None):
@@ -82,17 +83,32 @@ def pointwise_loglik(fd, level, units=None):
         return np.asarray(fd.latent.pointwise_loglik(level).values, dtype=float)
     b, sigma, tau = fd.flat()
     M, y, codes = fd.M, fd.y, fd.codes
+    time = fd.ar1_time
     if units is not None:
         keep = np.isin(codes, units)
         M, y, codes = M[keep], y[keep], _renumber(codes[keep])
-    if level == "unit":
+        time = None if time is None else time[keep]
+    if fd.rho is not None:
+        out = ar1_pointwise(M, y, codes, time, b, sigma, tau, fd.flat_rho(), level)
+    elif level == "unit":
         out = gaussian.unit_loglik_rows(M, y, codes, b, sigma, tau)
     else:
         out = gaussian.occasion_loglik_rows(M, y, codes, b, sigma, tau)
     return out.reshape(fd.n_chains, fd.n_draws, -1)
 
 
-def holdout_loglik(M, y, codes, test, b, sigma, tau, level):
+def ar1_pointwise(M, y, codes, time, b, sigma, tau, rho, level):
+    """The pointwise terms with AR(1) errors (:mod:`bayespanel.core.ar1`): the unit's marginal
+    density, or each row given the unit's other rows (O(T_i) per unit: the precision is
+    tridiagonal plus rank one), over blocks of draws."""
+    tl = ar1.Timeline.build(codes, time)
+    fn = ar1.unit_logdensity if level == "unit" else ar1.occasion_logdensity
+    return ar1.by_draw_blocks(
+        lambda sl: fn(y[None, :] - b[sl] @ M.T, tl, rho[sl], sigma[sl],
+                      None if tau is None else tau[sl]), len(sigma), len(y))
+
+
+def holdout_loglik(M, y, codes, test, b, sigma, tau, level, rho=None, time=None):
     """Log density of held-out points given the training rows, per draw, ``(S, points)``.
 
     Parameters
@@ -106,10 +122,28 @@ def holdout_loglik(M, y, codes, test, b, sigma, tau, level):
         2021), so several rows of a unit may be held out together.
     b : (S, k); sigma : (S,); tau : (S,) or None (fixed effects)
     level : {"unit", "occasion"}
+    rho : (S,), optional
+        AR(1) errors: the correlation one time unit apart; ``time`` (n,) is then the
+        occasion of every row as a number. Held-out units are scored by their marginal
+        density; a held-out row given its unit's training rows
+        (:func:`bayespanel.core.ar1.holdout_logdensity`).
     """
     test = np.asarray(test, dtype=bool)
     b = np.atleast_2d(b)
     sigma = np.atleast_1d(sigma)
+    if rho is not None:
+        rho = np.atleast_1d(rho)
+        ta = None if tau is None else np.atleast_1d(tau)
+        if level == "unit":
+            tl = ar1.Timeline.build(codes[test], time[test])
+            fn = lambda sl: ar1.unit_logdensity(  # noqa: E731
+                y[test][None, :] - b[sl] @ M[test].T, tl, rho[sl], sigma[sl],
+                None if ta is None else ta[sl])
+        else:
+            fn = lambda sl: ar1.holdout_logdensity(  # noqa: E731
+                y[None, :] - b[sl] @ M.T, codes, time, test, rho[sl], sigma[sl],
+                None if ta is None else ta[sl])
+        return ar1.by_draw_blocks(fn, len(sigma), len(y))
     if level == "unit":
         tcodes = _renumber(codes[test])
         return gaussian.unit_loglik_rows(M[test], y[test], tcodes, b, sigma,

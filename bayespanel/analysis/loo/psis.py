@@ -19,6 +19,8 @@ References
 from __future__ import annotations
 
 import warnings
+from collections import namedtuple
+from contextlib import contextmanager
 
 import numpy as np
 import pandas as pd
@@ -31,7 +33,7 @@ from ._draws import check_level, from_posterior, model_of
 from .pointwise import holdout_loglik, pointwise_loglik, undefined_reason
 from .result import LOOResult
 
-__all__ = ["loo", "kfold", "loo_subsample", "psis_arrays", "refit_draws"]
+__all__ = ["loo", "kfold", "loo_subsample", "psis_arrays", "refit_draws", "RefitDraws"]
 
 _MAX_NAMED = 8
 #: fewest draws PSIS can smooth: arviz-stats fits the Pareto tail to the largest
@@ -148,39 +150,78 @@ def _summary(elpd_i, lpd_i=None):
 
 
 # ---------------------------------------------------------------------------- refits
+class RefitDraws(namedtuple("RefitDraws", "coef sigma tau messages")):
+    """What :func:`refit_draws` returns: ``(coef, sigma, tau, messages)``, and ``rho``, the
+    draws of the AR(1) correlation of an ``errors="ar1"`` model (``None`` otherwise)."""
+
+    rho = None
+
+
+def _ar1_refit_model(fd, train, stats, rows):
+    """A new model of the same class and priors on the training rows (``errors="ar1"``:
+    leaving rows out changes the AR(1) link structure, so the compiled model cannot take
+    the new data; each refit compiles its own)."""
+    from ..models.graph import graph_edits
+
+    base = model_of(fd)
+    edits = graph_edits(base)
+    if edits:
+        raise SpecificationError(
+            "exact refits of an errors='ar1' model build a new model on the training rows, "
+            f"which would leave out what was added to its pymc_model ({', '.join(edits)})")
+    return type(base).from_suffstats(
+        stats, list(fd.labels), outcome=base.outcome, priors=base.priors,
+        likelihood=base.likelihood, rows=rows, errors="ar1", time=fd.ar1_time[train])
+
+
+@contextmanager
+def _training_model(fd, train, stats, codes):
+    """The model on the training rows: the compiled one with the statistics swapped in
+    (restored on exit), or with AR(1) errors a new one (:func:`_ar1_refit_model`)."""
+    rows = (fd.M[train], fd.y[train], codes)
+    if fd.rho is not None:
+        yield _ar1_refit_model(fd, train, stats, rows)
+        return
+    model = model_of(fd)
+    old_stats, old_rows, old_units = model.stats, model.rows, model.units
+    try:
+        model.set_suffstats(stats, rows=rows if model.likelihood == "latent" else None)
+        yield model
+    finally:
+        model.set_suffstats(old_stats, rows=old_rows)
+        model.units = old_units
+
+
 def refit_draws(fd, train, *, what="the held-out points", **sample_kwargs):
     """Sample the same model on the training rows only.
 
-    Returns ``(coef (S, k), sigma (S,), tau (S,) or None, messages)`` with chains stacked;
-    ``messages`` are the refit's sampling warnings (R-hat, ESS, divergences).
+    Returns a :class:`RefitDraws` ``(coef (S, k), sigma (S,), tau (S,) or None,
+    messages)`` with chains stacked (and ``.rho`` for AR(1) errors); ``messages`` are
+    the refit's sampling warnings (R-hat, ESS, divergences).
 
     The compiled graph is reused: the model's sufficient statistics are swapped with
     :meth:`~bayespanel.bayes.GaussianModel.set_suffstats` and restored afterwards, so a
-    refit costs sampling time only. Sampling warnings of the refit are re-issued with the
+    refit costs sampling time only (``errors="ar1"``: a new model of the same class and
+    priors on the training rows, compiled once per refit, since leaving rows out changes
+    the links between occasions). Sampling warnings of the refit are re-issued with the
     held-out points named by the caller.
     """
-    model = model_of(fd)
     train = np.asarray(train, dtype=bool)
     _, codes = np.unique(fd.codes[train], return_inverse=True)
-    stats = _ss.compute(fd.M[train], fd.y[train], codes.ravel().astype(np.int64),
-                        names=list(fd.labels) + ["y"])
-    old_stats, old_rows, old_units = model.stats, model.rows, model.units
+    codes = codes.ravel().astype(np.int64)
+    stats = _ss.compute(fd.M[train], fd.y[train], codes, names=list(fd.labels) + ["y"])
     kw = {"draws": 400, "tune": 400, "chains": 2, "seed": 1}
     kw.update({k: v for k, v in fd.sample_kwargs.items() if k in ("draws", "tune", "chains",
                                                                    "seed", "target_accept")})
     kw.update(sample_kwargs)
     kw.setdefault("progress", False)
     try:
-        model.set_suffstats(stats, rows=(fd.M[train], fd.y[train], codes) if
-                            model.likelihood == "latent" else None)
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always", SamplingWarning)
-            post = model.sample(**kw)
+        with _training_model(fd, train, stats, codes) as model:
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always", SamplingWarning)
+                post = model.sample(**kw)
     except EstimationError as exc:
         raise EstimationError(f"the refit without {what} cannot proceed: {exc}") from exc
-    finally:
-        model.set_suffstats(old_stats, rows=old_rows)
-        model.units = old_units
     ds = post.idata["posterior"].to_dataset()
     S = ds.sizes["chain"] * ds.sizes["draw"]
     b = np.asarray(ds["coef"].values, float).reshape(S, -1)
@@ -191,7 +232,10 @@ def refit_draws(fd, train, *, what="the held-out points", **sample_kwargs):
     for w in caught:
         if not issubclass(w.category, SamplingWarning):
             warnings.warn(w.message, w.category, stacklevel=2)
-    return b, sigma, tau, msgs
+    out = RefitDraws(b, sigma, tau, msgs)
+    if "rho" in ds and fd.rho is not None:
+        out.rho = np.asarray(ds["rho"].values, float).reshape(S)
+    return out
 
 
 #: from this many refits on, refits default to nutpie, which compiles once per model and
@@ -218,8 +262,10 @@ def _exact_points(fd, level, points, sample_kwargs):
     for j in points:
         test = (fd.codes == j) if level == "unit" else (np.arange(fd.n) == j)
         who = _describe_points(label.iloc[[j]], level, names=fd.names)
-        b, sigma, tau, msgs = refit_draws(fd, ~test, what=who, **sample_kwargs)
-        ll = holdout_loglik(fd.M, fd.y, fd.codes, test, b, sigma, tau, level)
+        refit = refit_draws(fd, ~test, what=who, **sample_kwargs)
+        b, sigma, tau, msgs = refit
+        ll = holdout_loglik(fd.M, fd.y, fd.codes, test, b, sigma, tau, level, rho=refit.rho,
+                            time=fd.ar1_time)
         values.append(float(_lpd(ll)[0]))
         if msgs:
             problems.append(f"refit without {who}: " + "; ".join(msgs))
@@ -398,12 +444,14 @@ def kfold(post, level="occasion", K=10, *, seed=0, refit_kwargs=None):
     for k in range(int(K)):
         test = fold == k
         held = labels.loc[point_fold == k]
-        b, sigma, tau, msgs = refit_draws(
+        refit = refit_draws(
             fd, ~test,
             what=f"fold {k + 1} of {K} ({_describe_points(held, level, 4, fd.names)})",
             **refit_kwargs)
+        b, sigma, tau, msgs = refit
         elpd_i[point_fold == k] = _lpd(holdout_loglik(fd.M, fd.y, fd.codes, test, b, sigma,
-                                                      tau, level))
+                                                      tau, level, rho=refit.rho,
+                                                      time=fd.ar1_time))
         problems += [f"fold {k + 1} of {K}: {m}" for m in msgs]
     for p in problems:
         warnings.warn(p, SamplingWarning, stacklevel=2)
