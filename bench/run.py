@@ -25,6 +25,7 @@ BENCHES = [
     ("bench_memory.py", [], ["--reps", "15,60"]),
     ("bench_speed.py", [], ["--quick"]),
     ("bench_ar1.py", [], ["--quick"]),
+    ("bench_demo.py", ["--repeat", "2"], ["--repeat", "1"]),
 ]
 
 

@@ -238,3 +238,35 @@ def test_without_numba_the_numpy_pass_gives_the_same_numbers(tmp_path, monkeypat
     got = np.load(tmp_path / "out.npz")
     for f in FIELDS:
         np.testing.assert_array_equal(got[f], getattr(compiled, f), err_msg=f)
+
+
+@pytest.mark.parametrize("kind", ["unbalanced", "shuffled"])
+def test_partition_moments_compiled_equal_extended_precision(kind, monkeypatch):
+    # The out-of-core pass summarises each partition with partial_inplace, compiled from
+    # _NUMBA_MIN_ROWS rows: both versions, merged over a split of the rows whose pieces
+    # cut units in two (Chan, Golub and LeVeque 1979), equal numpy in extended precision
+    # (np.longdouble) to 1e-12 with a common offset of 1e8.
+    rng = np.random.default_rng(8)
+    codes, _ = _layout(kind, rng)
+    while len(codes) < 2 * ss._NUMBA_MIN_ROWS + 10:  # each piece above the threshold
+        codes = np.concatenate([codes, codes[:40_000] + codes.max() + 1])
+    n = len(codes)
+    Z = np.column_stack([np.ones(n), rng.normal(size=(n, 2)) + 1e8])
+    Z = np.column_stack([Z, Z[:, 1:] @ np.array([0.5, -1.0]) + rng.normal(size=n) + 1e8])
+    cut = n // 2 + 3
+    assert cut >= ss._NUMBA_MIN_ROWS
+
+    def merged():
+        parts = [ss.partial_inplace(Z[a:b].copy(), codes[a:b])  # it may overwrite its block
+                 for a, b in ((0, cut), (cut, n))]
+        return ss.finalize(ss.merge(*parts))
+
+    runs = _both(merged, monkeypatch) if ss._numba_kernels() else [merged()]
+    ref = dense(Z, codes)
+    for stats in runs:
+        for name in ("within", "total", "unit_mean", "mean"):
+            assert rel(getattr(stats, name), ref[name]) < 1e-12, name
+        np.testing.assert_array_equal(stats.unit_count, ref["unit_count"])
+    if len(runs) == 2:
+        for name in ("within", "total", "unit_mean", "group_cp"):
+            assert rel(getattr(runs[0], name), getattr(runs[1], name)) < 1e-13, name

@@ -228,10 +228,13 @@ def _finish(n, ref, counts, offsets, within_m2, ukeys) -> Partial:
 
 
 def partial_inplace(Z: np.ndarray, keys: np.ndarray) -> Partial:
-    """:func:`partial` computed in place: ``Z`` (float64, C-ordered) is overwritten.
+    """:func:`partial` computed in place: ``Z`` (float64, C-ordered) may be overwritten.
 
     The same moments with no working copy of the block beyond ``Z`` itself (``partial``
-    makes three), for passes that build ``Z`` themselves (the out-of-core engines). Rows
+    makes three), for passes that build ``Z`` themselves (the out-of-core engines). From
+    :data:`_NUMBA_MIN_ROWS` rows (numba installed, :data:`USE_NUMBA` not False) this is
+    the compiled pass of :func:`compute_chunked` (one read of ``Z``, which it leaves as
+    it is; numba is loaded for it); else numpy, in place. Rows
     sorted by unit (the common layout of panel files) skip the sort of the keys. The
     reference point is the mean of the first rows (any point near the data will do);
     rows are centred on it, then on their unit means, before any product is taken
@@ -243,6 +246,12 @@ def partial_inplace(Z: np.ndarray, keys: np.ndarray) -> Partial:
     keys = np.asarray(keys)
     if n == 0:
         return partial(Z, keys)
+    if _kernels_for(n, cold=_NUMBA_MIN_ROWS) is not None:
+        # the compiled pass of compute_chunked reads the block once, in place, and leaves
+        # Z as it is; an out-of-core pass reads many blocks, so numba's start-up pays
+        ref = Z[:4096].mean(axis=0)
+        ukeys, counts, offsets, within = _pass(Z, Z[:, :0], keys, ref, cold=_NUMBA_MIN_ROWS)
+        return _finish(n, ref, counts, offsets, within, ukeys)
     groups = _sorted_groups(keys)
     if groups is not None:
         ukeys, counts, starts = groups
@@ -562,10 +571,13 @@ def _numba_kernels():
     return _kernels or None
 
 
-def _kernels_for(n):
-    """The compiled kernels if they are to be used for ``n`` rows, else None (numpy)."""
+def _kernels_for(n, cold=None):
+    """The compiled kernels if they are to be used for ``n`` rows, else None (numpy).
+    ``cold``: from how many rows numba is loaded when it is not yet (default
+    :data:`_NUMBA_COLD_ROWS`)."""
     if USE_NUMBA is None:
-        if n < _NUMBA_MIN_ROWS or (n < _NUMBA_COLD_ROWS and "numba" not in sys.modules):
+        cold = _NUMBA_COLD_ROWS if cold is None else cold
+        if n < _NUMBA_MIN_ROWS or (n < cold and "numba" not in sys.modules):
             return None
     elif not USE_NUMBA:
         return None
@@ -692,12 +704,13 @@ def _sorted_runs(keys, kern):
     return keys[starts], counts, starts
 
 
-def _pass(X, Y, keys, ref):
+def _pass(X, Y, keys, ref, cold=None):
     """``(ukeys, counts, offsets, within)`` of the rows ``[X, Y]`` grouped by ``keys``,
-    about ``ref`` (rules above; numba or numpy as :data:`USE_NUMBA` says)."""
+    about ``ref`` (rules above; numba or numpy as :data:`USE_NUMBA` says, ``cold`` as in
+    :func:`_kernels_for`)."""
     n, k = X.shape
     p = k + Y.shape[1]
-    kern = _kernels_for(n)
+    kern = _kernels_for(n, cold)
     groups = _sorted_runs(keys, kern)
     if groups is not None:
         ukeys, counts, starts = groups

@@ -48,6 +48,11 @@ def _check_ids(pdf, unit, time):
 
 
 def _sorted_unique(values, what):
+    if values.dtype.kind in "iu" and len(values):  # integers in a short range: a count
+        lo, hi = values.min(), values.max()
+        if int(hi) - int(lo) <= 4 * len(values) + 1024:
+            seen = np.bincount(values - lo, minlength=int(hi) - int(lo) + 1)
+            return (np.flatnonzero(seen) + lo).astype(values.dtype)
     try:
         return np.unique(values)
     except TypeError as exc:
@@ -86,8 +91,18 @@ def structure_block(pdf, unit, time) -> StructurePiece:
     masks = np.zeros((0, _words(len(occ))), dtype=np.uint64)
     if len(keys) == 0:
         return StructurePiece(0, keys, np.zeros(0, np.int64), occ, masks)
+    pos = _positions(occ, tvals)
+    runs = suffstats._sorted_groups(keys) if keys.dtype.kind in "iu" else None
+    if runs is not None:  # units sorted (the usual layout): OR the bits over each run
+        ukeys, counts, starts = runs
+        masks = np.zeros((len(ukeys), _words(len(occ))), dtype=np.uint64)
+        for w in range(masks.shape[1]):
+            bits = np.left_shift(np.uint64(1), (pos % 64).astype(np.uint64))
+            if masks.shape[1] > 1:
+                bits[(pos // 64) != w] = 0
+            masks[:, w] = np.bitwise_or.reduceat(bits, starts)
+        return StructurePiece(len(keys), ukeys, counts, occ, masks)
     ukeys, codes = _codes(keys)
-    pos = np.searchsorted(occ, tvals)
     counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
     masks = np.zeros((len(ukeys), _words(len(occ))), dtype=np.uint64)
     for w in range(masks.shape[1]):
@@ -95,6 +110,18 @@ def structure_block(pdf, unit, time) -> StructurePiece:
         bits = np.left_shift(np.uint64(1), (pos[sel] % 64).astype(np.uint64))
         np.bitwise_or.at(masks[:, w], codes[sel], bits)
     return StructurePiece(len(keys), ukeys, counts, occ, masks)
+
+
+def _positions(occ, tvals):
+    """Position of each time value among the sorted occasions ``occ``."""
+    if len(occ) and occ.dtype.kind in "iu" and tvals.dtype == occ.dtype:
+        lo = occ[0]
+        span = int(occ[-1]) - int(lo) + 1
+        if span <= 4 * len(tvals) + 1024:  # a look-up table instead of a binary search
+            table = np.zeros(span, dtype=np.int64)
+            table[occ - lo] = np.arange(len(occ))
+            return table[tvals - lo]
+    return np.searchsorted(occ, tvals)
 
 
 def _remap(piece: StructurePiece, occasions: np.ndarray) -> np.ndarray:
@@ -290,8 +317,11 @@ def _build_Z(sub: pd.DataFrame, spec: BlockSpec) -> np.ndarray:
     n, k = len(sub), len(spec.terms)
     Z = np.empty((n, k + 1))
     if spec.plain is not None:
-        for j, c in enumerate(spec.plain):
-            Z[:, j] = 1.0 if c is None else sub[c].to_numpy(dtype=float)
+        src = [None if c is None else sub[c].to_numpy(dtype=float, na_value=np.nan)
+               for c in spec.plain]
+        for a in range(0, n, _FILL_ROWS):  # row blocks: each block of Z stays in cache
+            for j, v in enumerate(src):
+                Z[a:a + _FILL_ROWS, j] = 1.0 if v is None else v[a:a + _FILL_ROWS]
     else:
         from formulaic import Formula
 
@@ -311,12 +341,33 @@ def _build_Z(sub: pd.DataFrame, spec: BlockSpec) -> np.ndarray:
         for j, o in enumerate(spec.occasions):
             Z[:, k0 + j] = tv == o
     if spec.outcome_expr is None:
-        Z[:, k] = sub[spec.outcome].to_numpy(dtype=float)
+        Z[:, k] = sub[spec.outcome].to_numpy(dtype=float, na_value=np.nan)
     else:
         from ..formula import outcome_values
 
         Z[:, k] = outcome_values(spec.outcome_expr, sub)
     return Z
+
+
+#: rows per block when the columns are written into ``[X, y]``
+_FILL_ROWS = 8192
+
+
+def _complete_fast(pdf: pd.DataFrame, spec: BlockSpec):
+    """``(Z, maxabs)`` of a partition whose used columns are all columns of ``[X, y]`` as
+    they are (no transform) and all complete and finite, checked in one sweep over ``Z``
+    (:func:`bayespanel.suffstats.column_range`); None when the partition needs
+    :func:`complete_rows` (a missing or infinite value, which it drops or names, or a
+    transform)."""
+    if spec.plain is None or spec.outcome_expr is not None:
+        return None
+    if not set(spec.used) <= {c for c in spec.plain if c is not None} | {spec.outcome}:
+        return None
+    Z = _build_Z(pdf, spec)
+    lo, hi, finite = suffstats.column_range(Z[:, :-1], Z[:, -1])
+    if not finite.all():
+        return None
+    return Z, np.maximum(np.abs(lo), np.abs(hi))
 
 
 def complete_rows(pdf: pd.DataFrame, spec: BlockSpec):
@@ -365,15 +416,21 @@ def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
     """Rows of one partition: listwise deletion, ``[X, y]``, its :class:`Partial` (and the
     partition's structure, over all its rows, when ``spec.structure``)."""
     st = structure_block(pdf, spec.unit, spec.time) if spec.structure else None
-    sub, keep, missing, Z = complete_rows(pdf, spec)
+    fast = _complete_fast(pdf, spec)
+    if fast is not None:  # every row complete
+        sub, (Z, maxabs) = pdf, fast
+        missing, n_dropped = np.zeros(len(spec.used), np.int64), 0
+    else:
+        sub, keep, missing, Z = complete_rows(pdf, spec)
+        maxabs = np.abs(Z).max(axis=0) if len(Z) else np.zeros(Z.shape[1])
+        n_dropped = int((~keep).sum())
     keys = sub[spec.unit].to_numpy()
-    maxabs = np.abs(Z).max(axis=0) if len(Z) else np.zeros(Z.shape[1])
     Zrows = Z.copy() if spec.unit_cp else None
     part = suffstats.partial_inplace(Z, keys)
-    if st is not None and keep.all() and len(st.keys) == len(part.keys):
+    if st is not None and n_dropped == 0 and len(st.keys) == len(part.keys):
         st.keys, st.counts = part.keys, part.counts  # the same units and counts: share them
     ucp = None if Zrows is None else _unit_cp(Zrows, keys, part)
-    return DesignPiece(len(pdf), missing, int((~keep).sum()), maxabs, part, ucp, st)
+    return DesignPiece(len(pdf), missing, n_dropped, maxabs, part, ucp, st)
 
 
 def _unit_cp(Z, keys, part) -> np.ndarray:

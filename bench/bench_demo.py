@@ -1,0 +1,100 @@
+"""Benchmark of issue 18, item 6: the demo end to end, this code against an earlier commit.
+
+    python bench/bench_demo.py                     # against BASELINE, one timed run each
+    python bench/bench_demo.py --baseline REF --repeat 2
+
+``python -m bayespanel demo`` (all five models at the default 4 chains x 1,000 draws,
+the six reference fits, LOO at both levels, the comparison, results.json and the report)
+runs in fresh processes: once with this tree and once with the tree of ``--baseline``
+(default :data:`BASELINE`, the main branch before the issue's item 6), extracted with
+``git archive`` into a temporary folder (the repository's worktrees are not touched), so
+the old path stays callable after the change lands. Each side first runs once untimed
+(numba's and PyTensor's caches, in a private compile directory shared by both, so both
+find their compiled code); then the timed runs alternate old, new, old, new, ... so
+that a change of the machine's load during the run hits both sides alike. Prints the
+wall-clock seconds of each run, the ratio new / old of the medians (target: at most 0.5)
+and the load average at the start and end (the machine is shared: the ratio is the
+figure to read).
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import shutil
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+#: main on 2026-12-02 before issue 18 items 4 to 6 landed
+BASELINE = "ecd5cc0"
+
+
+def _load():
+    return " ".join(f"{x:.1f}" for x in os.getloadavg())
+
+
+def extract(ref: str, into: Path) -> Path:
+    """The package tree of commit ``ref`` in ``into`` (``git archive``, no worktree)."""
+    into.mkdir(parents=True, exist_ok=True)
+    archive = subprocess.run(["git", "-C", str(ROOT), "archive", ref, "bayespanel"],
+                             capture_output=True, check=True).stdout
+    subprocess.run(["tar", "-x", "-C", str(into)], input=archive, check=True)
+    return into
+
+
+def run_demo(tree: Path, out: Path, env: dict) -> float:
+    """Wall-clock seconds of one ``python -m bayespanel demo`` with ``tree`` first on the
+    path, in a fresh process."""
+    shutil.rmtree(out, ignore_errors=True)
+    full = dict(os.environ, **env, PYTHONPATH=str(tree))
+    t0 = time.perf_counter()
+    proc = subprocess.run([sys.executable, "-m", "bayespanel", "demo", "--out", str(out),
+                           "--quiet"], env=full, capture_output=True, text=True)
+    seconds = time.perf_counter() - t0
+    if proc.returncode not in (0, 1):  # 1: a sampling problem reported, still a full run
+        raise RuntimeError(f"demo failed in {tree}:\n{proc.stderr[-2000:]}")
+    if not (out / "report.html").exists():
+        raise RuntimeError(f"demo in {tree} wrote no report:\n{proc.stderr[-2000:]}")
+    return seconds
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--baseline", default=BASELINE, help="commit of the old path")
+    ap.add_argument("--repeat", type=int, default=1, help="timed runs of each side")
+    args = ap.parse_args(argv)
+    tmp = Path(tempfile.mkdtemp(prefix="bayespanel_bench_demo_"))
+    env = {"PYTENSOR_FLAGS": f"base_compiledir={tmp / 'compiledir'}"}
+    try:
+        old = extract(args.baseline, tmp / "old")
+        sides = {"old": old, "new": ROOT}
+        print(f"# bench_demo: {os.cpu_count()} CPUs; load average at start {_load()}; old "
+              f"= {args.baseline}, new = {ROOT}", flush=True)
+        for name, tree in sides.items():
+            s = run_demo(tree, tmp / f"out_{name}", env)
+            print(f"  warm-up {name}: {s:.1f} s", flush=True)
+        times = {"old": [], "new": []}
+        for r in range(args.repeat):
+            for name, tree in sides.items():
+                s = run_demo(tree, tmp / f"out_{name}", env)
+                times[name].append(s)
+                print(f"  run {r + 1} {name}: {s:.1f} s (load {_load()})", flush=True)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+    old_s, new_s = statistics.median(times["old"]), statistics.median(times["new"])
+    print(f"\n# load average at end {_load()} (other work on the machine inflates wall-clock "
+          "times)")
+    print("\n# ratios (all measured in this run)")
+    print(f"  {'demo end to end, new / old (median of ' + str(args.repeat) + ')':<60} "
+          f"{new_s / old_s:8.2f}   target <= 0.5 (issue 18, item 6)")
+    print(f"  {'demo seconds: old, new':<60} {old_s:8.1f} {new_s:8.1f}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
