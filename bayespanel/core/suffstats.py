@@ -207,7 +207,7 @@ def quad_terms(stats: SuffStats, b: np.ndarray):
     return W, S
 
 
-def _sorted_groups(keys):
+def sorted_groups(keys):
     """``(ukeys, counts, starts)`` when ``keys`` are sorted, else ``None``."""
     if keys.dtype == object or not bool(np.all(keys[1:] >= keys[:-1])):
         return None
@@ -252,7 +252,7 @@ def partial_inplace(Z: np.ndarray, keys: np.ndarray) -> Partial:
         ref = Z[:4096].mean(axis=0)
         ukeys, counts, offsets, within = _pass(Z, Z[:, :0], keys, ref, cold=_NUMBA_MIN_ROWS)
         return _finish(n, ref, counts, offsets, within, ukeys)
-    groups = _sorted_groups(keys)
+    groups = sorted_groups(keys)
     if groups is not None:
         ukeys, counts, starts = groups
         codes = np.repeat(np.arange(len(starts)), counts)
@@ -694,7 +694,7 @@ def _unpack(upper, p):
 def _sorted_runs(keys, kern):
     """``(ukeys, counts, starts)`` when ``keys`` are sorted, else ``None``."""
     if kern is None or keys.dtype.kind not in "iu" or len(keys) == 0:
-        return _sorted_groups(keys)
+        return sorted_groups(keys)
     starts = np.empty(len(keys), dtype=np.int64)
     m = kern["runs"](keys, starts)
     if m < 0:

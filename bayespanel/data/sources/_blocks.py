@@ -92,7 +92,7 @@ def structure_block(pdf, unit, time) -> StructurePiece:
     if len(keys) == 0:
         return StructurePiece(0, keys, np.zeros(0, np.int64), occ, masks)
     pos = _positions(occ, tvals)
-    runs = suffstats._sorted_groups(keys) if keys.dtype.kind in "iu" else None
+    runs = suffstats.sorted_groups(keys) if keys.dtype.kind in "iu" else None
     if runs is not None:  # units sorted (the usual layout): OR the bits over each run
         ukeys, counts, starts = runs
         masks = np.zeros((len(ukeys), _words(len(occ))), dtype=np.uint64)
