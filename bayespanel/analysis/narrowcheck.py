@@ -41,7 +41,7 @@ from ..core.jsonsafe import json_record
 from ..core.terms import AS_IS, WITHIN, parse
 
 __all__ = ["RATIO_THRESHOLD", "FEW_UNITS", "compare_uncertainty", "narrow_interval_check",
-           "narrow_message"]
+           "narrow_message", "message_parts", "serial_reading"]
 
 #: a posterior SD below this share of the cluster-robust SE is flagged (rule of thumb)
 RATIO_THRESHOLD = 0.5
@@ -89,7 +89,8 @@ def compare_uncertainty(posterior_sd, reference_se, threshold: float = RATIO_THR
 
 
 def narrow_interval_check(fits, *, threshold: float = RATIO_THRESHOLD, errors: str = "iid",
-                          n_units: int | None = None, cov: str = "cluster") -> dict:
+                          n_units: int | None = None, cov: str = "cluster",
+                          serial: str | None = None) -> dict:
     """The narrow-interval check of a run: its ``results.json`` record.
 
     Parameters
@@ -105,13 +106,16 @@ def narrow_interval_check(fits, *, threshold: float = RATIO_THRESHOLD, errors: s
         Units (clusters) behind the SEs.
     cov : str
         The reference covariance compared with (``"cluster"`` or ``"cr2"``).
+    serial : str, optional
+        The serial-correlation test's reading when it found correlation, added to the
+        message.
 
     Returns
     -------
     dict
         ``threshold``, ``cov``, ``rows`` (one per model and term: model, title,
         reference, term, posterior_sd, reference_se, ratio, narrow) and ``message``
-        (plain words when a row is flagged, else ``None``).
+        (plain words when a row is flagged, else ``None``: :func:`narrow_message`).
     """
     rows = []
     for f in fits:
@@ -124,22 +128,36 @@ def narrow_interval_check(fits, *, threshold: float = RATIO_THRESHOLD, errors: s
                 "ratio": r["ratio"], "narrow": bool(r["narrow"])}))
     return {"threshold": float(threshold), "cov": cov, "rows": rows,
             "message": narrow_message(rows, threshold=threshold, errors=errors,
-                                      n_units=n_units)}
+                                      n_units=n_units, serial=serial)}
+
+
+def serial_reading(tests) -> str | None:
+    """The sentence the warning adds when the run's serial-correlation test (its
+    ``tests`` records) found correlation at the 5% level, else ``None``."""
+    t = next((t for t in tests or [] if t.get("name") == "serial_correlation"
+              and not t.get("skipped")), None)
+    p = None if t is None else t.get("reported_p_value")
+    if p is None or not p < 0.05:
+        return None
+    return ("The serial-correlation test points the same way ("
+            + t["conclusion"].split(" (")[0] + ").")
 
 
 def _num(x: float) -> str:
     return f"{x:.3g}"
 
 
-def narrow_message(rows, *, threshold: float = RATIO_THRESHOLD, errors: str = "iid",
-                   n_units: int | None = None) -> str | None:
-    """What the flagged rows mean and what to do, in plain words (``None`` when none is)."""
+def message_parts(rows, *, threshold: float = RATIO_THRESHOLD, errors: str = "iid",
+                  n_units: int | None = None, serial: str | None = None) -> dict | None:
+    """The warning in parts, for outputs that lay it out (the report lists the causes):
+    ``lead`` (what is too narrow), ``causes`` (each usual cause with its remedy) and
+    ``notes`` (what to bear in mind); ``None`` when no row is flagged."""
     flagged = [r for r in rows if r.get("narrow")]
     if not flagged:
         return None
     worst = min(flagged, key=lambda r: r["ratio"])
     models = list(dict.fromkeys(r["title"] for r in flagged))
-    text = (f"Intervals too narrow: in {len(flagged)} coefficient(s) of "
+    lead = (f"Intervals too narrow: in {len(flagged)} coefficient(s) of "
             f"{', '.join(models)} the posterior SD is less than {threshold:g} times the "
             "cluster-robust SE of the matching reference fit (worst: "
             f"{worst['term']} in {worst['title']}, SD {_num(worst['posterior_sd'])} against "
@@ -153,20 +171,38 @@ def narrow_message(rows, *, threshold: float = RATIO_THRESHOLD, errors: str = "i
              if covariates else "add a random slope for that covariate (--random-slopes)")
     bell = ("; leaving such slopes out makes within-effect intervals too narrow (Bell, "
             "Fairbrother and Jones 2019, Quality & Quantity 53(2)).")
+    causes = []
     if with_units and errors == "ar1":
-        text += (" The models already allow AR(1) errors within units, so the likelier cause "
-                 "is within effects that differ between units: " + slope + bell)
+        causes.append("Within effects that differ between units (the models already allow "
+                      "AR(1) errors within units, so this is the likelier cause): " + slope
+                      + bell)
     elif with_units:
-        text += (" Two usual causes: (1) errors correlated over time within units: refit "
-                 "with AR(1) errors (errors = \"ar1\" in the analysis file, --errors ar1) and "
-                 "see the serial-correlation test; (2) within effects that differ between "
-                 "units: " + slope + bell)
+        causes += ["Errors correlated over time within units: refit with AR(1) errors "
+                   "(errors = \"ar1\" in the analysis file, --errors ar1) and see the "
+                   "serial-correlation test.",
+                   "Within effects that differ between units: " + slope + bell]
     if len(with_units) < len(flagged):
-        text += (" The pooled model has no unit intercepts, so lasting differences between "
-                 "units count as independent noise; prefer a model with unit intercepts.")
+        causes.append("No unit intercepts (the pooled model): lasting differences between "
+                      "units count as independent noise; prefer a model with unit "
+                      "intercepts.")
+    notes = []
+    if serial:
+        notes.append(serial)
     if n_units is not None and n_units < FEW_UNITS:
-        text += (f" With {n_units} units the cluster-robust SE is itself imprecise (few "
-                 "clusters), so read the ratio as a warning sign, not a measurement.")
-    text += (f" (Rule of thumb: a ratio below {threshold:g} means the robust variance is "
-             f"more than {1 / threshold ** 2:.0f} times the model's.)")
-    return text
+        notes.append(f"With {n_units} units the cluster-robust SE is itself imprecise (few "
+                     "clusters), so read the ratio as a warning sign, not a measurement.")
+    notes.append(f"Rule of thumb: a ratio below {threshold:g} means the robust variance is "
+                 f"more than {1 / threshold ** 2:.0f} times the model's.")
+    return {"lead": lead, "causes": causes, "notes": notes}
+
+
+def narrow_message(rows, **kwargs) -> str | None:
+    """What the flagged rows mean and what to do, in plain words, as one text (``None``
+    when none is flagged); keyword arguments as :func:`message_parts`."""
+    parts = message_parts(rows, **kwargs)
+    if parts is None:
+        return None
+    causes = parts["causes"]
+    head = "Usual causes and remedies: " if len(causes) > 1 else "Likely cause and remedy: "
+    return " ".join([parts["lead"], head + " ".join(
+        f"({i}) {c}" for i, c in enumerate(causes, 1)), *parts["notes"]])

@@ -978,7 +978,7 @@ def _interval_check(settings, design, posts, ref_fits, tests, say):
     (:func:`bayespanel.narrowcheck.narrow_interval_check`); a reference fit the run did
     not make, or made with classical errors, is fitted here with CR1 by unit."""
     from .. import reference as ref
-    from ..analysis.narrowcheck import narrow_interval_check
+    from ..analysis.narrowcheck import narrow_interval_check, serial_reading
 
     cov = settings.cov if settings.cov in ("cluster", "cr2") else "cluster"
     fits = []
@@ -997,12 +997,8 @@ def _interval_check(settings, design, posts, ref_fits, tests, say):
         fits.append({"model": name, "title": kinds.model(name).title, "reference": rname,
                      "reference_title": kinds.reference(rname).title, "sd": post.error,
                      "se": res.error})
-    out = narrow_interval_check(fits, errors=settings.errors, n_units=design.n_units, cov=cov)
-    serial = next((t for t in tests if t.get("name") == "serial_correlation"
-                   and not t.get("skipped")), None)
-    if out["message"] and serial and (serial.get("reported_p_value") or 1) < 0.05:
-        out["message"] += (" The serial-correlation test points the same way ("
-                           + serial["conclusion"].split(" (")[0] + ").")
+    out = narrow_interval_check(fits, errors=settings.errors, n_units=design.n_units, cov=cov,
+                                serial=serial_reading(tests))
     flagged = sum(r["narrow"] for r in out["rows"])
     say(f"narrow-interval check: {flagged} of {len(out['rows'])} posterior SDs below "
         f"{out['threshold']:g} x the cluster-robust SE")

@@ -120,11 +120,27 @@ def _interval_note(r) -> list:
                  "check are under ", tag("a", "Correlation over time within units",
                                          href="#serial"), "."])
     if check.get("message"):
-        return [note("caution", join([check["message"], more]), "Intervals.")]
+        return [note("caution", join([_warning_body(r, check), more]), "Intervals.")]
     return [note("fine", join([
         f"Every posterior SD is at least {check['threshold']:g} times the cluster-robust SE "
         "of the matching reference fit, so the intervals are not narrower than the data "
         "support by that rule of thumb.", more]), "Intervals.")]
+
+
+def _warning_body(r, check) -> Safe:
+    """The narrow-interval warning laid out: what is too narrow, the causes and remedies
+    as a list, what to bear in mind (the same words as ``interval_check.message``)."""
+    from ..analysis.narrowcheck import message_parts, serial_reading
+
+    parts = message_parts(check["rows"], threshold=check["threshold"],
+                          errors=r["settings"].get("errors", "iid"),
+                          n_units=r["data"]["sample"]["n_units"],
+                          serial=serial_reading(r.get("tests")))
+    if parts is None:  # a results file written otherwise: its message as it is
+        return esc(check["message"])
+    return join([parts["lead"],
+                 tag("ol", *[tag("li", c) for c in parts["causes"]], cls="bp-problems"),
+                 " ".join(parts["notes"])])
 
 
 def _failed_note(f) -> Safe:
@@ -548,7 +564,7 @@ def _serial(r) -> Safe:
                          f"than {1 / check['threshold'] ** 2:.0f} times the model's) is "
                          "flagged."))
         if check.get("message"):
-            out.append(note("caution", check["message"], "Intervals."))
+            out.append(note("caution", _warning_body(r, check), "Intervals."))
     if len(out) == 1:
         out.append(note("info", "No check of correlation over time was run (it needs the "
                         "rows and a numeric time column)."))
