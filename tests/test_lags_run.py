@@ -40,6 +40,7 @@ def test_data_record_and_notes_of_a_lagged_outcome():
     assert said[0].startswith("Initial conditions: ") and "by construction" in said[0]
     assert any("Nickell" in n for n in said) and any("biased upward" in n for n in said)
     assert any("Swamy" in n for n in said)
+    assert any(n.startswith("The Hausman test") and "Nickell" in n for n in said)
     assert not any("Swamy" in n for n in runner._dynamic_notes(_settings(re_method="ml"),
                                                                design))
 

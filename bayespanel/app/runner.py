@@ -1500,6 +1500,10 @@ def _dynamic_notes(settings, design) -> list[str]:
         said.append(WITH_AR1)
     if getattr(design, "initial", None) is None:
         said = said[1:]  # the design's own warning said it (the data stage's notes)
+    said.append(
+        "The Hausman test compares the random-effects fit with fixed effects, which a "
+        "lagged outcome biases in short panels (Nickell 1981): a difference between them "
+        "may come from that bias rather than from the random-effects assumption.")
     components = [n for n in settings.reference if kinds.reference(n).variance_components]
     if components and settings.re_method == "swamy-arora":
         said.append(
