@@ -172,6 +172,8 @@ def test_ar1_run_from_an_analysis_file(grunfeld_csv, tmp_path, capsys):
                if q["quantity"] == "correlation one step apart")
     assert got["mean"] == pytest.approx(want, rel=1e-10)
     assert "correlation one step apart" in stdout and "lag-one autocorrelation" in stdout
+    serial = next(t for t in res["tests"] if t["name"] == "serial_correlation")
+    assert serial["conclusion"].endswith("the Bayesian models here allow AR(1) errors for it")
     assert "lag1_within" in [c["statistic"] for c in m["ppc"]]
     html = (out / "report.html").read_text("utf-8")
     assert "allow AR(1) errors" in html and "outcomes one step apart" in html

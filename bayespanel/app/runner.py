@@ -931,7 +931,7 @@ def _time_reason(settings, design) -> str | None:
 SERIAL_TITLE = "Serial correlation of the errors (first differences, cluster-robust)"
 
 
-def _serial_test(design, time_reason, say) -> dict:
+def _serial_test(design, time_reason, say, errors="iid") -> dict:
     """The serial-correlation test of Wooldridge (2002, 10.5.4) as a ``tests`` record,
     its reading in plain words; a test that cannot run is recorded with the reason."""
     from ..reference.serial import serial_correlation_arrays
@@ -952,19 +952,19 @@ def _serial_test(design, time_reason, say) -> dict:
     except EstimationError as exc:
         return skipped(str(exc).removeprefix("serial-correlation test: "))
     reject = np.isfinite(t.f_p_value) and t.f_p_value < 0.05
+    remedy = ("the Bayesian models here allow AR(1) errors for it" if errors == "ar1" else
+              "refit with AR(1) errors (--errors ar1)")
     if not reject:
         reading = ("no evidence at the 5% level that a unit's errors are correlated over "
                    f"time (coefficient {t.coef:.3g}; -0.5 means uncorrelated)")
     elif t.coef > -0.5:
         reading = ("a unit's errors are positively correlated over time (p < 0.05; "
                    f"coefficient {t.coef:.3g}, where -0.5 means uncorrelated): intervals of "
-                   "models that assume independent occasions are too narrow; refit with AR(1) "
-                   "errors (--errors ar1)")
+                   f"models that assume independent occasions are too narrow; {remedy}")
     else:
         reading = ("a unit's errors are negatively correlated over time (p < 0.05; "
                    f"coefficient {t.coef:.3g}, where -0.5 means uncorrelated): models that "
-                   "assume independent occasions misstate their intervals; refit with AR(1) "
-                   "errors (--errors ar1)")
+                   f"assume independent occasions misstate their intervals; {remedy}")
     say("serial-correlation test: first-differenced residuals on their lag")
     return _floats({
         "name": "serial_correlation", "title": SERIAL_TITLE, "statistic": t.statistic,
@@ -1540,7 +1540,7 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
     if not settings.glm_reference and design.has_rows:
         with _isolated(failed, say, "serial_correlation", "Serial-correlation test",
                        "serial-correlation test"):
-            tests = tests + [_serial_test(design, time_reason, say)]
+            tests = tests + [_serial_test(design, time_reason, say, settings.errors)]
     # a model this design cannot hold (fixed effects without a covariate that varies
     # within units) is refused as bad input here, before anything is sampled
     labels = {name: design.labels(kinds.model(name).columns) for name in settings.models}

@@ -547,6 +547,12 @@ def _serial(r) -> Safe:
                             "correlated over time than these models' errors allow"
                             + ("." if ar1 else "; refit with --errors ar1."),
                             "Lag-one check."))
+        high = [m["title"] for m, s in checks if s["p_value"] > 0.975]
+        if high:
+            out.append(note("caution", f"{', '.join(high)}: the within residuals are less "
+                            "correlated over time than these models' errors make them"
+                            + (" (the AR(1) errors overstate their persistence)." if ar1
+                               else "."), "Lag-one check."))
     check = r.get("interval_check") or {}
     if check.get("rows"):
         rows = [[f"{label(x['term'])} · {x['title']}",
