@@ -26,6 +26,7 @@ BENCHES = [
     ("bench_speed.py", [], ["--quick"]),
     ("bench_ar1.py", [], ["--quick"]),
     ("bench_demo.py", ["--repeat", "2"], ["--repeat", "1"]),
+    ("ar1_real_panels.py", [], []),
 ]
 
 
