@@ -100,7 +100,7 @@ def test_occasion_loo_with_dropped_rows_and_occasion_effects(wage_panel):
         dsk = DaskPanel(as_dask(df, spanning(df, seed=2)), "nr", "year",
                         client="synchronous").design(FORMULA, occasion_effects=True)
     assert dsk.terms == mem.terms and "occasion[1981]" not in dsk.terms
-    assert dsk.kept_columns is not None and dsk.n_dropped > 0
+    assert dsk.source.kept_columns is not None and dsk.n_dropped > 0
     for kind, ue in [("random", "random"), ("within", "fixed")]:
         fd = draws_for(mem, kind, ue, seed=8)
         with warnings.catch_warnings():

@@ -20,10 +20,11 @@ from ..core import suffstats as _ss
 from ..core.errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
                      SpecificationError, choices_error)
 from .formula import dependency_message, outcome_values, safe_context, screen
+from .sources import InMemoryRows
 from ..kinds import COLUMNS, builder as builder_of
 from ..core.terms import BETWEEN, UNIT_MEAN, WITHIN, Term, labels as term_labels, occasion, parse
 
-__all__ = ["Design", "DesignSpec", "RowBlock", "KINDS", "group_means", "kind_transform", "check_stats",
+__all__ = ["Design", "DesignSpec", "KINDS", "group_means", "kind_transform", "check_stats",
            "check_terms", "check_flag", "refuse_complex", "occasion_label"]
 
 #: the column maps of matrices(kind), as the registry of model kinds lists them
@@ -48,18 +49,6 @@ class DesignSpec:
         if d["initial_conditions"] is None:
             del d["initial_conditions"]
         return d
-
-
-@dataclass(frozen=True)
-class RowBlock:
-    """Some estimation rows of a design, as a block function over its rows receives them
-    (:meth:`Design.run_rows`): the unit key of each row (the keys of the design's
-    statistics, ``design_suffstats().unit_keys``), its occasion, and ``Z = [X, y]`` in the
-    design's columns (after listwise deletion)."""
-
-    units: np.ndarray
-    time: np.ndarray
-    Z: np.ndarray
 
 
 def _plain(v):
@@ -121,13 +110,6 @@ def group_means(M: np.ndarray, starts: np.ndarray, counts: np.ndarray) -> np.nda
     return np.add.reduceat(M, starts, axis=0) / counts[:, None]
 
 
-def _maxabs(X: np.ndarray) -> np.ndarray:
-    """Largest absolute value of each column (no n x k temporary)."""
-    if X.shape[0] == 0:
-        return np.zeros(X.shape[1:])
-    return np.maximum(np.abs(X.max(axis=0)), np.abs(X.min(axis=0)))
-
-
 def kind_transform(terms, tv, tb, kind):
     """The columns of a design kind as linear maps of a row and of its unit mean.
 
@@ -164,56 +146,103 @@ def kind_transform(terms, tv, tb, kind):
 class Design:
     """Outcome, covariates and unit structure of one formula on one panel.
 
-    Build with :meth:`Panel.design` or :meth:`Design.from_panel`. See DEVELOPERS.md for the
-    fields. All arrays are float64 and rows are sorted by unit, then occasion.
+    Build with :meth:`Panel.design` or :meth:`Design.from_panel` (rows in memory), or
+    ``DaskPanel.design`` (a partitioned source). See DEVELOPERS.md for the fields.
+
+    A design works from the sufficient statistics of ``[X, y]`` and asks its ``source``
+    (:mod:`bayespanel.data.sources`) for what needs the rows: a source runs a block function
+    over its rows and merges the pieces (:meth:`run_rows`). ``X``, ``y``, ``unit_codes``,
+    ``time`` and ``rows`` (float64 arrays, rows sorted by unit, then occasion) are those of
+    a source that holds its rows (:attr:`has_rows`).
+
+    Parameters
+    ----------
+    source : InMemoryRows or DaskSource
+        Where the rows are.
+    terms : list of str
+        Labels of the columns of ``X``.
+    units : index
+        The unit labels, in code order.
+    outcome : str
+    spec : DesignSpec
+    stats : SuffStats, optional
+        The statistics of ``[X, y]`` (default: from the source's rows).
+    maxabs : array, optional
+        Largest absolute value of each column of ``[X, y]`` (default: from the rows).
+    n_dropped, dropped_by_column, n_input_rows, lags
+        What listwise deletion and lags left out (reported).
     """
 
-    #: whether the estimation rows are at hand (``X``, ``y``, ``unit_codes``, ``rows``,
-    #: ``time``); a design over a partitioned source (``data.sources.dask.DaskDesign``) holds
-    #: only statistics, and callers ask this rather than the design's type
-    has_rows = True
-
-    def __init__(self, *, y, X, terms, unit_codes, units, time, rows, outcome, spec,
-                 n_dropped=0, dropped_by_column=None, n_input_rows=None, stats=None,
-                 lags=None, maxabs=None):
-        self.y = np.ascontiguousarray(y, dtype=float)
-        self.X = np.ascontiguousarray(X, dtype=float)
+    def __init__(self, source, *, terms, units, outcome, spec, stats=None, maxabs=None,
+                 n_dropped=0, dropped_by_column=None, n_input_rows=None, lags=None):
+        self.source = source
         self.terms = list(terms)
-        self.unit_codes = np.asarray(unit_codes, dtype=np.int64)
         self.units = pd.Index(units)
-        self.time = np.asarray(time)
-        self.rows = pd.Index(rows)
         self.outcome = outcome
         self.spec = spec
         self.n_dropped = int(n_dropped)
         self.dropped_by_column = dict(dropped_by_column or {})
-        self.n_input_rows = int(n_input_rows if n_input_rows is not None else len(self.y))
         #: the lags of the formula and the rows they left out (bayespanel.data.lags.LagReport),
         #: None when the formula has no lag(...)
         self.lags = lags
         #: the initial-conditions columns (bayespanel.data.initial.InitialConditions), or None
         self.initial = None
-        if np.any(self.unit_codes[1:] < self.unit_codes[:-1]):
-            raise ValueError("Design rows must be sorted by unit")
-        self.T = np.bincount(self.unit_codes, minlength=len(self.units)).astype(np.int64)
-        if np.any(self.T == 0):
+        if stats is None:
+            stats = source.statistics(self.terms + [self.outcome])
+        self._stats = stats
+        self.n_input_rows = int(n_input_rows if n_input_rows is not None else stats.n)
+        self.T = np.asarray(stats.unit_count, dtype=np.int64).copy()
+        if len(self.T) != len(self.units) or np.any(self.T == 0):
             raise ValueError("every unit in a Design needs at least one row")
         self.starts = np.concatenate([[0], np.cumsum(self.T)[:-1]]).astype(np.int64)
         self._means = None
-        if stats is None:
-            stats = _ss.compute_chunked(self.X, self.y, self.unit_codes,
-                                        names=self.terms + [self.outcome])
-        self._stats = stats
         self._cache = {}
         # within variation from the within block of the statistics of [X, y]
+        if maxabs is None:
+            maxabs = source.maxabs()
         within_sd = np.sqrt(np.maximum(np.diag(stats.within)[:-1], 0.0) / max(self.n, 1))
-        scale = np.maximum(_maxabs(self.X) if maxabs is None else maxabs, 1.0)
+        scale = np.maximum(np.asarray(maxabs)[:len(self.terms)], 1.0)
         self.varies_within = pd.Series(within_sd > _VARY_TOL * scale, index=self.terms)
+
+    # ------------------------------------------------------------------ rows
+    @property
+    def has_rows(self) -> bool:
+        """Whether the estimation rows are at hand (``X``, ``y``, ``unit_codes``, ``rows``,
+        ``time``); a design over a partitioned source holds only statistics, and callers
+        ask this rather than the design's type or source."""
+        return bool(self.source.has_rows)
+
+    def _rows(self, name):
+        if not self.source.has_rows:
+            raise AttributeError(
+                f"this design has no {name!r}: its rows stay in their source "
+                f"({type(self.source).__name__}); ask design.has_rows, and use its statistics "
+                "(suffstats) or design.run_rows")
+        return getattr(self.source, name)
+
+    y = property(lambda self: self._rows("y"), doc="The outcome on the estimation rows.")
+    X = property(lambda self: self._rows("X"), doc="The covariates (n x k).")
+    unit_codes = property(lambda self: self._rows("unit_codes"),
+                          doc="The unit code (0..N-1) of each row.")
+    time = property(lambda self: self._rows("time"), doc="The occasion of each row.")
+    rows = property(lambda self: self._rows("rows"), doc="The panel's labels of the rows.")
+
+    def run_rows(self, block, merge, shared=None):
+        """Run ``block(rows, shared)`` over the estimation rows, each block a
+        :class:`~bayespanel.data.sources.RowBlock` (unit keys, occasions, ``Z = [X, y]`` in the
+        design's columns), and merge the pieces with ``merge`` (a list of pieces -> one
+        piece): one block in memory, one per partition on a partitioned source."""
+        return self.source.run(block, merge, shared)
+
+    def row_times(self, units, ranks):
+        """The occasions of the rows ``ranks`` (0 = first) of units ``units`` (codes), or
+        ``None`` when the source cannot tell without reading the rows."""
+        return self.source.row_times(units, ranks)
 
     # ------------------------------------------------------------------ sizes
     @property
     def n(self) -> int:
-        return int(len(self.y))
+        return int(self._stats.n)
 
     @property
     def n_units(self) -> int:
@@ -221,7 +250,7 @@ class Design:
 
     @property
     def k(self) -> int:
-        return int(self.X.shape[1])
+        return len(self.terms)
 
     @property
     def has_intercept(self) -> bool:
@@ -241,9 +270,11 @@ class Design:
 
     # ------------------------------------------------------------------ parts
     def unit_means(self) -> np.ndarray:
-        """Unit means of the columns of X (N x k), over the estimation sample."""
+        """Unit means of the columns of X (N x k), over the estimation sample (from the
+        rows when they are at hand, else from the statistics)."""
         if self._means is None:
-            self._means = group_means(self.X, self.starts, self.T)
+            self._means = (group_means(self.X, self.starts, self.T) if self.has_rows
+                           else self._stats.unit_mean[:, :-1].copy())
         return self._means
 
     def between_rows(self) -> np.ndarray:
@@ -262,10 +293,25 @@ class Design:
         return self._cache["unit_labels"]
 
     def y_unit_means(self) -> np.ndarray:
+        if not self.has_rows:
+            return self._stats.unit_mean[:, -1].copy()
         return group_means(self.y, self.starts, self.T)
 
     def y_within(self) -> np.ndarray:
         return self.y - self.y_unit_means()[self.unit_codes]
+
+    def unit_cross_products(self, kind: str = "random") -> np.ndarray:
+        """Per-unit within cross-products of ``[M, y]`` (N x p x p), in unit order, with
+        ``M`` the columns of ``kind`` (from those of ``[X, y]``, which the source gives:
+        on a partitioned source collected in the design pass with ``cluster=True``, else
+        by one more pass now)."""
+        ucp = self.source.unit_cross_products()
+        if kind in ("pooled", "random", "within", "between"):
+            return ucp
+        from ..core.derived import augment_unit_cp
+
+        A, _, _ = self._transform(kind)
+        return augment_unit_cp(ucp, A)
 
     def matrices(self, kind: str):
         """The covariate matrix and its labels for one kind of model.
@@ -283,6 +329,13 @@ class Design:
         """
         if kind not in KINDS:
             raise choices_error("kind", kind, KINDS)
+        if not self.has_rows:
+            raise EstimationError(
+                "this design keeps no rows in memory (a partitioned source such as a Dask "
+                "panel), so it has no design matrices; use design.suffstats(kind) for the "
+                "statistics, bp.reference.fit_design(design, ...) or "
+                "bp.reference.<estimator>(dask_panel, formula) for reference fits, and "
+                "design.build(bp.models.RandomIntercept) for a Bayesian model")
         if kind in ("pooled", "random"):
             return self.X.copy(), list(self.terms)
         if kind == "between":
@@ -388,18 +441,6 @@ class Design:
             return A, B
         return np.eye(p), np.zeros((p, p))
 
-    def run_rows(self, block, merge, shared=None):
-        """Run ``block(rows, shared)`` over the estimation rows (:class:`RowBlock`) and
-        merge the pieces with ``merge`` (a list of pieces -> one piece). The rows are at
-        hand here: one block."""
-        rows = RowBlock(units=self.unit_codes, time=self.time,
-                        Z=np.column_stack([self.X, self.y]))
-        return merge([block(rows, shared)])
-
-    def row_times(self, units, ranks):
-        """The occasions of the rows ``ranks`` (0 = first) of units ``units`` (codes)."""
-        return self.time[self.starts[np.asarray(units)] + np.asarray(ranks)]
-
     def build(self, builder, priors=None, **kwargs):
         """A Gaussian model on this design: the builder's ``from_design``; the statistics
         come from the design and the rows are made only if the model needs them.
@@ -455,10 +496,10 @@ class Design:
         rowmask = np.asarray(rowmask, dtype=bool)
         codes = self.unit_codes[rowmask]
         present, new_codes = np.unique(codes, return_inverse=True)
-        out = Design(y=self.y[rowmask], X=self.X[rowmask], terms=self.terms,
-                      unit_codes=new_codes, units=self.units[present], time=self.time[rowmask],
-                      rows=self.rows[rowmask], outcome=self.outcome, spec=self.spec,
-                      lags=self.lags)
+        rows = InMemoryRows(y=self.y[rowmask], X=self.X[rowmask], unit_codes=new_codes,
+                            time=self.time[rowmask], rows=self.rows[rowmask])
+        out = Design(rows, terms=self.terms, units=self.units[present],
+                     outcome=self.outcome, spec=self.spec, lags=self.lags)
         out.initial = self.initial  # its columns stay those of the whole sample
         return out
 
@@ -617,10 +658,10 @@ class Design:
                           occasion_effects=bool(occasion_effects),
                           initial_conditions=initial_conditions if dynamic else None)
         rows = frame.index if idx is None else frame.index.take(idx)
-        design = cls(y=y, X=X, terms=terms, unit_codes=units_codes, units=units,
-                     time=time, rows=rows, outcome=screened.outcome,
+        source = InMemoryRows(y=y, X=X, unit_codes=units_codes, time=time, rows=rows)
+        design = cls(source, terms=terms, units=units, outcome=screened.outcome,
                      spec=spec, n_dropped=n_dropped, dropped_by_column=dropped_by_column,
-                     n_input_rows=len(frame), stats=stats, maxabs=maxabs[:-1],
+                     n_input_rows=len(frame), stats=stats, maxabs=maxabs,
                      lags=None if lagged is None else lagged.report)
         if dynamic:
             if initial_conditions:
@@ -645,12 +686,13 @@ class Design:
         terms = list(self.terms) + labels
         stats, maxabs = _check_columns(X, self.y, terms, self.outcome, self.unit_codes,
                                        _ss.column_range(X, self.y)[:2])
-        out = Design(y=self.y, X=X, terms=terms, unit_codes=self.unit_codes,
-                     units=self.units, time=self.time, rows=self.rows, outcome=self.outcome,
+        source = InMemoryRows(y=self.y, X=X, unit_codes=self.unit_codes, time=self.time,
+                              rows=self.rows)
+        out = Design(source, terms=terms, units=self.units, outcome=self.outcome,
                      spec=self.spec, n_dropped=self.n_dropped,
                      dropped_by_column=self.dropped_by_column,
                      n_input_rows=self.n_input_rows, stats=stats, lags=self.lags,
-                     maxabs=maxabs[:-1])
+                     maxabs=maxabs)
         out.initial = info
         return out
 

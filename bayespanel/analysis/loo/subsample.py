@@ -276,7 +276,7 @@ class OccasionPiece:
 
 def occasion_block(rows, look: RowLookup) -> OccasionPiece:
     """The approximation of every row of one block (a
-    :class:`~bayespanel.data.design.RowBlock`), and its sampled rows."""
+    :class:`~bayespanel.data.sources.RowBlock`), and its sampled rows."""
     Z, times = rows.Z, rows.time
     codes = np.searchsorted(look.keys, rows.units)
     r = Z @ look.u + look.const[codes]

@@ -399,11 +399,11 @@ def complete_rows(pdf: pd.DataFrame, spec: BlockSpec):
     return sub, keep, missing, Z
 
 
-def rows_block(pdf: pd.DataFrame, spec: BlockSpec, columns, block, shared):
+def rows_block(pdf: pd.DataFrame, spec: BlockSpec, columns, block, shared=None):
     """``block(rows, shared)`` on the complete rows of one partition, as a
-    :class:`~bayespanel.data.design.RowBlock` in the design's kept ``columns`` of ``[X, y]``
+    :class:`~bayespanel.data.sources.RowBlock` in the design's kept ``columns`` of ``[X, y]``
     (all when ``None``)."""
-    from ..design import RowBlock
+    from .memory import RowBlock
 
     sub, _, _, Z = complete_rows(pdf, spec)
     if columns is not None:

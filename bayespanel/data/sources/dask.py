@@ -53,7 +53,7 @@ from ...core.errors import (DataHandlingWarning, EstimationError, FormulaError, 
 from ..formula import dependency_message, safe_context, screen
 from . import _blocks as blk
 
-__all__ = ["DaskPanel", "DaskDesign", "SCHEDULERS", "local_client", "close_local_client"]
+__all__ = ["DaskPanel", "DaskSource", "SCHEDULERS", "local_client", "close_local_client"]
 
 SCHEDULERS = ("local", "threads", "synchronous")
 _STATEFUL = ("C", "center", "scale", "standardize", "poly")
@@ -439,13 +439,19 @@ class DaskPanel:
 
     # ------------------------------------------------------------------ design
     def design(self, formula: str, occasion_effects: bool = False, cluster: bool = False):
-        """Run the design pass for ``formula`` (see :class:`DaskDesign`).
+        """Run the design pass for ``formula``: a :class:`~bayespanel.design.Design` over
+        a :class:`DaskSource` (the rows stay in their partitions).
 
         ``cluster=True`` also collects the per-unit within cross-products needed for
         cluster-robust covariances (``p x p`` numbers per unit); otherwise they are
         collected by a second pass when first asked for.
         """
-        return DaskDesign(self, formula, occasion_effects=occasion_effects, cluster=cluster)
+        src = DaskSource(self, formula, occasion_effects=occasion_effects, cluster=cluster)
+        return Design(src, terms=src.terms, units=pd.Index(src._stats.unit_keys),
+                      outcome=src.outcome, spec=src.spec, stats=src._stats,
+                      maxabs=src._maxabs, n_dropped=src.n_dropped,
+                      dropped_by_column=src.dropped_by_column,
+                      n_input_rows=src.n_input_rows)
 
 
 def _lowbit(m):
@@ -481,23 +487,26 @@ def _describe_row(c, part, n_missing, maxabs) -> dict:
     }
 
 
-# ---------------------------------------------------------------------------- DaskDesign
-class DaskDesign:
-    """A formula on a :class:`DaskPanel`: the design pass and everything derived from it.
+# ---------------------------------------------------------------------------- DaskSource
+class DaskSource:
+    """The rows of a formula on a :class:`DaskPanel`: the source of a
+    :class:`~bayespanel.data.design.Design` whose rows stay in their partitions.
 
-    Answers the questions of :class:`~bayespanel.data.design.Design` that do not need rows
-    (``outcome``, ``terms``, ``n``, ``n_units``, ``k``, ``units``, ``T``,
-    ``varies_within``, ``time_varying``, ``time_constant``, ``n_dropped``,
-    ``dropped_by_column``, ``unit_means()``, ``y_unit_means()``, ``spec``) and yields
-    sufficient statistics for every model kind with :meth:`suffstats`. The Mundlak and
-    within-between statistics are derived exactly from those of ``[X, y]``
-    (:func:`bayespanel.core.derived.augment`), without a second pass.
+    Built by :meth:`DaskPanel.design`, which runs the design pass here (listwise deletion,
+    ``[X, y]`` and its sufficient statistics, optionally the per-unit within
+    cross-products) and returns the :class:`~bayespanel.data.design.Design` over this source;
+    everything after the pass is the design's own code, the same as in memory. The
+    source runs a block function over the rows of every partition and merges the pieces
+    (:meth:`run`), and gives the per-unit cross-products (:meth:`unit_cross_products`).
 
     Listwise deletion is the same as in memory: rows missing any variable the formula
     uses are dropped, counted per column and reported with a
     :class:`~bayespanel.core.errors.DataHandlingWarning`; unit means are taken over the
     remaining rows.
     """
+
+    #: the rows stay in their partitions (``Design.has_rows``)
+    has_rows = False
 
     def __init__(self, panel: DaskPanel, formula: str, occasion_effects=False, cluster=False):
         occasion_effects = check_flag("occasion_effects", occasion_effects)
@@ -601,10 +610,6 @@ class DaskDesign:
         self._unit_cp = ucp
         self.terms = list(stats.names[:-1])
         check_stats(stats, self.terms, self.outcome, maxabs, stacklevel=6)
-        within_sd = np.sqrt(np.maximum(np.diag(stats.within)[:-1], 0.0) / stats.n)
-        scale = np.maximum(maxabs[:-1], 1.0)
-        self.varies_within = pd.Series(within_sd > _VARY_TOL * scale, index=self.terms)
-        self._cache = {}
 
     def _drop_absent_occasions(self, stats, maxabs, ucp):
         """Occasion indicators as in memory: only occasions left after deletion, the first
@@ -626,62 +631,18 @@ class DaskDesign:
         ucp = None if ucp is None else ucp[:, cols][:, :, cols]
         return derived.select_columns(stats, cols, names), maxabs[cols], ucp, tuple(cols)
 
-    # ------------------------------------------------------------------ sizes
-    @property
-    def n(self) -> int:
-        return int(self._stats.n)
-
-    @property
-    def n_units(self) -> int:
-        return int(self._stats.n_units)
-
-    @property
-    def k(self) -> int:
-        return len(self.terms)
-
-    @property
-    def units(self) -> pd.Index:
-        return pd.Index(self._stats.unit_keys)
-
-    @property
-    def T(self) -> np.ndarray:
-        return self._stats.unit_count.copy()
-
-    # the questions Design answers from terms and varies_within alone
-    has_intercept = Design.has_intercept
-    time_varying = Design.time_varying
-    time_constant = Design.time_constant
-
-    def unit_means(self) -> np.ndarray:
-        """Unit means of the columns of X (N x k), over the estimation sample."""
-        return self._stats.unit_mean[:, :-1].copy()
-
-    def y_unit_means(self) -> np.ndarray:
-        return self._stats.unit_mean[:, -1].copy()
-
+    # ------------------------------------------------------------------ the source
     def __repr__(self) -> str:
-        return (f"DaskDesign({self.outcome!r} ~ {len(self.terms)} terms, {self.n} rows, "
-                f"{self.n_units} units, {self.n_dropped} rows dropped)")
+        return (f"DaskSource({self.outcome!r} ~ {len(self.terms)} terms over "
+                f"{self.panel.npartitions} partitions)")
 
-    #: no rows are held (``Design.has_rows``): reference fits, partitions, contrasts and
-    #: LOO of models on this design work from its statistics (and one more pass at the
-    #: occasion level)
-    has_rows = False
+    def maxabs(self) -> np.ndarray:
+        """Largest absolute value of each column of ``[X, y]`` (from the design pass)."""
+        return self._maxabs
 
-    #: a Gaussian model on this design's statistics, as from an in-memory Panel (the
-    #: builder's ``from_design``: same labels, units and specification; the model and its
-    #: posterior keep this design, which has no rows; ``builder`` may be given by name)
-    build = Design.build
-
-    def design_suffstats(self) -> suffstats.SuffStats:
-        """The statistics of the design's own columns ``[X, y]`` (terms as in ``terms``)."""
-        return self._stats
-
-    row_map = Design.row_map
-
-    def run_rows(self, block, merge, shared=None):
-        """One more pass over the rows of this design: ``block(rows, shared)`` on the
-        :class:`~bayespanel.data.design.RowBlock` of every partition (listwise deletion as in
+    def run(self, block, merge, shared=None):
+        """One more pass over the rows: ``block(rows, shared)`` on the
+        :class:`~bayespanel.data.sources.RowBlock` of every partition (listwise deletion as in
         the design pass, the design's kept columns), reduced with ``merge``."""
         from dataclasses import replace
 
@@ -702,34 +663,11 @@ class DaskDesign:
                        dtype=np.int64)
         return st.occasions[pos]
 
-    def matrices(self, kind):
-        raise EstimationError(
-            "the Dask path keeps no rows in memory, so it has no design matrices; use "
-            "design.suffstats(kind) for the statistics, bp.reference.fit_design(design, ...) "
-            "or bp.reference.<estimator>(dask_panel, formula) for reference fits, and "
-            "design.build(bp.models.RandomIntercept) for a Bayesian model")
-
-    # ------------------------------------------------------------------ statistics
-    # The columns of each kind, their labels and statistics: the in-memory design's own
-    # code (which reads only terms, varies_within, has_intercept, spec and the statistics
-    # of [X, y]), so both paths choose the same between parts (Design._with_between_part)
-    _transform = Design._transform
-    _with_between_part = Design._with_between_part
-    labels = Design.labels
-    term_parts = Design.term_parts
-    suffstats = Design.suffstats
-    model_suffstats = Design.model_suffstats
-
-    def unit_cross_products(self, kind: str = "random") -> np.ndarray:
-        """Per-unit within cross-products of ``[M, y]`` (N x p x p), in unit order.
+    def unit_cross_products(self) -> np.ndarray:
+        """Per-unit within cross-products of ``[X, y]`` (N x p x p), in unit order.
 
         Collected in the design pass with ``cluster=True``, else by one more pass now.
         """
         if self._unit_cp is None:
             self._run(cluster=True)
-        if kind in ("pooled", "random", "within", "between"):
-            return self._unit_cp
-        A, _, _ = self._transform(kind)
-        return derived.augment_unit_cp(self._unit_cp, A)
-
-
+        return self._unit_cp
