@@ -1182,10 +1182,7 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
         contrasts = cr.to_record(prob)
     ppc = []
     if design.has_rows:
-        try:
-            ppc = _ppc(post, design, settings.ppc_draws, settings.seed)
-        except SpecificationError:  # predictive draws not offered for this model (AR(1))
-            ppc = []
+        ppc = _ppc(post, design, settings.ppc_draws, settings.seed)
         if lag1:
             ppc += [r for r in [_lag1_ppc(post, design, settings)] if r is not None]
     rel = None
@@ -1335,8 +1332,6 @@ def _comparison_stage(settings, design, posts, ref_fits, entries, say, failed=No
         with _isolated(failed if failed is not None else [], say, name, kinds.model(name).title,
                        "LOO"):
             lr, by_name[name]["loo"] = _loo_entry(post, settings.level, settings=settings)
-            if lr is None and getattr(getattr(post, "spec", None), "errors", "iid") == "ar1":
-                continue  # not scored (its LOO entry says why): left out of the table
             fits[name] = lr if lr is not None else post
             models[name] = post
             titles[name] = kinds.model(name).title
