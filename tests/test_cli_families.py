@@ -12,13 +12,11 @@ Outside checks, named beside each:
   difference) of the marginal mean, integrated over the unit effect on a fine grid;
 - the latent-scale ICC's occasion-level variance pi^2/3 of the logit link (Snijders and
   Bosker 2012, section 17.3).
-Every run is a subprocess of ``python -m bayespanel``.
+Every run goes through ``bayespanel.app.cli.main`` with its exit code and printed
+output, in this process (tests/conftest.py ``run_main``).
 """
 
 import json
-import os
-import subprocess
-import sys
 import tomllib
 from pathlib import Path
 
@@ -26,15 +24,14 @@ import numpy as np
 import pandas as pd
 import pytest
 
-ROOT = Path(__file__).resolve().parents[1]
+from conftest import run_main
+
 SAMPLING = ["--draws", "100", "--tune", "100", "--chains", "2", "--seed", "5",
             "--ppc-draws", "60", "--quiet"]
 
 
 def _cli(*argv, check=True):
-    env = {**os.environ, "PYTHONPATH": str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", "")}
-    proc = subprocess.run([sys.executable, "-m", "bayespanel", *map(str, argv)],
-                          capture_output=True, text=True, env=env, timeout=900)
+    proc = run_main(*argv)
     if check:
         assert proc.returncode == 0, proc.stderr[-3000:]
     return proc

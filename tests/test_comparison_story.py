@@ -1,6 +1,7 @@
 """One story in every output: problems, Pareto k, LOO methods and equivalent models.
 
-The command line runs as a subprocess, as a researcher runs it. Outside checks:
+The command line runs as a researcher runs it: ``bayespanel.app.cli.main`` with its exit
+code and printed output, in this process (tests/conftest.py ``run_main``). Outside checks:
 * the problem list: the console, results.json and report.html (parsed from the page) hold
   the same set, and it is what :func:`bayespanel.report.problems.problems` computes;
 * exact refits of high-k points from the command line: a brute-force refit (the model
@@ -17,8 +18,6 @@ Data: statsmodels' Grunfeld panel and linearmodels' wage panel (Vella and Verbee
 import html
 import json
 import re
-import subprocess
-import sys
 import warnings
 
 import numpy as np
@@ -31,13 +30,13 @@ import bayespanel as bp
 from bayespanel.analysis.comparison import compare, equivalence_classes
 from bayespanel.bayes.posterior import Posterior
 from bayespanel.report.problems import problems
+from conftest import run_main
 
 F = "invest ~ value + capital"
 
 
-def _cli(*args, timeout=900):
-    proc = subprocess.run([sys.executable, "-m", "bayespanel", *map(str, args)],
-                          capture_output=True, text=True, timeout=timeout)
+def _cli(*args):
+    proc = run_main(*args)
     assert proc.returncode in (0, 3), proc.stderr
     return proc.stdout, proc.stderr
 

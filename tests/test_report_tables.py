@@ -15,7 +15,6 @@ import json
 import re
 import shutil
 import subprocess
-import sys
 import warnings
 
 import numpy as np
@@ -25,6 +24,7 @@ from scipy import stats
 
 import bayespanel as bp
 from bayespanel.report import numbers as num
+from conftest import run_main
 
 FORMULA = "invest ~ value + capital"
 # Four Grunfeld firms whose unit variance REML, ML and Swamy-Arora all put at zero (found
@@ -33,10 +33,9 @@ ZERO_FIRMS = ("Atlantic Refining", "Chrysler", "Goodyear", "US Steel")
 
 
 def _cli(args, cwd):
-    env_run = subprocess.run([sys.executable, "-m", "bayespanel", *args], cwd=cwd,
-                             capture_output=True, text=True, timeout=900)
-    assert env_run.returncode == 0, env_run.stderr[-3000:]
-    return env_run.stdout
+    run = run_main(*args, cwd=cwd)  # the command line in this process (tests/conftest.py)
+    assert run.returncode == 0, run.stderr[-3000:]
+    return run.stdout
 
 
 @pytest.fixture(scope="module")
