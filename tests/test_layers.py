@@ -57,18 +57,12 @@ CORE_THIRD_PARTY = {"numpy", "scipy", "numba"}
 # compares this set with the edges on cycles exactly.
 KNOWN_CYCLE_EDGES: set[tuple[str, str]] = {
     ("bayespanel.app.family_stage", "bayespanel.app.runner"),
-    ("bayespanel.bayes.builders", "bayespanel.bayes.latent"),
-    ("bayespanel.bayes.builders", "bayespanel.bayes.posterior"),
-    ("bayespanel.bayes.latent", "bayespanel.bayes.builders"),
-    ("bayespanel.bayes.latent", "bayespanel.bayes.posterior"),
-    ("bayespanel.bayes.posterior", "bayespanel.bayes.builders"),
-    ("bayespanel.bayes.posterior", "bayespanel.bayes.latent"),
     ("bayespanel.app.runner", "bayespanel.app.family_stage"),
 }
 
 # Imports ("importer", "imported") from a lower layer to a higher one today.
 KNOWN_UPWARD: set[tuple[str, str]] = {
-    ("bayespanel.bayes.latent", "bayespanel.analysis.loo"),
+    ("bayespanel.bayes.latentpost", "bayespanel.analysis.loo"),
     ("bayespanel.bayes.posterior", "bayespanel.analysis.contrasts"),
     ("bayespanel.bayes.posterior", "bayespanel.analysis.loo"),
     ("bayespanel.bayes.posterior", "bayespanel.analysis.partition"),
@@ -76,10 +70,7 @@ KNOWN_UPWARD: set[tuple[str, str]] = {
 
 # Private names used outside their package today: ("importer", "owner:name"), where owner
 # is the module or package that holds ``_name`` (a private module is "package:_module").
-KNOWN_PRIVATE: set[tuple[str, str]] = {
-    ("bayespanel.app.family_stage", "bayespanel.bayes.latent:_column_values"),
-    ("bayespanel.app.family_stage", "bayespanel.bayes.latent:_where"),
-}
+KNOWN_PRIVATE: set[tuple[str, str]] = set()
 
 
 @dataclass(frozen=True)

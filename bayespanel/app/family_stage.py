@@ -69,10 +69,10 @@ def family_record(settings) -> dict:
 
 def _columns(settings, panel, design):
     """Trials and log exposure on the estimation rows (None when not used)."""
-    from ..bayes.latent import _column_values
+    from ..bayes.latent import column_values
 
-    trials, _ = _column_values(panel, design, settings.trials, "trials")
-    expo, _ = _column_values(panel, design, settings.exposure, "exposure")
+    trials, _ = column_values(panel, design, settings.trials, "trials")
+    expo, _ = column_values(panel, design, settings.exposure, "exposure")
     return trials, expo
 
 
@@ -82,7 +82,7 @@ def data_checks(settings, panel, design) -> list:
     Raises :class:`~bayespanel.core.errors.PanelDataError` naming the first row outside the
     family's support. A Gaussian fit of an outcome coded 0/1 gets a one-line note.
     """
-    from ..bayes.latent import _where
+    from ..bayes.latent import describe_row
 
     notes = []
     if settings.family == "gaussian" and not hasattr(design, "y"):
@@ -100,7 +100,7 @@ def data_checks(settings, panel, design) -> list:
         return notes
     trials, expo = _columns(settings, panel, design)
     fam_mod.check_outcome(settings.family, y, outcome=design.outcome, trials=trials,
-                          exposure=expo, where=_where(design))
+                          exposure=expo, where=describe_row(design))
     return notes
 
 

@@ -23,6 +23,7 @@ from .builders import (
     WithinBetween,
 )
 from .priors import Prior
+from . import latentpost  # noqa: F401  (registers LatentPosterior's files with Posterior.load)
 
 __all__ = ["Pooled", "RandomIntercept", "WithinBetween", "CorrelatedEffects", "FixedEffects",
            "GaussianModel", "ModelSpec", "Prior", "BUILDERS", "gaussian", "priors"]

@@ -37,10 +37,8 @@ References
 
 from __future__ import annotations
 
-import json
 import os
 import warnings
-from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -50,7 +48,8 @@ from .. import kinds
 from ..core.errors import DataHandlingWarning, EstimationError, SpecificationError, choices_error
 from ..core.mathcore import intraclass_correlation
 from ..core import gaussian
-from .priors import Prior, prior_on_standard_scale, resolve_priors
+from .priors import coef_rv, prior_on_standard_scale, resolve_priors, sd_rv
+from .spec import ModelSpec
 from .graph import mark_built
 
 __all__ = ["ModelSpec", "GaussianModel", "Pooled", "RandomIntercept", "WithinBetween",
@@ -58,68 +57,6 @@ __all__ = ["ModelSpec", "GaussianModel", "Pooled", "RandomIntercept", "WithinBet
 
 LIKELIHOODS = ("marginal", "latent")
 _PKG_DIR = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-
-
-@dataclass(frozen=True)
-class ModelSpec:
-    """How a model was specified (not the data): saved with every posterior as JSON.
-
-    Attributes
-    ----------
-    model : str
-        Builder name, e.g. ``"RandomIntercept"``.
-    kind : str
-        Design kind (``Design.matrices(kind)``).
-    unit_effects : {"random", "fixed", "none"}
-    likelihood : {"marginal", "latent"}
-    outcome : str
-    labels : tuple of str
-        Coefficient labels in order.
-    priors : tuple of (name, dict)
-        Every prior, fully specified on the data scale.
-    design : tuple of (key, value) or None
-        The :class:`~bayespanel.data.design.DesignSpec` fields, when built from a panel.
-    errors : {"iid", "ar1"}
-        The occasion-level errors: independent, or AR(1) within units.
-    """
-
-    model: str
-    kind: str
-    unit_effects: str
-    likelihood: str
-    outcome: str
-    labels: tuple
-    priors: tuple
-    design: tuple | None = None
-    errors: str = "iid"
-
-    @property
-    def prior_dict(self) -> dict:
-        return {k: Prior.from_dict(v) for k, v in self.priors}
-
-    def to_dict(self) -> dict:
-        out = {"model": self.model, "kind": self.kind, "unit_effects": self.unit_effects,
-               "likelihood": self.likelihood, "outcome": self.outcome,
-               "labels": list(self.labels), "priors": {k: dict(v) for k, v in self.priors},
-               "design": dict(self.design) if self.design is not None else None}
-        if self.errors != "iid":   # iid specifications keep the form they always had
-            out["errors"] = self.errors
-        return out
-
-    def to_json(self) -> str:
-        return json.dumps(self.to_dict())
-
-    @classmethod
-    def from_dict(cls, d: dict) -> "ModelSpec":
-        return cls(model=d["model"], kind=d["kind"], unit_effects=d["unit_effects"],
-                   likelihood=d["likelihood"], outcome=d["outcome"], labels=tuple(d["labels"]),
-                   priors=tuple((k, tuple(sorted(v.items()))) for k, v in d["priors"].items()),
-                   design=tuple(d["design"].items()) if d.get("design") else None,
-                   errors=d.get("errors", "iid"))
-
-    @classmethod
-    def from_json(cls, text: str) -> "ModelSpec":
-        return cls.from_dict(json.loads(text))
 
 
 def _column_sd(stats, kind):
@@ -478,14 +415,14 @@ class GaussianModel:
                 dims = "term" if len(groups) == 1 else f"term_{fam}"
                 par = {k[len(f"prior_coef_{fam}_"):]: v for k, v in d.items()
                        if k.startswith(f"prior_coef_{fam}_")}
-                parts.append(_coef_rv(pm, name, fam, par, dims))
+                parts.append(coef_rv(pm, name, fam, par, dims))
                 order.extend(idx)
             b_std = parts[0] if len(parts) == 1 else pt.concatenate(parts)[np.argsort(order)]
             sig = {}
             for comp in self._sd_names():
                 par = {k[len(f"prior_{comp}_"):]: v for k, v in d.items()
                        if k.startswith(f"prior_{comp}_")}
-                sig[comp] = _sd_rv(pm, f"{comp}_std", self.priors[comp].family, par)
+                sig[comp] = sd_rv(pm, f"{comp}_std", self.priors[comp].family, par)
             sigma = sig["sigma_obs"]
             tau = sig.get("sigma_unit")
             if self.errors == "ar1":
@@ -738,26 +675,6 @@ def _ss_unit_mean_residual(stats, b):
     """Per draw and unit, ``ybar_i - xbar_i'b`` (the fixed-effects intercept at its centre)."""
     v = gaussian.residual_vector(np.atleast_2d(b))
     return v @ stats.unit_mean.T
-
-
-def _coef_rv(pm, name, family, par, dims):
-    if family == "normal":
-        return pm.Normal(name, mu=par["mu"], sigma=par["sigma"], dims=dims)
-    if family == "student_t":
-        return pm.StudentT(name, nu=par["nu"], mu=par["mu"], sigma=par["sigma"], dims=dims)
-    return pm.Flat(name, dims=dims)
-
-
-def _sd_rv(pm, name, family, par):
-    if family == "half_normal":
-        return pm.HalfNormal(name, sigma=par["scale"])
-    if family == "half_student_t":
-        return pm.HalfStudentT(name, nu=par["nu"], sigma=par["scale"])
-    if family == "exponential":
-        return pm.Exponential(name, scale=par["scale"])
-    if family == "gamma2":
-        return pm.Gamma(name, alpha=2.0, beta=1.0 / par["scale"])
-    return pm.HalfFlat(name)
 
 
 class Pooled(GaussianModel):

@@ -39,7 +39,8 @@ from .. import kinds
 from ..core.errors import SamplingWarning, SpecificationError
 from ..core.mathcore import unit_sd_draws
 from ..core import gaussian
-from .builders import ModelSpec
+from .posteriorfile import decode_labels, encode_labels, read_tree, write_tree
+from .spec import ModelSpec
 from ..core.jsonsafe import jsonable
 from ..data.resultshape import DEFAULT_INTERVAL, check_prob, term_records
 from ..core.suffstats import SuffStats
@@ -195,6 +196,16 @@ class Posterior:
         (:func:`bayespanel.bayes.graph.graph_edits`); empty for the model as built.
         Added variables are rows of :meth:`summary` and are checked by :meth:`diagnostics`.
     """
+
+    #: the attribute marking the saved files of a subclass, which registers itself for
+    #: :meth:`load` (see ``__init_subclass__``); None for this class
+    file_marker: str | None = None
+    _file_kinds: dict = {}
+
+    def __init_subclass__(cls, **kwargs):
+        super().__init_subclass__(**kwargs)
+        if cls.__dict__.get("file_marker"):
+            Posterior._file_kinds[cls.file_marker] = cls
 
     def __init__(self, idata, spec: ModelSpec, stats: SuffStats, units, rows=None,
                  sampling=None, scaling=None, time=None, row_labels=None, ar1_time=None):
@@ -794,7 +805,7 @@ class Posterior:
         rename), so a full disk or an interrupt leaves no partial file and HDF5 never sees
         the write fail.
         """
-        _write_tree(self._tree(rows), path)
+        write_tree(self._tree(rows), path)
 
     def _tree(self, rows: bool) -> "xr.DataTree":
         """The DataTree :meth:`save` writes."""
@@ -821,7 +832,7 @@ class Posterior:
                     "unit_code": (("row",), np.asarray(codes, np.int64))}
             for name, v in (("time", self.time), ("row_label", self.row_labels)):
                 if v is not None:
-                    arr, kind = _encode_labels(v)
+                    arr, kind = encode_labels(v)
                     data[name] = (("row",), arr, {"bayespanel_kind": kind})
             if self.ar1_time is not None:
                 data["ar1_time"] = (("row",), self.ar1_time)
@@ -842,11 +853,11 @@ class Posterior:
         Only NetCDF (HDF5) is read, through xarray; nothing is unpickled. Any other file is
         a :class:`SpecificationError` naming it.
         """
-        tree = _read_tree(path)
-        if "bayespanel_latent" in tree.attrs and cls is Posterior:  # latent families
-            from .latent import LatentPosterior
-
-            return LatentPosterior.load(path)
+        tree = read_tree(path)
+        if cls is Posterior:  # a file of a subclass (latent families) goes to its class
+            for marker, sub in Posterior._file_kinds.items():
+                if marker in tree.attrs:
+                    return sub.load(path)
         if "bayespanel_spec" not in tree.attrs:
             raise SpecificationError(f"{path!s} was not written by Posterior.save")
         try:
@@ -877,7 +888,7 @@ class Posterior:
                     np.asarray(rd["unit_code"].values))
             for name, key in (("time", "time"), ("row_label", "row_labels")):
                 if name in rd:
-                    labels[key] = _decode_labels(rd[name])
+                    labels[key] = decode_labels(rd[name])
             if "ar1_time" in rd:
                 labels["ar1_time"] = np.asarray(rd["ar1_time"].values, dtype=float)
         keep = {k: v.to_dataset() for k, v in tree.children.items()
@@ -887,9 +898,6 @@ class Posterior:
                    **labels)
         post.edits = list(json.loads(attrs.get("bayespanel_edits", "[]")))
         return post
-
-
-_DIGEST = "bayespanel_digest"
 
 
 def _with_serial_correlation(part, sigma, tau, rho):
@@ -907,90 +915,3 @@ def _with_serial_correlation(part, sigma, tau, rho):
         if c.startswith("theta (T="):
             d[c] = np.nan
     return part
-
-
-def _attrs_digest(tree) -> str:
-    """SHA-256 of the attributes that describe the model: the root's JSON texts and the
-    sizes of the statistics (the arrays carry their own checksums)."""
-    import hashlib
-
-    h = hashlib.sha256()
-    for k in sorted(a for a in tree.attrs if a.startswith("bayespanel_") and a != _DIGEST):
-        h.update(f"{k}\0{tree.attrs[k]}\0".encode())
-    if "bayespanel_stats" in tree.children:
-        st = tree["bayespanel_stats"].attrs
-        for k in sorted(st):
-            h.update(f"stats.{k}\0{st[k]}\0".encode())
-    return h.hexdigest()
-
-
-def _write_tree(tree, path) -> None:
-    """Write a posterior's DataTree: checksums on, made in memory, written atomically."""
-    from ..core.outputs import write_atomic
-
-    tree.attrs = {**tree.attrs, _DIGEST: _attrs_digest(tree)}
-    encoding = {}
-    for node in tree.subtree:
-        enc = {name: {"fletcher32": True} for name, v in node.dataset.data_vars.items()
-               if v.dtype.kind in "biuf" and v.ndim >= 1 and v.size > 0}
-        if enc:
-            encoding[node.path] = enc
-    view = tree.to_netcdf(engine="h5netcdf", encoding=encoding)  # in memory, not a file
-    try:
-        data = bytes(view)
-    finally:
-        # a view kept alive (by the traceback of a failed write) would pin xarray's BytesIO,
-        # and collecting the two in a cycle crashed the interpreter
-        view.release()
-    del view
-    write_atomic(path, data)
-
-
-def _read_tree(path):
-    """The DataTree of a saved posterior, or :class:`SpecificationError` naming the file.
-
-    Only a regular file is opened; a bad checksum or attributes that do not match their
-    digest (a flipped bit, an edited value) are refused.
-    """
-    from ..data.io import regular_file
-    from ..core.outputs import settle_for
-
-    settle_for(path)  # a run folder a killed run left mid-publish is finished first
-    path = regular_file(path, "posterior file", SpecificationError)
-    try:
-        with xr.open_datatree(path, engine="h5netcdf") as tree:
-            tree = tree.load()
-    except Exception as exc:  # noqa: BLE001 - a damaged file fails anywhere in h5py/h5netcdf
-        raise SpecificationError(
-            f"{str(path)!r} is not a posterior file written by Posterior.save (NetCDF), or it "
-            f"is damaged: {exc}") from None
-    digest = tree.attrs.get(_DIGEST)
-    if digest is not None and digest != _attrs_digest(tree):
-        raise SpecificationError(f"{str(path)!r} is damaged or was edited: its model "
-                                 "attributes do not match their SHA-256")
-    return tree
-
-
-def _encode_labels(values):
-    """``(array, kind)`` for writing row labels to NetCDF: numbers, booleans and datetimes
-    as they are, anything else (strings, periods, mixed objects) as text."""
-    v = np.asarray(values)
-    if v.dtype.kind == "b":
-        return v, "bool"
-    if v.dtype.kind in "iu":
-        return v.astype(np.int64), "int"
-    if v.dtype.kind == "f":
-        return v, "float"
-    if v.dtype.kind == "M":
-        return v.astype("datetime64[ns]"), "datetime"
-    return np.array([str(x) for x in v], dtype=str), "str"
-
-
-def _decode_labels(da):
-    kind = da.attrs.get("bayespanel_kind", "str")
-    v = np.asarray(da.values)
-    if kind == "str":
-        return v.astype(str).astype(object)
-    if kind == "datetime":
-        return v.astype("datetime64[ns]")
-    return v

@@ -324,3 +324,55 @@ def standardised_params(prior: Prior, *, loc_shift: float, factor: float) -> dic
     if "nu" in kw:
         out["nu"] = kw["nu"]
     return out
+
+
+def coef_rv(pm, name, family, par, dims):
+    """A coefficient's random variable in the current PyMC model, from its prior family
+    (``"normal"``, ``"student_t"``, else flat) and parameters ``par`` on the scale the
+    graph uses.
+
+    Parameters
+    ----------
+    pm : module
+        PyMC.
+    name : str
+        The variable's name.
+    family : str
+        The prior family.
+    par : dict
+        Its parameters (``mu``, ``sigma``, ``nu``).
+    dims : str or None
+        The variable's dimension in the model.
+    """
+    if family == "normal":
+        return pm.Normal(name, mu=par["mu"], sigma=par["sigma"], dims=dims)
+    if family == "student_t":
+        return pm.StudentT(name, nu=par["nu"], mu=par["mu"], sigma=par["sigma"], dims=dims)
+    return pm.Flat(name, dims=dims)
+
+
+def sd_rv(pm, name, family, par):
+    """A standard deviation's random variable in the current PyMC model, from its prior
+    family (``"half_normal"``, ``"half_student_t"``, ``"exponential"``, ``"gamma2"``,
+    else flat on the positive line) and parameters ``par`` (``scale``, ``nu``).
+
+    Parameters
+    ----------
+    pm : module
+        PyMC.
+    name : str
+        The variable's name.
+    family : str
+        The prior family.
+    par : dict
+        Its parameters on the scale the graph uses.
+    """
+    if family == "half_normal":
+        return pm.HalfNormal(name, sigma=par["scale"])
+    if family == "half_student_t":
+        return pm.HalfStudentT(name, nu=par["nu"], sigma=par["scale"])
+    if family == "exponential":
+        return pm.Exponential(name, scale=par["scale"])
+    if family == "gamma2":
+        return pm.Gamma(name, alpha=2.0, beta=1.0 / par["scale"])
+    return pm.HalfFlat(name)
