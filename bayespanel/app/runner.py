@@ -975,7 +975,7 @@ def _serial_test(design, time_reason, say, errors="iid") -> dict:
 
 def _interval_check(settings, design, posts, ref_fits, tests, say):
     """Posterior SDs against the matching reference fits' cluster-robust SEs
-    (:func:`bayespanel.narrowcheck.narrow_interval_check`); a reference fit the run did
+    (:func:`bayespanel.analysis.narrowcheck.narrow_interval_check`); a reference fit the run did
     not make, or made with classical errors, is fitted here with CR1 by unit."""
     from .. import reference as ref
     from ..analysis.narrowcheck import narrow_interval_check, serial_reading
@@ -1130,7 +1130,7 @@ def _sample_timed(m, settings, progress_bars):
 
 def _lag1_ppc(post, design, settings):
     """The posterior predictive check of the lag-one autocorrelation of within residuals
-    (:func:`bayespanel.serialcheck.lag1_check`), on ``ppc_draws`` evenly thinned draws;
+    (:func:`bayespanel.analysis.serialcheck.lag1_check`), on ``ppc_draws`` evenly thinned draws;
     None when no unit has two occasions one time unit apart."""
     from ..analysis.serialcheck import lag1_check
 

@@ -161,7 +161,7 @@ def _ar1_refit_model(fd, train, stats, rows):
     """A new model of the same class and priors on the training rows (``errors="ar1"``:
     leaving rows out changes the AR(1) link structure, so the compiled model cannot take
     the new data; each refit compiles its own)."""
-    from ..models.graph import graph_edits
+    from ...bayes.graph import graph_edits
 
     base = model_of(fd)
     edits = graph_edits(base)

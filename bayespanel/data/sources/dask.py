@@ -439,7 +439,7 @@ class DaskPanel:
 
     # ------------------------------------------------------------------ design
     def design(self, formula: str, occasion_effects: bool = False, cluster: bool = False):
-        """Run the design pass for ``formula``: a :class:`~bayespanel.design.Design` over
+        """Run the design pass for ``formula``: a :class:`~bayespanel.data.design.Design` over
         a :class:`DaskSource` (the rows stay in their partitions).
 
         ``cluster=True`` also collects the per-unit within cross-products needed for
