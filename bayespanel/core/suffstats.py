@@ -309,9 +309,12 @@ _SLACK = 1024
 #: when numba is already loaded in the process (PyTensor's default backend loads it for
 #: any PyMC model), inputs from this many rows use the compiled kernels
 _NUMBA_MIN_ROWS = 50_000
-#: when it is not, only inputs from this many rows load it: numba's import and
-#: start-up (about a second) cost more than the numpy version spends below this size
-_NUMBA_COLD_ROWS = 5_000_000
+#: when it is not, only inputs from this many rows load it: numba's import and start-up
+#: (about a second, once per process) cost more than the numpy version spends below
+#: this size; from it, the first design pays that second and every later pass of the
+#: process runs at the compiled speed (issue 18: reference fits from a Panel of 1,000,000
+#: rows, where the numpy pass alone costs about as much as the whole compiled fit)
+_NUMBA_COLD_ROWS = 1_000_000
 #: None: choose as above; True: always the compiled kernels; False: always numpy
 USE_NUMBA = None
 _kernels = None  # the compiled kernels once loaded; False when numba is unavailable
