@@ -369,9 +369,14 @@ def _print_reference(results) -> None:
     if len(tests) > 1 and len(reasons) == 1 and all(t.get("skipped") for t in tests):
         print(f"  not run: {reasons.pop()}")  # one line for all
         tests = []
+    skipped = {}  # tests skipped for one reason share a line
     for t in tests:
         if t.get("skipped"):
-            print(f"  {t['title']}: not run: {t['skipped']}")
+            skipped.setdefault(t["skipped"], []).append(t["title"])
+    for why, titles in skipped.items():
+        print(f"  {'; '.join(titles)}: not run: {why}")
+    for t in tests:
+        if t.get("skipped"):
             continue
         p = numbers.p_value(t.get("reported_p_value", t.get("p_value")))
         dist = t.get("distribution") or (
