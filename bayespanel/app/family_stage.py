@@ -32,8 +32,11 @@ import pandas as pd
 
 from .. import kinds
 from ..core.errors import EstimationError
+from ..core.jsonsafe import json_record
 from ..bayes import families as fam_mod
 from ..core.terms import UNIT_MEAN, parse
+from .modelkit import (contrasts_of, model_priors, prior_text, sample_timed, tests_skip_reason,
+                       thin_for)
 
 __all__ = ["data_checks", "reference_stage", "tests_stage", "bayes_one", "family_record",
            "SCALE_TEXT"]
@@ -151,7 +154,6 @@ def reference_stage(settings, panel, design, say):
     convergence) is left out with a note naming it and why.
     """
     from ..reference.glm import fit_glm
-    from .runner import _floats
 
     trials, expo = _columns(settings, panel, design)
     log_expo = None if expo is None else np.log(expo)
@@ -166,7 +168,7 @@ def reference_stage(settings, panel, design, say):
                          f"computed: {exc}")
             continue
         fits[name] = res
-        out.append(_floats({
+        out.append(json_record({
             "name": name, "title": _glm_title(settings, name),
             "assumptions": _glm_assumptions(settings, res),
             "estimator": "glm", "method": f"{_glm_kind(settings)}, population-averaged",
@@ -174,7 +176,7 @@ def reference_stage(settings, panel, design, say):
             "family": settings.family,
             "test_distribution": (f"t({res.n_units - 1})" if res.cov_type == "cluster"
                                   else "normal"),
-            "average_marginal_effects": [_floats(a) for a in _ame_records(res, prob)],
+            "average_marginal_effects": [json_record(a) for a in _ame_records(res, prob)],
         }))
     say(f"reference fits ({_GLM_WORD[_glm_kind(settings)]}, {settings.cov} covariance): "
         f"{', '.join(fits) or 'none'}")
@@ -186,7 +188,6 @@ def tests_stage(ref_fits, panel, design, settings, say):
     correlated-random-effects test for nonlinear models; Wooldridge 2010, section 15.8.2).
     The classical Hausman test compares linear fits and is not run for these families."""
     from ..reference.glm import fit_glm
-    from .runner import _floats, tests_skip_reason
 
     title = (f"Mundlak unit-mean terms in the {_GLM_WORD[_glm_kind(settings)]} "
              f"({'cluster-robust ' if settings.cov == 'cluster' else ''}Wald)")
@@ -210,7 +211,7 @@ def tests_stage(ref_fits, panel, design, settings, say):
     w = res.wald(terms)
     reject = np.isfinite(w["p_value"]) and w["p_value"] < 0.05
     say("specification test: Mundlak unit-mean terms in the GLM")
-    return [_floats({
+    return [json_record({
         "name": "mundlak", "title": title,
         "statistic": w["statistic"], "df": w["df"], "p_value": w["p_value"],
         "distribution": (f"F({int(w['df'])}, {int(w['df2'])})" if w["kind"] == "F" else
@@ -273,7 +274,6 @@ def assumptions(name, settings) -> str:
 
 def _ame_stage(post, name, settings, ref_fits, prob):
     """Average marginal effects on the outcome scale with the reference GLM's beside them."""
-    from .runner import _floats
 
     if fam_mod.get_family(settings.family).link == "identity":
         return []
@@ -287,7 +287,7 @@ def _ame_stage(post, name, settings, ref_fits, prob):
     out = []
     for eff, r in tab.iterrows():
         a = by_ref.get(eff, {})
-        out.append(_floats({"effect": str(eff), "mean": r["mean"], "sd": r["sd"],
+        out.append(json_record({"effect": str(eff), "mean": r["mean"], "sd": r["sd"],
                             "lower": r[lo], "upper": r[hi],
                             "reference_estimate": a.get("estimate"),
                             "reference_se": a.get("se"), "reference_lower": a.get("lower"),
@@ -314,9 +314,8 @@ def _partition_stage(post, design, kind, prob, settings):
 def _ppc_stage(post, design, settings):
     """Posterior predictive checks with statistics that suit the family and the outcome's
     range; p-values count ties half (discrete statistics)."""
-    from .runner import _thin_for
 
-    thin = _thin_for(post.n_chains * post.n_draws, settings.ppc_draws)
+    thin = thin_for(post.n_chains * post.n_draws, settings.ppc_draws)
     yrep = np.asarray(post.posterior_predictive(level="occasion", thin=thin,
                                                 seed=settings.seed).values)
     yrep = yrep.reshape(-1, yrep.shape[-1])
@@ -331,15 +330,13 @@ def _ppc_stage(post, design, settings):
 
 def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, progress_bars):
     """Sample one latent-effect model and build its ``results.json`` entry."""
-    from .runner import (_contrasts, _floats, _model_priors, _prior_text,
-                         _sample_timed)
 
     registered = kinds.model(name)
     cls = registered.builder_class()
     prob = settings.interval
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # dropped rows were reported by the data stage
-        priors = _model_priors(settings, cls, labels)
+        priors = model_priors(settings, cls, labels)
         m = cls(panel, settings.formula, priors=priors, occasion_effects=settings.occasion_effects,
                 **latent_options(settings),
                 **({} if settings.initial_conditions else {"initial_conditions": False}))
@@ -348,7 +345,7 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
         + (f", random slopes {', '.join(settings.random_slopes)}" if settings.random_slopes
            else "") + f"): {settings.chains} chains x {settings.draws} draws "
         f"(+{settings.tune} tuning)")
-    post, seconds = _sample_timed(m, settings, progress_bars)
+    post, seconds = sample_timed(m, settings, progress_bars)
     diag = post.diagnostics(warn=False)
     record = post.to_record(prob)
     kind = registered.columns
@@ -359,7 +356,7 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
         vp = _partition_stage(post, m.design, kind, prob, settings)
         contrasts = []
         if registered.contrasts:
-            contrasts = _contrasts(post, m.design, kind, post.coef_draws(), settings,
+            contrasts = contrasts_of(post, m.design, kind, post.coef_draws(), settings,
                                    None).to_record(prob)
         ppc = _ppc_stage(post, m.design, settings)
     rel = None
@@ -374,11 +371,11 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
         "reference_counterpart": (registered.glm_reference if settings.glm_reference
                                   else registered.reference),
         "posterior_file": rel,
-        "sampling": _floats({"draws": settings.draws, "tune": settings.tune,
+        "sampling": json_record({"draws": settings.draws, "tune": settings.tune,
                              "chains": settings.chains, "seed": settings.seed,
                              "sampler": str(post.sampling.get("sampler", settings.sampler)),
                              "seconds": seconds}),
-        "priors": {k: _prior_text(v) for k, v in priors_used.items()},
+        "priors": {k: prior_text(v) for k, v in priors_used.items()},
         "coefficients": record["coefficients"],
         "scale": record["scale"],
         "variance_partition": vp,

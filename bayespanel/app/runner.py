@@ -46,7 +46,8 @@ from ..bayes.families import FAMILIES
 from ..bayes.sampling import MIN_DRAWS
 from ..analysis.occasions import true_occasion_coef
 from ..data.resultshape import DEFAULT_INTERVAL
-from ..core.terms import UNIT_MEAN
+from .modelkit import (check_prior_keys, contrasts_of, model_priors, prior_text, sample_timed,
+                       tests_skip_reason, thin_for)
 
 __all__ = ["Settings", "run", "load_settings", "LEVELS", "software_versions"]
 
@@ -853,24 +854,6 @@ _TESTS = (("hausman", "Hausman (classical), fixed vs random effects"),
           ("mundlak", "Mundlak unit-mean terms (cluster-robust Wald)"))
 
 
-def tests_skip_reason(design) -> str | None:
-    """Why the Hausman and Mundlak tests do not apply to a design, or None when they do.
-
-    Both ask whether a covariate's within and between effects differ, so they need at
-    least one covariate that varies within units and whose unit means differ between
-    units (a fixed schedule, such as years since baseline observed on the same occasions
-    for every unit, or occasion indicators in a balanced panel, has no between variation).
-    """
-    if not design.time_varying:
-        return ("no covariate varies within units, so there is no within effect to "
-                "compare with a between effect")
-    if not any(t.part == UNIT_MEAN for t in design.term_parts("mundlak")):
-        return ("no time-varying covariate varies between units (every unit has the same "
-                f"unit mean of {', '.join(map(repr, design.time_varying))}), so within "
-                "and between effects cannot be told apart")
-    return None
-
-
 def _tests_stage(design, say):
     """Classical Hausman and cluster-robust Mundlak tests, each when it applies; a test
     that does not apply is recorded with the reason (``skipped``)."""
@@ -1015,49 +998,6 @@ def _rank_note(t) -> str:
             "positive definite, so its generalised inverse was used)")
 
 
-def _extra_prior_keys(settings) -> set:
-    """Prior keys of the latent-effect models beyond the Gaussian ones (docs/families.md)."""
-    from ..bayes.families import get_family
-
-    if not settings.latent:
-        return set()
-    params = get_family(settings.family).params
-    keys = {"sigma_slope", "lkj_eta"} if settings.random_slopes else set()
-    keys |= {"nu"} if "nu" in params else set()
-    keys |= {"inv_sqrt_shape"} if settings.family == "negative_binomial" else set()
-    return keys
-
-
-def _model_priors(settings, model_cls, labels):
-    has_unit = model_cls.unit_effects == "random"
-    valid = set(labels) | {"coef", "sigma_obs"} | ({"sigma_unit"} if has_unit else set())
-    valid |= _extra_prior_keys(settings)
-    valid |= {"rho"} if settings.errors == "ar1" else set()
-    return {k: v for k, v in settings.priors.items() if k in valid} or None
-
-
-def _check_prior_keys(settings, label_sets):
-    from ..bayes.families import get_family
-
-    known = set().union(*label_sets.values()) if label_sets else set()
-    known |= {"coef", "sigma_unit"} | _extra_prior_keys(settings)
-    known |= {"rho"} if settings.errors == "ar1" else set()
-    if "sigma_obs" in get_family(settings.family).params:
-        known.add("sigma_obs")
-    for k in settings.priors:
-        if k not in known:
-            raise SpecificationError(
-                f"priors has an unknown key {k!r}; valid keys for these models are "
-                + ", ".join(map(repr, sorted(known))))
-
-
-def _prior_text(p) -> str:
-    kw = getattr(p, "kwargs", None)
-    if kw is None:
-        return str(p)
-    return f"{p.family}(" + ", ".join(f"{k}={v:.4g}" for k, v in kw.items()) + ")"
-
-
 def _assumptions(res, cov) -> str:
     """The reference fit's assumptions, without the sentence on a covariance not used."""
     keep = [a for a in res.assumptions
@@ -1065,13 +1005,9 @@ def _assumptions(res, cov) -> str:
     return " ".join(keep)
 
 
-def _thin_for(n_total, target):
-    return max(1, int(np.ceil(n_total / max(target, 1))))
-
-
 def _ppc(post, design, n_draws, seed):
     """Panel statistics of replicated outcomes (same units, new occasion noise)."""
-    thin = _thin_for(post.n_chains * post.n_draws, n_draws)
+    thin = thin_for(post.n_chains * post.n_draws, n_draws)
     yrep = np.asarray(post.posterior_predictive(level="occasion", thin=thin, seed=seed).values)
     yrep = yrep.reshape(-1, yrep.shape[-1])
     codes, T, starts = design.unit_codes, design.T, design.starts
@@ -1105,36 +1041,13 @@ def _partition(post, design, kind, coef_d, sigma_d, tau_d, ref):
                                    reference=ref)
 
 
-def _contrasts(post, design, kind, coef_d, settings, ref):
-    """Between-minus-within contrasts of one posterior (bayespanel.analysis.contrasts, issue 6)."""
-    if hasattr(post, "contrasts"):
-        return post.contrasts(rope=settings.rope, prob=settings.interval, reference=ref,
-                              tests=False)
-    from ..analysis import contrasts as ctr
-
-    return ctr.within_between_contrasts(kind, post.labels, coef_d,
-                                        ctr.contrast_covariates(kind, post.labels),
-                                        rope=settings.rope, prob=settings.interval,
-                                        reference=ref)
-
-
-def _sample_timed(m, settings, progress_bars):
-    """Sample a built model with the run's settings; returns the posterior and seconds."""
-    t0 = time.perf_counter()
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # problems are collected from diagnostics() later
-        post = m.sample(draws=settings.draws, tune=settings.tune, chains=settings.chains,
-                        seed=settings.seed, sampler=settings.sampler, progress=progress_bars)
-    return post, time.perf_counter() - t0
-
-
 def _lag1_ppc(post, design, settings):
     """The posterior predictive check of the lag-one autocorrelation of within residuals
     (:func:`bayespanel.analysis.serialcheck.lag1_check`), on ``ppc_draws`` evenly thinned draws;
     None when no unit has two occasions one time unit apart."""
     from ..analysis.serialcheck import lag1_check
 
-    thin = _thin_for(post.n_chains * post.n_draws, settings.ppc_draws)
+    thin = thin_for(post.n_chains * post.n_draws, settings.ppc_draws)
     M, y, codes = post.rows
     rho = post._flat("rho", thin) if post.spec.errors == "ar1" else None
     return lag1_check(M, y, codes, design.time, post._flat("coef", thin),
@@ -1152,11 +1065,11 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
     prob = settings.interval
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # dropped rows were reported by the data stage
-        priors = _model_priors(settings, cls, labels)
+        priors = model_priors(settings, cls, labels)
         m = design.build(cls, priors=priors, errors=settings.errors)  # from the statistics
     say(f"sampling {name}: {settings.chains} chains x {settings.draws} draws "
         f"(+{settings.tune} tuning)")
-    post, seconds = _sample_timed(m, settings, progress_bars)
+    post, seconds = sample_timed(m, settings, progress_bars)
     diag = post.diagnostics(warn=False)
     say(f"  {name}: {seconds:.1f} s, max R-hat {diag['max_rhat']:.3f}, "
         f"{diag['divergences']} divergences")
@@ -1178,7 +1091,7 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
     if kinds.model(name).contrasts:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            cr = _contrasts(post, design, kind, coef_d, settings, ref_for)
+            cr = contrasts_of(post, design, kind, coef_d, settings, ref_for)
         contrasts = cr.to_record(prob)
     ppc = []
     if design.has_rows:
@@ -1198,7 +1111,7 @@ def _bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pr
                              "chains": settings.chains, "seed": settings.seed,
                              "sampler": str(post.sampling.get("sampler", settings.sampler)),
                              "seconds": seconds}),
-        "priors": {k: _prior_text(v) for k, v in m.priors.items()},
+        "priors": {k: prior_text(v) for k, v in m.priors.items()},
         "coefficients": record["coefficients"],
         "scale": record["scale"],
         "variance_partition": vp,
@@ -1539,7 +1452,7 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
     # a model this design cannot hold (fixed effects without a covariate that varies
     # within units) is refused as bad input here, before anything is sampled
     labels = {name: design.labels(kinds.model(name).columns) for name in settings.models}
-    _check_prior_keys(settings, labels)
+    check_prior_keys(settings, labels)
     notes = notes + _dynamic_notes(settings, design)
     for name in settings.models:
         if kinds.model(name).columns == "within" and design.time_constant:
