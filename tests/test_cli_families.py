@@ -136,10 +136,10 @@ def test_binary_marginal_effects_are_the_derivative_of_the_marginal_mean(union_r
                  for sgn in (1, -1)]
             amed.append((f[0] - f[1]) / (2 * h))
         got = next(a for a in m["average_marginal_effects"] if a["effect"] == term)
-        assert got["mean"] == pytest.approx(np.mean(amed), rel=1e-4)
+        assert got["estimate"] == pytest.approx(np.mean(amed), rel=1e-4)
         assert got["sd"] == pytest.approx(np.std(amed, ddof=1), rel=1e-3)
         # population-averaged AMEs and the pooled GLM's estimate the same quantity
-        assert abs(got["mean"] - got["reference_estimate"]) < 3 * np.hypot(got["sd"],
+        assert abs(got["estimate"] - got["reference_estimate"]) < 3 * np.hypot(got["sd"],
                                                                           got["reference_se"])
 
 
@@ -217,7 +217,7 @@ def test_binomial_run_on_jobtraining(trained_run, jobs_csv):
     grant = next(a for a in m["average_marginal_effects"] if a["effect"] == "grant")
     assert grant["reference_estimate"] is not None
     # the binomial GLM's coefficient for a grant and the Bayesian one agree in sign
-    assert np.sign(grant["mean"]) == np.sign(got["grant"]["estimate"])
+    assert np.sign(grant["estimate"]) == np.sign(got["grant"]["estimate"])
 
 
 # ---------------------------------------------------------------------- counts

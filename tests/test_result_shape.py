@@ -166,8 +166,8 @@ def test_records_are_what_results_json_holds(fits, linearmodels_re):
 
 
 def test_older_results_files_are_read_with_todays_keys(tmp_path):
-    """A 1.1 results.json (keys before one name per quantity) loads with the 1.2 keys and
-    passes the schema (jsonschema); today's file loads unchanged."""
+    """A 1.1, 1.2 or 1.3 results.json (keys before one name per quantity) loads with today's
+    keys and passes the schema (jsonschema); today's file loads unchanged."""
     import copy
     import json
     from pathlib import Path
@@ -175,18 +175,23 @@ def test_older_results_files_are_read_with_todays_keys(tmp_path):
     from bayespanel.report.results_json import SCHEMA_VERSION, load_results
 
     kept = json.loads((Path(__file__).parent / "golden" / "demo_results.json").read_text())
-    assert kept["schema_version"] == SCHEMA_VERSION == "1.3.0"
-    old = copy.deepcopy(kept)
-    old["schema_version"] = "1.1.0"
-    for m in old["models"]:
-        for rec in m["coefficients"] + m["scale"]:
-            rec["mean"] = rec.pop("estimate")
-        m["loo"]["n_high_k"] = m["loo"].pop("n_high_pareto_k")
-    (tmp_path / "results.json").write_text(json.dumps(old), "utf-8")
-    got = load_results(tmp_path)
-    assert got["schema_version"] == "1.1.0"  # as written
-    for m, k in zip(got["models"], kept["models"]):
-        assert m["coefficients"] == k["coefficients"] and m["scale"] == k["scale"]
-        assert m["loo"] == k["loo"]
+    assert kept["schema_version"] == SCHEMA_VERSION == "1.4.0"
+    assert any(m.get("contrasts") for m in kept["models"])
+    for version in ("1.1.0", "1.2.0", "1.3.0"):
+        old = copy.deepcopy(kept)
+        old["schema_version"] = version
+        for m in old["models"]:
+            for rec in m.get("contrasts") or []:  # 1.4 renamed these
+                rec["mean"] = rec.pop("estimate")
+            if version == "1.1.0":  # 1.2 renamed these
+                for rec in m["coefficients"] + m["scale"]:
+                    rec["mean"] = rec.pop("estimate")
+                m["loo"]["n_high_k"] = m["loo"].pop("n_high_pareto_k")
+        (tmp_path / "results.json").write_text(json.dumps(old), "utf-8")
+        got = load_results(tmp_path)
+        assert got["schema_version"] == version  # as written
+        for m, k in zip(got["models"], kept["models"]):
+            assert m["coefficients"] == k["coefficients"] and m["scale"] == k["scale"]
+            assert m["loo"] == k["loo"] and m.get("contrasts") == k.get("contrasts")
     (tmp_path / "results.json").write_text(json.dumps(kept), "utf-8")
     assert load_results(tmp_path) == kept

@@ -170,7 +170,7 @@ class ContrastResult:
         return pd.DataFrame(rows).set_index("test") if rows else pd.DataFrame()
 
     #: record keys of :meth:`table` columns
-    _RECORD = {"mean": "mean", "sd": "sd", "lower": "lower", "upper": "upper",
+    _RECORD = {"mean": "estimate", "sd": "sd", "lower": "lower", "upper": "upper",
                "P(> 0)": "p_positive", "P(< 0)": "p_negative", "rope": "rope",
                "P(in rope)": "p_rope", "reference estimate": "reference_estimate",
                "reference lower": "reference_lower", "reference upper": "reference_upper",
@@ -178,7 +178,8 @@ class ContrastResult:
 
     def to_record(self, prob: float | None = None) -> list:
         """The ``contrasts`` records of a model in ``results.json`` (docs/results-schema.md):
-        one per covariate with the posterior summary of between minus within, the sign and
+        one per covariate with the posterior summary of between minus within (its mean as
+        ``estimate``, the key of every point estimate in the file), the sign and
         ROPE probabilities and the reference contrast (``None`` where absent). The
         specification tests are recorded in the run's ``tests`` section."""
         t = self.table(prob)

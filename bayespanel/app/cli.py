@@ -426,7 +426,7 @@ def _print_summary(results) -> None:
             for a in ame:
                 ref = ("" if a.get("reference_estimate") is None else
                        f"   ref. {_fmt(a['reference_estimate'])} (SE {_fmt(a['reference_se'])})")
-                print(f"    {a['effect']:<26} {_fmt(a['mean'])!s:>9}  [{_fmt(a['lower'])}, "
+                print(f"    {a['effect']:<26} {_fmt(a['estimate'])!s:>9}  [{_fmt(a['lower'])}, "
                       f"{_fmt(a['upper'])}]{ref}")
         _print_serial(m)
         for w in m["diagnostics"]["warnings"]:

@@ -287,7 +287,7 @@ def _ame_stage(post, name, settings, ref_fits, prob):
     out = []
     for eff, r in tab.iterrows():
         a = by_ref.get(eff, {})
-        out.append(json_record({"effect": str(eff), "mean": r["mean"], "sd": r["sd"],
+        out.append(json_record({"effect": str(eff), "estimate": r["mean"], "sd": r["sd"],
                             "lower": r[lo], "upper": r[hi],
                             "reference_estimate": a.get("estimate"),
                             "reference_se": a.get("se"), "reference_lower": a.get("lower"),

@@ -121,7 +121,7 @@ def effects(r):
     for m in models:  # each model, then its reference counterpart (as the coefficient table)
         for a in m["average_marginal_effects"]:
             add(a["effect"], [Safe(tag("span", "B", cls="bp-tag bayes") + esc(m["title"])),
-                              *_cells(a["mean"], a["sd"], a["lower"], a["upper"])])
+                              *_cells(a["estimate"], a["sd"], a["lower"], a["upper"])])
         cp = refs_by.get(m.get("reference_counterpart"))
         if cp is not None and cp["name"] not in used:
             ref_rows(cp)

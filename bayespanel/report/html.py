@@ -390,7 +390,7 @@ def _contrasts(r) -> Safe:
                 join([num.estimate(c["reference_estimate"], ref_u), Safe("<br>"),
                       tag("small", num.interval(c.get("reference_lower"),
                                                 c.get("reference_upper"), ref_u))]))
-        line = [f"{c['covariate']} · {m['title']}", _est(c["mean"], c["sd"]),
+        line = [f"{c['covariate']} · {m['title']}", _est(c["estimate"], c["sd"]),
                 esc(num.uncertainty(c["sd"])), esc(_interval(c["lower"], c["upper"], c["sd"])),
                 *_nums(num.probability(c["p_positive"]), num.probability(c["p_negative"]))]
         if has_rope:

@@ -23,12 +23,14 @@ __all__ = [
 ]
 
 SCHEMA_NAME = "bayespanel-results"
-SCHEMA_VERSION = "1.3.0"
+SCHEMA_VERSION = "1.4.0"
 
-#: keys renamed by a minor version (1.2: one key per quantity), as (path, old, new) where
-#: path reaches the records under ``models[]`` that hold the key
+#: keys renamed by a minor version (1.2 and 1.4: one key per quantity), as (path, old, new)
+#: where path reaches the records under ``models[]`` that hold the key
 RENAMED = {(1, 2): ((("coefficients",), "mean", "estimate"), (("scale",), "mean", "estimate"),
-                    (("loo",), "n_high_k", "n_high_pareto_k"))}
+                    (("loo",), "n_high_k", "n_high_pareto_k")),
+           (1, 4): ((("contrasts",), "mean", "estimate"),
+                    (("average_marginal_effects",), "mean", "estimate"))}
 
 
 def dumps(results: dict) -> str:

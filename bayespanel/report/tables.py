@@ -316,13 +316,14 @@ def display_tables(results: dict) -> dict[str, tuple[pd.DataFrame, list[str]]]:
         ct = raw["contrasts"].copy()
         ct["interval"] = [num.interval(lo, hi, u) for lo, hi, u in
                           zip(ct["lower"], ct["upper"], ct["sd"])]
-        keep = [c for c in ("covariate", "model", "mean", "sd", "interval", "p_positive",
+        keep = [c for c in ("covariate", "model", "estimate", "sd", "interval", "p_positive",
                             "p_negative", "p_rope", "rope", "reference_estimate",
                             "reference_se")
                 if c in ct.columns and ct[c].notna().any()]  # no empty ROPE columns
-        out["contrasts"] = (display_frame(ct[keep]).rename(columns={
-            "sd": "SD", "interval": f"{pct} interval", "p_positive": "P(> 0)",
-            "p_negative": "P(< 0)", "p_rope": "P(in ROPE)", "rope": "ROPE half-width",
+        shown = display_frame(ct[keep], {"estimate": ("estimate", "sd")})
+        out["contrasts"] = (shown.rename(columns={
+            "estimate": "mean", "sd": "SD", "interval": f"{pct} interval",
+            "p_positive": "P(> 0)", "p_negative": "P(< 0)", "p_rope": "P(in ROPE)", "rope": "ROPE half-width",
             "reference_estimate": "reference estimate", "reference_se": "reference SE"}),
             ["Between minus within effect of each time-varying covariate: posterior mean, "
              "SD, interval and posterior probabilities.", foot])
