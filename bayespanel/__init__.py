@@ -22,6 +22,7 @@ from .core.errors import (
     SamplingWarning,
     SpecificationError,
 )
+from .core.options import get_option, option_context, set_option
 from .data import datasets
 from .data.design import Design, DesignSpec
 from .data.panel import Panel
@@ -55,7 +56,8 @@ _LAZY = {
 __all__ = [
     "Panel", "Design", "DesignSpec", "datasets", "errors", "suffstats",
     "BayespanelError", "PanelDataError", "FormulaError", "SpecificationError",
-    "EstimationError", "SamplingWarning", *sorted(_LAZY),
+    "EstimationError", "SamplingWarning", "get_option", "set_option", "option_context",
+    *sorted(_LAZY),
 ]
 
 

@@ -142,6 +142,36 @@ def test_one_interval_default(fits):
         fits["reference"].interval(1.5)
 
 
+def test_the_interval_default_is_one_option_read_when_called(fits, grunfeld):
+    """bp.set_option("interval", p) changes every default interval at once (read at call
+    time; option_context restores it) and the run's setting. Plumbing: each default is
+    compared with the same call given the probability (whose numbers the tests above
+    check against linearmodels and the draws)."""
+    from bayespanel.app.runner import Settings
+
+    assert bp.get_option("interval") == resultshape.DEFAULT_INTERVAL == 0.95
+    with bp.option_context(interval=0.8):
+        for fit in fits.values():
+            assert fit.table().attrs["prob"] == 0.8
+            pd.testing.assert_frame_equal(fit.interval(), fit.interval(0.8))
+        latent = fits["latent"]
+        assert "lower 80%" in latent.icc_table().columns
+        assert "lower 80%" in latent.average_marginal_effects().columns
+        assert "replicated lower 80%" in latent.ppc(draws=50).columns
+        assert {"10%", "90%"} <= set(fits["gaussian"].summary().columns)
+        assert Settings(unit="firm", time="year", formula=FORMULA).interval == 0.8
+    assert bp.get_option("interval") == 0.95 and fits["reference"].table().attrs["prob"] == 0.95
+    previous = bp.set_option("interval", 0.5)
+    try:
+        assert previous == 0.95 and fits["gaussian"].table().attrs["prob"] == 0.5
+    finally:
+        bp.set_option("interval", previous)
+    with pytest.raises(bp.errors.SpecificationError, match="interval=1.5"):
+        bp.set_option("interval", 1.5)
+    with pytest.raises(bp.errors.SpecificationError, match="option='intervals'"):
+        bp.get_option("intervals")
+
+
 def test_records_are_what_results_json_holds(fits, linearmodels_re):
     """Each result's to_record() is its part of results.json: the schema's keys, the
     numbers of its table (linearmodels for the reference fit's), nan as None."""

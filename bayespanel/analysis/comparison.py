@@ -41,7 +41,7 @@ import pandas as pd
 
 from .. import kinds
 from ..core.errors import EstimationError, SpecificationError
-from ..data.resultshape import DEFAULT_INTERVAL, check_prob, leading_columns
+from ..data.resultshape import check_prob, leading_columns
 from .loo import LOOResult, check_level, loo, outcome_measure, reference_cv
 
 __all__ = ["compare", "coef_table", "equivalence_classes", "methods_note", "COMPARE_COLUMNS"]
@@ -601,7 +601,7 @@ def _coef_frame(name, obj, prob):
                              "a ReferenceResult")
 
 
-def coef_table(models: dict, prob: float = DEFAULT_INTERVAL, shape: str = "wide") -> pd.DataFrame:
+def coef_table(models: dict, prob: float | None = None, shape: str = "wide") -> pd.DataFrame:
     """Every model's estimates and intervals side by side, aligned by term.
 
     Parameters
@@ -623,6 +623,7 @@ def coef_table(models: dict, prob: float = DEFAULT_INTERVAL, shape: str = "wide"
         are the models' own: the within effect of ``x`` is ``x`` in fixed effects and
         Mundlak models and ``x (within)`` in the within-between model.
     """
+    prob = check_prob(prob)  # None: the interval option
     if shape not in ("wide", "long"):
         from ..core.errors import choices_error
         raise choices_error("shape", shape, ("wide", "long"))

@@ -37,7 +37,7 @@ import pandas as pd
 from .. import kinds
 from ..core.errors import SpecificationError
 from ..core.jsonsafe import json_record
-from ..data.resultshape import DEFAULT_INTERVAL, check_prob
+from ..data.resultshape import check_prob
 from ..core.terms import CONTRAST, UNIT_MEAN, part_label
 
 __all__ = ["ContrastResult", "contrast_draws", "contrast_matrix", "contrast_covariates",
@@ -125,8 +125,9 @@ class ContrastResult:
         Classical Hausman and cluster-robust Mundlak tests, when computed.
     """
 
-    def __init__(self, draws, terms, kind, rope=None, prob=DEFAULT_INTERVAL, reference=None,
+    def __init__(self, draws, terms, kind, rope=None, prob=None, reference=None,
                  tests=None):
+        prob = check_prob(prob)  # None: the interval option
         self.draws = pd.DataFrame(np.asarray(draws), columns=list(terms))
         self.kind = kind
         self.rope = _rope_of(rope, list(terms))
@@ -266,7 +267,7 @@ def design_tests(design, labels, kind) -> dict:
             "Mundlak (cluster-robust)": mundlak_test(mres)}
 
 
-def within_between_contrasts(kind, labels, coef, time_varying, *, rope=None, prob=DEFAULT_INTERVAL,
+def within_between_contrasts(kind, labels, coef, time_varying, *, rope=None, prob=None,
                              reference=None, rows=None, design=None) -> ContrastResult:
     """Posterior of between-minus-within effects with the frequentist checks beside them.
 

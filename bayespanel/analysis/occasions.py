@@ -23,7 +23,7 @@ import numpy as np
 import pandas as pd
 
 from ..core.errors import SpecificationError
-from ..data.resultshape import DEFAULT_INTERVAL
+from ..data.resultshape import check_prob
 from ..core.safetext import LITERAL_RC, literal
 from ..core.terms import AS_IS, BETWEEN, UNIT_MEAN, WITHIN, parse
 
@@ -54,7 +54,7 @@ def true_occasion_coef(label, truth):
         (truth.get("occasion") or {}).get(parse(label).column.label, 0.0))
 
 
-def occasion_effects(fit, prob: float = DEFAULT_INTERVAL, part: str = "effect") -> pd.DataFrame:
+def occasion_effects(fit, prob: float | None = None, part: str = "effect") -> pd.DataFrame:
     """The occasion effects of a fit, in occasion order.
 
     Parameters
@@ -76,6 +76,7 @@ def occasion_effects(fit, prob: float = DEFAULT_INTERVAL, part: str = "effect") 
         Index ``occasion`` (the label's value, as text); columns ``term``, ``estimate``,
         ``lower``, ``upper``.
     """
+    prob = check_prob(prob)  # None: the interval option
     if part not in ("effect", "between"):
         raise SpecificationError(f"part={part!r} is not valid; choose 'effect' or 'between'")
     coef = pd.Series(fit.coef)
@@ -104,7 +105,7 @@ def occasion_effects(fit, prob: float = DEFAULT_INTERVAL, part: str = "effect") 
     return out
 
 
-def occasion_effects_figure(fits, prob: float = DEFAULT_INTERVAL, reference_occasion=None,
+def occasion_effects_figure(fits, prob: float | None = None, reference_occasion=None,
                             part="effect"):
     """Occasion effects over the occasions, with intervals, one series per fit.
 
@@ -121,6 +122,7 @@ def occasion_effects_figure(fits, prob: float = DEFAULT_INTERVAL, reference_occa
     -------
     matplotlib.figure.Figure
     """
+    prob = check_prob(prob)  # None: the interval option
     import matplotlib.pyplot as plt
 
     if not isinstance(fits, dict):

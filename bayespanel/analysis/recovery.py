@@ -49,7 +49,7 @@ from ..core import suffstats as _ss
 from ..core.ar1 import refuse_pending
 from .contrasts import contrast_rows
 from ..core.errors import EstimationError, SamplingWarning, SpecificationError, choices_error
-from ..data.resultshape import DEFAULT_INTERVAL
+from ..data.resultshape import check_prob
 from .occasions import true_occasion_coef
 from ..core.safetext import LITERAL_RC, literal
 from ..core.terms import CONTRAST, parse
@@ -548,13 +548,14 @@ class DesignCheckResult:
         lines += [f"- {p}" for p in self.problems()]
         return "\n".join(lines)
 
-    def figure(self, prob: float = DEFAULT_INTERVAL):
+    def figure(self, prob: float | None = None):
         """Coverage (with 2 Monte Carlo SE) and median interval width per parameter.
 
         Returns
         -------
         matplotlib.figure.Figure
         """
+        prob = check_prob(prob)  # None: the interval option
         return _figure(self, prob)
 
 
@@ -597,13 +598,14 @@ def _draw_figure(res, prob, plt):
     return fig
 
 
-def design_check_section(result: DesignCheckResult, prob: float = DEFAULT_INTERVAL):
+def design_check_section(result: DesignCheckResult, prob: float | None = None):
     """The report section of a design check: ``(table, figure)``.
 
     ``table`` is :meth:`DesignCheckResult.table` with ``attrs["summary"]`` holding the
     plain-language reading and ``attrs["title"]`` a heading; ``figure`` is
     :meth:`DesignCheckResult.figure`. For helper modules that assemble reports.
     """
+    prob = check_prob(prob)  # None: the interval option
     tab = result.table()
     tab.attrs["title"] = "How trustworthy are the intervals on a panel of this shape?"
     tab.attrs["summary"] = result.summary()

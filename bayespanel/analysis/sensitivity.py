@@ -39,7 +39,7 @@ from scipy import stats as _st
 
 from .contrasts import contrast_rows
 from ..core.errors import SpecificationError, choices_error
-from ..data.resultshape import DEFAULT_INTERVAL
+from ..data.resultshape import check_prob
 from ..core.safetext import LITERAL_RC, literal
 
 __all__ = ["power_scaling", "power_scaling_arrays", "log_prior_draws", "log_likelihood_draws",
@@ -266,7 +266,10 @@ class PresetComparison:
     """
 
     posteriors: dict
-    prob: float = DEFAULT_INTERVAL
+    prob: float | None = None  # None: the interval option when made
+
+    def __post_init__(self):
+        self.prob = check_prob(self.prob)
 
     def partition(self) -> pd.DataFrame:
         """The variance partition side by side: rows are quantities (SDs, ICC, shares of
@@ -369,7 +372,7 @@ def _coef_rows(post, prob):
 
 
 def prior_presets(model, presets=UNIT_SD_PRESETS, *, draws=1000, tune=1000, chains=4, seed=1,
-                  prob=DEFAULT_INTERVAL, sampler="auto") -> PresetComparison:
+                  prob=None, sampler="auto") -> PresetComparison:
     """Refit ``model`` under each built-in prior preset for the unit SD.
 
     Parameters
@@ -392,6 +395,7 @@ def prior_presets(model, presets=UNIT_SD_PRESETS, *, draws=1000, tune=1000, chai
         ``.partition()`` (the variance partition side by side), ``.coefficients()``,
         ``.flags()`` and ``.summary()`` (plain language), ``.figure()``.
     """
+    prob = check_prob(prob)  # None: the interval option
     from ..bayes.priors import SD_PRESETS
 
     if getattr(model, "unit_effects", None) != "random":

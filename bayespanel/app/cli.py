@@ -22,6 +22,7 @@ import pandas as pd
 
 from .. import kinds
 from ..core.errors import BayespanelError, OutputError, SpecificationError, choices_error
+from ..core.options import get_option
 from ..report.text import printable
 from ..core.terms import parse
 
@@ -776,7 +777,7 @@ def build_parser() -> argparse.ArgumentParser:
                         "between-minus-within contrasts (outcome units per covariate unit)")
     g.add_argument("--interval", type=float, default=None,
                    help=f"probability of every reported interval (default "
-                        f"{default['interval']})")
+                        f"{get_option('interval')}, the package's interval option)")
     g.add_argument("--title", help="title of the report")
     g.add_argument("--quiet", action="store_true", help="no progress lines")
     g.add_argument("--strict", action="store_true", help=_STRICT_HELP)

@@ -16,7 +16,7 @@ from ..core.ar1 import ERRORS
 from ..core.errors import SpecificationError, choices_error
 from ..bayes.families import FAMILIES
 from ..bayes.sampling import MIN_DRAWS
-from ..data.resultshape import DEFAULT_INTERVAL
+from ..core.options import get_option
 
 __all__ = ["Settings", "load_settings", "LEVELS", "SAMPLERS", "COVS", "RE_METHODS",
            "LOO_OBSERVATIONS", "MAX_REFITS"]
@@ -57,7 +57,8 @@ class Settings:
     rope : float, optional
         Half-width of the region of practical equivalence for the contrasts.
     interval : float
-        Probability of every interval reported.
+        Probability of every interval reported (default: the package's ``interval``
+        option when the settings are made, :func:`bayespanel.set_option`).
     occasion_effects : bool
         One indicator per occasion in every model.
     initial_conditions : bool
@@ -126,7 +127,7 @@ class Settings:
     re_method: str = "swamy-arora"
     level: str = "occasion"
     rope: float | None = None
-    interval: float = DEFAULT_INTERVAL
+    interval: float = field(default_factory=lambda: get_option("interval"))
     occasion_effects: bool = False
     initial_conditions: bool = True
     ppc_draws: int = 200

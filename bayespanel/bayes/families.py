@@ -44,7 +44,7 @@ from scipy import special
 
 from ..core.errors import PanelDataError, SpecificationError, choices_error
 from ..core.mathcore import intraclass_correlation
-from ..data.resultshape import DEFAULT_INTERVAL
+from ..data.resultshape import check_prob
 from ..core.terms import BETWEEN, UNIT_MEAN, WITHIN, parse, part_label
 
 __all__ = [
@@ -424,13 +424,14 @@ def _interval_table(draws: pd.DataFrame, prob: float) -> pd.DataFrame:
                          f"lower {pct}": draws.quantile(lo), f"upper {pct}": draws.quantile(hi)})
 
 
-def icc_latent(post, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+def icc_latent(post, prob: float | None = None) -> pd.DataFrame:
     """ICC on the latent scale, with its interval, for a latent-family posterior.
 
     ``post`` is a :class:`bayespanel.bayes.latent.LatentPosterior`, whose ``icc`` draws
     were computed with :func:`icc_latent_draws` after sampling. The row label states the
     residual variance used.
     """
+    prob = check_prob(prob)  # None: the interval option
     fam = get_family(post.family)
     basis = {"logit": "latent scale, residual variance pi^2/3",
              "log": "latent scale, log-normal approximation",
@@ -438,7 +439,7 @@ def icc_latent(post, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
     return _interval_table(pd.DataFrame({f"ICC ({basis})": post.flat_draws("icc")}), prob)
 
 
-def average_marginal_effects(post, prob: float = DEFAULT_INTERVAL,
+def average_marginal_effects(post, prob: float | None = None,
                              max_draws: int = 400) -> pd.DataFrame:
     """Average marginal effects of each within, between and other term on the outcome scale.
 
@@ -448,6 +449,7 @@ def average_marginal_effects(post, prob: float = DEFAULT_INTERVAL,
     (Mundlak) design the within effect of ``x`` is ``b_x`` and its between effect
     ``b_x + b_{x (unit mean)}``. Uses at most ``max_draws`` evenly spaced draws.
     """
+    prob = check_prob(prob)  # None: the interval option
     names, weights = post.effect_weights()
     eta = post.linear_predictor(include_units=False, max_draws=max_draws)
     ame = ame_draws(post.family, eta, post.flat_draws("sigma_unit", max_draws), weights,
@@ -548,7 +550,7 @@ def ppc_p_value(observed, replicated) -> float:
 
 
 def ppc_summary(post, draws: int = 400, seed: int = 0,
-                prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+                prob: float | None = None) -> pd.DataFrame:
     """Posterior predictive checks suited to the family.
 
     Replicates the outcome for ``draws`` posterior draws (given the sampled unit effects)
@@ -557,6 +559,7 @@ def ppc_summary(post, draws: int = 400, seed: int = 0,
     ``p (replicated >= observed)`` column is the posterior predictive p-value of Gelman,
     Meng and Stern (1996); values near 0 or 1 flag misfit.
     """
+    prob = check_prob(prob)  # None: the interval option
     fam = get_family(post.family)
     rng = np.random.default_rng(seed)
     eta = post.linear_predictor(include_units=True, max_draws=draws, seed=seed)

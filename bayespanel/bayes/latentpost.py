@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 
 from ..core.errors import SpecificationError, choices_error
-from ..data.resultshape import DEFAULT_INTERVAL
+from ..data.resultshape import check_prob
 from . import families as fam_mod
 from . import slopes
 from .posterior import Posterior
@@ -316,21 +316,24 @@ class LatentPosterior(Posterior):
         return loo(self, level, **kwargs)
 
     # ------------------------------------------------------------------ family reports
-    def icc_table(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+    def icc_table(self, prob: float | None = None) -> pd.DataFrame:
         """The ICC on the latent scale with its interval, one row labelled by the residual
         variance used (see :func:`~bayespanel.bayes.families.icc_latent`). The posterior
         mean alone is :attr:`icc` (a float, as for every fit)."""
+        prob = check_prob(prob)  # None: the interval option
         return fam_mod.icc_latent(self, prob)
 
-    def average_marginal_effects(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+    def average_marginal_effects(self, prob: float | None = None) -> pd.DataFrame:
         """Average marginal effects on the outcome scale
         (:func:`~bayespanel.bayes.families.average_marginal_effects`)."""
+        prob = check_prob(prob)  # None: the interval option
         return fam_mod.average_marginal_effects(self, prob)
 
     def ppc(self, draws: int = 400, seed: int = 0,
-            prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+            prob: float | None = None) -> pd.DataFrame:
         """Family-specific posterior predictive checks
         (:func:`~bayespanel.bayes.families.ppc_summary`)."""
+        prob = check_prob(prob)  # None: the interval option
         return fam_mod.ppc_summary(self, draws=draws, seed=seed, prob=prob)
 
     # ------------------------------------------------------------------ save / load

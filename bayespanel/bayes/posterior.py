@@ -42,7 +42,7 @@ from ..core import gaussian
 from .posteriorfile import decode_labels, encode_labels, read_tree, write_tree
 from .spec import ModelSpec
 from ..core.jsonsafe import jsonable
-from ..data.resultshape import DEFAULT_INTERVAL, check_prob, term_records
+from ..data.resultshape import check_prob, term_records
 from ..core.suffstats import SuffStats
 
 __all__ = ["Posterior", "PointwiseInputs", "simulate_outcome", "THRESHOLDS"]
@@ -372,7 +372,7 @@ class Posterior:
                 out[f"{name}[{where}]"] = arr[(slice(None), slice(None)) + idx]
         return out
 
-    def summary(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+    def summary(self, prob: float | None = None) -> pd.DataFrame:
         """Posterior mean, SD, equal-tailed interval, R-hat and ESS of every parameter.
 
         Rows are the coefficient labels (``"x"``, ``"x (within)"``, ``"x (between)"``,
@@ -439,16 +439,17 @@ class Posterior:
             return float(self.draws("sigma_unit").mean())
         return 0.0 if self.spec.unit_effects == "none" else float("nan")
 
-    def interval(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+    def interval(self, prob: float | None = None) -> pd.DataFrame:
         """Equal-tailed credible intervals of the coefficients (columns lower, upper)."""
         prob = check_prob(prob)
         flat = self._flat("coef")
         q = np.quantile(flat, [(1 - prob) / 2, 1 - (1 - prob) / 2], axis=0)
         return pd.DataFrame({"lower": q[0], "upper": q[1]}, index=self.labels)
 
-    def table(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+    def table(self, prob: float | None = None) -> pd.DataFrame:
         """Coefficients and variance components with the reference fits' column names:
         ``estimate`` (posterior mean), ``sd``, ``lower``, ``upper`` (equal-tailed interval)."""
+        prob = check_prob(prob)  # None: the interval option
         s = self.summary(prob)
         lo, hi = _percent((1 - prob) / 2), _percent(1 - (1 - prob) / 2)
         out = s[["mean", "sd", lo, hi]].copy()
@@ -456,7 +457,7 @@ class Posterior:
         out.attrs.update(prob=prob, error="sd")
         return out
 
-    def to_record(self, prob: float = DEFAULT_INTERVAL) -> dict:
+    def to_record(self, prob: float | None = None) -> dict:
         """This posterior's part of its model entry in ``results.json`` (``models[]`` in
         docs/results-schema.md): ``coefficients`` (one record per term of
         :meth:`summary`: the posterior mean as ``estimate``, as in :meth:`table`, SD,
@@ -464,6 +465,7 @@ class Posterior:
         other parameters of :meth:`summary`, e.g. ``sigma_unit``, ``sigma_obs``, ``icc``,
         without the tail ESS) and ``diagnostics`` (:meth:`diagnostics` without warnings).
         Non-finite numbers are ``None``."""
+        prob = check_prob(prob)  # None: the interval option
         summ = self.summary(prob)
         summ = summ.rename(columns={"mean": "estimate",
                                     **dict(zip(summ.columns[2:4], ("lower", "upper")))})
@@ -480,12 +482,13 @@ class Posterior:
                 "warnings": list(diag["problems"])}),
         }
 
-    def contextual_effects(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+    def contextual_effects(self, prob: float | None = None) -> pd.DataFrame:
         """The contextual effect (between minus within) of each time-varying covariate.
 
         WithinBetween: draws of ``b_between - b_within``; CorrelatedEffects: the
         coefficient of the unit mean itself (Mundlak 1978). Rows are covariate names.
         """
+        prob = check_prob(prob)  # None: the interval option
         from ..analysis.contrasts import contrast_covariates, contrast_draws
 
         if not kinds.column_map(self.spec.kind).contrast:
@@ -772,11 +775,12 @@ class Posterior:
                             if self.spec.unit_effects == "random" else None, sigma.shape)
         return tau, sigma
 
-    def contrasts(self, rope=None, prob: float = DEFAULT_INTERVAL, reference=None,
+    def contrasts(self, rope=None, prob: float | None = None, reference=None,
                   tests: bool = True):
         """Between-minus-within effects with sign and ROPE probabilities, beside the
         Hausman and cluster-robust Mundlak tests; see
         :func:`bayespanel.analysis.contrasts.within_between_contrasts`."""
+        prob = check_prob(prob)  # None: the interval option
         from ..analysis.contrasts import contrast_covariates, within_between_contrasts
 
         if self.rows is None and self.design is None:

@@ -22,8 +22,9 @@ names and types:
 ``to_record(prob)``       dict: the fit's part of ``results.json``
 ========================  ================================================================
 
-Every interval the package reports by default has the probability
-:data:`DEFAULT_INTERVAL`; a run's ``interval`` setting overrides it for a whole run.
+Every interval the package reports by default has the probability of the ``interval``
+option (:func:`bayespanel.set_option`; it starts at :data:`DEFAULT_INTERVAL`), read when
+the function runs; a run's ``interval`` setting (``--interval``) defaults to it too.
 """
 
 from __future__ import annotations
@@ -33,13 +34,15 @@ import pandas as pd
 
 from ..core.errors import SpecificationError
 from ..core.jsonsafe import json_record
+from ..core.options import OPTIONS, resolve_prob
 
 __all__ = ["DEFAULT_INTERVAL", "LAG_ONE", "LEADING_COLUMNS", "check_prob", "leading_columns",
            "term_records", "summarise_draws", "PartitionResult"]
 
-#: probability of every interval reported by default (summaries, tables, partitions,
-#: contrasts, ICC, average marginal effects, predictive checks, run settings)
-DEFAULT_INTERVAL = 0.95
+#: the starting value of the ``interval`` option: the probability of every interval
+#: reported by default (summaries, tables, partitions, contrasts, ICC, average marginal
+#: effects, predictive checks, run settings) until a user sets the option
+DEFAULT_INTERVAL = OPTIONS["interval"]
 
 #: the partition's quantity under AR(1) errors: the correlation of one unit's outcomes on
 #: two occasions one time unit apart, given the covariates
@@ -50,11 +53,9 @@ LEADING_COLUMNS = ("estimate", "error", "lower", "upper")
 
 
 def check_prob(prob) -> float:
-    """``prob`` as a float strictly between 0 and 1, or :class:`SpecificationError`."""
-    if isinstance(prob, bool) or not isinstance(prob, (int, float)) or not 0 < prob < 1:
-        raise SpecificationError(f"prob={prob!r} is not valid; choose a number strictly "
-                                 "between 0 and 1")
-    return float(prob)
+    """``prob`` as a float strictly between 0 and 1, or :class:`SpecificationError`;
+    ``None`` is the ``interval`` option (:func:`bayespanel.get_option`), read now."""
+    return resolve_prob(prob)
 
 
 def leading_columns(error_name: str) -> list:

@@ -9,7 +9,7 @@ from scipy import stats
 from .. import kinds
 from ..core.mathcore import intraclass_correlation
 from ..core.jsonsafe import jsonable
-from ..data.resultshape import DEFAULT_INTERVAL, PartitionResult, check_prob, term_records
+from ..data.resultshape import PartitionResult, check_prob, term_records
 
 __all__ = ["ReferenceResult"]
 
@@ -146,7 +146,7 @@ class ReferenceResult:
         return np.where(finite, stats.t.ppf(q, np.where(finite, self._df, 1.0)),
                         stats.norm.ppf(q))
 
-    def interval(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+    def interval(self, prob: float | None = None) -> pd.DataFrame:
         """Confidence intervals from each term's reference distribution.
 
         Returns a DataFrame with columns ``lower`` and ``upper``, indexed by term.
@@ -156,9 +156,10 @@ class ReferenceResult:
         return pd.DataFrame({"lower": self._coef - half, "upper": self._coef + half},
                             index=self.labels)
 
-    def table(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+    def table(self, prob: float | None = None) -> pd.DataFrame:
         """Estimates, standard errors and intervals (the leading columns every fit's
         table shares, :mod:`bayespanel.data.resultshape`), then t, reference df and p-values."""
+        prob = check_prob(prob)  # None: the interval option
         ci = self.interval(prob)
         out = pd.DataFrame({
             "estimate": self._coef, "se": self.se.to_numpy(),
@@ -169,7 +170,7 @@ class ReferenceResult:
                          cov_type=self.cov_type, method=self.method)
         return out
 
-    def to_record(self, prob: float = DEFAULT_INTERVAL) -> dict:
+    def to_record(self, prob: float | None = None) -> dict:
         """This fit's entry of ``results.json`` (``reference[]`` in docs/results-schema.md,
         without the run's ``name``, ``title`` and ``assumptions``): the estimator, its
         covariance, one record per term of :meth:`table` (``p`` as ``p_value``), the
@@ -177,6 +178,7 @@ class ReferenceResult:
         terms not estimated and the tests' distribution; random-intercept fits add whether
         the unit variance sits at zero, fixed effects the unit-intercept share. Non-finite
         numbers are ``None``."""
+        prob = check_prob(prob)  # None: the interval option
         tab = self.table(prob)
         random = (self.estimator in kinds.reference_names()
                   and kinds.reference(self.estimator).variance_components)

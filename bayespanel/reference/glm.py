@@ -51,7 +51,7 @@ from scipy import special, stats
 from .. import kinds
 from ..core.errors import EstimationError, SpecificationError, choices_error
 from ..core.jsonsafe import jsonable
-from ..data.resultshape import DEFAULT_INTERVAL, check_prob, term_records
+from ..data.resultshape import check_prob, term_records
 from .covariance import cr1
 
 __all__ = ["GLMResult", "fit_glm", "glm_design", "GLM_COVS", "glm_family"]
@@ -127,14 +127,16 @@ class GLMResult:
         """``nan``: a pooled GLM has no unit variance (population-averaged)."""
         return float("nan")
 
-    def interval(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+    def interval(self, prob: float | None = None) -> pd.DataFrame:
         """Confidence intervals of the coefficients (columns ``lower``, ``upper``)."""
+        prob = check_prob(prob)  # None: the interval option
         t = self.table(prob)
         return t[["lower", "upper"]].rename_axis(None)
 
-    def table(self, prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+    def table(self, prob: float | None = None) -> pd.DataFrame:
         """Estimates, standard errors and intervals (the leading columns every fit's
         table shares), then the statistic, reference df and p-values."""
+        prob = check_prob(prob)  # None: the interval option
         se = self.se.to_numpy()
         b = self.coef.to_numpy()
         c = self._crit(check_prob(prob))
@@ -146,11 +148,12 @@ class GLMResult:
         out.attrs.update(prob=prob, error="se")
         return out
 
-    def to_record(self, prob: float = DEFAULT_INTERVAL) -> dict:
+    def to_record(self, prob: float | None = None) -> dict:
         """This fit's entry of ``results.json`` (``reference[]``, without the run's name,
         title, assumptions and family texts): covariance, one record per term of
         :meth:`table`, no variance components (population-averaged), rows, units and the
         terms not estimated. Non-finite numbers are ``None``."""
+        prob = check_prob(prob)  # None: the interval option
         tab = self.table(prob)
         return jsonable({
             "cov": self.cov_type,
@@ -161,12 +164,13 @@ class GLMResult:
             "not_estimated": {str(k): str(v) for k, v in self.dropped.items()}})
 
     def average_marginal_effects(self, names, weights,
-                                 prob: float = DEFAULT_INTERVAL) -> pd.DataFrame:
+                                 prob: float | None = None) -> pd.DataFrame:
         """``d E[y] / d x`` averaged over the rows, with delta-method standard errors.
 
         ``names``/``weights`` as :func:`bayespanel.bayes.families.effect_weights`
         (each effect a combination of coefficients, e.g. ``b_x + b_{x (unit mean)}``).
         """
+        prob = check_prob(prob)  # None: the interval option
         W = np.asarray(weights, dtype=float).reshape(len(names), -1)
         b = self.coef.to_numpy()
         d1, d2 = _mean_derivatives(self.link, self._eta, self._trials)
