@@ -1,4 +1,4 @@
-"""errors="ar1" on the five Gaussian builders (design.md section 4b).
+"""errors="ar1" on the five Gaussian builders (docs/serial-correlation.md; bayespanel.core.ar1).
 
 Checks against outside references: each builder's compiled log-likelihood equals the sum
 over units of scipy.stats.multivariate_normal log-densities with the dense AR(1) plus

@@ -112,7 +112,7 @@ class GaussianModel:
     errors = "iid"
 
     def __new__(cls, *args, **kwargs):
-        # issue 5 hook: family= (other than "gaussian") and random_slopes= build a
+        # family= (other than "gaussian") and random_slopes= build a
         # latent-effect model (bayespanel.bayes.latent) instead
         from .latent import latent_model, wants_latent
 
