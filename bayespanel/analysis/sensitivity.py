@@ -115,23 +115,6 @@ def power_scaling_arrays(draws: dict, log_prior, log_likelihood, *, threshold=TH
 
 
 # ---------------------------------------------------------------------------- model pieces
-def _logpdf(prior, x, params):
-    fam = prior.family
-    if fam == "normal":
-        return _st.norm.logpdf(x, params["mu"], params["sigma"])
-    if fam == "student_t":
-        return _st.t.logpdf(x, params["nu"], params["mu"], params["sigma"])
-    if fam == "half_normal":
-        return _st.halfnorm.logpdf(x, scale=params["scale"])
-    if fam == "half_student_t":
-        return np.log(2.0) + _st.t.logpdf(x, params["nu"], 0.0, params["scale"])
-    if fam == "exponential":
-        return _st.expon.logpdf(x, scale=params["scale"])
-    if fam == "gamma2":
-        return _st.gamma.logpdf(x, 2.0, scale=params["scale"])
-    return np.zeros_like(x)  # flat and half_flat: constant
-
-
 def log_prior_draws(posterior) -> dict:
     """Log prior density of every draw, by component: ``coef``, ``sigma_obs``, ``sigma_unit``.
 
@@ -143,7 +126,7 @@ def log_prior_draws(posterior) -> dict:
     -------
     dict of str -> array (chain, draw)
     """
-    from ..bayes.priors import prior_on_standard_scale
+    from ..bayes.priors import prior_logpdf, prior_on_standard_scale
 
     spec, sc = posterior.spec, posterior.scaling
     if sc is None:
@@ -158,12 +141,12 @@ def log_prior_draws(posterior) -> dict:
     lp = np.zeros(coef.shape[:2])
     for j, lab in enumerate(labels):
         par = prior_on_standard_scale(priors[lab], sc, j, icpt)
-        lp = lp + _logpdf(priors[lab], b_std[..., j], par)
+        lp = lp + prior_logpdf(priors[lab].family, b_std[..., j], par)
     out = {"coef": lp}
     comps = ["sigma_obs"] + (["sigma_unit"] if spec.unit_effects == "random" else [])
     for comp in comps:
         par = prior_on_standard_scale(priors[comp], sc)
-        out[comp] = _logpdf(priors[comp], posterior.draws(comp) / sy, par)
+        out[comp] = prior_logpdf(priors[comp].family, posterior.draws(comp) / sy, par)
     if "rho" in priors and getattr(spec, "errors", "iid") == "ar1":   # uniform, any scale
         lo, hi = priors["rho"].kwargs["lower"], priors["rho"].kwargs["upper"]
         out["rho"] = _st.uniform.logpdf(posterior.draws("rho"), lo, hi - lo)
