@@ -86,3 +86,16 @@ def psd_power(A: np.ndarray, power: float, tol: float = 1e-12) -> np.ndarray:
     ok = w > tol * np.maximum(top, np.finfo(float).tiny)
     wp = np.where(ok, np.where(ok, w, 1.0) ** power, 0.0)
     return (v * wp[..., None, :]) @ np.swapaxes(v, -1, -2)
+
+
+def group_cross_products(X: np.ndarray, groups: np.ndarray, G: int) -> np.ndarray:
+    """Per-group cross-products ``X_g'X_g`` (G x k x k) of the rows of ``X`` by the group
+    codes ``groups`` (0 .. G-1), one weighted count per column pair."""
+    k = X.shape[1]
+    out = np.empty((G, k, k))
+    for a in range(k):
+        for b in range(a, k):
+            v = np.bincount(groups, weights=X[:, a] * X[:, b], minlength=G)
+            out[:, a, b] = v
+            out[:, b, a] = v
+    return out

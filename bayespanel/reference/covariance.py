@@ -38,7 +38,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..core.linalg import psd_power
+from ..core.linalg import group_cross_products, psd_power
 
 __all__ = ["COV_TYPES", "classical", "cluster_scores", "cr1", "cr2", "cr2_from_blocks"]
 
@@ -78,18 +78,6 @@ def cr1(bread, scores, n: int, k: int) -> np.ndarray:
     return _sym(factor * (B.T @ B))
 
 
-def _cluster_cp(X, clusters, G):
-    """Per-cluster cross-products ``X_g'X_g`` (G x k x k), by column pairs."""
-    k = X.shape[1]
-    out = np.empty((G, k, k))
-    for a in range(k):
-        for b in range(a, k):
-            v = np.bincount(clusters, weights=X[:, a] * X[:, b], minlength=G)
-            out[:, a, b] = v
-            out[:, b, a] = v
-    return out
-
-
 def cr2(X, e, clusters, bread, G: int | None = None, df: bool = True):
     """CR2 covariance (Bell and McCaffrey 2002) and Satterthwaite degrees of freedom.
 
@@ -119,7 +107,7 @@ def cr2(X, e, clusters, bread, G: int | None = None, df: bool = True):
     X = np.asarray(X, dtype=float)
     clusters = np.asarray(clusters, dtype=np.int64)
     G = int(clusters.max()) + 1 if G is None else int(G)
-    S = _cluster_cp(X, clusters, G)
+    S = group_cross_products(X, clusters, G)
     s = cluster_scores(X, e, clusters, G)
     return cr2_from_blocks(S, s, bread, df=df)
 

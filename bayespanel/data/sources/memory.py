@@ -21,6 +21,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from ...core.linalg import group_cross_products
+
 __all__ = ["RowBlock", "InMemoryRows", "column_maxabs"]
 
 
@@ -102,12 +104,5 @@ class InMemoryRows:
             sums = np.zeros((N, Z.shape[1]))
             np.add.at(sums, codes, Z)
             D = Z - (sums / T[:, None])[codes]
-            p = Z.shape[1]
-            out = np.zeros((N, p, p))
-            for a in range(p):
-                for b in range(a, p):
-                    v = np.bincount(codes, weights=D[:, a] * D[:, b], minlength=N)
-                    out[:, a, b] = v
-                    out[:, b, a] = v
-            self._ucp = out
+            self._ucp = group_cross_products(D, codes, N)
         return self._ucp
