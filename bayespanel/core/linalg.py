@@ -5,7 +5,8 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["independent_columns", "solve_psd", "psd_power", "rank_of"]
+__all__ = ["independent_columns", "solve_psd", "psd_power", "rank_of", "group_cross_products",
+           "group_scores"]
 
 #: relative tolerance below which a column counts as a combination of earlier ones
 COLLINEAR_TOL = 1e-9
@@ -98,4 +99,21 @@ def group_cross_products(X: np.ndarray, groups: np.ndarray, G: int) -> np.ndarra
             v = np.bincount(groups, weights=X[:, a] * X[:, b], minlength=G)
             out[:, a, b] = v
             out[:, b, a] = v
+    return out
+
+
+def group_scores(X: np.ndarray, e: np.ndarray, groups: np.ndarray, G: int) -> np.ndarray:
+    """Per-group score sums ``s_g = X_g'e_g`` (G x k): the rows of ``X`` times ``e``,
+    summed by the group codes ``groups`` (0 .. G-1), one weighted count per column.
+
+    The one sum behind every cluster-robust covariance of the package (the reference
+    fits' CR1 and CR2, the GLM reference fits, the serial-correlation test, and the
+    numpy version of :func:`bayespanel.core.suffstats.unit_scores`).
+    """
+    X = np.asarray(X, dtype=float)
+    e = np.asarray(e, dtype=float)
+    groups = np.asarray(groups, dtype=np.int64)
+    out = np.empty((G, X.shape[1]))
+    for j in range(X.shape[1]):
+        out[:, j] = np.bincount(groups, weights=X[:, j] * e, minlength=G)
     return out

@@ -33,6 +33,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .linalg import group_scores
+
 __all__ = ["SuffStats", "Partial", "partial", "merge", "finalize", "compute", "quad_terms"]
 
 
@@ -513,20 +515,33 @@ def _nb_unit_scores(X, Y, codes, centre, A, v, out):  # pragma: no cover (compil
             out[c, i] += a * s
 
 
-def unit_scores(X, y, codes, centre, A, v):
+def unit_scores(X, y, codes, centre, A, v, step: int = 1 << 12):
     """Per-unit sums ``sum_t (A d_t)(v' d_t)`` with ``d_t = [x_t, y_t] - centre[c_t]`` (the
-    scores of a regression whose rows are linear in the deviations), in one compiled
-    sweep over the rows; None when the compiled kernels are not used for this many rows
-    (:data:`USE_NUMBA`), so that the caller runs its numpy version."""
+    scores of a regression whose rows are linear in the deviations): one compiled sweep
+    over the rows when the compiled kernels are used for this many rows
+    (:data:`USE_NUMBA`), else numpy in slices of ``step`` rows, each summed by unit with
+    :func:`bayespanel.core.linalg.group_scores` (no ``n x k`` temporaries)."""
     X = np.asarray(X, dtype=float)
-    kern = _kernels_for(X.shape[0])
-    if kern is None:
-        return None
+    y = np.asarray(y, dtype=float).ravel()
+    codes = np.asarray(codes, dtype=np.int64)
     A = np.ascontiguousarray(A, dtype=np.float64)
+    v = np.ascontiguousarray(v, dtype=np.float64)
     out = np.zeros((len(centre), A.shape[0]))
-    kern["scores"](np.ascontiguousarray(X), np.asarray(y, dtype=float).reshape(-1, 1),
-                   np.asarray(codes, dtype=np.int64), np.ascontiguousarray(centre, dtype=float),
-                   A, np.ascontiguousarray(v, dtype=np.float64), out)
+    kern = _kernels_for(X.shape[0])
+    if kern is not None:
+        kern["scores"](np.ascontiguousarray(X), y.reshape(-1, 1), codes,
+                       np.ascontiguousarray(centre, dtype=float), A, v, out)
+        return out
+    n, k = X.shape
+    for a in range(0, n, step):
+        b = min(a + step, n)
+        c = codes[a:b]
+        D = np.empty((b - a, k + 1))
+        D[:, :k] = X[a:b]
+        D[:, k] = y[a:b]
+        D -= centre[c]
+        lo, hi = int(c.min()), int(c.max()) + 1    # the slice's units (rows sorted by unit)
+        out[lo:hi] += group_scores(D @ A.T, D @ v, c - lo, hi - lo)
     return out
 
 

@@ -38,9 +38,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..core.linalg import group_cross_products, psd_power
+from ..core.linalg import group_cross_products, group_scores, psd_power
 
-__all__ = ["COV_TYPES", "classical", "cluster_scores", "cr1", "cr2", "cr2_from_blocks"]
+__all__ = ["COV_TYPES", "classical", "cr1", "cr2", "cr2_from_blocks"]
 
 COV_TYPES = ("classical", "cluster", "cr2")
 
@@ -52,16 +52,6 @@ def _sym(V):
 def classical(bread: np.ndarray, sigma2: float) -> np.ndarray:
     """``sigma2 * (X'X)^{-1}``."""
     return _sym(sigma2 * bread)
-
-
-def cluster_scores(X: np.ndarray, e: np.ndarray, clusters: np.ndarray, G: int) -> np.ndarray:
-    """Per-cluster score sums ``s_g = X_g' e_g`` (G x k)."""
-    X = np.asarray(X, dtype=float)
-    xe = X * np.asarray(e, dtype=float)[:, None]
-    out = np.empty((G, X.shape[1]))
-    for j in range(X.shape[1]):
-        out[:, j] = np.bincount(clusters, weights=xe[:, j], minlength=G)
-    return out
 
 
 def cr1(bread, scores, n: int, k: int) -> np.ndarray:
@@ -108,7 +98,7 @@ def cr2(X, e, clusters, bread, G: int | None = None, df: bool = True):
     clusters = np.asarray(clusters, dtype=np.int64)
     G = int(clusters.max()) + 1 if G is None else int(G)
     S = group_cross_products(X, clusters, G)
-    s = cluster_scores(X, e, clusters, G)
+    s = group_scores(X, e, clusters, G)
     return cr2_from_blocks(S, s, bread, df=df)
 
 

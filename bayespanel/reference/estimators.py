@@ -34,7 +34,8 @@ from ..core.terms import AS_IS, parse
 from . import core
 from ..core.linalg import COLLINEAR_TOL
 from ._results import ReferenceResult
-from .covariance import COV_TYPES, classical, cluster_scores, cr1, cr2, cr2_from_blocks
+from ..core.linalg import group_scores
+from .covariance import COV_TYPES, classical, cr1, cr2, cr2_from_blocks
 
 __all__ = ["ESTIMATORS", "METHODS", "pooled", "within", "between", "random", "mundlak",
            "within_between", "fit_design", "fit_arrays", "fit_stats"]
@@ -336,22 +337,8 @@ def design_scores(res, estimator, design, kind, chunk_rows: int = 1 << 12):
     else:
         A = np.eye(base.p)
     Ac, Av = A[cols], A.T @ v
-    zbar = base.unit_mean
-    codes = design.unit_codes
-    scores = suffstats.unit_scores(design.X, design.y, codes, zbar, Ac, Av)
-    if scores is None:  # the numpy version, in row slices
-        scores = np.zeros((ss.n_units, len(cols)))
-        k = design.k
-        for a in range(0, design.n, chunk_rows):
-            b = min(a + chunk_rows, design.n)
-            c = codes[a:b]
-            D = np.empty((b - a, k + 1))
-            D[:, :k] = design.X[a:b]
-            D[:, k] = design.y[a:b]
-            D -= zbar[c]
-            P = (D @ Ac.T) * (D @ Av)[:, None]
-            local = np.flatnonzero(np.concatenate([[True], c[1:] != c[:-1]]))
-            scores[c[local]] += np.add.reduceat(P, local, axis=0)
+    scores = suffstats.unit_scores(design.X, design.y, design.unit_codes, base.unit_mean,
+                                   Ac, Av, step=chunk_rows)
     if estimator == "within":
         keep = ss.unit_count > 1
         return scores[keep], int(ss.unit_count[keep].sum()), keep
@@ -583,7 +570,7 @@ def _add_robust(res, estimator, cov, ss, X, y, codes):
     Xr, e, cl, G = regression_rows(res, estimator, ss, X, y, codes)
     bread = res.extra["bread"]
     if cov == "cluster":
-        V, df = cr1_covariance(res, estimator, ss, cluster_scores(Xr, e, cl, G), Xr.shape[0])
+        V, df = cr1_covariance(res, estimator, ss, group_scores(Xr, e, cl, G), Xr.shape[0])
     else:
         V, df = cr2(Xr, e, cl, bread, G)
     set_covariance(res, cov, V, df, G)

@@ -51,6 +51,7 @@ from scipy import special, stats
 from .. import kinds
 from ..core.errors import EstimationError, SpecificationError, choices_error
 from ..core.jsonsafe import jsonable
+from ..core.linalg import group_scores
 from ..data.resultshape import check_prob, term_records
 from .covariance import cr1
 
@@ -279,9 +280,7 @@ def fit_glm(design, name, family, *, trials=None, log_exposure=None, cov="cluste
     if cov == "cluster":
         codes = np.asarray(design.unit_codes)
         G = int(codes.max()) + 1
-        scores = np.zeros((G, k))
-        np.add.at(scores, codes, M * (y - mu)[:, None])
-        V = cr1(Hinv, scores, n, k)
+        V = cr1(Hinv, group_scores(M, y - mu, codes, G), n, k)
     else:
         V = Hinv
     return GLMResult(estimator=name, kind=kind, link=link, family=family, labels=labels,

@@ -35,7 +35,8 @@ from scipy import stats
 
 from ..core.ar1 import Timeline
 from ..core.errors import EstimationError
-from .covariance import cluster_scores, cr1
+from ..core.linalg import group_scores
+from .covariance import cr1
 from .specification import SpecificationTest
 
 __all__ = ["SerialCorrelationTest", "serial_correlation_test", "serial_correlation_arrays"]
@@ -135,7 +136,7 @@ def serial_correlation_arrays(X, y, keys, times, labels=None, column: str = "tim
                               "are all zero (the differenced equation fits exactly)")
     delta = float(e_lag @ e_t) / sxx
     u = e_t - delta * e_lag
-    scores = cluster_scores(e_lag[:, None], u, clusters.ravel(), G)
+    scores = group_scores(e_lag[:, None], u, clusters.ravel(), G)
     V = cr1(np.array([[1.0 / sxx]]), scores, n, 1)
     se = float(np.sqrt(V[0, 0]))
     t = (delta - NULL_COEF) / se
