@@ -23,11 +23,16 @@ from .core.errors import (
     SpecificationError,
 )
 from .core.options import get_option, option_context, set_option
+from .core.providers import declare as _declare
 from .data import datasets
 from .data.design import Design, DesignSpec
 from .data.panel import Panel
 
 from .core.version import __version__  # noqa: E402,F401
+
+# Work a lower layer offers and a higher one does (bayespanel.core.providers): a
+# posterior's loo() (bayes layer) is bayespanel.analysis.loo.loo, loaded on first use.
+_declare("loo", "bayespanel.analysis.loo", "loo")
 
 # name -> (module, attribute or None for the module itself)
 _LAZY = {

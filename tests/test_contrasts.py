@@ -107,7 +107,7 @@ def test_mundlak_unit_mean_coefficient_is_the_contrast(wage):
     # Mundlak (1978): same contrast and SE from either parametrisation
     mu = bp.reference.mundlak(wage, WAGE, method="reml", cov="cluster")
     wb = bp.reference.within_between(wage, WAGE, method="reml", cov="cluster")
-    from bayespanel.analysis.contrasts import _reference_contrast
+    from bayespanel.bayes.contrasts import _reference_contrast
 
     a = _reference_contrast(mu, WAGE_TV, 0.95)
     b = _reference_contrast(wb, WAGE_TV, 0.95)

@@ -58,12 +58,7 @@ CORE_THIRD_PARTY = {"numpy", "scipy", "numba"}
 KNOWN_CYCLE_EDGES: set[tuple[str, str]] = set()
 
 # Imports ("importer", "imported") from a lower layer to a higher one today.
-KNOWN_UPWARD: set[tuple[str, str]] = {
-    ("bayespanel.bayes.latentpost", "bayespanel.analysis.loo"),
-    ("bayespanel.bayes.posterior", "bayespanel.analysis.contrasts"),
-    ("bayespanel.bayes.posterior", "bayespanel.analysis.loo"),
-    ("bayespanel.bayes.posterior", "bayespanel.analysis.partition"),
-}
+KNOWN_UPWARD: set[tuple[str, str]] = set()
 
 # Private names used outside their package today: ("importer", "owner:name"), where owner
 # is the module or package that holds ``_name`` (a private module is "package:_module").

@@ -83,7 +83,7 @@ def thin_for(n_total, target):
 
 
 def contrasts_of(post, design, kind, coef_d, settings, ref):
-    """Between-minus-within contrasts of one posterior (bayespanel.analysis.contrasts)."""
+    """Between-minus-within contrasts of one posterior (bayespanel.bayes.contrasts)."""
     if hasattr(post, "contrasts"):
         return post.contrasts(rope=settings.rope, prob=settings.interval, reference=ref,
                               tests=False)

@@ -512,7 +512,7 @@ def _ppc(post, design, n_draws, seed):
 
 
 def _partition(post, design, kind, coef_d, sigma_d, tau_d, ref):
-    """The variance partition of one posterior (bayespanel.analysis.partition): the
+    """The variance partition of one posterior (bayespanel.bayes.partition): the
     posterior's own, from its rows or, without rows at hand, its design's statistics."""
     ref = ref if ref is not None and getattr(ref, "design", None) is not None else None
     if hasattr(post, "variance_partition"):

@@ -8,6 +8,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from ..core import providers
 from ..core.errors import SpecificationError, choices_error
 from ..data.resultshape import check_prob
 from . import families as fam_mod
@@ -311,9 +312,7 @@ class LatentPosterior(Posterior):
         the pointwise table names units and occasions as for the Gaussian models. Exact
         refits, K-fold and sub-sampling are not offered for latent-effect models.
         """
-        from ..analysis.loo import loo
-
-        return loo(self, level, **kwargs)
+        return providers.provider("loo")(self, level, **kwargs)
 
     # ------------------------------------------------------------------ family reports
     def icc_table(self, prob: float | None = None) -> pd.DataFrame:

@@ -38,7 +38,9 @@ from ..core import ar1
 from .. import kinds
 from ..core.errors import SamplingWarning, SpecificationError
 from ..core.mathcore import unit_sd_draws
-from ..core import gaussian
+from ..core import gaussian, providers
+from .contrasts import contrast_covariates, contrast_draws, within_between_contrasts
+from .partition import design_partition, variance_partition
 from .posteriorfile import decode_labels, encode_labels, read_tree, write_tree
 from .spec import ModelSpec
 from ..core.jsonsafe import jsonable
@@ -489,8 +491,6 @@ class Posterior:
         coefficient of the unit mean itself (Mundlak 1978). Rows are covariate names.
         """
         prob = check_prob(prob)  # None: the interval option
-        from ..analysis.contrasts import contrast_covariates, contrast_draws
-
         if not kinds.column_map(self.spec.kind).contrast:
             raise SpecificationError(
                 f"{self.spec.model} does not separate within and between effects; contextual "
@@ -733,16 +733,15 @@ class Posterior:
             chains=self.n_chains, draws=len(range(0, self.n_draws, thin)), **serial)
 
     # ------------------------------------------------------------------ comparison
-    # (thin entries; the work is in bayespanel.analysis.loo, .partition and .contrasts)
+    # (thin entries; the work is in bayespanel.analysis.loo, reached through the provider
+    # declared for "loo" (core.providers), and in bayes.partition and bayes.contrasts)
     def loo(self, level: str = "occasion", **kwargs):
         """LOO at the unit or occasion level; see :func:`bayespanel.analysis.loo.loo`."""
-        from ..analysis.loo import loo
-
-        return loo(self, level, **kwargs)
+        return providers.provider("loo")(self, level, **kwargs)
 
     def variance_partition(self, reference=None):
         """Unit/occasion SDs, ICC, quasi-demeaning shares and Rights-Sterba (2019) shares
-        per draw; see :func:`bayespanel.analysis.partition.variance_partition`.
+        per draw; see :func:`bayespanel.bayes.partition.variance_partition`.
 
         With ``errors="ar1"`` the occasion SD is the stationary SD of the errors, the ICC
         stays the share of the unit variance, and the partition gains ``"correlation one
@@ -752,8 +751,6 @@ class Posterior:
         quasi-demeaning shares ``theta`` hold for independent errors only and are ``nan``
         there.
         """
-        from ..analysis.partition import design_partition, variance_partition
-
         tau, sigma = self._partition_scale()
         args = (self.spec.kind, self.labels, self._flat("coef"), sigma, tau)
         if self.rows is not None:
@@ -779,9 +776,8 @@ class Posterior:
                   tests: bool = True):
         """Between-minus-within effects with sign and ROPE probabilities, beside the
         Hausman and cluster-robust Mundlak tests; see
-        :func:`bayespanel.analysis.contrasts.within_between_contrasts`."""
+        :func:`bayespanel.bayes.contrasts.within_between_contrasts`."""
         prob = check_prob(prob)  # None: the interval option
-        from ..analysis.contrasts import contrast_covariates, within_between_contrasts
 
         if self.rows is None and self.design is None:
             raise SpecificationError("the contrasts need the estimation rows or the design "

@@ -87,7 +87,7 @@ def partition_quantities(g_w, g_b, phi_w, phi_b, sigma, tau, lengths) -> dict:
     Parameters
     ----------
     g_w : array (S, p_w)
-        Within coefficients (:func:`bayespanel.analysis.partition.coefficient_parts`).
+        Within coefficients (:func:`bayespanel.bayes.partition.coefficient_parts`).
     g_b : array (S, p_b) or None
         Between coefficients; ``None`` when the model has no between part (fixed effects).
     phi_w, phi_b : array (p_w, p_w), (p_b, p_b)

@@ -15,7 +15,7 @@ names and types:
 ``interval(prob)``        pandas.DataFrame, columns ``lower``, ``upper`` by term
 ``table(prob)``           pandas.DataFrame whose leading columns are
                           ``estimate, <error_name>, lower, upper``
-``variance_partition()``  :class:`PartitionResult` (also ``bayespanel.analysis.partition``)
+``variance_partition()``  :class:`PartitionResult` (also ``bayespanel.bayes.partition``)
 ``icc``                   float (plug-in value; posterior mean); ``nan`` where the fit has
                           no unit variance
 ``n_obs``, ``n_units``    int: rows and units the fit uses
