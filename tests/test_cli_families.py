@@ -154,10 +154,10 @@ def test_binary_outputs_tell_one_story(union_run):
         assert "latent" in vp["scale"] and "pi^2/3" in vp["scale"] and vp["theta"] == []
         occ = next(q for q in vp["summary"] if q["quantity"] == "occasion SD")
         # Snijders and Bosker (2012), 17.3: logistic residual variance pi^2/3
-        assert occ["mean"] == pytest.approx(np.pi / np.sqrt(3), rel=1e-12)
+        assert occ["estimate"] == pytest.approx(np.pi / np.sqrt(3), rel=1e-12)
         icc = next(q for q in vp["summary"] if q["quantity"] == "ICC")
         icc_scale = next(q for q in m["scale"] if q["name"] == "icc")
-        assert icc["mean"] == pytest.approx(icc_scale["estimate"], rel=1e-10)
+        assert icc["estimate"] == pytest.approx(icc_scale["estimate"], rel=1e-10)
         labels = [s["label"] for s in m["ppc"]]
         assert {"rate of ones", "switching rate", "share of units never 1"} <= set(labels)
         assert not any("share of 1" in lab or "share of 0" in lab for lab in labels)

@@ -171,7 +171,7 @@ def test_ar1_run_from_an_analysis_file(grunfeld_csv, tmp_path, capsys):
     want = np.mean((t2 + post._flat("rho") * s2) / (t2 + s2))
     got = next(q for q in m["variance_partition"]["summary"]
                if q["quantity"] == "correlation one step apart")
-    assert got["mean"] == pytest.approx(want, rel=1e-10)
+    assert got["estimate"] == pytest.approx(want, rel=1e-10)
     assert "correlation one step apart" in stdout and "lag-one autocorrelation" in stdout
     serial = next(t for t in res["tests"] if t["name"] == "serial_correlation")
     assert serial["conclusion"].endswith("the Bayesian models here allow AR(1) errors for it")

@@ -196,7 +196,7 @@ def test_records_are_what_results_json_holds(fits, linearmodels_re):
 
 
 def test_older_results_files_are_read_with_todays_keys(tmp_path):
-    """A 1.1, 1.2 or 1.3 results.json (keys before one name per quantity) loads with today's
+    """A 1.1 to 1.4 results.json (keys before one name per quantity) loads with today's
     keys and passes the schema (jsonschema); today's file loads unchanged."""
     import copy
     import json
@@ -205,12 +205,18 @@ def test_older_results_files_are_read_with_todays_keys(tmp_path):
     from bayespanel.report.results_json import SCHEMA_VERSION, load_results
 
     kept = json.loads((Path(__file__).parent / "golden" / "demo_results.json").read_text())
-    assert kept["schema_version"] == SCHEMA_VERSION == "1.4.0"
+    assert kept["schema_version"] == SCHEMA_VERSION == "1.5.0"
     assert any(m.get("contrasts") for m in kept["models"])
-    for version in ("1.1.0", "1.2.0", "1.3.0"):
+    assert any(m.get("variance_partition") for m in kept["models"])
+    for version in ("1.1.0", "1.2.0", "1.3.0", "1.4.0"):
         old = copy.deepcopy(kept)
         old["schema_version"] = version
         for m in old["models"]:
+            vp = m.get("variance_partition") or {}
+            for rec in vp.get("summary", []) + vp.get("theta", []):  # 1.5 renamed these
+                rec["mean"] = rec.pop("estimate")
+            if version == "1.4.0":
+                continue
             for rec in m.get("contrasts") or []:  # 1.4 renamed these
                 rec["mean"] = rec.pop("estimate")
             if version == "1.1.0":  # 1.2 renamed these
@@ -223,5 +229,6 @@ def test_older_results_files_are_read_with_todays_keys(tmp_path):
         for m, k in zip(got["models"], kept["models"]):
             assert m["coefficients"] == k["coefficients"] and m["scale"] == k["scale"]
             assert m["loo"] == k["loo"] and m.get("contrasts") == k.get("contrasts")
+            assert m["variance_partition"] == k["variance_partition"]
     (tmp_path / "results.json").write_text(json.dumps(kept), "utf-8")
     assert load_results(tmp_path) == kept

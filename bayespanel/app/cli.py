@@ -473,7 +473,7 @@ def _print_serial(m) -> None:
     vp = m.get("variance_partition") or {}
     for q in vp.get("summary") or []:
         if q["quantity"] == LAG_ONE:
-            print(f"  {LAG_ONE}: {_fmt(q['mean'], q['sd'])} "
+            print(f"  {LAG_ONE}: {_fmt(q['estimate'], q['sd'])} "
                   f"{numbers.interval(q['lower'], q['upper'], q['sd'])}")
     for c in m.get("ppc") or []:
         if c["statistic"] == STATISTIC:

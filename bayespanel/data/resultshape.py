@@ -156,8 +156,9 @@ class PartitionResult:
     def to_record(self, prob: float = DEFAULT_INTERVAL) -> dict:
         """The ``variance_partition`` record of a model in ``results.json``
         (docs/results-schema.md): ``summary`` (unit SD, occasion SD, ICC and, with
-        AR(1) errors, :data:`LAG_ONE`: mean, median, SD, interval and the reference's
-        plug-in value), ``theta`` (per panel length),
+        AR(1) errors, :data:`LAG_ONE`: the posterior mean as ``estimate``, the key of
+        every point estimate in the file, median, SD, interval and the reference's
+        plug-in value), ``theta`` (per panel length: ``estimate`` and interval),
         ``explained`` (the Rights-Sterba shares of the total, within and between
         variance) and ``icc_draws`` (at most about 1,000 evenly thinned finite draws).
         Non-finite numbers are ``None``. A reference fit's record holds its estimates
@@ -175,11 +176,11 @@ class PartitionResult:
             tab["reference"] = np.nan
         # AR(1) errors add the correlation of two occasions one time unit apart
         rows = [q for q in ("unit SD", "occasion SD", "ICC", LAG_ONE) if q in tab.index]
-        summary = term_records(tab.loc[rows],
-                               ("mean", "median", "sd", "lower", "upper", "reference"),
+        summary = term_records(tab.loc[rows].rename(columns={"mean": "estimate"}),
+                               ("estimate", "median", "sd", "lower", "upper", "reference"),
                                key="quantity")
         theta = [json_record({"length": int(q.split("=")[1].rstrip(")")),
-                               "mean": tab.at[q, "mean"], "lower": tab.at[q, "lower"],
+                               "estimate": tab.at[q, "mean"], "lower": tab.at[q, "lower"],
                                "upper": tab.at[q, "upper"]})
                  for q in tab.index if q.startswith("theta (T=")]
         explained = [json_record({"part": p, **{

@@ -325,7 +325,7 @@ def _partition(r) -> Safe:
         if not vp:
             continue
         any_vp = True
-        rows = [[label(q["quantity"]), _est(q["mean"], q["sd"]), _est(q["median"], q["sd"]),
+        rows = [[label(q["quantity"]), _est(q["estimate"], q["sd"]), _est(q["median"], q["sd"]),
                  esc(num.uncertainty(q["sd"])), esc(_interval(q["lower"], q["upper"], q["sd"]))]
                 for q in vp["summary"]]
         out.append(tag("h3", m["title"]))
@@ -333,7 +333,7 @@ def _partition(r) -> Safe:
             out.append(tag("p", "Scale: ", vp["scale"], ".", cls="bp-lead"))
         out.append(table(["quantity", "mean", "median", "SD", f"{_pct(prob)} interval"], rows))
         if vp.get("theta"):
-            trs = [[f"T = {t['length']}", esc(num.share(t["mean"])),
+            trs = [[f"T = {t['length']}", esc(num.share(t["estimate"])),
                     esc(f"[{num.share(t['lower'])}, {num.share(t['upper'])}]")]
                    for t in vp["theta"]]
             out.append(table(["panel length", label("theta"), f"{_pct(prob)} interval"],
@@ -501,7 +501,7 @@ def _serial(r) -> Safe:
                 continue
             rows.append([m["title"], _est(rho["estimate"], rho["sd"]),
                          esc(_interval(rho["lower"], rho["upper"], rho["sd"])),
-                         _est(lag["mean"], lag["sd"]) if lag else esc(num.MISSING)])
+                         _est(lag["estimate"], lag["sd"]) if lag else esc(num.MISSING)])
         if rows:
             out.append(table(["model", "rho", f"{_pct(r['settings']['interval'])} interval",
                               "outcomes one step apart: correlation"], rows,

@@ -23,14 +23,17 @@ __all__ = [
 ]
 
 SCHEMA_NAME = "bayespanel-results"
-SCHEMA_VERSION = "1.4.0"
+SCHEMA_VERSION = "1.5.0"
 
-#: keys renamed by a minor version (1.2 and 1.4: one key per quantity), as (path, old, new)
-#: where path reaches the records under ``models[]`` that hold the key
+#: keys renamed by a minor version (1.2, 1.4 and 1.5: one key per quantity), as
+#: (path, old, new) where path reaches the records under ``models[]`` that hold the key
+#: (a record, or a list of records)
 RENAMED = {(1, 2): ((("coefficients",), "mean", "estimate"), (("scale",), "mean", "estimate"),
                     (("loo",), "n_high_k", "n_high_pareto_k")),
            (1, 4): ((("contrasts",), "mean", "estimate"),
-                    (("average_marginal_effects",), "mean", "estimate"))}
+                    (("average_marginal_effects",), "mean", "estimate")),
+           (1, 5): ((("variance_partition", "summary"), "mean", "estimate"),
+                    (("variance_partition", "theta"), "mean", "estimate"))}
 
 
 def dumps(results: dict) -> str:
@@ -135,8 +138,10 @@ def upgrade(data: dict) -> dict:
         if minor >= since:
             continue
         for model in data.get("models") or []:
-            for (where,), old, new in renames:
-                part = model.get(where) if isinstance(model, dict) else None
+            for path, old, new in renames:
+                part = model
+                for where in path:
+                    part = part.get(where) if isinstance(part, dict) else None
                 for rec in part if isinstance(part, list) else [part]:
                     if isinstance(rec, dict) and old in rec and new not in rec:
                         rec[new] = rec.pop(old)

@@ -81,8 +81,8 @@ def _icc_text(results) -> str:
     for m in results.get("models", []):
         vp = m.get("variance_partition") or {}
         q = {r["quantity"]: r for r in vp.get("summary", [])}.get("ICC")
-        if q is not None and q.get("mean") is not None:
-            bayes.append((m["title"], num.estimate(q["mean"], q.get("sd"))))
+        if q is not None and q.get("estimate") is not None:
+            bayes.append((m["title"], num.estimate(q["estimate"], q.get("sd"))))
     refs = []
     for f in results.get("reference", []):
         if f.get("icc") is None and not f.get("unit_variance_at_zero"):
@@ -151,13 +151,15 @@ def _wide_coefficients_df(results) -> pd.DataFrame:
 
 
 def _variance_rows(results):
-    """(model, quantity label, mean, median, SD, lower, upper, note) of every model and fit
-    with a unit variance; labels from :data:`text.LABELS`."""
+    """(model, quantity label, estimate, median, SD, lower, upper, note) of every model
+    and fit with a unit variance (the estimate: a posterior mean or a reference fit's
+    estimate); labels from :data:`text.LABELS`."""
     rows = []
     for m in results["models"]:
         for q in (m.get("variance_partition") or {}).get("summary", []):
             rows.append({"model": m["title"], "quantity": label(q["quantity"]),
-                         "mean": q.get("mean"), "median": q.get("median"), "sd": q.get("sd"),
+                         "estimate": q.get("estimate"), "median": q.get("median"),
+                         "sd": q.get("sd"),
                          "lower": q.get("lower"), "upper": q.get("upper"), "note": ""})
     for f in results["reference"]:
         if f.get("icc") is None and not f.get("unit_variance_at_zero"):
@@ -165,7 +167,7 @@ def _variance_rows(results):
         zero = bool(f.get("unit_variance_at_zero"))
         for q in ("sigma_unit", "sigma_obs", "icc"):
             rows.append({"model": f["title"] + " (ref.)", "quantity": label(q),
-                         "mean": f.get(q), "median": None, "sd": None, "lower": None,
+                         "estimate": f.get(q), "median": None, "sd": None, "lower": None,
                          "upper": None,
                          "note": "estimated at zero" if zero and q != "sigma_obs" else ""})
     return rows
@@ -306,9 +308,10 @@ def display_tables(results: dict) -> dict[str, tuple[pd.DataFrame, list[str]]]:
         vp = raw["variance_partition"].copy()
         vp["interval"] = [num.interval(lo, hi, u) if lo is not None and lo == lo else ""
                           for lo, hi, u in zip(vp["lower"], vp["upper"], vp["sd"])]
-        vp = vp[["model", "quantity", "mean", "median", "sd", "interval", "note"]]
-        out["variance_partition"] = (display_frame(vp).rename(columns={
-            "mean": "estimate or mean", "sd": "SD", "interval": f"{pct} interval"}),
+        vp = vp[["model", "quantity", "estimate", "median", "sd", "interval", "note"]]
+        shown = display_frame(vp, {"estimate": ("estimate", "sd")})
+        out["variance_partition"] = (shown.rename(columns={
+            "estimate": "estimate or mean", "sd": "SD", "interval": f"{pct} interval"}),
             [f"{label('icc')} = {label('sigma_unit')}^2 / ({label('sigma_unit')}^2 + "
              f"{label('sigma_obs')}^2). Bayesian rows: posterior summaries; reference rows: "
              "point estimates.", *_boundary_notes(results), foot])
