@@ -587,8 +587,11 @@ def cmd_design_check(args) -> int:
         if missing:
             raise SpecificationError("with --coef, give --sigma-obs (and --sigma-unit)")
         truth = {"coef": coef, "sigma_unit": args.sigma_unit, "sigma_obs": args.sigma_obs}
-    elif args.sigma_unit is not None or args.sigma_obs is not None:
-        raise SpecificationError("--sigma-unit and --sigma-obs need --coef for every term")
+        if args.rho is not None:
+            truth["rho"] = args.rho
+    elif args.sigma_unit is not None or args.sigma_obs is not None or args.rho is not None:
+        raise SpecificationError("--sigma-unit, --sigma-obs and --rho need --coef for every "
+                                 "term")
     else:
         truth = "reference"
     panel = Panel.from_file(args.file, unit=args.unit, time=args.time,
@@ -599,7 +602,7 @@ def cmd_design_check(args) -> int:
                        draws=args.draws, tune=args.tune, chains=args.chains,
                        bayes=not args.reference_only,
                        seed=1 if args.seed is None else args.seed, workers=args.workers,
-                       progress=not args.quiet)
+                       progress=not args.quiet, errors=args.errors)
     print(res.summary())
     with pd.option_context("display.width", 160, "display.max_columns", 20,
                            "display.float_format", "{:.3f}".format):
@@ -642,6 +645,11 @@ def _add_design_check_verb(sub):
                         "the REML reference fit on the file's outcome")
     p.add_argument("--sigma-unit", type=float, help="true unit-level SD")
     p.add_argument("--sigma-obs", type=float, help="true occasion-level SD")
+    p.add_argument("--errors", choices=("iid", "ar1"), default="iid",
+                   help="errors of the replicates and the refitted models: iid (default) or "
+                        "ar1, AR(1) within units (give --rho with --coef)")
+    p.add_argument("--rho", type=float,
+                   help="true correlation of errors one time unit apart (--errors ar1)")
     p.add_argument("--difference", action="append", metavar="X=SIZE",
                    help="between-minus-within difference to detect, repeatable")
     p.add_argument("--reference-only", action="store_true",

@@ -62,7 +62,7 @@ __all__ = [
     "occasion_times", "Timeline", "AR1Partial", "AR1Stats", "partial", "merge", "finalize",
     "compute", "loglik", "unit_logdensity", "unit_effect_conditional", "occasion_conditional",
     "occasion_logdensity", "holdout_logdensity", "simulate_errors", "by_draw_blocks", "data_values",
-    "with_values", "structure", "ERRORS", "refuse_pending",
+    "with_values", "structure", "ERRORS", "refuse_pending", "group_terms",
 ]
 
 #: the error structures of the Gaussian models: independent, or AR(1) within units
@@ -618,15 +618,9 @@ def loglik(v, arrays: dict, rho, sigma, tau, xp=np):
     sub = 0.0
     p = arrays["first"].shape[0]
     for grp in arrays["groups"]:
-        count, T, idx = grp["count"], grp["T"], grp["index"]
-        G, m = idx.shape
-        if m:
-            ph = phi[idx]
-            c = 1.0 + (grp["links"] * (1.0 - ph) / (1.0 + ph)).sum(axis=1)
-            lvec = xp.concatenate([xp.ones((G, 1)), 1.0 / (1.0 + ph), -ph / (1.0 + ph)], axis=1)
-        else:
-            c = np.ones(G)
-            lvec = np.ones((G, 1))
+        count, T = grp["count"], grp["T"]
+        G, m = grp["index"].shape
+        c, lvec = group_terms(grp, phi, xp)
         L = (lvec[:, :, None] * v[None, None, :]).reshape((G, (1 + 2 * m) * p))
         wr2 = (grp["cp"] * L[:, :, None] * L[:, None, :]).sum(axis=(1, 2))
         if fixed:
@@ -638,6 +632,19 @@ def loglik(v, arrays: dict, rho, sigma, tau, xp=np):
             sub = sub + (g * wr2 / h).sum()
     m = n - N if fixed else n
     return -0.5 * (m * (_LOG_2PI + xp.log(s2)) + logdet + log_c + (q - sub) / s2)
+
+
+def group_terms(grp: dict, phi, xp=np):
+    """``(c, l)`` of one entry of ``arrays["groups"]`` at link correlations ``phi`` (per
+    gap length): ``c = 1' R^-1 1`` per group (G,) and the weights ``l`` (G, 1 + 2 m) of
+    the stacked vector ``[z_1, E, S]`` with ``1' R^-1 r = l'[r_1, E_r, S_r]``."""
+    idx = grp["index"]
+    G, m = idx.shape
+    if not m:
+        return np.ones(G), np.ones((G, 1))
+    ph = phi[idx]
+    c = 1.0 + (grp["links"] * (1.0 - ph) / (1.0 + ph)).sum(axis=1)
+    return c, xp.concatenate([xp.ones((G, 1)), 1.0 / (1.0 + ph), -ph / (1.0 + ph)], axis=1)
 
 
 # ---------------------------------------------------------------------------- rows

@@ -5,9 +5,10 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats as _st
 
+from ...core import ar1
 from ...core import suffstats as _ss
 from ...core.errors import EstimationError
-from .fits import BAYES, ORACLE, REFERENCE, _fit_reference, _oracle
+from .fits import BAYES, ORACLE, REFERENCE, _fit_reference, _oracle, _oracle_ar1
 from .simulate import simulate_outcome
 
 
@@ -26,8 +27,9 @@ def _interval_rows(method, names, truth, est, lo, hi, r):
 
 def _one(r, seq, ctx):
     M, codes, b, su, so = ctx["M"], ctx["codes"], ctx["b"], ctx["su"], ctx["so"]
+    rho = ctx.get("rho")
     rng = np.random.default_rng(seq)
-    y = simulate_outcome(M, codes, b, su, so, rng)
+    y = simulate_outcome(M, codes, b, su, so, rng, rho, ctx.get("timeline"))
     stats = _ss.compute(M, y, codes)
     names, tvals = ctx["names"], ctx["tvals"]
     C = ctx["C"]  # (k + contrasts) x k map from coefficients to reported linear combinations
@@ -66,7 +68,11 @@ def _one(r, seq, ctx):
         extra["reference_error"] = str(exc)
     # GLS with the true variances (exact)
     if ctx["oracle"]:
-        bo, Vo = _oracle(stats, su, so)
+        if rho is None:
+            bo, Vo = _oracle(stats, su, so)
+        else:
+            bo, Vo = _oracle_ar1(ctx["model"], ar1.compute(M, y, codes, ctx["time"]), su, so,
+                                 rho)
         est = C @ bo
         se = np.sqrt(np.einsum("ij,jk,ik->i", C, Vo, C))
         lo = {p: est - z[p] * se for p in probs}
@@ -82,7 +88,7 @@ def _one(r, seq, ctx):
             draws = out["coef"] @ C.T
             cols = [draws]
             snames, struth = [], []
-            for comp, tv in (("sigma_unit", su), ("sigma_obs", so)):
+            for comp, tv in (("sigma_unit", su), ("sigma_obs", so), ("rho", rho)):
                 if comp in out:
                     cols.append(out[comp][:, None])
                     snames.append(comp)

@@ -8,6 +8,7 @@ import numpy as np
 import pandas as pd
 
 from ... import kinds
+from ...core.jsonsafe import jsonable
 from ...core.terms import CONTRAST, parse
 from ...data.resultshape import check_prob
 from .fits import BAYES, ORACLE, REFERENCE
@@ -27,7 +28,8 @@ class DesignCheckResult:
         One row per replicate: the reference variance components, divergences, largest
         R-hat and any error met.
     truth : dict
-        ``coef`` (by term), ``sigma_unit``, ``sigma_obs`` used to simulate.
+        ``coef`` (by term), ``sigma_unit``, ``sigma_obs`` (and ``rho`` with AR(1) errors)
+        used to simulate.
     structure : dict
         Units, rows, occasions per unit (min, median, max) of the design kept.
     settings : dict
@@ -47,7 +49,8 @@ class DesignCheckResult:
         """The outcome of replicate ``i`` (same rows as the model, same seed)."""
         c = self._ctx
         rng = np.random.default_rng(c["spawned"][i])
-        return simulate_outcome(c["M"], c["codes"], c["b"], c["su"], c["so"], rng)
+        return simulate_outcome(c["M"], c["codes"], c["b"], c["su"], c["so"], rng,
+                                c.get("rho"), c.get("timeline"))
 
     @property
     def rows(self):
@@ -140,6 +143,9 @@ class DesignCheckResult:
         lines = [f"Design check of {self.settings['model']} on {s['n_units']} units, {s['n_rows']} "
                  f"rows ({s['occasions_min']} to {s['occasions_max']} occasions per unit), "
                  f"{R} replicates."]
+        if "rho" in self.truth:
+            lines[0] = lines[0][:-1] + (f", errors AR(1) within units with rho = "
+                                        f"{self.truth['rho']:.3g}.")
         for _, row in tab.iterrows():
             c, n = row.get("coverage 95%"), row.get("replicates")
             # off nominal by more than 2 Monte Carlo SE at the nominal rate (Morris et al. 2019)
@@ -164,6 +170,21 @@ class DesignCheckResult:
                          "replicates.")
         lines += [f"- {p}" for p in self.problems()]
         return "\n".join(lines)
+
+    def to_record(self) -> dict:
+        """The design check as JSON-ready values (NaN as ``None``).
+
+        Returns
+        -------
+        dict
+            ``settings``, ``structure``, ``truth`` (as simulated), ``table`` (one record
+            per method and parameter: the columns of :meth:`table`), ``summary`` (its
+            plain-language reading) and ``problems`` (:meth:`problems`).
+        """
+        tab = self.table()
+        return jsonable({"settings": self.settings, "structure": self.structure,
+                         "truth": self.truth, "table": [] if tab.empty else tab,
+                         "summary": self.summary(), "problems": self.problems()})
 
     def figure(self, prob: float | None = None):
         """Coverage (with 2 Monte Carlo SE) and median interval width per parameter.

@@ -14,8 +14,11 @@ class _Sampler:
         from ...bayes.sampling import nutpie_compiled
 
         self.model = model
-        self.names = ["coef", "sigma_obs"] + (["sigma_unit"] if model.unit_effects == "random"
-                                              else [])
+        # the scalar parameters reported beside the coefficients
+        self.scalars = (["sigma_obs"] + (["sigma_unit"] if model.unit_effects == "random"
+                                         else [])
+                        + (["rho"] if getattr(model, "errors", "iid") == "ar1" else []))
+        self.names = ["coef"] + self.scalars
         # the compilation is kept on the model (until its graph is edited), so later
         # design checks and nutpie fits of the same model do not compile again
         self.compiled = nutpie_compiled(model)
@@ -52,17 +55,14 @@ class _Sampler:
                            target_accept=self.target_accept, save_warmup=False)
         post = dt["posterior"]
         coef = np.asarray(post["coef"].values)                    # chain, draw, term
-        out = {"coef": coef.reshape(-1, coef.shape[-1]),
-               "sigma_obs": np.asarray(post["sigma_obs"].values).ravel()}
-        if "sigma_unit" in self.names:
-            out["sigma_unit"] = np.asarray(post["sigma_unit"].values).ravel()
+        out = {"coef": coef.reshape(-1, coef.shape[-1])}
+        scalars = [np.asarray(post[name].values) for name in self.scalars]   # chain, draw
+        out.update({name: d.ravel() for name, d in zip(self.scalars, scalars)})
         div = np.asarray(dt["sample_stats"]["diverging"].values)
         out["divergences"] = int(div.sum())
         from arviz_stats.base import array_stats
 
-        stacked = np.concatenate([coef, np.asarray(post["sigma_obs"].values)[..., None]]
-                                 + ([np.asarray(post["sigma_unit"].values)[..., None]]
-                                    if "sigma_unit" in self.names else []), axis=-1)
+        stacked = np.concatenate([coef] + [d[..., None] for d in scalars], axis=-1)
         out["rhat"] = float(np.nanmax(array_stats.rhat(np.moveaxis(stacked, -1, 0))))
         return out
 

@@ -8,7 +8,7 @@ from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 import pandas as pd
 
-from ...core.ar1 import refuse_pending
+from ...core import ar1
 from ...core.errors import SamplingWarning, SpecificationError, choices_error
 from .fits import REFERENCE_METHODS
 from .replicate import _one
@@ -20,7 +20,8 @@ from .truth import _contrasts, _make_model, _truth_vector
 def design_check(source, model="RandomIntercept", formula=None, *, truth="reference",
                  replicates=200, difference=None, draws=500, tune=500, chains=2,
                  bayes=True, reference=True, reference_method="reml", probs=(0.9, 0.95), seed=1, workers=2,
-                 progress=True, priors=None, occasion_effects=False, target_accept=0.8):
+                 progress=True, priors=None, occasion_effects=False, target_accept=0.8,
+                 errors=None):
     """Simulate replicate outcomes on the user's panel structure and refit on each.
 
     Parameters
@@ -61,6 +62,20 @@ def design_check(source, model="RandomIntercept", formula=None, *, truth="refere
         Replicates run in this many threads (nutpie samples outside Python's lock).
     progress : bool
         Show a progress bar.
+    priors : dict, optional
+        Priors of a model built here (a built model keeps its own).
+    occasion_effects : bool
+        Occasion dummies in a model built here.
+    target_accept : float
+        Of the Bayesian refits (nutpie).
+    errors : {"iid", "ar1"}, optional
+        Error structure of a model built here (default ``"iid"``; a built model keeps its
+        own). With ``"ar1"`` every replicate's errors follow the model's AR(1) within units,
+        ``Cov(e_it, e_is) = sigma_obs^2 rho^|time_t - time_s|`` on the rows' own occasions;
+        the truth then needs ``rho`` (``"reference"``: the maximum of the AR(1) marginal
+        likelihood of the real outcome), the Bayesian rows report ``rho``'s coverage, the
+        known-variance GLS uses the true ``rho``, and the reference fit's covariance is
+        cluster-robust (CR2), the frequentist answer to serially correlated errors.
 
     Returns
     -------
@@ -92,16 +107,14 @@ def design_check(source, model="RandomIntercept", formula=None, *, truth="refere
         draws = check_int("draws", draws, 10)
         tune = check_int("tune", tune, 1)
         chains = check_int("chains", chains, 1)
-    m = _make_model(source, model, formula, priors, occasion_effects)
-    # the replicates are draws of the iid random-intercept model: not a check of an
-    # AR(1) model's intervals (its own coverage study is tests/test_ar1_coverage.py)
-    refuse_pending(getattr(m, "errors", "iid"), "design_check (its replicates simulate "
-                   "independent errors)")
+    if errors is not None and errors not in ar1.ERRORS:
+        raise choices_error("errors", errors, ar1.ERRORS)
+    m = _make_model(source, model, formula, priors, occasion_effects, errors)
     M, _, codes = m.rows
     M = np.asarray(M, dtype=float)
     codes = np.asarray(codes, dtype=np.int64)
     labels = list(m.labels)
-    b, su, so = _truth_vector(truth, m, difference)
+    b, su, so, rho = _truth_vector(truth, m, difference)
     con = _contrasts(labels, m.kind)
     C = np.vstack([np.eye(len(labels))] + [w[None] for _, w in con])
     names = labels + [n for n, _ in con]
@@ -114,7 +127,10 @@ def design_check(source, model="RandomIntercept", formula=None, *, truth="refere
     ctx = {"M": M, "codes": codes, "b": b, "su": su, "so": so, "names": names,
            "tvals": tvals, "C": C, "probs": probs, "labels": labels, "model": m,
            "method": reference_method, "reference": bool(reference), "oracle": m.unit_effects == "random",
-           "sampler": sampler, "seeds": seeds, "spawned": spawned}
+           "sampler": sampler, "seeds": seeds, "spawned": spawned, "rho": rho}
+    if rho is not None:   # AR(1) errors on the occasions of the model's own rows
+        ctx["time"] = np.asarray(m.ar1_time, dtype=float)
+        ctx["timeline"] = ar1.Timeline.build(codes, ctx["time"])
     results = [None] * replicates
     try:
         with _progress(progress, replicates) as tick, ThreadPoolExecutor(workers) as ex:
@@ -136,10 +152,11 @@ def design_check(source, model="RandomIntercept", formula=None, *, truth="refere
                 "draws": draws if bayes else None, "tune": tune if bayes else None,
                 "chains": chains if bayes else None, "bayes": bool(bayes),
                 "reference_method": reference_method if reference else None, "probs": probs, "seed": seed,
-                "difference": dict(difference or {})}
+                "difference": dict(difference or {}), "errors": getattr(m, "errors", "iid")}
     res = DesignCheckResult(records=records, replicate_info=info,
                             truth={"coef": dict(zip(labels, map(float, b))),
-                                   "sigma_unit": su, "sigma_obs": so},
+                                   "sigma_unit": su, "sigma_obs": so,
+                                   **({} if rho is None else {"rho": rho})},
                             structure=structure, settings=settings, _ctx=ctx)
     for note in res.problems():
         warnings.warn(f"design check: {note}", SamplingWarning, stacklevel=2)

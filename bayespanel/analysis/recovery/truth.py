@@ -10,7 +10,7 @@ from ...core import suffstats as _ss
 from ...core.errors import SpecificationError, choices_error
 from ..contrasts import contrast_rows
 from ..occasions import true_occasion_coef
-from .fits import _fit_reference
+from .fits import _fit_reference, ar1_marginal_fit
 
 
 def _builder(model):
@@ -32,8 +32,9 @@ def _builder(model):
         "builder class, or a built model")
 
 
-def _make_model(source, model, formula, priors, occasion_effects):
-    """A built model carrying its rows ``(M, y, unit_codes)``."""
+def _make_model(source, model, formula, priors, occasion_effects, errors=None):
+    """A built model carrying its rows ``(M, y, unit_codes)``; ``errors`` (``None``: the
+    built model's own, else ``"iid"``) is the error structure of a model built here."""
     from ...data.design import Design
     from ...data.panel import Panel
 
@@ -43,18 +44,25 @@ def _make_model(source, model, formula, priors, occasion_effects):
             raise SpecificationError(
                 "the model has no rows (built from sufficient statistics alone); the design "
                 "check needs the covariate rows: build it from a panel")
+        if errors is not None and errors != built.errors:
+            raise SpecificationError(
+                f"errors={errors!r} differs from the built model's errors={built.errors!r}; "
+                "leave errors= out or build the model with it")
         return built
+    errors = "iid" if errors is None else errors
     if isinstance(source, Panel):
         if formula is None:
             raise SpecificationError("formula= is needed when the design check starts from a "
                                      "panel and a builder name")
-        return built(source, formula, priors=priors, occasion_effects=occasion_effects)
+        return built(source, formula, priors=priors, occasion_effects=occasion_effects,
+                     errors=errors)
     if isinstance(source, Design):
         M, labels = _design_matrix(built, source)
         stats = _ss.compute(M, source.y, source.unit_codes, names=labels + [source.outcome])
         return built.from_suffstats(stats, labels, outcome=source.outcome, units=source.units,
                                     priors=priors, rows=(M, source.y, source.unit_codes),
-                                    design_spec=source.spec.to_dict())
+                                    design_spec=source.spec.to_dict(), errors=errors,
+                                    time=source.time if errors == "ar1" else None)
     raise SpecificationError(
         f"the design check needs a Panel, a Design or a built model, got {type(source).__name__}")
 
@@ -69,14 +77,20 @@ def _design_matrix(cls, design):
 
 
 def _truth_vector(truth, model, difference):
-    """``(b, sigma_unit, sigma_obs)`` on the model's columns from the user's truth."""
+    """``(b, sigma_unit, sigma_obs, rho)`` on the model's columns from the user's truth
+    (``rho`` is ``None`` unless the model has ``errors="ar1"``)."""
     labels = list(model.labels)
     kind = model.kind
+    serial = getattr(model, "errors", "iid") == "ar1"
+    rho = None
     if isinstance(truth, str):
         if truth != "reference":
             raise choices_error("truth", truth, ["reference", "a dict", "a fitted result"])
         M, y, codes = model.rows
         truth = _fit_reference(model, M, y, codes, "reml")
+        if serial:   # the AR(1) model's own maximum likelihood, started at the reference
+            truth = ar1_marginal_fit(model, start=(_finite(truth.sigma_unit, 1.0),
+                                                   truth.sigma_obs))
     if isinstance(truth, dict):
         if "coef" in truth:
             coef = dict(truth["coef"])
@@ -88,6 +102,7 @@ def _truth_vector(truth, model, difference):
                 + ", ".join(map(repr, labels)) + ") or the demo layout with 'within', "
                 "'between', 'constant' and 'intercept'")
         su, so = truth.get("sigma_unit"), truth.get("sigma_obs")
+        rho = truth.get("rho")
     else:  # a fitted result: ReferenceResult or Posterior answer with the same names
         if not hasattr(truth, "coef") or not hasattr(truth, "sigma_obs"):
             raise SpecificationError(
@@ -95,6 +110,8 @@ def _truth_vector(truth, model, difference):
                 "fitted result with .coef, .sigma_unit and .sigma_obs")
         coef = {k: float(v) for k, v in pd.Series(truth.coef).items()}
         su, so = getattr(truth, "sigma_unit", 0.0), truth.sigma_obs
+        if serial and "rho" in getattr(truth, "parameter_names", []):
+            rho = float(truth.draws("rho").mean())        # a posterior of an AR(1) model
     missing = [lab for lab in labels if lab not in coef]
     if missing:
         raise SpecificationError(
@@ -113,7 +130,33 @@ def _truth_vector(truth, model, difference):
         raise SpecificationError(f"truth sigma_unit={su!r} must be a number >= 0")
     if difference:
         b = _apply_difference(b, labels, kind, difference)
-    return b, su, float(so)
+    return b, su, float(so), _check_rho(rho, model, serial)
+
+
+def _finite(value, default):
+    value = float(value)
+    return value if np.isfinite(value) and value > 0 else default
+
+
+def _check_rho(rho, model, serial):
+    """The true ``rho`` of an ``errors="ar1"`` model (``None`` for iid errors)."""
+    if not serial:
+        if rho is not None:
+            raise SpecificationError(
+                f"truth gives rho={rho!r} but the model has independent errors; build it "
+                "with errors='ar1' (or give design_check errors='ar1')")
+        return None
+    if rho is None:
+        raise SpecificationError(
+            "truth needs 'rho' (the correlation of errors one time unit apart) for a model "
+            "with errors='ar1'")
+    rho = float(rho)
+    low = -1.0 if model.ar1_stats.integer_gaps else 0.0
+    if not low < rho < 1.0:
+        raise SpecificationError(
+            f"truth rho={rho!r} must lie in ({low:g}, 1)"
+            + ("" if low < 0 else " (the occasions' gaps are not whole numbers)"))
+    return rho
 
 
 def _coef_from_components(truth, labels, kind):
