@@ -195,7 +195,8 @@ def test_a_parquet_folder_is_fingerprinted_for_reruns(tmp_path, wage_panel):
     # rerun of the analysis file warn.
     import hashlib
 
-    from bayespanel.app.runner import Settings, _source
+    from bayespanel.app.data_stage import source_record
+    from bayespanel.app.runner import Settings
 
     folder = tmp_path / "parts"
     folder.mkdir()
@@ -206,10 +207,10 @@ def test_a_parquet_folder_is_fingerprinted_for_reruns(tmp_path, wage_panel):
     for f in sorted(folder.glob("part*.parquet")):
         expected.update(f.name.encode() + b"\0" + hashlib.sha256(f.read_bytes()).digest())
     settings = Settings(unit="nr", time="year", formula=FORMULA, data=str(folder))
-    digest = _source(settings, "test")["sha256"]
+    digest = source_record(settings, "test")["sha256"]
     assert digest == expected.hexdigest()
     wage_panel.iloc[:10].to_parquet(folder / "part1.parquet", index=False)
     rerun = Settings(unit="nr", time="year", formula=FORMULA, data=str(folder),
                      data_sha256=digest)
     with pytest.warns(UserWarning, match="has changed since the analysis file"):
-        assert _source(rerun, "test")["sha256"] != digest
+        assert source_record(rerun, "test")["sha256"] != digest

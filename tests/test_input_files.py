@@ -108,7 +108,7 @@ def test_an_unreadable_data_file_exits_two(grunfeld_csv, tmp_path, monkeypatch, 
         def denied(*a, **k):
             raise PermissionError(13, "Permission denied", str(path))
         monkeypatch.setattr(pd, "read_csv", denied)
-        monkeypatch.setattr("bayespanel.app.runner._sha256", denied)
+        monkeypatch.setattr("bayespanel.app.data_stage.sha256", denied)
     rc, _, err = _main(_fit(path, tmp_path / "o"))
     assert rc == 2, err
     assert "locked.csv" in err and "ermission denied" in err

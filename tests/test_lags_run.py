@@ -9,6 +9,8 @@ import pandas as pd
 import pytest
 
 from bayespanel.app import runner
+from bayespanel.app.data_stage import data_stage
+from bayespanel.app.notes import dynamic_notes
 
 
 def _panel_frame(seed=4, units=25, occasions=6):
@@ -26,7 +28,7 @@ def _settings(**kw):
 
 def test_data_record_and_notes_of_a_lagged_outcome():
     df = _panel_frame()
-    panel, design, data, notes = runner._data_stage(_settings(), df, lambda m: None)
+    panel, design, data, notes = data_stage(_settings(), df, lambda m: None)
     grid = pd.MultiIndex.from_product([range(25), range(6)])
     lagged = (df.set_index(["firm", "year"])["sales"].reindex(grid).groupby(level=0).shift(1)
               .reindex(pd.MultiIndex.from_frame(df[["firm", "year"]])))
@@ -36,12 +38,12 @@ def test_data_record_and_notes_of_a_lagged_outcome():
     assert data["initial_conditions"]["applied"] is True
     assert data["initial_conditions"]["initial_outcome_columns"] == ["lag(sales) (initial)"]
     assert any("have no lag" in n for n in notes)                # console and report notes
-    said = runner._dynamic_notes(_settings(), design)
+    said = dynamic_notes(_settings(), design)
     assert said[0].startswith("Initial conditions: ") and "by construction" in said[0]
     assert any("Nickell" in n for n in said) and any("biased upward" in n for n in said)
     assert any("Swamy" in n for n in said)
     assert any(n.startswith("The Hausman test") and "Nickell" in n for n in said)
-    assert not any("Swamy" in n for n in runner._dynamic_notes(_settings(re_method="ml"),
+    assert not any("Swamy" in n for n in dynamic_notes(_settings(re_method="ml"),
                                                                design))
 
 
@@ -50,15 +52,15 @@ def test_switched_off_in_the_analysis_file_and_said_once():
     assert "initial_conditions = false" in s.to_toml()
     assert "initial_conditions" not in _settings().to_toml()
     assert "initial_conditions" not in _settings().to_dict()     # default runs unchanged
-    _, design, data, notes = runner._data_stage(s, _panel_frame(), lambda m: None)
+    _, design, data, notes = data_stage(s, _panel_frame(), lambda m: None)
     assert data["initial_conditions"] == {"applied": False}
-    assert sum("not handled" in n for n in notes + runner._dynamic_notes(s, design)) == 1
+    assert sum("not handled" in n for n in notes + dynamic_notes(s, design)) == 1
     with pytest.raises(Exception, match="initial_conditions"):
         _settings(initial_conditions="no")
 
 
 def test_formulas_without_lags_keep_their_record():
-    _, design, data, _ = runner._data_stage(_settings(formula="sales ~ staff"),
+    _, design, data, _ = data_stage(_settings(formula="sales ~ staff"),
                                             _panel_frame(), lambda m: None)
     assert "lags" not in data and "initial_conditions" not in data
-    assert runner._dynamic_notes(_settings(formula="sales ~ staff"), design) == []
+    assert dynamic_notes(_settings(formula="sales ~ staff"), design) == []

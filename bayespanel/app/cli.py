@@ -168,9 +168,10 @@ def cmd_describe(args) -> int:
 
 def _describe_out_of_core(args) -> int:
     """One pass over Parquet files on Dask (describe + structure); nothing is loaded."""
-    from .runner import _Progress, open_out_of_core
+    from .data_stage import open_out_of_core
+    from .progress import Progress
 
-    say = _Progress(quiet=args.quiet)
+    say = Progress(quiet=args.quiet)
     panel = open_out_of_core(args.file, args.unit, args.time, say)
     say(f"pass: describe and structure ({panel.npartitions} partitions)")
     desc = panel.describe()  # the structure comes with this pass
