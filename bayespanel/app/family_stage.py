@@ -25,7 +25,6 @@ model entries gain ``family`` and ``average_marginal_effects``, the reference en
 from __future__ import annotations
 
 import warnings
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -35,8 +34,8 @@ from ..core.errors import EstimationError
 from ..core.jsonsafe import json_record
 from ..bayes import families as fam_mod
 from ..core.terms import UNIT_MEAN, parse
-from .modelkit import (contrasts_of, model_priors, prior_text, sample_timed, tests_skip_reason,
-                       thin_for)
+from .modelkit import (contrasts_of, model_priors, model_record, sample_timed, save_posterior,
+                       tests_skip_reason, thin_for)
 
 __all__ = ["data_checks", "reference_stage", "tests_stage", "bayes_one", "family_record",
            "SCALE_TEXT"]
@@ -347,7 +346,6 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
         f"(+{settings.tune} tuning)")
     post, seconds = sample_timed(m, settings, progress_bars)
     diag = post.diagnostics(warn=False)
-    record = post.to_record(prob)
     kind = registered.columns
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -356,33 +354,16 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
         vp = _partition_stage(post, m.design, kind, prob, settings)
         contrasts = []
         if registered.contrasts:
-            contrasts = contrasts_of(post, m.design, kind, post.coef_draws(), settings,
-                                   None).to_record(prob)
+            contrasts = contrasts_of(post, settings, None).to_record(prob)
         ppc = _ppc_stage(post, m.design, settings)
-    rel = None
-    if out_dir is not None:
-        rel = f"posteriors/{name}.nc"
-        (Path(out_dir) / "posteriors").mkdir(parents=True, exist_ok=True)
-        post.save(Path(out_dir) / rel)  # the staging folder: published when the run completes
-    priors_used = {**m.priors, **getattr(m, "extra_priors", {})}
     entry = {
-        "name": name, "builder": registered.class_name, "title": registered.title,
-        "assumptions": assumptions(name, settings),
-        "reference_counterpart": (registered.glm_reference if settings.glm_reference
-                                  else registered.reference),
-        "posterior_file": rel,
-        "sampling": json_record({"draws": settings.draws, "tune": settings.tune,
-                             "chains": settings.chains, "seed": settings.seed,
-                             "sampler": str(post.sampling.get("sampler", settings.sampler)),
-                             "seconds": seconds}),
-        "priors": {k: prior_text(v) for k, v in priors_used.items()},
-        "coefficients": record["coefficients"],
-        "scale": record["scale"],
-        "variance_partition": vp,
-        "contrasts": contrasts,
-        "diagnostics": record["diagnostics"],
-        "loo": None,
-        "ppc": ppc,
+        **model_record(name, settings, post, seconds,
+                       {**m.priors, **getattr(m, "extra_priors", {})},
+                       posterior_file=save_posterior(post, name, out_dir),
+                       variance_partition=vp, contrasts=contrasts, ppc=ppc,
+                       assumptions=assumptions(name, settings),
+                       reference_counterpart=(registered.glm_reference if settings.glm_reference
+                                              else registered.reference)),
         "family": family_record(settings),
         "average_marginal_effects": ame,
     }

@@ -6,13 +6,12 @@ checks) and saved; models of other families and random slopes go to
 from __future__ import annotations
 
 import warnings
-from pathlib import Path
 
 import numpy as np
 
 from .. import kinds
-from ..core.jsonsafe import json_record
-from .modelkit import contrasts_of, model_priors, prior_text, sample_timed, thin_for
+from .modelkit import (contrasts_of, model_priors, model_record, sample_timed, save_posterior,
+                       thin_for)
 
 __all__ = ["bayes_one"]
 
@@ -86,9 +85,6 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
     diag = post.diagnostics(warn=False)
     say(f"  {name}: {seconds:.1f} s, max R-hat {diag['max_rhat']:.3f}, "
         f"{diag['divergences']} divergences")
-    record = post.to_record(prob)
-    kind = kinds.model(name).columns
-    coef_d = post._flat("coef")
     ref_for = ref_fits.get(kinds.model(name).reference)
     say(f"  {name}: summaries, variance partition, contrasts, predictive checks")
     vp = None
@@ -101,33 +97,14 @@ def bayes_one(name, settings, panel, design, labels, ref_fits, out_dir, say, pro
     if kinds.model(name).contrasts:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            cr = contrasts_of(post, design, kind, coef_d, settings, ref_for)
+            cr = contrasts_of(post, settings, ref_for)
         contrasts = cr.to_record(prob)
     ppc = []
     if design.has_rows:
         ppc = _ppc(post, design, settings.ppc_draws, settings.seed)
         if lag1:
             ppc += [r for r in [_lag1_ppc(post, design, settings)] if r is not None]
-    rel = None
-    if out_dir is not None:
-        rel = f"posteriors/{name}.nc"
-        (Path(out_dir) / "posteriors").mkdir(parents=True, exist_ok=True)
-        post.save(Path(out_dir) / rel)  # the staging folder: published when the run completes
-    entry = {
-        "name": name, "builder": kinds.model(name).class_name, "title": kinds.model(name).title,
-        "assumptions": kinds.model(name).assumptions, "reference_counterpart": kinds.model(name).reference,
-        "posterior_file": rel,
-        "sampling": json_record({"draws": settings.draws, "tune": settings.tune,
-                             "chains": settings.chains, "seed": settings.seed,
-                             "sampler": str(post.sampling.get("sampler", settings.sampler)),
-                             "seconds": seconds}),
-        "priors": {k: prior_text(v) for k, v in m.priors.items()},
-        "coefficients": record["coefficients"],
-        "scale": record["scale"],
-        "variance_partition": vp,
-        "contrasts": contrasts,
-        "diagnostics": record["diagnostics"],
-        "loo": None,
-        "ppc": ppc,
-    }
+    entry = model_record(name, settings, post, seconds, m.priors,
+                         posterior_file=save_posterior(post, name, out_dir),
+                         variance_partition=vp, contrasts=contrasts, ppc=ppc)
     return post, entry

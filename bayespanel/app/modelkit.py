@@ -1,20 +1,25 @@
 """What the model stages of a run share, the Gaussian ones (:mod:`bayespanel.app.runner`)
 and those of other families and random slopes (:mod:`bayespanel.app.family_stage`): the
 priors a model takes from the settings, when the specification tests apply, thinning,
-the contrasts of a posterior and timed sampling."""
+the contrasts of a posterior, timed sampling, the posterior's file and the model's record
+in results.json."""
 
 from __future__ import annotations
 
 import time
 import warnings
+from pathlib import Path
 
 import numpy as np
 
+from .. import kinds
 from ..core.errors import SpecificationError
+from ..core.jsonsafe import json_record
 from ..core.terms import UNIT_MEAN
 
 __all__ = ["tests_skip_reason", "extra_prior_keys", "model_priors", "check_prior_keys",
-           "prior_text", "thin_for", "contrasts_of", "sample_timed"]
+           "prior_text", "thin_for", "contrasts_of", "sample_timed", "save_posterior",
+           "model_record"]
 
 
 def tests_skip_reason(design) -> str | None:
@@ -82,17 +87,12 @@ def thin_for(n_total, target):
     return max(1, int(np.ceil(n_total / max(target, 1))))
 
 
-def contrasts_of(post, design, kind, coef_d, settings, ref):
-    """Between-minus-within contrasts of one posterior (bayespanel.bayes.contrasts)."""
-    if hasattr(post, "contrasts"):
-        return post.contrasts(rope=settings.rope, prob=settings.interval, reference=ref,
-                              tests=False)
-    from ..analysis import contrasts as ctr
-
-    return ctr.within_between_contrasts(kind, post.labels, coef_d,
-                                        ctr.contrast_covariates(kind, post.labels),
-                                        rope=settings.rope, prob=settings.interval,
-                                        reference=ref)
+def contrasts_of(post, settings, ref):
+    """Between-minus-within contrasts of one posterior (bayespanel.bayes.contrasts), with
+    the run's ROPE and interval, beside the reference fit ``ref`` (or None); the
+    specification tests are the run's own (``tests`` of results.json)."""
+    return post.contrasts(rope=settings.rope, prob=settings.interval, reference=ref,
+                          tests=False)
 
 
 def sample_timed(m, settings, progress_bars):
@@ -103,3 +103,66 @@ def sample_timed(m, settings, progress_bars):
         post = m.sample(draws=settings.draws, tune=settings.tune, chains=settings.chains,
                         seed=settings.seed, sampler=settings.sampler, progress=progress_bars)
     return post, time.perf_counter() - t0
+
+
+def save_posterior(post, name, out_dir) -> str | None:
+    """Write ``post`` to ``posteriors/<name>.nc`` in the run's staging folder ``out_dir``
+    (published with the run, :mod:`bayespanel.core.outputs`); the path relative to the
+    folder, or None without a folder."""
+    if out_dir is None:
+        return None
+    rel = f"posteriors/{name}.nc"
+    (Path(out_dir) / "posteriors").mkdir(parents=True, exist_ok=True)
+    post.save(Path(out_dir) / rel)
+    return rel
+
+
+def model_record(name, settings, post, seconds, priors, *, posterior_file,
+                 variance_partition, contrasts, ppc, assumptions=None,
+                 reference_counterpart=None) -> dict:
+    """The ``models[]`` entry of one Bayesian fit in ``results.json``
+    (docs/results-schema.md), for every family: the model's names and texts from the
+    registry, the sampling record, the priors used, and the posterior's own record
+    (:meth:`~bayespanel.bayes.posterior.Posterior.to_record`: coefficients, scale,
+    diagnostics) around the stage's variance partition, contrasts and predictive checks.
+    ``loo`` is filled by the comparison stage. The family stage adds its own keys.
+
+    Parameters
+    ----------
+    name : str
+        The model's snake-case name (:func:`bayespanel.kinds.model`).
+    settings : Settings
+    post : Posterior
+    seconds : float
+        Sampling time.
+    priors : dict
+        Every prior the model used, by key (written with :func:`prior_text`).
+    posterior_file : str or None
+        From :func:`save_posterior`.
+    variance_partition : dict or None
+    contrasts, ppc : list of dict
+    assumptions, reference_counterpart : str, optional
+        Instead of the registry's (the family stage words them for its family).
+    """
+    registered = kinds.model(name)
+    record = post.to_record(settings.interval)
+    return {
+        "name": name, "builder": registered.class_name, "title": registered.title,
+        "assumptions": registered.assumptions if assumptions is None else assumptions,
+        "reference_counterpart": (registered.reference if reference_counterpart is None
+                                  else reference_counterpart),
+        "posterior_file": posterior_file,
+        "sampling": json_record({"draws": settings.draws, "tune": settings.tune,
+                                 "chains": settings.chains, "seed": settings.seed,
+                                 "sampler": str(post.sampling.get("sampler",
+                                                                  settings.sampler)),
+                                 "seconds": seconds}),
+        "priors": {k: prior_text(v) for k, v in priors.items()},
+        "coefficients": record["coefficients"],
+        "scale": record["scale"],
+        "variance_partition": variance_partition,
+        "contrasts": contrasts,
+        "diagnostics": record["diagnostics"],
+        "loo": None,
+        "ppc": ppc,
+    }
