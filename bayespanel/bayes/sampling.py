@@ -327,6 +327,11 @@ def _pymc_logp(model, info=None, point=None):
             model._pymc_logp_cache = "hit"
         model._pymc_logp = fn
     _push_data(fn, model.pymc_model)
+    # PyMC's ValueGradFunction keeps its own trust_input flag but calls the compiled
+    # function, which checks and converts every argument again at each of the sampler's
+    # gradients; the sampler and the Laplace start pass float64 vectors, so the compiled
+    # function may take them as they are (same values, none of the checks' cost)
+    fn._pytensor_function.trust_input = True
     if info is not None:
         info["compile_cache"] = getattr(model, "_pymc_logp_cache", "off")
     return fn
@@ -617,8 +622,7 @@ def _pymc_warm_step(model, chains, seed, target_accept, info):
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message="QuadPotentialFullAdapt is an experimental")
         if _dense(model):
-            potential = quadpotential.QuadPotentialFullAdapt(
-                n, lap.mode, lap.cov, START_WEIGHT, rng=rng)
+            potential = _FullAdapt(n, lap.mode, lap.cov, START_WEIGHT, rng=rng)
         else:
             potential = quadpotential.QuadPotentialDiagAdapt(
                 n, lap.mode, np.diag(lap.cov).copy(), START_WEIGHT, rng=rng)
@@ -626,6 +630,53 @@ def _pymc_warm_step(model, chains, seed, target_accept, info):
     step = pm.NUTS(vars=m.value_vars, model=m, potential=potential, target_accept=target_accept,
                    rng=rng, initial_point=first, logp_dlogp_func=fn)
     return {"step": step, "initvals": initvals, "starts": starts}
+
+
+def _trtrs():
+    from scipy.linalg import lapack
+
+    return lapack.dtrtrs
+
+
+def _full_adapt_class():
+    """PyMC's dense adaptive metric with a cheaper momentum draw (built on first use, so
+    that importing this module does not import PyMC)."""
+    from pymc.step_methods.hmc import quadpotential
+
+    class FullAdapt(quadpotential.QuadPotentialFullAdapt):
+        """``random`` solves ``L' v = z`` by the LAPACK routine (``dtrtrs``) and arguments
+        that ``scipy.linalg.solve_triangular`` passes, without its checks of finite
+        values and array types at every draw: the same numbers."""
+
+        def random(self):
+            vals = self.rng.normal(size=self._n).astype(self.dtype)
+            a = self._chol.T
+            info = -1
+            if vals.dtype == np.float64 and a.dtype == np.float64:
+                trtrs = _trtrs()
+                if a.flags.f_contiguous:
+                    x, info = trtrs(a, vals, overwrite_b=True, lower=False, trans=0,
+                                    unitdiag=False)
+                else:
+                    x, info = trtrs(a.T, vals, overwrite_b=True, lower=True, trans=1,
+                                    unitdiag=False)
+            if info != 0:  # another dtype, or a singular factor: scipy's checked path
+                from scipy import linalg
+
+                return linalg.solve_triangular(a, vals, overwrite_b=True)
+            return x
+
+    return FullAdapt
+
+
+def _FullAdapt(*args, **kwargs):
+    global _FULL_ADAPT
+    if _FULL_ADAPT is None:
+        _FULL_ADAPT = _full_adapt_class()
+    return _FULL_ADAPT(*args, **kwargs)
+
+
+_FULL_ADAPT = None
 
 
 def _initvals(m, values):

@@ -210,7 +210,14 @@ def quad_terms(stats: SuffStats, b: np.ndarray):
 
 
 def sorted_groups(keys):
-    """``(ukeys, counts, starts)`` when ``keys`` are sorted, else ``None``."""
+    """``(ukeys, counts, starts)`` when ``keys`` are sorted, else ``None`` (integer keys:
+    one compiled sweep when the kernels are in use for this many rows, see
+    :data:`USE_NUMBA`; numba is not loaded for it)."""
+    kern = _kernels_for(len(keys), cold=np.inf) if keys.dtype.kind in "iu" else None
+    return _sorted_runs(keys, kern)
+
+
+def _sorted_groups_np(keys):
     if keys.dtype == object or not bool(np.all(keys[1:] >= keys[:-1])):
         return None
     starts = np.flatnonzero(np.concatenate([[True], keys[1:] != keys[:-1]]))
@@ -469,7 +476,7 @@ def _unpack(upper, p):
 def _sorted_runs(keys, kern):
     """``(ukeys, counts, starts)`` when ``keys`` are sorted, else ``None``."""
     if kern is None or keys.dtype.kind not in "iu" or len(keys) == 0:
-        return sorted_groups(keys)
+        return _sorted_groups_np(keys)
     starts = np.empty(len(keys), dtype=np.int64)
     m = kern["runs"](keys, starts)
     if m < 0:

@@ -91,15 +91,18 @@ def structure_block(pdf, unit, time) -> StructurePiece:
     masks = np.zeros((0, _words(len(occ))), dtype=np.uint64)
     if len(keys) == 0:
         return StructurePiece(0, keys, np.zeros(0, np.int64), occ, masks)
-    pos = _positions(occ, tvals)
     runs = suffstats.sorted_groups(keys) if keys.dtype.kind in "iu" else None
+    if runs is not None and len(occ) <= 64:  # units sorted, one word: OR bits over each run
+        ukeys, counts, starts = runs
+        masks = np.bitwise_or.reduceat(_bits(occ, tvals), starts)[:, None]
+        return StructurePiece(len(keys), ukeys, counts, occ, masks)
+    pos = _positions(occ, tvals)
     if runs is not None:  # units sorted (the usual layout): OR the bits over each run
         ukeys, counts, starts = runs
         masks = np.zeros((len(ukeys), _words(len(occ))), dtype=np.uint64)
         for w in range(masks.shape[1]):
             bits = np.left_shift(np.uint64(1), (pos % 64).astype(np.uint64))
-            if masks.shape[1] > 1:
-                bits[(pos // 64) != w] = 0
+            bits[(pos // 64) != w] = 0
             masks[:, w] = np.bitwise_or.reduceat(bits, starts)
         return StructurePiece(len(keys), ukeys, counts, occ, masks)
     ukeys, codes = _codes(keys)
@@ -110,6 +113,19 @@ def structure_block(pdf, unit, time) -> StructurePiece:
         bits = np.left_shift(np.uint64(1), (pos[sel] % 64).astype(np.uint64))
         np.bitwise_or.at(masks[:, w], codes[sel], bits)
     return StructurePiece(len(keys), ukeys, counts, occ, masks)
+
+
+def _bits(occ, tvals):
+    """The bit of each time value among at most 64 sorted occasions ``occ`` (uint64)."""
+    one = np.uint64(1)
+    if occ.dtype.kind in "iu" and tvals.dtype == occ.dtype:
+        lo = occ[0]
+        span = int(occ[-1]) - int(lo) + 1
+        if span <= 4 * len(tvals) + 1024:  # a look-up table of bits, one gather
+            table = np.zeros(span, dtype=np.uint64)
+            table[occ - lo] = np.left_shift(one, np.arange(len(occ), dtype=np.uint64))
+            return table[tvals - lo]
+    return np.left_shift(one, _positions(occ, tvals).astype(np.uint64))
 
 
 def _positions(occ, tvals):
@@ -312,13 +328,19 @@ class DesignPiece:
     structure: StructurePiece | None = None
 
 
-def _build_Z(sub: pd.DataFrame, spec: BlockSpec) -> np.ndarray:
-    """``[X, y]`` of the kept rows as one C-ordered float64 array."""
+def _plain_columns(sub: pd.DataFrame, spec: BlockSpec) -> list:
+    """The plain covariate columns as float64 arrays (``None`` for the intercept)."""
+    return [None if c is None else sub[c].to_numpy(dtype=float, na_value=np.nan)
+            for c in spec.plain]
+
+
+def _build_Z(sub: pd.DataFrame, spec: BlockSpec, src=None) -> np.ndarray:
+    """``[X, y]`` of the kept rows as one C-ordered float64 array (``src``: the plain
+    columns when already converted)."""
     n, k = len(sub), len(spec.terms)
     Z = np.empty((n, k + 1))
     if spec.plain is not None:
-        src = [None if c is None else sub[c].to_numpy(dtype=float, na_value=np.nan)
-               for c in spec.plain]
+        src = _plain_columns(sub, spec) if src is None else src
         for a in range(0, n, _FILL_ROWS):  # row blocks: each block of Z stays in cache
             for j, v in enumerate(src):
                 Z[a:a + _FILL_ROWS, j] = 1.0 if v is None else v[a:a + _FILL_ROWS]
@@ -355,19 +377,34 @@ _FILL_ROWS = 8192
 
 def _complete_fast(pdf: pd.DataFrame, spec: BlockSpec):
     """``(Z, maxabs)`` of a partition whose used columns are all columns of ``[X, y]`` as
-    they are (no transform) and all complete and finite, checked in one sweep over ``Z``
-    (:func:`bayespanel.suffstats.column_range`); None when the partition needs
-    :func:`complete_rows` (a missing or infinite value, which it drops or names, or a
-    transform)."""
+    they are (no transform) and all complete and finite, checked by each column's minimum
+    and maximum before the columns are interleaved into ``Z``; None when the partition
+    needs :func:`complete_rows` (a missing or infinite value, which it drops or names,
+    or a transform)."""
     if spec.plain is None or spec.outcome_expr is not None:
         return None
     if not set(spec.used) <= {c for c in spec.plain if c is not None} | {spec.outcome}:
         return None
-    Z = _build_Z(pdf, spec)
-    lo, hi, finite = suffstats.column_range(Z[:, :-1], Z[:, -1])
-    if not finite.all():
-        return None
-    return Z, np.maximum(np.abs(lo), np.abs(hi))
+    src = _plain_columns(pdf, spec)
+    y = pdf[spec.outcome].to_numpy(dtype=float, na_value=np.nan)
+    # each column's range in one contiguous sweep (numpy's vectorised min and max, which
+    # carry a NaN or an infinity into lo or hi) before the columns are interleaved
+    maxabs = np.empty(len(src) + len(spec.occasions) + 1)
+    for j, v in enumerate(src + [None] * len(spec.occasions) + [y]):
+        if v is None:
+            continue
+        lo, hi = (float(v.min()), float(v.max())) if len(v) else (0.0, 0.0)
+        if not (np.isfinite(lo) and np.isfinite(hi)):
+            return None
+        maxabs[j] = max(abs(lo), abs(hi))
+    Z = _build_Z(pdf, spec, src)
+    for j, c in enumerate(spec.plain):
+        if c is None:
+            maxabs[j] = 1.0 if len(Z) else 0.0
+    k0 = len(src)
+    for j in range(len(spec.occasions)):
+        maxabs[k0 + j] = float(Z[:, k0 + j].max()) if len(Z) else 0.0
+    return Z, maxabs
 
 
 def complete_rows(pdf: pd.DataFrame, spec: BlockSpec):
