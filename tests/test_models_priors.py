@@ -171,21 +171,25 @@ def test_occasion_effects_labels(panel):
 @pytest.mark.parametrize("family,params", [
     ("normal", {"mu": 0.3, "sigma": 2.0}), ("student_t", {"nu": 3.0, "mu": -0.5, "sigma": 1.5}),
     ("flat", {}), ("half_normal", {"scale": 1.7}), ("half_student_t", {"nu": 3.0, "scale": 0.8}),
-    ("exponential", {"scale": 2.5}), ("gamma2", {"scale": 0.5}), ("half_flat", {})])
+    ("exponential", {"scale": 2.5}), ("gamma2", {"scale": 0.5}), ("half_flat", {}),
+    ("uniform", {"lower": -0.4, "upper": 0.9})])
 def test_each_prior_family_is_one_distribution_in_pymc_and_scipy(family, params):
-    """The one table of prior families (bayes.priors: coef_rv / sd_rv and prior_logpdf):
-    the PyMC variable the builders make has the log-density scipy.stats gives for the same
-    parameters (flat families: 0 in both)."""
+    """The one table of prior families (bayes.priors: coef_rv / sd_rv / rho_rv and
+    prior_logpdf): the PyMC variable the builders make has the log-density scipy.stats
+    gives for the same parameters (flat families: 0 in both)."""
     import pymc as pm
 
-    from bayespanel.bayes.priors import COEF_FAMILIES, SD_FAMILIES, coef_rv, prior_logpdf, sd_rv
+    from bayespanel.bayes.priors import (COEF_FAMILIES, RHO_FAMILIES, SD_FAMILIES, coef_rv,
+                                         prior_logpdf, rho_rv, sd_rv)
 
     params = {k: np.float64(v) for k, v in params.items()}  # float64 in the graph too
-    sd = family in SD_FAMILIES
-    assert sd or family in COEF_FAMILIES
-    x = np.array([0.05, 0.4, 1.3, 3.7]) if sd else np.array([-2.2, -0.1, 0.6, 4.0])
+    sd, rho = family in SD_FAMILIES, family in RHO_FAMILIES
+    assert sd or rho or family in COEF_FAMILIES
+    x = (np.array([0.05, 0.4, 1.3, 3.7]) if sd else np.array([-0.35, 0.0, 0.3, 0.85]) if rho
+         else np.array([-2.2, -0.1, 0.6, 4.0]))
     with pm.Model():
-        rv = sd_rv(pm, "v", family, params) if sd else coef_rv(pm, "v", family, params, None)
+        rv = (sd_rv(pm, "v", family, params) if sd else rho_rv(pm, "v", family, params) if rho
+              else coef_rv(pm, "v", family, params, None))
     got = np.array([float(pm.logp(rv, np.float64(xi)).eval()) for xi in x])
     # PyMC writes the half Student t density in another form: it agrees to 1e-7 there
     rtol = 1e-7 if family == "half_student_t" else 1e-10

@@ -35,7 +35,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import stats as _st
 
 from .contrasts import contrast_rows
 from ..core.errors import SpecificationError, choices_error
@@ -147,9 +146,9 @@ def log_prior_draws(posterior) -> dict:
     for comp in comps:
         par = prior_on_standard_scale(priors[comp], sc)
         out[comp] = prior_logpdf(priors[comp].family, posterior.draws(comp) / sy, par)
-    if "rho" in priors and getattr(spec, "errors", "iid") == "ar1":   # uniform, any scale
-        lo, hi = priors["rho"].kwargs["lower"], priors["rho"].kwargs["upper"]
-        out["rho"] = _st.uniform.logpdf(posterior.draws("rho"), lo, hi - lo)
+    if "rho" in priors and getattr(spec, "errors", "iid") == "ar1":   # the same on any scale
+        out["rho"] = prior_logpdf(priors["rho"].family, posterior.draws("rho"),
+                                  priors["rho"].kwargs)
     return out
 
 

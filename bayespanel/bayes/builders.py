@@ -48,7 +48,7 @@ from .. import kinds
 from ..core.errors import DataHandlingWarning, EstimationError, SpecificationError, choices_error
 from ..core.mathcore import intraclass_correlation
 from ..core import gaussian
-from .priors import coef_rv, prior_on_standard_scale, resolve_priors, sd_rv
+from .priors import coef_rv, prior_on_standard_scale, resolve_priors, rho_rv, sd_rv
 from .spec import ModelSpec
 from .graph import mark_built
 
@@ -426,7 +426,9 @@ class GaussianModel:
             sigma = sig["sigma_obs"]
             tau = sig.get("sigma_unit")
             if self.errors == "ar1":
-                rho = pm.Uniform("rho", lower=d["prior_rho_lower"], upper=d["prior_rho_upper"])
+                par = {k[len("prior_rho_"):]: v for k, v in d.items()
+                       if k.startswith("prior_rho_")}
+                rho = rho_rv(pm, "rho", self.priors["rho"].family, par)
                 self._ar1_potential(pm, pt, d, b_std, sigma, tau, rho)
             elif self.likelihood == "marginal":
                 self._marginal_potential(pm, pt, d, b_std, sigma, tau)

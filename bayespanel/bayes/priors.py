@@ -38,18 +38,19 @@ from scipy import stats
 from ..core.errors import SpecificationError, choices_error
 from ..core.terms import parse
 
-__all__ = ["Prior", "COEF_FAMILIES", "SD_FAMILIES", "RHO_FAMILIES", "resolve_priors", "default_priors", "prior_logpdf",
-           "check_prior"]
+__all__ = ["Prior", "COEF_FAMILIES", "SD_FAMILIES", "RHO_FAMILIES", "resolve_priors",
+           "default_priors", "prior_logpdf", "check_prior", "coef_rv", "sd_rv", "rho_rv"]
 
 #: coefficient families and their parameters (all on the data scale)
 COEF_FAMILIES = {"normal": ("mu", "sigma"), "student_t": ("nu", "mu", "sigma"), "flat": ()}
 #: standard-deviation families and their parameters (``scale`` in outcome units)
 SD_FAMILIES = {"half_normal": ("scale",), "half_student_t": ("nu", "scale"),
                "exponential": ("scale",), "gamma2": ("scale",), "half_flat": ()}
-#: preset names accepted for a standard deviation, with defaults in units of sd(y)
-#: families for the AR(1) correlation ``rho`` (bounds inside [-1, 1])
+#: families for the AR(1) correlation ``rho`` (bounds inside [-1, 1]; a correlation has
+#: no units, so its prior is the same on every scale)
 RHO_FAMILIES = {"uniform": ("lower", "upper")}
 RHO_KEY = "rho"
+#: preset names accepted for a standard deviation, with defaults in units of sd(y)
 SD_PRESETS = {"half_normal": {"scale": 1.0}, "half_student_t": {"nu": 3.0, "scale": 1.0},
               "exponential": {"scale": 1.0}, "gamma2": {"scale": 0.5}, "half_flat": {}}
 COEF_PRESETS = {"normal": {"mu": 0.0, "sigma": 2.5}, "student_t": {"nu": 3.0, "mu": 0.0, "sigma": 2.5},
@@ -72,7 +73,9 @@ class Prior:
         (``nu``, ``mu``, ``sigma``), ``"flat"``; for standard deviations one of
         ``"half_normal"`` (``scale``), ``"half_student_t"`` (``nu``, ``scale``),
         ``"exponential"`` (``scale`` = the mean), ``"gamma2"`` (Gamma with shape 2 and
-        rate ``1/scale``, so the mean is ``2 scale``; Chung et al. 2013), ``"half_flat"``.
+        rate ``1/scale``, so the mean is ``2 scale``; Chung et al. 2013), ``"half_flat"``;
+        for the AR(1) correlation ``rho`` ``"uniform"`` (``lower``, ``upper`` inside
+        [-1, 1]).
     **params : float
         The family's parameters; missing ones take the defaults scaled to the data.
 
@@ -371,14 +374,35 @@ def sd_rv(pm, name, family, par):
     return _DISTRIBUTIONS[family][0](pm, name, par, None)
 
 
+def rho_rv(pm, name, family, par):
+    """The AR(1) correlation's random variable in the current PyMC model, from its prior
+    family (:data:`RHO_FAMILIES`: ``"uniform"``) and parameters ``par`` (``lower``,
+    ``upper``; the same on every scale).
+
+    Parameters
+    ----------
+    pm : module
+        PyMC.
+    name : str
+        The variable's name.
+    family : str
+        The prior family.
+    par : dict
+        Its parameters.
+    """
+    if family not in RHO_FAMILIES:
+        raise choices_error("prior family of 'rho'", family, sorted(RHO_FAMILIES))
+    return _DISTRIBUTIONS[family][0](pm, name, par, None)
+
+
 def prior_logpdf(family: str, x, params: dict):
     """The log-density (scipy.stats) of a prior family at ``x``, from the same table as
-    :func:`coef_rv` and :func:`sd_rv` (the flat families: 0).
+    :func:`coef_rv`, :func:`sd_rv` and :func:`rho_rv` (the flat families: 0).
 
     Parameters
     ----------
     family : str
-        A family of :data:`COEF_FAMILIES` or :data:`SD_FAMILIES`.
+        A family of :data:`COEF_FAMILIES`, :data:`SD_FAMILIES` or :data:`RHO_FAMILIES`.
     x : array
     params : dict
         Its parameters on the scale of ``x``.
@@ -386,10 +410,11 @@ def prior_logpdf(family: str, x, params: dict):
     return _DISTRIBUTIONS[family][1](np.asarray(x, dtype=float), params)
 
 
-#: every coefficient and SD family's distribution, written once: the PyMC variable the
-#: builders make (``pm``, name, parameters, dims) and the scipy log-density the prior
-#: sensitivity reads (x, parameters); ``gamma2`` is Gamma with shape 2 and rate
-#: ``1 / scale``, ``half_student_t`` the Student t folded at 0 (density doubled)
+#: every prior family's distribution (coefficients, SDs and the AR(1) correlation),
+#: written once: the PyMC variable the builders make (``pm``, name, parameters, dims) and
+#: the scipy log-density the prior sensitivity reads (x, parameters); ``gamma2`` is Gamma
+#: with shape 2 and rate ``1 / scale``, ``half_student_t`` the Student t folded at 0
+#: (density doubled)
 _DISTRIBUTIONS = {
     "normal": (lambda pm, name, p, dims: pm.Normal(name, mu=p["mu"], sigma=p["sigma"], dims=dims),
                lambda x, p: stats.norm.logpdf(x, p["mu"], p["sigma"])),
@@ -410,4 +435,7 @@ _DISTRIBUTIONS = {
                lambda x, p: stats.gamma.logpdf(x, 2.0, scale=p["scale"])),
     "half_flat": (lambda pm, name, p, dims: pm.HalfFlat(name, dims=dims),
                   lambda x, p: np.zeros_like(x)),
+    "uniform": (lambda pm, name, p, dims: pm.Uniform(name, lower=p["lower"], upper=p["upper"],
+                                                     dims=dims),
+                lambda x, p: stats.uniform.logpdf(x, p["lower"], p["upper"] - p["lower"])),
 }
