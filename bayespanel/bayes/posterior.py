@@ -26,9 +26,7 @@ References
 
 from __future__ import annotations
 
-import json
 import warnings
-from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -41,7 +39,8 @@ from ..core.mathcore import unit_sd_draws
 from ..core import gaussian, providers
 from .contrasts import contrast_covariates, contrast_draws, within_between_contrasts
 from .partition import design_partition, variance_partition
-from .posteriorfile import decode_labels, encode_labels, read_tree, write_tree
+from .pointwise import PointwiseInputs, simulate_outcome  # noqa: F401 (public here)
+from .posteriorfile import posterior_parts, posterior_tree, read_tree, write_tree
 from .spec import ModelSpec
 from ..core.jsonsafe import jsonable
 from ..data.resultshape import check_prob, term_records
@@ -51,117 +50,6 @@ __all__ = ["Posterior", "PointwiseInputs", "simulate_outcome", "THRESHOLDS"]
 
 #: diagnostic thresholds (Vehtari et al. 2021 for R-hat and ESS; Betancourt 2016 for BFMI)
 THRESHOLDS = {"rhat": 1.01, "ess_per_chain": 100, "bfmi": 0.3}
-_STATS_FIELDS = ("mean", "total", "within", "unit_count", "unit_mean", "lengths",
-                 "group_count", "group_mean", "group_cp")
-_FORMAT_VERSION = 1
-
-
-def simulate_outcome(M, unit_codes, b, sigma, tau, rng, unit_shift=None, unit_draws=None,
-                     errors=None):
-    """Outcome draws ``y = M b + u_i + e`` for every draw of ``(b, sigma, tau)``.
-
-    Parameters
-    ----------
-    M : array (n, k); unit_codes : array (n,)
-    b : array (S, k); sigma : array (S,); tau : array (S,) or None
-    rng : numpy Generator
-    unit_shift : array (S, N), optional
-        Fixed unit intercepts per draw, used instead of drawing new ones.
-    unit_draws : array (S, N), optional
-        Unit intercepts already drawn (e.g. from their conditional posterior).
-    errors : array (S, n), optional
-        Errors already drawn (AR(1) errors, :func:`bayespanel.core.ar1.simulate_errors`),
-        used instead of independent ``N(0, sigma^2)`` ones.
-
-    Returns
-    -------
-    array (S, n)
-    """
-    mu = np.atleast_2d(b) @ np.asarray(M, float).T
-    codes = np.asarray(unit_codes)
-    n_units = int(codes.max()) + 1
-    if unit_draws is not None:
-        mu += unit_draws[:, codes]
-    elif unit_shift is not None:
-        mu += unit_shift[:, codes]
-    elif tau is not None:
-        mu += (tau[:, None] * rng.standard_normal((mu.shape[0], n_units)))[:, codes]
-    if errors is not None:
-        return mu + errors
-    return mu + sigma[:, None] * rng.standard_normal(mu.shape)
-
-
-@dataclass
-class PointwiseInputs:
-    """Everything pointwise log-likelihoods need (unit and occasion level, for LOO).
-
-    Draws are flattened over ``(chain, draw)`` in C order.
-    """
-
-    unit_effects: str
-    coef: np.ndarray
-    sigma_obs: np.ndarray
-    sigma_unit: np.ndarray | None
-    M: np.ndarray | None
-    y: np.ndarray | None
-    unit_codes: np.ndarray | None
-    units: pd.Index
-    stats: SuffStats
-    chains: int
-    draws: int
-    rho: np.ndarray | None = None
-    timeline: object = None
-
-    def _tau(self):
-        """Draws of the unit SD as the density functions take it (0 pooled, None fixed)."""
-        if self.unit_effects == "fixed":
-            return None
-        return self.sigma_unit if self.sigma_unit is not None else np.zeros_like(self.sigma_obs)
-
-    def _ar1_terms(self, fn):
-        """``fn(r, timeline, rho, sigma, tau)`` of :mod:`bayespanel.core.ar1` over the draws,
-        in blocks so that the residuals never hold more than about 2^24 numbers."""
-        tau = self._tau()
-        return ar1.by_draw_blocks(
-            lambda sl: fn(self.y[None, :] - self.coef[sl] @ self.M.T, self.timeline,
-                          self.rho[sl], self.sigma_obs[sl], None if tau is None else tau[sl]),
-            len(self.sigma_obs), len(self.y))
-
-    def _need_rows(self):
-        if self.M is None:
-            raise SpecificationError(
-                "the estimation rows are not available (model built from statistics only); "
-                "pointwise log-likelihoods need them")
-
-    def unit_loglik(self) -> np.ndarray:
-        """``log p(y_i | theta)`` per draw and unit, shape (S, N)."""
-        self._need_rows()
-        if self.unit_effects == "fixed":
-            raise SpecificationError(
-                "fixed effects have no unit-level predictive density: a new unit's intercept "
-                "is not identified; use level='occasion'")
-        if self.rho is not None:       # AR(1) errors: the unit's marginal density
-            return self._ar1_terms(ar1.unit_logdensity)
-        tau = self.sigma_unit if self.sigma_unit is not None else np.zeros_like(self.sigma_obs)
-        return gaussian.unit_loglik_rows(self.M, self.y, self.unit_codes, self.coef,
-                                         self.sigma_obs, tau)
-
-    def ar1_loglik(self) -> np.ndarray:
-        """Per draw, the log-likelihood of a model with ``errors="ar1"`` (S,): the sum over
-        units of :func:`bayespanel.core.ar1.unit_logdensity` (fixed effects: the density of
-        the within-transformed rows, as the model's likelihood), from the rows."""
-        self._need_rows()
-        if self.rho is None:
-            raise SpecificationError("ar1_loglik is for models with errors='ar1'")
-        return self._ar1_terms(ar1.unit_logdensity).sum(axis=1)
-
-    def occasion_loglik(self) -> np.ndarray:
-        """``log p(y_it | y_i,-t, theta)`` per draw and row, shape (S, n)."""
-        self._need_rows()
-        if self.rho is not None:       # AR(1) errors: given the unit's other rows, O(T_i)
-            return self._ar1_terms(ar1.occasion_logdensity)
-        return gaussian.occasion_loglik_rows(self.M, self.y, self.unit_codes, self.coef,
-                                             self.sigma_obs, self._tau())
 
 
 def _percent(q) -> str:
@@ -808,43 +696,9 @@ class Posterior:
         write_tree(self._tree(rows), path)
 
     def _tree(self, rows: bool) -> "xr.DataTree":
-        """The DataTree :meth:`save` writes."""
-        groups = {name: node.to_dataset() for name, node in self.idata.children.items()}
-        st = self.stats
-        p = st.p
-        units = self.units
-        unit_kind = "int" if pd.api.types.is_integer_dtype(units) else "str"
-        unit_vals = units.to_numpy(dtype=np.int64) if unit_kind == "int" \
-            else units.astype(str).to_numpy(dtype=str)
-        groups["bayespanel_stats"] = xr.Dataset(
-            {"mean": (("col",), st.mean), "total": (("col", "col2"), st.total),
-             "within": (("col", "col2"), st.within),
-             "unit_count": (("unit",), st.unit_count), "unit_mean": (("unit", "col"), st.unit_mean),
-             "lengths": (("length",), st.lengths), "group_count": (("length",), st.group_count),
-             "group_mean": (("length", "col"), st.group_mean),
-             "group_cp": (("length", "col", "col2"), st.group_cp)},
-            coords={"unit": unit_vals, "col": np.arange(p), "col2": np.arange(p)},
-            attrs={"n": int(st.n), "n_units": int(st.n_units), "unit_kind": unit_kind})
-        if rows and self.rows is not None:
-            M, y, codes = self.rows
-            data = {"M": (("row", "term"), np.asarray(M, float)),
-                    "y": (("row",), np.asarray(y, float)),
-                    "unit_code": (("row",), np.asarray(codes, np.int64))}
-            for name, v in (("time", self.time), ("row_label", self.row_labels)):
-                if v is not None:
-                    arr, kind = encode_labels(v)
-                    data[name] = (("row",), arr, {"bayespanel_kind": kind})
-            if self.ar1_time is not None:
-                data["ar1_time"] = (("row",), self.ar1_time)
-            groups["bayespanel_rows"] = xr.Dataset(data)
-        tree = xr.DataTree.from_dict({"/": xr.Dataset(attrs={
-            "bayespanel_format": _FORMAT_VERSION,
-            "bayespanel_spec": self.spec.to_json(),
-            "bayespanel_sampling": json.dumps(self.sampling),
-            "bayespanel_scaling": json.dumps(self.scaling.to_dict() if self.scaling else None),
-            **({"bayespanel_edits": json.dumps(self.edits)} if self.edits else {}),
-        }), **groups})
-        return tree
+        """The DataTree :meth:`save` writes
+        (:func:`~bayespanel.bayes.posteriorfile.posterior_tree`)."""
+        return posterior_tree(self, rows)
 
     @classmethod
     def load(cls, path) -> "Posterior":
@@ -870,33 +724,9 @@ class Posterior:
 
     @classmethod
     def _from_tree(cls, tree) -> "Posterior":
-        attrs = tree.attrs
-        spec = ModelSpec.from_json(attrs["bayespanel_spec"])
-        sampling = json.loads(attrs["bayespanel_sampling"])
-        sc = json.loads(attrs["bayespanel_scaling"])
-        scaling = gaussian.Scaling.from_dict(sc) if sc else None
-        sd = tree["bayespanel_stats"].to_dataset()
-        stats = SuffStats(n=int(sd.attrs["n"]), n_units=int(sd.attrs["n_units"]),
-                          **{f: np.asarray(sd[f].values) for f in _STATS_FIELDS})
-        units = pd.Index(sd["unit"].values)
-        if sd.attrs.get("unit_kind") == "str":
-            units = pd.Index(units.astype(str), dtype=object)
-        rows, labels = None, {}
-        if "bayespanel_rows" in tree.children:
-            rd = tree["bayespanel_rows"].to_dataset()
-            rows = (np.asarray(rd["M"].values), np.asarray(rd["y"].values),
-                    np.asarray(rd["unit_code"].values))
-            for name, key in (("time", "time"), ("row_label", "row_labels")):
-                if name in rd:
-                    labels[key] = decode_labels(rd[name])
-            if "ar1_time" in rd:
-                labels["ar1_time"] = np.asarray(rd["ar1_time"].values, dtype=float)
-        keep = {k: v.to_dataset() for k, v in tree.children.items()
-                if not k.startswith("bayespanel_")}
-        idata = xr.DataTree.from_dict(keep)
-        post = cls(idata, spec, stats, units, rows=rows, sampling=sampling, scaling=scaling,
-                   **labels)
-        post.edits = list(json.loads(attrs.get("bayespanel_edits", "[]")))
+        args, edits = posterior_parts(tree)
+        post = cls(**args)
+        post.edits = edits
         return post
 
 
