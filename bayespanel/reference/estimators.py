@@ -467,7 +467,7 @@ def core_fit(estimator, ss, labels, method=None, near=None) -> core.CoreFit:
     (:func:`bayespanel.analysis.loo.reference_cv`) both run. ``near`` is a starting value of
     ``gamma = tau^2 / sigma^2`` for the ML/REML search (see
     :func:`~bayespanel.reference.core.likelihood_core`)."""
-    pr = _priority(labels)
+    pr = column_priority(labels)
     if estimator == "pooled":
         return core.pooled_core(ss, priority=pr)
     if estimator == "within":
@@ -479,7 +479,7 @@ def core_fit(estimator, ss, labels, method=None, near=None) -> core.CoreFit:
     return core.likelihood_core(ss, method, priority=pr, near=near)
 
 
-def _priority(labels):
+def column_priority(labels):
     """Columns kept first when some are collinear: the intercept, then the occasion
     indicators (effects absorb a trend such as experience, not the other way round)."""
     first = [j for j, t in enumerate(labels) if t == "Intercept"]

@@ -18,7 +18,10 @@ the random-intercept fits re-estimate ``sigma_unit`` and ``sigma_obs`` without t
 (Swamy-Arora in closed form; ML and REML by the same root search, started at the
 full-data optimum). Holding the variance components at their full-data values would let
 the held-out point inform its own prediction, so it would not be leave-one-out of the
-estimator. Grouped K-fold (``folds=K``) refits with
+estimator. The refits of the pooled, within and Swamy-Arora fits run for many held-out
+points at once (:mod:`bayespanel.analysis.loo._batch`: the same downdates and cores with
+the points on a leading axis; equal to the one-at-a-time loop to 1e-10, which ML and REML
+still use). Grouped K-fold (``folds=K``) refits with
 :func:`bayespanel.reference.fit_arrays` on each fold's training rows. The densities are
 those of :mod:`bayespanel.core.gaussian`.
 """
@@ -32,6 +35,7 @@ from ...core.errors import EstimationError, SpecificationError
 from ...core.mathcore import unit_sd_draws
 from ._draws import check_level, from_draws
 from ...core import gaussian
+from . import _batch
 from ._downdate import Downdates
 from .pointwise import holdout_loglik, undefined_reason
 from .result import LOOResult
@@ -122,6 +126,8 @@ def exact_loo_values(ref, level="occasion", progress=None):
             progress(f"  exact CV of the {ref.estimator} fit: {done} of {total} "
                      f"{'units' if level == 'unit' else 'rows'} refitted")
 
+    if (ref.estimator, ref.method) in _batch.BATCHED and not _LOOP_ONLY:
+        return _batched_values(ref, dd, Z, codes, level, fit, tick, labels, ue)
     if level == "unit":
         out = np.empty(d.n_units)
         for i in range(d.n_units):
@@ -141,6 +147,64 @@ def exact_loo_values(ref, level="occasion", progress=None):
         v, sigma, tau = fit(dd.without_row(j))
         R = (T * dd.ss.unit_mean[i] - Z[j]) @ v
         out[j] = gaussian.occasion_logpdf(Z[j] @ v, R, T - 1.0, sigma, tau)
+    return out
+
+
+#: True: every exact leave-one-out refit runs in the loop, one point at a time (the
+#: reference the batched refits are tested against)
+_LOOP_ONLY = False
+
+
+def _batched_values(ref, dd, Z, codes, level, fit, tick, labels, ue):
+    """:func:`exact_loo_values` with the refits of the closed-form estimators batched
+    (:mod:`bayespanel.analysis.loo._batch`); points the batch leaves (``ok`` False) are
+    refitted by ``fit`` one at a time, as in the loop."""
+    from ...reference.estimators import column_priority
+
+    d = ref.design
+    priority = column_priority(labels)
+    k = Z.shape[1] - 1
+    T_of = np.diff(dd.starts)
+    if level == "unit":
+        points, out = np.arange(d.n_units), np.empty(d.n_units)
+    else:
+        points, out = np.arange(d.n), np.full(d.n, np.nan)
+        if ue == "fixed":  # nothing to predict a row of a unit with no other rows from
+            points = points[T_of[codes] >= 2]
+    for a in range(0, len(points), _batch.BATCH):
+        tick(a, len(out))
+        pts = points[a:a + _batch.BATCH]
+        st = (_batch.units_left_out(dd, pts) if level == "unit"
+              else _batch.rows_left_out(dd, pts))
+        beta, s2e, s2u, ok = _batch.fit_batch(st, ref.estimator, priority)
+        V = np.concatenate([-beta, np.ones((len(pts), 1))], axis=1)
+        sigma = np.sqrt(s2e)
+        tau = unit_sd_draws(ue, np.sqrt(s2u) if ue == "random" else None, (len(pts),))
+        if level == "unit":
+            for j in np.flatnonzero(ok):
+                i = pts[j]
+                r = Z[dd.unit_rows(i)] @ V[j]
+                out[i] = gaussian.unit_logdensity(
+                    r, np.zeros(len(r), dtype=np.int64), sigma[j],
+                    None if tau is None else tau[j])[0]
+        else:
+            i = codes[pts]
+            T = T_of[i]
+            R = np.einsum("bp,bp->b", T[:, None] * dd.ss.unit_mean[i] - Z[pts], V)
+            r = np.einsum("bp,bp->b", Z[pts], V)
+            vals = gaussian.occasion_logpdf(r, R, T - 1.0, sigma, tau)
+            out[pts[ok]] = vals[ok]
+        for j in np.flatnonzero(~ok):  # the loop's refit (it raises where the fit would)
+            v, sg, tu = fit(dd.without_unit(pts[j]) if level == "unit"
+                            else dd.without_row(pts[j]))
+            if level == "unit":
+                r = Z[dd.unit_rows(pts[j])] @ v
+                out[pts[j]] = gaussian.unit_logdensity(
+                    r, np.zeros(len(r), dtype=np.int64), sg, tu)[0]
+            else:
+                i, T = codes[pts[j]], T_of[codes[pts[j]]]
+                R = (T * dd.ss.unit_mean[i] - Z[pts[j]]) @ v
+                out[pts[j]] = gaussian.occasion_logpdf(Z[pts[j]] @ v, R, T - 1.0, sg, tu)
     return out
 
 
