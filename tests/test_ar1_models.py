@@ -196,8 +196,11 @@ def test_what_still_refuses_says_so(ar1_fit):
         B.RandomIntercept(PANEL, "y ~ x", errors="ar1", likelihood="latent")
     with pytest.raises(SpecificationError, match="errors='ar1'"):
         B.RandomIntercept(PANEL, "y ~ x", errors="ar1", family="poisson")
-    with pytest.raises(SpecificationError, match="design_check.*errors='ar1'"):
-        bp.design_check(None, ar1_fit.model, replicates=2)     # its replicates are iid
+    # the design check runs AR(1) models (tests/test_design_check_ar1.py); its truth needs rho
+    with pytest.raises(SpecificationError, match="truth needs 'rho'"):
+        bp.design_check(None, ar1_fit.model, replicates=2, bayes=False,
+                        truth={"coef": dict.fromkeys(ar1_fit.model.labels, 0.0),
+                               "sigma_unit": 1.0, "sigma_obs": 1.0})
     with pytest.raises(SpecificationError, match="rows="):
         ar1_fit.model.set_suffstats(ar1_fit.model.stats)       # AR(1) needs the rows
     M, y, codes = ar1_fit.model.rows
@@ -350,12 +353,20 @@ def test_same_rows_new_outcome_swaps_into_the_compiled_model(ar1_fit):
     model.set_suffstats(*old[:1], rows=old[1])
 
 
-def test_partitioned_source_refuses(tmp_path):
-    FRAME.to_parquet(tmp_path / "part0.parquet", index=False)
+def test_partitioned_source_gives_the_in_memory_statistics(tmp_path):
+    # a Parquet panel in two files cut inside a unit (read by Dask): the model's AR(1)
+    # statistics equal those of the same rows in memory (checked against scipy's dense
+    # density above); the wage panel's version is tests/test_dask_ar1.py
+    rows = FRAME.sort_values(["unit", "year"])
+    rows.iloc[:11].to_parquet(tmp_path / "part0.parquet", index=False)
+    rows.iloc[11:].to_parquet(tmp_path / "part1.parquet", index=False)
     dp = bp.Panel.from_parquet(tmp_path, unit="unit", time="year", engine="dask",
                                client="synchronous")
-    with pytest.raises(SpecificationError, match="errors='ar1'.*Dask|Dask.*errors='ar1'"):
-        B.RandomIntercept(dp, "y ~ x", errors="ar1")
+    a, b = B.RandomIntercept(dp, "y ~ x", errors="ar1"), B.RandomIntercept(PANEL, "y ~ x",
+                                                                          errors="ar1")
+    A, M = a.ar1_stats.arrays(), b.ar1_stats.arrays()
+    for key in ("first", "link_start", "link_end", "link_cross"):
+        np.testing.assert_allclose(A[key], M[key], rtol=1e-10, atol=1e-12)
 
 
 @pytest.mark.slow

@@ -360,10 +360,6 @@ class Settings:
             raise SpecificationError(
                 f"errors='ar1' applies to the Gaussian models without random slopes, not to "
                 f"{what}; drop errors='ar1' (--errors) or fit the Gaussian family")
-        if self.out_of_core:
-            raise SpecificationError(
-                "errors='ar1' needs the rows in memory (the out-of-core route does not fit "
-                "AR(1) errors yet); drop out_of_core or errors='ar1'")
 
     # ------------------------------------------------------------------ files
     def to_dict(self) -> dict:

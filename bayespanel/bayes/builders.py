@@ -184,15 +184,25 @@ class GaussianModel:
     def _ar1_stats(self, design, labels):
         """The AR(1) statistics of this model's columns ``[M, y]`` (:func:`ar1.compute`),
         gaps read from the panel's time column."""
-        if not design.has_rows:
-            ar1.refuse_pending("ar1", "a panel whose rows are not in memory (a partitioned "
-                               "source such as a Dask panel)")
-        M, y, codes = self._rows_of(design)
         column = dict(design.spec.to_dict()).get("time", "time")
+        if not design.has_rows:   # one more pass over the partitions (data.ar1pass)
+            from ..data.ar1pass import design_ar1_stats
+
+            A, B = self._row_map(design)
+            return design_ar1_stats(design, A, B, labels + [design.outcome], column)
+        M, y, codes = self._rows_of(design)
         #: the occasion of every estimation row as a number (gaps are its differences)
         self.ar1_time = ar1.occasion_times(design.time, column)
         return ar1.compute(M, y, codes, self.ar1_time, names=labels + [design.outcome],
                            column=column)
+
+    def _row_map(self, design):
+        """``(A, B)``: this model's rows of ``[M, y]`` are ``A z + B zbar_i`` for a design
+        row ``z = [x, y]`` and its unit mean (the columns of :meth:`_rows_of`)."""
+        if self.kind in ("mundlak", "within_between"):
+            return design.row_map(self.kind)
+        p = design.k + 1
+        return np.eye(p), np.zeros((p, p))
 
     def _rows_of(self, design):
         # the pooled and random kinds use the design's columns as they are: share them
@@ -733,6 +743,12 @@ class FixedEffects(GaussianModel):
         labels = design.labels("within")
         cols = [design.terms.index(t) for t in labels]
         return design.X[:, cols], labels
+
+    def _row_map(self, design):
+        # the original time-varying columns (the AR(1) density takes the within limit)
+        cols = [design.terms.index(t) for t in design.labels("within")] + [design.k]
+        A = np.eye(design.k + 1)[cols]
+        return A, np.zeros_like(A)
 
 
 BUILDERS = {cls.__name__: cls for cls in
