@@ -25,6 +25,7 @@ from pathlib import Path
 from .. import kinds
 from ..core.errors import SpecificationError
 from ..analysis.occasions import true_occasion_coef
+from ..analysis.persistence import persistence_notes
 from .comparison_stage import comparison_stage
 from .data_stage import SCHEDULER_ENV, data_stage, data_stage_large, open_out_of_core  # noqa: F401
 from .model_stage import bayes_one
@@ -171,6 +172,8 @@ def _fit_stages(settings, panel, design, data, notes, out_dir, truth, say, progr
                                      out_dir, say, progress_bars, lag1=time_reason is None)
             posts[name] = post
             entries.append(entry)
+    # AR(1) errors near a random walk: the unit variance and the persistence blur
+    notes = notes + persistence_notes(posts, {n: kinds.model(n).title for n in posts})
     interval_check = None
     if posts and not settings.glm_reference:
         with isolated(failed, say, "interval_check", "Narrow-interval check",
