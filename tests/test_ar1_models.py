@@ -386,8 +386,8 @@ def test_psis_loo_matches_exact_refits(ar1_fit):
         psis = ar1_fit.loo(level).pointwise["elpd"].to_numpy()[j]
         test = (fd.codes == j) if level == "unit" else (np.arange(fd.n) == j)
         refit = L.refit_draws(fd, ~test, draws=400, tune=400, chains=2, seed=7)
-        ll = L.holdout_loglik(fd.M, fd.y, fd.codes, test, refit.coef, refit.sigma, refit.tau,
-                              level, rho=refit.rho, time=fd.ar1_time)[:, 0]
+        ll = L.holdout_loglik(fd.M, fd.y, fd.codes, test, *refit.flat(), level,
+                              rho=refit.flat_rho(), time=fd.ar1_time)[:, 0]
         exact = logsumexp(ll) - np.log(len(ll))
         w = np.exp(ll - ll.max())
         se = w.std() / w.mean() / np.sqrt(len(ll) / 2)

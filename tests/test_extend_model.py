@@ -153,7 +153,7 @@ def test_refits_sample_the_edited_model(fits, grunfeld):
     train = fd.codes != 0
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", SamplingWarning)
-        b, _, _, _ = refit_draws(fd, train, sampler="pymc", **KW)
+        b = refit_draws(fd, train, sampler="pymc", **KW).flat()[0]
     rest = grunfeld[grunfeld["firm"] != np.asarray(post.units)[0]]
     t_rest = _t_posterior(rest)
     mean, sd = _with_potential(t_rest, fits["m0"], fits["s0"])

@@ -156,7 +156,7 @@ def log_likelihood_draws(posterior) -> np.ndarray:
     """Total Gaussian marginal log-likelihood of every draw (chain, draw), on the data scale,
     from the sufficient statistics (:func:`bayespanel.core.gaussian.marginal_loglik`;
     fixed effects: :func:`~bayespanel.core.gaussian.within_loglik`); with
-    ``errors="ar1"`` from the rows (:meth:`~bayespanel.bayes.posterior.PointwiseInputs.ar1_loglik`)."""
+    ``errors="ar1"`` from the rows (:meth:`~bayespanel.bayes.draws.FitDraws.ar1_loglik`)."""
     from ..core import gaussian
 
     st = posterior.stats

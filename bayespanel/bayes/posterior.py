@@ -37,16 +37,17 @@ from .. import kinds
 from ..core.errors import SamplingWarning, SpecificationError
 from ..core.mathcore import unit_sd_draws
 from ..core import gaussian, providers
+from .draws import FitDraws
 from .contrasts import contrast_covariates, contrast_draws, within_between_contrasts
 from .partition import design_partition, variance_partition
-from .pointwise import PointwiseInputs, simulate_outcome  # noqa: F401 (public here)
+from .pointwise import simulate_outcome  # noqa: F401 (public here)
 from .posteriorfile import posterior_parts, posterior_tree, read_tree, write_tree
 from .spec import ModelSpec
 from ..core.jsonsafe import jsonable
 from ..data.resultshape import check_prob, term_records
 from ..core.suffstats import SuffStats
 
-__all__ = ["Posterior", "PointwiseInputs", "simulate_outcome", "THRESHOLDS"]
+__all__ = ["Posterior", "simulate_outcome", "THRESHOLDS"]
 
 #: diagnostic thresholds (Vehtari et al. 2021 for R-hat and ESS; Betancourt 2016 for BFMI)
 THRESHOLDS = {"rhat": 1.01, "ess_per_chain": 100, "bfmi": 0.3}
@@ -605,20 +606,24 @@ class Posterior:
                             coords={"chain": coef["chain"].values,
                                     "draw": coef["draw"].values[::thin]}, name="y")
 
-    def pointwise_inputs(self, thin: int = 1) -> PointwiseInputs:
-        """Draws and data for pointwise log-likelihoods at the unit and occasion level."""
+    def pointwise_inputs(self, thin: int = 1) -> FitDraws:
+        """Draws (every ``thin``-th of each chain) and rows for pointwise log-likelihoods at
+        the unit and occasion level (:class:`~bayespanel.bayes.draws.FitDraws`:
+        ``unit_loglik()``, ``occasion_loglik()``, ``ar1_loglik()``)."""
         thin = self._thin(thin)
         M, y, codes = self.rows if self.rows is not None else (None, None, None)
         serial = {}
         if self.spec.errors == "ar1":
-            serial = {"rho": self._flat("rho", thin), "timeline": self._ar1_timeline()}
-        return PointwiseInputs(
-            unit_effects=self.spec.unit_effects, coef=self._flat("coef", thin),
-            sigma_obs=self._flat("sigma_obs", thin),
-            sigma_unit=(self._flat("sigma_unit", thin) if self.spec.unit_effects == "random"
-                        else None),
-            M=M, y=y, unit_codes=codes, units=self.units, stats=self.stats,
-            chains=self.n_chains, draws=len(range(0, self.n_draws, thin)), **serial)
+            serial = {"rho": self.draws("rho")[:, ::thin], "ar1_time": self.ar1_time,
+                      "timeline": self._ar1_timeline()}
+        sigma = self.draws("sigma_obs")[:, ::thin]
+        tau = (self.draws("sigma_unit")[:, ::thin] if self.spec.unit_effects == "random"
+               else None)
+        return FitDraws(
+            kind=self.spec.kind, unit_effects=self.spec.unit_effects,
+            labels=list(self.spec.labels), M=M, y=y, codes=codes, units=self.units,
+            time=None, rows=None, coef=self.draws("coef")[:, ::thin], sigma=sigma,
+            tau=unit_sd_draws(self.spec.unit_effects, tau, sigma.shape), **serial)
 
     # ------------------------------------------------------------------ comparison
     # (thin entries; the work is in bayespanel.analysis.loo, reached through the provider

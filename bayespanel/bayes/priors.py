@@ -377,19 +377,7 @@ def sd_rv(pm, name, family, par):
 def rho_rv(pm, name, family, par):
     """The AR(1) correlation's random variable in the current PyMC model, from its prior
     family (:data:`RHO_FAMILIES`: ``"uniform"``) and parameters ``par`` (``lower``,
-    ``upper``; the same on every scale).
-
-    Parameters
-    ----------
-    pm : module
-        PyMC.
-    name : str
-        The variable's name.
-    family : str
-        The prior family.
-    par : dict
-        Its parameters.
-    """
+    ``upper``; the same on every scale); the arguments are those of :func:`sd_rv`."""
     if family not in RHO_FAMILIES:
         raise choices_error("prior family of 'rho'", family, sorted(RHO_FAMILIES))
     return _DISTRIBUTIONS[family][0](pm, name, par, None)

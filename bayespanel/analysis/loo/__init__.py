@@ -13,7 +13,8 @@ from .psis import kfold, loo, loo_subsample, psis_arrays, refit_draws
 from .subsample import plpd
 from .reference_cv import reference_cv
 from .result import LOOResult
-from ._draws import LEVELS, FitDraws, check_level, from_draws, from_posterior, outcome_measure
+from ...bayes.draws import FitDraws, outcome_measure
+from ._draws import LEVELS, check_level, from_draws, from_posterior
 
 __all__ = ["loo", "kfold", "loo_subsample", "reference_cv", "pointwise_loglik",
            "holdout_loglik", "plpd", "psis_arrays", "refit_draws", "LOOResult", "LEVELS",

@@ -1,12 +1,12 @@
-"""What LOO needs from a fit: the rows, the draws and a way to refit (private)."""
+"""What LOO needs from a fit: the rows, the draws (:class:`~bayespanel.bayes.draws.FitDraws`)
+and a way to refit (private)."""
 
 from __future__ import annotations
-
-from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
+from ...bayes.draws import FitDraws
 from ...core.errors import SpecificationError, choices_error
 from ...core.mathcore import unit_sd_draws
 
@@ -19,116 +19,6 @@ def check_level(level):
     return level
 
 
-@dataclass
-class FitDraws:
-    """Rows and posterior draws of one panel model.
-
-    ``coef`` is ``(C, D, k)``, ``sigma`` and ``tau`` ``(C, D)`` (``tau`` is zeros for the
-    pooled model and ``None`` for fixed effects). ``M`` holds the model's columns on the
-    estimation rows (rows sorted by unit), ``codes`` the unit of each row (0..N-1).
-    ``unit_name`` and ``time_name`` are the Panel's columns (for messages), ``time`` the
-    occasion label of every row. ``latent`` is the
-    :class:`~bayespanel.bayes.latent.LatentPosterior` of a latent-effect model (another
-    family, or random slopes), whose pointwise terms come from its own
-    :meth:`~bayespanel.bayes.latent.LatentPosterior.pointwise_loglik`; ``family`` names
-    its outcome family (``"gaussian"`` for the marginal models). ``rho`` ``(C, D)`` are
-    the draws of the AR(1) correlation of a model with ``errors="ar1"`` (``None``
-    otherwise) and ``ar1_time`` the occasion of every row as a number.
-    """
-
-    kind: str
-    unit_effects: str
-    labels: list
-    M: np.ndarray
-    y: np.ndarray
-    codes: np.ndarray
-    units: pd.Index
-    time: np.ndarray | None
-    rows: pd.Index
-    coef: np.ndarray
-    sigma: np.ndarray
-    tau: np.ndarray | None
-    posterior: object = None
-    model: object = None
-    design: object = None
-    sample_kwargs: dict = field(default_factory=dict)
-    unit_name: str | None = None
-    time_name: str | None = None
-    family: str = "gaussian"
-    latent: object = None
-    rho: np.ndarray | None = None
-    ar1_time: np.ndarray | None = None
-
-    @property
-    def n_chains(self) -> int:
-        return int(self.coef.shape[0])
-
-    @property
-    def n_draws(self) -> int:
-        return int(self.coef.shape[1])
-
-    @property
-    def n(self) -> int:
-        return int(len(self.y))
-
-    @property
-    def n_units(self) -> int:
-        return int(len(self.units))
-
-    @property
-    def T(self) -> np.ndarray:
-        return np.bincount(self.codes, minlength=self.n_units)
-
-    @property
-    def names(self) -> tuple:
-        """``(unit column, time column)`` of the Panel the fit came from (or ``None``s)."""
-        return self.unit_name, self.time_name
-
-    @property
-    def measure(self) -> str:
-        """``"mass"`` when the terms are log probabilities of a discrete outcome,
-        ``"density"`` when they are log densities of a continuous one."""
-        return outcome_measure(self.family)
-
-    def flat(self):
-        """``(coef (S, k), sigma (S,), tau (S,) or None)`` with chains stacked."""
-        S = self.n_chains * self.n_draws
-        tau = None if self.tau is None else self.tau.reshape(S)
-        return self.coef.reshape(S, -1), self.sigma.reshape(S), tau
-
-    def flat_rho(self):
-        """Draws of ``rho`` with chains stacked (S,), or None without AR(1) errors."""
-        return None if self.rho is None else self.rho.reshape(-1)
-
-    def point_index(self, level) -> pd.DataFrame:
-        """Labels of the pointwise terms: one row per unit, or per estimation row.
-
-        ``position`` is the point's index (unit code, or estimation-row number), which
-        aligns the points of different fits on the same rows.
-        At the occasion level ``occasion`` numbers a unit's rows 1..T_i in time order
-        (``time`` holds the occasion labels when the design is known).
-        """
-        if level == "unit":
-            return pd.DataFrame({"position": np.arange(self.n_units),
-                                 "unit": np.asarray(self.units), "occasions": self.T})
-        starts = np.concatenate([[0], np.cumsum(self.T)[:-1]])
-        out = pd.DataFrame({"position": np.arange(self.n),
-                            "unit": np.asarray(self.units)[self.codes],
-                            "occasion": np.arange(self.n) - starts[self.codes] + 1,
-                            "row": np.asarray(self.rows)})
-        if self.time is not None:
-            out["time"] = self.time
-        return out
-
-
-def outcome_measure(family) -> str:
-    """``"mass"`` for the discrete families (Bernoulli, binomial, Poisson, negative
-    binomial), ``"density"`` for the continuous ones (Gaussian, Student-t)."""
-    from ...bayes.families import get_family
-
-    return "mass" if get_family(family).discrete else "density"
-
-
 def _values(ds, name):
     return np.asarray(ds[name].values, dtype=float)
 
@@ -136,7 +26,7 @@ def _values(ds, name):
 def from_draws(*, kind, unit_effects, labels, M, y, codes, coef, sigma, tau=None, units=None,
                time=None, rows=None, posterior=None, model=None, design=None,
                sample_kwargs=None, unit_name=None, time_name=None, family="gaussian",
-               latent=None, rho=None, ar1_time=None) -> FitDraws:
+               latent=None, rho=None, ar1_time=None, messages=None) -> FitDraws:
     """Assemble :class:`FitDraws` from arrays (``coef`` may be ``(S, k)`` or ``(C, D, k)``)."""
     coef = np.asarray(coef, dtype=float)
     if coef.ndim == 2:
@@ -167,7 +57,8 @@ def from_draws(*, kind, unit_effects, labels, M, y, codes, coef, sigma, tau=None
         rows=pd.Index(rows if rows is not None else np.arange(len(codes))),
         coef=coef, sigma=sigma, tau=tau, posterior=posterior, model=model, design=design,
         sample_kwargs=dict(sample_kwargs or {}), unit_name=unit_name, time_name=time_name,
-        family=family, latent=latent, rho=rho, ar1_time=ar1_time)
+        family=family, latent=latent, rho=rho, ar1_time=ar1_time,
+        messages=list(messages or []))
 
 
 def from_posterior(post) -> FitDraws:

@@ -1,6 +1,7 @@
 """Pointwise log predictive terms at the unit and the occasion level.
 
-The densities are those of :mod:`bayespanel.core.gaussian` (written once there):
+The densities are those of :mod:`bayespanel.core.gaussian` and :mod:`bayespanel.core.ar1`
+(written once there; :func:`bayespanel.bayes.draws.pointwise_terms` picks them):
 
 * ``level="unit"``: ``log p(y_i | theta)``, the marginal density of all rows of unit ``i``
   with its intercept integrated out (:func:`~bayespanel.core.gaussian.unit_loglik_rows`);
@@ -25,12 +26,13 @@ from __future__ import annotations
 import numpy as np
 from scipy import sparse
 
+from ...bayes.draws import pointwise_terms
 from ...core import ar1
 from ...core.errors import EstimationError, SpecificationError
 from ...core import gaussian
 from ._draws import check_level
 
-__all__ = ["pointwise_loglik", "holdout_loglik", "undefined_reason", "ar1_pointwise"]
+__all__ = ["pointwise_loglik", "holdout_loglik", "undefined_reason"]
 
 
 def undefined_reason(unit_effects, level, T=None):
@@ -88,24 +90,8 @@ def pointwise_loglik(fd, level, units=None):
         keep = np.isin(codes, units)
         M, y, codes = M[keep], y[keep], _renumber(codes[keep])
         time = None if time is None else time[keep]
-    if fd.rho is not None:
-        out = ar1_pointwise(M, y, codes, time, b, sigma, tau, fd.flat_rho(), level)
-    elif level == "unit":
-        out = gaussian.unit_loglik_rows(M, y, codes, b, sigma, tau)
-    else:
-        out = gaussian.occasion_loglik_rows(M, y, codes, b, sigma, tau)
+    out = pointwise_terms(M, y, codes, b, sigma, tau, level, rho=fd.flat_rho(), time=time)
     return out.reshape(fd.n_chains, fd.n_draws, -1)
-
-
-def ar1_pointwise(M, y, codes, time, b, sigma, tau, rho, level):
-    """The pointwise terms with AR(1) errors (:mod:`bayespanel.core.ar1`): the unit's marginal
-    density, or each row given the unit's other rows (O(T_i) per unit: the precision is
-    tridiagonal plus rank one), over blocks of draws."""
-    tl = ar1.Timeline.build(codes, time)
-    fn = ar1.unit_logdensity if level == "unit" else ar1.occasion_logdensity
-    return ar1.by_draw_blocks(
-        lambda sl: fn(y[None, :] - b[sl] @ M.T, tl, rho[sl], sigma[sl],
-                      None if tau is None else tau[sl]), len(sigma), len(y))
 
 
 def holdout_loglik(M, y, codes, test, b, sigma, tau, level, rho=None, time=None):
@@ -131,23 +117,17 @@ def holdout_loglik(M, y, codes, test, b, sigma, tau, level, rho=None, time=None)
     test = np.asarray(test, dtype=bool)
     b = np.atleast_2d(b)
     sigma = np.atleast_1d(sigma)
-    if rho is not None:
-        rho = np.atleast_1d(rho)
-        ta = None if tau is None else np.atleast_1d(tau)
-        if level == "unit":
-            tl = ar1.Timeline.build(codes[test], time[test])
-            fn = lambda sl: ar1.unit_logdensity(  # noqa: E731
-                y[test][None, :] - b[sl] @ M[test].T, tl, rho[sl], sigma[sl],
-                None if ta is None else ta[sl])
-        else:
-            fn = lambda sl: ar1.holdout_logdensity(  # noqa: E731
-                y[None, :] - b[sl] @ M.T, codes, time, test, rho[sl], sigma[sl],
-                None if ta is None else ta[sl])
-        return ar1.by_draw_blocks(fn, len(sigma), len(y))
+    rho = None if rho is None else np.atleast_1d(rho)
     if level == "unit":
-        tcodes = _renumber(codes[test])
-        return gaussian.unit_loglik_rows(M[test], y[test], tcodes, b, sigma,
-                                         None if tau is None else np.atleast_1d(tau))
+        return pointwise_terms(M[test], y[test], _renumber(codes[test]), b, sigma,
+                               None if tau is None else np.atleast_1d(tau), "unit", rho=rho,
+                               time=None if rho is None else time[test])
+    if rho is not None:
+        ta = None if tau is None else np.atleast_1d(tau)
+        return ar1.by_draw_blocks(
+            lambda sl: ar1.holdout_logdensity(y[None, :] - b[sl] @ M.T, codes, time, test,
+                                              rho[sl], sigma[sl], None if ta is None else ta[sl]),
+            len(sigma), len(y))
     N = int(codes.max()) + 1
     train = ~test
     m = np.bincount(codes[train], minlength=N).astype(float)

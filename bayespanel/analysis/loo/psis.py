@@ -19,7 +19,6 @@ References
 from __future__ import annotations
 
 import warnings
-from collections import namedtuple
 from contextlib import contextmanager
 
 import numpy as np
@@ -28,12 +27,11 @@ from scipy.special import logsumexp
 
 from ...core import suffstats as _ss
 from ...core.errors import EstimationError, SamplingWarning, SpecificationError
-from ...core.mathcore import unit_sd_draws
-from ._draws import check_level, from_posterior, model_of
+from ._draws import check_level, from_draws, from_posterior, model_of
 from .pointwise import holdout_loglik, pointwise_loglik, undefined_reason
 from .result import LOOResult
 
-__all__ = ["loo", "kfold", "loo_subsample", "psis_arrays", "refit_draws", "RefitDraws"]
+__all__ = ["loo", "kfold", "loo_subsample", "psis_arrays", "refit_draws"]
 
 _MAX_NAMED = 8
 #: fewest draws PSIS can smooth: arviz-stats fits the Pareto tail to the largest
@@ -150,13 +148,6 @@ def _summary(elpd_i, lpd_i=None):
 
 
 # ---------------------------------------------------------------------------- refits
-class RefitDraws(namedtuple("RefitDraws", "coef sigma tau messages")):
-    """What :func:`refit_draws` returns: ``(coef, sigma, tau, messages)``, and ``rho``, the
-    draws of the AR(1) correlation of an ``errors="ar1"`` model (``None`` otherwise)."""
-
-    rho = None
-
-
 def _ar1_refit_model(fd, train, stats, rows):
     """A new model of the same class and priors on the training rows (``errors="ar1"``:
     leaving rows out changes the AR(1) link structure, so the compiled model cannot take
@@ -195,9 +186,10 @@ def _training_model(fd, train, stats, codes):
 def refit_draws(fd, train, *, what="the held-out points", **sample_kwargs):
     """Sample the same model on the training rows only.
 
-    Returns a :class:`RefitDraws` ``(coef (S, k), sigma (S,), tau (S,) or None,
-    messages)`` with chains stacked (and ``.rho`` for AR(1) errors); ``messages`` are
-    the refit's sampling warnings (R-hat, ESS, divergences).
+    Returns the refit's :class:`~bayespanel.bayes.draws.FitDraws` on the training rows
+    (units renumbered, chains stacked: ``flat()`` gives ``(coef (S, k), sigma (S,), tau
+    (S,) or None)``, ``flat_rho()`` the draws of ``rho`` for AR(1) errors); its
+    ``messages`` are the refit's sampling warnings (R-hat, ESS, divergences).
 
     The compiled graph is reused: the model's sufficient statistics are swapped with
     :meth:`~bayespanel.bayes.GaussianModel.set_suffstats` and restored afterwards, so a
@@ -226,16 +218,20 @@ def refit_draws(fd, train, *, what="the held-out points", **sample_kwargs):
     S = ds.sizes["chain"] * ds.sizes["draw"]
     b = np.asarray(ds["coef"].values, float).reshape(S, -1)
     sigma = np.asarray(ds["sigma_obs"].values, float).reshape(S)
-    tau = unit_sd_draws(fd.unit_effects, ds["sigma_unit"].values
-                        if fd.unit_effects == "random" else None, (S,))
+    tau = ds["sigma_unit"].values if fd.unit_effects == "random" else None
     msgs = [str(w.message) for w in caught if issubclass(w.category, SamplingWarning)]
     for w in caught:
         if not issubclass(w.category, SamplingWarning):
             warnings.warn(w.message, w.category, stacklevel=2)
-    out = RefitDraws(b, sigma, tau, msgs)
-    if "rho" in ds and fd.rho is not None:
-        out.rho = np.asarray(ds["rho"].values, float).reshape(S)
-    return out
+    rho = (np.asarray(ds["rho"].values, float).reshape(S) if "rho" in ds and fd.rho is not None
+           else None)
+    return from_draws(kind=fd.kind, unit_effects=fd.unit_effects, labels=fd.labels,
+                      M=fd.M[train], y=fd.y[train], codes=codes,
+                      units=np.asarray(fd.units)[np.unique(fd.codes[train])],
+                      rows=np.asarray(fd.rows)[train], coef=b, sigma=sigma, tau=tau,
+                      unit_name=fd.unit_name, time_name=fd.time_name, family=fd.family,
+                      rho=rho, ar1_time=None if rho is None else fd.ar1_time[train],
+                      messages=msgs)
 
 
 #: from this many refits on, refits default to nutpie, which compiles once per model and
@@ -263,9 +259,9 @@ def _exact_points(fd, level, points, sample_kwargs):
         test = (fd.codes == j) if level == "unit" else (np.arange(fd.n) == j)
         who = _describe_points(label.iloc[[j]], level, names=fd.names)
         refit = refit_draws(fd, ~test, what=who, **sample_kwargs)
-        b, sigma, tau, msgs = refit
-        ll = holdout_loglik(fd.M, fd.y, fd.codes, test, b, sigma, tau, level, rho=refit.rho,
-                            time=fd.ar1_time)
+        (b, sigma, tau), msgs = refit.flat(), refit.messages
+        ll = holdout_loglik(fd.M, fd.y, fd.codes, test, b, sigma, tau, level,
+                            rho=refit.flat_rho(), time=fd.ar1_time)
         values.append(float(_lpd(ll)[0]))
         if msgs:
             problems.append(f"refit without {who}: " + "; ".join(msgs))
@@ -448,9 +444,9 @@ def kfold(post, level="occasion", K=10, *, seed=0, refit_kwargs=None):
             fd, ~test,
             what=f"fold {k + 1} of {K} ({_describe_points(held, level, 4, fd.names)})",
             **refit_kwargs)
-        b, sigma, tau, msgs = refit
+        (b, sigma, tau), msgs = refit.flat(), refit.messages
         elpd_i[point_fold == k] = _lpd(holdout_loglik(fd.M, fd.y, fd.codes, test, b, sigma,
-                                                      tau, level, rho=refit.rho,
+                                                      tau, level, rho=refit.flat_rho(),
                                                       time=fd.ar1_time))
         problems += [f"fold {k + 1} of {K}: {m}" for m in msgs]
     for p in problems:

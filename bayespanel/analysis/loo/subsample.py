@@ -39,8 +39,9 @@ from ...core.ar1 import refuse_pending
 from ...core.errors import EstimationError, SpecificationError
 from ...core.mathcore import unit_sd_draws
 from ...core import gaussian
-from ._draws import FitDraws, from_posterior
-from .pointwise import ar1_pointwise, pointwise_loglik, undefined_reason
+from ...bayes.draws import FitDraws, pointwise_terms
+from ._draws import from_posterior
+from .pointwise import pointwise_loglik, undefined_reason
 
 __all__ = ["plpd", "diff_estimator", "points_for", "RowPoints", "UnitStatPoints",
            "OccasionPassPoints"]
@@ -52,12 +53,9 @@ def plpd(fd, level):
     b, sigma, tau = fd.flat()
     bm, sm = b.mean(axis=0)[None], np.array([sigma.mean()])
     tm = None if tau is None else np.array([tau.mean()])
-    if fd.rho is not None:         # AR(1) errors: the same terms at the posterior means
-        return ar1_pointwise(fd.M, fd.y, fd.codes, fd.ar1_time, bm, sm, tm,
-                             np.array([fd.flat_rho().mean()]), level)[0]
-    if level == "unit":
-        return gaussian.unit_loglik_rows(fd.M, fd.y, fd.codes, bm, sm, tm)[0]
-    return gaussian.occasion_loglik_rows(fd.M, fd.y, fd.codes, bm, sm, tm)[0]
+    rm = None if fd.rho is None else np.array([fd.flat_rho().mean()])  # AR(1) errors
+    return pointwise_terms(fd.M, fd.y, fd.codes, bm, sm, tm, level, rho=rm,
+                           time=fd.ar1_time)[0]
 
 
 def diff_estimator(elpd_s, approx_s, approx_sum, approx_sq_sum, N):
