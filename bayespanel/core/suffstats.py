@@ -237,7 +237,8 @@ def _finish(n, ref, counts, offsets, within_m2, ukeys) -> Partial:
 
 
 def partial_inplace(Z: np.ndarray, keys: np.ndarray) -> Partial:
-    """:func:`partial` computed in place: ``Z`` (float64, C-ordered) may be overwritten.
+    """:func:`partial` computed in place: ``Z`` (float64, C- or F-ordered) may be
+    overwritten.
 
     The same moments with no working copy of the block beyond ``Z`` itself (``partial``
     makes three), for passes that build ``Z`` themselves (the out-of-core engines). From
@@ -249,18 +250,21 @@ def partial_inplace(Z: np.ndarray, keys: np.ndarray) -> Partial:
     rows are centred on it, then on their unit means, before any product is taken
     (Chan, Golub and LeVeque 1979).
     """
-    if Z.dtype != np.float64 or Z.ndim != 2 or not Z.flags.c_contiguous:
-        raise ValueError("partial_inplace needs a C-ordered 2-d float64 array")
+    if Z.dtype != np.float64 or Z.ndim != 2 or not (Z.flags.c_contiguous
+                                                     or Z.flags.f_contiguous):
+        raise ValueError("partial_inplace needs a C- or F-ordered 2-d float64 array")
     n, p = Z.shape
     keys = np.asarray(keys)
     if n == 0:
         return partial(Z, keys)
+    ref = np.ascontiguousarray(Z[:4096]).mean(axis=0)  # the same in either order
     if _kernels_for(n, cold=_NUMBA_MIN_ROWS) is not None:
         # the compiled pass of compute_chunked reads the block once, in place, and leaves
-        # Z as it is; an out-of-core pass reads many blocks, so numba's start-up pays
-        ref = Z[:4096].mean(axis=0)
+        # Z as it is; an out-of-core pass reads many blocks, so numba's start-up pays.
+        # Column order (F) suits it best: it reads a unit's rows column by column
         ukeys, counts, offsets, within = _pass(Z, Z[:, :0], keys, ref, cold=_NUMBA_MIN_ROWS)
         return _finish(n, ref, counts, offsets, within, ukeys)
+    Z = np.ascontiguousarray(Z)  # the numpy version works in place on rows
     groups = sorted_groups(keys)
     if groups is not None:
         ukeys, counts, starts = groups
@@ -269,7 +273,6 @@ def partial_inplace(Z: np.ndarray, keys: np.ndarray) -> Partial:
         ukeys, codes = np.unique(keys, return_inverse=True)
         codes = codes.ravel()
         counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
-    ref = Z[:4096].mean(axis=0)
     Z -= ref
     if groups is not None:
         offsets = np.add.reduceat(Z, starts, axis=0) / counts[:, None]
@@ -298,6 +301,20 @@ _NUMBA_MIN_ROWS = 50_000
 _NUMBA_COLD_ROWS = 1_000_000
 #: None: choose as above; True: always the compiled kernels; False: always numpy
 USE_NUMBA = None
+
+
+def warm_kernels() -> bool:
+    """Load the compiled kernels of a partitioned pass now: numba's import and the cached
+    machine code of :func:`partial_inplace`'s kernels for its argument types (a few
+    rows run through them), so that the first block of a pass does not wait for it
+    while the other workers wait on the same lock. Returns whether the kernels are in
+    use (False when numba is missing or :data:`USE_NUMBA` is False)."""
+    kern = None if USE_NUMBA is False else _numba_kernels()
+    if kern is None:
+        return False
+    Z = np.zeros((8, 2))
+    _pass(Z, Z[:, :0], np.arange(8, dtype=np.int64), np.zeros(2), kern=kern)
+    return True
 
 
 def unit_scores(X, y, codes, centre, A, v, step: int = 1 << 12):
@@ -486,14 +503,14 @@ def _sorted_runs(keys, kern):
     return keys[starts], counts, starts
 
 
-def _pass(X, Y, keys, ref, cold=None):
+def _pass(X, Y, keys, ref, cold=None, kern=False):
     """``(ukeys, counts, offsets, within)`` of the rows ``[X, Y]`` grouped by ``keys``,
     about ``ref`` (rules of :mod:`~bayespanel.core.suffkernels`; numba or numpy as
     :data:`USE_NUMBA` says, ``cold`` as in
     :func:`_kernels_for`)."""
     n, k = X.shape
     p = k + Y.shape[1]
-    kern = _kernels_for(n, cold)
+    kern = _kernels_for(n, cold) if kern is False else kern
     groups = _sorted_runs(keys, kern)
     if groups is not None:
         ukeys, counts, starts = groups
@@ -504,7 +521,9 @@ def _pass(X, Y, keys, ref, cold=None):
         counts = np.bincount(codes, minlength=len(ukeys)).astype(np.int64)
     N = len(ukeys)
     if kern is not None:
-        X = np.ascontiguousarray(X, dtype=np.float64)
+        X = np.asarray(X, dtype=np.float64)
+        if not (X.flags.c_contiguous or X.flags.f_contiguous):
+            X = np.ascontiguousarray(X)  # the kernels are compiled for either order
         Y = np.ascontiguousarray(Y, dtype=np.float64)
         upper = np.zeros(p * (p + 1) // 2)
         lanes = np.empty(_LANES)

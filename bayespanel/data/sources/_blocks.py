@@ -334,16 +334,17 @@ def _plain_columns(sub: pd.DataFrame, spec: BlockSpec) -> list:
             for c in spec.plain]
 
 
-def _build_Z(sub: pd.DataFrame, spec: BlockSpec, src=None) -> np.ndarray:
-    """``[X, y]`` of the kept rows as one C-ordered float64 array (``src``: the plain
+def _build_Z(sub: pd.DataFrame, spec: BlockSpec, src=None, order="C") -> np.ndarray:
+    """``[X, y]`` of the kept rows as one float64 array in ``order`` (``src``: the plain
     columns when already converted)."""
     n, k = len(sub), len(spec.terms)
-    Z = np.empty((n, k + 1))
+    Z = np.empty((n, k + 1), order=order)
     if spec.plain is not None:
         src = _plain_columns(sub, spec) if src is None else src
-        for a in range(0, n, _FILL_ROWS):  # row blocks: each block of Z stays in cache
+        step = max(n, 1) if order == "F" else _FILL_ROWS  # C: row blocks stay in cache
+        for a in range(0, n, step):
             for j, v in enumerate(src):
-                Z[a:a + _FILL_ROWS, j] = 1.0 if v is None else v[a:a + _FILL_ROWS]
+                Z[a:a + step, j] = 1.0 if v is None else v[a:a + step]
     else:
         from formulaic import Formula
 
@@ -397,7 +398,7 @@ def _complete_fast(pdf: pd.DataFrame, spec: BlockSpec):
         if not (np.isfinite(lo) and np.isfinite(hi)):
             return None
         maxabs[j] = max(abs(lo), abs(hi))
-    Z = _build_Z(pdf, spec, src)
+    Z = _build_Z(pdf, spec, src, order="F")  # column order: copies, and the pass's best
     for j, c in enumerate(spec.plain):
         if c is None:
             maxabs[j] = 1.0 if len(Z) else 0.0

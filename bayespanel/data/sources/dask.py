@@ -80,10 +80,18 @@ def local_client(n_workers: int = 2, processes: bool = False):
         cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1,
                                processes=processes, dashboard_address=":0")
         client = Client(cluster)
-        if processes:  # import the package in each worker now, not in the first pass
-            client.run(importlib.import_module, "bayespanel.data.sources._blocks")
+        # import the package and load the compiled kernels in each worker now, not in the
+        # first pass (where the first block loads them while the others wait)
+        client.run(_warm_worker)
         _LOCAL[key] = client
     return _LOCAL[key]
+
+
+def _warm_worker() -> bool:
+    from ...core import suffstats
+
+    importlib.import_module("bayespanel.data.sources._blocks")
+    return suffstats.warm_kernels()
 
 
 def close_local_client() -> None:
