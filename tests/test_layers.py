@@ -65,7 +65,7 @@ KNOWN_UPWARD: set[tuple[str, str]] = set()
 MAX_LINES = 800
 
 # Modules over MAX_LINES today (dotted names); the set only shrinks.
-KNOWN_LONG: set[str] = {"bayespanel.core.ar1"}
+KNOWN_LONG: set[str] = set()
 
 # Private names used outside their package today: ("importer", "owner:name"), where owner
 # is the module or package that holds ``_name`` (a private module is "package:_module").
