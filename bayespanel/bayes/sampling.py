@@ -572,10 +572,12 @@ def _run_pymc(model, draws, tune, chains, seed, progress, cores, target_accept, 
         t0 = time.perf_counter()
         kwargs = {"init": "jitter+adapt_full" if _dense(model) else "jitter+adapt_diag",
                   "target_accept": target_accept}
+        kwargs["trace"] = _one_compile_trace()(model=model.pymc_model)
         if warm:  # the step (with its target_accept) and the starting points
             warm_kwargs = _pymc_warm_step(model, chains, seed, target_accept, info)
             if warm_kwargs is not None:
-                kwargs = {k: warm_kwargs[k] for k in ("step", "initvals")}
+                kwargs = {k: warm_kwargs[k] for k in ("step", "initvals")} | {
+                    "trace": kwargs["trace"]}
         with warnings.catch_warnings():
             # our own diagnostics report R-hat, ESS and divergences (Posterior.diagnostics)
             warnings.filterwarnings("ignore", message=".*overflow encountered.*")
@@ -591,6 +593,24 @@ def _run_pymc(model, draws, tune, chains, seed, progress, cores, target_accept, 
     finally:
         logger.setLevel(level)
     return dt
+
+
+def _one_compile_trace():
+    """PyMC's in-memory trace whose copies (PyMC makes one per chain from the trace it is
+    given) share the compiled function that reads a draw's values, so that function is
+    compiled once per run and not once per chain; each copy has its own arrays. (PyMC's
+    own copy would share the arrays too, so its trace cannot be passed as it is.)"""
+    from pymc.backends.ndarray import NDArray
+
+    class OneCompileTrace(NDArray):
+        def __copy__(self):
+            new = type(self).__new__(type(self))
+            new.__dict__.update(self.__dict__)
+            new.samples, new._stats, new.draw_idx, new.draws = {}, None, 0, None
+            new.chain, new._is_base_setup, new.sampler_vars = None, False, None
+            return new
+
+    return OneCompileTrace
 
 
 def _pymc_warm_step(model, chains, seed, target_accept, info):
