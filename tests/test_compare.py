@@ -99,6 +99,21 @@ def test_unit_level_lists_fixed_effects_with_the_reason(fits):
     assert "new unit" in tab.loc["FE", "note"]
     assert tab["n_points"].iloc[0] == models["RE (SA)"].n_units
     assert tab.loc["RE (SA)", "method"] == "exact CV"
+    # the table's record is the results.json comparison record (its schema, jsonschema)
+    from bayespanel.report.results_json import schema
+
+    import jsonschema
+
+    rec = tab.to_record({"FE": "fixed effects (ref.)"}, reference_folds=None)
+    assert rec["level"] == "unit" and [r["model"] for r in rec["rows"]] == list(tab.index)
+    by = {r["model"]: r for r in rec["rows"]}
+    assert by["FE"]["title"] == "fixed effects (ref.)" and by["FE"]["elpd"] is None
+    assert {n: by[n]["kind"] for n in ("RE (Bayes)", "RE (SA)", "FE")} == {
+        "RE (Bayes)": "bayesian", "RE (SA)": "reference", "FE": "reference"}
+    assert by["RE (SA)"]["elpd"] == tab.loc["RE (SA)", "elpd"]
+    row_schema = {**schema()["$defs"]["comparison_row"], "$defs": schema()["$defs"]}
+    for r in rec["rows"]:
+        jsonschema.validate(r, row_schema)
 
 
 def test_compare_refuses_different_rows_and_bad_options(fits, grunfeld):

@@ -12,6 +12,7 @@ Outside sources, named beside each check:
   density vanishes at zero; Chung et al. 2013, Psychometrika 78), against the half-normal.
 """
 
+import json
 import warnings
 
 import numpy as np
@@ -178,6 +179,14 @@ def test_unit_sd_presets_side_by_side(weak_unit_model):
     lo = part.xs("lower", axis=1, level=1).loc["unit SD"]
     assert lo["gamma2"] > lo["half_normal"]
     assert cmp.summary().startswith("Refits under 2 unit-SD priors")
+    rec = cmp.to_record()   # the same numbers as the tables, one record per preset and row
+    assert rec["presets"] == ["half_normal", "gamma2"] and rec["flags"] == cmp.flags()
+    got = {(r["preset"], r["quantity"]): r for r in rec["partition"]}
+    assert got[("gamma2", "unit SD")]["lower"] == lo["gamma2"]
+    co = cmp.coefficients()
+    est = {(r["preset"], r["term"]): r["estimate"] for r in rec["coefficients"]}
+    assert est == {(p, t): co.at[t, (p, "mean")] for p in rec["presets"] for t in co.index}
+    json.dumps(rec, allow_nan=False)
     tab, fig = S.sensitivity_section(cmp.posteriors["half_normal"], cmp)
     assert "Power-scaling sensitivity" in tab.attrs["summary"]
     import matplotlib.pyplot as plt

@@ -41,13 +41,50 @@ import pandas as pd
 
 from .. import kinds
 from ..core.errors import EstimationError, SpecificationError
+from ..core.jsonsafe import json_record
 from ..data.resultshape import check_prob, leading_columns
 from .loo import LOOResult, check_level, loo, outcome_measure, reference_cv
 
-__all__ = ["compare", "coef_table", "equivalence_classes", "methods_note", "COMPARE_COLUMNS"]
+__all__ = ["compare", "coef_table", "equivalence_classes", "methods_note", "COMPARE_COLUMNS",
+           "ComparisonTable"]
 
 COMPARE_COLUMNS = ["elpd", "se", "elpd_diff", "se_diff", "p_loo", "weight", "method",
                    "level", "n_points", "n_high_pareto_k", "equivalent_to", "note"]
+
+
+class ComparisonTable(pd.DataFrame):
+    """What :func:`compare` returns: a table with one row per model (columns
+    :data:`COMPARE_COLUMNS`; ``attrs``: ``level``, ``n_points``, ``n_points_all``,
+    ``equivalent``, ``methods_note`` and ``kinds``, ``"bayes"`` or ``"reference"`` by
+    model) and its record in ``results.json`` (:meth:`to_record`)."""
+
+    @property
+    def _constructor(self):
+        return ComparisonTable
+
+    def to_record(self, titles: dict | None = None, reference_folds=None) -> dict:
+        """The ``comparison`` record of ``results.json`` (docs/results-schema.md):
+        ``level``, ``reference_folds``, ``rows`` (every column of the table with the
+        model's name as ``model``, its ``title`` from ``titles`` (default the name),
+        ``kind`` ``"bayesian"`` or ``"reference"``; a note on equivalent models names their
+        titles), ``methods_note`` and ``equivalent``. Non-finite numbers are ``None``."""
+        titles = dict(titles or {})
+        kinds_of = self.attrs.get("kinds", {})
+        rows = []
+        for key, r in self.iterrows():
+            rec = json_record({str(k): v for k, v in r.items()})
+            rec["model"] = str(key)
+            rec["title"] = titles.get(str(key), str(key))
+            if rec.get("equivalent_to") and rec.get("note"):  # titles, not internal names
+                names = rec["equivalent_to"].split(", ")
+                rec["note"] = rec["note"].replace(
+                    f"equivalent to {rec['equivalent_to']} (",
+                    f"equivalent to {', '.join(titles.get(n, n) for n in names)} (", 1)
+            rec["kind"] = "reference" if kinds_of.get(key) == "reference" else "bayesian"
+            rows.append(rec)
+        return {"level": self.attrs.get("level"), "reference_folds": reference_folds,
+                "rows": rows, "methods_note": self.attrs.get("methods_note") or None,
+                "equivalent": self.attrs.get("equivalent", [])}
 
 
 def _is_posterior(obj) -> bool:
@@ -320,7 +357,7 @@ def _restrict(r: LOOResult, common) -> np.ndarray:
 
 
 def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed: int = 0,
-            loo_kwargs=None, equivalent=None, progress=None) -> pd.DataFrame:
+            loo_kwargs=None, equivalent=None, progress=None) -> ComparisonTable:
     """Compare Bayesian posteriors and reference fits by LOO at one level.
 
     Parameters
@@ -353,8 +390,9 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
 
     Returns
     -------
-    pandas.DataFrame
-        Indexed by model name, best first, with columns ``elpd``, ``se``, ``elpd_diff``
+    ComparisonTable
+        A pandas DataFrame (with :meth:`ComparisonTable.to_record`, the ``comparison``
+        record of results.json) indexed by model name, best first, with columns ``elpd``, ``se``, ``elpd_diff``
         (model minus best), ``se_diff`` (from the paired pointwise differences),
         ``p_loo`` (Bayesian only), ``weight`` (stacking over classes of equivalent
         models, Bayesian only), ``method`` (``"PSIS-LOO"``, ``"exact CV"``, ...),
@@ -363,8 +401,9 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
         ``note``. Models for which the level is undefined (fixed effects at the unit
         level) come last with ``nan`` values and the reason in ``note``. Only plain
         floats, ints and strings, so ``to_json`` works. ``attrs`` hold ``level``,
-        ``n_points``, ``n_points_all``, ``equivalent`` (the classes) and
-        ``methods_note`` (:func:`methods_note`, "" unless methods are mixed).
+        ``n_points``, ``n_points_all``, ``equivalent`` (the classes),
+        ``methods_note`` (:func:`methods_note`, "" unless methods are mixed) and
+        ``kinds`` (``"bayes"`` or ``"reference"`` by model).
 
     Raises
     ------
@@ -445,15 +484,16 @@ def compare(models: dict, level: str = "occasion", *, reference_folds=None, seed
                 name, cls, values, rows[name]["kind"] == "bayes", weights), rows[name]["note"])
                 if x)
     names = order + [n for n in models if n not in defined]
-    out = pd.DataFrame([rows[n] for n in names], index=pd.Index(names, name="model"))
-    out = out[COMPARE_COLUMNS]
+    out = ComparisonTable(pd.DataFrame([rows[n] for n in names],
+                                       index=pd.Index(names, name="model"))[COMPARE_COLUMNS])
     for c in ("elpd", "se", "elpd_diff", "se_diff", "p_loo", "weight"):
         out[c] = out[c].astype(float)
     for c in ("n_points", "n_high_pareto_k"):
         out[c] = out[c].astype(int)
     out.attrs.update(level=level, n_points=len(common), n_points_all=n_all,
                      equivalent=[list(c) for c in classes],
-                     methods_note=methods_note(out["method"].tolist()))
+                     methods_note=methods_note(out["method"].tolist()),
+                     kinds={n: rows[n]["kind"] for n in names})
     return out
 
 
@@ -495,7 +535,7 @@ def _same_design(models):
                 "only be compared on the same rows")
 
 
-def _compare_subsampled(models, level, seed, loo_kwargs) -> pd.DataFrame:
+def _compare_subsampled(models, level, seed, loo_kwargs) -> ComparisonTable:
     """:func:`compare` with sub-sampled LOO (Magnusson et al. 2019).
 
     Every posterior is scored by :func:`bayespanel.analysis.loo.loo_subsample` with the same seed,
@@ -555,14 +595,16 @@ def _compare_subsampled(models, level, seed, loo_kwargs) -> pd.DataFrame:
                        f"{len(d)} sampled points shared with the best model")
         rows.append(rec)
     names = order + [n for n in models if n not in scored]
-    out = pd.DataFrame(rows, index=pd.Index(names, name="model"))[COMPARE_COLUMNS]
+    out = ComparisonTable(pd.DataFrame(rows, index=pd.Index(names, name="model"))[COMPARE_COLUMNS])
     for c in ("elpd", "se", "elpd_diff", "se_diff", "p_loo", "weight"):
         out[c] = out[c].astype(float)
     for c in ("n_points", "n_high_pareto_k"):
         out[c] = out[c].astype(int)
     out.attrs.update(level=level, n_points=max(r.n_points for r in scored.values()),
                      n_points_all=max(r.n_points for r in scored.values()), equivalent=[],
-                     methods_note=methods_note(out["method"].tolist()))
+                     methods_note=methods_note(out["method"].tolist()),
+                     kinds={n: "reference" if _is_reference(models[n]) else "bayes"
+                            for n in names})
     return out
 
 

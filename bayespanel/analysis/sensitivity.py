@@ -38,6 +38,7 @@ import pandas as pd
 
 from .contrasts import contrast_rows
 from ..core.errors import SpecificationError, choices_error
+from ..core.jsonsafe import json_record
 from ..data.resultshape import check_prob
 from ..core.safetext import LITERAL_RC, literal
 
@@ -304,6 +305,26 @@ class PresetComparison:
                              f"({med.idxmin()}) to {hi:.3g} ({med.idxmax()}) across unit-SD "
                              "priors: the data do not pin it down; report it with the prior.")
         return notes
+
+    def to_record(self) -> dict:
+        """The record of the comparison (the shape of ``results.json``'s records: one key
+        per quantity, non-finite numbers ``None``): ``presets``, ``interval`` (the
+        probability of the intervals), ``partition`` (per preset and quantity: posterior
+        ``median``, ``lower``, ``upper``), ``coefficients`` (per preset and term, contrast
+        or variance component: the posterior mean as ``estimate``, ``lower``, ``upper``)
+        and ``flags`` (:meth:`flags`)."""
+        part, co = self.partition(), self.coefficients()
+
+        def records(tab, key, cols, rename=None):
+            return [json_record({"preset": p, key: q, **{(rename or {}).get(c, c):
+                                                         tab.at[q, (p, c)] for c in cols}})
+                    for p in self.posteriors for q in tab.index]
+
+        return {"presets": list(self.posteriors), "interval": self.prob,
+                "partition": records(part, "quantity", ("median", "lower", "upper")),
+                "coefficients": records(co, "term", ("mean", "lower", "upper"),
+                                        {"mean": "estimate"}),
+                "flags": self.flags()}
 
     def summary(self) -> str:
         flags = self.flags()

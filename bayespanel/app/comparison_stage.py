@@ -157,22 +157,8 @@ def comparison_stage(settings, design, posts, ref_fits, entries, say, failed=Non
         classes = equivalence_classes(models)
         table = compare(fits, level=settings.level, reference_folds=folds, seed=settings.seed,
                         equivalent=classes, progress=say)
-    rows = []
-    for key, r in table.iterrows():
-        rec = json_record({str(k): v for k, v in r.items()})
-        rec["model"] = str(key)
-        rec["title"] = titles.get(str(key), str(key))
-        if rec.get("equivalent_to") and rec.get("note"):  # titles, not internal names
-            names = rec["equivalent_to"].split(", ")
-            rec["note"] = rec["note"].replace(
-                f"equivalent to {rec['equivalent_to']} (",
-                f"equivalent to {', '.join(titles.get(n, n) for n in names)} (", 1)
-        rec["kind"] = "reference" if str(key).startswith("ref:") else "bayesian"
-        rows.append(rec)
-    say(f"LOO comparison done: {len(rows)} fits")
-    out = {"level": settings.level, "reference_folds": folds, "rows": rows,
-           "methods_note": table.attrs.get("methods_note") or None,
-           "equivalent": table.attrs.get("equivalent", [])}
+    out = table.to_record(titles, reference_folds=folds)
+    say(f"LOO comparison done: {len(out['rows'])} fits")
     if settings.glm_reference and ref_fits:
         out["note"] = ("the reference GLMs are not scored: they have no cross-validation "
                        "here, and a pooled GLM's plug-in density would not predict a known "
