@@ -51,6 +51,7 @@ References
 from __future__ import annotations
 
 import dataclasses
+import functools
 import importlib.util
 import logging
 import os
@@ -652,6 +653,7 @@ def _pymc_warm_step(model, chains, seed, target_accept, info):
     return {"step": step, "initvals": initvals, "starts": starts}
 
 
+@functools.cache
 def _trtrs():
     from scipy.linalg import lapack
 
