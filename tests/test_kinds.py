@@ -286,9 +286,10 @@ def test_true_coefficients_are_what_least_squares_finds_on_noiseless_data(column
     df["y"] = y
     design = bp.Panel(df, unit="unit", time="time").design("y ~ x + z + r")
     M, labels = design.matrices(columns)
-    target = design.y if columns != "between" else design.y_unit_means()
+    ybar = np.bincount(design.unit_codes, weights=design.y) / design.T   # unit means of y
+    target = design.y if columns != "between" else ybar
     if columns == "within":
-        target = design.y_within()
+        target = design.y - ybar[design.unit_codes]
     ols = sm_ols(target, M)
     cmap = kinds.column_map(columns)
     truth = cmap.true_coefficients(w, b, c, intercept)

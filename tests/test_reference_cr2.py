@@ -187,7 +187,8 @@ def test_cr2_from_per_unit_blocks_equals_rows(grunfeld):
     res = bp.reference.within(panel, "invest ~ value + capital", cov="cr2")
     d = res.design
     Xw = d.within()[:, 1:]
-    e = d.y_within() - Xw @ res.coef.to_numpy()
+    y_within = d.y - (np.bincount(d.unit_codes, weights=d.y) / d.T)[d.unit_codes]
+    e = y_within - Xw @ res.coef.to_numpy()
     G = d.n_units
     S = np.stack([Xw[d.unit_codes == g].T @ Xw[d.unit_codes == g] for g in range(G)])
     s = np.stack([Xw[d.unit_codes == g].T @ e[d.unit_codes == g] for g in range(G)])

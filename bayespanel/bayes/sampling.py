@@ -726,7 +726,7 @@ def _run_nutpie(model, draws, tune, chains, seed, progress, cores, target_accept
     values = {v.name: v.get_value() for v in model.pymc_model.data_vars if v.name in known}
     compiled = model._nutpie.with_data(**values)
     if warm:
-        compiled = _nutpie_warm(compiled, model, seed, info)
+        compiled = _nutpie_warm(compiled, seed, info)
     t1 = time.perf_counter()
     dt = nutpie.sample(compiled, draws=draws, tune=max(tune, 1), chains=chains, cores=cores,
                        seed=seed, progress_bar=progress, target_accept=target_accept,
@@ -739,7 +739,7 @@ def _run_nutpie(model, draws, tune, chains, seed, progress, cores, target_accept
     return dt
 
 
-def _nutpie_warm(compiled, model, seed, info):
+def _nutpie_warm(compiled, seed, info):
     """The compiled nutpie model with its chains started from the Laplace approximation:
     nutpie asks ``initial_point_func(seed)`` for each chain's (flat, unconstrained) start.
     The log density is nutpie's own compiled one (its C entry point, with the data of

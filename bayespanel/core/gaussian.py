@@ -67,7 +67,7 @@ def residual_vector(b, xp=np):
     return xp.concatenate([-b, ones], axis=-1)
 
 
-def quad_terms(v, within, group_cp, group_mean, group_count, xp=np):
+def quad_terms(v, within, group_cp, group_mean, group_count):
     """Residual sums of squares from the sufficient statistics.
 
     Parameters
@@ -133,7 +133,7 @@ def marginal_loglik(v, within, group_cp, group_mean, group_count, lengths, sigma
 
     ``v`` may carry leading draw axes (numpy); ``sigma`` and ``tau`` then have those axes.
     """
-    W, S = quad_terms(v, within, group_cp, group_mean, group_count, xp=xp)
+    W, S = quad_terms(v, within, group_cp, group_mean, group_count)
     sig = sigma[..., None] if getattr(sigma, "ndim", 0) else sigma
     ta = tau[..., None] if getattr(tau, "ndim", 0) else tau
     per_group = marginal_logdensity(lengths, 0.0, S, sig, ta, count=group_count, xp=xp)

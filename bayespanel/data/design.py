@@ -256,14 +256,6 @@ class Design:
             self._cache["unit_labels"] = tuple(self.units)
         return self._cache["unit_labels"]
 
-    def y_unit_means(self) -> np.ndarray:
-        if not self.has_rows:
-            return self._stats.unit_mean[:, -1].copy()
-        return group_means(self.y, self.starts, self.T)
-
-    def y_within(self) -> np.ndarray:
-        return self.y - self.y_unit_means()[self.unit_codes]
-
     def unit_cross_products(self, kind: str = "random") -> np.ndarray:
         """Per-unit within cross-products of ``[M, y]`` (N x p x p), in unit order, with
         ``M`` the columns of ``kind`` (from those of ``[X, y]``, which the source gives:
@@ -476,7 +468,8 @@ class Design:
         ``lag(x)`` and ``lag(x, k)`` are made columns first (:mod:`bayespanel.data.lags`).
         When the formula lags the outcome and ``initial_conditions`` is True (the
         default), the design carries the initial-conditions columns of Wooldridge (2005)
-        (:func:`bayespanel.data.initial.apply`); False leaves them out, with a warning.
+        (:func:`bayespanel.data.initial.columns`, through :meth:`with_initial_conditions`);
+        False leaves them out, with a warning.
 
         Reads only the columns the formula uses, in the panel's (unit, occasion) order.
         Plain numeric terms and the intercept are written column by column into one
