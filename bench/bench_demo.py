@@ -14,13 +14,15 @@ find their compiled code); then the timed runs alternate old, new, old, new, ...
 that a change of the machine's load during the run hits both sides alike. Prints the
 wall-clock seconds of each run, the ratio new / old of the medians (target: at most 0.5)
 and the load average at the start and end (the machine is shared: the ratio is the
-figure to read).
+figure to read), and the same for the CPU seconds (user + system) of each run, which
+other work on the machine inflates less than the wall clock.
 """
 
 from __future__ import annotations
 
 import argparse
 import os
+import resource
 import shutil
 import statistics
 import subprocess
@@ -47,20 +49,28 @@ def extract(ref: str, into: Path) -> Path:
     return into
 
 
-def run_demo(tree: Path, out: Path, env: dict) -> float:
-    """Wall-clock seconds of one ``python -m bayespanel demo`` with ``tree`` first on the
-    path, in a fresh process."""
+def _child_cpu() -> float:
+    u = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return u.ru_utime + u.ru_stime
+
+
+def run_demo(tree: Path, out: Path, env: dict) -> tuple[float, float]:
+    """Wall-clock seconds and CPU seconds (user + system, the process and its children)
+    of one ``python -m bayespanel demo`` with ``tree`` first on the path, in a fresh
+    process."""
     shutil.rmtree(out, ignore_errors=True)
     full = dict(os.environ, **env, PYTHONPATH=str(tree))
+    c0 = _child_cpu()
     t0 = time.perf_counter()
     proc = subprocess.run([sys.executable, "-m", "bayespanel", "demo", "--out", str(out),
                            "--quiet"], env=full, capture_output=True, text=True)
     seconds = time.perf_counter() - t0
+    cpu = _child_cpu() - c0
     if proc.returncode not in (0, 1):  # 1: a sampling problem reported, still a full run
         raise RuntimeError(f"demo failed in {tree}:\n{proc.stderr[-2000:]}")
     if not (out / "report.html").exists():
         raise RuntimeError(f"demo in {tree} wrote no report:\n{proc.stderr[-2000:]}")
-    return seconds
+    return seconds, cpu
 
 
 def main(argv=None) -> int:
@@ -76,23 +86,30 @@ def main(argv=None) -> int:
         print(f"# bench_demo: {os.cpu_count()} CPUs; load average at start {_load()}; old "
               f"= {args.baseline}, new = {ROOT}", flush=True)
         for name, tree in sides.items():
-            s = run_demo(tree, tmp / f"out_{name}", env)
-            print(f"  warm-up {name}: {s:.1f} s", flush=True)
+            s, c = run_demo(tree, tmp / f"out_{name}", env)
+            print(f"  warm-up {name}: {s:.1f} s, CPU {c:.1f} s", flush=True)
         times = {"old": [], "new": []}
+        cpus = {"old": [], "new": []}
         for r in range(args.repeat):
             for name, tree in sides.items():
-                s = run_demo(tree, tmp / f"out_{name}", env)
+                s, c = run_demo(tree, tmp / f"out_{name}", env)
                 times[name].append(s)
-                print(f"  run {r + 1} {name}: {s:.1f} s (load {_load()})", flush=True)
+                cpus[name].append(c)
+                print(f"  run {r + 1} {name}: {s:.1f} s, CPU {c:.1f} s (load {_load()})",
+                      flush=True)
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
     old_s, new_s = statistics.median(times["old"]), statistics.median(times["new"])
+    old_c, new_c = statistics.median(cpus["old"]), statistics.median(cpus["new"])
     print(f"\n# load average at end {_load()} (other work on the machine inflates wall-clock "
           "times)")
     print("\n# ratios (all measured in this run)")
     print(f"  {'demo end to end, new / old (median of ' + str(args.repeat) + ')':<60} "
           f"{new_s / old_s:8.2f}   target <= 0.5 (issue 18, item 6)")
     print(f"  {'demo seconds: old, new':<60} {old_s:8.1f} {new_s:8.1f}")
+    print(f"  {'demo CPU seconds, new / old (median; load inflates it less)':<60} "
+          f"{new_c / old_c:8.2f}")
+    print(f"  {'demo CPU seconds: old, new':<60} {old_c:8.1f} {new_c:8.1f}")
     return 0
 
 
