@@ -1,12 +1,19 @@
 """A posterior's loo() reaches the analysis layer through a declared provider
 (bayespanel.core.providers), not through an import of a higher layer
-(tests/test_layers.py holds the import rule)."""
+(tests/test_layers.py holds the import rule).
+
+Outside check: on statsmodels' Grunfeld panel, ``post.loo("unit")`` reached through the
+provider equals arviz_stats.loo (PSIS-LOO) applied to unit log-likelihoods written with
+scipy.stats.multivariate_normal from the same posterior draws (each firm's rows jointly
+normal with covariance sigma_obs^2 I + sigma_unit^2 J, the random-intercept marginal).
+"""
 
 from __future__ import annotations
 
 import ast
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 import bayespanel
@@ -70,3 +77,35 @@ def test_posterior_loo_calls_the_declared_provider(fake_provider, cls):
     assert CALLS == [(post, "unit", {"reff": 0.5})]
     assert method(post) == "scored"          # the default level stays "occasion"
     assert CALLS[-1] == (post, "occasion", {})
+
+
+def test_posterior_loo_equals_arviz_psis_on_scipy_densities(grunfeld):
+    import arviz_stats
+    import xarray as xr
+    from scipy import stats
+
+    panel = bayespanel.Panel(grunfeld, unit="firm", time="year")
+    design = panel.design("invest ~ value + capital")
+    post = bayespanel.RandomIntercept(panel, "invest ~ value + capital").sample(
+        draws=100, tune=150, chains=2, seed=5, progress=False)
+    ours = post.loo("unit", reff=1.0)            # through the declared provider
+    b, sigma, tau = post.draws("coef"), post.draws("sigma_obs"), post.draws("sigma_unit")
+    C, D = sigma.shape
+    ll = np.empty((C, D, design.n_units))
+    for i in range(design.n_units):
+        rows = design.unit_codes == i
+        X, y, T = design.X[rows], design.y[rows], int(rows.sum())
+        for c in range(C):
+            for d in range(D):
+                # scipy.stats.multivariate_normal: the firm's rows jointly, intercept
+                # integrated out
+                cov = sigma[c, d] ** 2 * np.eye(T) + tau[c, d] ** 2 * np.ones((T, T))
+                ll[c, d, i] = stats.multivariate_normal(X @ b[c, d], cov).logpdf(y)
+    dt = xr.DataTree.from_dict({
+        "posterior": xr.DataTree(xr.Dataset({"sigma_obs": (("chain", "draw"), sigma)})),
+        "log_likelihood": xr.DataTree(xr.Dataset({"y": (("chain", "draw", "unit"), ll)})),
+        "observed_data": xr.DataTree(xr.Dataset({"y": (("unit",), np.zeros(design.n_units))}))})
+    theirs = arviz_stats.loo(dt, var_name="y", pointwise=True, reff=1.0)  # arviz_stats PSIS
+    np.testing.assert_allclose(ours.elpd_i, np.asarray(theirs.elpd_i), rtol=1e-6)
+    assert ours.elpd == pytest.approx(float(theirs.elpd), rel=1e-6)
+    assert ours.p_loo == pytest.approx(float(theirs.p), rel=1e-5)
