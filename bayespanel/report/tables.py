@@ -217,7 +217,7 @@ COLUMN_KINDS = {
     "n_points": "count", "n_high_pareto_k": "count", "max_k": "pareto_k",
     "divergences": "count", "draws": "count", "max_rhat": "rhat", "min_ess_bulk": "count",
     "min_ess_tail": "count", "min_bfmi": "bfmi", "seconds": "plain",
-    "n": "count", "share_within": "share", "varies_within": "text",
+    "n": "count", "n_missing": "count", "share_within": "share", "varies_within": "text",
 }
 
 
