@@ -28,6 +28,7 @@ import pandas as pd
 from ...core import suffstats
 from ...core.errors import PanelDataError
 from . import _merge
+from ._parquet import ArrowPiece, as_frame
 
 __all__ = ["StructurePiece", "DesignPiece"]
 
@@ -84,9 +85,30 @@ def _words(n_occasions):
 
 def structure_block(pdf, unit, time) -> StructurePiece:
     """Units, row counts and occasion masks of one partition (refuses missing ids)."""
-    _check_ids(pdf, unit, time)
-    keys = pdf[unit].to_numpy()
-    tvals = pdf[time].to_numpy()
+    ids = _numbers(pdf, (unit, time))
+    if ids is None:
+        pdf = as_frame(pdf)
+        _check_ids(pdf, unit, time)
+        ids = pdf[unit].to_numpy(), pdf[time].to_numpy()
+    return _structure(*ids)
+
+
+def _numbers(piece, columns):
+    """The columns of an :class:`ArrowPiece` as numpy arrays when all are numbers without
+    missing values; else None (a pandas partition, or a column that needs pandas)."""
+    if not isinstance(piece, ArrowPiece):
+        return None
+    out = []
+    for c in columns:
+        v = piece.numbers(c)
+        if v is None:
+            return None
+        out.append(v)
+    return out
+
+
+def _structure(keys, tvals) -> StructurePiece:
+    """Units, row counts and occasion masks of the id arrays of one partition."""
     occ = _sorted_unique(tvals, "occasions")
     masks = np.zeros((0, _words(len(occ))), dtype=np.uint64)
     if len(keys) == 0:
@@ -238,15 +260,18 @@ class DescribePiece:
 def describe_block(pdf, unit, columns, time=None) -> DescribePiece:
     """Per-column moments of one partition (and its structure when ``time`` is given)."""
     st = None if time is None else structure_block(pdf, unit, time)
-    keys = pdf[unit].to_numpy()
+    fast = _numbers(pdf, [unit] + list(columns))  # numbers read as arrays: no pandas
+    if fast is None:
+        pdf = as_frame(pdf)
+    keys = fast[0] if fast else pdf[unit].to_numpy()
     n_missing, maxabs, complete, groups = [], [], [], []
     X = np.empty((len(pdf), len(columns)))
     for j, c in enumerate(columns):
         x = X[:, j]
-        x[:] = pdf[c].to_numpy(dtype=float, na_value=np.nan)
+        x[:] = fast[j + 1] if fast else pdf[c].to_numpy(dtype=float, na_value=np.nan)
         ok = ~np.isnan(x)
         if np.isinf(x).any():
-            _check_inf(x[ok], pdf.loc[ok], c, unit)
+            _check_inf(x[ok], as_frame(pdf).loc[ok], c, unit)
         n_missing.append(int((~ok).sum()))
         maxabs.append(float(np.abs(x[ok]).max()) if ok.any() else 0.0)
         if ok.all():
@@ -328,13 +353,28 @@ class DesignPiece:
     structure: StructurePiece | None = None
 
 
-def _plain_columns(sub: pd.DataFrame, spec: BlockSpec) -> list:
-    """The plain covariate columns as float64 arrays (``None`` for the intercept)."""
-    return [None if c is None else sub[c].to_numpy(dtype=float, na_value=np.nan)
-            for c in spec.plain]
+def _plain_columns(sub, spec: BlockSpec) -> list:
+    """The plain covariate columns as arrays of numbers (``None`` for the intercept)."""
+    return [None if c is None else _floats(sub, c) for c in spec.plain]
 
 
-def _build_Z(sub: pd.DataFrame, spec: BlockSpec, src=None, order="C") -> np.ndarray:
+def _floats(sub, c) -> np.ndarray:
+    """Column ``c`` as numbers (float64, missing values as NaN; an :class:`ArrowPiece`'s
+    complete numeric columns as they are, which convert to the same float64 values)."""
+    if isinstance(sub, ArrowPiece):
+        v = sub.numbers(c)
+        if v is not None:
+            return v
+    return as_frame(sub)[c].to_numpy(dtype=float, na_value=np.nan)
+
+
+def _values(sub, c) -> np.ndarray:
+    """Column ``c`` as a numpy array (an :class:`ArrowPiece`'s numbers without pandas)."""
+    v = sub.numbers(c) if isinstance(sub, ArrowPiece) else None
+    return as_frame(sub)[c].to_numpy() if v is None else v
+
+
+def _build_Z(sub, spec: BlockSpec, src=None, order="C") -> np.ndarray:
     """``[X, y]`` of the kept rows as one float64 array in ``order`` (``src``: the plain
     columns when already converted)."""
     n, k = len(sub), len(spec.terms)
@@ -351,7 +391,7 @@ def _build_Z(sub: pd.DataFrame, spec: BlockSpec, src=None, order="C") -> np.ndar
         from ..formula import safe_context
 
         mm = Formula(spec.rhs).get_model_matrix(
-            sub.reset_index(drop=True), context=safe_context(), ensure_full_rank=False,
+            as_frame(sub).reset_index(drop=True), context=safe_context(), ensure_full_rank=False,
             na_action="raise")
         got = [str(c) for c in mm.columns]
         if got != list(spec.terms[:len(got)]) or len(got) + len(spec.occasions) != k:
@@ -359,16 +399,16 @@ def _build_Z(sub: pd.DataFrame, spec: BlockSpec, src=None, order="C") -> np.ndar
                                  f"{list(spec.terms)}")
         Z[:, :len(got)] = np.asarray(mm, dtype=float)
     if spec.occasions:
-        tv = sub[spec.time].to_numpy()
+        tv = _values(sub, spec.time)
         k0 = k - len(spec.occasions)
         for j, o in enumerate(spec.occasions):
             Z[:, k0 + j] = tv == o
     if spec.outcome_expr is None:
-        Z[:, k] = sub[spec.outcome].to_numpy(dtype=float, na_value=np.nan)
+        Z[:, k] = _floats(sub, spec.outcome)
     else:
         from ..formula import outcome_values
 
-        Z[:, k] = outcome_values(spec.outcome_expr, sub)
+        Z[:, k] = outcome_values(spec.outcome_expr, as_frame(sub))
     return Z
 
 
@@ -376,7 +416,7 @@ def _build_Z(sub: pd.DataFrame, spec: BlockSpec, src=None, order="C") -> np.ndar
 _FILL_ROWS = 8192
 
 
-def _complete_fast(pdf: pd.DataFrame, spec: BlockSpec):
+def _complete_fast(pdf, spec: BlockSpec):
     """``(Z, maxabs)`` of a partition whose used columns are all columns of ``[X, y]`` as
     they are (no transform) and all complete and finite, checked by each column's minimum
     and maximum before the columns are interleaved into ``Z``; None when the partition
@@ -387,7 +427,7 @@ def _complete_fast(pdf: pd.DataFrame, spec: BlockSpec):
     if not set(spec.used) <= {c for c in spec.plain if c is not None} | {spec.outcome}:
         return None
     src = _plain_columns(pdf, spec)
-    y = pdf[spec.outcome].to_numpy(dtype=float, na_value=np.nan)
+    y = _floats(pdf, spec.outcome)
     # each column's range in one contiguous sweep (numpy's vectorised min and max, which
     # carry a NaN or an infinity into lo or hi) before the columns are interleaved
     maxabs = np.empty(len(src) + len(spec.occasions) + 1)
@@ -408,10 +448,11 @@ def _complete_fast(pdf: pd.DataFrame, spec: BlockSpec):
     return Z, maxabs
 
 
-def complete_rows(pdf: pd.DataFrame, spec: BlockSpec):
+def complete_rows(pdf, spec: BlockSpec):
     """Listwise deletion and ``[X, y]`` of one partition: ``(sub, keep, missing, Z)`` with
-    the kept rows ``sub``, the mask ``keep``, missing values per used column, and ``Z``
-    (one C-ordered float64 array); refuses infinite or non-finite covariates."""
+    the kept rows ``sub`` (pandas), the mask ``keep``, missing values per used column, and
+    ``Z`` (one C-ordered float64 array); refuses infinite or non-finite covariates."""
+    pdf = as_frame(pdf)
     used = list(spec.used)
     miss = pdf[used].isna().to_numpy() if used else np.zeros((len(pdf), 0), bool)
     missing = miss.sum(axis=0).astype(np.int64)
@@ -437,7 +478,7 @@ def complete_rows(pdf: pd.DataFrame, spec: BlockSpec):
     return sub, keep, missing, Z
 
 
-def rows_block(pdf: pd.DataFrame, spec: BlockSpec, columns, block, shared=None):
+def rows_block(pdf, spec: BlockSpec, columns, block, shared=None):
     """``block(rows, shared)`` on the complete rows of one partition, as a
     :class:`~bayespanel.data.sources.RowBlock` in the design's kept ``columns`` of ``[X, y]``
     (all when ``None``)."""
@@ -450,7 +491,7 @@ def rows_block(pdf: pd.DataFrame, spec: BlockSpec, columns, block, shared=None):
                           Z=Z), shared)
 
 
-def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
+def design_block(pdf, spec: BlockSpec) -> DesignPiece:
     """Rows of one partition: listwise deletion, ``[X, y]``, its :class:`Partial` (and the
     partition's structure, over all its rows, when ``spec.structure``)."""
     st = structure_block(pdf, spec.unit, spec.time) if spec.structure else None
@@ -462,7 +503,7 @@ def design_block(pdf: pd.DataFrame, spec: BlockSpec) -> DesignPiece:
         sub, keep, missing, Z = complete_rows(pdf, spec)
         maxabs = np.abs(Z).max(axis=0) if len(Z) else np.zeros(Z.shape[1])
         n_dropped = int((~keep).sum())
-    keys = sub[spec.unit].to_numpy()
+    keys = _values(sub, spec.unit)
     Zrows = Z.copy() if spec.unit_cp else None
     part = suffstats.partial_inplace(Z, keys)
     if st is not None and n_dropped == 0 and len(st.keys) == len(part.keys):
@@ -509,3 +550,7 @@ def _shares_units(piece: DesignPiece) -> bool:
     if part.n == 0:
         return st.n_rows == 0
     return st.keys is part.keys and st.counts is part.counts
+
+
+#: the blocks that take an :class:`ArrowPiece` as it is (the others get pandas)
+ARROW_BLOCKS = (structure_block, describe_block, design_block, rows_block)

@@ -52,6 +52,7 @@ from ...core.errors import (DataHandlingWarning, EstimationError, FormulaError, 
                       SpecificationError, choices_error)
 from ..formula import dependency_message, safe_context, screen
 from . import _blocks as blk
+from . import _parquet
 
 __all__ = ["DaskPanel", "DaskSource", "SCHEDULERS", "local_client", "close_local_client"]
 
@@ -216,10 +217,16 @@ class DaskPanel:
         self.time = time
         self.client = _resolve_client(client)
         self._structure = None
+        self._plan = None  # partitions read with pyarrow (from_parquet), else dask's reader
 
     @classmethod
     def from_parquet(cls, path, unit: str, time: str, client=None, columns=None, **kwargs):
-        """Open a Parquet file or folder lazily (``dask.dataframe.read_parquet``)."""
+        """Open a Parquet file or folder lazily (``dask.dataframe.read_parquet``).
+
+        The partitions are dask's; when they are plain row groups of local files, the
+        passes read them with pyarrow straight to numpy arrays
+        (:mod:`bayespanel.data.sources._parquet`), else through dask's reader.
+        """
         import dask.dataframe as dd
 
         from ..io import parquet_files
@@ -231,7 +238,9 @@ class DaskPanel:
                 df = dd.read_parquet(path, columns=columns, **kwargs)
         except Exception as exc:  # pyarrow / fsspec raise several types
             raise PanelDataError(f"cannot read Parquet {str(path)!r}: {exc}") from None
-        return cls(df, unit=unit, time=time, client=client)
+        panel = cls(df, unit=unit, time=time, client=client)
+        panel._plan = _parquet.parquet_plan(df)
+        return panel
 
     # ------------------------------------------------------------------ running passes
     @property
@@ -274,7 +283,15 @@ class DaskPanel:
         from dask import delayed
 
         extra = () if shared is None else (self._share(shared),)
-        parts = [delayed(block, pure=True)(d, *args, *extra) for d in self._pieces(columns)]
+        if self._plan is not None:  # read and summarise each partition in one task
+            plan, cols = self._plan, tuple(columns)
+            arrow = block in blk.ARROW_BLOCKS
+            parts = [delayed(_parquet.apply_piece, pure=True)(
+                block, arrow, path, groups, cols, plan.convert_string, *args, *extra)
+                for path, groups in plan.pieces]
+        else:
+            parts = [delayed(block, pure=True)(d, *args, *extra)
+                     for d in self._pieces(columns)]
         root = _tree(parts, merge)
         with _reading():
             if isinstance(self.client, str):

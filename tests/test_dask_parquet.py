@@ -1,0 +1,168 @@
+"""The pass reads Parquet partitions with pyarrow and gets what dask's reader gives.
+
+``Panel.from_parquet(..., engine="dask")`` keeps dask's partition plan but reads each
+partition itself (bayespanel.data.sources._parquet): complete numeric columns straight to
+numpy, everything else through dask's own Arrow-to-pandas conversion. Outside references:
+``dask.dataframe.read_parquet`` (its partitions, and the whole pass run on them), on the
+wage panel of Vella and Verbeek (1998) shipped in linearmodels.datasets.
+"""
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import bayespanel as bp
+from bayespanel.core.errors import DataHandlingWarning, PanelDataError
+from bayespanel.data.sources import _parquet
+from bayespanel.data.sources.dask import DaskPanel
+
+dd = pytest.importorskip("dask.dataframe")
+pa = pytest.importorskip("pyarrow")
+pq = pytest.importorskip("pyarrow.parquet")
+
+# dask's own reader (the reference here) calls a pandas method deprecated in pandas 3.1
+pytestmark = pytest.mark.filterwarnings(
+    "ignore:The inplace keyword in DataFrame.reset_index:Warning")
+
+WAGE = "lwage ~ exper + expersq + union + married + black + educ"
+FIELDS = ("mean", "total", "within", "unit_count", "unit_mean", "lengths", "group_count",
+          "group_mean", "group_cp", "unit_keys")
+
+
+def write_parts(df, folder, cuts, row_group_size=None, **kwargs):
+    folder.mkdir()
+    edges = [0, *cuts, len(df)]
+    for i, (a, b) in enumerate(zip(edges[:-1], edges[1:])):
+        table = pa.Table.from_pandas(df.iloc[a:b], preserve_index=False)
+        pq.write_table(table, folder / f"part{i}.parquet", row_group_size=row_group_size,
+                       **kwargs)
+    return folder
+
+
+def mixed_frame(n=600, seed=2):
+    """Columns of every kind the reader meets: int/float/bool numbers, floats with NaN,
+    nullable integers with missing values, strings (with a missing one)."""
+    rng = np.random.default_rng(seed)
+    df = pd.DataFrame({
+        "unit": np.repeat(np.arange(n // 6), 6), "year": np.tile(np.arange(2000, 2006), n // 6),
+        "x": rng.normal(size=n), "k": rng.integers(0, 9, n), "b": rng.random(n) < 0.5,
+        "u8": rng.integers(0, 200, n).astype(np.uint8),
+    })
+    df["xnan"] = np.where(rng.random(n) < 0.1, np.nan, df["x"])
+    df["kmiss"] = pd.array(np.where(rng.random(n) < 0.1, -1, df["k"]), dtype="Int64")
+    df.loc[df["kmiss"] == -1, "kmiss"] = pd.NA
+    df["name"] = pd.Series([f"u{u}" for u in df["unit"]], dtype="string")
+    df.loc[5, "name"] = pd.NA
+    return df
+
+
+@pytest.mark.parametrize("split", [True, False], ids=["row-groups", "files"])
+def test_each_partition_equals_dasks(tmp_path, split):
+    # Outside reference: dask.dataframe.read_parquet's own partitions of the same files.
+    df = mixed_frame()
+    folder = write_parts(df, tmp_path / "p", [250, 420], row_group_size=100)
+    ddf = dd.read_parquet(folder, split_row_groups=split)
+    plan = _parquet.parquet_plan(ddf)
+    assert plan is not None and len(plan) == ddf.npartitions
+    cols = list(df.columns)
+    for i, (path, groups) in enumerate(plan.pieces):
+        piece = _parquet.read_piece(path, groups, cols, plan.convert_string)
+        theirs = ddf.partitions[i].compute()
+        pd.testing.assert_frame_equal(piece.frame(), theirs)
+        for c in cols:
+            got = piece.numbers(c)
+            if c in ("x", "k", "b", "u8", "unit", "year"):
+                np.testing.assert_array_equal(got, theirs[c].to_numpy())
+                assert got.dtype == theirs[c].to_numpy().dtype
+            else:  # missing values or strings: pandas' conversion decides
+                assert got is None, c
+
+
+def test_other_layouts_keep_dasks_reader(tmp_path):
+    df = mixed_frame()
+    indexed = tmp_path / "indexed"
+    indexed.mkdir()
+    df.sample(frac=1.0, random_state=1).to_parquet(indexed / "a.parquet")  # a stored index
+    assert _parquet.parquet_plan(dd.read_parquet(indexed)) is None
+    hive = tmp_path / "hive"
+    df.to_parquet(hive, partition_cols=["b"], index=False)  # folders b=True / b=False
+    assert _parquet.parquet_plan(dd.read_parquet(hive)) is None
+    plain = write_parts(df, tmp_path / "plain", [300])
+    assert _parquet.parquet_plan(dd.read_parquet(plain, filters=[("k", ">", 2)])) is None
+    assert _parquet.parquet_plan(dd.from_pandas(df, npartitions=2)) is None
+    assert _parquet.parquet_plan(dd.read_parquet(plain)) is not None
+
+
+@pytest.fixture(scope="module")
+def wage_files(wage_panel, tmp_path_factory):
+    """The wage panel (linearmodels.datasets) as 3 files, 2 row groups each, with missing
+    values in one covariate of the second file (listwise deletion on that partition).
+    The columns of the design pass come first, in its order: dask then reads the same
+    partitions for it (a projection out of file order makes dask fuse partitions, and
+    merges over other partitions round differently in the last bit)."""
+    first = ["nr", "year", "lwage", "exper", "expersq", "union", "married", "black", "educ"]
+    df = wage_panel[first + [c for c in wage_panel.columns if c not in first]].copy()
+    df["exper"] = df["exper"].astype(float)
+    df.loc[[1700, 1703, 2950], "exper"] = np.nan
+    root = tmp_path_factory.mktemp("wage_parts")
+    return df, write_parts(df, root / "p", [1500, 3000], row_group_size=800)
+
+
+@pytest.mark.parametrize("cluster", [False, True], ids=["statistics", "with-cluster"])
+def test_the_pass_equals_the_pass_through_dasks_reader(wage_files, cluster):
+    # Outside reference: the same pass over dask.dataframe.read_parquet's partitions
+    # (DaskPanel on the frame itself, which reads through dask); identical to the bit.
+    df, folder = wage_files
+    ours = bp.Panel.from_parquet(folder, unit="nr", time="year", engine="dask",
+                                 client="synchronous", split_row_groups=True)
+    assert ours._plan is not None
+    theirs = DaskPanel(dd.read_parquet(folder, split_row_groups=True), "nr", "year",
+                       client="synchronous")
+    assert len(theirs._pieces(list(df.columns[:9]))) == len(ours._plan) == 6
+    with pytest.warns(DataHandlingWarning, match="dropped 3 of 4360"):
+        a = ours.design(WAGE, cluster=cluster)
+    with pytest.warns(DataHandlingWarning, match="dropped 3 of 4360"):
+        b = theirs.design(WAGE, cluster=cluster)
+    sa, sb = a.design_suffstats(), b.design_suffstats()
+    for f in FIELDS:
+        np.testing.assert_array_equal(getattr(sa, f), getattr(sb, f), err_msg=f)
+    assert a.n_dropped == b.n_dropped == 3 and a.dropped_by_column == {"exper": 3}
+    np.testing.assert_array_equal(a.source.maxabs(), b.source.maxabs())
+    if cluster:
+        np.testing.assert_array_equal(a.source.unit_cross_products(),
+                                      b.source.unit_cross_products())
+    assert ours.structure() == theirs.structure()
+    pd.testing.assert_frame_equal(ours.describe(), theirs.describe())
+
+
+def _message(exc_info_fn):
+    with pytest.raises(PanelDataError) as err:
+        exc_info_fn()
+    return str(err.value)
+
+
+def test_bad_rows_are_named_as_through_dasks_reader(wage_panel, tmp_path):
+    # Outside reference: the errors raised on dask.dataframe.read_parquet's partitions.
+    cases = {}
+    miss = wage_panel.copy()
+    miss["nr"] = miss["nr"].astype(float)
+    miss.loc[2210, "nr"] = np.nan
+    cases["missing-unit"] = (miss, lambda p: p.structure(), "unit column 'nr' has missing")
+    inf = wage_panel.copy()
+    inf["exper"] = inf["exper"].astype(float)
+    inf.loc[2209, "exper"] = np.inf
+    cases["infinite"] = (inf, lambda p: p.design(WAGE), "'exper' has 1 infinite")
+    dup = pd.concat([wage_panel, wage_panel.iloc[[2100]]], ignore_index=True)
+    cases["duplicate"] = (dup, lambda p: p.design(WAGE), "repeat a unit-occasion pair")
+    for name, (df, run, expected) in cases.items():
+        folder = write_parts(df, tmp_path / name, [2000])
+        ours = bp.Panel.from_parquet(folder, unit="nr", time="year", engine="dask",
+                                     client="synchronous")
+        assert ours._plan is not None
+        theirs = DaskPanel(dd.read_parquet(folder), "nr", "year", client="synchronous")
+        got = _message(lambda: run(ours))
+        assert expected in got, name
+        assert got == _message(lambda: run(theirs)), name
+    with pytest.raises(PanelDataError, match="'nope'"):
+        bp.Panel.from_parquet(tmp_path / "duplicate", unit="nope", time="year",
+                              engine="dask", client="synchronous")
