@@ -9,6 +9,7 @@ so their random-intercept variance components coincide (Bell and Jones 2015, Pol
 Science Research and Methods 3, 133-153; Mundlak 1978).
 """
 
+import re
 import warnings
 
 import numpy as np
@@ -68,12 +69,52 @@ def test_unsorted_input_is_ordered_as_pandas_sorts_it(wage_panel):
     pd.testing.assert_frame_equal(panel.describe(), bp.Panel(ref, "nr", "year").describe())
 
 
+def _pandas_checked(df, unit, time):
+    """Reference: pandas' own repeated-pair search and stable sort of the key columns."""
+    dup = df.duplicated(subset=[unit, time], keep=False).to_numpy()
+    order = df[[unit, time]].reset_index(drop=True).sort_values(
+        [unit, time], kind="mergesort").index.to_numpy()
+    return dup, order
+
+
+@pytest.mark.parametrize("case", ["sorted", "swap", "float-keys", "repeat", "repeat-at-edge"])
+def test_rows_in_order_skip_the_sort_and_keep_pandas_answers(case):
+    # Reference: pandas' DataFrame.duplicated and stable sort_values on the two keys. The
+    # table is read in slices of 65,536 rows: the fault sits across a slice edge.
+    n = 70_000
+    df = pd.DataFrame({"u": np.repeat(np.arange(n // 7), 7), "t": np.tile(np.arange(7), n // 7),
+                       "y": np.arange(n, dtype=float)})
+    edge = 1 << 16
+    if case == "swap":
+        df.iloc[[edge - 1, edge]] = df.iloc[[edge, edge - 1]].to_numpy()
+    elif case == "float-keys":
+        df["u"] = df["u"] * 0.5
+        df["t"] = df["t"] + 0.25
+    elif case == "repeat":
+        df.loc[10, "t"] = df.loc[9, "t"]
+    elif case == "repeat-at-edge":
+        df.loc[edge, ["u", "t"]] = df.loc[edge - 1, ["u", "t"]].to_numpy()
+    dup, order = _pandas_checked(df, "u", "t")
+    if dup.any():
+        first = int(np.flatnonzero(dup)[0])
+        pair = re.escape(f"u={df['u'].iloc[first].item()!r}, t={df['t'].iloc[first].item()!r}")
+        with pytest.raises(bp.PanelDataError, match=f"{int(dup.sum())} rows share .*{pair}"):
+            bp.Panel(df, "u", "t")
+        return
+    panel = bp.Panel(df, "u", "t")
+    sorted_already = np.array_equal(order, np.arange(n))
+    assert (panel.order is None) == sorted_already
+    if not sorted_already:
+        np.testing.assert_array_equal(panel.order, order)
+
+
 # ---------------------------------------------------------------------------- Design
 @pytest.mark.parametrize("formula", [
     "lwage ~ hours + exper",
     "lwage ~ 0 + married + exper + married",
     "lwage ~ exper - 1 + union",
     "lwage ~ year + exper",
+    "lwage ~ union + exper + hours + exper",  # a sum of names, read without formulaic
 ])
 def test_plain_terms_equal_formulaic_model_matrix(wage_panel, formula):
     # Source: wage panel (linearmodels.datasets), a few values removed; reference:
@@ -193,3 +234,18 @@ def test_posterior_makes_its_rows_from_the_design_only_when_asked(grunfeld):
             warnings.simplefilter("ignore")
             a, b = post.loo("occasion"), eager.loo("occasion")
         assert a.elpd == b.elpd and a.se == b.se
+
+
+def test_a_sum_of_names_read_without_formulaic_keeps_the_term_limit():
+    # A sum of plain names skips formulaic's parser (bayespanel.data.formula.plain_sum);
+    # past LIMITS['terms'] it goes to the parser's walk, which names the limit as before.
+    from bayespanel.core.errors import FormulaError
+    from bayespanel.data.formula import LIMITS, plain_sum, screen
+
+    names = [f"c{i}" for i in range(LIMITS["terms"])]  # with the intercept: one too many
+    assert plain_sum(" + ".join(names)) == names
+    assert plain_sum("a + b:c") is None and plain_sum("`a b` + c") is None
+    assert plain_sum("a + True") is None and plain_sum("a + 1") is None
+    screen("y ~ " + " + ".join(names[:-1]), ["y"] + names)
+    with pytest.raises(FormulaError, match=r"generates too many terms \(1,001\)"):
+        screen("y ~ " + " + ".join(names), ["y"] + names)

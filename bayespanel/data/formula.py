@@ -36,7 +36,7 @@ from ..core.errors import FormulaError
 from ..core.terms import AS_IS, BETWEEN, UNIT_MEAN, WITHIN, parse
 
 __all__ = ["screen", "safe_context", "ScreenedFormula", "ALLOWED_TRANSFORMS", "LIMITS",
-           "reserved_name", "outcome_values", "dependency_message"]
+           "reserved_name", "outcome_values", "dependency_message", "plain_sum"]
 
 #: What a formula may cost (each far above what an analysis writes; docs/user-guide.md).
 LIMITS = {
@@ -391,6 +391,11 @@ def _check_cost(rhs: str, formula: str, quoted: dict) -> int | None:
     :func:`_check_python`. Returns the number of terms (the intercept counts as one), or
     None when formulaic cannot parse the formula (it says why when it builds the design).
     """
+    names = plain_sum(rhs)
+    if names is not None:  # the intercept and one term per name (formulaic not loaded)
+        count = 1 + len({quoted.get(n, n) for n in names})
+        if count <= LIMITS["terms"]:
+            return count
     from formulaic.parser import DefaultFormulaParser
     from formulaic.parser.types import ASTNode
 
@@ -431,6 +436,25 @@ def _check_cost(rhs: str, formula: str, quoted: dict) -> int | None:
             args, results[-n:] = results[-n:], []
             results.append(_combine(node, args, lambda n=node: restore(_node_text(n)), formula))
     return len(results[-1])
+
+
+_PLAIN_SUM = re.compile(r"\A\s*[A-Za-z_]\w*(?:\s*\+\s*[A-Za-z_]\w*)*\s*\Z", re.ASCII)
+
+
+def plain_sum(side: str) -> list[str] | None:
+    """The names of one side of a formula that is nothing but names joined by ``+``
+    (``x0 + x1 + x2``), in the order written, repeats kept; None for anything else
+    (a number, an operator other than ``+``, a call, a quoted name, a Python keyword).
+    Each such name is one term of its own, so such a side needs no parser: the design
+    reads its columns as they are (:func:`bayespanel.data.design.Design.from_panel`)."""
+    import keyword
+
+    if not _PLAIN_SUM.match(side):
+        return None
+    names = [n.strip() for n in side.split("+")]
+    if any(keyword.iskeyword(n) for n in names):
+        return None
+    return names
 
 
 def _leaf_terms(token, formula, restore, quoted) -> frozenset:
