@@ -9,7 +9,9 @@ repository), then times, on a local Dask cluster:
 * the reference fits on the statistics (within, between, pooled, random Swamy-Arora and
   ML);
 * the Bayesian random-intercept fit (build + NUTS) from the statistics;
-* its occasion-level sub-sampled LOO (one more pass over the partitions).
+* its occasion-level sub-sampled LOO (one more pass over the partitions);
+* the baseline of the pass: pyarrow decoding alone the same columns of the same
+  partitions on the same workers, printed with the pass as a ratio.
 
 It prints rows per second per core of the design pass, the time split and memory: the
 peak resident memory of each pass above its start (sampled every few milliseconds over
@@ -143,6 +145,24 @@ def _worker_cpu():
     return o.getpid(), u.ru_utime + u.ru_stime
 
 
+def _decode(path, groups, columns):
+    from bayespanel.data.sources._parquet import read_piece
+
+    return len(read_piece(path, groups, columns, False))
+
+
+def decode_only(client, panel, columns) -> int:
+    """Decode ``columns`` of every partition of ``panel`` with pyarrow, as the pass reads
+    them, one task per partition on ``client``, and do nothing else; returns the rows."""
+    from dask import delayed
+
+    plan = panel._plan
+    if plan is None:
+        raise SystemExit("the panel's partitions are not read with pyarrow (no plan)")
+    tasks = [delayed(_decode, pure=False)(p, g, tuple(columns)) for p, g in plan.pieces]
+    return int(sum(client.compute(tasks, sync=True)))
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows", type=int, default=20_000_000)
@@ -154,6 +174,8 @@ def main(argv=None):
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--processes", action="store_true", help="process workers, not threads")
     ap.add_argument("--compare", action="store_true", help="also time threads vs processes")
+    ap.add_argument("--repeat", type=int, default=3,
+                    help="times the repeated design pass and the decoding baseline run")
     ap.add_argument("--draws", type=int, default=1000)
     ap.add_argument("--path", default="/tmp/bayespanel_scale")
     ap.add_argument("--keep", action="store_true", help="keep the Parquet files")
@@ -211,12 +233,26 @@ def main(argv=None):
     # pays once (importing the formula machinery and dask's Parquet reader, loading the
     # compiled kernels); this one, on the panel opened afresh (so that it summarises the
     # structure too, the same work), is the pass's own speed
-    again = bp.Panel.from_parquet(path, unit="unit", time="time", engine="dask",
-                                  client=client, split_row_groups=True)
-    t = time.perf_counter()
-    cpu1 = cpu()
-    again.design(formula)
-    t_warm, cpu_warm = time.perf_counter() - t, cpu() - cpu1
+    repeats = []
+    for _ in range(args.repeat):
+        again = bp.Panel.from_parquet(path, unit="unit", time="time", engine="dask",
+                                      client=client, split_row_groups=True)
+        load_at = os.getloadavg()[0]
+        t = time.perf_counter()
+        cpu1 = cpu()
+        again.design(formula)
+        repeats.append((time.perf_counter() - t, cpu() - cpu1, load_at))
+    t_warm, cpu_warm, _ = min(repeats)
+    # the baseline of the same run: pyarrow decoding alone the same columns of the same
+    # partitions, on the same workers (what the pass cannot go below)
+    cols = ["unit", "time", "y"] + [f"x{j + 1}" for j in range(k)]
+    decodes = []
+    for _ in range(args.repeat):
+        t = time.perf_counter()
+        cpu1 = cpu()
+        n_dec = decode_only(client, again, cols)
+        decodes.append((time.perf_counter() - t, cpu() - cpu1))
+    t_dec, cpu_dec = min(decodes)
     st = panel.structure()
     print(f"structure: {st['n_units']:,} units, {st['n_rows']:,} rows, balanced={st['balanced']}")
     desc = timed("pass: describe", panel.describe)
@@ -256,10 +292,20 @@ def main(argv=None):
     t_fit = timings["bayes: build RandomIntercept from statistics"] + timings["bayes: sample (2 chains)"]
     print(f"design pass, first of the process: {args.rows / t_pass:,.0f} rows/s, "
           f"{args.rows / t_pass / cores:,.0f} rows/s per core ({t_pass:.2f} s)")
-    print(f"design pass, repeated (same files opened afresh): {args.rows / t_warm:,.0f} "
+    print(f"design pass, repeated (same files opened afresh, best of {args.repeat}): "
+          f"{args.rows / t_warm:,.0f} "
           f"rows/s, {args.rows / t_warm / cores:,.0f} rows/s per core ({t_warm:.2f} s; "
           f"{cores} cores; issue 18 item 5 target 5,000,000 per core); worker CPU "
           f"{cpu_warm:.1f} s = {args.rows / cpu_warm:,.0f} rows per CPU-second")
+    for i, (tw, cw, ld) in enumerate(repeats):
+        print(f"  repeat {i + 1}: {tw:.2f} s wall ({args.rows / tw / cores:,.0f} rows/s per "
+              f"core), {cw:.2f} CPU s ({args.rows / cw:,.0f} rows per CPU-second), load "
+              f"average {ld:.1f}")
+    print(f"pyarrow decoding alone of the same {len(cols)} columns ({n_dec:,} rows, best of "
+          f"{args.repeat}): {t_dec:.2f} s wall ({args.rows / t_dec / cores:,.0f} rows/s per "
+          f"core), {cpu_dec:.2f} CPU s ({args.rows / cpu_dec:,.0f} rows per CPU-second); "
+          f"design pass / decoding alone: {t_warm / t_dec:.2f}x wall, "
+          f"{cpu_warm / cpu_dec:.2f}x CPU")
     print(f"design pass: {args.rows / t_pass:,.0f} rows/s, {args.rows / t_pass / cores:,.0f} "
           f"rows/s per core ({cores} cores; target 1,000,000)")
     print(f"design pass CPU time of the worker process(es): {cpu_pass:.1f} s, i.e. "
