@@ -63,6 +63,7 @@ def no_sampling(monkeypatch):
     # below the option checks of sampling.run, which are part of what is tested
     monkeypatch.setattr(sampling, "_run_pymc", tripwire)
     monkeypatch.setattr(sampling, "_run_nutpie", tripwire)
+    monkeypatch.setattr(sampling, "_run_own", tripwire)
 
 
 # ---------------------------------------------------------------------- helpers
@@ -255,7 +256,7 @@ CASES = [
     Case("interval-as-percent", None, lambda df: _reference()(df).interval(95),
          ["--interval", "95"], SpecificationError, r"95", cli_match=r"interval=95\.0 must be"),
     Case("unknown-sampler", None, _fit(sampler="hmc"), None, SpecificationError,
-         r"sampler='hmc' is not valid; choose one of 'auto', 'pymc', 'nutpie'"),
+         r"sampler='hmc' is not valid; choose one of 'auto', 'bayespanel', 'pymc', 'nutpie'"),
     Case("unknown-likelihood", None, _fit(likelihood="exact"), None, SpecificationError,
          r"likelihood='exact' is not valid; choose one of 'marginal', 'latent'"),
     Case("unknown-reference-method", None, _reference(method="gls"), None, SpecificationError,

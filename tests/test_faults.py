@@ -62,7 +62,7 @@ def flawed_run(grunfeld_csv, tmp_path_factory):
     """
     import bayespanel.bayes.sampling as sampling
 
-    real = sampling._run_pymc
+    real = sampling._run_own
 
     def flawed(*args, **kwargs):
         dt = real(*args, **kwargs)
@@ -73,7 +73,7 @@ def flawed_run(grunfeld_csv, tmp_path_factory):
 
     out = tmp_path_factory.mktemp("faults_run")
     with pytest.MonkeyPatch.context() as mp:
-        mp.setattr(sampling, "_run_pymc", flawed)
+        mp.setattr(sampling, "_run_own", flawed)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             stdout, stderr = StringIO(), StringIO()
@@ -191,7 +191,7 @@ def test_keyboard_interrupt_in_sampling_leaves_earlier_outputs(flawed_run, grunf
     def interrupted(*a, **k):
         raise KeyboardInterrupt
 
-    monkeypatch.setattr(sampling, "_run_pymc", interrupted)
+    monkeypatch.setattr(sampling, "_run_own", interrupted)
     argv = _argv(grunfeld_csv, out, "--quiet")
     argv[argv.index("11")] = "12"  # another run into the same folder
     assert main(argv) == 1
@@ -219,7 +219,7 @@ def test_pymc_swallows_an_interrupt_and_we_refuse_the_truncated_trace(grunfeld, 
     monkeypatch.setattr(pm, "sample", lambda *a, **k: real(*a, callback=stop, **k))
     with pytest.raises(KeyboardInterrupt, match=r"interrupted after 1 chain\(s\) x \d+ draws "
                                                 r"of the 1 x 60 asked for"):
-        m.sample(draws=60, tune=40, chains=1, seed=1, progress=False)
+        m.sample(draws=60, tune=40, chains=1, seed=1, progress=False, sampler="pymc")
 
 
 def test_a_killed_fit_leaves_earlier_outputs(flawed_run, grunfeld_csv):
@@ -244,3 +244,21 @@ def test_a_killed_fit_leaves_earlier_outputs(flawed_run, grunfeld_csv):
     assert _snapshot(out) == before
     assert np.isfinite(json.loads(before["results.json"])["models"][0]["coefficients"][0]
                        ["estimate"])
+
+
+def test_an_interrupt_in_our_sampler_keeps_no_draws(grunfeld, monkeypatch):
+    # bayespanel's own sampler does not catch the interrupt: nothing partial comes back
+    from bayespanel.bayes import nuts
+
+    m = bp.models.RandomIntercept(bp.Panel(grunfeld, UNIT, TIME), F)
+    real = nuts.sample_chain
+
+    def stop(*a, **k):
+        def interrupt(it):
+            if it >= 100:
+                raise KeyboardInterrupt
+        return real(*a, **{**k, "callback": interrupt})
+
+    monkeypatch.setattr(nuts, "sample_chain", stop)
+    with pytest.raises(KeyboardInterrupt):
+        m.sample(draws=60, tune=80, chains=1, seed=1, progress=False)

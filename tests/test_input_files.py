@@ -63,6 +63,7 @@ def no_sampling(monkeypatch):
 
     monkeypatch.setattr(sampling, "_run_pymc", tripwire)
     monkeypatch.setattr(sampling, "_run_nutpie", tripwire)
+    monkeypatch.setattr(sampling, "_run_own", tripwire)
 
 
 def _analysis(tmp_path, data_line, model_extra=""):

@@ -186,7 +186,7 @@ def test_short_runs_warn_and_reproduce(fits):
     with pytest.warns(SamplingWarning, match="ESS below"):
         first = model.sample(seed=3, **short)
     assert any("ESS below" in p for p in first.diagnostics(warn=False)["problems"])
-    assert first.sampling["seed"] == 3 and first.sampling["sampler"] == "pymc"
+    assert first.sampling["seed"] == 3 and first.sampling["sampler"] == "bayespanel"
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", SamplingWarning)
         again = model.sample(seed=3, **short)

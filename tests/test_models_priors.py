@@ -151,7 +151,7 @@ def test_bad_options_per_builder(panel):
     with pytest.raises(SpecificationError, match="scale=-1"):
         Prior("half_normal", scale=-1)
     m = WithinBetween(panel, FORMULA)
-    for kw, match in [({"sampler": "stan"}, r"sampler='stan'.*'auto', 'pymc', 'nutpie'"),
+    for kw, match in [({"sampler": "stan"}, r"sampler='stan'.*'auto', 'bayespanel', 'pymc', 'nutpie'"),
                       ({"draws": 0}, "draws=0"), ({"chains": 1.5}, "chains=1.5"),
                       ({"seed": -3}, "seed=-3"), ({"target_accept": 1.2}, "target_accept")]:
         with pytest.raises(SpecificationError, match=match):

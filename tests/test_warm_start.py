@@ -42,11 +42,13 @@ def _simulate(n_units, T=10, seed=0):
 
 
 def _fit_both(model):
+    """PyMC's sampler from its own start and from the mode, and bayespanel's sampler."""
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", SamplingWarning)  # judged below
         old = model.sample(start="jitter", **KW)
         new = model.sample(start="mode", **KW)
-    return old, new
+        own = model.sample(**{**KW, "sampler": "bayespanel"})
+    return old, new, own
 
 
 @pytest.fixture(scope="module")
@@ -115,12 +117,14 @@ def test_laplace_gives_up_without_a_mode():
 
 
 def test_wage_panel_posteriors_equal_the_previous_start(wage_fits):
-    for name, (model, old, new) in wage_fits.items():
+    for name, (model, old, new, own) in wage_fits.items():
         assert old.sampling["start"] == "jitter" and new.sampling["start"] == "mode", name
         assert new.sampling["start_newton_iterations"] >= 1
-        _healthy(old)
-        _healthy(new)
+        assert own.sampling["sampler"] == "bayespanel" and own.sampling["start"] == "mode"
+        for post in (old, new, own):
+            _healthy(post)
         _same_posterior(old, new)
+        _same_posterior(old, own)  # bayespanel's NUTS against PyMC's, as used before
 
 
 def test_simulated_posteriors_equal_the_previous_start_and_linearmodels(sim_fit):
@@ -129,16 +133,18 @@ def test_simulated_posteriors_equal_the_previous_start_and_linearmodels(sim_fit)
     # of variance estimator move the coefficients by a small part of a posterior SD.
     from linearmodels import RandomEffects
 
-    df, model, old, new = sim_fit
-    _healthy(old)
-    _healthy(new)
+    df, model, old, new, own = sim_fit
+    for post in (old, new, own):
+        _healthy(post)
     _same_posterior(old, new)
+    _same_posterior(old, own)
     data = df.set_index(["unit", "occ"])
     exog = data[["x1", "x2", "z"]].assign(const=1.0)
     ref = RandomEffects(data["y"], exog).fit()
     for term in ("x1", "x2", "z"):
-        d = new.draws(term).ravel()
-        assert abs(d.mean() - ref.params[term]) < 0.3 * d.std(), term
+        for post in (new, own):
+            d = post.draws(term).ravel()
+            assert abs(d.mean() - ref.params[term]) < 0.3 * d.std(), term
 
 
 def test_chains_start_apart_from_the_seed(wage_fits):
@@ -188,8 +194,10 @@ def test_a_data_swap_reaches_the_kept_log_density(wage_fits):
         d2 = bp.Panel(df2, unit="unit", time="occ").design("y ~ x1 + x2 + z")
         model.set_suffstats(derived.from_design(d2, "random"))
         second = model.sample(start="mode", **KW)
+        own = model.sample(**{**KW, "sampler": "bayespanel"})
     assert abs(first.coef["x1"] - 0.5) < 0.1
     assert abs(second.coef["x1"] - 2.5) < 0.1
+    assert abs(own.coef["x1"] - 2.5) < 0.1
 
 
 def test_marginal_chains_run_in_process_with_the_same_draws(grunfeld):

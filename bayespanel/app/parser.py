@@ -9,6 +9,7 @@ from dataclasses import fields
 from .. import kinds
 from ..core.options import get_option
 from .cliargs import _DELIMITER_HELP
+from .settings import SAMPLERS
 from .verbs import cmd_demo, cmd_describe, cmd_design_check, cmd_fit, cmd_report
 
 
@@ -206,9 +207,10 @@ def build_parser() -> argparse.ArgumentParser:
     # the option defaults stay None so that an analysis file's values are not overridden;
     # the help shows the defaults a run uses (those of Settings)
     g = _sampling_args(p, None, None, None, shown=default)
-    g.add_argument("--sampler", choices=["auto", "pymc", "nutpie"], default=None,
-                   help=f"NUTS implementation (default {default['sampler']}: picked by "
-                        "model size)")
+    g.add_argument("--sampler", choices=list(SAMPLERS), default=None,
+                   help=f"NUTS implementation (default {default['sampler']}: bayespanel's "
+                        "own for the marginal models, nutpie for large latent ones, else "
+                        "PyMC's)")
     g.add_argument("--ppc-draws", type=int, default=None,
                    help=f"posterior draws used for predictive checks (default "
                         f"{default['ppc_draws']})")

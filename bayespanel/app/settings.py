@@ -15,14 +15,13 @@ from .. import kinds
 from ..core.ar1 import ERRORS
 from ..core.errors import SpecificationError, choices_error
 from ..bayes.families import FAMILIES
-from ..bayes.sampling import MIN_DRAWS
+from ..bayes.sampling import MIN_DRAWS, SAMPLERS
 from ..core.options import get_option
 
 __all__ = ["Settings", "load_settings", "LEVELS", "SAMPLERS", "COVS", "RE_METHODS",
            "LOO_OBSERVATIONS", "MAX_REFITS"]
 
 LEVELS = ("occasion", "unit")
-SAMPLERS = ("auto", "pymc", "nutpie")
 COVS = ("classical", "cluster", "cr2")
 RE_METHODS = ("swamy-arora", "ml", "reml")
 LOO_OBSERVATIONS = 400

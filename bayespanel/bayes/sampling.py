@@ -1,20 +1,25 @@
-"""Running NUTS on a built model: PyMC's sampler or nutpie, chosen by model size.
+"""Running NUTS on a built model: bayespanel's own sampler, PyMC's or nutpie.
 
-Both run the No-U-Turn sampler (Hoffman and Gelman 2014). The marginal models have few
-parameters, so they adapt a dense mass matrix (PyMC's ``jitter+adapt_full``, nutpie's
-low-rank adaptation); latent-intercept models, with one parameter per unit, a diagonal
-one. Measured on this project's models (bench/bench_models.py, bench/bench_speed.py,
-docs/bayesian-models.md):
+All three run the No-U-Turn sampler (Hoffman and Gelman 2014). The marginal models have
+few parameters, so they adapt a dense mass matrix (bayespanel's and PyMC's
+``jitter+adapt_full``, nutpie's low-rank adaptation); latent-intercept models, with one
+parameter per unit, a diagonal one. Measured on this project's models
+(bench/bench_models.py, bench/bench_speed.py, docs/bayesian-models.md):
 
-* the marginal likelihood costs the same per gradient for any number of rows, and PyMC's
-  own sampler, whose compiled log density is cached on disk (by PyTensor and by
-  :func:`_pymc_logp`), fits it end to end in a few seconds, while nutpie first spends
+* the marginal likelihood costs the same per gradient for any number of rows (a few
+  microseconds), so the sampler's own work around each gradient decides the time.
+  PyMC's sampler spends about a hundred microseconds of Python per leapfrog step;
+  bayespanel's (:mod:`bayespanel.bayes.nuts`, run by :mod:`bayespanel.bayes.ownsampler`)
+  about fifteen, calling the same compiled log density, which is cached on disk (by
+  PyTensor and by :func:`bayespanel.bayes.logdensity.compiled_logp`). nutpie first spends
   several seconds compiling through numba in every new process;
 * a row-level (latent-intercept) likelihood grows with the rows, and there nutpie's faster
   gradient and adaptation outweigh its compile time beyond :data:`NUTPIE_ROWS` rows.
 
-``sampler="auto"`` applies exactly that rule, so the choice depends only on the model and
-the same seed always reproduces the same draws. A nutpie compilation is kept with the
+``sampler="auto"`` applies exactly that rule (bayespanel's sampler for the marginal
+models started at the mode, nutpie for large latent-intercept models, PyMC's otherwise),
+so the choice depends only on the model and the start, and the same seed always
+reproduces the same draws. A nutpie compilation is kept with the
 model and reused (with the current ``pm.Data`` values) on every later call, which makes
 repeated fits after :meth:`~bayespanel.bayes.GaussianModel.set_suffstats` cheap; so is
 the compiled log density and gradient that PyMC's sampler uses.
@@ -61,12 +66,16 @@ import warnings
 import numpy as np
 
 from ..core.errors import SpecificationError, choices_error
-from .graph import graph_identity, same_graph
+from .laplace import START_SPREAD, START_WEIGHT, Laplace, laplace  # noqa: F401
+from .laplace import chain_rngs as _chain_rngs
+from .laplace import warm_start as _warm_start
+from .logdensity import (_cache_load, _cache_path, _cache_save, _push_data,  # noqa: F401
+                         compiled_logp as _pymc_logp, forget_stale, nutpie_compiled)
 
 __all__ = ["SAMPLERS", "STARTS", "NUTPIE_ROWS", "MIN_DRAWS", "choose_sampler", "run",
            "nutpie_available", "check_int", "laplace", "forget_stale", "nutpie_compiled"]
 
-SAMPLERS = ("auto", "pymc", "nutpie")
+SAMPLERS = ("auto", "bayespanel", "pymc", "nutpie")
 #: latent-intercept models with at least this many rows go to nutpie under "auto"
 NUTPIE_ROWS = 2_000
 #: fewest draws per chain accepted: split R-hat needs two halves of at least two draws
@@ -74,12 +83,6 @@ MIN_DRAWS = 4
 #: marginal models with at most this many coefficients adapt a dense mass matrix
 DENSE_MAX = 60
 STARTS = ("mode", "jitter")
-#: chains start at the mode plus this many Laplace standard deviations (times a standard
-#: normal draw): overdispersed relative to the posterior (Gelman and Rubin 1992)
-START_SPREAD = 2.0
-#: weight, in draws, of the Laplace covariance in PyMC's first adaptation window (its
-#: own default for a unit start is 10)
-START_WEIGHT = 50
 
 
 def nutpie_available() -> bool:
@@ -93,12 +96,22 @@ def check_int(name, value, minimum):
     return int(value)
 
 
-def choose_sampler(model) -> str:
-    """The sampler ``"auto"`` uses for ``model`` (see the module docstring)."""
+def choose_sampler(model, start=None) -> str:
+    """The sampler ``"auto"`` uses for ``model`` (see the module docstring): this
+    package's own NUTS (:mod:`bayespanel.bayes.nuts`) for the marginal models started
+    at the mode, nutpie for large latent-intercept models, else PyMC's."""
     if (model.likelihood == "latent" and model.rows is not None
             and len(model.rows[1]) >= NUTPIE_ROWS and nutpie_available()):
         return "nutpie"
+    if start != "jitter" and _own_possible(model):
+        return "bayespanel"
     return "pymc"
+
+
+def _own_possible(model) -> bool:
+    """This package's sampler needs a dense metric (few parameters) and a gradient in
+    every free variable."""
+    return _dense(model) and not model.pymc_model.discrete_value_vars
 
 
 def _dense(model) -> bool:
@@ -128,7 +141,7 @@ def default_cores(model, sampler, chains) -> int:
     CPUs)``. PyMC seeds each chain the same way in both modes, so the draws for a seed do
     not depend on ``cores`` (tests/test_warm_start.py checks it).
     """
-    if sampler == "pymc" and model.likelihood == "marginal":
+    if sampler in ("pymc", "bayespanel") and model.likelihood == "marginal":
         return 1
     return min(chains, os.cpu_count() or 1)
 
@@ -155,7 +168,15 @@ def run(model, *, draws, tune, chains, seed, sampler, progress, cores, target_ac
     if not (isinstance(target_accept, float) and 0.5 <= target_accept < 1.0):
         raise SpecificationError(f"target_accept={target_accept!r} must be a float in [0.5, 1)")
     seed = _seed(seed)
-    chosen = choose_sampler(model) if sampler == "auto" else sampler
+    chosen = choose_sampler(model, start) if sampler == "auto" else sampler
+    if chosen == "bayespanel" and not _own_possible(model):
+        raise SpecificationError(
+            "sampler='bayespanel' runs the marginal models (a few continuous parameters); "
+            "choose sampler='pymc' or 'auto' for this model")
+    if chosen == "bayespanel" and start == "jitter":
+        raise SpecificationError(
+            "sampler='bayespanel' starts its chains around the posterior mode; start='jitter' "
+            "needs sampler='pymc' or 'nutpie'")
     if cores is None:
         cores = default_cores(model, chosen, chains)
     cores = check_int("cores", cores, 1)
@@ -170,7 +191,14 @@ def run(model, *, draws, tune, chains, seed, sampler, progress, cores, target_ac
     warm = start != "jitter" and _dense(model) and not model.pymc_model.discrete_value_vars
     info["start"] = "mode" if warm else "jitter"
     t0 = time.perf_counter()
-    if chosen == "pymc":
+    if chosen == "bayespanel":
+        info["cores"] = 1  # the chains run one after another in this process
+        dt = _run_own(model, draws, tune, chains, seed, progress, target_accept, info)
+        if dt is None:  # no posterior mode: PyMC's sampler from its own start
+            info["sampler"] = "pymc"
+            dt = _run_pymc(model, draws, tune, chains, seed, progress, 1, target_accept, info,
+                           False)
+    elif chosen == "pymc":
         dt = _run_pymc(model, draws, tune, chains, seed, progress, cores, target_accept, info,
                        warm)
     else:
@@ -183,374 +211,6 @@ def run(model, *, draws, tune, chains, seed, sampler, progress, cores, target_ac
     return dt, info
 
 
-# ---------------------------------------------------------------------------- the start
-@dataclasses.dataclass(frozen=True)
-class Laplace:
-    """The posterior mode on the sampler's unconstrained scale and the Laplace covariance
-    there (the inverse of the negative Hessian of the log density)."""
-
-    mode: np.ndarray
-    cov: np.ndarray
-    iterations: int
-
-    def starts(self, rng, logp_grad=None, spread=START_SPREAD, tries=10):
-        """One starting point: ``mode + spread * L z``, ``z ~ N(0, I)``, ``L L' = cov``;
-        drawn again (up to ``tries`` times) where the log density is not finite."""
-        L = np.linalg.cholesky(self.cov)
-        for _ in range(tries):
-            x = self.mode + spread * (L @ rng.standard_normal(len(self.mode)))
-            if logp_grad is None or np.isfinite(logp_grad(x)[0]):
-                return x
-        return self.mode.copy()
-
-
-def _hessian(logp_grad, x, h):
-    """Hessian by central differences of the exact gradient (steps ``h`` per coordinate),
-    symmetrised."""
-    n = len(x)
-    H = np.empty((n, n))
-    for i in range(n):
-        e = np.zeros(n)
-        e[i] = h[i]
-        H[i] = (logp_grad(x + e)[1] - logp_grad(x - e)[1]) / (2.0 * h[i])
-    return 0.5 * (H + H.T)
-
-
-def laplace(logp_grad, x0, *, max_iter=100, tol=1e-10):
-    """Posterior mode and Laplace covariance of a log density with few parameters.
-
-    Damped Newton iterations from ``x0``: the Hessian by central differences of the
-    exact gradient, its eigenvalues made negative where they are not (so that every step
-    goes uphill), and a backtracking line search; they stop when the Newton decrement
-    ``g' (-H)^-1 g`` falls below ``tol`` (in log-density units). Returns a
-    :class:`Laplace`, or None when no mode with a negative definite Hessian is found (the
-    caller then starts the chains the old way).
-
-    Parameters
-    ----------
-    logp_grad : callable
-        ``x -> (logp, gradient)`` on the sampler's unconstrained scale.
-    x0 : array
-    """
-    x = np.asarray(x0, dtype=float).copy()
-    f, g = logp_grad(x)
-    if not (np.isfinite(f) and np.all(np.isfinite(g))):
-        return None
-    scale = np.ones_like(x)  # the posterior SD per coordinate, as far as known
-    for it in range(1, max_iter + 1):
-        H = _hessian(logp_grad, x, 1e-4 * scale)
-        if not np.all(np.isfinite(H)):
-            return None
-        lam, V = np.linalg.eigh(-H)
-        top = np.max(np.abs(lam))
-        if not top > 0:
-            return None
-        lam = np.maximum(np.abs(lam), 1e-10 * top)
-        step = V @ ((V.T @ g) / lam)
-        decrement = float(g @ step)
-        if decrement < tol:
-            break
-        t = 1.0
-        for _ in range(60):
-            f_new, g_new = logp_grad(x + t * step)
-            if np.isfinite(f_new) and f_new >= f + 1e-4 * t * decrement:
-                break
-            t *= 0.5
-        else:
-            return None
-        x, f, g = x + t * step, f_new, g_new
-        scale = 1.0 / np.sqrt(np.maximum(np.abs(np.diag(H)), 1e-300))
-    else:
-        return None
-    H = _hessian(logp_grad, x, 1e-4 / np.sqrt(np.maximum(np.abs(np.diag(H)), 1e-300)))
-    try:
-        cov = np.linalg.inv(-H)
-        np.linalg.cholesky(cov)
-    except np.linalg.LinAlgError:
-        return None
-    if not np.all(np.isfinite(cov)):
-        return None
-    return Laplace(mode=x, cov=0.5 * (cov + cov.T), iterations=it)
-
-
-# ---------------------------------------------------------------------------- compiled code
-def forget_stale(model) -> bool:
-    """Drop the compiled samplers kept with ``model`` (``_nutpie``, ``_pymc_logp``) when
-    its ``pymc_model`` changed since they were made; returns True when it did.
-
-    Called before every use of them (:func:`run`, :func:`nutpie_compiled`), so that an
-    edited model is never sampled with the code of its former graph.
-    """
-    now = graph_identity(model.pymc_model)
-    kept = getattr(model, "_compiled_graph", None)
-    if same_graph(kept, now):
-        return False
-    stale = kept is not None
-    model._nutpie = None
-    model._pymc_logp = None
-    model._compiled_graph = now
-    return stale
-
-
-def nutpie_compiled(model):
-    """nutpie's compilation of ``model.pymc_model``, made once per graph and kept with the
-    model (a later call with the same graph only swaps data, ``with_data``)."""
-    import nutpie
-
-    forget_stale(model)
-    if getattr(model, "_nutpie", None) is None:
-        model._nutpie = nutpie.compile_pymc_model(model.pymc_model)
-    return model._nutpie
-
-
-def _pymc_logp(model, info=None, point=None):
-    """The compiled log density and gradient of ``model.pymc_model`` (PyMC's
-    ``ValueGradFunction`` over every free variable, raveled).
-
-    Compiled once per model and kept: it reads the ``pm.Data`` values when called, so a
-    data swap needs no recompile. Across processes it is kept on disk
-    (:func:`_cache_path`): the graph rewriting is then skipped, and PyTensor finds the
-    numba code in its own cache. ``info["compile_cache"]`` says ``"hit"``, ``"miss"``
-    or ``"off"``.
-    """
-    forget_stale(model)
-    fn = getattr(model, "_pymc_logp", None)
-    if fn is None:
-        path = _cache_path(model.pymc_model, point)
-        fn = _cache_load(path, model.pymc_model) if path is not None else None
-        if fn is None:
-            fn = model.pymc_model.logp_dlogp_function(ravel_inputs=True, initial_point=point)
-            fn.trust_input = True
-            if path is not None:
-                _cache_save(path, fn)
-            model._pymc_logp_cache = "off" if path is None else "miss"
-        else:
-            model._pymc_logp_cache = "hit"
-        model._pymc_logp = fn
-    _push_data(fn, model.pymc_model)
-    # PyMC's ValueGradFunction keeps its own trust_input flag but calls the compiled
-    # function, which checks and converts every argument again at each of the sampler's
-    # gradients; the sampler and the Laplace start pass float64 vectors, so the compiled
-    # function may take them as they are (same values, none of the checks' cost)
-    fn._pytensor_function.trust_input = True
-    if info is not None:
-        info["compile_cache"] = getattr(model, "_pymc_logp_cache", "off")
-    return fn
-
-
-# ---------------------------------------------------------------------------- compile cache
-#
-# A compiled log density is pickled under a key computed from everything it depends on
-# except the values of the model's pm.Data (which are pushed into it before every use):
-# a canonical description of the model's log-density graph (every operation with its
-# defining properties, every constant by a digest of its bytes, every input and shared
-# variable by name and type), the ravel layout of the free variables, and the versions
-# of Python, numpy, PyTensor, PyMC, numba and this package with PyTensor's mode settings.
-# A graph whose operations cannot all be described this way is not cached. A different
-# model therefore never finds another model's entry; at worst an unchanged model misses
-# its own (and compiles, as without the cache). Entries live beside PyTensor's compile
-# cache (``base_compiledir/bayespanel``), or in the folder ``BAYESPANEL_COMPILE_CACHE``
-# names; ``BAYESPANEL_COMPILE_CACHE=0`` turns the cache off.
-
-_CACHE_VERSION = 1
-
-
-def _describe(value):
-    """A canonical text for an operation's property (None when there is none)."""
-    if isinstance(value, np.ndarray):
-        import hashlib
-
-        return f"array({value.dtype},{value.shape},{hashlib.sha256(value.tobytes()).hexdigest()})"
-    if isinstance(value, (tuple, list)):
-        parts = [_describe(v) for v in value]
-        return None if None in parts else "(" + ",".join(parts) + ")"
-    if isinstance(value, dict):
-        parts = [(_describe(k), _describe(v)) for k, v in sorted(value.items(), key=str)]
-        return None if any(None in kv for kv in parts) else "{" + ",".join(
-            f"{k}:{v}" for k, v in parts) + "}"
-    if value is None or isinstance(value, (bool, int, float, str, np.generic, np.dtype)):
-        return repr(value)
-    if hasattr(value, "__props__"):
-        return _describe_op(value)
-    text = repr(value)
-    return None if " at 0x" in text else f"{type(value).__qualname__}:{text}"
-
-
-def _describe_op(op):
-    props = getattr(type(op), "__props__", None)
-    if props is None:
-        return None
-    parts = [_describe(getattr(op, name)) for name in props]
-    if None in parts:
-        return None
-    return f"{type(op).__module__}.{type(op).__qualname__}({','.join(parts)})"
-
-
-def _graph_text(outputs):
-    """Canonical lines describing the graph that computes ``outputs``, or None."""
-    import hashlib
-
-    from pytensor.compile.sharedvalue import SharedVariable
-    from pytensor.graph.basic import Constant
-
-    ids, lines = {}, []
-
-    def visit(var):
-        if var in ids:
-            return ids[var]
-        node = var.owner
-        if node is None:
-            if isinstance(var, Constant):
-                data = np.asarray(var.data)
-                what = f"const {data.dtype} {data.shape} {hashlib.sha256(data.tobytes()).hexdigest()}"
-            elif isinstance(var, SharedVariable):
-                what = f"shared {var.name}"
-            else:
-                what = f"input {var.name}"
-            lines.append(f"{what} {var.type}")
-        else:
-            args = [visit(i) for i in node.inputs]
-            op = _describe_op(node.op)
-            if op is None:
-                raise LookupError(str(node.op))
-            lines.append(f"{op} {args} out{node.outputs.index(var)} {var.type}")
-        ids[var] = len(ids)
-        return ids[var]
-
-    try:
-        for out in outputs:
-            visit(out)
-    except (LookupError, RecursionError):
-        return None
-    return lines
-
-
-def _cache_path(m, point=None):
-    """Where the compiled log density of PyMC model ``m`` is kept, or None (no cache).
-    ``point``: the model's initial point, if already made."""
-    where = os.environ.get("BAYESPANEL_COMPILE_CACHE", "")
-    if where == "0":
-        return None
-    import hashlib
-    import platform
-    import sys
-    from pathlib import Path
-
-    import numba
-    import pymc
-    import pytensor
-
-    from ..core.version import __version__
-
-    lines = _graph_text([m.logp(jacobian=True)] + list(m.value_vars))
-    if lines is None:
-        return None
-    point = m.initial_point() if point is None else point
-    cfg = pytensor.config
-    head = [f"bayespanel compile cache {_CACHE_VERSION}", sys.version, platform.machine(),
-            np.__version__, pytensor.__version__, pymc.__version__, numba.__version__,
-            __version__, str(cfg.mode), str(cfg.linker), str(cfg.optimizer), str(cfg.floatX),
-            repr([(k, np.shape(v)) for k, v in point.items()])]
-    key = hashlib.sha256("\n".join(head + lines).encode()).hexdigest()
-    return (Path(where) if where else Path(cfg.base_compiledir) / "bayespanel") / f"{key}.pkl"
-
-
-def _private(path):
-    """True when ``path`` (an entry or the cache folder) belongs to this user and nobody
-    else can write to it. The cache is the one place bayespanel unpickles: an entry is
-    code, with the same trust as PyTensor's compiled modules in its compile folder, so it
-    is read only from a folder and a file that no other account could have written (a
-    shared BAYESPANEL_COMPILE_CACHE such as /tmp itself is never read or written)."""
-    import stat
-
-    if not hasattr(os, "getuid"):  # no owners to check (Windows): no cache
-        return False
-    try:
-        st = os.lstat(path)
-    except OSError:
-        return False
-    return (st.st_uid == os.getuid() and not stat.S_ISLNK(st.st_mode)
-            and not st.st_mode & (stat.S_IWGRP | stat.S_IWOTH))
-
-
-def _cache_load(path, m):
-    import pickle
-
-    if not (_private(path.parent) and _private(path)):
-        return None
-    try:
-        with open(path, "rb") as fh:
-            fn = pickle.load(fh)
-    except Exception:  # noqa: BLE001 (a missing or unreadable entry: compile instead)
-        return None
-    names = {v.name for v in m.data_vars}
-    shared = {inp.variable.name for inp in fn._pytensor_function.maker.inputs if inp.shared}
-    if not shared <= names | {"__weights"}:  # it must read nothing but the model's data
-        return None
-    return fn
-
-
-#: models whose data hold more numbers than this are not cached (rows in the graph)
-_CACHE_MAX_DATA = 1_000_000
-
-
-def _cache_save(path, fn):
-    """Store ``fn`` without the model's data: the values of its shared inputs are zeros
-    while it is pickled (they are given back before every use, :func:`_push_data`)."""
-    import pickle
-    import tempfile
-
-    f = fn._pytensor_function
-    held = [(c, c.storage[0]) for inp, c in zip(f.maker.inputs, f.input_storage)
-            if inp.shared and inp.variable.name != "__weights"
-            and isinstance(c.storage[0], np.ndarray)]
-    if sum(v.size for _, v in held) > _CACHE_MAX_DATA:
-        return
-    tmp = None
-    try:
-        for c, v in held:
-            c.storage[0] = np.zeros_like(v)
-        path.parent.mkdir(mode=0o700, parents=True, exist_ok=True)
-        if not _private(path.parent):
-            return
-        with tempfile.NamedTemporaryFile(dir=path.parent, delete=False, suffix=".tmp") as fh:
-            tmp = fh.name
-            pickle.dump(fn, fh, protocol=pickle.HIGHEST_PROTOCOL)
-        os.replace(tmp, path)  # whole entries only, also with concurrent runs
-    except Exception:  # noqa: BLE001 (no cache directory: the run goes on without one)
-        if tmp is not None and os.path.exists(tmp):
-            os.unlink(tmp)
-    finally:
-        for c, v in held:
-            c.storage[0] = v
-
-
-def _push_data(fn, m):
-    """Give a compiled log density the current values of the model's ``pm.Data`` (a
-    function from the cache holds its own copies of them)."""
-    values = {v.name: v for v in m.data_vars}
-    f = fn._pytensor_function
-    for inp, container in zip(f.maker.inputs, f.input_storage):
-        var = values.get(inp.variable.name) if inp.shared else None
-        if var is not None and var is not inp.variable:
-            container.value = var.get_value(borrow=True)
-
-
-def _warm_start(logp_grad, x0, info):
-    t0 = time.perf_counter()
-    lap = laplace(logp_grad, x0)
-    info["start_seconds"] = time.perf_counter() - t0
-    if lap is None:
-        info["start"] = "jitter (no posterior mode with a negative definite Hessian found)"
-    else:
-        info["start_newton_iterations"] = lap.iterations
-    return lap
-
-
-def _chain_rngs(seed, chains):
-    return [np.random.default_rng([seed, 7919, c]) for c in range(chains)]
-
-
 def _check_complete(dt, chains, draws):
     """Refuse a truncated trace: PyMC and nutpie catch KeyboardInterrupt and return the
     draws made so far, which must never pass for the run that was asked for."""
@@ -560,6 +220,13 @@ def _check_complete(dt, chains, draws):
         raise KeyboardInterrupt(
             f"sampling was interrupted after {got[0]} chain(s) x {got[1]} draws of the "
             f"{chains} x {draws} asked for; the partial draws were discarded")
+
+
+def _run_own(model, draws, tune, chains, seed, progress, target_accept, info):
+    """This package's NUTS (:mod:`bayespanel.bayes.ownsampler`); None without a mode."""
+    from .ownsampler import run_own
+
+    return run_own(model, draws, tune, chains, seed, progress, target_accept, info)
 
 
 def _run_pymc(model, draws, tune, chains, seed, progress, cores, target_accept, info, warm):
