@@ -203,10 +203,12 @@ def test_psis_refuses_fewer_draws_than_it_can_smooth(tiny_run):
         post.loo("occasion")
     # outside check: arviz-stats itself fails below the minimum and works at it
     ll = np.random.default_rng(1).normal(size=(1, MIN_PSIS_DRAWS - 1, 3))
-    from bayespanel.analysis.loo.psis import _datatree
+    import xarray as xr
 
+    tree = xr.DataTree.from_dict({"log_likelihood": xr.DataTree(
+        xr.Dataset({"occasion": (("chain", "draw", "row"), ll)}))})
     with pytest.raises(ValueError, match="at least 5"):
-        arviz_stats.loo(_datatree(ll, "occasion", None), var_name="occasion", reff=1.0)
+        arviz_stats.loo(tree, var_name="occasion", reff=1.0)
     ll = np.random.default_rng(1).normal(size=(1, MIN_PSIS_DRAWS, 3))
     assert np.isfinite(psis_arrays(ll, "occasion").elpd)
 

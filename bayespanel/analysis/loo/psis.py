@@ -41,38 +41,27 @@ MIN_PSIS_DRAWS = 25
 
 
 # ---------------------------------------------------------------------------- PSIS core
-def _datatree(ll, level, posterior):
-    import xarray as xr
-
-    dim = "unit" if level == "unit" else "row"
-    groups = {"log_likelihood": xr.DataTree(xr.Dataset({level: (("chain", "draw", dim), ll)}))}
-    if posterior is not None:
-        groups["posterior"] = xr.DataTree(posterior)
-    return xr.DataTree.from_dict(groups)
-
-
 def psis_arrays(ll, level, posterior=None, reff=None):
-    """PSIS-LOO of a ``(C, D, points)`` log-likelihood array through :func:`arviz_stats.loo`.
-
-    Returns the arviz ``ELPDDataLOO`` (pointwise). ``reff`` defaults to arviz's estimate
-    from the posterior (mean relative ESS), or 1 without a posterior.
+    """PSIS-LOO of a ``(C, D, points)`` log-likelihood array: the arviz ``ELPDDataLOO``
+    (pointwise) that :func:`arviz_stats.loo` gives, computed for all points at once
+    (:func:`bayespanel.analysis.loo.psisbatch.psis_loo`, same numbers). ``reff`` defaults
+    to arviz's estimate from the posterior (mean relative ESS), or 1 without a posterior.
     """
-    import arviz_stats
+    from .psisbatch import psis_loo
 
     S = int(np.prod(np.shape(ll)[:-1]))
     if S < MIN_PSIS_DRAWS:
         raise EstimationError(
             f"PSIS-LOO needs at least {MIN_PSIS_DRAWS} draws in all (chains x draws); this "
             f"posterior has {S}, so its LOO is not computed: sample more draws")
-    dt = _datatree(ll, level, posterior)
     if posterior is None and reff is None:
         reff = 1.0
     with warnings.catch_warnings():
         # high Pareto k is reported by us, naming the units (SamplingWarning)
         warnings.filterwarnings("ignore", message="Estimated shape parameter of Pareto")
         try:
-            return arviz_stats.loo(dt, var_name=level, pointwise=True, reff=reff)
-        except ValueError as exc:  # arviz-stats cannot fit the tail of the weights
+            return psis_loo(ll, level, posterior, reff)
+        except ValueError as exc:  # the tail of the weights cannot be fitted
             raise EstimationError(
                 f"PSIS-LOO could not fit the tail of the importance weights ({exc}): the "
                 "draws barely move, as when the sampler was not tuned; the LOO is not "
