@@ -13,7 +13,7 @@ import pytest
 
 import bayespanel as bp
 from bayespanel.core.errors import DataHandlingWarning, PanelDataError
-from bayespanel.data.sources import _parquet
+from bayespanel.data.sources import _blocks, _parquet
 from bayespanel.data.sources.dask import DaskPanel
 
 dd = pytest.importorskip("dask.dataframe")
@@ -166,3 +166,55 @@ def test_bad_rows_are_named_as_through_dasks_reader(wage_panel, tmp_path):
     with pytest.raises(PanelDataError, match="'nope'"):
         bp.Panel.from_parquet(tmp_path / "duplicate", unit="nope", time="year",
                               engine="dask", client="synchronous")
+
+
+def test_unit_ranges_in_order_from_the_footers(tmp_path):
+    # Outside reference: the order is checked against the rows themselves (numpy).
+    df = mixed_frame()  # sorted by unit
+    cases = {
+        "sorted": (df, [200, 350], {}, True),
+        "a unit split between files": (df, [203, 351], {}, True),
+        "files listed in reverse": (df.iloc[::-1].sort_values("unit", kind="stable",
+                                                               ascending=False),
+                                    [200], {}, True),
+        "shuffled": (df.sample(frac=1.0, random_state=3), [300], {}, False),
+        "no statistics": (df, [300], {"write_statistics": False}, False),
+    }
+    for name, (frame, cuts, kwargs, expected) in cases.items():
+        folder = write_parts(frame, tmp_path / name.replace(" ", "_"), cuts,
+                             row_group_size=120, **kwargs)
+        plan = _parquet.parquet_plan(dd.read_parquet(folder, split_row_groups=True))
+        assert _parquet.units_in_order(plan, "unit") is expected, name
+        if expected:  # the same answer from the rows of each partition
+            ranges = sorted((t.column("unit").to_numpy().min(), t.column("unit").to_numpy().max())
+                            for t in (_parquet.read_piece(p, g, ["unit"], False).table
+                                      for p, g in plan.pieces))
+            assert all(b[0] >= a[1] for a, b in zip(ranges[:-1], ranges[1:]))
+    with_missing = df.astype({"unit": float})
+    with_missing.loc[3, "unit"] = np.nan
+    folder = write_parts(with_missing, tmp_path / "missing", [300])
+    assert not _parquet.units_in_order(_parquet.parquet_plan(dd.read_parquet(folder)), "unit")
+
+
+def test_one_merge_of_many_sorted_partitions_equals_the_tree(wage_panel, tmp_path):
+    # Outside reference: the pass over dask.dataframe.read_parquet's partitions merged by
+    # the tree of 8 (the wage panel, linearmodels.datasets, in 12 files sorted by unit).
+    folder = write_parts(wage_panel, tmp_path / "p", list(range(360, len(wage_panel), 360)))
+    ours = bp.Panel.from_parquet(folder, unit="nr", time="year", engine="dask",
+                                 client="synchronous")
+    assert ours.npartitions == 13 and ours._one_merge(_blocks.design_block)
+    theirs = DaskPanel(dd.read_parquet(folder), "nr", "year", client="synchronous")
+    assert not theirs._one_merge(_blocks.design_block)
+    a, b = ours.design(WAGE, cluster=True), theirs.design(WAGE, cluster=True)
+    sa, sb = a.design_suffstats(), b.design_suffstats()
+    for f in FIELDS:
+        x, y = np.asarray(getattr(sa, f)), np.asarray(getattr(sb, f))
+        if x.dtype.kind in "iu":
+            np.testing.assert_array_equal(x, y, err_msg=f)
+        else:
+            np.testing.assert_allclose(x, y, rtol=1e-12, atol=1e-12 * np.abs(y).max(),
+                                       err_msg=f)
+    np.testing.assert_allclose(a.source.unit_cross_products(), b.source.unit_cross_products(),
+                               rtol=1e-10, atol=1e-9)
+    assert ours.structure() == theirs.structure()
+    pd.testing.assert_frame_equal(ours.describe(), theirs.describe(), rtol=1e-12)

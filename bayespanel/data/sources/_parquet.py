@@ -23,7 +23,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["ParquetPlan", "ArrowPiece", "parquet_plan", "read_piece", "apply_piece"]
+__all__ = ["ParquetPlan", "ArrowPiece", "parquet_plan", "read_piece", "apply_piece",
+           "units_in_order"]
 
 #: Arrow types a pass reads as numpy arrays (no pandas): integers, floats, booleans
 _NUMERIC = "iufb"
@@ -130,6 +131,40 @@ def read_piece(path: str, row_groups, columns, convert_string: bool) -> ArrowPie
             table = f.read_row_groups(list(row_groups), columns=list(columns),
                                       use_threads=False)
     return ArrowPiece(table, convert_string)
+
+
+def units_in_order(plan: ParquetPlan, unit: str) -> bool:
+    """Whether the partitions' ranges of ``unit`` (from the row-group statistics in the
+    Parquet footers), sorted, each begin at or after the end of the one before: files
+    sorted by unit, as panel files usually are. Their pieces then merge by concatenation
+    (``_merge.chain``) whatever rows a pass drops. False when a statistic is missing,
+    the column has missing values or is neither integers nor text."""
+    import pyarrow.parquet as pq
+
+    ranges, footers = [], {}
+    try:
+        for path, groups in plan.pieces:
+            if path not in footers:
+                footers[path] = pq.ParquetFile(path, memory_map=True).metadata
+            md = footers[path]
+            j = md.schema.to_arrow_schema().get_field_index(unit)
+            if j < 0:
+                return False
+            lo = hi = None
+            for g in range(md.num_row_groups) if groups is None else groups:
+                st = md.row_group(g).column(j).statistics
+                if st is None or not st.has_min_max or st.null_count:
+                    return False
+                if not isinstance(st.min, (int, str)) or isinstance(st.min, bool):
+                    return False
+                lo = st.min if lo is None else min(lo, st.min)
+                hi = st.max if hi is None else max(hi, st.max)
+            if lo is not None:
+                ranges.append((lo, hi))
+        ranges.sort()
+    except (OSError, TypeError, ValueError):  # unreadable footer, mixed types
+        return False
+    return all(b[0] >= a[1] for a, b in zip(ranges[:-1], ranges[1:]))
 
 
 def apply_piece(block, arrow: bool, path, row_groups, columns, convert_string, *args):

@@ -144,14 +144,14 @@ def _resolve_client(client):
     return client
 
 
-def _tree(delayed_pieces, merge):
-    """Reduce a list of delayed pieces with ``merge`` (list -> piece), ``_FAN_IN`` at a time."""
+def _tree(delayed_pieces, merge, fan_in=_FAN_IN):
+    """Reduce a list of delayed pieces with ``merge`` (list -> piece), ``fan_in`` at a time."""
     from dask import delayed
 
     level = list(delayed_pieces)
     while len(level) > 1:
-        level = [delayed(merge, pure=True)(level[i:i + _FAN_IN])
-                 for i in range(0, len(level), _FAN_IN)]
+        level = [delayed(merge, pure=True)(level[i:i + fan_in])
+                 for i in range(0, len(level), fan_in)]
     return level[0] if len(level) == 1 else delayed(merge)(level)
 
 
@@ -218,6 +218,7 @@ class DaskPanel:
         self.client = _resolve_client(client)
         self._structure = None
         self._plan = None  # partitions read with pyarrow (from_parquet), else dask's reader
+        self._sorted = None  # whether the plan's partitions hold ordered ranges of units
 
     @classmethod
     def from_parquet(cls, path, unit: str, time: str, client=None, columns=None, **kwargs):
@@ -292,7 +293,7 @@ class DaskPanel:
         else:
             parts = [delayed(block, pure=True)(d, *args, *extra)
                      for d in self._pieces(columns)]
-        root = _tree(parts, merge)
+        root = _tree(parts, merge, len(parts) if self._one_merge(block) else _FAN_IN)
         with _reading():
             if isinstance(self.client, str):
                 sched = {"local": None, "threads": "threads", "synchronous": "sync"}[self.client]
@@ -300,6 +301,18 @@ class DaskPanel:
                     return local_client().compute(root).result()
                 return root.compute(scheduler=sched)
             return self.client.compute(root).result()
+
+    def _one_merge(self, block) -> bool:
+        """Whether the pieces of ``block`` (a pass of this module) merge all at once: the
+        partitions hold ordered ranges of units (Parquet statistics), so their pieces
+        concatenate and hold no more than the merged result; one merge copies each
+        unit's summaries once, where a tree of merges copies them at every level."""
+        if self._plan is None or block not in (blk.design_block, blk.describe_block,
+                                               blk.structure_block):
+            return False
+        if self._sorted is None:
+            self._sorted = _parquet.units_in_order(self._plan, self.unit)
+        return self._sorted
 
     # ------------------------------------------------------------------ structure
     @property
