@@ -218,3 +218,31 @@ def test_one_merge_of_many_sorted_partitions_equals_the_tree(wage_panel, tmp_pat
                                rtol=1e-10, atol=1e-9)
     assert ours.structure() == theirs.structure()
     pd.testing.assert_frame_equal(ours.describe(), theirs.describe(), rtol=1e-12)
+
+
+def test_rows_of_a_partition_equal_dasks(wage_files):
+    # Outside reference: the rows a later pass (LOO, AR(1)) gets from dask's partitions,
+    # complete ones (no pandas on our side) and one with missing values (deletion).
+    from dataclasses import replace
+
+    from bayespanel.data.sources.dask import DaskSource
+
+    df, folder = wage_files
+    ddf = dd.read_parquet(folder, split_row_groups=True)
+    plan = _parquet.parquet_plan(ddf)
+    src = DaskSource.__new__(DaskSource)
+    src.panel = DaskPanel(ddf, "nr", "year", client="synchronous")
+    spec = replace(src._prepare(WAGE, False), structure=False)
+    cols = list(dict.fromkeys(["nr", "year", *spec.used]))
+    seen = []
+    for i, (path, groups) in enumerate(plan.pieces):
+        ours = _blocks.rows_block(_parquet.read_piece(path, groups, cols, plan.convert_string),
+                                  spec, (0, 2, 7), lambda rows, _: rows)
+        theirs = _blocks.rows_block(ddf[cols].partitions[i].compute(), spec, (0, 2, 7),
+                                    lambda rows, _: rows)
+        for f in ("units", "time", "Z"):
+            a, b = getattr(ours, f), getattr(theirs, f)
+            np.testing.assert_array_equal(a, b, err_msg=f)
+            assert a.dtype == b.dtype and a.flags.c_contiguous == b.flags.c_contiguous
+        seen.append(len(ours.Z))
+    assert sum(seen) == len(df) - 3  # three rows miss exper

@@ -416,12 +416,12 @@ def _build_Z(sub, spec: BlockSpec, src=None, order="C") -> np.ndarray:
 _FILL_ROWS = 8192
 
 
-def _complete_fast(pdf, spec: BlockSpec):
+def _complete_fast(pdf, spec: BlockSpec, order="F"):
     """``(Z, maxabs)`` of a partition whose used columns are all columns of ``[X, y]`` as
     they are (no transform) and all complete and finite, checked by each column's minimum
-    and maximum before the columns are interleaved into ``Z``; None when the partition
-    needs :func:`complete_rows` (a missing or infinite value, which it drops or names,
-    or a transform)."""
+    and maximum before the columns are interleaved into ``Z`` (in ``order``; F, column
+    order, is the statistics' best); None when the partition needs :func:`complete_rows`
+    (a missing or infinite value, which it drops or names, or a transform)."""
     if spec.plain is None or spec.outcome_expr is not None:
         return None
     if not set(spec.used) <= {c for c in spec.plain if c is not None} | {spec.outcome}:
@@ -438,7 +438,7 @@ def _complete_fast(pdf, spec: BlockSpec):
         if not (np.isfinite(lo) and np.isfinite(hi)):
             return None
         maxabs[j] = max(abs(lo), abs(hi))
-    Z = _build_Z(pdf, spec, src, order="F")  # column order: copies, and the pass's best
+    Z = _build_Z(pdf, spec, src, order=order)
     for j, c in enumerate(spec.plain):
         if c is None:
             maxabs[j] = 1.0 if len(Z) else 0.0
@@ -484,11 +484,12 @@ def rows_block(pdf, spec: BlockSpec, columns, block, shared=None):
     (all when ``None``)."""
     from .memory import RowBlock
 
-    sub, _, _, Z = complete_rows(pdf, spec)
+    fast = _complete_fast(pdf, spec, order="C")  # every row complete: no deletion
+    sub, Z = (pdf, fast[0]) if fast is not None else complete_rows(pdf, spec)[::3]
     if columns is not None:
         Z = np.ascontiguousarray(Z[:, list(columns)])
-    return block(RowBlock(units=sub[spec.unit].to_numpy(), time=sub[spec.time].to_numpy(),
-                          Z=Z), shared)
+    return block(RowBlock(units=_values(sub, spec.unit), time=_values(sub, spec.time), Z=Z),
+                 shared)
 
 
 def design_block(pdf, spec: BlockSpec) -> DesignPiece:
