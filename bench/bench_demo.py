@@ -8,14 +8,17 @@ the six reference fits, LOO at both levels, the comparison, results.json and the
 runs in fresh processes: once with this tree and once with the tree of ``--baseline``
 (default :data:`BASELINE`, the main branch before the issue's item 6), extracted with
 ``git archive`` into a temporary folder (the repository's worktrees are not touched), so
-the old path stays callable after the change lands. Each side first runs once untimed
-(numba's and PyTensor's caches, in a private compile directory shared by both, so both
-find their compiled code); then the timed runs alternate old, new, old, new, ... so
-that a change of the machine's load during the run hits both sides alike. Prints the
-wall-clock seconds of each run, the ratio new / old of the medians (target: at most 0.5)
-and the load average at the start and end (the machine is shared: the ratio is the
-figure to read), and the same for the CPU seconds (user + system) of each run, which
-other work on the machine inflates less than the wall clock.
+the old path stays callable after the change lands. Each side runs from a folder outside
+the repository (``python -m`` puts the working directory first on the path: run from the
+repository's root, the old side imported this tree, so runs before 2026-12-03 compared
+the new code with itself), and the bench checks which package each side imports before
+timing. Each side first runs once untimed (numba's and PyTensor's caches, in a private
+compile directory shared by both, so both find their compiled code); then the timed runs
+alternate old, new, old, new, ... so that a change of the machine's load during the run
+hits both sides alike. Prints the wall-clock seconds of each run, the ratio new / old of
+the medians (target: at most 0.5) and the load average at the start and end (the machine
+is shared: the ratio is the figure to read), and the same for the CPU seconds (user +
+system) of each run, which other work on the machine inflates less than the wall clock.
 """
 
 from __future__ import annotations
@@ -54,16 +57,27 @@ def _child_cpu() -> float:
     return u.ru_utime + u.ru_stime
 
 
+def package_file(tree: Path, env: dict, where: Path) -> str:
+    """The ``bayespanel/__init__.py`` a demo run with ``tree`` on the path imports."""
+    full = dict(os.environ, **env, PYTHONPATH=str(tree))
+    return subprocess.run([sys.executable, "-c", "import bayespanel; print(bayespanel.__file__)"],
+                          env=full, capture_output=True, text=True, cwd=where,
+                          check=True).stdout.strip()
+
+
 def run_demo(tree: Path, out: Path, env: dict) -> tuple[float, float]:
     """Wall-clock seconds and CPU seconds (user + system, the process and its children)
     of one ``python -m bayespanel demo`` with ``tree`` first on the path, in a fresh
     process."""
     shutil.rmtree(out, ignore_errors=True)
     full = dict(os.environ, **env, PYTHONPATH=str(tree))
+    # run from the output's parent folder: ``python -m`` puts the working directory first
+    # on the path, so from the repository's root both sides would import this tree
+    where = out.parent
     c0 = _child_cpu()
     t0 = time.perf_counter()
     proc = subprocess.run([sys.executable, "-m", "bayespanel", "demo", "--out", str(out),
-                           "--quiet"], env=full, capture_output=True, text=True)
+                           "--quiet"], env=full, capture_output=True, text=True, cwd=where)
     seconds = time.perf_counter() - t0
     cpu = _child_cpu() - c0
     if proc.returncode not in (0, 1):  # 1: a sampling problem reported, still a full run
@@ -85,6 +99,10 @@ def main(argv=None) -> int:
         sides = {"old": old, "new": ROOT}
         print(f"# bench_demo: {os.cpu_count()} CPUs; load average at start {_load()}; old "
               f"= {args.baseline}, new = {ROOT}", flush=True)
+        for name, tree in sides.items():  # each side imports its own tree
+            found = Path(package_file(tree, env, tmp)).resolve()
+            if not found.is_relative_to(tree.resolve()):
+                raise RuntimeError(f"the {name} side imports {found}, not {tree}")
         for name, tree in sides.items():
             s, c = run_demo(tree, tmp / f"out_{name}", env)
             print(f"  warm-up {name}: {s:.1f} s, CPU {c:.1f} s", flush=True)
