@@ -96,11 +96,11 @@ class ArrowPiece:
         """Column ``name`` as a numpy array, or ``None`` when it is not integers, floats or
         booleans without missing values (then use :meth:`frame`)."""
         col = self.table.column(name)
-        if col.null_count or col.type.to_pandas_dtype is None:
+        if col.null_count:
             return None
         try:
             kind = np.dtype(col.type.to_pandas_dtype()).kind
-        except (NotImplementedError, TypeError):
+        except Exception:  # dictionary, extension and other types pandas converts itself
             return None
         if kind not in _NUMERIC:
             return None
