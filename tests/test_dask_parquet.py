@@ -174,6 +174,7 @@ def test_unit_ranges_in_order_from_the_footers(tmp_path):
     cases = {
         "sorted": (df, [200, 350], {}, True),
         "a unit split between files": (df, [203, 351], {}, True),
+        "an empty file among them": (df, [200, 200, 350], {}, True),
         "files listed in reverse": (df.iloc[::-1].sort_values("unit", kind="stable",
                                                                ascending=False),
                                     [200], {}, True),

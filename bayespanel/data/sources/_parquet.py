@@ -152,6 +152,8 @@ def units_in_order(plan: ParquetPlan, unit: str) -> bool:
                 return False
             lo = hi = None
             for g in range(md.num_row_groups) if groups is None else groups:
+                if md.row_group(g).num_rows == 0:  # an empty file or group: no range
+                    continue
                 st = md.row_group(g).column(j).statistics
                 if st is None or not st.has_min_max or st.null_count:
                     return False
