@@ -54,8 +54,11 @@ def _same(ours, theirs):
         assert getattr(ours, f).identical(getattr(theirs, f)), f
 
 
-@pytest.mark.parametrize("level", ["occasion", "unit"])
-def test_batched_psis_equals_arviz_stats_loo(fd, level):
+@pytest.mark.parametrize("level, block", [("occasion", None), ("unit", None),
+                                          ("occasion", 3 * 500)])
+def test_batched_psis_equals_arviz_stats_loo(fd, level, block, monkeypatch):
+    if block is not None:  # blocks of 3 points (the last one shorter)
+        monkeypatch.setattr("bayespanel.analysis.loo.psisbatch._BLOCK", block)
     ll = pointwise_loglik(fd, level)
     _same(psis_loo(ll, level, fd.posterior), _arviz(ll, level, fd.posterior, None))
     # and through the package's entry point, with a given relative efficiency

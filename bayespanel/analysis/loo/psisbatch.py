@@ -50,6 +50,17 @@ def _by_point(ll):
     return np.ascontiguousarray(np.moveaxis(ll, -1, 0).reshape(ll.shape[-1], -1))
 
 
+#: points x draws in one block: each block's temporaries (the transposed draws, their
+#: order, and the tail fit's grid, 43 x 190 values a point at 4,000 draws) stay tens of MB
+_BLOCK = 1 << 20
+
+
+def _blocks(N: int, S: int):
+    """Slices of the points, a block of about :data:`_BLOCK` values at a time."""
+    step = max(1, _BLOCK // S)
+    return [slice(lo, min(N, lo + step)) for lo in range(0, N, step)]
+
+
 def _tail_length(S: int, reff) -> float:
     """Draws in the smoothed tail: ``3 sqrt(S / reff)``, or ``S / 5`` for few draws."""
     return np.floor(3 * (S / reff) ** 0.5) if S * reff > 225 else np.floor(S / 5)
@@ -113,12 +124,21 @@ def psis_log_weights(ll, reff=1.0):
     """
     C, D, N = ll.shape
     S = C * D
-    a = -_by_point(ll)
-    a = a - np.max(a, axis=1, keepdims=True)
     M = _tail_length(S, reff)
-    tail_ids = np.arange(S - M, S, dtype=int)
     if M < 5:
         raise ValueError("n_draws_tail must be at least 5")
+    lw, k = np.empty((N, S)), np.empty(N)
+    for sl in _blocks(N, S):
+        lw[sl], k[sl] = _smoothed(-_by_point(ll[..., sl]), M)
+    return lw.reshape(N, C, D), k
+
+
+def _smoothed(a, M):
+    """Log weights ``a`` (points x draws, C order) with each point's largest ``M``
+    replaced by the fitted tail's quantiles and normalised; and each point's k."""
+    S = a.shape[1]
+    a = a - np.max(a, axis=1, keepdims=True)
+    tail_ids = np.arange(S - M, S, dtype=int)
     order = np.argsort(a, axis=1)
     tail_pos = order[:, tail_ids]
     tail = np.take_along_axis(a, tail_pos, axis=1)
@@ -142,7 +162,7 @@ def psis_log_weights(ll, reff=1.0):
         rows = np.flatnonzero(smooth)
         a[rows[:, None], tail_pos[smooth]] = q
     a -= logsumexp(a, axis=1, keepdims=True)
-    return a.reshape(N, C, D), k
+    return a, k
 
 
 def psis_loo(ll, level, posterior=None, reff=None):
@@ -159,9 +179,11 @@ def psis_loo(ll, level, posterior=None, reff=None):
     if reff is None:
         reff = 1.0 if posterior is None else relative_efficiency(posterior, S)
     lw, k = psis_log_weights(ll, reff)
-    a = _by_point(ll)
-    elpd_i = logsumexp(lw.reshape(N, S) + a, axis=1)
-    lppd_i = logsumexp(a, axis=1, b=1 / S)
+    elpd_i, lppd_i = np.empty(N), np.empty(N)
+    for sl in _blocks(N, S):
+        a = _by_point(ll[..., sl])
+        elpd_i[sl] = logsumexp(lw[sl].reshape(-1, S) + a, axis=1)
+        lppd_i[sl] = logsumexp(a, axis=1, b=1 / S)
     p_loo_i = lppd_i - elpd_i
     dim = "unit" if level == "unit" else "row"
     # the log-likelihood as arviz-stats reads it from a DataTree group holding it under
