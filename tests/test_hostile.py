@@ -311,8 +311,8 @@ def test_the_package_source_has_no_unpickling_and_no_eval():
     # The one exception: the compile cache stores compiled log densities (code, as
     # PyTensor's own compile folder does) and reads them only from a folder and files of
     # this user that nobody else can write (test_a_cache_entry_others_could_write_is_not_read).
-    assert hits == ["bayes/sampling.py: import pickle"] * 2
-    cache = (root / "bayes" / "sampling.py").read_text("utf-8")
+    assert hits == ["bayes/logdensity.py: import pickle"] * 2
+    cache = (root / "bayes" / "logdensity.py").read_text("utf-8")
     assert "if not (_private(path.parent) and _private(path)):" in cache
 
 
