@@ -222,3 +222,21 @@ def test_prior_on_standard_scale_is_a_change_of_variables():
     s = 3.3
     assert stats.halfnorm(scale=8.0).logpdf(s) == pytest.approx(
         stats.halfnorm(scale=sd["scale"]).logpdf(s / 5.0) - np.log(5.0), rel=1e-12)
+
+
+def test_log_sum_exp_equals_scipy():
+    # outside check: scipy.special.logsumexp, with infinite entries and a scalar weight
+    import scipy.special
+
+    from bayespanel.core.mathcore import log_sum_exp
+
+    rng = np.random.default_rng(3)
+    a = rng.normal(size=(40, 300)) * 50
+    a[0] = -np.inf
+    a[1, 7] = np.inf
+    a[2, :9] = -np.inf
+    for kw in (dict(axis=1), dict(axis=0), dict(axis=1, keepdims=True), dict(axis=1, b=0.25)):
+        want = scipy.special.logsumexp(a, **kw)
+        got = log_sum_exp(a, **kw)
+        assert got.shape == want.shape
+        np.testing.assert_allclose(got, want, rtol=1e-14, atol=0)

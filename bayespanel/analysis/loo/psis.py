@@ -23,9 +23,9 @@ from contextlib import contextmanager
 
 import numpy as np
 import pandas as pd
-from scipy.special import logsumexp
 
 from ...core import suffstats as _ss
+from ...core.mathcore import log_sum_exp as logsumexp
 from ...core.errors import EstimationError, SamplingWarning, SpecificationError
 from ._draws import check_level, from_draws, from_posterior, model_of
 from .pointwise import holdout_loglik, pointwise_loglik, undefined_reason

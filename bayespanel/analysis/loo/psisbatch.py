@@ -23,7 +23,8 @@ from __future__ import annotations
 import warnings
 
 import numpy as np
-from scipy.special import logsumexp
+
+from ...core.mathcore import log_sum_exp as logsumexp
 
 __all__ = ["psis_loo", "psis_log_weights", "relative_efficiency"]
 
