@@ -119,7 +119,8 @@ def job_sample(args):
     ess = _min_ess(post.idata, ["coef", "sigma_obs", "sigma_unit"])
     info = post.sampling
     diag = post.diagnostics(warn=False)
-    return {"sample": info["sampling_seconds"], "ess": ess,
+    return {"sample": info["sampling_seconds"], "cpu": info.get("sampling_cpu_seconds"),
+            "ess": ess,
             "rhat": float(post.summary()["rhat"].max()), "divergences": diag["divergences"],
             "compile": info.get("compile_seconds", np.nan),
             "start_seconds": info.get("start_seconds", 0.0),
@@ -253,7 +254,7 @@ def main():
     if "sample" in parts:
         print(f"\n## 2. sampling against rows: RandomIntercept, NUTS, 4 chains x 1,000 "
               f"draws + 1,000 tuning (load {_load()})")
-        print(f"  {'rows':>11} {'sampler/start':>14} {'sample s':>9} {'min ESS':>8} "
+        print(f"  {'rows':>11} {'sampler/start':>14} {'sample s':>9} {'CPU s':>6} {'min ESS':>8} "
               f"{'ESS/s':>8} {'R-hat':>6} {'div':>4} {'compile s':>10}")
         res = {}
         for rows in sample_rows:
@@ -264,7 +265,8 @@ def main():
                     print(f"  {rows:>11,} {label:>14} error: "
                           f"{r['error'].strip().splitlines()[-1]}")
                     continue
-                print(f"  {rows:>11,} {label:>14} {r['sample']:9.2f} {r['ess']:8.0f} "
+                cpu = "" if r.get("cpu") is None else f"{r['cpu']:.2f}"
+                print(f"  {rows:>11,} {label:>14} {r['sample']:9.2f} {cpu:>6} {r['ess']:8.0f} "
                       f"{r['ess'] / r['sample']:8.0f} {r['rhat']:6.3f} {r['divergences']:4d} "
                       f"{r['compile']:10.2f}", flush=True)
         lo, hi = sample_rows[0], sample_rows[-1]
@@ -274,6 +276,9 @@ def main():
                 ratios.append((f"sampling time {hi:,} / {lo:,} rows ({label})",
                                b["sample"] / a["sample"],
                                "<= 1.2" if label == "bayespanel" else ""))
+            if a.get("cpu") and b.get("cpu"):  # in-process, one thread: CPU seconds
+                ratios.append((f"sampling CPU seconds {hi:,} / {lo:,} rows ({label})",
+                               b["cpu"] / a["cpu"], "<= 1.2"))
         for rows in sample_rows:
             base = res.get((rows, "pymc/jitter"), {})
             for label in ("pymc/mode", "bayespanel"):
