@@ -7,6 +7,8 @@ numpy, everything else through dask's own Arrow-to-pandas conversion. Outside re
 wage panel of Vella and Verbeek (1998) shipped in linearmodels.datasets.
 """
 
+import warnings
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -247,3 +249,20 @@ def test_rows_of_a_partition_equal_dasks(wage_files):
             assert a.dtype == b.dtype and a.flags.c_contiguous == b.flags.c_contiguous
         seen.append(len(ours.Z))
     assert sum(seen) == len(df) - 3  # three rows miss exper
+
+
+@pytest.mark.parametrize("rhs", ["exper + union + exper + hours", "union", "year + exper",
+                                 "exper * union", "np.log(hours) + exper"])
+def test_terms_equal_formulaics_columns(wage_files, rhs):
+    # Outside reference: formulaic's model matrix of the same right-hand side (a sum of
+    # names is read without formulaic on this path, as in memory).
+    from formulaic import Formula
+
+    df, folder = wage_files
+    dp = bp.Panel.from_parquet(folder, unit="nr", time="year", engine="dask",
+                               client="synchronous")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DataHandlingWarning)  # rows missing exper
+        design = dp.design(f"lwage ~ {rhs}")
+    cols = list(Formula(rhs).get_model_matrix(df.dropna(), ensure_full_rank=False).columns)
+    assert design.terms == cols

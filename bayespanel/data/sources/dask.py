@@ -50,7 +50,7 @@ from ..design import (Design, DesignSpec, check_flag, check_stats, check_terms,
                       occasion_label, refuse_complex)
 from ...core.errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
                       SpecificationError, choices_error)
-from ..formula import dependency_message, safe_context, screen
+from ..formula import dependency_message, plain_sum, safe_context, screen
 from . import _blocks as blk
 from . import _parquet
 
@@ -556,8 +556,6 @@ class DaskSource:
 
     # ------------------------------------------------------------------ formula
     def _prepare(self, formula, occasion_effects) -> blk.BlockSpec:
-        from formulaic import Formula
-
         p = self.panel
         dt = p.data.dtypes
         screened = screen(formula, p.columns)
@@ -585,15 +583,14 @@ class DaskSource:
                        "on the Dask path covariates must be numeric (C() is not available "
                        "there)"))
         used = list(dict.fromkeys(used))
-        # the columns a formula gives do not depend on the data for row-wise terms
-        probe = pd.DataFrame({c: np.full(2, 1.0) for c in used})
-        try:
-            mm = Formula(screened.rhs).get_model_matrix(probe, context=safe_context(),
-                                                        ensure_full_rank=False)
-        except Exception as exc:
-            raise FormulaError(f"cannot build the design for {formula!r}: "
-                               f"{dependency_message(exc)}") from None
-        terms = [str(c) for c in mm.columns]
+        names = plain_sum(screened.rhs)
+        if names is not None and set(names) <= set(used):
+            # a sum of (numeric) columns: formulaic's columns are the intercept, then each
+            # name once where it first appears, as the in-memory design reads them too
+            # (data.design._plain_terms); formulaic is not loaded for it
+            terms = ["Intercept"] + list(dict.fromkeys(names))
+        else:
+            terms = self._formula_terms(formula, screened.rhs, used)
         check_terms(terms, formula)
         plain = tuple(None if t == "Intercept" else t for t in terms)
         if not all(t == "Intercept" or t in used for t in terms):
@@ -608,6 +605,21 @@ class DaskSource:
                              used=tuple(used), terms=tuple(terms), plain=plain,
                              rhs=screened.rhs, occasions=occ,
                              outcome_expr=screened.outcome_expr)
+
+    @staticmethod
+    def _formula_terms(formula, rhs, used) -> list:
+        """The columns formulaic gives ``rhs`` (they do not depend on the data for
+        row-wise terms: read from a two-row probe)."""
+        from formulaic import Formula
+
+        probe = pd.DataFrame({c: np.full(2, 1.0) for c in used})
+        try:
+            mm = Formula(rhs).get_model_matrix(probe, context=safe_context(),
+                                               ensure_full_rank=False)
+        except Exception as exc:
+            raise FormulaError(f"cannot build the design for {formula!r}: "
+                               f"{dependency_message(exc)}") from None
+        return [str(c) for c in mm.columns]
 
     # ------------------------------------------------------------------ the pass
     def _run(self, cluster: bool):
