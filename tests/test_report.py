@@ -119,6 +119,17 @@ def test_report_rebuilt_from_saved_results_is_identical(folder, tmp_path):
     assert load_results(run_dir) == json.loads((run_dir / "results.json").read_text("utf-8"))
 
 
+def test_report_names_the_sampler_and_the_chains(folder):
+    # a methods section needs the sampler and the run's length: both come from results.json
+    run_dir, results, _ = folder
+    text = html.unescape((run_dir / "report.html").read_text("utf-8"))
+    sampling = results["models"][0]["sampling"]
+    assert sampling["sampler"] == "bayespanel"
+    assert ("Drawn with the No-U-Turn sampler (Hoffman and Gelman 2014): bayespanel's own "
+            "sampler for every model. 2 chains of 200 draws after 200 warm-up iterations, "
+            "seed 3.") in text
+
+
 def test_every_user_string_is_escaped(folder):
     run_dir, _, _ = folder
     page = (run_dir / "report.html").read_text("utf-8")

@@ -581,6 +581,30 @@ def _status(ok: bool, warn_text="check") -> Safe:
     return tag("span", "fine" if ok else warn_text, cls=f"bp-status {'ok' if ok else 'warn'}")
 
 
+#: how the report names each sampler (results.json ``models[].sampling.sampler``)
+SAMPLER_NAMES = {"bayespanel": "bayespanel's own sampler", "pymc": "PyMC's sampler",
+                 "nutpie": "nutpie"}
+
+
+def _sampler_sentence(models) -> str:
+    """Which NUTS implementation drew each model's posterior, and how long the chains ran
+    (for a methods section)."""
+    by, runs = {}, set()
+    for m in models:
+        s = m.get("sampling") or {}
+        by.setdefault(SAMPLER_NAMES.get(s.get("sampler"), str(s.get("sampler"))),
+                      []).append(m["title"])
+        runs.add((s.get("chains"), s.get("draws"), s.get("tune"), s.get("seed")))
+    which = "; ".join(f"{name} for {', '.join(titles)}" if len(by) > 1
+                      else f"{name} for every model" for name, titles in by.items())
+    text = f"Drawn with the No-U-Turn sampler (Hoffman and Gelman 2014): {which}."
+    if len(runs) == 1:
+        chains, draws, tune, seed = runs.pop()
+        text += (f" {chains} chains of {draws} draws after {tune} warm-up iterations, "
+                 f"seed {seed}.")
+    return text
+
+
 def _diagnostics(r) -> Safe:
     if not r["models"]:
         return note("info", "No Bayesian model was fitted.")
@@ -594,9 +618,9 @@ def _diagnostics(r) -> Safe:
             num.bfmi(d.get("min_bfmi")), num.pareto_k(loo.get("max_k")),
             num.count(loo.get("n_high_pareto_k"))),
             _status(not d.get("warnings") and not loo.get("n_high_pareto_k"))])
-    out = [tag("p", "Thresholds (common practice): R-hat at most 1.01, bulk and tail ESS at "
-               "least 100 per chain, no divergent transitions, energy BFMI at least 0.3, "
-               "Pareto k at most 0.7.", cls="bp-lead"),
+    out = [tag("p", _sampler_sentence(r["models"]) + " Thresholds (common practice): R-hat at "
+               "most 1.01, bulk and tail ESS at least 100 per chain, no divergent transitions, "
+               "energy BFMI at least 0.3, Pareto k at most 0.7.", cls="bp-lead"),
            table(["model", "divergences", "max R-hat", "min bulk ESS", "min tail ESS",
                   "min BFMI", "max Pareto k", "high Pareto k", "status"], rows,
                  foot=tables.footer(r, icc=False))]
