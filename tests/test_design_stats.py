@@ -77,7 +77,8 @@ def _pandas_checked(df, unit, time):
     return dup, order
 
 
-@pytest.mark.parametrize("case", ["sorted", "swap", "float-keys", "repeat", "repeat-at-edge"])
+@pytest.mark.parametrize("case", ["sorted", "swap", "float-keys", "date-keys", "repeat",
+                                  "repeat-at-edge", "date-repeat"])
 def test_rows_in_order_skip_the_sort_and_keep_pandas_answers(case):
     # Reference: pandas' DataFrame.duplicated and stable sort_values on the two keys. The
     # table is read in slices of 65,536 rows: the fault sits across a slice edge.
@@ -90,6 +91,10 @@ def test_rows_in_order_skip_the_sort_and_keep_pandas_answers(case):
     elif case == "float-keys":
         df["u"] = df["u"] * 0.5
         df["t"] = df["t"] + 0.25
+    elif case in ("date-keys", "date-repeat"):
+        df["t"] = pd.Timestamp("2001-01-01") + pd.to_timedelta(df["t"] * 91, unit="D")
+        if case == "date-repeat":
+            df.loc[edge, "t"] = df.loc[edge - 1, "t"]
     elif case == "repeat":
         df.loc[10, "t"] = df.loc[9, "t"]
     elif case == "repeat-at-edge":
@@ -97,7 +102,9 @@ def test_rows_in_order_skip_the_sort_and_keep_pandas_answers(case):
     dup, order = _pandas_checked(df, "u", "t")
     if dup.any():
         first = int(np.flatnonzero(dup)[0])
-        pair = re.escape(f"u={df['u'].iloc[first].item()!r}, t={df['t'].iloc[first].item()!r}")
+        u, t = (v.item() if isinstance(v, np.generic) else v
+                for v in (df["u"].iloc[first], df["t"].iloc[first]))
+        pair = re.escape(f"u={u!r}, t={t!r}")
         with pytest.raises(bp.PanelDataError, match=f"{int(dup.sum())} rows share .*{pair}"):
             bp.Panel(df, "u", "t")
         return

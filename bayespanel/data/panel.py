@@ -155,19 +155,20 @@ def _sort_order(df: pd.DataFrame, unit: str, time: str) -> np.ndarray | None:
 
 
 def _in_strict_order(df: pd.DataFrame, unit: str, time: str) -> bool:
-    """True when both key columns hold numbers and every row comes after the one before
-    it in (unit, occasion) order: the table is sorted and no unit-occasion pair appears
-    twice, so the sort (:func:`_sort_order`) and the search for repeated pairs can be
-    skipped. False says nothing (those run as before). Read in slices (no n-sized
-    temporaries)."""
+    """True when both key columns hold numbers (or dates without a time zone) and every
+    row comes after the one before it in (unit, occasion) order: the table is sorted and
+    no unit-occasion pair appears twice, so the sort (:func:`_sort_order`) and the
+    search for repeated pairs can be skipped. False says nothing (those run as before).
+    Read in slices (no n-sized temporaries)."""
     keys = []
     for col in (unit, time):
         s = df[col]
         if pd.api.types.is_bool_dtype(s) or not (pd.api.types.is_integer_dtype(s)
-                                                 or pd.api.types.is_float_dtype(s)):
+                                                 or pd.api.types.is_float_dtype(s)
+                                                 or pd.api.types.is_datetime64_dtype(s)):
             return False
         v = s.to_numpy()
-        if v.dtype.kind not in "iuf":  # a nullable column kept as objects
+        if v.dtype.kind not in "iufM":  # a nullable column kept as objects
             return False
         keys.append(v)
     u, t = keys
