@@ -216,3 +216,21 @@ def test_marginal_chains_run_in_process_with_the_same_draws(grunfeld):
         np.testing.assert_array_equal(default.idata.posterior[name].values,
                                       workers.idata.posterior[name].values)
     assert smp.default_cores(model, "nutpie", 4) == min(4, os.cpu_count() or 1)
+
+
+def test_our_sampler_gives_the_same_draws_in_worker_processes(grunfeld):
+    """bayespanel's sampler runs its chains in forked workers when cores > 1: each chain
+    has its own seeded random numbers, so the draws equal those of one process, bit for
+    bit. Grunfeld's investment panel (statsmodels)."""
+    panel = bp.Panel(grunfeld, unit="firm", time="year")
+    model = RandomIntercept(panel, "invest ~ value + capital")
+    kw = dict(draws=100, tune=100, chains=3, seed=11, progress=False, sampler="bayespanel")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", SamplingWarning)  # small runs; draws compared only
+        one = model.sample(cores=1, **kw)
+        two = model.sample(cores=2, **kw)
+    assert one.sampling["cores"] == 1 and two.sampling["cores"] == min(2, 3)
+    for group in ("posterior", "sample_stats"):
+        for name in one.idata[group].data_vars:
+            np.testing.assert_array_equal(one.idata[group][name].values,
+                                          two.idata[group][name].values)

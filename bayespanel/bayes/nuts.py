@@ -48,7 +48,7 @@ import math
 
 import numpy as np
 
-__all__ = ["sample_chain", "adaptation_windows", "STATS", "MAX_DEPTH", "MAX_ENERGY_ERROR"]
+__all__ = ["sample_chain", "kernels", "adaptation_windows", "STATS", "MAX_DEPTH", "MAX_ENERGY_ERROR"]
 
 MAX_DEPTH = 10
 MAX_ENERGY_ERROR = 1000.0
@@ -139,7 +139,7 @@ def _log_add(a, b):
 # numbers: compiled (numba, cached on disk), each call costs about a microsecond where
 # the same numpy expressions cost several.
 @functools.cache
-def _kernels():
+def kernels():
     import numba
 
     @numba.njit(cache=True)
@@ -218,7 +218,7 @@ class _Chain:
         self.metric = metric
         self.x = np.asarray(x, dtype=float).copy()
         self.lp, self.g = self.f(self.x)
-        self.kernels = _kernels()
+        self.kernels = kernels()
         self.step = step
         self.adapt = _DualAveraging(step, target_accept)
 

@@ -96,9 +96,59 @@ def _datatree(model, values, names, stats, chains, draws, attrs):
                                 check_conventions=False)
 
 
-def run_own(model, draws, tune, chains, seed, progress, target_accept, info):
+#: chains may run in forked worker processes (not on Windows, nor where fork is missing)
+_FORK = "fork" in __import__("multiprocessing").get_all_start_methods()
+_JOB = None
+
+
+def _cpu():
+    import resource
+
+    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(
+        resource.RUSAGE_CHILDREN)
+    return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
+
+
+def _call(i):
+    """In a worker: run job ``i``; any exception, an interrupt included, is sent back to be
+    raised in the parent (an interrupted worker would otherwise leave the pool broken)."""
+    try:
+        return True, _JOB(i)
+    except BaseException as exc:  # noqa: BLE001
+        return False, exc
+
+
+def _in_processes(job, items, workers):
+    """``[job(i) for i in items]`` in ``workers`` forked processes; ``job`` (a closure) is
+    inherited by the fork, not pickled."""
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    global _JOB
+    _JOB = job
+    try:
+        with warnings.catch_warnings():
+            # Python warns that forking a process with threads may deadlock in the child;
+            # the workers only run numpy and the compiled log density (no locks taken)
+            warnings.filterwarnings("ignore", message=".*fork.*", category=DeprecationWarning)
+            with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("fork")) as ex:
+                results = list(ex.map(_call, items))
+    finally:
+        _JOB = None
+    for ok, value in results:
+        if not ok:
+            raise value
+    return [value for _, value in results]
+
+
+def run_own(model, draws, tune, chains, seed, progress, target_accept, info, cores=1):
     """Sample ``model`` with this package's NUTS; the DataTree, or None when no posterior
-    mode is found (the caller then uses PyMC's sampler)."""
+    mode is found (the caller then uses PyMC's sampler).
+
+    The chains run in ``cores`` processes forked from this one (where the operating
+    system forks; else one after another here): each worker inherits the compiled log
+    density and sends back only its finished draws. Each chain has its own seeded random
+    numbers, so the draws do not depend on ``cores``."""
     from pymc.blocking import DictToArrayBijection
 
     from .laplace import START_WEIGHT, chain_rngs, warm_start
@@ -116,23 +166,34 @@ def run_own(model, draws, tune, chains, seed, progress, target_accept, info):
     if lap is None:
         return None
     starts = [lap.starts(rng, logp_grad) for rng in chain_rngs(seed, chains)]
-    t1, c1 = time.perf_counter(), time.process_time()
-    out, stats = [], []
-    for c, x in enumerate(starts):
-        rng = np.random.default_rng([seed, _STREAM, c])
+    nuts.kernels()  # loaded here, before any worker process starts
+
+    def one_chain(c):
         say = None
         if progress:
-            def say(it, c=c):
-                print(f"\r  chain {c + 1}/{chains}: {it}/{tune + draws}", end="", flush=True, file=sys.stderr)
-        d, st, *_ = nuts.sample_chain(logp_grad, x, lap.cov, draws=draws, tune=tune, rng=rng,
+            def say(it):
+                print(f"\r  chain {c + 1}/{chains}: {it}/{tune + draws}", end="", flush=True,
+                      file=sys.stderr)
+        d, st, *_ = nuts.sample_chain(logp_grad, starts[c], lap.cov, draws=draws, tune=tune,
+                                      rng=np.random.default_rng([seed, _STREAM, c]),
                                       target_accept=target_accept, prior_weight=START_WEIGHT,
                                       callback=say)
-        out.append(d)
-        stats.append(st)
+        return d, st
+
+    workers = min(cores, chains) if _FORK else 1
+    info["cores"] = workers
+    t1, c1 = time.perf_counter(), _cpu()
+    if workers > 1:
+        results = _in_processes(one_chain, range(chains), workers)
+    else:
+        results = [one_chain(c) for c in range(chains)]
+    out, stats = [r[0] for r in results], [r[1] for r in results]
     if progress:
         print(flush=True, file=sys.stderr)
     info["sampling_seconds"] = time.perf_counter() - t1
-    info["sampling_cpu_seconds"] = time.process_time() - c1  # one thread: not the machine's load
+    # this process and its finished workers: CPU seconds, which other work on the
+    # machine does not inflate as it does the wall clock
+    info["sampling_cpu_seconds"] = _cpu() - c1
     fn_draws, names = _draws_function(model, point)
     flat = np.concatenate(out)
     with warnings.catch_warnings():

@@ -138,10 +138,13 @@ def default_cores(model, sampler, chains) -> int:
     processes costs more than the chains themselves: on the demo's random-intercept
     model, 4 chains x 2,000 iterations took 2.3 times as long in 2 worker processes as in
     this one (bench/bench_demo.py measures the whole demo). Otherwise ``min(chains,
-    CPUs)``. PyMC seeds each chain the same way in both modes, so the draws for a seed do
-    not depend on ``cores`` (tests/test_warm_start.py checks it).
+    CPUs)``: bayespanel's sampler forks its workers, which inherit the compiled log
+    density and send back only their finished draws, so two cores halve its time even
+    for the smallest models. Both samplers seed each chain the same way in every mode,
+    so the draws for a seed do not depend on ``cores`` (tests/test_warm_start.py checks
+    it).
     """
-    if sampler in ("pymc", "bayespanel") and model.likelihood == "marginal":
+    if sampler == "pymc" and model.likelihood == "marginal":
         return 1
     return min(chains, os.cpu_count() or 1)
 
@@ -192,8 +195,7 @@ def run(model, *, draws, tune, chains, seed, sampler, progress, cores, target_ac
     info["start"] = "mode" if warm else "jitter"
     t0 = time.perf_counter()
     if chosen == "bayespanel":
-        info["cores"] = 1  # the chains run one after another in this process
-        dt = _run_own(model, draws, tune, chains, seed, progress, target_accept, info)
+        dt = _run_own(model, draws, tune, chains, seed, progress, target_accept, info, cores)
         if dt is None:  # no posterior mode: PyMC's sampler from its own start
             info["sampler"] = "pymc"
             dt = _run_pymc(model, draws, tune, chains, seed, progress, 1, target_accept, info,
@@ -222,11 +224,11 @@ def _check_complete(dt, chains, draws):
             f"{chains} x {draws} asked for; the partial draws were discarded")
 
 
-def _run_own(model, draws, tune, chains, seed, progress, target_accept, info):
+def _run_own(model, draws, tune, chains, seed, progress, target_accept, info, cores=1):
     """This package's NUTS (:mod:`bayespanel.bayes.ownsampler`); None without a mode."""
     from .ownsampler import run_own
 
-    return run_own(model, draws, tune, chains, seed, progress, target_accept, info)
+    return run_own(model, draws, tune, chains, seed, progress, target_accept, info, cores)
 
 
 def _run_pymc(model, draws, tune, chains, seed, progress, cores, target_accept, info, warm):
