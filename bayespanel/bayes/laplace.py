@@ -18,7 +18,8 @@ import time
 
 import numpy as np
 
-__all__ = ["Laplace", "laplace", "warm_start", "chain_rngs", "START_SPREAD", "START_WEIGHT"]
+__all__ = ["Laplace", "laplace", "warm_start", "chain_rngs", "start_at_mode", "ModeStart",
+           "START_SPREAD", "START_WEIGHT"]
 
 #: chains start at the mode plus this many Laplace standard deviations (times a standard
 #: normal draw): overdispersed relative to the posterior (Gelman and Rubin 1992)
@@ -131,3 +132,41 @@ def warm_start(logp_grad, x0, info):
 
 def chain_rngs(seed, chains):
     return [np.random.default_rng([seed, 7919, c]) for c in range(chains)]
+
+
+@dataclasses.dataclass(frozen=True)
+class ModeStart:
+    """Everything a sampler started at the mode needs: PyMC's initial point (``point``,
+    by value-variable name; ``x0``, raveled), its compiled log density (``fn``, and
+    ``logp_grad`` calling it directly), the :class:`Laplace` approximation and one
+    starting point per chain (``starts``, raveled)."""
+
+    point: dict
+    x0: object
+    fn: object
+    logp_grad: object
+    laplace: Laplace
+    starts: list
+
+
+def start_at_mode(model, seed, chains, info):
+    """The compiled log density of ``model.pymc_model``, the posterior mode and Laplace
+    covariance from PyMC's initial point, and one seeded start per chain, for both
+    samplers that start there (bayespanel's and PyMC's); records the compile and start
+    times in ``info``. None when no mode is found (``info["start"]`` says so)."""
+    from pymc.blocking import DictToArrayBijection
+
+    from .logdensity import compiled_logp, logp_grad_of
+
+    t0 = time.perf_counter()
+    point = model.pymc_model.initial_point()
+    fn = compiled_logp(model, info, point)
+    logp_grad = logp_grad_of(fn)
+    x0 = DictToArrayBijection.map(point)
+    logp_grad(x0.data)  # the first call finishes the compilation (numba)
+    info["compile_logp_seconds"] = time.perf_counter() - t0
+    lap = warm_start(logp_grad, x0.data, info)
+    if lap is None:
+        return None
+    starts = [lap.starts(rng, logp_grad) for rng in chain_rngs(seed, chains)]
+    return ModeStart(point, x0, fn, logp_grad, lap, starts)

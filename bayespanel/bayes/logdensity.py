@@ -14,7 +14,7 @@ import numpy as np
 
 from .graph import graph_identity, same_graph
 
-__all__ = ["forget_stale", "nutpie_compiled", "compiled_logp"]
+__all__ = ["forget_stale", "nutpie_compiled", "compiled_logp", "logp_grad_of"]
 
 
 def forget_stale(model) -> bool:
@@ -81,6 +81,28 @@ def compiled_logp(model, info=None, point=None):
     if info is not None:
         info["compile_cache"] = getattr(model, "_pymc_logp_cache", "off")
     return fn
+
+
+def logp_grad_of(fn):
+    """``x -> (log density, gradient)`` of PyMC's compiled ``ValueGradFunction`` ``fn``:
+    its numba function called directly with the model's data when PyTensor compiled it
+    with numba (the same numbers as ``fn(x)``, without the per-call argument handling),
+    else ``fn`` itself."""
+    f = fn._pytensor_function
+    jit = getattr(getattr(f, "vm", None), "jit_fn", None)
+    inputs = f.maker.inputs
+    if jit is None or inputs[0].shared or not all(i.shared for i in inputs[1:]) \
+            or len(f.maker.fgraph.outputs) != 2:
+        def call(x):
+            lp, g = fn(x, extra_vars={})
+            return float(lp), g
+        return call
+    data = tuple(c.storage[0] for c in f.input_storage[1:])
+
+    def direct(x):
+        lp, g = jit(x, *data)
+        return float(lp), g
+    return direct
 
 
 # ---------------------------------------------------------------------------- compile cache

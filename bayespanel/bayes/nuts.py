@@ -219,7 +219,6 @@ class _Chain:
         self.x = np.asarray(x, dtype=float).copy()
         self.lp, self.g = self.f(self.x)
         self.kernels = kernels()
-        self.step = step
         self.adapt = _DualAveraging(step, target_accept)
 
     # ------------------------------------------------------------------ leapfrog
@@ -326,9 +325,8 @@ class _Chain:
         p = self.metric.momentum(self.rng)
         h0 = 0.5 * float(p @ (self.metric.cov @ p)) - lp
 
-        def log_accept(e):
-            t = self._leaf(x, p, g, e, h0)
-            return t.log_w if math.isfinite(t.log_w) else -math.inf
+        def log_accept(e):  # -inf where the step fails (the leaf's energy error is inf)
+            return self._leaf(x, p, g, e, h0).log_w
 
         direction = 1.0 if log_accept(eps) > _LOG_HALF else -1.0
         for _ in range(100):

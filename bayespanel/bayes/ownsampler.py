@@ -21,33 +21,11 @@ import numpy as np
 
 from . import nuts
 
-__all__ = ["run_own", "logp_grad_of"]
+__all__ = ["run_own"]
 
 #: the seed stream of the sampler's own random numbers (momenta, directions, choices);
 #: the starting points have theirs (``laplace.chain_rngs``)
 _STREAM = 104729
-
-
-def logp_grad_of(fn):
-    """``x -> (log density, gradient)`` of PyMC's compiled ``ValueGradFunction`` ``fn``:
-    its numba function called directly with the model's data when PyTensor compiled it
-    with numba (the same numbers as ``fn(x)``, without the per-call argument handling),
-    else ``fn`` itself."""
-    f = fn._pytensor_function
-    jit = getattr(getattr(f, "vm", None), "jit_fn", None)
-    inputs = f.maker.inputs
-    if jit is None or inputs[0].shared or not all(i.shared for i in inputs[1:]) \
-            or len(f.maker.fgraph.outputs) != 2:
-        def call(x):
-            lp, g = fn(x, extra_vars={})
-            return float(lp), g
-        return call
-    data = tuple(c.storage[0] for c in f.input_storage[1:])
-
-    def direct(x):
-        lp, g = jit(x, *data)
-        return float(lp), g
-    return direct
 
 
 def _draws_function(model, point):
@@ -149,23 +127,13 @@ def run_own(model, draws, tune, chains, seed, progress, target_accept, info, cor
     system forks; else one after another here): each worker inherits the compiled log
     density and sends back only its finished draws. Each chain has its own seeded random
     numbers, so the draws do not depend on ``cores``."""
-    from pymc.blocking import DictToArrayBijection
-
-    from .laplace import START_WEIGHT, chain_rngs, warm_start
-    from .logdensity import compiled_logp
+    from .laplace import START_WEIGHT, start_at_mode
 
     t0 = time.perf_counter()
-    m = model.pymc_model
-    point = m.initial_point()
-    fn = compiled_logp(model, info, point)
-    logp_grad = logp_grad_of(fn)
-    x0 = DictToArrayBijection.map(point).data
-    logp_grad(x0)  # the first call finishes the compilation (numba)
-    info["compile_logp_seconds"] = time.perf_counter() - t0
-    lap = warm_start(logp_grad, x0, info)
-    if lap is None:
+    start = start_at_mode(model, seed, chains, info)
+    if start is None:
         return None
-    starts = [lap.starts(rng, logp_grad) for rng in chain_rngs(seed, chains)]
+    logp_grad, cov0 = start.logp_grad, start.laplace.cov
     nuts.kernels()  # loaded here, before any worker process starts
 
     def one_chain(c):
@@ -174,7 +142,7 @@ def run_own(model, draws, tune, chains, seed, progress, target_accept, info, cor
             def say(it):
                 print(f"\r  chain {c + 1}/{chains}: {it}/{tune + draws}", end="", flush=True,
                       file=sys.stderr)
-        d, st, *_ = nuts.sample_chain(logp_grad, starts[c], lap.cov, draws=draws, tune=tune,
+        d, st, *_ = nuts.sample_chain(logp_grad, start.starts[c], cov0, draws=draws, tune=tune,
                                       rng=np.random.default_rng([seed, _STREAM, c]),
                                       target_accept=target_accept, prior_weight=START_WEIGHT,
                                       callback=say)
@@ -194,7 +162,7 @@ def run_own(model, draws, tune, chains, seed, progress, target_accept, info, cor
     # this process and its finished workers: CPU seconds, which other work on the
     # machine does not inflate as it does the wall clock
     info["sampling_cpu_seconds"] = _cpu() - c1
-    fn_draws, names = _draws_function(model, point)
+    fn_draws, names = _draws_function(model, start.point)
     flat = np.concatenate(out)
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=".*overflow encountered.*")

@@ -67,7 +67,7 @@ import numpy as np
 
 from ..core.errors import SpecificationError, choices_error
 from .laplace import START_SPREAD, START_WEIGHT, Laplace, laplace  # noqa: F401
-from .laplace import chain_rngs as _chain_rngs
+from .laplace import start_at_mode
 from .laplace import warm_start as _warm_start
 from .logdensity import (_cache_load, _cache_path, _cache_save, _push_data,  # noqa: F401
                          compiled_logp as _pymc_logp, forget_stale, nutpie_compiled)
@@ -290,22 +290,11 @@ def _pymc_warm_step(model, chains, seed, target_accept, info):
     from pymc.blocking import DictToArrayBijection
     from pymc.step_methods.hmc import quadpotential
 
-    t0 = time.perf_counter()
-    m = model.pymc_model
-    point = m.initial_point()
-    fn = _pymc_logp(model, info, point)
-    x0 = DictToArrayBijection.map(point)
-    fn(x0.data, extra_vars={})  # the first call finishes the compilation (numba)
-    info["compile_logp_seconds"] = time.perf_counter() - t0
-
-    def logp_grad(x):
-        return fn(x, extra_vars={})
-
-    lap = _warm_start(logp_grad, x0.data, info)
-    if lap is None:
+    start = start_at_mode(model, seed, chains, info)
+    if start is None:
         return None
+    m, point, x0, lap, starts = model.pymc_model, start.point, start.x0, start.laplace, start.starts
     n = len(lap.mode)
-    starts = [lap.starts(rng, logp_grad) for rng in _chain_rngs(seed, chains)]
     initvals = [_initvals(m, DictToArrayBijection.rmap(x0._replace(data=x), start_point=point))
                 for x in starts]
     rng = np.random.default_rng([seed, 7919])
@@ -318,7 +307,7 @@ def _pymc_warm_step(model, chains, seed, target_accept, info):
                 n, lap.mode, np.diag(lap.cov).copy(), START_WEIGHT, rng=rng)
     first = DictToArrayBijection.rmap(x0._replace(data=starts[0]), start_point=point)
     step = pm.NUTS(vars=m.value_vars, model=m, potential=potential, target_accept=target_accept,
-                   rng=rng, initial_point=first, logp_dlogp_func=fn)
+                   rng=rng, initial_point=first, logp_dlogp_func=start.fn)
     return {"step": step, "initvals": initvals, "starts": starts}
 
 
