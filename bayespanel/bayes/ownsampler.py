@@ -13,6 +13,7 @@ that PyMC's sampler writes (``posterior``, ``sample_stats``).
 
 from __future__ import annotations
 
+import multiprocessing
 import sys
 import time
 import warnings
@@ -75,13 +76,17 @@ def _datatree(model, values, names, stats, chains, draws, attrs):
 
 
 #: chains may run in forked worker processes (not on Windows, nor where fork is missing)
-_FORK = "fork" in __import__("multiprocessing").get_all_start_methods()
+_FORK = "fork" in multiprocessing.get_all_start_methods()
 _JOB = None
 
 
 def _cpu():
-    import resource
-
+    """CPU seconds of this process and its finished workers (this process's alone where
+    the system has no ``resource`` module)."""
+    try:
+        import resource
+    except ImportError:  # Windows: no workers either (no fork)
+        return time.process_time()
     me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(
         resource.RUSAGE_CHILDREN)
     return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
@@ -99,7 +104,6 @@ def _call(i):
 def _in_processes(job, items, workers):
     """``[job(i) for i in items]`` in ``workers`` forked processes; ``job`` (a closure) is
     inherited by the fork, not pickled."""
-    import multiprocessing
     from concurrent.futures import ProcessPoolExecutor
 
     global _JOB

@@ -600,8 +600,8 @@ def _sampler_sentence(models) -> str:
     text = f"Drawn with the No-U-Turn sampler (Hoffman and Gelman 2014): {which}."
     if len(runs) == 1:
         chains, draws, tune, seed = runs.pop()
-        text += (f" {chains} chains of {draws} draws after {tune} warm-up iterations, "
-                 f"seed {seed}.")
+        text += (f" {num.count(chains)} chains of {num.count(draws)} draws after "
+                 f"{num.count(tune)} warm-up iterations, seed {seed}.")
     return text
 
 

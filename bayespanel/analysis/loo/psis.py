@@ -25,8 +25,8 @@ import numpy as np
 import pandas as pd
 
 from ...core import suffstats as _ss
-from ...core.mathcore import log_sum_exp as logsumexp
 from ...core.errors import EstimationError, SamplingWarning, SpecificationError
+from ...core.mathcore import log_sum_exp as logsumexp
 from ._draws import check_level, from_draws, from_posterior, model_of
 from .pointwise import holdout_loglik, pointwise_loglik, undefined_reason
 from .result import LOOResult
