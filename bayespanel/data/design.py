@@ -25,7 +25,7 @@ from .designchecks import (COLLINEARITY_WARN, EXACT_COLLINEAR_TOL,  # noqa: F401
                            MAGNITUDE_LIMITS, _check_columns, _check_finite, _numeric, _plain,
                            _refuse_text, check_flag, check_stats, check_terms,
                            collinearity_warning, condition_number, refuse_complex)
-from .formula import dependency_message, outcome_values, plain_sum, safe_context, screen
+from .formula import dependency_message, outcome_values, safe_context, screen, sum_columns
 from .sources import InMemoryRows
 from ..kinds import COLUMNS, builder as builder_of
 from ..core.terms import BETWEEN, UNIT_MEAN, WITHIN, Term, labels as term_labels, occasion, parse
@@ -683,11 +683,12 @@ def _plain_terms(rhs: str, frame: pd.DataFrame, used) -> list | None:
     """The terms of ``rhs`` as column names (None for the intercept), in formulaic's order,
     when every term is the intercept or a numeric column as it is; else None (the model
     matrix then comes from formulaic). A sum of numeric columns (``x0 + x1``,
-    :func:`~bayespanel.data.formula.plain_sum`) is read without formulaic: the intercept
-    first, then each column once, where it first appears, as formulaic orders them."""
-    names = plain_sum(rhs)
+    :func:`~bayespanel.data.formula.sum_columns`) is read without formulaic: the
+    intercept first, then each column once, where it first appears, as formulaic orders
+    them."""
+    names = sum_columns(rhs)
     if names is not None and all(n in used and _numeric(frame[n]) for n in names):
-        return [None] + list(dict.fromkeys(names))
+        return [None] + names
     from formulaic import Formula
     from formulaic.parser.types import Factor
 

@@ -36,7 +36,8 @@ from ..core.errors import FormulaError
 from ..core.terms import AS_IS, BETWEEN, UNIT_MEAN, WITHIN, parse
 
 __all__ = ["screen", "safe_context", "ScreenedFormula", "ALLOWED_TRANSFORMS", "LIMITS",
-           "reserved_name", "outcome_values", "dependency_message", "plain_sum"]
+           "reserved_name", "outcome_values", "dependency_message", "plain_sum",
+           "sum_columns"]
 
 #: What a formula may cost (each far above what an analysis writes; docs/user-guide.md).
 LIMITS = {
@@ -455,6 +456,13 @@ def plain_sum(side: str) -> list[str] | None:
     if any(keyword.iskeyword(n) for n in names):
         return None
     return names
+
+
+def sum_columns(side: str) -> list[str] | None:
+    """The columns of a :func:`plain_sum` in formulaic's order after the intercept (each
+    name once, where it first appears), for the in-memory and Dask designs; else None."""
+    names = plain_sum(side)
+    return None if names is None else list(dict.fromkeys(names))
 
 
 def _leaf_terms(token, formula, restore, quoted) -> frozenset:

@@ -50,7 +50,7 @@ from ..design import (Design, DesignSpec, check_flag, check_stats, check_terms,
                       occasion_label, refuse_complex)
 from ...core.errors import (DataHandlingWarning, EstimationError, FormulaError, PanelDataError,
                       SpecificationError, choices_error)
-from ..formula import dependency_message, plain_sum, safe_context, screen
+from ..formula import dependency_message, safe_context, screen, sum_columns
 from . import _blocks as blk
 from . import _parquet
 
@@ -583,12 +583,10 @@ class DaskSource:
                        "on the Dask path covariates must be numeric (C() is not available "
                        "there)"))
         used = list(dict.fromkeys(used))
-        names = plain_sum(screened.rhs)
+        names = sum_columns(screened.rhs)
         if names is not None and set(names) <= set(used):
-            # a sum of (numeric) columns: formulaic's columns are the intercept, then each
-            # name once where it first appears, as the in-memory design reads them too
-            # (data.design._plain_terms); formulaic is not loaded for it
-            terms = ["Intercept"] + list(dict.fromkeys(names))
+            # a sum of (numeric) columns: formulaic is not loaded for it
+            terms = ["Intercept"] + names
         else:
             terms = self._formula_terms(formula, screened.rhs, used)
         check_terms(terms, formula)
